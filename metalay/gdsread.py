@@ -1,0 +1,955 @@
+"""Read GDSII and OASIS masks into flat arrays of integer polygons.
+
+The GDSII path is a record walk that recognises runs of identically structured elements and decodes each run
+with numpy views (a run of ten million 4-vertex BOUNDARY elements is one strided view of the file); only the
+first element of a run is walked record by record in Python.  References (SREF/AREF) are resolved with numpy
+affine transforms after a cycle check and a count of the flattened size, so a hostile file is rejected before
+any large array is allocated.  OASIS files are read through gdstk and their repetitions expanded with numpy.
+
+Every failure on malformed input is a :class:`metalay.errors.MaskReadError` naming the file, the byte offset
+and what was expected.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import math
+import mmap
+import os
+import struct
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+
+from metalay.errors import MaskReadError
+
+__all__ = [
+    "FlatPolygons",
+    "read_mask",
+    "mask_info",
+    "file_sha256",
+    "DEFAULT_MAX_ELEMENTS",
+    "DEFAULT_MAX_VERTICES",
+    "DEFAULT_MAX_DEPTH",
+]
+
+DEFAULT_MAX_ELEMENTS = 100_000_000
+"""Default limit on flattened polygons (and on reference instances) per read."""
+DEFAULT_MAX_VERTICES = 400_000_000
+"""Default limit on flattened vertices (6.4 GB of int64 coordinates)."""
+DEFAULT_MAX_DEPTH = 64
+"""Default limit on reference nesting depth."""
+
+# Record types, GDSII Stream Format Manual Release 6.0 (Calma 1987), chapter "Record Description".
+_HEADER, _BGNLIB, _LIBNAME, _UNITS, _ENDLIB = 0x00, 0x01, 0x02, 0x03, 0x04
+_BGNSTR, _STRNAME, _ENDSTR = 0x05, 0x06, 0x07
+_BOUNDARY, _PATH, _SREF, _AREF, _TEXT = 0x08, 0x09, 0x0A, 0x0B, 0x0C
+_LAYER, _DATATYPE, _WIDTH, _XY, _ENDEL, _SNAME, _COLROW = 0x0D, 0x0E, 0x0F, 0x10, 0x11, 0x12, 0x13
+_NODE, _STRANS, _MAG, _ANGLE, _PATHTYPE = 0x15, 0x1A, 0x1B, 0x1C, 0x21
+_BOX, _BOXTYPE, _BGNEXTN, _ENDEXTN = 0x2D, 0x2E, 0x30, 0x31
+_ELEMENT_STARTS = {_BOUNDARY, _PATH, _SREF, _AREF, _TEXT, _NODE, _BOX}
+_MAX_RECORD_TYPE = 0x3B
+# Expected data type per record (0 none, 1 bit array, 2 int16, 3 int32, 5 real8, 6 ASCII).
+_DTYPE = {_HEADER: 2, _BGNLIB: 2, _UNITS: 5, _BGNSTR: 2, _STRNAME: 6, _LAYER: 2, _DATATYPE: 2, _WIDTH: 3, _XY: 3,
+          _SNAME: 6, _COLROW: 2, _STRANS: 1, _MAG: 5, _ANGLE: 5, _PATHTYPE: 2, _BOXTYPE: 2, _BGNEXTN: 3,
+          _ENDEXTN: 3, _ENDEL: 0, _ENDSTR: 0, _ENDLIB: 0}
+_RUN_CHUNK_MAX = 1 << 16
+_DECODE_CHUNK = 1 << 19
+
+
+@dataclass(frozen=True)
+class FlatPolygons:
+    """Flattened polygons of a mask, in database units.
+
+    Attributes
+    ----------
+    layer, datatype : np.ndarray, shape (P,), int32
+        GDSII layer and datatype of each polygon.
+    start : np.ndarray, shape (P+1,), int64
+        Polygon ``k`` has vertices ``xy_db[start[k]:start[k+1]]``; the closing vertex is not repeated.
+    xy_db : np.ndarray, shape (N, 2), int64
+        Vertex coordinates in database units.
+    db_unit_m : float
+        Size of the database unit in metres (1e-9 for a 1 nm grid).
+    user_unit_m : float
+        Size of the user unit in metres (1e-6 for micrometres).
+    """
+
+    layer: np.ndarray
+    datatype: np.ndarray
+    start: np.ndarray
+    xy_db: np.ndarray
+    db_unit_m: float
+    user_unit_m: float
+
+    @property
+    def count(self) -> int:
+        """Number of polygons P."""
+        return int(self.layer.shape[0])
+
+    @property
+    def vertex_counts(self) -> np.ndarray:
+        """Vertices per polygon, shape (P,), int64."""
+        return np.diff(self.start)
+
+    def select(self, mask: np.ndarray) -> "FlatPolygons":
+        """Return the polygons where the boolean ``mask`` (shape (P,)) is true, in the same order."""
+        mask = np.asarray(mask, dtype=bool)
+        counts = np.diff(self.start)
+        vmask = np.repeat(mask, counts)
+        start = np.zeros(int(mask.sum()) + 1, dtype=np.int64)
+        np.cumsum(counts[mask], out=start[1:])
+        return FlatPolygons(self.layer[mask], self.datatype[mask], start, self.xy_db[vmask], self.db_unit_m,
+                            self.user_unit_m)
+
+    @staticmethod
+    def from_arrays(layer, datatype, counts, xy_db, *, db_unit_m: float = 1e-9,
+                    user_unit_m: float = 1e-6) -> "FlatPolygons":
+        """Build from per-polygon vertex ``counts`` (shape (P,)) and concatenated ``xy_db`` (shape (N, 2))."""
+        counts = np.asarray(counts, dtype=np.int64)
+        start = np.zeros(counts.shape[0] + 1, dtype=np.int64)
+        np.cumsum(counts, out=start[1:])
+        xy = np.asarray(xy_db, dtype=np.int64).reshape(-1, 2)
+        if start[-1] != xy.shape[0]:
+            raise ValueError(f"vertex counts sum to {start[-1]} but xy_db has {xy.shape[0]} rows")
+        return FlatPolygons(np.broadcast_to(np.asarray(layer, np.int32), counts.shape).copy(),
+                            np.broadcast_to(np.asarray(datatype, np.int32), counts.shape).copy(),
+                            start, xy, float(db_unit_m), float(user_unit_m))
+
+
+# ----------------------------------------------------------------------------------------------------------------
+# Internal library model shared by the GDSII and OASIS front ends
+# ----------------------------------------------------------------------------------------------------------------
+
+@dataclass
+class _Run:
+    """A run of k identically structured BOUNDARY elements starting at byte ``pos`` with stride ``size``."""
+
+    pos: int
+    size: int
+    k: int
+    xy_off: int          # offset of XY data (after the record header) inside one element
+    n_xy: int            # points per element in the XY record
+    layer: np.ndarray    # (k,) int32
+    datatype: np.ndarray  # (k,) int32
+    closed: np.ndarray   # (k,) bool: last point equals first point
+    keep: np.ndarray     # (k,) bool: passes the layer filter
+
+    @property
+    def n_polys(self) -> int:
+        return int(self.keep.sum())
+
+    @property
+    def n_verts(self) -> int:
+        return int((self.keep * (self.n_xy - self.closed)).sum())
+
+
+@dataclass
+class _Explicit:
+    """Polygons already decoded (paths, boxes, OASIS polygons)."""
+
+    layer: np.ndarray
+    datatype: np.ndarray
+    counts: np.ndarray
+    xy: np.ndarray  # (N, 2) int64
+
+
+@dataclass
+class _RefGroup:
+    """Placements of one child cell: affine maps x -> A x + t, A = [[a, b], [c, d]] (shape (m, 6) float64)."""
+
+    child: str
+    affine: np.ndarray
+    offset: int  # byte offset for messages
+
+
+@dataclass
+class _Cell:
+    name: str
+    runs: list = field(default_factory=list)
+    explicit: list = field(default_factory=list)
+    refs: list = field(default_factory=list)
+    n_elements: dict = field(default_factory=dict)
+
+    def own_counts(self) -> tuple[int, int]:
+        p = sum(r.n_polys for r in self.runs) + sum(int(e.counts.shape[0]) for e in self.explicit)
+        v = sum(r.n_verts for r in self.runs) + sum(int(e.counts.sum()) for e in self.explicit)
+        return p, v
+
+    def own_layer_counts(self) -> dict:
+        out: dict = {}
+        for src in list(self.runs) + list(self.explicit):
+            lay, dt = (src.layer[src.keep], src.datatype[src.keep]) if isinstance(src, _Run) else (src.layer,
+                                                                                                    src.datatype)
+            if lay.size == 0:
+                continue
+            key = lay.astype(np.int64) * 65536 + dt.astype(np.int64)
+            u, c = np.unique(key, return_counts=True)
+            for kk, cc in zip(u.tolist(), c.tolist()):
+                pair = (kk // 65536, kk % 65536)
+                out[pair] = out.get(pair, 0) + cc
+        return out
+
+
+@dataclass
+class _Library:
+    path: str
+    fmt: str
+    db_unit_m: float
+    user_unit_m: float
+    cells: dict  # name -> _Cell, in file order
+    buf: object = None  # numpy view of the GDSII bytes (runs decode from it)
+
+
+def _err(path, msg) -> MaskReadError:
+    return MaskReadError(f"{path}: {msg}")
+
+
+# ----------------------------------------------------------------------------------------------------------------
+# GDSII numeric formats
+# ----------------------------------------------------------------------------------------------------------------
+
+def _real8(raw: np.ndarray) -> np.ndarray:
+    """Decode GDSII 8-byte reals (excess-64, base-16; sign bit, 7-bit exponent, 56-bit mantissa).
+
+    ``raw`` has shape (..., 8) uint8.  Value = (-1)^s * (mantissa / 2^56) * 16^(exponent - 64).
+    Source: Calma GDSII Stream Format Manual, Release 6.0 (1987), "Data Types: 8-byte real".
+    """
+    raw = np.ascontiguousarray(raw, dtype=np.uint8)
+    word = raw.view(">u8")[..., 0].astype(np.uint64)
+    sign = np.where((word >> np.uint64(63)) != 0, -1.0, 1.0)
+    expo = ((word >> np.uint64(56)) & np.uint64(0x7F)).astype(np.int64) - 64
+    mant = (word & np.uint64(0x00FFFFFFFFFFFFFF)).astype(np.float64) / float(1 << 56)
+    return sign * mant * np.power(16.0, expo.astype(np.float64))
+
+
+def _int16(raw: np.ndarray) -> np.ndarray:
+    return np.ascontiguousarray(raw, dtype=np.uint8).view(">i2").astype(np.int32)
+
+
+def _ascii(raw: bytes) -> str:
+    return raw.rstrip(b"\0").decode("ascii", errors="replace")
+
+
+# ----------------------------------------------------------------------------------------------------------------
+# GDSII record walk
+# ----------------------------------------------------------------------------------------------------------------
+
+class _Walker:
+    def __init__(self, path: str, mm, buf: np.ndarray, layer_filter, max_elements: int):
+        self.path = path
+        self.max_elements = max_elements
+        self.n_placements = 0
+        self.mm = mm
+        self.buf = buf
+        self.n = buf.shape[0]
+        self.layer_filter = layer_filter
+
+    def header(self, pos: int) -> tuple[int, int, int]:
+        if pos + 4 > self.n:
+            raise _err(self.path, f"truncated file: record header expected at byte {pos}, file has {self.n} bytes")
+        length, rtype, dtype = struct.unpack_from(">HBB", self.mm, pos)
+        if length < 4 or length % 2:
+            raise _err(self.path, f"bad record length {length} at byte {pos} (allowed: even, >= 4)")
+        if pos + length > self.n:
+            raise _err(self.path, f"truncated file: record of {length} bytes at byte {pos} runs past the end "
+                                  f"({self.n} bytes)")
+        if rtype > _MAX_RECORD_TYPE:
+            raise _err(self.path, f"unknown record type 0x{rtype:02X} at byte {pos} (allowed: 0x00..0x3B)")
+        want = _DTYPE.get(rtype)
+        if want is not None and dtype != want:
+            raise _err(self.path, f"record 0x{rtype:02X} at byte {pos} has data type {dtype}, expected {want}")
+        return length, rtype, dtype
+
+    def walk(self) -> _Library:
+        pos = 0
+        length, rtype, _ = self.header(0)
+        if rtype != _HEADER:
+            raise _err(self.path, "not a GDSII stream file (first record is not HEADER)")
+        pos += length
+        db_unit_m = user_unit_m = None
+        cells: dict[str, _Cell] = {}
+        cell: _Cell | None = None
+        while True:
+            length, rtype, _ = self.header(pos)
+            if rtype == _ENDLIB:
+                break
+            if rtype == _UNITS:
+                if length != 20:
+                    raise _err(self.path, f"UNITS record at byte {pos} has length {length}, expected 20")
+                vals = _real8(self.buf[pos + 4:pos + 20].reshape(2, 8))
+                db_in_user, db_m = float(vals[0]), float(vals[1])
+                if not (math.isfinite(db_in_user) and math.isfinite(db_m) and db_in_user > 0 and 0 < db_m < 1):
+                    raise _err(self.path, f"UNITS at byte {pos} invalid: database unit {db_m} m, "
+                                          f"{db_in_user} user units (allowed: positive, database unit < 1 m)")
+                db_unit_m, user_unit_m = db_m, db_m / db_in_user
+                pos += length
+            elif rtype == _BGNSTR:
+                if cell is not None:
+                    raise _err(self.path, f"BGNSTR at byte {pos} inside structure {cell.name!r}")
+                pos += length
+                length, rtype, _ = self.header(pos)
+                if rtype != _STRNAME:
+                    raise _err(self.path, f"expected STRNAME at byte {pos} after BGNSTR")
+                name = _ascii(bytes(self.mm[pos + 4:pos + length]))
+                if name in cells:
+                    raise _err(self.path, f"structure name {name!r} defined twice (second at byte {pos})")
+                if db_unit_m is None:
+                    raise _err(self.path, f"structure {name!r} at byte {pos} comes before the UNITS record")
+                cell = _Cell(name)
+                cells[name] = cell
+                pos += length
+            elif rtype == _ENDSTR:
+                if cell is None:
+                    raise _err(self.path, f"ENDSTR at byte {pos} outside a structure")
+                cell = None
+                pos += length
+            elif rtype in _ELEMENT_STARTS:
+                if cell is None:
+                    raise _err(self.path, f"element record 0x{rtype:02X} at byte {pos} outside a structure")
+                pos = self.element_run(pos, cell)
+            else:
+                pos += length
+        if cell is not None:
+            raise _err(self.path, f"ENDLIB reached inside structure {cell.name!r} (missing ENDSTR)")
+        if db_unit_m is None:
+            raise _err(self.path, "no UNITS record")
+        return _Library(self.path, "GDSII", db_unit_m, user_unit_m, cells, self.buf)
+
+    def element_template(self, pos: int) -> tuple[int, list]:
+        """Walk one element from ``pos`` to its ENDEL; return (size, [(rel_off, length, rtype)])."""
+        recs = []
+        p = pos
+        while True:
+            length, rtype, _ = self.header(p)
+            if p != pos and (rtype in _ELEMENT_STARTS or rtype in (_ENDSTR, _ENDLIB, _BGNSTR)):
+                raise _err(self.path, f"element at byte {pos} not closed by ENDEL before byte {p}")
+            recs.append((p - pos, length, rtype))
+            p += length
+            if rtype == _ENDEL:
+                return p - pos, recs
+
+    def element_run(self, pos: int, cell: _Cell) -> int:
+        size, recs = self.element_template(pos)
+        cols = np.concatenate([np.arange(off, off + 4) for off, _, _ in recs])
+        expect = self.buf[pos + cols]
+        k = 1
+        chunk = 16
+        while True:
+            avail = (self.n - (pos + k * size)) // size
+            m = min(chunk, avail)
+            if m <= 0:
+                break
+            s0 = pos + k * size
+            block = self.buf[s0:s0 + m * size].reshape(m, size)
+            ok = (block[:, cols] == expect).all(axis=1)
+            if ok.all():
+                k += m
+                chunk = min(chunk * 2, _RUN_CHUNK_MAX)
+            else:
+                k += int(np.argmin(ok))
+                break
+        block = self.buf[pos:pos + k * size].reshape(k, size)
+        kind = recs[0][2]
+        byt = {}
+        for off, length, rtype in recs:
+            byt.setdefault(rtype, (off + 4, length - 4))
+        cell.n_elements[kind] = cell.n_elements.get(kind, 0) + k
+        if kind in (_BOUNDARY, _BOX):
+            self.decode_boundary(pos, block, byt, kind, cell)
+        elif kind == _PATH:
+            self.decode_path(pos, block, byt, cell)
+        elif kind in (_SREF, _AREF):
+            self.decode_ref(pos, block, byt, kind, cell)
+        return pos + k * size
+
+    def _need(self, pos, byt, rtype, name, nbytes=None):
+        if rtype not in byt:
+            raise _err(self.path, f"element at byte {pos} lacks its {name} record")
+        off, ln = byt[rtype]
+        if nbytes is not None and ln != nbytes:
+            raise _err(self.path, f"{name} record in element at byte {pos} has {ln} data bytes, expected {nbytes}")
+        return off, ln
+
+    def decode_boundary(self, pos, block, byt, kind, cell):
+        lo, _ = self._need(pos, byt, _LAYER, "LAYER", 2)
+        tname, trec = ("DATATYPE", _DATATYPE) if kind == _BOUNDARY else ("BOXTYPE", _BOXTYPE)
+        do, _ = self._need(pos, byt, trec, tname, 2)
+        xo, xl = self._need(pos, byt, _XY, "XY")
+        if xl % 8 or xl < 8 * 3:
+            raise _err(self.path, f"XY record in element at byte {pos} has {xl} data bytes "
+                                  f"(allowed: a multiple of 8, at least 3 points)")
+        n_xy = xl // 8
+        layer = _int16(block[:, lo:lo + 2])[:, 0]
+        datatype = _int16(block[:, do:do + 2])[:, 0]
+        closed = (block[:, xo:xo + 8] == block[:, xo + xl - 8:xo + xl]).all(axis=1)
+        keep = self.layer_filter(layer, datatype)
+        if kind == _BOX:
+            xy = np.ascontiguousarray(block[:, xo:xo + xl]).view(">i4").astype(np.int64).reshape(-1, n_xy, 2)
+            vmask = np.ones(xy.shape[:2], bool)
+            vmask[closed, -1] = False
+            vmask &= keep[:, None]
+            counts = vmask.sum(axis=1)[keep]
+            cell.explicit.append(_Explicit(layer[keep], datatype[keep], counts, xy[vmask]))
+            return
+        cell.runs.append(_Run(pos, block.shape[1], block.shape[0], xo, n_xy, layer, datatype, closed, keep))
+
+    def decode_path(self, pos, block, byt, cell):
+        lo, _ = self._need(pos, byt, _LAYER, "LAYER", 2)
+        do, _ = self._need(pos, byt, _DATATYPE, "DATATYPE", 2)
+        xo, xl = self._need(pos, byt, _XY, "XY")
+        if xl % 8 or xl < 16:
+            raise _err(self.path, f"XY record of PATH at byte {pos} has {xl} data bytes (allowed: >= 2 points)")
+        k = block.shape[0]
+        layer = _int16(block[:, lo:lo + 2])[:, 0]
+        datatype = _int16(block[:, do:do + 2])[:, 0]
+        keep = self.layer_filter(layer, datatype)
+        if not keep.any():
+            return
+        width = np.zeros(k)
+        if _WIDTH in byt:
+            wo, _ = self._need(pos, byt, _WIDTH, "WIDTH", 4)
+            width = np.abs(np.ascontiguousarray(block[:, wo:wo + 4]).view(">i4")[:, 0].astype(np.float64))
+        ptype = np.zeros(k, np.int32)
+        if _PATHTYPE in byt:
+            po, _ = self._need(pos, byt, _PATHTYPE, "PATHTYPE", 2)
+            ptype = _int16(block[:, po:po + 2])[:, 0]
+        ext = {}
+        for rt, nm in ((_BGNEXTN, "BGNEXTN"), (_ENDEXTN, "ENDEXTN")):
+            ext[rt] = np.zeros(k)
+            if rt in byt:
+                eo, _ = self._need(pos, byt, rt, nm, 4)
+                ext[rt] = np.ascontiguousarray(block[:, eo:eo + 4]).view(">i4")[:, 0].astype(np.float64)
+        xy = np.ascontiguousarray(block[:, xo:xo + xl]).view(">i4").astype(np.float64).reshape(k, -1, 2)
+        cell.explicit.append(_paths_to_polygons(xy[keep], width[keep], ptype[keep], ext[_BGNEXTN][keep],
+                                                ext[_ENDEXTN][keep], layer[keep], datatype[keep]))
+
+    def decode_ref(self, pos, block, byt, kind, cell):
+        so, sl = self._need(pos, byt, _SNAME, "SNAME")
+        xo, xl = self._need(pos, byt, _XY, "XY", 8 if kind == _SREF else 24)
+        k = block.shape[0]
+        refl = np.zeros(k, bool)
+        if _STRANS in byt:
+            to, _ = self._need(pos, byt, _STRANS, "STRANS", 2)
+            refl = (block[:, to] & 0x80) != 0
+        mag = np.ones(k)
+        if _MAG in byt:
+            mo, _ = self._need(pos, byt, _MAG, "MAG", 8)
+            mag = _real8(block[:, mo:mo + 8])
+        ang = np.zeros(k)
+        if _ANGLE in byt:
+            ao, _ = self._need(pos, byt, _ANGLE, "ANGLE", 8)
+            ang = _real8(block[:, ao:ao + 8])
+        if not (np.isfinite(mag).all() and np.isfinite(ang).all() and (mag > 0).all() and (mag < 1e6).all()):
+            raise _err(self.path, f"reference at byte {pos}: MAG/ANGLE not finite or MAG outside (0, 1e6)")
+        xy = np.ascontiguousarray(block[:, xo:xo + xl]).view(">i4").astype(np.float64).reshape(k, -1, 2)
+        c, s = np.cos(np.radians(ang)), np.sin(np.radians(ang))
+        # exact zeros/ones at multiples of 90 degrees keep integer placements exact
+        c = np.where(np.abs(c) < 1e-15, 0.0, c)
+        s = np.where(np.abs(s) < 1e-15, 0.0, s)
+        fy = np.where(refl, -1.0, 1.0)
+        lin = np.stack([c * mag, -s * mag * fy, s * mag, c * mag * fy], axis=1)  # R(angle) @ diag(mag, mag*fy)
+        if kind == _SREF:
+            aff = np.concatenate([lin, xy[:, 0, :]], axis=1)
+            rep = np.ones(k, np.int64)
+        else:
+            co, _ = self._need(pos, byt, _COLROW, "COLROW", 4)
+            colrow = _int16(block[:, co:co + 4])
+            cols, rows = colrow[:, 0].astype(np.int64), colrow[:, 1].astype(np.int64)
+            if (cols < 1).any() or (rows < 1).any():
+                raise _err(self.path, f"AREF at byte {pos}: COLROW must be >= 1 (got {cols.min()}, {rows.min()})")
+            tot = cols * rows
+            self.n_placements += int(tot.sum())
+            if self.n_placements > self.max_elements:
+                raise _err(self.path, f"AREF at byte {pos}: {self.n_placements} array placements exceed the "
+                                      f"limit max_elements={self.max_elements}")
+            rep = tot
+            eidx = np.repeat(np.arange(k), tot)
+            local = np.arange(int(tot.sum())) - np.repeat(np.cumsum(tot) - tot, tot)
+            ci = local % cols[eidx]
+            ri = local // cols[eidx]
+            o, pc, pr = xy[eidx, 0], xy[eidx, 1], xy[eidx, 2]
+            t = (o + (pc - o) * (ci / cols[eidx])[:, None] + (pr - o) * (ri / rows[eidx])[:, None])
+            aff = np.concatenate([lin[eidx], t], axis=1)
+        names_raw = np.ascontiguousarray(block[:, so:so + sl])
+        if k == 1:
+            groups = [(bytes(names_raw[0]), np.ones(aff.shape[0], bool))]
+        else:
+            u, inv = np.unique(names_raw.view(f"V{sl}")[:, 0], return_inverse=True)
+            inv_rep = np.repeat(inv.ravel(), rep)
+            groups = [(bytes(u[g]), inv_rep == g) for g in range(u.shape[0])]
+        for nm, sel in groups:
+            cell.refs.append(_RefGroup(_ascii(nm), aff[sel], pos))
+
+
+def _paths_to_polygons(xy, width, ptype, bext, eext, layer, datatype) -> _Explicit:
+    """Outline GDSII paths: square-cornered (mitred) joins; pathtype 0 flush, 1 round, 2 half-width, 4 custom ends."""
+    import shapely
+
+    k, n = xy.shape[:2]
+    ok = width > 0
+    d0 = xy[:, 1] - xy[:, 0]
+    d1 = xy[:, -1] - xy[:, -2]
+    n0 = d0 / np.maximum(np.hypot(d0[:, 0], d0[:, 1]), 1e-300)[:, None]
+    n1 = d1 / np.maximum(np.hypot(d1[:, 0], d1[:, 1]), 1e-300)[:, None]
+    e0 = np.where(ptype == 2, width / 2, np.where(ptype == 4, bext, 0.0))
+    e1 = np.where(ptype == 2, width / 2, np.where(ptype == 4, eext, 0.0))
+    xy = xy.copy()
+    xy[:, 0] -= n0 * e0[:, None]
+    xy[:, -1] += n1 * e1[:, None]
+    polys_out = []
+    for cap in ("flat", "round"):
+        sel = ok & ((ptype == 1) if cap == "round" else (ptype != 1))
+        if not sel.any():
+            continue
+        lines = shapely.linestrings(xy[sel].reshape(-1, 2), indices=np.repeat(np.arange(int(sel.sum())), n))
+        polys = shapely.buffer(lines, width[sel] / 2, cap_style=cap, join_style="mitre", mitre_limit=10.0)
+        polys_out.append((polys, layer[sel], datatype[sel]))
+    if not polys_out:
+        z = np.zeros(0, np.int32)
+        return _Explicit(z, z, np.zeros(0, np.int64), np.zeros((0, 2), np.int64))
+    polys = np.concatenate([p for p, _, _ in polys_out])
+    lay = np.concatenate([q for _, q, _ in polys_out])
+    dt = np.concatenate([q for _, _, q in polys_out])
+    return _from_shapely(polys, lay, dt)
+
+
+def _from_shapely(polys, layer, datatype) -> _Explicit:
+    import shapely
+
+    parts, idx = shapely.get_parts(polys, return_index=True)
+    parts = shapely.orient_polygons(parts) if hasattr(shapely, "orient_polygons") else parts
+    ring = shapely.get_exterior_ring(parts)
+    coords, ridx = shapely.get_coordinates(ring, return_index=True)
+    counts = np.bincount(ridx, minlength=parts.shape[0]).astype(np.int64)
+    last = np.cumsum(counts) - 1
+    vmask = np.ones(coords.shape[0], bool)
+    vmask[last[counts > 0]] = False
+    return _Explicit(np.asarray(layer)[idx].astype(np.int32), np.asarray(datatype)[idx].astype(np.int32),
+                     np.maximum(counts - 1, 0), np.rint(coords[vmask]).astype(np.int64))
+
+
+# ----------------------------------------------------------------------------------------------------------------
+# OASIS through gdstk
+# ----------------------------------------------------------------------------------------------------------------
+
+def _read_oasis(path: str, layer_filter) -> _Library:
+    import gdstk
+
+    try:
+        lib = gdstk.read_oas(path)
+    except Exception as exc:  # gdstk raises RuntimeError/ValueError on malformed files
+        raise _err(path, f"cannot read OASIS file ({exc})") from exc
+    scale = lib.unit / lib.precision
+    db_unit_m = float(lib.precision)
+    cells: dict[str, _Cell] = {}
+    for c in lib.cells:
+        cell = _Cell(c.name)
+        cells[c.name] = cell
+        pl, pd, pc, pxy = [], [], [], []
+        polys = list(c.polygons)
+        for p in list(c.paths) + list(getattr(c, "robustpaths", [])):
+            polys.extend(p.to_polygons())
+        for p in polys:
+            pts = np.rint(np.asarray(p.points) * scale).astype(np.int64)
+            if not layer_filter(np.array([p.layer]), np.array([p.datatype]))[0]:
+                continue
+            offs = p.repetition.get_offsets() if p.repetition.size > 0 else np.zeros((1, 2))
+            offs = np.rint(np.asarray(offs) * scale).astype(np.int64)
+            m = offs.shape[0]
+            pxy.append((pts[None, :, :] + offs[:, None, :]).reshape(-1, 2))
+            pc.append(np.full(m, pts.shape[0], np.int64))
+            pl.append(np.full(m, p.layer, np.int32))
+            pd.append(np.full(m, p.datatype, np.int32))
+        if pc:
+            cell.explicit.append(_Explicit(np.concatenate(pl), np.concatenate(pd), np.concatenate(pc),
+                                           np.concatenate(pxy)))
+        cell.n_elements[_BOUNDARY] = len(polys)
+        for r in c.references:
+            child = r.cell if isinstance(r.cell, str) else r.cell.name
+            offs = r.repetition.get_offsets() if r.repetition.size > 0 else np.zeros((1, 2))
+            offs = np.asarray(offs, np.float64) * scale
+            ang, mag = float(r.rotation), float(r.magnification)
+            cs, sn = math.cos(ang), math.sin(ang)
+            cs, sn = (0.0 if abs(cs) < 1e-15 else cs), (0.0 if abs(sn) < 1e-15 else sn)
+            fy = -1.0 if r.x_reflection else 1.0
+            lin = np.array([cs * mag, -sn * mag * fy, sn * mag, cs * mag * fy])
+            t = np.asarray(r.origin, np.float64) * scale + offs
+            aff = np.concatenate([np.broadcast_to(lin, (t.shape[0], 4)), t], axis=1)
+            cell.refs.append(_RefGroup(child, aff, 0))
+            cell.n_elements[_SREF] = cell.n_elements.get(_SREF, 0) + 1
+    return _Library(path, "OASIS", db_unit_m, db_unit_m * scale, cells)
+
+
+# ----------------------------------------------------------------------------------------------------------------
+# Hierarchy: checks, counts, flattening
+# ----------------------------------------------------------------------------------------------------------------
+
+def _topology(lib: _Library, cell: str | None, max_depth: int):
+    """Return (tops, order): top cells and all reachable cells in parent-before-child order.
+
+    Raises MaskReadError on undefined references, cycles, or nesting deeper than ``max_depth``.
+    """
+    cells = lib.cells
+    for c in cells.values():
+        for r in c.refs:
+            if r.child not in cells:
+                raise _err(lib.path, f"structure {c.name!r} references undefined structure {r.child!r}")
+    if cell is not None:
+        if cell not in cells:
+            raise _err(lib.path, f"no structure named {cell!r} (available: {', '.join(sorted(cells)[:20])})")
+        tops = [cell]
+    else:
+        referenced = {r.child for c in cells.values() for r in c.refs}
+        tops = [n for n in cells if n not in referenced]
+        if not tops and cells:
+            raise _err(lib.path, "every structure is referenced by another: reference cycle")
+    # iterative DFS: colour 1 = on stack, 2 = done; post-order gives children first
+    colour: dict[str, int] = {}
+    post: list[str] = []
+    for top in tops:
+        if colour.get(top) == 2:
+            continue
+        stack = [(top, 0, iter(sorted({r.child for r in cells[top].refs})))]
+        colour[top] = 1
+        while stack:
+            name, depth, it = stack[-1]
+            child = next(it, None)
+            if child is None:
+                stack.pop()
+                colour[name] = 2
+                post.append(name)
+                continue
+            state = colour.get(child, 0)
+            if state == 1:
+                raise _err(lib.path, f"reference cycle: structure {child!r} contains itself (via {name!r})")
+            if state == 0:
+                if depth + 1 > max_depth:
+                    raise _err(lib.path, f"references nested deeper than {max_depth} levels (at {child!r})")
+                colour[child] = 1
+                stack.append((child, depth + 1, iter(sorted({r.child for r in cells[child].refs}))))
+    return tops, post[::-1]
+
+
+def _flat_sizes(lib: _Library, order: list[str]) -> dict[str, tuple[int, int]]:
+    """Flattened (polygons, vertices) per cell, in exact Python integers (children before parents)."""
+    sizes: dict[str, tuple[int, int]] = {}
+    for name in reversed(order):
+        c = lib.cells[name]
+        p, v = c.own_counts()
+        for r in c.refs:
+            cp, cv = sizes[r.child]
+            p += r.affine.shape[0] * cp
+            v += r.affine.shape[0] * cv
+        sizes[name] = (p, v)
+    return sizes
+
+
+def _compose(parent: np.ndarray, child: np.ndarray) -> np.ndarray:
+    """All compositions parent_i o child_j, shape (m*r, 6): x -> Ap (Ac x + tc) + tp."""
+    pa, pb, pc, pd, px, py = (parent[:, None, i] for i in range(6))
+    ca, cb, cc, cd, cx, cy = (child[None, :, i] for i in range(6))
+    out = np.stack([pa * ca + pb * cc, pa * cb + pb * cd, pc * ca + pd * cc, pc * cb + pd * cd,
+                    pa * cx + pb * cy + px, pc * cx + pd * cy + py], axis=-1)
+    return out.reshape(-1, 6)
+
+
+def _cell_geometry(lib: _Library, c: _Cell):
+    """Decode a cell's own polygons: (layer, datatype, counts, xy) with xy int64."""
+    lays, dts, cnts, xys = [], [], [], []
+    for r in c.runs:
+        for lo in range(0, r.k, _DECODE_CHUNK):
+            hi = min(r.k, lo + _DECODE_CHUNK)
+            lay, dt, cnt, xy = _decode_run(lib.buf, r, lo, hi)
+            lays.append(lay), dts.append(dt), cnts.append(cnt), xys.append(xy)
+    for e in c.explicit:
+        lays.append(e.layer), dts.append(e.datatype), cnts.append(e.counts), xys.append(e.xy)
+    if not lays:
+        z = np.zeros(0, np.int32)
+        return z, z, np.zeros(0, np.int64), np.zeros((0, 2), np.int64)
+    return (np.concatenate(lays), np.concatenate(dts), np.concatenate(cnts).astype(np.int64),
+            np.concatenate(xys))
+
+
+def _decode_run(buf, r: _Run, lo: int, hi: int):
+    block = buf[r.pos + lo * r.size:r.pos + hi * r.size].reshape(hi - lo, r.size)
+    raw = np.ascontiguousarray(block[:, r.xy_off:r.xy_off + 8 * r.n_xy]).view(">i4")
+    xy = raw.reshape(hi - lo, r.n_xy, 2)
+    keep, closed = r.keep[lo:hi], r.closed[lo:hi]
+    if keep.all() and closed.all():
+        out = xy[:, :-1, :].astype(np.int64).reshape(-1, 2)
+        cnt = np.full(hi - lo, r.n_xy - 1, np.int64)
+    else:
+        vmask = np.ones((hi - lo, r.n_xy), bool)
+        vmask[closed, -1] = False
+        vmask &= keep[:, None]
+        out = xy[vmask].astype(np.int64)
+        cnt = vmask.sum(axis=1)[keep].astype(np.int64)
+    return r.layer[lo:hi][keep], r.datatype[lo:hi][keep], cnt, out
+
+
+def _flatten(lib: _Library, cell: str | None, max_elements: int, max_vertices: int, max_depth: int,
+             ) -> FlatPolygons:
+    tops, order = _topology(lib, cell, max_depth)
+    sizes = _flat_sizes(lib, order)
+    total_p = sum(sizes[t][0] for t in tops)
+    total_v = sum(sizes[t][1] for t in tops)
+    if total_p > max_elements:
+        raise _err(lib.path, f"{total_p} polygons after resolving references exceed the limit max_elements="
+                             f"{max_elements}")
+    if total_v > max_vertices:
+        raise _err(lib.path, f"{total_v} vertices after resolving references exceed the limit max_vertices="
+                             f"{max_vertices}")
+    # placements per cell (parents first); instance counts are bounded by the polygon count check only when
+    # cells hold polygons, so count empty-cell instances separately
+    inst: dict[str, list] = {t: [np.array([[1.0, 0.0, 0.0, 1.0, 0.0, 0.0]])] for t in tops}
+    n_inst_total = 0
+    for name in order:
+        if name not in inst:
+            continue
+        parent = np.concatenate(inst[name]) if len(inst[name]) > 1 else inst[name][0]
+        inst[name] = [parent]
+        for r in lib.cells[name].refs:
+            if sizes[r.child][0] == 0:
+                continue
+            n_new = parent.shape[0] * r.affine.shape[0]
+            n_inst_total += n_new
+            if n_inst_total > max_elements:
+                raise _err(lib.path, f"more than {max_elements} reference placements (limit max_elements)")
+            inst.setdefault(r.child, []).append(_compose(parent, r.affine))
+    layer = np.empty(total_p, np.int32)
+    datatype = np.empty(total_p, np.int32)
+    counts = np.empty(total_p, np.int64)
+    xy = np.empty((total_v, 2), np.int64)
+    ip = iv = 0
+    for name in order:
+        if name not in inst:
+            continue
+        c = lib.cells[name]
+        p_own, v_own = c.own_counts()
+        if p_own == 0:
+            continue
+        aff = inst[name][0]
+        ident = aff.shape[0] == 1 and np.array_equal(aff[0], [1.0, 0.0, 0.0, 1.0, 0.0, 0.0])
+        if ident:
+            # stream runs straight into the output, chunk by chunk
+            for r in c.runs:
+                for lo in range(0, r.k, _DECODE_CHUNK):
+                    hi = min(r.k, lo + _DECODE_CHUNK)
+                    lay, dt, cnt, pts = _decode_run(lib.buf, r, lo, hi)
+                    n, m = lay.shape[0], pts.shape[0]
+                    layer[ip:ip + n], datatype[ip:ip + n], counts[ip:ip + n] = lay, dt, cnt
+                    xy[iv:iv + m] = pts
+                    ip, iv = ip + n, iv + m
+            for e in c.explicit:
+                n, m = e.layer.shape[0], e.xy.shape[0]
+                layer[ip:ip + n], datatype[ip:ip + n], counts[ip:ip + n] = e.layer, e.datatype, e.counts
+                xy[iv:iv + m] = e.xy
+                ip, iv = ip + n, iv + m
+            continue
+        lay, dt, cnt, pts = _cell_geometry(lib, c)
+        translate_only = np.all(aff[:, :4] == [1.0, 0.0, 0.0, 1.0]) and np.all(aff[:, 4:] == np.rint(aff[:, 4:]))
+        step = max(1, _DECODE_CHUNK * 4 // max(1, pts.shape[0]))
+        ptsf = pts.astype(np.float64)
+        for lo in range(0, aff.shape[0], step):
+            a = aff[lo:lo + step]
+            m = a.shape[0]
+            if translate_only:
+                out = pts[None, :, :] + a[:, None, 4:].astype(np.int64)
+            else:
+                x = ptsf[None, :, 0]
+                y = ptsf[None, :, 1]
+                out = np.stack([a[:, 0:1] * x + a[:, 1:2] * y + a[:, 4:5],
+                                a[:, 2:3] * x + a[:, 3:4] * y + a[:, 5:6]], axis=-1)
+                out = np.rint(out).astype(np.int64)
+                # a reflection (det < 0) reverses the vertex order; keep it as written (orientation is not used)
+            n = m * lay.shape[0]
+            layer[ip:ip + n] = np.tile(lay, m)
+            datatype[ip:ip + n] = np.tile(dt, m)
+            counts[ip:ip + n] = np.tile(cnt, m)
+            xy[iv:iv + out.shape[0] * out.shape[1]] = out.reshape(-1, 2)
+            ip += n
+            iv += out.shape[0] * out.shape[1]
+    assert ip == total_p and iv == total_v
+    start = np.zeros(total_p + 1, np.int64)
+    np.cumsum(counts, out=start[1:])
+    return FlatPolygons(layer, datatype, start, xy, float(lib.db_unit_m), float(lib.user_unit_m))
+
+
+# ----------------------------------------------------------------------------------------------------------------
+# Public entry points
+# ----------------------------------------------------------------------------------------------------------------
+
+def _make_filter(layers):
+    if layers is None:
+        return lambda lay, dt: np.ones(lay.shape[0], bool)
+    pairs, whole = set(), set()
+    for item in layers:
+        if isinstance(item, (tuple, list)):
+            pairs.add(int(item[0]) * 65536 + int(item[1]))
+        else:
+            whole.add(int(item))
+    pk = np.array(sorted(pairs), np.int64)
+    wk = np.array(sorted(whole), np.int64)
+
+    def keep(lay, dt):
+        lay = np.asarray(lay, np.int64)
+        return np.isin(lay * 65536 + np.asarray(dt, np.int64), pk) | np.isin(lay, wk)
+
+    return keep
+
+
+def _sniff(path: str) -> str:
+    p = Path(path)
+    if not p.exists():
+        raise _err(path, "file not found")
+    if not p.is_file():
+        raise _err(path, "not a regular file")
+    with open(p, "rb") as fh:
+        head = fh.read(16)
+    if head.startswith(b"%SEMI-OASIS"):
+        return "OASIS"
+    if len(head) >= 4 and head[2:4] == b"\x00\x02":
+        return "GDSII"
+    raise _err(path, "not a GDSII or OASIS file (unrecognised first bytes)")
+
+
+def _parse(path, layers=None, max_elements: int = DEFAULT_MAX_ELEMENTS):
+    path = os.fspath(path)
+    fmt = _sniff(path)
+    filt = _make_filter(layers)
+    if fmt == "OASIS":
+        return _read_oasis(path, filt), None
+    size = os.path.getsize(path)
+    fh = open(path, "rb")
+    try:
+        mm = mmap.mmap(fh.fileno(), 0, access=mmap.ACCESS_READ)
+    except (ValueError, OSError) as exc:
+        fh.close()
+        raise _err(path, f"cannot map file ({exc})") from exc
+    fh.close()
+    buf = np.frombuffer(mm, dtype=np.uint8, count=size)
+    return _Walker(path, mm, buf, filt, max_elements).walk(), mm
+
+
+def read_mask(path, *, layers=None, cell: str | None = None, max_elements: int = DEFAULT_MAX_ELEMENTS,
+              max_vertices: int = DEFAULT_MAX_VERTICES, max_depth: int = DEFAULT_MAX_DEPTH) -> FlatPolygons:
+    """Read a GDSII or OASIS mask and return every polygon flattened to database-unit integers.
+
+    Parameters
+    ----------
+    path : str or os.PathLike
+        GDSII stream (``.gds``) or OASIS (``.oas``) file; the format is recognised from the first bytes.
+    layers : iterable of int or (int, int), optional
+        Keep only these layers (an int keeps every datatype of that layer). Default: all.
+    cell : str, optional
+        Flatten this structure. Default: every top structure (one not referenced by another).
+    max_elements, max_vertices, max_depth : int
+        Limits on flattened polygons (and reference placements), flattened vertices and nesting depth; checked
+        before the output is allocated.
+
+    Returns
+    -------
+    FlatPolygons
+
+    Raises
+    ------
+    MaskReadError
+        Unreadable, truncated or malformed file; undefined or cyclic references; limits exceeded.
+
+    Notes
+    -----
+    BOUNDARY and BOX elements become polygons (a repeated closing point is dropped); PATH elements are outlined
+    (width from WIDTH, ends from PATHTYPE 0/1/2/4, mitred joins) and rounded to the database grid; TEXT and NODE
+    carry no area and are skipped.  A placement maps x -> R(angle) * mag * F x + origin with F = diag(1, -1)
+    when STRANS bit 0 (reflection about x) is set; transformed vertices are rounded half-to-even to the grid.
+    AREF element positions are origin + i*(P2-origin)/cols + j*(P3-origin)/rows.
+
+    References
+    ----------
+    Calma GDSII Stream Format Manual, Release 6.0 (1987): record layout, 8-byte real format, AREF/STRANS rules.
+    """
+    lib, mm = _parse(path, layers, max_elements)
+    try:
+        return _flatten(lib, cell, max_elements, max_vertices, max_depth)
+    except MemoryError as exc:
+        raise _err(lib.path, "out of memory while flattening (lower the input size or max_elements)") from exc
+    finally:
+        lib.buf = None
+        if mm is not None:
+            try:
+                mm.close()
+            except BufferError:
+                pass  # a view is still alive; the mapping closes when it is collected
+
+
+def file_sha256(path) -> str:
+    """SHA-256 hex digest of a file, read in 8 MiB chunks."""
+    h = hashlib.sha256()
+    with open(path, "rb") as fh:
+        for chunk in iter(lambda: fh.read(1 << 23), b""):
+            h.update(chunk)
+    return h.hexdigest()
+
+
+_KIND_NAMES = {_BOUNDARY: "boundary", _PATH: "path", _SREF: "sref", _AREF: "aref", _TEXT: "text", _NODE: "node",
+               _BOX: "box"}
+
+
+def mask_info(path, *, max_elements: int = DEFAULT_MAX_ELEMENTS, max_vertices: int = DEFAULT_MAX_VERTICES,
+              max_depth: int = DEFAULT_MAX_DEPTH) -> dict:
+    """Summarise a mask: format, units, structures, layers with flattened polygon counts, bbox, SHA-256.
+
+    Returns
+    -------
+    dict
+        Keys ``path``, ``format``, ``size_bytes``, ``sha256``, ``db_unit_m``, ``user_unit_m``, ``cells`` (list of
+        {name, elements: {kind: count}, references}), ``top_cells``, ``layers`` (list of {layer, datatype,
+        polygons} after flattening), ``polygons``, ``vertices``, ``bbox_db`` ([xmin, ymin, xmax, ymax] or None)
+        and ``bbox_um``.  Lists are sorted, so the dict is deterministic.
+    """
+    path = os.fspath(path)
+    lib, mm = _parse(path, None, max_elements)
+    try:
+        tops, order = _topology(lib, None, max_depth)
+        sizes = _flat_sizes(lib, order)
+        flat = _flatten(lib, None, max_elements, max_vertices, max_depth)
+    finally:
+        lib.buf = None
+        if mm is not None:
+            try:
+                mm.close()
+            except BufferError:
+                pass
+    key = flat.layer.astype(np.int64) * 65536 + flat.datatype
+    u, cnt = np.unique(key, return_counts=True)
+    layers = [{"layer": int(k // 65536), "datatype": int(k % 65536), "polygons": int(c)} for k, c in zip(u, cnt)]
+    if flat.xy_db.shape[0]:
+        lo, hi = flat.xy_db.min(axis=0), flat.xy_db.max(axis=0)
+        bbox = [int(lo[0]), int(lo[1]), int(hi[0]), int(hi[1])]
+    else:
+        bbox = None
+    um = flat.db_unit_m / 1e-6
+    cells = []
+    for name in sorted(lib.cells):
+        c = lib.cells[name]
+        cells.append({"name": name,
+                      "elements": {_KIND_NAMES[k]: int(v) for k, v in sorted(c.n_elements.items())},
+                      "references": sorted({r.child for r in c.refs}),
+                      "flattened_polygons": int(sizes[name][0]) if name in sizes else None})
+    return {
+        "path": path,
+        "format": lib.fmt,
+        "size_bytes": os.path.getsize(path),
+        "sha256": file_sha256(path),
+        "db_unit_m": flat.db_unit_m,
+        "user_unit_m": flat.user_unit_m,
+        "cells": cells,
+        "top_cells": sorted(tops),
+        "layers": layers,
+        "polygons": flat.count,
+        "vertices": int(flat.xy_db.shape[0]),
+        "bbox_db": bbox,
+        "bbox_um": None if bbox is None else [v * um for v in bbox],
+    }

@@ -1,0 +1,71 @@
+"""Shared test helpers: small designs, deterministic hypothesis profile."""
+
+import copy
+import os
+
+import pytest
+from hypothesis import HealthCheck, settings
+
+settings.register_profile("metalay", deadline=None, derandomize=True, max_examples=60,
+                          suppress_health_check=[HealthCheck.too_slow])
+settings.load_profile(os.environ.get("HYPOTHESIS_PROFILE", "metalay"))
+
+SMALL_DESIGN = {
+    "design": {"name": "t-small", "wavelength_nm": 532.0, "input_spin": 1, "library": "tio2-nanofin-532"},
+    "phase": [{"kind": "vortex", "charge": 3}, {"kind": "tilt", "angle_deg": 4.0}],
+    "aperture": {"shape": "circle", "diameter_um": 20.0},
+    "lattice": {"kind": "square", "period_nm": 325.0},
+    "mask": {"formats": ["gds", "oas"]},
+    "checks": {"rules": False, "optics": False},
+}
+
+
+@pytest.fixture
+def small_design_dict():
+    return copy.deepcopy(SMALL_DESIGN)
+
+
+def write_toml(path, data):
+    """Tiny TOML writer for the test designs (tables, arrays of tables, scalars, lists of scalars)."""
+    lines = []
+
+    def scalar(v):
+        if isinstance(v, bool):
+            return "true" if v else "false"
+        if isinstance(v, str):
+            return '"' + v.replace("\\", "\\\\").replace('"', '\\"') + '"'
+        if isinstance(v, list):
+            return "[" + ", ".join(scalar(x) for x in v) + "]"
+        if isinstance(v, dict):
+            return "{" + ", ".join(f"{k} = {scalar(x)}" for k, x in v.items()) + "}"
+        return repr(v)
+
+    def table(prefix, d):
+        simple = {k: v for k, v in d.items() if not isinstance(v, dict) and not (
+            isinstance(v, list) and v and isinstance(v[0], dict))}
+        for k, v in simple.items():
+            lines.append(f"{k} = {scalar(v)}")
+        for k, v in d.items():
+            if isinstance(v, dict):
+                lines.append(f"[{prefix}{k}]")
+                table(f"{prefix}{k}.", v)
+            elif isinstance(v, list) and v and isinstance(v[0], dict):
+                for item in v:
+                    lines.append(f"[[{prefix}{k}]]")
+                    table(f"{prefix}{k}.", item)
+
+    top_simple = {k: v for k, v in data.items() if not isinstance(v, (dict, list))}
+    for k, v in top_simple.items():
+        lines.append(f"{k} = {scalar(v)}")
+    for k, v in data.items():
+        if isinstance(v, dict):
+            lines.append(f"[{k}]")
+            table(f"{k}.", v)
+        elif isinstance(v, list) and v and isinstance(v[0], dict):
+            for item in v:
+                lines.append(f"[[{k}]]")
+                table(f"{k}.", item)
+        elif isinstance(v, list):
+            lines.append(f"{k} = {scalar(v)}")
+    path.write_text("\n".join(lines) + "\n")
+    return path

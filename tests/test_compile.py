@@ -1,0 +1,122 @@
+"""The main job end to end: design file -> GDSII + OASIS + manifest, read back and checked."""
+
+import copy
+import json
+import os
+import subprocess
+import sys
+
+import gdstk
+import numpy as np
+import pytest
+
+from conftest import SMALL_DESIGN, write_toml
+from metalay.compile import compile_design
+from metalay.layout import recovered_rotation
+from metalay.mapping import geometric_rotation, wrap_pi
+from metalay.phase import target_phase
+from metalay.spec import load_design, parse_design
+
+
+def _compile(tmp_path, data, name="out"):
+    design = load_design(write_toml(tmp_path / f"{name}.toml", data))
+    return design, compile_design(design, tmp_path / name, show_progress=False)
+
+
+def _fins_from_gds(path):
+    lib = gdstk.read_gds(str(path))
+    (top,) = lib.top_level()
+    pts = np.array([p.points for p in top.polygons if p.layer == 1 and p.datatype == 0])
+    return np.rint(pts * 1000).astype(np.int64)
+
+
+def test_compile_read_back_every_rotation(tmp_path, small_design_dict):
+    design, res = _compile(tmp_path, small_design_dict)
+    fins = _fins_from_gds(res.files["gds"])
+    assert len(fins) == res.manifest["counts"]["sites"]
+    centres = fins.mean(axis=1)
+    assert np.array_equal(centres, np.rint(centres))  # centrally symmetric fins on whole-nm centres
+    x_um, y_um = centres[:, 0] / 1000, centres[:, 1] / 1000
+    phi = target_phase(design.terms, x_um, y_um, wavelength_nm=design.wavelength_nm, sigma=design.sigma)
+    want = geometric_rotation(phi, design.sigma)
+    got = recovered_rotation(fins - centres[:, None, :].astype(np.int64))
+    err_deg = np.degrees(np.abs(wrap_pi(2 * (got - want))))
+    assert err_deg.max() <= res.manifest["errors"]["worst_snapping_phase_error_deg"] + 1e-5
+    assert err_deg.max() < 0.7  # measured-facts: <= ~0.6 deg of geometric phase for a 250 x 85 nm fin at 1 nm
+    # OASIS holds the same elements
+    oas = gdstk.read_oas(str(res.files["oas"]))
+    n = sum(max(p.repetition.size, 1) for p in oas.top_level()[0].polygons if p.layer == 1)
+    assert n == len(fins)
+    man = json.loads((tmp_path / "out" / "manifest.json").read_text())
+    assert man["files"]["gds"]["sha256"] and man["counts"]["sites"] == len(fins)
+    assert "design aid" in man["caution"]
+
+
+def test_compile_is_deterministic(tmp_path, small_design_dict):
+    design = load_design(write_toml(tmp_path / "d.toml", small_design_dict))
+    a = compile_design(design, tmp_path / "a", show_progress=False)
+    b = compile_design(load_design(tmp_path / "d.toml"), tmp_path / "b", show_progress=False)
+    for key in ("gds", "oas", "manifest"):
+        assert a.files[key].read_bytes() == b.files[key].read_bytes(), key
+
+
+def test_levels_hierarchy_plain_references(tmp_path, small_design_dict):
+    d = copy.deepcopy(small_design_dict)
+    d["mask"].update({"hierarchy": "levels", "rotation_levels": 8})
+    design, res = _compile(tmp_path, d)
+    lib = gdstk.read_gds(str(res.files["gds"]))
+    top = lib.top_level()[0]
+    assert all(r.rotation == 0 and not r.x_reflection for r in top.references)
+    masters = {c.name for c in lib.cells} - {top.name}
+    assert 2 <= len(masters) <= 8
+    flat = top.copy("flat").flatten()
+    assert len([p for p in flat.polygons if p.layer == 1]) == res.manifest["counts"]["sites"]
+    assert res.manifest["errors"]["worst_quantisation_phase_error_deg"] <= 180 / 8 + 1e-9
+
+
+def test_hexagonal_annulus(tmp_path, small_design_dict):
+    d = copy.deepcopy(small_design_dict)
+    d["lattice"] = {"kind": "hexagonal", "period_nm": 340.0}
+    d["aperture"] = {"shape": "annulus", "diameter_um": 20.0, "inner_diameter_um": 6.0}
+    _, res = _compile(tmp_path, d)
+    fins = _fins_from_gds(res.files["gds"])
+    r = np.hypot(*(fins.mean(axis=1) / 1000).T)
+    assert r.min() >= 3.0 and r.max() <= 10.0
+    assert len(fins) == res.manifest["counts"]["sites"]
+
+
+def test_warnings_period_and_aliasing(tmp_path, small_design_dict):
+    # Grating equation (Born & Wolf): orders beyond zero propagate in air when p >= lambda.
+    d = copy.deepcopy(small_design_dict)
+    d["design"]["wavelength_nm"] = 300.0
+    d["phase"] = [{"kind": "lens", "focal_length_um": 5.0}]
+    _, res = _compile(tmp_path, d)
+    text = " | ".join(res.warnings)
+    assert "spurious diffraction orders" in text and "'air'" in text
+    assert "aliased" in text
+    frac = res.manifest["errors"]["aliased_site_fraction"]
+    # independent estimate: |grad phi| = k r / sqrt(r^2 + f^2) > pi / p  <=>  r > r_c
+    k = 2 * np.pi / 0.3
+    p = 0.325
+    s = np.pi / (p * k)
+    r_c = 5.0 * s / np.sqrt(1 - s * s)
+    # Common practice (no source): the sampled fraction approximates the area fraction of the ring r_c < r < R
+    assert frac == pytest.approx(1 - (r_c / 10.0) ** 2, abs=0.05)
+
+
+def test_demo_runs_from_any_directory(tmp_path):
+    env = dict(os.environ)
+    out = tmp_path / "demo"
+    proc = subprocess.run([sys.executable, "-m", "metalay.cli", "demo", "-o", str(out), "--quiet", "--no-checks"],
+                          cwd=tmp_path, capture_output=True, text=True, env=env, timeout=300)
+    assert proc.returncode == 0, proc.stderr
+    names = sorted(p.name for p in out.iterdir())
+    assert names == ["demo-vortex-532.gds", "demo-vortex-532.oas", "manifest.json", "timings.json"]
+    man = json.loads((out / "manifest.json").read_text())
+    assert man["counts"]["sites"] > 600_000
+    assert man["design"]["echo"]["phase"][0] == {"kind": "vortex", "charge": 3}
+
+
+def test_parse_design_in_memory_notebook_use():
+    d = parse_design(copy.deepcopy(SMALL_DESIGN))
+    assert d.sigma == 1 and d.lattice.period_nm == 325.0 and len(d.terms) == 2

@@ -1,0 +1,163 @@
+"""Phase terms and the geometric-phase mapping, checked against published relations."""
+
+import numpy as np
+import pytest
+from hypothesis import given
+from hypothesis import strategies as st
+
+from metalay.lattice import Aperture, Lattice, sample_sites
+from metalay.mapping import assign_cells, geometric_rotation, quantise_rotation, wrap_pi
+from metalay.library import load_library
+from metalay.phase import Axicon, Channel, Lens, Multiplex, QPlate, Tilt, Vortex, target_phase
+
+
+def rot(t):
+    c, s = np.cos(t), np.sin(t)
+    return np.array([[c, s], [-s, c]])  # R(theta) in the design-notes convention J = R(-t) D R(t)
+
+
+def jones_cell(theta, t_long, t_short):
+    return rot(-theta) @ np.diag([t_long, t_short]) @ rot(theta)
+
+
+def spin(sigma):
+    return np.array([1.0, 1j * sigma]) / np.sqrt(2)
+
+
+@pytest.mark.parametrize("sigma", [1, -1])
+@pytest.mark.parametrize("theta", np.linspace(0, np.pi, 7))
+def test_converted_phase_is_twice_sigma_theta(sigma, theta):
+    # Source: Bomzon, Biener, Kleiner, Hasman 2002, Opt. Lett. 27, 1141 (space-variant Pancharatnam-Berry phase:
+    # the cross-polarised output of a rotated retarder carries phase 2*sigma*theta)
+    t_long, t_short = 0.9 * np.exp(0.3j), 0.8 * np.exp(0.3j + 3.0j)
+    out = jones_cell(theta, t_long, t_short) @ spin(sigma)
+    converted = np.vdot(spin(-sigma), out)
+    leaked = np.vdot(spin(sigma), out)
+    expected_conv = (t_long - t_short) / 2 * np.exp(2j * sigma * theta)
+    assert converted == pytest.approx(expected_conv, abs=1e-12)
+    assert leaked == pytest.approx((t_long + t_short) / 2, abs=1e-12)
+
+
+@pytest.mark.parametrize("sigma", [1, -1])
+def test_mapping_writes_target_phase(sigma):
+    # Converted phase 2*sigma*theta with theta = sigma*phi/2 reproduces phi (mod 2 pi). Same source as above.
+    phi = np.linspace(-20, 20, 1001)
+    theta = geometric_rotation(phi, sigma)
+    assert np.all((theta >= 0) & (theta < np.pi))
+    assert np.max(np.abs(wrap_pi(2 * sigma * theta - phi))) < 1e-12
+
+
+@pytest.mark.parametrize("levels", [2, 4, 8, 16, 32])
+def test_quantisation_error_bound(levels):
+    # Common practice (no source): rounding to K levels of pi/K gives at most pi/(2K) of rotation,
+    # i.e. pi/K of geometric phase.
+    theta = np.linspace(0, np.pi, 10001, endpoint=False)
+    tq, lv = quantise_rotation(theta, levels)
+    assert lv.min() >= 0 and lv.max() < levels
+    err = np.abs(wrap_pi(2 * (tq - theta)))
+    assert err.max() <= np.pi / levels + 1e-12
+    assert err.max() > 0.9 * np.pi / levels
+
+
+def winding(phase_on_loop):
+    d = wrap_pi(np.diff(np.concatenate([phase_on_loop, phase_on_loop[:1]])))
+    return d.sum() / (2 * np.pi)
+
+
+@given(charge=st.integers(-12, 12).filter(lambda l: l != 0), r_um=st.floats(3.0, 9.0))
+def test_winding_number_equals_charge(charge, r_um):
+    # Source: definition of topological charge (winding of the phase = 2 pi l), e.g. Allen et al. 1992,
+    # Phys. Rev. A 45, 8185. Sampled on lattice sites of a square ring, as the mask samples it.
+    sites = sample_sites(Aperture("circle", diameter_um=30.0), Lattice("square", 325.0))
+    r = np.hypot(sites.x_um, sites.y_um)
+    ring = np.abs(r - r_um) < 0.2
+    order = np.argsort(np.arctan2(sites.y_um[ring], sites.x_um[ring]))
+    phi = target_phase((Vortex(charge), Tilt(0.5)), sites.x_um[ring][order], sites.y_um[ring][order],
+                       wavelength_nm=532.0)
+    theta = geometric_rotation(phi, 1)
+    written = 2 * theta  # converted-field phase written by the mask (sigma = +1)
+    assert round(winding(written)) == charge
+    assert winding(written) == pytest.approx(charge, abs=1e-9)
+
+
+@pytest.mark.parametrize("q", [0.5, 1.0, 1.5, -1.0, 2.5])
+@pytest.mark.parametrize("sigma", [1, -1])
+def test_qplate_carries_charge_2q(q, sigma):
+    # Source: Marrucci, Manzo, Paparo 2006, Phys. Rev. Lett. 96, 163905 (a q-plate gives OAM 2q per unit of
+    # spin flipped: output charge 2*sigma*q for input spin sigma)
+    ang = np.linspace(-np.pi, np.pi, 721, endpoint=False)
+    x, y = 5 * np.cos(ang), 5 * np.sin(ang)
+    term = QPlate(q, 10.0)
+    phi = target_phase((term,), x, y, wavelength_nm=633.0, sigma=sigma)
+    theta = geometric_rotation(phi, sigma)
+    orient = q * np.arctan2(y, x) + np.deg2rad(10.0)
+    assert np.max(np.abs(wrap_pi(2 * (theta - orient)))) < 1e-9  # the written pattern is the q-plate pattern
+    converted = np.exp(2j * sigma * theta)
+    assert winding(np.angle(converted)) == pytest.approx(2 * sigma * q, abs=1e-9)
+
+
+def test_lens_equal_optical_path():
+    # Source: Aieta et al. 2012, Nano Lett. 12, 4932 (hyperbolic lens phase). Independent check by Fermat's
+    # principle: lens phase + k * (distance to focus) is the same for every point of the aperture.
+    f_um, wl = 500.0, 532.0
+    r = np.linspace(0, 200, 101)
+    phi = target_phase((Lens(f_um),), r, 0 * r, wavelength_nm=wl)
+    k = 2 * np.pi / (wl * 1e-3)
+    total = phi + k * np.hypot(r, f_um)
+    assert np.ptp(total) < 1e-9 * k * f_um
+    # paraxial limit -k r^2 / (2 f) for r << f (Source: Goodman, Introduction to Fourier Optics, thin lens)
+    rs = np.linspace(0, 5, 11)
+    assert target_phase((Lens(f_um),), rs, 0 * rs, wavelength_nm=wl) == pytest.approx(
+        -k * rs ** 2 / (2 * f_um), rel=1e-4, abs=1e-12)
+
+
+@pytest.mark.parametrize("angle_deg,azimuth_deg", [(4.0, 0.0), (10.0, 30.0), (25.0, -120.0)])
+def test_tilt_matches_grating_equation(angle_deg, azimuth_deg):
+    # Source: Born & Wolf, Principles of Optics, grating equation sin(theta) = lambda / Lambda (first order,
+    # normal incidence, in air): the phase advances 2 pi over one carrier period along the azimuth.
+    wl = 532.0
+    period_um = wl * 1e-3 / np.sin(np.deg2rad(angle_deg))
+    az = np.deg2rad(azimuth_deg)
+    s = np.array([0.0, period_um])
+    phi = target_phase((Tilt(angle_deg, azimuth_deg),), s * np.cos(az), s * np.sin(az), wavelength_nm=wl)
+    assert phi[1] - phi[0] == pytest.approx(2 * np.pi, rel=1e-12)
+    perp = target_phase((Tilt(angle_deg, azimuth_deg),), np.array([-np.sin(az)]), np.array([np.cos(az)]),
+                        wavelength_nm=wl)
+    assert perp[0] == pytest.approx(0.0, abs=1e-12)
+
+
+def test_axicon_cone_angle():
+    # Source: McLeod 1954, J. Opt. Soc. Am. 44, 592 (axicon): radial phase gradient k sin(beta).
+    wl, beta = 1064.0, 2.0
+    r = np.array([0.0, 100.0])
+    phi = target_phase((Axicon(beta),), r, 0 * r, wavelength_nm=wl)
+    assert -(phi[1] - phi[0]) / 100.0 == pytest.approx(2 * np.pi / (wl * 1e-3) * np.sin(np.deg2rad(beta)))
+
+
+def test_multiplex_single_channel_is_vortex_plus_tilt():
+    # Argument encoding of one channel is exactly that channel's phase (definition of the encoding).
+    x = np.linspace(-10, 10, 41)[:, None] + 0 * np.linspace(-10, 10, 41)[None, :]
+    y = x.T.copy()
+    m = target_phase((Multiplex((Channel(2, 3.0, 45.0),)),), x, y, wavelength_nm=800.0)
+    ref = target_phase((Vortex(2), Tilt(3.0, 45.0)), x, y, wavelength_nm=800.0)
+    assert np.max(np.abs(wrap_pi(m - ref))) < 1e-9
+
+
+def test_multiplex_two_channels_equal_weight_field():
+    # For two equal-weight channels exp(ia) + exp(ib) the argument is (a + b)/2 (mod pi): closed form.
+    x = np.linspace(1, 9, 9)
+    y = np.linspace(-3, 5, 9)
+    ch = (Channel(1, 2.0, 0.0), Channel(-2, 2.0, 180.0))
+    m = target_phase((Multiplex(ch),), x, y, wavelength_nm=600.0)
+    a = target_phase((Vortex(1), Tilt(2.0, 0.0)), x, y, wavelength_nm=600.0)
+    b = target_phase((Vortex(-2), Tilt(2.0, 180.0)), x, y, wavelength_nm=600.0)
+    assert np.max(np.abs(wrap_pi(2 * m - (a + b)))) < 1e-9
+
+
+def test_assign_cells_geometric_levels():
+    lib = load_library("tio2-nanofin-532")
+    phi = np.linspace(-np.pi, np.pi, 1000)
+    a = assign_cells(phi, lib, sigma=1, rotation_levels=8)
+    assert a.quantisation_error_rad <= np.pi / 8 + 1e-12
+    assert set(np.unique(a.level)) == set(range(8))
+    assert np.all(a.cell_index == 0)
