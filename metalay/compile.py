@@ -7,10 +7,13 @@ which gdstk writes at the end. Then the design-rule check and the quick optical 
 
 from __future__ import annotations
 
+import collections
 import hashlib
 import json
 import math
+import os
 import time
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -20,14 +23,14 @@ from .atomic import atomic_write_text, ensure_dir
 from .cellkinds import is_rotation_invariant, outline_nm
 from .errors import DesignError, MetalayError
 from .lattice import aperture_area_um2, cell_area_um2, row_range, sample_sites
-from .layout import (element_offsets, element_polygons, frame_polygons, group_shapes, recovered_rotation,
+from .layout import (element_offsets, frame_polygons, group_shapes, recovered_rotation,
                      snap_centres, text_polygons)
 from .library import CellLibrary, load_library
 from .mapping import assign_cells, wrap_pi
 from .phase import phase_gradient, target_phase
 from .progress import progress
 from .spec import Design
-from .writer import GdsStream, build_gdstk_flat, build_gdstk_levels, write_gdstk_library
+from .writer import GdsStream, boundary_records, build_gdstk_flat, build_gdstk_levels, write_gdstk_library
 
 __all__ = ["CompileResult", "compile_design", "SAFETY_CAUTION", "design_warnings", "medium_index"]
 
@@ -39,7 +42,7 @@ SAFETY_CAUTION = (
     "licensed professionals where required.")
 
 #: Sites per tile: bounds memory (about 200 bytes per site in flight).
-SITES_PER_TILE = 1_000_000
+SITES_PER_TILE = 250_000
 #: Sites sampled for the aliasing estimate.
 ALIAS_SAMPLES = 200_000
 
@@ -170,97 +173,65 @@ def compile_design(design: Design, out_dir: str | Path, *, show_progress: bool |
     gds_path = out / f"{name}.gds"
     want_gds = "gds" in mask.formats
     stream_gds = want_gds and mask.hierarchy == "flat"
+    need_groups = "oas" in mask.formats or (want_gds and not stream_gds)
+    level_offsets = None
+    if levels:
+        thetas = np.arange(levels) * np.pi / levels
+        level_offsets = [element_offsets(o, thetas, db) for o in outlines]  # (K, V, 2) per cell
+    ctx = _TileContext(design=design, library=library, cell_ids=cell_ids, outlines=outlines,
+                       level_offsets=level_offsets, layer=(s_layer, s_dt), encode_gds=stream_gds,
+                       need_groups=need_groups,
+                       alias_stride=max(1, int(math.ceil(_estimate_sites(design) / ALIAS_SAMPLES))))
+
     n_sites = 0
     per_cell = np.zeros(len(cell_ids), dtype=np.int64)
     worst_snap = 0.0
     quant_err = 0.0
-    shape_table: dict[bytes, int] = {}
+    shape_table: dict = {}
     shape_list: list[tuple[int, np.ndarray]] = []  # (cell slot, offsets (V, 2))
     site_shape: list[np.ndarray] = []
     site_centre: list[np.ndarray] = []
     alias_hits = 0
     alias_total = 0
     alias_r = [math.inf, 0.0]
-    alias_stride = max(1, int(math.ceil(_estimate_sites(design) / ALIAS_SAMPLES)))
-    level_offsets = None
-    if levels:
-        thetas = np.arange(levels) * np.pi / levels
-        level_offsets = [element_offsets(o, thetas, db) for o in outlines]  # (K, V, 2) per cell
 
+    known_hashes: dict[str, str] = {}
     t0 = time.perf_counter()
-    tiles_iter = progress(tiles, desc=f"{name}: tiles", enabled=show_progress, unit="tile")
+    bar = progress(total=len(tiles), desc=f"{name}: tiles", enabled=show_progress, unit="tile")
     stream = GdsStream(gds_path, name, db_unit_nm=db) if stream_gds else None
     try:
         if stream is not None:
             stream.__enter__()
-        for rows in tiles_iter:
-            sites = sample_sites(design.aperture, design.lattice, rows=rows)
-            if len(sites) == 0:
+        for tile in _run_tiles(tiles, ctx):
+            bar.update(1)
+            if tile.n == 0:
                 continue
-            phi = target_phase(design.terms, sites.x_um, sites.y_um, wavelength_nm=design.wavelength_nm,
-                               sigma=design.sigma)
-            a = assign_cells(phi, library, sigma=design.sigma, cell_id=cell_ids[0] if len(cell_ids) == 1 else None,
-                             rotation_levels=levels, wavelength_nm=design.wavelength_nm)
-            quant_err = max(quant_err, a.quantisation_error_rad)
-            centres = snap_centres(sites.x_um, sites.y_um, db)
-            n_sites += len(sites)
-            # aliasing estimate on a deterministic sub-sample
-            sub = slice(0, None, alias_stride)
-            g = phase_gradient(design.terms, sites.x_um[sub], sites.y_um[sub], wavelength_nm=design.wavelength_nm,
-                               sigma=design.sigma, step_um=design.lattice.period_um * 1e-3)
-            hit = g * design.lattice.period_um > np.pi
-            alias_total += hit.size
-            if hit.any():
-                alias_hits += int(hit.sum())
-                r = np.hypot(sites.x_um[sub][hit], sites.y_um[sub][hit])
-                alias_r = [min(alias_r[0], float(r.min())), max(alias_r[1], float(r.max()))]
-            local_cells = np.zeros(len(sites), dtype=np.int64) if len(cell_ids) == 1 else a.cell_index
-            for slot, _cid in enumerate(cell_ids):  # loop over cells (short axis)
-                sel = np.flatnonzero(local_cells == slot) if len(cell_ids) > 1 else slice(None)
-                theta = a.rotation_rad[sel]
-                count = theta.size
-                if count == 0:
-                    continue
-                per_cell[slot] += count
-                if level_offsets is not None:
-                    offsets = level_offsets[slot][a.level[sel]]
-                else:
-                    offsets = element_offsets(outlines[slot], theta, db)
-                cell = library.cells[library.cell_index(cell_ids[slot])]
-                if not is_rotation_invariant(cell):
-                    err = np.abs(wrap_pi(2.0 * (recovered_rotation(offsets) - theta)))
-                    worst_snap = max(worst_snap, float(err.max()))
-                c_sel = centres[sel]
-                if stream is not None:
-                    stream.boundaries(s_layer, s_dt, element_polygons(c_sel, offsets))
-                if levels:
-                    keys = a.level[sel].astype(np.int64)
-                    lut = np.full(levels, -1, dtype=np.int32)
-                    for k in np.unique(keys):  # rotation levels present in this tile (short axis)
-                        tag = (slot, int(k))
-                        if tag not in shape_table:
-                            shape_table[tag] = len(shape_list)
-                            shape_list.append((slot, level_offsets[slot][k]))
-                        lut[k] = shape_table[tag]
-                    gids = lut[keys]
-                else:
-                    groups = group_shapes(offsets)
-                    gmap = np.empty(len(groups.shapes_db), dtype=np.int32)
-                    for u, shp in enumerate(groups.shapes_db):  # distinct shapes (~1e3), not sites
-                        key = (slot, shp.tobytes())
-                        gid = shape_table.get(key)
-                        if gid is None:
-                            gid = shape_table[key] = len(shape_list)
-                            shape_list.append((slot, shp))
-                        gmap[u] = gid
-                    gids = gmap[groups.shape_of_site]
-                site_shape.append(gids)
-                site_centre.append(c_sel.astype(np.int32))
-            del phi, a, centres, sites
+            n_sites += tile.n
+            per_cell += tile.per_cell
+            worst_snap = max(worst_snap, tile.worst_snap)
+            quant_err = max(quant_err, tile.quant_err)
+            alias_hits += tile.alias_hits
+            alias_total += tile.alias_total
+            alias_r = [min(alias_r[0], tile.alias_r[0]), max(alias_r[1], tile.alias_r[1])]
+            if stream is not None:
+                for rec in tile.records:
+                    stream.write_records(rec)
+            for slot, local_keys, local_shapes, shape_idx, centres in tile.groups:
+                gmap = np.empty(len(local_keys), dtype=np.int32)
+                for u, key in enumerate(local_keys):  # distinct shapes or levels (~1e3), not sites
+                    gid = shape_table.get((slot, key))
+                    if gid is None:
+                        gid = shape_table[(slot, key)] = len(shape_list)
+                        shape_list.append((slot, local_shapes[u]))
+                    gmap[u] = gid
+                site_shape.append(gmap[shape_idx])
+                site_centre.append(centres)
+        bar.close()
         extras = _extras(design, library)
         if stream is not None:
             stream.polygons(extras)
             stream.__exit__(None, None, None)
+            known_hashes[gds_path.name] = stream.sha256
             stream = None
     except BaseException as exc:
         if stream is not None:
@@ -340,7 +311,7 @@ def compile_design(design: Design, out_dir: str | Path, *, show_progress: bool |
         "errors": errors,
         "warnings": warnings,
         "checks": checks,
-        "files": {fmt: {"name": p.name, "bytes": p.stat().st_size, "sha256": _sha256(p)}
+        "files": {fmt: {"name": p.name, "bytes": p.stat().st_size, "sha256": known_hashes.get(p.name) or _sha256(p)}
                   for fmt, p in sorted(files.items())},
         "timings_file": "timings.json",
         "caution": SAFETY_CAUTION,
@@ -352,6 +323,103 @@ def compile_design(design: Design, out_dir: str | Path, *, show_progress: bool |
     files["manifest"] = out / "manifest.json"
     summary = _summary(design, library, manifest, files)
     return CompileResult(out, files, manifest, tuple(warnings), tuple(summary), timings)
+
+
+@dataclass(frozen=True)
+class _TileContext:
+    design: Design
+    library: CellLibrary
+    cell_ids: list
+    outlines: list
+    level_offsets: list | None
+    layer: tuple
+    encode_gds: bool
+    need_groups: bool
+    alias_stride: int
+
+
+@dataclass
+class _TileOut:
+    n: int
+    per_cell: np.ndarray
+    records: list
+    groups: list
+    worst_snap: float = 0.0
+    quant_err: float = 0.0
+    alias_hits: int = 0
+    alias_total: int = 0
+    alias_r: tuple = (math.inf, 0.0)
+
+
+def _tile(rows: tuple[int, int], ctx: _TileContext) -> _TileOut:
+    """All per-site work of one tile (a band of lattice rows): a pure function, safe to run in a worker thread."""
+    design, library = ctx.design, ctx.library
+    db = design.mask.db_unit_nm
+    sites = sample_sites(design.aperture, design.lattice, rows=rows)
+    ncell = len(ctx.cell_ids)
+    if len(sites) == 0:
+        return _TileOut(0, np.zeros(ncell, np.int64), [], [])
+    phi = target_phase(design.terms, sites.x_um, sites.y_um, wavelength_nm=design.wavelength_nm, sigma=design.sigma)
+    a = assign_cells(phi, library, sigma=design.sigma, cell_id=ctx.cell_ids[0] if ncell == 1 else None,
+                     rotation_levels=design.mask.rotation_levels, wavelength_nm=design.wavelength_nm)
+    centres = snap_centres(sites.x_um, sites.y_um, db)
+    out = _TileOut(len(sites), np.zeros(ncell, np.int64), [], [], quant_err=a.quantisation_error_rad)
+    # aliasing estimate on a deterministic sub-sample
+    sub = slice(0, None, ctx.alias_stride)
+    g = phase_gradient(design.terms, sites.x_um[sub], sites.y_um[sub], wavelength_nm=design.wavelength_nm,
+                       sigma=design.sigma, step_um=design.lattice.period_um * 1e-3)
+    hit = g * design.lattice.period_um > np.pi
+    out.alias_total = int(hit.size)
+    if hit.any():
+        out.alias_hits = int(hit.sum())
+        r = np.hypot(sites.x_um[sub][hit], sites.y_um[sub][hit])
+        out.alias_r = (float(r.min()), float(r.max()))
+    for slot, cid in enumerate(ctx.cell_ids):  # loop over cells (short axis)
+        sel = np.flatnonzero(a.cell_index == slot) if ncell > 1 else slice(None)
+        theta = a.rotation_rad[sel]
+        if theta.size == 0:
+            continue
+        out.per_cell[slot] = theta.size
+        if ctx.level_offsets is not None:
+            offsets = ctx.level_offsets[slot][a.level[sel]]
+        else:
+            offsets = element_offsets(ctx.outlines[slot], theta, db)
+        if not is_rotation_invariant(library.cells[library.cell_index(cid)]):
+            err = np.abs(wrap_pi(2.0 * (recovered_rotation(offsets) - theta)))
+            out.worst_snap = max(out.worst_snap, float(err.max()))
+        c_sel = centres[sel]
+        if ctx.encode_gds:
+            out.records.append(boundary_records(*ctx.layer, centres_db=c_sel, offsets_db=offsets))
+        if ctx.need_groups:
+            if ctx.level_offsets is not None:
+                levels_here, idx = np.unique(a.level[sel], return_inverse=True)
+                keys = [int(k) for k in levels_here]
+                shapes = [ctx.level_offsets[slot][k] for k in keys]
+            else:
+                groups = group_shapes(offsets)
+                keys = [shp.tobytes() for shp in groups.shapes_db]
+                shapes = list(groups.shapes_db)
+                idx = groups.shape_of_site
+            out.groups.append((slot, keys, shapes, idx.ravel(), c_sel.astype(np.int32)))
+    return out
+
+
+def _run_tiles(tiles, ctx: _TileContext):
+    """Yield tile results in order, computing up to ``workers`` tiles ahead in threads (bounded memory)."""
+    workers = max(1, min(2, os.cpu_count() or 1))
+    if workers == 1 or len(tiles) == 1:
+        for rows in tiles:
+            yield _tile(rows, ctx)
+        return
+    with ThreadPoolExecutor(max_workers=workers) as pool:
+        pending = collections.deque()
+        it = iter(tiles)
+        for rows in it:
+            pending.append(pool.submit(_tile, rows, ctx))
+            if len(pending) > workers:
+                yield pending.popleft().result()
+        while pending:
+            yield pending.popleft().result()
 
 
 def library_cells(library: CellLibrary, cell_ids: list[str]) -> list[str]:

@@ -127,6 +127,28 @@ def row_range(aperture: Aperture, lattice: Lattice) -> tuple[int, int]:
     return -jmax, jmax + 1
 
 
+def _row_intervals(aperture: Aperture, lattice: Lattice, y_um: np.ndarray):
+    """Per row, the exact interval [x_lo, x_hi] of centres whose whole cell lies inside a convex aperture.
+
+    For a convex aperture and a convex cell, the cell is inside exactly when all its vertices are; for each vertex
+    the allowed centres of a row form an interval, and the row's interval is their intersection.
+    """
+    lo = np.full(y_um.shape, -np.inf)
+    hi = np.full(y_um.shape, np.inf)
+    for vx, vy in cell_vertices_um(lattice):  # 4 or 6 vertices
+        yy = y_um + vy
+        if aperture.shape in ("circle", "annulus"):
+            r = aperture.diameter_um / 2
+            half = np.sqrt(np.maximum(r * r - yy * yy, 0.0)) * (1 + 1e-12)
+            half = np.where(np.abs(yy) <= r * (1 + 1e-12), half, -np.inf)
+        else:
+            hx, hy = aperture.half_extent_um
+            half = np.where(np.abs(yy) <= hy * (1 + 1e-12), hx * (1 + 1e-12), -np.inf)
+        lo = np.maximum(lo, -half - vx)
+        hi = np.minimum(hi, half - vx)
+    return lo, hi
+
+
 def sample_sites(aperture: Aperture, lattice: Lattice, *, rows: tuple[int, int] | None = None) -> Sites:
     """Site centres of whole cells inside ``aperture``, ordered by row then by x.
 
@@ -146,24 +168,26 @@ def sample_sites(aperture: Aperture, lattice: Lattice, *, rows: tuple[int, int] 
     p = lattice.period_um
     y = j * lattice.row_pitch_um
     shift = np.where(j % 2 != 0, 0.5, 0.0) if lattice.kind == "hexagonal" else np.zeros(j.size)
-    hx = aperture.half_extent_um[0]
-    imin = np.floor(-hx / p - shift).astype(np.int64) - 1
-    imax = np.ceil(hx / p - shift).astype(np.int64) + 1
+    x_lo, x_hi = _row_intervals(aperture, lattice, y)
+    ok = x_hi >= x_lo
+    imin = np.where(ok, np.ceil(np.where(ok, x_lo, 0) / p - shift - 1e-9), 0).astype(np.int64)
+    imax = np.where(ok, np.floor(np.where(ok, x_hi, 0) / p - shift + 1e-9), -1).astype(np.int64)
     counts = np.maximum(imax - imin + 1, 0)
     total = int(counts.sum())
     if total == 0:
         empty = np.zeros(0)
         return Sites(empty, empty.copy(), np.zeros(0, np.int64), np.zeros(0, np.int64))
     row_of = np.repeat(np.arange(j.size), counts)
-    first = np.repeat(np.cumsum(counts) - counts, counts)
-    ii = imin[row_of] + (np.arange(total) - first)
+    ii = np.arange(total, dtype=np.int64) + np.repeat(imin - (np.cumsum(counts) - counts), counts)
     jj = j[row_of]
     xs = (ii + shift[row_of]) * p
     ys = y[row_of]
-    keep = _clear_of_hole(aperture, lattice, xs, ys)
-    for vx, vy in cell_vertices_um(lattice):  # loop over the cell's 4 or 6 vertices
-        keep &= _inside_outer(aperture, xs + vx, ys + vy)
-    return Sites(xs[keep], ys[keep], ii[keep], jj[keep])
+    if aperture.shape == "annulus":
+        keep = _clear_of_hole(aperture, lattice, xs, ys)
+        for vx, vy in cell_vertices_um(lattice):
+            keep &= _inside_outer(aperture, xs + vx, ys + vy)
+        return Sites(xs[keep], ys[keep], ii[keep], jj[keep])
+    return Sites(xs, ys, ii, jj)
 
 
 def site_count(aperture: Aperture, lattice: Lattice, *, rows_per_tile: int = 512) -> int:

@@ -43,13 +43,24 @@ def element_offsets(outline_nm: np.ndarray, rotation_rad, db_unit_nm: float) -> 
     db_unit_nm : float
         Database unit in nm.
     """
-    c = np.cos(rotation_rad)[:, None]
-    s = np.sin(rotation_rad)[:, None]
-    ox = outline_nm[:, 0][None, :] / db_unit_nm
-    oy = outline_nm[:, 1][None, :] / db_unit_nm
-    out = np.empty((c.shape[0], outline_nm.shape[0], 2), dtype=np.int32)
-    out[:, :, 0] = np.rint(c * ox - s * oy)
-    out[:, :, 1] = np.rint(s * ox + c * oy)
+    nv = outline_nm.shape[0]
+    symmetric = nv % 2 == 0 and np.array_equal(outline_nm[nv // 2:], -outline_nm[:nv // 2])
+    k = nv // 2 if symmetric else nv
+    c = np.cos(rotation_rad)
+    s = np.sin(rotation_rad)
+    n = c.shape[0]
+    flat = np.empty((2 * k, n), dtype=np.float64)  # rows: x0, y0, x1, y1, ... (contiguous per vertex)
+    for v in range(k):  # loop over the outline's vertices (a short axis), vectorised over sites
+        ox, oy = outline_nm[v] / db_unit_nm
+        np.multiply(c, ox, out=flat[2 * v])
+        flat[2 * v] -= s * oy
+        np.multiply(s, ox, out=flat[2 * v + 1])
+        flat[2 * v + 1] += c * oy
+    np.rint(flat, out=flat)
+    out = np.empty((n, nv, 2), dtype=np.int32)
+    out[:, :k, :] = flat.T.reshape(n, k, 2)
+    if symmetric:  # rint is odd-symmetric, so the opposite vertices are exact negatives
+        np.negative(out[:, :k], out=out[:, k:])
     return out
 
 
@@ -64,14 +75,13 @@ def recovered_rotation(offsets_db: np.ndarray) -> np.ndarray:
     For 4-vertex outlines in the order of :func:`metalay.cellkinds.outline_nm` the long axis is
     ``(v0 + v3) - (v1 + v2)``; for other outlines the principal axis of the vertex second moments.
     """
+    if offsets_db.shape[1] == 4:
+        ax = (offsets_db[:, 0] + offsets_db[:, 3] - offsets_db[:, 1] - offsets_db[:, 2]).astype(np.float64)
+        return np.mod(np.arctan2(ax[:, 1], ax[:, 0]), np.pi)
     v = offsets_db.astype(np.float64)
-    if v.shape[1] == 4:
-        ax = v[:, 0] + v[:, 3] - v[:, 1] - v[:, 2]
-        ang = np.arctan2(ax[:, 1], ax[:, 0])
-    else:
-        vx = v[:, :, 0] - v[:, :, 0].mean(axis=1, keepdims=True)
-        vy = v[:, :, 1] - v[:, :, 1].mean(axis=1, keepdims=True)
-        ang = 0.5 * np.arctan2(2 * (vx * vy).sum(axis=1), (vx * vx - vy * vy).sum(axis=1))
+    vx = v[:, :, 0] - v[:, :, 0].mean(axis=1, keepdims=True)
+    vy = v[:, :, 1] - v[:, :, 1].mean(axis=1, keepdims=True)
+    ang = 0.5 * np.arctan2(2 * (vx * vy).sum(axis=1), (vx * vx - vy * vy).sum(axis=1))
     return np.mod(ang, np.pi)
 
 

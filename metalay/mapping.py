@@ -43,7 +43,7 @@ class Assignment:
 
 def wrap_pi(a):
     """Wrap angles to (-pi, pi]."""
-    return np.angle(np.exp(1j * np.asarray(a)))
+    return np.pi - np.mod(np.pi - np.asarray(a, dtype=np.float64), 2 * np.pi)
 
 
 def geometric_rotation(phi_rad, sigma: int) -> np.ndarray:

@@ -213,7 +213,7 @@ def ellipse_pattern(major_nm, minor_nm, eps_inside, eps_outside, period_x_nm: fl
     ye = np.concatenate([np.full((b, 1), -period_y_nm / 2), ys, np.full((b, 1), period_y_nm / 2)], axis=1)
     # x edges: union of the distinct slab half-lengths (slab k and 2n-1-k are equal by symmetry)
     hl = half_len[:, :n]                                          # increasing towards the centre
-    xs = np.concatenate([-hl, hl[:, ::-1]], axis=1)               # 2n increasing edges
+    xs = np.concatenate([-hl[:, ::-1], hl], axis=1)               # 2n increasing edges
     xe = np.concatenate([np.full((b, 1), -period_x_nm / 2), xs, np.full((b, 1), period_x_nm / 2)], axis=1)
     ni, nj = xe.shape[1] - 1, ye.shape[1] - 1                     # 2n+1 columns, 2n+2 rows
     xc = 0.5 * (xe[:, 1:] + xe[:, :-1])                           # (B, I)

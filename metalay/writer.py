@@ -23,6 +23,7 @@ Calma Company, GDSII Stream Format Manual, Release 6.0 (1987): record layout, 8-
 from __future__ import annotations
 
 import datetime
+import hashlib
 import struct
 from pathlib import Path
 
@@ -32,7 +33,7 @@ from .atomic import atomic_path
 from .errors import OutputError
 from .layout import Polygon
 
-__all__ = ["GdsStream", "gds_real8", "write_gdstk_library", "build_gdstk_flat", "build_gdstk_levels",
+__all__ = ["GdsStream", "boundary_records", "gds_real8", "write_gdstk_library", "build_gdstk_flat", "build_gdstk_levels",
            "FIXED_TIMESTAMP", "MAX_GDS_VERTICES"]
 
 FIXED_TIMESTAMP = datetime.datetime(1970, 1, 1, 0, 0, 0)
@@ -100,8 +101,14 @@ class GdsStream:
         self.cell_name = cell_name
         self.db_unit_nm = db_unit_nm
         self.element_count = 0
+        self.sha256 = None  # hex digest of the whole file, set when the block ends
+        self._hash = hashlib.sha256()
         self._ctx = None
         self._fh = None
+
+    def _write(self, data) -> None:
+        self._fh.write(data)
+        self._hash.update(data)
 
     def __enter__(self):
         self._ctx = atomic_path(self.path)
@@ -112,34 +119,19 @@ class GdsStream:
         head = (_record(_HEADER, struct.pack(">h", 600)) + _record(_BGNLIB, _date_payload())
                 + _string(_LIBNAME, "METALAY") + _record(_UNITS, gds_real8(db_in_user) + gds_real8(db_in_m))
                 + _record(_BGNSTR, _date_payload()) + _string(_STRNAME, self.cell_name))
-        self._fh.write(head)
+        self._write(head)
         return self
 
     def boundaries(self, layer: int, datatype: int, vertices_db: np.ndarray) -> None:
         """Write ``vertices_db`` (N, V, 2) integer coordinates as N BOUNDARY elements (closing point added)."""
-        n, nv, _ = vertices_db.shape
-        if n == 0:
+        self.write_records(boundary_records(layer, datatype, vertices_db, where=str(self.path)))
+
+    def write_records(self, records: np.ndarray | None) -> None:
+        """Write records made by :func:`boundary_records` (one row per element)."""
+        if records is None or len(records) == 0:
             return
-        if nv > MAX_GDS_VERTICES:
-            raise OutputError(f"{self.path}: polygon with {nv} vertices exceeds the GDSII limit of "
-                              f"{MAX_GDS_VERTICES}")
-        lo, hi = vertices_db.min(), vertices_db.max()
-        if lo < -(2 ** 31) or hi >= 2 ** 31:
-            raise OutputError(f"{self.path}: coordinates exceed the 32-bit range of GDSII at this database unit")
-        nxy = 2 * (nv + 1)
-        words = 1 + 3 + 1 + nxy + 1
-        rec = np.empty((n, words), dtype=">i4")
-        rec[:, 0] = (4 << 16) | _BOUNDARY
-        rec[:, 1] = (6 << 16) | _LAYER
-        rec[:, 2] = ((layer & 0xFFFF) << 16) | 6
-        rec[:, 3] = (_DATATYPE << 16) | (datatype & 0xFFFF)
-        rec[:, 4] = ((4 + 4 * nxy) << 16) | _XY
-        xy = rec[:, 5:5 + nxy].reshape(n, nv + 1, 2)
-        xy[:, :nv, :] = vertices_db
-        xy[:, nv, :] = vertices_db[:, 0, :]
-        rec[:, 5 + nxy] = (4 << 16) | _ENDEL
-        rec.tofile(self._fh)
-        self.element_count += n
+        self._write(memoryview(np.ascontiguousarray(records)).cast("B"))
+        self.element_count += len(records)
 
     def polygons(self, polys: list[Polygon]) -> None:
         """Write a few individual polygons (frame, label, marks)."""
@@ -149,10 +141,47 @@ class GdsStream:
     def __exit__(self, exc_type, exc, tb):
         try:
             if exc_type is None:
-                self._fh.write(_record(_ENDSTR) + _record(_ENDLIB))
+                self._write(_record(_ENDSTR) + _record(_ENDLIB))
+                self.sha256 = self._hash.hexdigest()
             self._fh.close()
         finally:
             return self._ctx.__exit__(exc_type, exc, tb)
+
+
+def boundary_records(layer: int, datatype: int, vertices_db: np.ndarray | None = None, *,
+                     centres_db: np.ndarray | None = None, offsets_db: np.ndarray | None = None,
+                     where: str = "GDSII") -> np.ndarray:
+    """GDSII BOUNDARY records for N polygons of V vertices, as an (N, words) big-endian int32 array.
+
+    Give either absolute ``vertices_db`` (N, V, 2) or ``centres_db`` (N, 2) plus ``offsets_db`` (N, V, 2).
+    Each row is BOUNDARY, LAYER, DATATYPE, XY (V + 1 points, closed), ENDEL: 64 bytes for a 4-vertex element.
+    Pure function of its inputs, so tiles can be encoded in worker threads.
+    """
+    if vertices_db is None:
+        n, nv, _ = offsets_db.shape
+        lo = centres_db.min(initial=0) + offsets_db.min(initial=0)
+        hi = centres_db.max(initial=0) + offsets_db.max(initial=0)
+    else:
+        n, nv, _ = vertices_db.shape
+        lo, hi = vertices_db.min(initial=0), vertices_db.max(initial=0)
+    if nv > MAX_GDS_VERTICES:
+        raise OutputError(f"{where}: polygon with {nv} vertices exceeds the GDSII limit of {MAX_GDS_VERTICES}")
+    if lo < -(2 ** 31) or hi >= 2 ** 31:
+        raise OutputError(f"{where}: coordinates exceed the 32-bit range of GDSII at this database unit")
+    nxy = 2 * (nv + 1)
+    words = 1 + 3 + 1 + nxy + 1
+    head = np.array([(4 << 16) | _BOUNDARY, (6 << 16) | _LAYER, ((layer & 0xFFFF) << 16) | 6,
+                     (_DATATYPE << 16) | (datatype & 0xFFFF), ((4 + 4 * nxy) << 16) | _XY], dtype=np.uint32)
+    rec = np.empty((n, words), dtype=np.int32)  # native order, swapped once at the end
+    rec[:, :5] = head.view(np.int32)
+    xy = rec[:, 5:5 + nxy].reshape(n, nv + 1, 2)
+    if vertices_db is None:
+        np.add(centres_db[:, None, :], offsets_db, out=xy[:, :nv, :], casting="unsafe")
+    else:
+        xy[:, :nv, :] = vertices_db
+    xy[:, nv, :] = xy[:, 0, :]
+    rec[:, 5 + nxy] = (4 << 16) | _ENDEL
+    return rec.byteswap(inplace=True).view(">i4") if np.little_endian else rec.view(">i4")
 
 
 def _gdstk():
