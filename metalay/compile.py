@@ -14,7 +14,7 @@ import math
 import os
 import time
 from concurrent.futures import ThreadPoolExecutor
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from pathlib import Path
 
 import numpy as np
@@ -30,7 +30,11 @@ from .mapping import assign_cells, wrap_pi
 from .phase import phase_gradient, target_phase
 from .progress import progress
 from .spec import Design
-from .writer import GdsStream, boundary_records, build_gdstk_flat, build_gdstk_levels, write_gdstk_library
+from .process import (WriteFieldGrid, alignment_marks, aperture_region_db, bias_outline_nm, check_marks_clear,
+                      complement_bands, complement_tile, default_mark_positions_um, dose_datatype_lut,
+                      fit_write_fields, frame_region_db, pieces_by_vertex_count, shift_phase_error_rad)
+from .writer import (GdsStream, add_polygons, boundary_records, build_gdstk_flat, build_gdstk_levels,
+                     write_gdstk_library)
 
 __all__ = ["CompileResult", "compile_design", "SAFETY_CAUTION", "design_warnings", "medium_index"]
 
@@ -45,6 +49,8 @@ SAFETY_CAUTION = (
 SITES_PER_TILE = 250_000
 #: Sites sampled for the aliasing estimate.
 ALIAS_SAMPLES = 200_000
+#: Every n-th band of a tone inversion is verified by an exact XOR against the intended region.
+COMPLEMENT_VERIFY_EVERY = 16
 
 
 @dataclass(frozen=True)
@@ -68,8 +74,8 @@ def medium_index(name: str, wavelength_nm: float) -> float | None:
     except ImportError:  # pragma: no cover - materials module is part of the package
         return None
     try:
-        n = materials.refractive_index(name, wavelength_nm)
-    except (MetalayError, AttributeError, KeyError, ValueError):
+        n = materials.get_material(name).index(wavelength_nm)
+    except MetalayError:
         return None
     return float(np.real(n))
 
@@ -160,9 +166,22 @@ def compile_design(design: Design, out_dir: str | Path, *, show_progress: bool |
         if mask.hierarchy == "levels":
             raise DesignError(f"{design.source_path}: key 'mask.hierarchy' = 'levels': only for geometric-phase "
                               "libraries (allowed here: 'flat')")
-    outlines = [outline_nm(library.cells[library.cell_index(c)]) for c in library_cells(library, cell_ids)]
+    outlines = [bias_outline_nm(outline_nm(library.cells[library.cell_index(c)]), mask.bias_nm,
+                                corner=mask.bias_corners, where=design.source_path)
+                for c in library_cells(library, cell_ids)]
     levels = mask.rotation_levels
     s_layer, s_dt = mask.layer("structures")
+    classes = list(cell_ids) + ["complement", "frame", "label", "marks"]
+    dose = dict(mask.dose_datatypes)
+    lut = dose_datatype_lut(classes, dose, s_dt, where=design.source_path)
+    for purpose in ("frame", "label", "marks"):  # purposes keep their own datatype unless a dose one is set
+        if purpose not in dose:
+            lut[classes.index(purpose)] = mask.layer(purpose)[1]
+    grid = None
+    if mask.write_field is not None:
+        wf = mask.write_field
+        grid = WriteFieldGrid.from_um(wf.size_um, wf.origin_um, db_unit_nm=db)
+    complement = mask.tone == "complement"
 
     j0, j1 = row_range(design.aperture, design.lattice)
     sites_per_row = max(1.0, 2 * design.aperture.half_extent_um[0] / design.lattice.period_um)
@@ -178,10 +197,29 @@ def compile_design(design: Design, out_dir: str | Path, *, show_progress: bool |
     if levels:
         thetas = np.arange(levels) * np.pi / levels
         level_offsets = [element_offsets(o, thetas, db) for o in outlines]  # (K, V, 2) per cell
+    min_gap_db = float(library.rules.get("min_gap_nm", 0.0)) / db
     ctx = _TileContext(design=design, library=library, cell_ids=cell_ids, outlines=outlines,
-                       level_offsets=level_offsets, layer=(s_layer, s_dt), encode_gds=stream_gds,
-                       need_groups=need_groups,
-                       alias_stride=max(1, int(math.ceil(_estimate_sites(design) / ALIAS_SAMPLES))))
+                       level_offsets=level_offsets, layer=s_layer, datatypes=tuple(int(v) for v in lut),
+                       encode_gds=stream_gds and not complement, need_groups=need_groups and not complement,
+                       alias_stride=max(1, int(math.ceil(_estimate_sites(design) / ALIAS_SAMPLES))),
+                       grid=grid, min_gap_db=min_gap_db)
+    bands = None
+    if complement:
+        region = (aperture_region_db(design.aperture, db_unit_nm=db) if mask.complement_region == "aperture"
+                  else frame_region_db(design.aperture, margin_um=mask.frame_margin_um, db_unit_nm=db))
+        reach_nm = max(float(np.hypot(*o.T).max()) for o in outlines) + 2 * db
+        if grid is not None:
+            reach_nm += mask.write_field.max_shift_nm
+        bands = complement_bands(region, design.lattice, design.aperture, db_unit_nm=db, reach_nm=reach_nm,
+                                 rows_per_band=mask.complement_band_rows, field=grid)
+        ctx = replace(ctx, region=region)
+        tiles = [(b.rows, b.box_db, k % COMPLEMENT_VERIFY_EVERY == 0) for k, b in enumerate(bands)]
+    wf_counts = {"straddling": 0, "shifted": 0, "dropped": 0, "kept_straddling": 0}
+    worst_shift_nm = 0.0
+    worst_shift_phase = 0.0
+    comp_stats = {"polygons": 0, "max_vertices": 0, "area_db2": 0.0, "target_area_db2": 0.0, "xor_db2": 0.0,
+                  "xor_bound_db2": 0.0, "bands_verified": 0}
+    comp_pieces: list[tuple[int, np.ndarray]] = []
 
     n_sites = 0
     per_cell = np.zeros(len(cell_ids), dtype=np.int64)
@@ -202,9 +240,9 @@ def compile_design(design: Design, out_dir: str | Path, *, show_progress: bool |
     try:
         if stream is not None:
             stream.__enter__()
-        for tile in _run_tiles(tiles, ctx):
+        for tile in _run_tiles(tiles, ctx, _complement_tile if complement else _tile):
             bar.update(1)
-            if tile.n == 0:
+            if tile.n == 0 and tile.complement is None:
                 continue
             n_sites += tile.n
             per_cell += tile.per_cell
@@ -213,9 +251,28 @@ def compile_design(design: Design, out_dir: str | Path, *, show_progress: bool |
             alias_hits += tile.alias_hits
             alias_total += tile.alias_total
             alias_r = [min(alias_r[0], tile.alias_r[0]), max(alias_r[1], tile.alias_r[1])]
+            for k, v in tile.wf_counts.items():
+                wf_counts[k] += v
+            worst_shift_nm = max(worst_shift_nm, tile.worst_shift_nm)
+            worst_shift_phase = max(worst_shift_phase, tile.worst_shift_phase)
             if stream is not None:
                 for rec in tile.records:
                     stream.write_records(rec)
+            if tile.complement is not None:
+                ct = tile.complement
+                comp_stats["polygons"] += ct.count
+                comp_stats["max_vertices"] = max(comp_stats["max_vertices"], int(ct.max_vertices))
+                comp_stats["area_db2"] += float(ct.area_db2)
+                comp_stats["target_area_db2"] += float(ct.target_area_db2)
+                if ct.xor_area_db2 is not None and np.isfinite(ct.xor_area_db2):
+                    comp_stats["xor_db2"] += float(ct.xor_area_db2)
+                    comp_stats["xor_bound_db2"] += float(ct.xor_bound_db2)
+                    comp_stats["bands_verified"] += 1
+                for nv, verts in pieces_by_vertex_count(ct):
+                    if stream is not None:
+                        stream.boundaries(s_layer, int(lut[classes.index("complement")]), verts)
+                    if "oas" in mask.formats:
+                        comp_pieces.append((nv, verts))
             for slot, local_keys, local_shapes, shape_idx, centres in tile.groups:
                 gmap = np.empty(len(local_keys), dtype=np.int32)
                 for u, key in enumerate(local_keys):  # distinct shapes or levels (~1e3), not sites
@@ -227,7 +284,7 @@ def compile_design(design: Design, out_dir: str | Path, *, show_progress: bool |
                 site_shape.append(gmap[shape_idx])
                 site_centre.append(centres)
         bar.close()
-        extras = _extras(design, library)
+        extras = _extras(design, library, lut, classes)
         if stream is not None:
             stream.polygons(extras)
             stream.__exit__(None, None, None)
@@ -248,22 +305,27 @@ def compile_design(design: Design, out_dir: str | Path, *, show_progress: bool |
     gk_formats = [f for f in mask.formats if f == "oas" or (f == "gds" and not stream_gds)]
     if gk_formats:
         t0 = time.perf_counter()
-        shape_of_site = np.concatenate(site_shape)
-        centres_all = np.concatenate(site_centre)
-        del site_shape, site_centre
-        order = np.argsort(shape_of_site, kind="stable")
-        bounds = np.searchsorted(shape_of_site[order], np.arange(len(shape_list) + 1))
-        lib = None
-        if mask.hierarchy == "levels":
-            lib = build_gdstk_levels(
-                name, [(s_layer, s_dt, shp) for _, shp in shape_list],
-                [centres_all[order[bounds[g]:bounds[g + 1]]].astype(np.int64) for g in range(len(shape_list))],
-                extras, db_unit_nm=db)
+        if complement:
+            lib = build_gdstk_flat(name, [], extras, db_unit_nm=db)
+            add_polygons(lib, name, s_layer, int(lut[classes.index("complement")]), [v for _, v in comp_pieces],
+                         db_unit_nm=db)
+            del comp_pieces
         else:
-            lib = build_gdstk_flat(
-                name, [(s_layer, s_dt, shp, centres_all[order[bounds[g]:bounds[g + 1]]].astype(np.int64))
-                       for g, (_, shp) in enumerate(shape_list)], extras, db_unit_nm=db)
-        del order, centres_all, shape_of_site
+            shape_of_site = np.concatenate(site_shape)
+            centres_all = np.concatenate(site_centre)
+            del site_shape, site_centre
+            order = np.argsort(shape_of_site, kind="stable")
+            bounds = np.searchsorted(shape_of_site[order], np.arange(len(shape_list) + 1))
+            members = [centres_all[order[bounds[g]:bounds[g + 1]]].astype(np.int64) for g in range(len(shape_list))]
+            del order, centres_all, shape_of_site
+            if mask.hierarchy == "levels":
+                lib = build_gdstk_levels(name, [(s_layer, int(lut[slot]), shp) for slot, shp in shape_list],
+                                         members, extras, db_unit_nm=db)
+            else:
+                lib = build_gdstk_flat(name, [(s_layer, int(lut[slot]), shp, m)
+                                              for (slot, shp), m in zip(shape_list, members)], extras,
+                                       db_unit_nm=db)
+            del members
         for fmt in gk_formats:
             files[fmt] = write_gdstk_library(lib, out / f"{name}.{fmt}", fmt)
         del lib
@@ -298,8 +360,32 @@ def compile_design(design: Design, out_dir: str | Path, *, show_progress: bool |
         checks["optics"] = _run_optics(primary, library, design)
         timings["optics_s"] = time.perf_counter() - t0
 
+    for key, res in checks.items():  # timings are not deterministic: they go to timings.json
+        if isinstance(res, dict) and "timings_s" in res:
+            timings[f"{key}_stages"] = res.pop("timings_s")
+    process = {"bias_nm": mask.bias_nm, "bias_corners": mask.bias_corners, "tone": mask.tone,
+               "dose_datatypes": dict(zip(classes, (int(v) for v in lut)))}
+    if mask.write_field is not None:
+        wf = mask.write_field
+        process["write_field"] = {"size_um": list(wf.size_um), "origin_um": list(wf.origin_um),
+                                  "straddle": wf.straddle, "max_shift_nm": wf.max_shift_nm, "counts": wf_counts,
+                                  "worst_shift_nm": round(worst_shift_nm, 3),
+                                  "worst_shift_phase_error_deg": round(math.degrees(worst_shift_phase), 6)}
+    if complement:
+        tgt = comp_stats["target_area_db2"]
+        process["complement"] = {
+            "region": mask.complement_region, "polygons": comp_stats["polygons"],
+            "max_vertices": comp_stats["max_vertices"],
+            "area_relative_difference": round(abs(comp_stats["area_db2"] - tgt) / tgt, 9) if tgt else 0.0,
+            "bands": len(tiles), "bands_xor_verified": comp_stats["bands_verified"],
+            "xor_area_um2": round(comp_stats["xor_db2"] * (db * 1e-3) ** 2, 6),
+            "xor_bound_um2": round(comp_stats["xor_bound_db2"] * (db * 1e-3) ** 2, 6)}
+    if mask.marks is not None:
+        process["marks"] = {"kind": mask.marks.kind, "size_um": mask.marks.size_um}
+
     manifest = {
         "metalay_manifest_version": 1,
+        "process": process,
         "design": {"name": name, "source": Path(design.source_path).name, "echo": design.raw},
         "design_hash": _design_hash(design, library),
         "library": {"name": library.name, "sha256": library.sha256, "mode": library.mode,
@@ -332,10 +418,14 @@ class _TileContext:
     cell_ids: list
     outlines: list
     level_offsets: list | None
-    layer: tuple
+    layer: int
+    datatypes: tuple
     encode_gds: bool
     need_groups: bool
     alias_stride: int
+    grid: WriteFieldGrid | None = None
+    min_gap_db: float = 0.0
+    region: object = None
 
 
 @dataclass
@@ -349,73 +439,178 @@ class _TileOut:
     alias_hits: int = 0
     alias_total: int = 0
     alias_r: tuple = (math.inf, 0.0)
+    wf_counts: dict = field(default_factory=dict)
+    worst_shift_nm: float = 0.0
+    worst_shift_phase: float = 0.0
+    complement: object = None
 
 
-def _tile(rows: tuple[int, int], ctx: _TileContext) -> _TileOut:
-    """All per-site work of one tile (a band of lattice rows): a pure function, safe to run in a worker thread."""
+@dataclass
+class _Elements:
+    """Elements of one tile after mapping, snapping and write-field fitting (arrays parallel over elements)."""
+
+    slot: np.ndarray          # (N,) cell slot
+    theta: np.ndarray         # (N,) intended rotation
+    level: np.ndarray | None  # (N,) rotation level
+    centres: np.ndarray       # (N, 2) int64
+    offsets: list             # per slot: (N_slot, V_slot, 2) int32, in the order of np.flatnonzero(slot == k)
+
+
+def _elements(rows, ctx: _TileContext, out: _TileOut, *, active_rows=None) -> _Elements | None:
+    """Sites of ``rows`` -> phase -> cells -> snapped outlines (+ write-field fit). Fills ``out``'s statistics."""
     design, library = ctx.design, ctx.library
     db = design.mask.db_unit_nm
     sites = sample_sites(design.aperture, design.lattice, rows=rows)
-    ncell = len(ctx.cell_ids)
     if len(sites) == 0:
-        return _TileOut(0, np.zeros(ncell, np.int64), [], [])
+        return None
     phi = target_phase(design.terms, sites.x_um, sites.y_um, wavelength_nm=design.wavelength_nm, sigma=design.sigma)
+    ncell = len(ctx.cell_ids)
     a = assign_cells(phi, library, sigma=design.sigma, cell_id=ctx.cell_ids[0] if ncell == 1 else None,
                      rotation_levels=design.mask.rotation_levels, wavelength_nm=design.wavelength_nm)
     centres = snap_centres(sites.x_um, sites.y_um, db)
-    out = _TileOut(len(sites), np.zeros(ncell, np.int64), [], [], quant_err=a.quantisation_error_rad)
-    # aliasing estimate on a deterministic sub-sample
-    sub = slice(0, None, ctx.alias_stride)
-    g = phase_gradient(design.terms, sites.x_um[sub], sites.y_um[sub], wavelength_nm=design.wavelength_nm,
-                       sigma=design.sigma, step_um=design.lattice.period_um * 1e-3)
+    active = None if active_rows is None else (sites.j >= active_rows[0]) & (sites.j < active_rows[1])
+    own = slice(None) if active is None else active
+    out.quant_err = max(out.quant_err, a.quantisation_error_rad)
+    # aliasing estimate on a deterministic sub-sample of this tile's own sites
+    xs, ys = sites.x_um[own][::ctx.alias_stride], sites.y_um[own][::ctx.alias_stride]
+    g = phase_gradient(design.terms, xs, ys, wavelength_nm=design.wavelength_nm, sigma=design.sigma,
+                       step_um=design.lattice.period_um * 1e-3)
     hit = g * design.lattice.period_um > np.pi
-    out.alias_total = int(hit.size)
+    out.alias_total += int(hit.size)
     if hit.any():
-        out.alias_hits = int(hit.sum())
-        r = np.hypot(sites.x_um[sub][hit], sites.y_um[sub][hit])
-        out.alias_r = (float(r.min()), float(r.max()))
-    for slot, cid in enumerate(ctx.cell_ids):  # loop over cells (short axis)
-        sel = np.flatnonzero(a.cell_index == slot) if ncell > 1 else slice(None)
-        theta = a.rotation_rad[sel]
+        out.alias_hits += int(hit.sum())
+        r = np.hypot(xs[hit], ys[hit])
+        out.alias_r = (min(out.alias_r[0], float(r.min())), max(out.alias_r[1], float(r.max())))
+    slot = a.cell_index.astype(np.int64) if ncell > 1 else np.zeros(len(sites), np.int64)
+    offsets = []
+    for k in range(ncell):  # loop over cells (short axis)
+        sel = np.flatnonzero(slot == k) if ncell > 1 else slice(None)
+        if ctx.level_offsets is not None:
+            offsets.append(ctx.level_offsets[k][a.level[sel]])
+        else:
+            offsets.append(element_offsets(ctx.outlines[k], a.rotation_rad[sel], db))
+    keep = np.ones(len(sites), bool) if active is None else active.copy()
+    if ctx.grid is not None:
+        wf = design.mask.write_field
+        vmax = max(o.shape[1] for o in offsets)
+        padded = np.empty((len(sites), vmax, 2), np.int32)
+        for k, o in enumerate(offsets):  # pad with the last vertex (same hull) so all cells share one array
+            sel = np.flatnonzero(slot == k) if ncell > 1 else slice(None)
+            padded[sel, :o.shape[1]] = o
+            padded[sel, o.shape[1]:] = o[:, -1:, :]
+        fit = fit_write_fields(centres, padded, ctx.grid, mode=wf.straddle, max_shift_db=wf.max_shift_nm / db,
+                               min_gap_db=ctx.min_gap_db, active=active)
+        for key, val in (("straddling", fit.n_straddling), ("shifted", fit.n_shifted), ("dropped", fit.n_dropped),
+                         ("kept_straddling", fit.n_kept_straddling)):
+            out.wf_counts[key] = out.wf_counts.get(key, 0) + int(val)
+        moved = np.flatnonzero(np.any(fit.shift_db != 0, axis=1) & keep)
+        if moved.size:
+            shift_nm = np.hypot(*fit.shift_db[moved].T.astype(np.float64)) * db
+            out.worst_shift_nm = max(out.worst_shift_nm, float(shift_nm.max()))
+            gm = phase_gradient(design.terms, sites.x_um[moved], sites.y_um[moved],
+                                wavelength_nm=design.wavelength_nm, sigma=design.sigma,
+                                step_um=design.lattice.period_um * 1e-3)
+            err = shift_phase_error_rad(fit.shift_db[moved], gm, db_unit_nm=db)
+            out.worst_shift_phase = max(out.worst_shift_phase, float(np.max(err, initial=0.0)))
+        centres = fit.centres_db
+        keep &= fit.keep
+    if not keep.all():
+        new_offsets = []
+        for k, o in enumerate(offsets):
+            sel_keep = keep[slot == k] if ncell > 1 else keep
+            new_offsets.append(o[sel_keep])
+        offsets = new_offsets
+        centres = centres[keep]
+        slot = slot[keep]
+        theta = a.rotation_rad[keep]
+        level = a.level[keep] if a.level is not None else None
+    else:
+        theta, level = a.rotation_rad, a.level
+    out.n += int(keep.sum())
+    return _Elements(slot, theta, level, centres, offsets)
+
+
+def _tile(rows, ctx: _TileContext) -> _TileOut:
+    """All per-site work of one tile (a band of lattice rows): a pure function, safe to run in a worker thread."""
+    ncell = len(ctx.cell_ids)
+    out = _TileOut(0, np.zeros(ncell, np.int64), [], [])
+    halo = 1 if ctx.grid is not None else 0  # write-field fitting needs the neighbours across the tile edge
+    el = _elements((rows[0] - halo, rows[1] + halo), ctx, out, active_rows=rows if halo else None)
+    if el is None:
+        return out
+    library = ctx.library
+    for k, cid in enumerate(ctx.cell_ids):  # loop over cells (short axis)
+        sel = np.flatnonzero(el.slot == k) if ncell > 1 else slice(None)
+        offsets = el.offsets[k]
+        theta = el.theta[sel]
         if theta.size == 0:
             continue
-        out.per_cell[slot] = theta.size
-        if ctx.level_offsets is not None:
-            offsets = ctx.level_offsets[slot][a.level[sel]]
-        else:
-            offsets = element_offsets(ctx.outlines[slot], theta, db)
+        out.per_cell[k] = theta.size
         if not is_rotation_invariant(library.cells[library.cell_index(cid)]):
             err = np.abs(wrap_pi(2.0 * (recovered_rotation(offsets) - theta)))
             out.worst_snap = max(out.worst_snap, float(err.max()))
-        c_sel = centres[sel]
+        c_sel = el.centres[sel]
         if ctx.encode_gds:
-            out.records.append(boundary_records(*ctx.layer, centres_db=c_sel, offsets_db=offsets))
+            out.records.append(boundary_records(ctx.layer, ctx.datatypes[k], centres_db=c_sel, offsets_db=offsets))
         if ctx.need_groups:
             if ctx.level_offsets is not None:
-                levels_here, idx = np.unique(a.level[sel], return_inverse=True)
-                keys = [int(k) for k in levels_here]
-                shapes = [ctx.level_offsets[slot][k] for k in keys]
+                levels_here, idx = np.unique(el.level[sel], return_inverse=True)
+                keys = [int(v) for v in levels_here]
+                shapes = [ctx.level_offsets[k][v] for v in keys]
             else:
                 groups = group_shapes(offsets)
                 keys = [shp.tobytes() for shp in groups.shapes_db]
                 shapes = list(groups.shapes_db)
                 idx = groups.shape_of_site
-            out.groups.append((slot, keys, shapes, idx.ravel(), c_sel.astype(np.int32)))
+            out.groups.append((k, keys, shapes, idx.ravel(), c_sel.astype(np.int32)))
     return out
 
 
-def _run_tiles(tiles, ctx: _TileContext):
-    """Yield tile results in order, computing up to ``workers`` tiles ahead in threads (bounded memory)."""
+def _complement_tile(task, ctx: _TileContext) -> _TileOut:
+    """One band of the tone inversion: the region minus the band's elements, as hole-free polygons."""
+    rows, box_db, verify = task
+    ncell = len(ctx.cell_ids)
+    out = _TileOut(0, np.zeros(ncell, np.int64), [], [])
+    el = _elements(rows, ctx, out)
+    db = ctx.design.mask.db_unit_nm
+    if el is None:
+        centres = np.zeros((0, 2), np.int64)
+        offsets = np.zeros((0, 4, 2), np.int32)
+    else:
+        centres = el.centres
+        vmax = max(o.shape[1] for o in el.offsets)
+        offsets = np.empty((len(centres), vmax, 2), np.int32)
+        for k, o in enumerate(el.offsets):
+            sel = np.flatnonzero(el.slot == k) if ncell > 1 else slice(None)
+            offsets[sel, :o.shape[1]] = o
+            offsets[sel, o.shape[1]:] = o[:, -1:, :]
+        # count only the elements whose centre lies in this band's box (bands overlap by their halo rows)
+        inside = (centres[:, 1] >= box_db[1]) & (centres[:, 1] < box_db[3])
+        out.n = int(inside.sum())
+        out.per_cell = np.bincount(el.slot[inside], minlength=ncell).astype(np.int64)
+    cuts = None
+    grid = ctx.grid
+    if grid is not None:
+        x0, x1 = box_db[0], box_db[2]
+        k0 = math.floor((x0 - grid.origin_db[0]) / grid.size_db[0])
+        k1 = math.ceil((x1 - grid.origin_db[0]) / grid.size_db[0])
+        cuts = grid.origin_db[0] + grid.size_db[0] * np.arange(k0, k1 + 1)
+    out.complement = complement_tile(centres, offsets, ctx.region, box_db, cut_x_db=cuts, verify=verify)
+    del db
+    return out
+
+
+def _run_tiles(tiles, ctx: _TileContext, fn=_tile):
+    """Yield ``fn(tile, ctx)`` in order, computing up to ``workers`` tiles ahead in threads (bounded memory)."""
     workers = max(1, min(2, os.cpu_count() or 1))
     if workers == 1 or len(tiles) == 1:
-        for rows in tiles:
-            yield _tile(rows, ctx)
+        for t in tiles:
+            yield fn(t, ctx)
         return
     with ThreadPoolExecutor(max_workers=workers) as pool:
         pending = collections.deque()
-        it = iter(tiles)
-        for rows in it:
-            pending.append(pool.submit(_tile, rows, ctx))
+        for t in tiles:
+            pending.append(pool.submit(fn, t, ctx))
             if len(pending) > workers:
                 yield pending.popleft().result()
         while pending:
@@ -431,19 +626,36 @@ def _estimate_sites(design: Design) -> float:
     return aperture_area_um2(design.aperture) / cell_area_um2(design.lattice)
 
 
-def _extras(design: Design, library: CellLibrary):
+def _extras(design: Design, library: CellLibrary, lut=None, classes=None):
+    """Frame, label and alignment marks (a handful of polygons)."""
     mask = design.mask
+    db = mask.db_unit_nm
     hw, hh = design.aperture.half_extent_um
-    fl, fd = mask.layer("frame")
+
+    def dt(purpose):
+        return int(lut[classes.index(purpose)]) if lut is not None else mask.layer(purpose)[1]
+
+    fl, _ = mask.layer("frame")
     polys = frame_polygons(hw, hh, margin_um=mask.frame_margin_um, width_um=mask.frame_width_um,
-                           db_unit_nm=mask.db_unit_nm, layer=fl, datatype=fd)
+                           db_unit_nm=db, layer=fl, datatype=dt("frame"))
     if mask.label:
-        ll, ld = mask.layer("label")
+        ll, _ = mask.layer("label")
         text = f"{design.name} {_design_hash(design, library)[:8]}"
         x = -hw - mask.frame_margin_um - mask.frame_width_um
         y = -hh - mask.frame_margin_um - mask.frame_width_um - 1.5 * mask.label_height_um
-        polys += text_polygons(text, height_um=mask.label_height_um, x_um=x, y_um=y, db_unit_nm=mask.db_unit_nm,
-                               layer=ll, datatype=ld)
+        polys += text_polygons(text, height_um=mask.label_height_um, x_um=x, y_um=y, db_unit_nm=db,
+                               layer=ll, datatype=dt("label"))
+    if mask.marks is not None:
+        mk = mask.marks
+        positions = mk.positions_um or default_mark_positions_um(
+            design.aperture, frame_margin_um=mask.frame_margin_um, frame_width_um=mask.frame_width_um,
+            size_um=mk.size_um, gap_um=mk.gap_um)
+        marks = alignment_marks(mk.kind, positions, size_um=mk.size_um, line_width_um=mk.line_width_um,
+                                db_unit_nm=db, layer=mask.layer("marks")[0], datatype=dt("marks"))
+        keepout = frame_region_db(design.aperture, margin_um=mask.frame_margin_um + mask.frame_width_um,
+                                  db_unit_nm=db)
+        check_marks_clear(marks, keepout, where=design.source_path)
+        polys += marks
     return polys
 
 

@@ -27,7 +27,7 @@ __all__ = ["DecodedSites", "decode_sites", "polygon_shapes", "ShapeTable", "cell
 
 _RECT_KINDS = ("nanofin", "slot")
 _ROUND_KINDS = ("elliptic_pillar", "round_pillar")
-_CHUNK = 1 << 20
+_CHUNK = 1 << 18
 SQRT3 = np.sqrt(3.0)
 
 
@@ -55,17 +55,27 @@ class ShapeTable:
     is_rect: np.ndarray
 
 
-def _quads(v: np.ndarray):
-    """Centre, rotation, long and short size of quadrilaterals ``v`` (K, 4, 2) float64."""
-    c = v.mean(axis=1)
-    e = np.roll(v, -1, axis=1) - v  # e_k = v_{k+1} - v_k
-    ln = np.hypot(e[..., 0], e[..., 1])
-    la = 0.5 * (ln[:, 0] + ln[:, 2])
-    lb = 0.5 * (ln[:, 1] + ln[:, 3])
+def _quads(v: np.ndarray, db_nm: float):
+    """Centre (nm), rotation, long and short size (nm) of quadrilaterals ``v`` (K, 4, 2) integer database units.
+
+    Edge differences are taken in integers (exact) and the sizes in float32; ``e0 - e2`` and ``e1 - e3`` (twice
+    the mean direction of each pair of opposite edges) are ``(v1 + v2) - (v0 + v3)`` and ``(v2 + v3) - (v0 + v1)``.
+    """
+    x0, x1, x2, x3 = (v[:, k, 0] for k in range(4))
+    y0, y1, y2, y3 = (v[:, k, 1] for k in range(4))
+    cx = (x0 + x1 + x2 + x3) * (0.25 * db_nm)
+    cy = (y0 + y1 + y2 + y3) * (0.25 * db_nm)
+    f = np.float32
+    la = np.hypot((x1 - x0).astype(f), (y1 - y0).astype(f)) + np.hypot((x3 - x2).astype(f), (y3 - y2).astype(f))
+    lb = np.hypot((x2 - x1).astype(f), (y2 - y1).astype(f)) + np.hypot((x0 - x3).astype(f), (y0 - y3).astype(f))
     long_a = la >= lb
-    d = np.where(long_a[:, None], e[:, 0] - e[:, 2], e[:, 1] - e[:, 3])
-    rot = np.mod(np.arctan2(d[:, 1], d[:, 0]), np.pi)
-    return c, rot, np.maximum(la, lb), np.minimum(la, lb)
+    dx = np.where(long_a, (x1 + x2) - (x0 + x3), (x2 + x3) - (x0 + x1)).astype(np.float64)
+    dy = np.where(long_a, (y1 + y2) - (y0 + y3), (y2 + y3) - (y0 + y1)).astype(np.float64)
+    rot = np.arctan2(dy, dx)
+    rot[rot < 0] += np.pi
+    rot[rot >= np.pi] -= np.pi
+    scale = f(0.5 * db_nm)
+    return cx, cy, rot, np.maximum(la, lb) * scale, np.minimum(la, lb) * scale
 
 
 def _ngons(v: np.ndarray):
@@ -115,13 +125,23 @@ def polygon_shapes(start: np.ndarray, xy_db: np.ndarray, db_nm: float) -> ShapeT
     if p and counts.min() < 4:
         k = int(np.argmin(counts))
         raise MetalayError(f"polygon {k} has {int(counts[k])} vertices; structure polygons need at least 4")
+    if p and counts.min() == counts.max() == 4:
+        # every polygon a quadrilateral stored back to back: a free (P, 4, 2) view, processed in chunks
+        v_all = xy_db.reshape(-1, 4, 2)
+        for c0 in range(0, p, _CHUNK):
+            sl = slice(c0, c0 + _CHUNK)
+            x[sl], y[sl], rot[sl], a[sl], b[sl] = _quads(v_all[sl], db_nm)
+        return ShapeTable(x, y, rot, a, b, np.ones(p, bool))
     for n in np.unique(counts):  # loop over distinct vertex counts (short axis)
         idx = np.flatnonzero(counts == n)
         for c0 in range(0, idx.size, _CHUNK):  # bounded memory
             sel = idx[c0:c0 + _CHUNK]
-            v = xy_db[start[sel][:, None] + np.arange(n)[None, :]].astype(np.float64) * db_nm
-            c, r, aa, bb = (_quads if n == 4 else _ngons)(v)
-            x[sel], y[sel], rot[sel], a[sel], b[sel] = c[:, 0], c[:, 1], r, aa, bb
+            v = xy_db[start[sel][:, None] + np.arange(n)[None, :]]
+            if n == 4:
+                x[sel], y[sel], rot[sel], a[sel], b[sel] = _quads(v, db_nm)
+            else:
+                c, r, aa, bb = _ngons(v.astype(np.float64) * db_nm)
+                x[sel], y[sel], rot[sel], a[sel], b[sel] = c[:, 0], c[:, 1], r, aa, bb
     return ShapeTable(x, y, rot, a, b, counts == 4)
 
 
@@ -206,6 +226,12 @@ class DecodedSites:
 def _match(shapes: ShapeTable, cs: CellShapes, bias_nm: float):
     """Nearest compatible cell per polygon and its Chebyshev size distance (chunked, vectorised)."""
     p = shapes.a_nm.size
+    if cs.a_nm.size == 1:  # one cell: no search
+        da = np.abs(shapes.a_nm - np.float32(2 * bias_nm + cs.a_nm[0]))
+        db = np.abs(shapes.b_nm - np.float32(2 * bias_nm + cs.b_nm[0]))
+        err = np.maximum(da, db, out=da)
+        err[shapes.is_rect != cs.is_rect[0]] = np.inf
+        return np.zeros(p, dtype=np.int32), err
     best = np.full(p, -1, dtype=np.int32)
     err = np.full(p, np.inf, dtype=np.float32)
     for c0 in range(0, p, _CHUNK):
@@ -303,7 +329,10 @@ def decode_sites(flat, cells, *, period_nm: float, lattice: str = "square", laye
         half = (jj % 2) * 0.5
         ii = np.rint((shapes.x_nm - x0) / p - half).astype(np.int64)
         sx, sy = (ii + half) * p + x0, jj * rp + y0
-    offset = np.hypot(shapes.x_nm - sx, shapes.y_nm - sy)
+    sx -= shapes.x_nm
+    sy -= shapes.y_nm
+    offset = np.hypot(sx, sy, out=sx)
+    del sy
     off = offset > p / 4
     n_off = int(off.sum())
     if n_off > n_poly // 2:
@@ -311,31 +340,47 @@ def decode_sites(flat, cells, *, period_nm: float, lattice: str = "square", laye
                             f"{lattice} lattice of period {p:g} nm with origin ({origin_um[0]:g}, {origin_um[1]:g}) "
                             "um; check the library period, lattice and origin")
     keep &= ~off
-    idx = np.flatnonzero(keep)
-    key_i, key_j = ii[idx], jj[idx]
-    order = np.lexsort((key_i, key_j))
-    idx = idx[order]
+    every = bool(keep.all())
+    idx = np.arange(n_poly) if every else np.flatnonzero(keep)
+    # site key in (j, i) order; masks written row by row are already sorted, so the sort is usually skipped
+    imin = int(ii.min()) if n_poly else 0
+    width = int(ii.max()) - imin + 1 if n_poly else 1
+    key = (jj - int(jj.min() if n_poly else 0)) * width + (ii - imin)
+    if not every:
+        key = key[idx]
+    if key.size > 1 and not np.all(key[1:] > key[:-1]):
+        order = np.argsort(key, kind="stable")
+        idx, key = idx[order], key[order]
+        every = False
     # one element per site: keep the first in (j, i) order, count the rest as duplicates
     first = np.ones(idx.size, bool)
     if idx.size > 1:
-        first[1:] = (ii[idx][1:] != ii[idx][:-1]) | (jj[idx][1:] != jj[idx][:-1])
+        first[1:] = key[1:] != key[:-1]
     n_dup = int(idx.size - first.sum())
-    idx = idx[first]
-    rot = np.where(cs.rotates[best[idx]], shapes.rotation_rad[idx], 0.0)
+    if n_dup:
+        idx = idx[first]
+    del key, first
+
+    def take(a):  # no gather when every polygon is kept in file order
+        return a if every else a[idx]
+
+    rot = take(shapes.rotation_rad)
+    if not cs.rotates.all():
+        rot = np.where(cs.rotates[take(best)], rot, 0.0)
     stats = {
         "polygons": n_poly,
         "sites": int(idx.size),
         "unmatched": n_bad,
         "off_lattice": n_off,
         "duplicates": n_dup,
-        "max_size_error_nm": float(np.max(err[idx])) if idx.size else 0.0,
-        "max_center_offset_nm": float(np.max(offset[idx])) if idx.size else 0.0,
+        "max_size_error_nm": float(np.max(take(err))) if idx.size else 0.0,
+        "max_center_offset_nm": float(np.max(take(offset))) if idx.size else 0.0,
         "size_tolerance_nm": float(size_tol_nm),
         "bias_nm": float(bias_nm),
         "unmatched_policy": unmatched,
     }
-    return DecodedSites(i=ii[idx], j=jj[idx], x_um=shapes.x_nm[idx] * 1e-3, y_um=shapes.y_nm[idx] * 1e-3,
-                        cell=best[idx].astype(np.int32), rotation_rad=rot, size_error_nm=err[idx],
+    return DecodedSites(i=take(ii), j=take(jj), x_um=take(shapes.x_nm) * 1e-3, y_um=take(shapes.y_nm) * 1e-3,
+                        cell=take(best).astype(np.int32, copy=False), rotation_rad=rot, size_error_nm=take(err),
                         lattice=lattice, period_nm=float(period_nm), origin_um=(float(origin_um[0]),
                                                                                  float(origin_um[1])),
                         stats=stats)

@@ -204,6 +204,9 @@ def get_material(name: str, *, base_dir: Path | None = None) -> Material:
     1.4585
     """
     key = _ALIASES.get(name, name)
+    if key not in _FORMULAS and key not in _DATABASE and not key.startswith(("n=", "table:")):
+        lower = {k.lower(): k for k in [*_FORMULAS, *_DATABASE]}
+        key = _ALIASES.get(key.lower(), lower.get(key.lower(), key))
     if key == "air":
         return Material("air", "vacuum/air approximation n = 1", "constant", (1e-3, 1e9), "constant",
                         lambda wl: np.ones_like(wl, dtype=complex))

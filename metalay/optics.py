@@ -394,7 +394,7 @@ def power_budget(fields: SiteFields, n_illuminated: float, *, n_empty: float = 0
         "designed_polarization": d / n,
         "other_polarization": o / n,
         "zeroth_order_total": (d + o) / n,
-        "not_in_zeroth_order": 1.0 - (d + o) / n,
+        "not_in_zeroth_order": max(0.0, 1.0 - (d + o) / n),
         "empty_cells": float(n_empty),
         "illuminated_cells": n,
     }
@@ -719,7 +719,15 @@ def lens_metrics(near: NearField, wavelength_nm: float, focal_length_um: float, 
     valid = radius <= half
     prof, radius = prof[valid], radius[valid]
     rising = np.flatnonzero(np.diff(prof) > 0)
-    first_dark = float(radius[rising[0]]) if rising.size else float("nan")
+    first_dark = float("nan")
+    if rising.size:
+        k = int(rising[0])
+        first_dark = float(radius[k])
+        if 0 < k < prof.size - 1:  # parabolic refinement of the minimum
+            a, b, cc = prof[k - 1], prof[k], prof[k + 1]
+            den = a - 2 * b + cc
+            if den > 0:
+                first_dark += float(0.5 * (a - cc) / den * step)
     fwhm_mean = 0.5 * (fx + fy)
     eff = float(inten[rr < 3 * fwhm_mean].sum() * step * step / area)
     strehl = None
@@ -816,7 +824,7 @@ def _json_ready(obj):
 
 def check_optics(mask_path, library, *, design=None, target: OpticsTarget | None = None,
                  wavelength_nm: float | None = None, polarization: str = "design", out_dir=None,
-                 layer=(1, 0), bias_nm: float = 0.0, size_tol_nm: float = 3.0, unmatched: str = "error",
+                 layer=None, bias_nm: float | None = None, size_tol_nm: float = 3.0, unmatched: str = "error",
                  empty_t: complex = 1.0, pad_factor: float = 2.0, max_side: int = 4096,
                  charges=range(-10, 11), make_plots: bool = True, log_far_field: bool = True,
                  keep_arrays: bool = False, workers: int = 2, title: str | None = None) -> OpticsResult:
@@ -840,9 +848,11 @@ def check_optics(mask_path, library, *, design=None, target: OpticsTarget | None
         Input polarisation, see :func:`input_jones`.
     out_dir : str or Path, optional
         Write ``figures.json``, the PNG figures and ``report.html`` here (atomic writes).
-    layer : (int, int)
-        Structure layer/datatype.
-    bias_nm, size_tol_nm, unmatched
+    layer : (int, int), optional
+        Structure layer/datatype (default: the design's structure layer, else (1, 0)).
+    bias_nm : float, optional
+        Process bias per edge written into the mask (default: the design's ``mask.bias_nm``, else 0).
+    size_tol_nm, unmatched
         Decoding options, see :func:`metalay.decode.decode_sites`.
     empty_t : complex
         Unconverted amplitude of an illuminated cell with no element.
@@ -878,10 +888,16 @@ def check_optics(mask_path, library, *, design=None, target: OpticsTarget | None
     mask_path = Path(mask_path)
     lib = library if isinstance(library, CellLibrary) else load_library(library)
 
+    mask_settings = getattr(design, "mask", None)
+    if layer is None:
+        layer = mask_settings.layer("structures") if mask_settings is not None else (1, 0)
+    if bias_nm is None:
+        bias_nm = float(getattr(mask_settings, "bias_nm", 0.0) or 0.0)
     t0 = time.perf_counter()
     flat = read_mask(mask_path, layers=[tuple(layer)])
     timings["read_s"] = time.perf_counter() - t0
 
+    no_target = target is None and design is None
     if target is None:
         if design is not None:
             target = target_from_design(design, wavelength_nm=wavelength_nm)
@@ -973,12 +989,18 @@ def check_optics(mask_path, library, *, design=None, target: OpticsTarget | None
             figures["phase_error_deg"] = {"rms": float(np.degrees(np.sqrt(np.mean(e * e)))),
                                           "max": float(np.degrees(np.max(np.abs(e))))}
     centres = {}
-    if not target.channels and not target.focal_length_um:
+    if no_target:
+        pu, pv, _ = _peak_near(ff, 0.0, 0.0, 1.0)
+        figures["brightest_direction"] = {"u": pu, "v": pv,
+                                          "angle_deg": float(np.degrees(np.arcsin(min(1.0, np.hypot(pu, pv)))))}
+        notes.append("no design given: no designed spot, OAM or charge reading (pass the design for those)")
+    elif not target.channels and not target.focal_length_um:
         centres["designed"] = target.direction
         if np.hypot(*target.direction) > 2 * radius_u:
             centres["zero_order"] = (0.0, 0.0)
         else:
-            notes.append("designed beam on axis: its spot also holds the unconverted (zero-order) light")
+            notes.append("the designed spot overlaps the zero-order spot (deflection below two lobe radii): its "
+                         "disk also holds any unconverted light")
     for k, (lc, uc, vc) in enumerate(target.channels):
         centres[f"channel_{k}_l{lc:+d}"] = (uc, vc)
     spots = spot_fractions(ff, centres, radius_u)
@@ -1173,4 +1195,5 @@ def compile_check(path, library, design) -> dict:
         parts.append(f"Strehl {f['lens']['strehl']:.3f}")
     files = {k: {"path": os.path.relpath(v["path"], Path(path).parent), "sha256": v["sha256"], "bytes": v["bytes"]}
              for k, v in q["files"].items()}
-    return {"status": "ok", "summary": "; ".join(parts), "figures": f, "files": files, "notes": q["notes"]}
+    return {"status": "ok", "summary": "; ".join(parts), "figures": f, "files": files, "notes": q["notes"],
+            "timings_s": q["timings"]}

@@ -8,7 +8,8 @@ etch
     (``j = 1 .. k``) is etched to depth ``d_j = lambda / (2^j (n - 1))``; its openings (the polygons written) are
     the set ``sin(2^(j-1) phi) > 0``. The etched depth at a point is the sum of the depths of the masks open there,
     ``e = (N - 1 - q) lambda / (N (n - 1))`` with ``q = floor(N mod(phi, 2 pi) / 2 pi)`` the phase level, so the
-    plate imprints ``exp(i 2 pi (q + 1) / N)`` (the level phase plus a constant piston) in transmission.
+    relief left above the deepest floor, ``D - e = q lambda / (N (n - 1))`` (``D`` the sum of all depths), imprints
+    ``exp(i 2 pi q / N)`` in transmission: the phase level itself.
 fork
     A binary grating (amplitude: the polygons are the clear lines; phase: the polygons are etched to a
     ``pi`` step) whose lines are the set ``cos(phi + 2 pi r . g / period) > cos(pi duty)``. For a charge-``l``
@@ -63,7 +64,7 @@ from .writer import MAX_GDS_VERTICES, GdsStream
 
 __all__ = [
     "EtchSettings", "ForkSettings", "SlmSettings", "OrientSettings", "RouteSettings", "parse_routes",
-    "etch_depths_nm", "level_step_nm", "spiral_step_height_nm", "multilevel_efficiency",
+    "etch_depths_nm", "etched_depth_nm", "level_step_nm", "spiral_step_height_nm", "multilevel_efficiency",
     "binary_grating_efficiency", "substrate_index",
     "EtchMasks", "etch_masks", "level_regions", "write_etch",
     "ForkGrating", "fork_grating", "write_fork",
@@ -177,9 +178,6 @@ def parse_routes(design) -> RouteSettings:
 
     f = r.table("fork", {})
     period = float(f.number("period_um", 10.0, lo=0, lo_open=True, hi=1e5))
-    if period < 4 * raster_um:
-        f.fail("period_um", period, f"needs at least 4 raster pixels per period (>= {4 * raster_um:g} um at "
-                                    f"routes.raster_um = {raster_um:g})")
     charge = f.number("charge", None, lo=-1000, hi=1000, integer=True)
     fork = ForkSettings(period_um=period, azimuth_deg=float(f.number("azimuth_deg", 0.0, lo=-360, hi=360)),
                         duty=float(f.number("duty", 0.5, lo=0, lo_open=True, hi=0.95)),
@@ -252,6 +250,21 @@ def spiral_step_height_nm(charge: int, wavelength_nm: float, index: float) -> fl
     return abs(charge) * wavelength_nm / (index - 1.0)
 
 
+def etched_depth_nm(phi_rad, levels: int, wavelength_nm: float, index: float) -> np.ndarray:
+    """Etched depth at phase ``phi_rad``: sum of ``d_j`` over the masks open there (``sin(2^(j-1) phi) > 0``).
+
+    Notes
+    -----
+    Equals ``(N - 1 - q) lambda / (N (n - 1))`` with ``q = floor(N mod(phi, 2 pi) / 2 pi)`` away from level
+    boundaries, so the relief left above the deepest floor, ``D - e``, imprints ``2 pi q / N``.
+    """
+    phi_rad = np.asarray(phi_rad, dtype=np.float64)
+    e = np.zeros(phi_rad.shape)
+    for j, d in enumerate(etch_depths_nm(levels, wavelength_nm, index), start=1):  # loop over masks
+        e += d * (np.sin(2 ** (j - 1) * phi_rad) > 0)
+    return e
+
+
 def multilevel_efficiency(levels: int) -> float:
     """First-order efficiency ``sinc^2(1/N)`` of an N-level quantised phase (``sinc(t) = sin(pi t)/(pi t)``).
 
@@ -275,26 +288,30 @@ def binary_grating_efficiency(kind: str, duty: float) -> float:
 
 
 def substrate_index(material: str, wavelength_nm: float, *, index: float | None = None, where: str = "",
-                    key: str = "routes.etch.material") -> float:
-    """Real refractive index of the substrate: the explicit ``index`` if given, else from ``metalay.materials``."""
+                    key: str = "routes.etch.material", base_dir=None) -> float:
+    """Real refractive index of the substrate: the explicit ``index`` if given, else from :mod:`metalay.materials`
+    (``get_material(material).index(wavelength_nm)``, dispersion included)."""
+    return _substrate(material, wavelength_nm, index=index, where=where, key=key, base_dir=base_dir)[0]
+
+
+def _substrate(material, wavelength_nm, *, index, where, key, base_dir=None) -> tuple[float, str]:
     if index is not None:
-        return float(index)
+        return float(index), "explicit index"
     try:
         from . import materials
-    except ImportError as exc:
+    except ImportError as exc:  # pragma: no cover - the materials module ships with metalay
         raise DesignError(f"{where}: key '{key}' = {material!r}: the materials module is not available; give the "
                           f"index explicitly (key '{key.rsplit('.', 1)[0]}.index', > 1 and <= 5)") from exc
     try:
-        n = complex(materials.refractive_index(material, wavelength_nm))
+        mat = materials.get_material(material, base_dir=Path(base_dir) if base_dir else None)
+        n = complex(np.asarray(mat.index(wavelength_nm)).ravel()[0])
+        source = f"{mat.name}: {mat.dataset}"
     except MetalayError as exc:
         raise DesignError(f"{where}: key '{key}' = {material!r}: {exc}") from exc
-    except (KeyError, ValueError, AttributeError) as exc:
-        raise DesignError(f"{where}: key '{key}' = {material!r}: unknown material or wavelength "
-                          f"{wavelength_nm:g} nm outside its data ({exc})") from exc
     if not (n.real > 1.0):
         raise DesignError(f"{where}: key '{key}' = {material!r}: index {n.real:.4f} at {wavelength_nm:g} nm is not "
                           "> 1; a surface-relief plate needs n > 1")
-    return float(n.real)
+    return float(n.real), source
 
 
 # ---------------------------------------------------------------------------------------------- helpers
@@ -577,7 +594,8 @@ def etch_masks(design, settings: RouteSettings | None = None, *, with_level_area
     settings = settings or parse_routes(design)
     es = settings.etch
     lam = design.wavelength_nm
-    n = substrate_index(es.material, lam, index=es.index, where=design.source_path)
+    n, source = _substrate(es.material, lam, index=es.index, where=design.source_path, key="routes.etch.material",
+                           base_dir=settings.base_dir)
     depths = etch_depths_nm(es.levels, lam, n)
     k = depths.size
     phi = _phase_func(design)
@@ -604,7 +622,7 @@ def etch_masks(design, settings: RouteSettings | None = None, *, with_level_area
     charge, _ = net_charge(design)
     warnings = _resolution_warning(design, design.terms, settings.raster_um, es.levels, "etch")
     return EtchMasks(
-        levels=es.levels, wavelength_nm=lam, index=n, material=es.material if es.index is None else "explicit index",
+        levels=es.levels, wavelength_nm=lam, index=n, material=source,
         depths_nm=depths, step_nm=level_step_nm(es.levels, lam, n),
         max_depth_nm=(es.levels - 1) * level_step_nm(es.levels, lam, n), charge=charge,
         spiral_step_nm=spiral_step_height_nm(charge, lam, n) if charge else None,
@@ -735,6 +753,10 @@ def fork_grating(design, settings: RouteSettings | None = None) -> ForkGrating:
     """
     settings = settings or parse_routes(design)
     fs = settings.fork
+    if fs.period_um < 4 * settings.raster_um:
+        raise DesignError(f"{design.source_path}: key 'routes.fork.period_um' = {fs.period_um:g}: needs at least 4 "
+                          f"raster pixels per period (>= {4 * settings.raster_um:g} um at routes.raster_um = "
+                          f"{settings.raster_um:g}); lower routes.raster_um or raise the period")
     terms = _fork_terms(design, fs)
     phi = _phase_func(design, terms)
     h = math.cos(math.pi * fs.duty)
@@ -760,7 +782,7 @@ def fork_grating(design, settings: RouteSettings | None = None) -> ForkGrating:
     depth = None
     if fs.kind == "phase":
         n = substrate_index(fs.material, design.wavelength_nm, index=fs.index, where=design.source_path,
-                            key="routes.fork.material")
+                            key="routes.fork.material", base_dir=settings.base_dir)
         depth = design.wavelength_nm / (2 * (n - 1))
     warnings = []
     if not rules["nominal_ok"]:
@@ -932,7 +954,11 @@ def slm_image(design, settings: RouteSettings | None = None) -> SlmImage:
         gm = phase_gradient(design.terms, xx + 0 * yy, yy + 0 * xx, wavelength_nm=design.wavelength_nm,
                             sigma=design.sigma, step_um=p / 4)
         gm = gm + 2 * np.pi * float(np.hypot(*f))
-        worst = float(np.max(gm[inside]) * p)
+        away = inside.copy()
+        cores, charges = _cores(design.terms)
+        for (cx, cy), rad in zip(cores, _core_radii(charges, 1.0, p)):  # a few vortex cores
+            away &= np.hypot(xx - cx, yy - cy) > rad
+        worst = float(np.max(gm[away]) * p) if away.any() else 0.0
         if worst > np.pi:
             warnings.append(f"slm: the phase changes by up to {worst:.2f} rad per pixel (> pi): the pattern is "
                             f"aliased at pitch {p:g} um; enlarge the beam or lower the tilt")
@@ -1167,11 +1193,10 @@ def compare_routes(design, settings: RouteSettings | None = None, *, routes=("id
             rows.append(figures("metasurface", np.exp(2j * design.sigma * theta), zero, exp_ms, note))
         elif r == "etch":
             es = settings.etch
-            nsub = substrate_index(es.material, lam, index=es.index, where=design.source_path)
+            nsub = substrate_index(es.material, lam, index=es.index, where=design.source_path,
+                                   base_dir=settings.base_dir)
             depths = etch_depths_nm(es.levels, lam, nsub)
-            e = np.zeros_like(phi)
-            for j, d in enumerate(depths, start=1):  # loop over masks
-                e += d * (np.sin(2 ** (j - 1) * phi) > 0)
+            e = etched_depth_nm(phi, es.levels, lam, nsub)
             t = np.exp(1j * 2 * np.pi * (nsub - 1) * (depths.sum() - e) / lam)
             rows.append(figures("etch", t, zero, multilevel_efficiency(es.levels),
                                 f"{es.levels} levels, n = {nsub:.4f}, phase from depth and index"))

@@ -15,7 +15,7 @@ from .errors import DesignError
 from .lattice import Aperture, Lattice
 from .phase import (PHASE_TERM_KINDS, Axicon, Channel, Lens, Multiplex, QPlate, Tilt, Vortex, load_phase_map)
 
-__all__ = ["Design", "MaskSettings", "CheckSettings", "load_design", "parse_design", "DEFAULT_LAYERS"]
+__all__ = ["Design", "MaskSettings", "WriteFieldSettings", "MarkSettings", "CheckSettings", "load_design", "parse_design", "DEFAULT_LAYERS"]
 
 #: Default (layer, datatype) per purpose.
 DEFAULT_LAYERS = {"structures": (1, 0), "frame": (2, 0), "label": (3, 0), "marks": (4, 0)}
@@ -24,6 +24,27 @@ _FORMATS = ("gds", "oas")
 _SHAPES = ("circle", "square", "rectangle", "annulus")
 _LATTICES = ("square", "hexagonal")
 _MAX_SITES = 2_000_000_000
+
+
+@dataclass(frozen=True)
+class WriteFieldSettings:
+    """E-beam write fields: size, grid origin, what to do with elements that straddle a boundary."""
+
+    size_um: tuple[float, float]
+    origin_um: tuple[float, float] = (0.0, 0.0)
+    straddle: str = "shift"
+    max_shift_nm: float = 50.0
+
+
+@dataclass(frozen=True)
+class MarkSettings:
+    """Alignment marks outside the frame."""
+
+    kind: str = "cross"
+    size_um: float = 100.0
+    line_width_um: float = 10.0
+    gap_um: float = 20.0
+    positions_um: tuple | None = None
 
 
 @dataclass(frozen=True)
@@ -40,6 +61,14 @@ class MaskSettings:
     frame_width_um: float = 5.0
     label: bool = True
     label_height_um: float = 20.0
+    bias_nm: float = 0.0
+    bias_corners: str = "sharp"
+    tone: str = "structures"
+    complement_region: str = "aperture"
+    complement_band_rows: int = 64
+    write_field: WriteFieldSettings | None = None
+    marks: MarkSettings | None = None
+    dose_datatypes: tuple[tuple[str, int], ...] = ()
 
     def layer(self, purpose: str) -> tuple[int, int]:
         return dict(self.layers)[purpose]
@@ -252,6 +281,46 @@ def parse_design(data: dict, *, where: str = "<memory>", base_dir: str | Path = 
     if (not isinstance(formats, list) or not formats or any(f not in _FORMATS for f in formats)
             or len(set(formats)) != len(formats)):
         m.fail("formats", formats, f"expected a non-empty list of distinct values from {list(_FORMATS)}")
+    write_field = None
+    if m.has("write_field"):
+        wf = m.table("write_field")
+        size = wf.raw("size_um")
+        if isinstance(size, (int, float)) and not isinstance(size, bool):
+            size = [size, size]
+        if (not isinstance(size, list) or len(size) != 2 or not all(
+                isinstance(v, (int, float)) and not isinstance(v, bool) and 0.1 <= v <= 1e5 for v in size)):
+            wf.fail("size_um", wf.data.get("size_um"), "expected a number or [width, height], 0.1..1e5 um")
+        origin = wf.raw("origin_um", [0.0, 0.0])
+        if (not isinstance(origin, list) or len(origin) != 2
+                or not all(isinstance(v, (int, float)) and not isinstance(v, bool) for v in origin)):
+            wf.fail("origin_um", origin, "expected [x, y] in um")
+        write_field = WriteFieldSettings(
+            (float(size[0]), float(size[1])), (float(origin[0]), float(origin[1])),
+            wf.string("straddle", "shift", options=("shift", "drop", "keep")),
+            float(wf.number("max_shift_nm", 50.0, lo=0.0, hi=1e4)))
+        wf.check_unknown()
+    marks = None
+    if m.has("marks"):
+        mk = m.table("marks")
+        positions = mk.raw("positions_um", None)
+        if positions is not None and (not isinstance(positions, list) or not positions or not all(
+                isinstance(p, list) and len(p) == 2 and all(isinstance(v, (int, float)) and not isinstance(v, bool)
+                                                            for v in p) for p in positions)):
+            mk.fail("positions_um", positions, "expected a list of [x, y] positions in um")
+        size_um = float(mk.number("size_um", 100.0, lo=1.0, hi=1e4))
+        line_um = float(mk.number("line_width_um", 10.0, lo=0.1, hi=1e4))
+        if line_um >= size_um:
+            mk.fail("line_width_um", line_um, f"must be smaller than size_um = {size_um:g}")
+        marks = MarkSettings(mk.string("kind", "cross", options=("cross", "square")), size_um, line_um,
+                             float(mk.number("gap_um", 20.0, lo=0.0, hi=1e5)),
+                             tuple((float(a), float(b)) for a, b in positions) if positions else None)
+        mk.check_unknown()
+    dose = ()
+    if m.has("dose_datatypes"):
+        dd = m.table("dose_datatypes")
+        for key in sorted(dd.data):
+            dd.number(key, integer=True, lo=0, hi=255)
+        dose = tuple(sorted((k, int(v)) for k, v in dd.data.items()))
     mask = MaskSettings(
         db_unit_nm=float(db_unit_nm), layers=tuple(layers.items()), hierarchy=hierarchy, rotation_levels=levels,
         formats=tuple(f for f in _FORMATS if f in formats), cell=m.string("cell", None),
@@ -259,7 +328,15 @@ def parse_design(data: dict, *, where: str = "<memory>", base_dir: str | Path = 
         frame_width_um=float(m.number("frame_width_um", 5.0, lo=0.0, lo_open=True, hi=1e3)),
         label=m.boolean("label", True),
         label_height_um=float(m.number("label_height_um", 20.0, lo=0.5, hi=1e4)),
+        bias_nm=float(m.number("bias_nm", 0.0, lo=-200.0, hi=200.0)),
+        bias_corners=m.string("bias_corners", "sharp", options=("sharp", "chamfer")),
+        tone=m.string("tone", "structures", options=("structures", "complement")),
+        complement_region=m.string("complement_region", "aperture", options=("aperture", "frame")),
+        complement_band_rows=m.number("complement_band_rows", 64, lo=1, hi=100000, integer=True),
+        write_field=write_field, marks=marks, dose_datatypes=dose,
     )
+    if mask.tone == "complement" and mask.hierarchy != "flat":
+        m.fail("tone", mask.tone, "'complement' needs mask.hierarchy = 'flat'")
     m.check_unknown()
 
     c = top.table("checks", {})

@@ -33,7 +33,7 @@ from .atomic import atomic_path
 from .errors import OutputError
 from .layout import Polygon
 
-__all__ = ["GdsStream", "boundary_records", "gds_real8", "write_gdstk_library", "build_gdstk_flat", "build_gdstk_levels",
+__all__ = ["GdsStream", "add_polygons", "boundary_records", "gds_real8", "write_gdstk_library", "build_gdstk_flat", "build_gdstk_levels",
            "FIXED_TIMESTAMP", "MAX_GDS_VERTICES"]
 
 FIXED_TIMESTAMP = datetime.datetime(1970, 1, 1, 0, 0, 0)
@@ -238,6 +238,16 @@ def build_gdstk_levels(cell_name: str, level_shapes: list[tuple[int, int, np.nda
         top.add(gdstk.Polygon(p.xy_db * s, layer=p.layer, datatype=p.datatype))
     lib.add(top, *masters)
     return lib
+
+
+def add_polygons(lib, cell_name: str, layer: int, datatype: int, vertex_arrays, *, db_unit_nm: float) -> None:
+    """Add polygons given as integer arrays ``(n, V, 2)`` (database units) to the named cell of a gdstk library."""
+    gdstk = _gdstk()
+    s = db_unit_nm / 1000.0
+    cell = next(c for c in lib.cells if c.name == cell_name)
+    for arr in vertex_arrays:  # groups of pieces (per band and vertex count)
+        for poly in arr:
+            cell.add(gdstk.Polygon(poly * s, layer=layer, datatype=datatype))
 
 
 def write_gdstk_library(lib, path, fmt: str) -> Path:

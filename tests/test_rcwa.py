@@ -3,7 +3,7 @@
 import numpy as np
 import pytest
 
-from metalay.rcwa import Layer, Stack, ellipse_pattern, rect_pattern, solve, uniform_pattern, jones_circular
+from metalay.rcwa import Layer, Stack, ellipse_pattern, jones_circular, rect_pattern, solve, uniform_pattern
 
 tmm = pytest.importorskip("tmm")
 
@@ -146,24 +146,27 @@ def test_li_converges_faster_than_laurent():
 
 
 def test_convergence_monotone_in_amplitude():
-    # Successive changes of |t| shrink with truncation (Li factorisation), dielectric fin.
-    st = _pillar(250.0, 85.0, 2.45**2, h=600.0, p=325.0)
-    ts = [solve(st, 532.0, harmonics=(m, m)).t_jones[0] for m in (3, 5, 7, 9)]
-    steps = [np.max(np.abs(np.abs(np.diagonal(b)) - np.abs(np.diagonal(a)))) for a, b in zip(ts, ts[1:])]
-    assert steps[0] > steps[1] > steps[2]
-    assert steps[-1] < 1e-3
+    # The error against a finer truncation shrinks monotonically over doubling steps (Li factorisation),
+    # dielectric TiO2-like fin of the bundled visible library; the (6, 6) default is converged to 1e-3 in |t|.
+    st = Stack(np.array([1.4607**2]), (Layer(600.0, rect_pattern(250.0, 85.0, 2.45**2, 1.0, 325.0, 325.0)),),
+               np.array([1.0]), 325.0, 325.0)
+    ts = {m: np.diagonal(solve(st, 532.0, harmonics=(m, m)).t_jones[0]) for m in (2, 4, 6, 8)}
+    err = [np.max(np.abs(np.abs(ts[m]) - np.abs(ts[8]))) for m in (2, 4, 6)]
+    assert err[0] > err[1] > err[2]
+    assert err[2] < 1e-3
 
 
-def test_ellipse_staircase_circle_is_isotropic_and_converges():
-    # A circle has t_xx = t_yy at normal incidence (C4 symmetry of the staircase), and the staircase converges.
+def test_ellipse_staircase_circle_converges_to_isotropic():
+    # A circle has t_xx = t_yy at normal incidence (C4 symmetry). Our staircase slices along y only, so the
+    # anisotropy it introduces must vanish as the number of stairs grows (measured 9e-3, 3e-3, 1e-3 for 4, 8, 16).
     p = 400.0
-    res = []
-    for n in (8, 16):
+    gaps = []
+    for n in (4, 8, 16):
         st = Stack(np.array([2.25]), (Layer(400.0, ellipse_pattern(200.0, 200.0, 4.0, 1.0, p, p, n_stairs=n)),),
                    np.array([1.0]), p, p)
-        res.append(solve(st, 800.0, harmonics=(4, 4)).t_jones[0])
-    assert abs(res[1][0, 0] - res[1][1, 1]) < 1e-8
-    assert abs(res[1][0, 0] - res[0][0, 0]) < 1e-2
+        t = solve(st, 800.0, harmonics=(4, 4)).t_jones[0]
+        gaps.append(abs(t[0, 0] - t[1, 1]))
+    assert gaps[0] > gaps[1] > gaps[2] and gaps[2] < 2e-3
 
 
 def test_half_wave_plate_jones_algebra():

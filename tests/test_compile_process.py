@@ -1,0 +1,138 @@
+"""Process settings wired through compile: bias, tone, write fields, marks, dose datatypes (read back from files)."""
+
+import copy
+
+import gdstk
+import numpy as np
+import pytest
+import shapely
+
+from conftest import SMALL_DESIGN, write_toml
+from metalay.compile import compile_design
+from metalay.gdsread import read_mask
+from metalay.lattice import Aperture
+from metalay.process import WriteFieldGrid, aperture_region_db, straddles_write_field
+from metalay.spec import load_design
+
+
+def _compile(tmp_path, data, name):
+    design = load_design(write_toml(tmp_path / f"{name}.toml", data))
+    return compile_design(design, tmp_path / name, show_progress=False)
+
+
+def _polys(path, layer, datatype=None):
+    flat = read_mask(path)
+    keep = (flat.layer == layer) & ((flat.datatype == datatype) if datatype is not None else True)
+    idx = np.flatnonzero(keep)
+    return [flat.xy_db[flat.start[k]:flat.start[k + 1]] for k in idx], flat.datatype[idx]
+
+
+def test_bias_area_closed_form(tmp_path):
+    # Source: closed form of a parallel offset with square (mitred) corners: (L + 2b)(W + 2b)
+    d = copy.deepcopy(SMALL_DESIGN)
+    d["mask"].update({"bias_nm": 10.0, "formats": ["gds"]})
+    res = _compile(tmp_path, d, "b")
+    polys, _ = _polys(res.files["gds"], 1, 0)
+    areas = shapely.area(shapely.polygons([p.astype(float) for p in polys]))
+    # snapping moves each vertex by <= 0.5 nm per axis: area changes by at most ~ perimeter * 0.71 nm
+    # Common practice (no source)
+    tol = 2 * (270 + 105) * 0.71
+    assert np.abs(areas - 270 * 105).max() <= tol
+    assert abs(areas.mean() - 270 * 105) < 40
+    assert res.manifest["process"]["bias_nm"] == 10.0
+
+
+def test_complement_plus_structures_is_aperture(tmp_path):
+    d = copy.deepcopy(SMALL_DESIGN)
+    d["aperture"] = {"shape": "circle", "diameter_um": 8.0}
+    d["mask"].update({"formats": ["gds", "oas"], "label": False})
+    s = _compile(tmp_path, d, "s")
+    d2 = copy.deepcopy(d)
+    d2["mask"].update({"tone": "complement", "complement_band_rows": 8})
+    c = _compile(tmp_path, d2, "c")
+    fins, _ = _polys(s.files["gds"], 1, 0)
+    comp, _ = _polys(c.files["gds"], 1, 0)
+    a_fins = shapely.area(shapely.polygons([p.astype(float) for p in fins])).sum()
+    comp_polys = [shapely.Polygon(p.astype(float)) for p in comp]
+    a_comp = sum(p.area for p in comp_polys)
+    region = aperture_region_db(Aperture("circle", diameter_um=8.0), db_unit_nm=1.0)
+    # Source: GDSII Stream Format Manual Release 6.0 (Calma 1987): at most 8191 XY points per boundary
+    assert max(len(p) for p in comp) <= 8190
+    assert all(p.is_valid for p in comp_polys)
+    # Common practice (no source): vertices move by <= half a grid unit, so the areas agree within
+    # (sqrt(2)/2) * (total perimeter) in nm^2
+    perimeter = sum(p.length for p in comp_polys)
+    assert abs(a_fins + a_comp - region.area) <= 0.71 * perimeter
+    union = shapely.union_all(comp_polys + [shapely.Polygon(p.astype(float)) for p in fins])
+    assert union.symmetric_difference(region).area <= 0.71 * perimeter
+    # pieces do not overlap each other
+    assert shapely.union_all(comp_polys).area == pytest.approx(a_comp, rel=1e-9)
+    assert c.manifest["process"]["complement"]["max_vertices"] <= 8190
+    # OASIS holds the same pieces
+    oas = gdstk.read_oas(str(c.files["oas"])).top_level()[0]
+    assert len([p for p in oas.polygons if p.layer == 1]) == len(comp)
+
+
+def test_write_field_shift_no_straddle_and_counts(tmp_path):
+    d = copy.deepcopy(SMALL_DESIGN)
+    d["mask"].update({"formats": ["gds"]})
+    base = _compile(tmp_path, d, "n")
+    fins, _ = _polys(base.files["gds"], 1, 0)
+    grid = WriteFieldGrid.from_um(5.0, (0.1, 0.1), db_unit_nm=1.0)
+    arr = np.stack(fins).astype(np.int64)
+    centres = np.rint(arr.mean(axis=1)).astype(np.int64)
+    # independent brute-force count: a fin straddles when its x or y extent contains a field boundary strictly
+    lo, hi = arr.min(axis=1), arr.max(axis=1)
+    brute = 0
+    for k in range(len(arr)):  # brute force on purpose (test oracle)
+        crosses = False
+        for ax in (0, 1):
+            for b in range(-20, 21):
+                line = 100 + 5000 * b
+                if lo[k, ax] < line < hi[k, ax]:
+                    crosses = True
+        brute += crosses
+    d2 = copy.deepcopy(d)
+    d2["mask"]["write_field"] = {"size_um": 5.0, "origin_um": [0.1, 0.1], "straddle": "shift",
+                                 "max_shift_nm": 200.0}
+    res = _compile(tmp_path, d2, "w")
+    counts = res.manifest["process"]["write_field"]["counts"]
+    assert counts["straddling"] == brute > 0
+    assert counts["shifted"] + counts["dropped"] == brute
+    fins2, _ = _polys(res.files["gds"], 1, 0)
+    arr2 = np.stack(fins2).astype(np.int64)
+    c2 = np.rint(arr2.mean(axis=1)).astype(np.int64)
+    assert not straddles_write_field(c2, arr2 - c2[:, None, :], grid).any()
+    assert len(fins2) == len(fins) - counts["dropped"]
+    d3 = copy.deepcopy(d2)
+    d3["mask"]["write_field"]["straddle"] = "drop"
+    res3 = _compile(tmp_path, d3, "w3")
+    assert res3.manifest["process"]["write_field"]["counts"]["dropped"] == brute
+    assert res3.manifest["counts"]["sites"] == len(fins) - brute
+
+
+def test_marks_and_dose_datatypes(tmp_path):
+    d = copy.deepcopy(SMALL_DESIGN)
+    d["mask"].update({"formats": ["gds"], "marks": {"kind": "cross", "size_um": 20.0, "line_width_um": 2.0},
+                      "dose_datatypes": {"fin-250x85": 7, "frame": 9}})
+    res = _compile(tmp_path, d, "m")
+    marks, _ = _polys(res.files["gds"], 4)
+    assert len(marks) == 4 and all(len(m) == 12 for m in marks)
+    frame, frame_dt = _polys(res.files["gds"], 2)
+    assert set(frame_dt) == {9}
+    fins, fin_dt = _polys(res.files["gds"], 1)
+    assert set(fin_dt) == {7}
+    outer = max(np.abs(np.concatenate(frame)).max(axis=0))
+    for m in marks:
+        assert np.abs(m).min(axis=0).max() >= outer  # outside the frame's outer edge on at least one axis
+
+
+def test_marks_overlapping_frame_refused(tmp_path, capsys):
+    from metalay.cli import main
+
+    d = copy.deepcopy(SMALL_DESIGN)
+    d["mask"]["marks"] = {"positions_um": [[0.0, 0.0]], "size_um": 5.0, "line_width_um": 1.0}
+    design = write_toml(tmp_path / "d.toml", d)
+    assert main(["compile", str(design), "-o", str(tmp_path / "o"), "--quiet"]) == 2
+    err = capsys.readouterr().err
+    assert "mask.marks.positions_um" in err and "\n" not in err.strip()
