@@ -10,8 +10,9 @@ mask carries is what the optics sees.  Decoding recovers, for each structure pol
   second moments of the vertices, ``0.5 atan2(2 S_xy, S_xx - S_yy)``; major/minor = twice the largest projection
   of the vertices on the principal axes.
 
-Each polygon is matched to the nearest library cell of a compatible kind by its two sizes (Chebyshev distance in
-nm, after removing a known process bias), and placed on the lattice by rounding its centre.  Work is done in
+Each polygon is matched to the library cell nearest in its two sizes (Chebyshev distance in nm, after removing a
+known process bias; on a near tie the same outline class wins, so a chamfered 8-vertex fin still matches its fin
+cell), and placed on the lattice by rounding its centre.  Work is done in
 chunks of polygons grouped by vertex count; the only Python loops run over chunks and over distinct vertex counts.
 """
 
@@ -229,9 +230,7 @@ def _match(shapes: ShapeTable, cs: CellShapes, bias_nm: float):
     if cs.a_nm.size == 1:  # one cell: no search
         da = np.abs(shapes.a_nm - np.float32(2 * bias_nm + cs.a_nm[0]))
         db = np.abs(shapes.b_nm - np.float32(2 * bias_nm + cs.b_nm[0]))
-        err = np.maximum(da, db, out=da)
-        err[shapes.is_rect != cs.is_rect[0]] = np.inf
-        return np.zeros(p, dtype=np.int32), err
+        return np.zeros(p, dtype=np.int32), np.maximum(da, db, out=da)
     best = np.full(p, -1, dtype=np.int32)
     err = np.full(p, np.inf, dtype=np.float32)
     for c0 in range(0, p, _CHUNK):
@@ -239,7 +238,8 @@ def _match(shapes: ShapeTable, cs: CellShapes, bias_nm: float):
         a = shapes.a_nm[sl, None] - 2 * bias_nm
         b = shapes.b_nm[sl, None] - 2 * bias_nm
         d = np.maximum(np.abs(a - cs.a_nm[None, :]), np.abs(b - cs.b_nm[None, :]))
-        d = np.where(shapes.is_rect[sl, None] == cs.is_rect[None, :], d, np.inf)
+        # sizes decide; on a near tie prefer the same outline class (4 vertices <-> fin/slot)
+        d = d + np.where(shapes.is_rect[sl, None] == cs.is_rect[None, :], 0.0, 1e-3)
         k = np.argmin(d, axis=1)
         best[sl] = k
         err[sl] = d[np.arange(k.size), k]

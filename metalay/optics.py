@@ -893,6 +893,9 @@ def check_optics(mask_path, library, *, design=None, target: OpticsTarget | None
         layer = mask_settings.layer("structures") if mask_settings is not None else (1, 0)
     if bias_nm is None:
         bias_nm = float(getattr(mask_settings, "bias_nm", 0.0) or 0.0)
+    if getattr(mask_settings, "tone", "structures") != "structures":
+        raise MetalayError(f"{mask_path}: mask.tone = {mask_settings.tone!r}; the optical check reads structure "
+                           "polygons and supports tone 'structures' only")
     t0 = time.perf_counter()
     flat = read_mask(mask_path, layers=[tuple(layer)])
     timings["read_s"] = time.perf_counter() - t0

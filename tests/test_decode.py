@@ -113,3 +113,21 @@ def test_decode_from_gdstk_written_file(tmp_path):
     order = np.lexsort((ii, jj))
     err = np.angle(np.exp(2j * (dec.rotation_rad - theta[order]))) / 2
     assert np.max(np.abs(np.degrees(err))) < 0.35
+
+
+def test_chamfered_fins_match_their_fin_cell():
+    # 8-vertex fins (corners chamfered by 10 nm, as a mask with chamfered bias corners has) keep length and width
+    # along their principal axes, so they decode to the fin cell with the right rotation.
+    theta = np.array([0.0, 0.7, 2.0])
+    ch = 10.0
+    L, W = 250.0, 85.0
+    ring = np.array([[L / 2 - ch, W / 2], [-L / 2 + ch, W / 2], [-L / 2, W / 2 - ch], [-L / 2, -W / 2 + ch],
+                     [-L / 2 + ch, -W / 2], [L / 2 - ch, -W / 2], [L / 2, -W / 2 + ch], [L / 2, W / 2 - ch]])
+    c, s = np.cos(theta)[:, None], np.sin(theta)[:, None]
+    vx = np.rint(c * ring[:, 0] - s * ring[:, 1]) + np.array([0, 325, 650])[:, None]
+    vy = np.rint(s * ring[:, 0] + c * ring[:, 1])
+    flat = FlatPolygons.from_arrays(1, 0, [8, 8, 8], np.stack([vx, vy], -1).reshape(-1, 2))
+    dec = decode.decode_sites(flat, [FIN, PILLAR], period_nm=325.0)
+    assert np.all(dec.cell == 0)
+    err = np.angle(np.exp(2j * (dec.rotation_rad - theta))) / 2
+    assert np.max(np.abs(np.degrees(err))) < 0.5

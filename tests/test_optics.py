@@ -207,3 +207,27 @@ def test_bad_polarization_and_unmatched_elements(tmp_path):
     with pytest.raises(MaskReadError, match="match no library cell"):
         optics.check_optics(path, lib2, target=optics.OpticsTarget(wavelength_nm=LAM, charge=None),
                             make_plots=False)
+
+
+def test_cli_and_compile_hook(tmp_path):
+    from metalay.cli import main
+
+    design = _design([{"kind": "vortex", "charge": -2}], 30.0)
+    path = _mask_from_design(tmp_path, design, "cli.gds")
+    toml = tmp_path / "d.toml"
+    toml.write_text('[design]\nname = "d"\nwavelength_nm = 532.0\ninput_spin = 1\nlibrary = "tio2-nanofin-532"\n'
+                    '[[phase]]\nkind = "vortex"\ncharge = -2\n[aperture]\nshape = "circle"\ndiameter_um = 30.0\n'
+                    '[lattice]\nkind = "square"\nperiod_nm = 325.0\n')
+    out = tmp_path / "cli_out"
+    assert main(["optics", str(path), "--design", str(toml), "-o", str(out), "--quiet"]) == 0
+    import json
+    figs = json.loads((out / "optics.json").read_text())
+    assert figs["fringe_reading"]["charge"] == -2 and figs["oam"]["purity"] > 0.99
+    # bad input: one-line error, exit code 2, no output folder
+    assert main(["optics", str(path), "--design", str(toml), "--pad-factor", "0.5", "-o",
+                 str(tmp_path / "never")]) == 2
+    assert not (tmp_path / "never").exists()
+    assert main(["optics", str(tmp_path / "missing.gds"), "--library", "tio2-nanofin-532"]) == 2
+    hook = optics.compile_check(path, make_library(), design)
+    assert hook["status"] == "ok" and "OAM purity" in hook["summary"]
+    assert all(not v["path"].startswith("/") for v in hook["files"].values())
