@@ -12,6 +12,8 @@ import hashlib
 import json
 import math
 import os
+import shutil
+import tempfile
 import time
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field, replace
@@ -126,7 +128,31 @@ def _sha256(path: Path) -> str:
     return h.hexdigest()
 
 
-def compile_design(design: Design, out_dir: str | Path, *, show_progress: bool | None = None,
+def compile_design(design: Design, out_dir: str | Path, **options) -> CompileResult:
+    """Compile ``design`` into mask files and a manifest in ``out_dir`` (all or nothing).
+
+    Files are first written into a staging folder inside ``out_dir`` and moved into place only when every stage
+    (writing, design rules, optics) has succeeded; on any error the staging folder is removed, so a failed run
+    leaves no mask and no manifest behind. Options are those of :func:`_compile_into`.
+    """
+    out = ensure_dir(out_dir)
+    stage = Path(tempfile.mkdtemp(prefix=".metalay-stage-", dir=out))
+    try:
+        result = _compile_into(design, stage, **options)
+        moved = {}
+        for entry in sorted(stage.rglob("*")):
+            if entry.is_file():
+                final = out / entry.relative_to(stage)
+                final.parent.mkdir(parents=True, exist_ok=True)
+                os.replace(entry, final)
+        for key, p in result.files.items():
+            moved[key] = out / Path(p).relative_to(stage)
+        return replace(result, out_dir=out, files=moved)
+    finally:
+        shutil.rmtree(stage, ignore_errors=True)
+
+
+def _compile_into(design: Design, out_dir: str | Path, *, show_progress: bool | None = None,
                    run_rules: bool | None = None, run_optics: bool | None = None,
                    sites_per_tile: int = SITES_PER_TILE) -> CompileResult:
     """Compile ``design`` into mask files and a manifest in ``out_dir``.

@@ -32,7 +32,7 @@ from __future__ import annotations
 import hashlib
 import os
 import time
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
@@ -1029,9 +1029,14 @@ def check_optics(mask_path, library, *, design=None, target: OpticsTarget | None
         room = min(target.center_um[0] - near.x_um[0], near.x_um[-1] - target.center_um[0],
                    target.center_um[1] - near.y_um[0], near.y_um[-1] - target.center_um[1])
         r_oam = min(diameter / 2 - 1.5 * max(near.dx_um, near.dy_um), room - max(near.dx_um, near.dy_um))
+        order = 3 if max(oam_field.shape) <= 2048 else 1
         spec = oam.oam_spectrum(oam_field, near.x_um, near.y_um, center=target.center_um, radius_um=r_oam,
-                                charges=charges, workers=workers)
+                                charges=charges, order=order, workers=workers)
+        notes.append(f"OAM spectrum: field resampled on a polar grid ({spec.n_radial} radii x {spec.n_azimuthal} "
+                     f"angles, {'cubic' if order == 3 else 'bilinear'} interpolation) within {spec.radius_um:.2f} "
+                     "um of the axis, after removing the tilt/lens/axicon terms of the design")
         figures["oam"] = {"about": "beam axis (non-vortex terms removed)", "charges": spec.charges.tolist(),
+                          "interpolation_order": order,
                           "weights": spec.weights.tolist(), "design_charge": target.charge,
                           "purity": spec.purity(target.charge), "radius_um": spec.radius_um,
                           "mean_charge": spec.mean_charge()}

@@ -89,8 +89,8 @@ RULE_KEYS = {
     "max_aspect_ratio": (float, 0.0, 1e6), "no_field_straddle": (bool, None, None),
     "inside_frame": (list, None, None),
 }
-_GEOM_CHUNK = 1 << 18
-_PAIR_CHUNK = 1 << 16
+_GEOM_CHUNK = 1 << 14   # polygons per feature chunk (cache-sized)
+_PAIR_CHUNK = 1 << 13   # neighbour pairs per spacing chunk (larger chunks fall out of cache)
 
 
 # ----------------------------------------------------------------------------------------------------------------
@@ -468,6 +468,154 @@ def _reduce(fn, cols):
     return out
 
 
+def _rel_coords(a: np.ndarray, b: np.ndarray):
+    """Coordinates of a and b (m, n, 2) relative to a's first vertex as (2, n, m) float64 (exact integers)."""
+    m, n, _ = a.shape
+    A = np.empty((2, n, m))
+    B = np.empty((2, n, m))
+    for c in range(2):
+        o = a[:, 0, c]
+        for k in range(n):
+            np.subtract(a[:, k, c], o, out=A[c, k], casting="unsafe")
+            np.subtract(b[:, k, c], o, out=B[c, k], casting="unsafe")
+    return A, B
+
+
+def _edges(P: np.ndarray):
+    """Edge vectors E (2, n, m), squared lengths L2 (n, m) and lengths SQ (n, m) of polygons P (2, n, m)."""
+    E = np.roll(P, -1, axis=1) - P
+    L2 = E[0] * E[0] + E[1] * E[1]
+    return E, L2, np.sqrt(L2)
+
+
+def _vertex_edge(P, Q, E, L2, SQ):
+    """Vertex-to-edge distances from every vertex of P to every edge of Q (both (2, n, m); edges E, L2, SQ of Q).
+
+    Returns (d, dot, wx, wy), each (n_vertices, n_edges, m); ``d`` is evaluated exactly like GEOS
+    pointToSegment (see :func:`_point_segment`): the end-point distance when the foot of the perpendicular falls
+    outside the segment, else |cross| / len2 * sqrt(len2).  ``dot <= 0`` and ``dot >= len2`` replace
+    ``r = dot / len2 <= 0`` and ``r >= 1``, equal for integer coordinates with len2 < 2**52.
+    """
+    wx = P[0][:, None, :] - Q[0][None, :, :]
+    wy = P[1][:, None, :] - Q[1][None, :, :]
+    ex, ey = E[0][None], E[1][None]
+    dot = wx * ex + wy * ey
+    da2 = wx * wx + wy * wy
+    db2 = np.roll(da2, -1, axis=1)
+    lo = dot <= 0
+    hi = dot >= L2[None]
+    with np.errstate(divide="ignore", invalid="ignore"):
+        dmid = np.abs(wx * ey - wy * ex) / L2[None] * SQ[None]
+    d = np.where(lo, np.sqrt(da2), np.where(hi, np.sqrt(db2), dmid))
+    return d, dot, wx, wy
+
+
+def _min_distance_candidates(A, B):
+    """min over all vertex-edge candidates in both directions, (m,), the same values as :func:`_vertex_edge`.
+
+    Both directions are stacked on a leading axis (0: vertices of A to edges of B, 1: B to A).  The end-point
+    distance of candidate (v, e) is |v - q_e| when dot <= 0 and |v - q_(e+1)| when dot >= len2, so vertex pair
+    (v, w) is a candidate when lo[v, w] or hi[v, w - 1]; sqrt is monotone and correctly rounded, so the minimum
+    is taken over squared integer distances first.
+    """
+    n = A.shape[1]
+    E = np.empty((2, 2) + A.shape[1:])         # (coordinate, direction, edge, pair)
+    for c in range(2):
+        np.subtract(B[c, 1:], B[c, :-1], out=E[c, 0, :-1])
+        np.subtract(B[c, 0], B[c, n - 1], out=E[c, 0, -1])
+        np.subtract(A[c, 1:], A[c, :-1], out=E[c, 1, :-1])
+        np.subtract(A[c, 0], A[c, n - 1], out=E[c, 1, -1])
+    L2 = E[0] * E[0] + E[1] * E[1]             # (direction, edge, pair)
+    SQ = np.sqrt(L2)
+    P = np.stack([A, B], 1)                    # (coordinate, direction, vertex, pair)
+    Q = np.stack([B, A], 1)
+    wx = P[0][:, :, None] - Q[0][:, None, :]   # (direction, vertex, edge, pair)
+    wy = P[1][:, :, None] - Q[1][:, None, :]
+    ex, ey = E[0][:, None], E[1][:, None]
+    l2 = L2[:, None]
+    dot = wx * ex
+    dot += wy * ey
+    lo = dot <= 0
+    hi = dot >= l2
+    da2 = wx * wx
+    da2 += wy * wy
+    vv = np.where(lo | np.roll(hi, 1, axis=2), da2, np.inf).min(axis=(0, 1, 2))
+    cr = wx * ey
+    cr -= wy * ex
+    np.abs(cr, out=cr)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        cr /= l2
+        cr *= SQ[:, None]
+    mid = np.where(lo | hi, np.inf, cr).min(axis=(0, 1, 2))
+    return np.minimum(np.sqrt(vv), mid)
+
+
+def _separated(A, B):
+    """Exact separating-axis test over the edge normals of both convex polygons (2, n, m) -> (m,) bool."""
+    m = A.shape[2]
+    sep = np.zeros(m, bool)
+    for P in (A, B):
+        nx = np.roll(P[1], -1, axis=0) - P[1]
+        ny = P[0] - np.roll(P[0], -1, axis=0)
+        pa = nx[:, None, :] * A[0][None] + ny[:, None, :] * A[1][None]   # (axes, vertices, m)
+        pb = nx[:, None, :] * B[0][None] + ny[:, None, :] * B[1][None]
+        amax, amin = pa.max(1), pa.min(1)
+        bmax, bmin = pb.max(1), pb.min(1)
+        sep |= ((amax < bmin) | (bmax < amin)).any(0)
+    return sep
+
+
+def _bbox_disjoint(A, B):
+    """True where the bounding boxes of A and B (2, n, m) are strictly disjoint (then the polygons are too)."""
+    return ((A[0].max(0) < B[0].min(0)) | (B[0].max(0) < A[0].min(0)) |
+            (A[1].max(0) < B[1].min(0)) | (B[1].max(0) < A[1].min(0)))
+
+
+def _pair_distance(A, B):
+    """Exact distance (m,) between convex polygons A, B given as (2, n, m) relative coordinates; 0 if they meet."""
+    d = _min_distance_candidates(A, B)
+    near = np.flatnonzero(~_bbox_disjoint(A, B))
+    if near.size:
+        sep = _separated(A[:, :, near], B[:, :, near])
+        d[near[~sep]] = 0.0
+    return d
+
+
+def _pair_points(A, B, d):
+    """Closest points (m, 4) = (xa, ya, xb, yb), relative coordinates, of pairs with distances ``d`` from
+    :func:`_pair_distance`: the first minimum in the order (A's vertices to B's edges, then B's vertices to A's
+    edges; vertex-major); for meeting pairs (d == 0) that point twice."""
+    m, n = A.shape[2], A.shape[1]
+    out = np.zeros((m, 4))
+    if m == 0:
+        return out
+    EA, L2A, SQA = _edges(A)
+    EB, L2B, SQB = _edges(B)
+    dAB, dotAB, _, _ = _vertex_edge(A, B, EB, L2B, SQB)
+    dBA, dotBA, _, _ = _vertex_edge(B, A, EA, L2A, SQA)
+    D = np.concatenate([dAB.reshape(n * n, m), dBA.reshape(n * n, m)])
+    k = np.argmin(D, axis=0)
+    r = np.arange(m)
+    flip = k >= n * n
+    kk = np.where(flip, k - n * n, k)
+    v, e = kk // n, kk % n
+    P = np.where(flip, B[:, v, r], A[:, v, r])          # (2, m) the vertex
+    Q0 = np.where(flip, A[:, e, r], B[:, e, r])         # edge start
+    Ev = np.where(flip, EA[:, e, r], EB[:, e, r])
+    l2 = np.where(flip, L2A[e, r], L2B[e, r])
+    dot = np.where(flip, dotBA[v, e, r], dotAB[v, e, r])
+    with np.errstate(divide="ignore", invalid="ignore"):
+        rr = np.where(l2 > 0, dot / l2, 0.0)
+    rc = np.clip(rr, 0.0, 1.0)
+    F = Q0 + rc * Ev                                      # foot on the edge
+    pa = np.where(flip, F, P)
+    pb = np.where(flip, P, F)
+    meet = d == 0
+    pb = np.where(meet, pa, pb)
+    out[:, 0], out[:, 1], out[:, 2], out[:, 3] = pa[0], pa[1], pb[0], pb[1]
+    return out
+
+
 def polygon_distance_kernel(a: np.ndarray, b: np.ndarray):
     """Exact distance between pairs of convex polygons with the same vertex count.
 
@@ -486,56 +634,34 @@ def polygon_distance_kernel(a: np.ndarray, b: np.ndarray):
     Notes
     -----
     Overlap is decided exactly by the separating-axis theorem with integer edge normals: two convex polygons are
-    disjoint iff their projections on some edge normal of either polygon are disjoint.  For disjoint polygons the
-    distance is attained at a vertex of one and an edge of the other, so ``d = min(min_v dist(v_a, edges_b),
-    min_v dist(v_b, edges_a))``.  Coordinates are taken relative to a's first vertex, so all products before the
-    final division are exact integers in float64 (for polygons under ~1e7 database units across).  The loops run
-    over the n vertices (the short axis); every operation is vectorised over the m pairs.
+    disjoint iff their projections on some edge normal of either polygon are disjoint (tested only where the
+    bounding boxes meet; disjoint boxes mean disjoint polygons).  For disjoint polygons the distance is attained
+    at a vertex of one and an edge of the other, so ``d = min(min_v dist(v_a, edges_b), min_v dist(v_b,
+    edges_a))`` with each point-to-segment distance evaluated like GEOS: ``|v - a|`` if ``(v - a).e <= 0``,
+    ``|v - b|`` if ``(v - a).e >= |e|^2``, else ``|e x (v - a)| / |e|^2 * |e|``.  Coordinates are taken relative to
+    a's first vertex, so all products before the final division are exact integers in float64 (for polygons
+    under ~1e7 database units across).  Every operation is vectorised over the m pairs (arrays (n, n, m)).
 
     References
     ----------
     Gottschalk, Lin, Manocha 1996, SIGGRAPH '96, 171-180 (separating axis theorem for convex sets).
     """
-    m, n, _ = a.shape
-    ox, oy = a[:, 0, 0], a[:, 0, 1]
-    Ax = [(a[:, k, 0] - ox).astype(np.float64) for k in range(n)]
-    Ay = [(a[:, k, 1] - oy).astype(np.float64) for k in range(n)]
-    Bx = [(b[:, k, 0] - ox).astype(np.float64) for k in range(n)]
-    By = [(b[:, k, 1] - oy).astype(np.float64) for k in range(n)]
-    sep = np.zeros(m, bool)
-    for Px, Py in ((Ax, Ay), (Bx, By)):
-        for k in range(n):
-            nx = Py[(k + 1) % n] - Py[k]
-            ny = Px[k] - Px[(k + 1) % n]
-            pa_ = [nx * Ax[v] + ny * Ay[v] for v in range(n)]
-            pb_ = [nx * Bx[v] + ny * By[v] for v in range(n)]
-            sep |= (_reduce(np.maximum, pa_) < _reduce(np.minimum, pb_)) | (
-                _reduce(np.maximum, pb_) < _reduce(np.minimum, pa_))
-    best = np.full(m, np.inf)
-    p = np.zeros((4, m))
-    for (Px, Py), (Qx, Qy), flip in (((Ax, Ay), (Bx, By), False), ((Bx, By), (Ax, Ay), True)):
-        for v in range(n):
-            for e in range(n):
-                d, fx, fy = _point_segment(Px[v], Py[v], Qx[e], Qy[e], Qx[(e + 1) % n], Qy[(e + 1) % n])
-                upd = d < best
-                if upd.any():
-                    best = np.where(upd, d, best)
-                    if flip:
-                        p[:, upd] = np.stack([fx[upd], fy[upd], Px[v][upd], Py[v][upd]])
-                    else:
-                        p[:, upd] = np.stack([Px[v][upd], Py[v][upd], fx[upd], fy[upd]])
-    d = np.where(sep, best, 0.0)
-    p[2:, ~sep] = p[:2, ~sep]
-    pa = np.stack([p[0] + ox, p[1] + oy], 1)
-    pb = np.stack([p[2] + ox, p[3] + oy], 1)
-    return d, pa, pb
+    a = np.asarray(a)
+    b = np.asarray(b)
+    A, B = _rel_coords(a, b)
+    d = _pair_distance(A, B)
+    p = _pair_points(A, B, d)
+    o = a[:, 0, :].astype(np.float64)
+    return d, p[:, :2] + o, p[:, 2:] + o
 
 
-def _group_features(X: np.ndarray):
+def _group_features(X: np.ndarray, want_angle: bool = True):
     """Per-polygon features of a uniform group X (m, n, 2) int64 (loops over the n vertices, vectorised over m).
 
-    Returns dict with area2 (signed, int64), strictly convex & simple flag, min interior angle (deg) and its
-    vertex, local width (convex polygons only; inf otherwise) with its segment, bbox (m, 4) int64.
+    Returns dict with area2 (signed, int64), strictly convex & simple flag, min interior angle (deg, only when
+    ``want_angle``) and the index of its vertex (kmin), local width (convex polygons only; inf otherwise), bbox
+    (m, 4) int64 and r2max (largest squared vertex distance from a bounding-box centre, a float).
+    Width segments: :func:`_width_segments`.
     """
     m, n, _ = X.shape
     ox, oy = X[:, 0, 0], X[:, 0, 1]
@@ -550,27 +676,69 @@ def _group_features(X: np.ndarray):
     ey = [ys[(k + 1) % n] - ys[k] for k in range(n)]
     sgn = np.sign(area2).astype(np.float64)
     convex = area2 != 0
-    total = np.zeros(m)
-    amin = np.full(m, np.inf)
-    kmin = np.zeros(m, np.int64)
+    # with every turn strictly in (0, pi) the total turning of a closed polygon with n <= 4 vertices is exactly
+    # 2 pi (a multiple of 2 pi below 4 pi), so the summed turning angle is needed only for n > 4 or the angle rule
+    need_turn = want_angle or n > 4
+    total = np.zeros(m) if need_turn else None
+    amin = np.full(m, np.inf) if want_angle else None
+    kmin = np.zeros(m, np.int8 if n < 128 else np.int64)
     for k in range(n):
         cr = ex[k - 1] * ey[k] - ey[k - 1] * ex[k]
+        convex &= cr * sgn > 0
+        if not need_turn:
+            continue
         dt = ex[k - 1] * ex[k] + ey[k - 1] * ey[k]
         turn = np.arctan2(cr, dt)
         total += turn
-        convex &= cr * sgn > 0
-        ang = np.degrees(np.pi - sgn * turn)
-        zero = ((ex[k - 1] == 0) & (ey[k - 1] == 0)) | ((ex[k] == 0) & (ey[k] == 0))
-        ang = np.where(zero, 180.0, ang)
-        upd = ang < amin
-        amin = np.where(upd, ang, amin)
-        kmin = np.where(upd, k, kmin)
-    convex &= np.abs(np.abs(total) - 2 * np.pi) < 1e-6
-    r = np.arange(m)
-    bbox = np.stack([_reduce(np.minimum, [X[:, k, 0] for k in range(n)]), _reduce(np.minimum, [X[:, k, 1] for k in
-                                                                                               range(n)]),
-                     _reduce(np.maximum, [X[:, k, 0] for k in range(n)]), _reduce(np.maximum, [X[:, k, 1] for k in
-                                                                                               range(n)])], 1)
+        if want_angle:
+            ang = np.degrees(np.pi - sgn * turn)
+            zero = ((ex[k - 1] == 0) & (ey[k - 1] == 0)) | ((ex[k] == 0) & (ey[k] == 0))
+            ang = np.where(zero, 180.0, ang)
+            upd = ang < amin
+            amin = np.where(upd, ang, amin)
+            kmin = np.where(upd, k, kmin).astype(kmin.dtype)
+    if need_turn:
+        convex &= np.abs(np.abs(total) - 2 * np.pi) < 1e-6
+    bbox = np.stack([_reduce(np.minimum, [X[:, k, 0] for k in range(n)]),
+                     _reduce(np.minimum, [X[:, k, 1] for k in range(n)]),
+                     _reduce(np.maximum, [X[:, k, 0] for k in range(n)]),
+                     _reduce(np.maximum, [X[:, k, 1] for k in range(n)])], 1)
+    width = np.full(m, np.inf)
+    for i in range(n):
+        l2 = ex[i] * ex[i] + ey[i] * ey[i]
+        sq = np.sqrt(l2)
+        for j in range(n):
+            if j == i or j == (i + 1) % n:
+                continue
+            wx, wy = xs[j] - xs[i], ys[j] - ys[i]
+            dt = wx * ex[i] + wy * ey[i]
+            cr = ex[i] * wy - ey[i] * wx
+            ok = (dt >= 0) & (dt <= l2) & (l2 > 0)
+            with np.errstate(divide="ignore", invalid="ignore"):
+                d = np.where(ok, np.abs(cr) / sq, np.inf)
+            np.minimum(width, d, out=width)
+    width = np.where(convex, width, np.inf)
+    r2max = 0.0
+    if m:
+        cx = (bbox[:, 0] + bbox[:, 2]) / 2.0
+        cy = (bbox[:, 1] + bbox[:, 3]) / 2.0
+        Xf = X.astype(np.float64)
+        r2max = float(((Xf[..., 0] - cx[:, None]) ** 2 + (Xf[..., 1] - cy[:, None]) ** 2).max())
+    return {"area2": area2, "convex": convex, "angle": amin, "kmin": kmin, "width": width, "bbox": bbox,
+            "r2max": r2max}
+
+
+def _width_segments(X: np.ndarray) -> np.ndarray:
+    """Width segment (m, 4) = (vertex, foot on the facing edge) of convex polygons X (m, n, 2), database units.
+
+    The first smallest (edge i, vertex j) pair in loop order, as in :func:`_group_features`.
+    """
+    m, n, _ = X.shape
+    ox, oy = X[:, 0, 0], X[:, 0, 1]
+    xs = [(X[:, k, 0] - ox).astype(np.float64) for k in range(n)]
+    ys = [(X[:, k, 1] - oy).astype(np.float64) for k in range(n)]
+    ex = [xs[(k + 1) % n] - xs[k] for k in range(n)]
+    ey = [ys[(k + 1) % n] - ys[k] for k in range(n)]
     width = np.full(m, np.inf)
     wseg = np.zeros((4, m))
     for i in range(n):
@@ -591,11 +759,7 @@ def _group_features(X: np.ndarray):
                 t = dt[upd] / l2[upd]
                 wseg[:, upd] = np.stack([xs[j][upd], ys[j][upd], xs[i][upd] + t * ex[i][upd],
                                          ys[i][upd] + t * ey[i][upd]])
-    width = np.where(convex, width, np.inf)
-    wseg = (wseg + np.stack([ox, oy, ox, oy]).astype(np.float64)).T
-    angle_xy = X[r, kmin].astype(np.float64)
-    return {"area2": area2, "convex": convex, "angle": amin, "angle_xy": angle_xy, "width": width, "wseg": wseg,
-            "bbox": bbox}
+    return (wseg + np.stack([ox, oy, ox, oy]).astype(np.float64)).T
 
 
 def _ring(flat: FlatPolygons, k: int) -> np.ndarray:
@@ -715,97 +879,153 @@ def _pairs_tree(flat: FlatPolygons, idx: np.ndarray, s_db: float):
     return idx[a], idx[b], d, c
 
 
-def _lattice_pairs(bbox: np.ndarray, radius: np.ndarray, reach_db: float, max_stencil: int = 400):
-    """Candidate neighbour pairs for polygons centred on a rectangular grid of sites, or None if not a lattice.
+def _lattice_plan(bbox: np.ndarray, rmax: float, reach_db: float, max_stencil: int = 400):
+    """Site grid of polygons centred on a rectangular grid of sites, or None if they are not on one.
 
     A site is the doubled bounding-box centre (integer); the grid steps are the gcd of the site differences per
-    axis.  Every pair whose centre distance is <= 2 * max(radius) + reach_db is enumerated, so no pair closer
+    axis.  The stencil holds every site offset whose centre distance is <= 2 * rmax + reach_db, so no pair closer
     than reach_db can be missed (distance >= centre distance - r_a - r_b).
+
+    Returns dict: grid (flat array of polygon positions, -1 where empty), I, J (P,) int32 site indices, ni, nj,
+    row_major (grid index i * nj + j, else j * ni + i: chosen to follow the polygon order), offsets [(di, dj)]
+    (half stencil), gx, gy (doubled site steps).
     """
     P = bbox.shape[0]
     if P < 2:
         return None
-    c2x = bbox[:, 0] + bbox[:, 2]
-    c2y = bbox[:, 1] + bbox[:, 3]
-    dx = c2x - c2x.min()
-    dy = c2y - c2y.min()
-    gx = int(np.gcd.reduce(dx))
-    gy = int(np.gcd.reduce(dy))
-    gx = gx if gx > 0 else 1 << 40
-    gy = gy if gy > 0 else 1 << 40
-    i = dx // gx
-    j = dy // gy
-    ni, nj = int(i.max()) + 1, int(j.max()) + 1
+    steps, ids = [], []
+    for ax in (0, 1):
+        c2 = bbox[:, ax] + bbox[:, ax + 2]
+        c2 -= c2.min()
+        g = int(np.gcd.reduce(c2))
+        g = g if g > 0 else 1 << 40
+        ids.append(c2 // g)
+        steps.append(g)
+    gx, gy = steps
+    ni, nj = int(ids[0].max()) + 1, int(ids[1].max()) + 1
     if ni * nj > 8 * P + (1 << 20):
         return None
-    reach = 2.0 * float(radius.max()) + reach_db
+    reach = 2.0 * rmax + reach_db
     hx, hy = gx / 2.0, gy / 2.0  # site steps in database units
     kx = int(math.floor(reach / hx)) if hx < 1e30 else 0
     ky = int(math.floor(reach / hy)) if hy < 1e30 else 0
     if (2 * kx + 1) * (2 * ky + 1) > 2 * max_stencil:
         return None
-    grid = np.full(ni * nj, -1, np.int64)
-    flat_idx = i * nj + j
-    grid[flat_idx] = np.arange(P)
-    if not np.array_equal(grid[flat_idx], np.arange(P)):
+    it = np.int32 if max(ni, nj, P) < 2 ** 31 - 1 else np.int64
+    I, J = ids[0].astype(it), ids[1].astype(it)
+    del ids
+    # grid layout following the polygon order (consecutive polygons -> nearby grid cells)
+    s = slice(0, min(P, 1 << 16))
+    kr = I[s].astype(np.int64) * nj + J[s]
+    kc = J[s].astype(np.int64) * ni + I[s]
+    row_major = bool(np.abs(np.diff(kr)).sum() <= np.abs(np.diff(kc)).sum())
+    key = I.astype(np.int64) * nj + J if row_major else J.astype(np.int64) * ni + I
+    grid = np.full(ni * nj, -1, it)
+    grid[key] = np.arange(P, dtype=it)
+    if not np.array_equal(grid[key], np.arange(P, dtype=it)):
         return None  # two polygons on one site
-    grid = grid.reshape(ni, nj)
+    del key
     offsets = [(di, dj) for di in range(0, kx + 1) for dj in range(-ky, ky + 1)
                if (di > 0 or dj > 0) and math.hypot(di * hx, dj * hy) <= reach]
-    pa, pb = [], []
-    for di, dj in offsets:
-        if di >= ni or abs(dj) >= nj:
-            continue
-        A = grid[0:ni - di, max(0, -dj):nj - max(0, dj)]
-        B = grid[di:ni, max(0, dj):nj - max(0, -dj)]
-        msk = (A >= 0) & (B >= 0)
-        pa.append(A[msk])
-        pb.append(B[msk])
-    if not pa:
+    offsets = [(di, dj) for di, dj in offsets if di < ni and abs(dj) < nj]
+    return {"grid": grid, "I": I, "J": J, "ni": ni, "nj": nj, "row_major": row_major, "offsets": offsets,
+            "n_offsets": len([1 for di in range(0, kx + 1) for dj in range(-ky, ky + 1)
+                              if (di > 0 or dj > 0) and math.hypot(di * hx, dj * hy) <= reach]),
+            "gx": gx, "gy": gy}
+
+
+def _lattice_chunk(X, bbox, plan, lo: int, hi: int, s_db: float):
+    """Pairs (a < b positions) of polygons [lo, hi) and their stencil neighbours closer than s_db (or meeting).
+
+    Returns (a, b, d, c) with c (k, 4) the closest points in database units (on a, then on b).
+    """
+    grid, I, J, ni, nj = plan["grid"], plan["I"], plan["J"], plan["ni"], plan["nj"]
+    Ic = I[lo:hi].astype(np.int64)
+    Jc = J[lo:hi].astype(np.int64)
+    ar = np.arange(lo, hi)
+    la, lb, lw = [], [], []
+    for k, (di, dj) in enumerate(plan["offsets"]):
+        ii, jj = Ic + di, Jc + dj
+        ok = (ii < ni) & (jj >= 0) & (jj < nj)
+        key = ii[ok] * nj + jj[ok] if plan["row_major"] else jj[ok] * ni + ii[ok]
+        nb = grid[key].astype(np.int64)
+        has = nb >= 0
+        la.append(ar[ok][has])
+        lb.append(nb[has])
+        lw.append(np.full(int(has.sum()), k, np.int16))
+    a, b, w = np.concatenate(la), np.concatenate(lb), np.concatenate(lw)
+    # exact-safe prefilter 1: bounding-box distance (integer) >= s_db cannot violate
+    ba, bb = bbox[a], bbox[b]
+    gxp = np.maximum(np.maximum(bb[:, 0] - ba[:, 2], ba[:, 0] - bb[:, 2]), 0).astype(np.float64)
+    gyp = np.maximum(np.maximum(bb[:, 1] - ba[:, 3], ba[:, 1] - bb[:, 3]), 0).astype(np.float64)
+    keep = gxp * gxp + gyp * gyp <= s_db * s_db * (1.0 + 1e-9)
+    a, b, w = a[keep], b[keep], w[keep]
+    if a.size == 0:
         z = np.zeros(0, np.int64)
-        return z, z, len(offsets)
-    return np.concatenate(pa), np.concatenate(pb), len(offsets)
+        return z, z, np.zeros(0), np.zeros((0, 4))
+    A, B = _rel_coords(X[a], X[b])
+    # exact-safe prefilter 2 (diagonal offsets): projection gap along the site offset direction
+    diag = [k for k, (di, dj) in enumerate(plan["offsets"]) if di != 0 and dj != 0]
+    if diag:
+        off = np.array(plan["offsets"], np.float64) * np.array([plan["gx"], plan["gy"]], np.float64)
+        ux, uy = off[w, 0], off[w, 1]
+        norm = np.hypot(ux, uy)
+        gap = (B[0] * ux + B[1] * uy).min(0) - (A[0] * ux + A[1] * uy).max(0)
+        keep = ~np.isin(w, diag) | (gap <= s_db * norm * (1.0 + 1e-9))
+        if not keep.all():
+            a, b, A, B = a[keep], b[keep], A[:, :, keep], B[:, :, keep]
+    d = _pair_distance(A, B)
+    hit = np.flatnonzero((d < s_db) | (d == 0))
+    a, b, d = a[hit], b[hit], d[hit]
+    c = _pair_points(A[:, :, hit], B[:, :, hit], d)
+    o = X[a, 0, :].astype(np.float64)
+    c += np.concatenate([o, o], 1)
+    return a, b, d, c
 
 
-def _pairs_lattice(flat: FlatPolygons, idx: np.ndarray, n: int, bbox: np.ndarray, s_db: float):
-    """Lattice fast path over polygons ``idx`` (all strictly convex with ``n`` vertices); None if not a lattice."""
-    X = _uniform_view(flat, idx, n)
-    cx = (bbox[:, 0] + bbox[:, 2]) / 2.0
-    cy = (bbox[:, 1] + bbox[:, 3]) / 2.0
-    radius = np.zeros(idx.size)
-    for lo in range(0, idx.size, _GEOM_CHUNK):
-        hi = min(idx.size, lo + _GEOM_CHUNK)
-        Xc = X[lo:hi].astype(np.float64)
-        radius[lo:hi] = np.sqrt(((Xc[..., 0] - cx[lo:hi, None]) ** 2 + (Xc[..., 1] - cy[lo:hi, None]) ** 2).max(1))
-    got = _lattice_pairs(bbox, radius, s_db)
-    if got is None:
+def _pairs_lattice(flat: FlatPolygons, idx: np.ndarray, n: int, bbox: np.ndarray, s_db: float, rmax: float,
+                   threads: int = 2):
+    """Lattice fast path over polygons ``idx`` (all strictly convex with ``n`` vertices); None if not a lattice.
+
+    Pairs are produced polygon chunk by polygon chunk (cache-sized, optionally on ``threads`` threads; the
+    result is the same as serial, chunks are concatenated in order).
+    """
+    plan = _lattice_plan(bbox, rmax, s_db)
+    if plan is None:
         return None
-    a, b, n_off = got
-    # conservative prefilters: centre distance minus circumradii, and bounding-box distance
-    cd = np.hypot(cx[a] - cx[b], cy[a] - cy[b]) - radius[a] - radius[b]
-    gxp = np.maximum(np.maximum(bbox[b, 0] - bbox[a, 2], bbox[a, 0] - bbox[b, 2]), 0).astype(np.float64)
-    gyp = np.maximum(np.maximum(bbox[b, 1] - bbox[a, 3], bbox[a, 1] - bbox[b, 3]), 0).astype(np.float64)
-    lb = np.maximum(cd, np.hypot(gxp, gyp))
-    keep = (lb < s_db) | (lb <= 0)
-    a, b = a[keep], b[keep]
-    out_a, out_b, out_d, out_c = [], [], [], []
-    step = max(1024, _PAIR_CHUNK * 16 // (n * n))
-    for lo in range(0, a.size, step):
-        aa, bb = a[lo:lo + step], b[lo:lo + step]
-        d, p, q = polygon_distance_kernel(X[aa], X[bb])
-        hit = (d < s_db) | (d == 0)
-        if hit.any():
-            out_a.append(aa[hit]), out_b.append(bb[hit]), out_d.append(d[hit])
-            out_c.append(np.concatenate([p[hit], q[hit]], 1))
-    if not out_a:
-        z = np.zeros(0, np.int64)
-        return z, z, np.zeros(0), np.zeros((0, 4)), n_off
-    a, b = np.concatenate(out_a), np.concatenate(out_b)
-    lo_, hi_ = np.minimum(a, b), np.maximum(a, b)
-    c = np.concatenate(out_c)
+    X = _uniform_view(flat, idx, n)
+    P = idx.size
+    step = max(256, _PAIR_CHUNK // max(1, len(plan["offsets"])))
+    starts = list(range(0, P, step))
+
+    def work(lo):
+        return _lattice_chunk(X, bbox, plan, lo, min(P, lo + step), s_db)
+
+    if threads > 1 and len(starts) > 8:
+        from concurrent.futures import ThreadPoolExecutor
+        with ThreadPoolExecutor(max_workers=threads) as ex:
+            parts = list(ex.map(work, starts))
+    else:
+        parts = [work(lo) for lo in starts]
+    n_off = plan["n_offsets"]
+    del plan
+    a = np.concatenate([p[0] for p in parts])
+    b = np.concatenate([p[1] for p in parts])
+    d = np.concatenate([p[2] for p in parts])
+    c = np.concatenate([p[3] for p in parts])
+    del parts
     swap = a > b
+    lo_, hi_ = np.where(swap, b, a), np.where(swap, a, b)
     c[swap] = c[swap][:, [2, 3, 0, 1]]
-    return idx[lo_], idx[hi_], np.concatenate(out_d), c, n_off
+    return idx[lo_], idx[hi_], d, c, n_off
+
+
+def _threads() -> int:
+    """Worker threads for the spacing chunks: 2 (numpy releases the GIL), 1 when METALAY_THREADS=1."""
+    try:
+        return max(1, min(8, int(os.environ.get("METALAY_THREADS", "2"))))
+    except ValueError:
+        return 2
 
 
 def _uniform_view(flat: FlatPolygons, idx: np.ndarray, n: int) -> np.ndarray:
@@ -906,43 +1126,68 @@ def _check_layer(flat, lr: LayerRules, rules: RuleSet, db_nm, db_um, method, tim
     idx = np.flatnonzero(sel)
     P = idx.size
     counts = np.diff(flat.start)[idx]
-    feats = {k: [] for k in ("area2", "convex", "angle", "angle_xy", "width", "wseg", "bbox", "idx")}
     groups = np.unique(counts) if P else np.zeros(0, np.int64)
     small = idx[counts < 3]
-    for n in groups:
-        if n < 3:
-            continue
-        gi = idx[counts == n] if groups.size > 1 else idx
+    want_angle = lr.min_angle_deg is not None
+    parts = [(int(n), idx[counts == n] if groups.size > 1 else idx) for n in groups if n >= 3]
+    M = sum(gi.size for _, gi in parts)
+    F = {"area2": np.zeros(M, np.int64), "convex": np.zeros(M, bool), "angle": np.full(M, np.inf),
+         "kmin": np.zeros(M, np.int64 if groups.size and groups.max() >= 128 else np.int8),
+         "width": np.zeros(M), "bbox": np.zeros((M, 4), np.int64),
+         "idx": parts[0][1] if len(parts) == 1 else (np.concatenate([gi for _, gi in parts]) if parts else
+                                                      np.zeros(0, np.int64))}
+    r2max = 0.0
+    pos = 0
+    for n, gi in parts:
+        whole = gi.size == flat.count and flat.xy_db.shape[0] == flat.count * n
         for lo in range(0, gi.size, _GEOM_CHUNK):
             sub = gi[lo:lo + _GEOM_CHUNK]
-            X = _uniform_view(flat, gi, int(n))[lo:lo + _GEOM_CHUNK] if gi.size == flat.count else \
+            X = flat.xy_db.reshape(-1, n, 2)[lo:lo + _GEOM_CHUNK] if whole else \
                 flat.xy_db[flat.start[sub][:, None] + np.arange(n)]
-            f = _group_features(X)
-            for k in f:
-                feats[k].append(f[k])
-            feats["idx"].append(sub)
-    if feats["idx"]:
-        F = {k: np.concatenate(v) for k, v in feats.items()}
-    else:
-        F = {"area2": np.zeros(0, np.int64), "convex": np.zeros(0, bool), "angle": np.zeros(0),
-             "angle_xy": np.zeros((0, 2)), "width": np.zeros(0), "wseg": np.zeros((0, 4)),
-             "bbox": np.zeros((0, 4), np.int64), "idx": np.zeros(0, np.int64)}
+            f = _group_features(X, want_angle)
+            s = slice(pos + lo, pos + lo + sub.size)
+            for k in ("area2", "convex", "width", "bbox", "kmin"):
+                F[k][s] = f[k]
+            if want_angle:
+                F["angle"][s] = f["angle"]
+            r2max = max(r2max, f["r2max"])
+        pos += gi.size
     # polygons needing shapely: not strictly convex, or fewer than 3 vertices
     need_sh = np.concatenate([F["idx"][~F["convex"]], small])
-    sh_pos = {int(k): p for p, k in enumerate(F["idx"][~F["convex"]])}
     sh = {}
     for k in need_sh.tolist():
         sh[k] = _shapely_polygon_analysis(_ring(flat, k), lr.min_width_nm is not None or lr.max_aspect_ratio
                                           is not None, lr.min_notch_nm is not None)
-    del sh_pos
-    width = F["width"].copy()
-    wseg = F["wseg"].copy()
-    if sh:
-        pos = {int(k): p for p, k in enumerate(F["idx"])}
-        for k, res in sh.items():
-            if res["width"] is not None and k in pos:
-                width[pos[k]] = res["width"][0]
-                wseg[pos[k]] = res["width"][1]
+    width = F["width"]
+    sh_width = {k: r["width"] for k, r in sh.items() if r["width"] is not None}
+    if sh_width:
+        ks = np.array(sorted(sh_width), np.int64)
+        order = np.argsort(F["idx"], kind="stable")
+        at = np.searchsorted(F["idx"], ks, sorter=order)
+        ok = at < order.size
+        ok[ok] = F["idx"][order[at[ok]]] == ks[ok]
+        rows = order[at[ok]]
+        width[rows] = [sh_width[k][0] for k in ks[ok].tolist()]
+        sh_seg = dict(zip(rows.tolist(), (sh_width[k][1] for k in ks[ok].tolist())))
+    else:
+        sh_seg = {}
+
+    def width_seg(rows):
+        """Width segments (database units) of rows of F: convex ones recomputed, shapely ones from the analysis."""
+        seg = np.zeros((rows.size, 4))
+        ks = F["idx"][rows]
+        cnt = np.diff(flat.start)[ks]
+        for nn in np.unique(cnt):
+            s = np.flatnonzero(cnt == nn)
+            if nn >= 3:
+                for lo in range(0, s.size, _GEOM_CHUNK):
+                    ss = s[lo:lo + _GEOM_CHUNK]
+                    seg[ss] = _width_segments(flat.xy_db[flat.start[ks[ss]][:, None] + np.arange(nn)])
+        for p, r in enumerate(rows.tolist()):
+            if r in sh_seg:
+                seg[p] = sh_seg[r]
+        return seg
+
     timings.append((f"geometry {tag}", time.perf_counter() - t0))
 
     out = []
@@ -965,7 +1210,7 @@ def _check_layer(flat, lr: LayerRules, rules: RuleSet, db_nm, db_um, method, tim
     def r_width():
         w = lr.min_width_nm / db_nm
         bad = np.flatnonzero(width < w)
-        emit("width", lr.min_width_nm, _violations("min", F["idx"][bad], None, width[bad] * db_nm, wseg[bad], db_um),
+        emit("width", lr.min_width_nm, _violations("min", F["idx"][bad], None, width[bad] * db_nm, width_seg(bad), db_um),
              P, source_key="min_width_nm")
 
     def r_area():
@@ -1008,7 +1253,7 @@ def _check_layer(flat, lr: LayerRules, rules: RuleSet, db_nm, db_um, method, tim
 
     def r_angle():
         bad = np.flatnonzero(F["angle"] < lr.min_angle_deg)
-        p = F["angle_xy"][bad]
+        p = flat.xy_db[flat.start[F["idx"][bad]] + F["kmin"][bad]].astype(np.float64)
         emit("angle", lr.min_angle_deg, _violations("min", F["idx"][bad], None, F["angle"][bad],
                                                     np.concatenate([p, p], 1), db_um), P, source_key="min_angle_deg")
 
@@ -1039,23 +1284,25 @@ def _check_layer(flat, lr: LayerRules, rules: RuleSet, db_nm, db_um, method, tim
     def r_aspect():
         ar = lr.film_height_nm / (width * db_nm)
         bad = np.flatnonzero(ar > lr.max_aspect_ratio)
-        emit("aspect_ratio", lr.max_aspect_ratio, _violations("max", F["idx"][bad], None, ar[bad], wseg[bad], db_um),
+        emit("aspect_ratio", lr.max_aspect_ratio, _violations("max", F["idx"][bad], None, ar[bad], width_seg(bad), db_um),
              P, source_key="max_aspect_ratio")
 
     def r_straddle():
         if rules.write_field_um is None:
             raise RulesError(f"layer {tag}: no_field_straddle = true needs a [write_field] table with size_um")
         size = rules.write_field_um * 1000.0 / db_nm
-        b = F["bbox"].astype(np.float64)
-        vals = []
-        for ax in (0, 1):
-            org = rules.write_field_centre_um[ax] * 1000.0 / db_nm - size / 2
-            lo, hi = b[:, ax] - org, b[:, ax + 2] - org
-            k = np.floor(lo / size)
-            bnd = (k + 1) * size  # first boundary above the lower edge
-            cross = hi > bnd
-            vals.append(np.where(cross, np.minimum(bnd - lo, hi - bnd), 0.0))
-        v = np.maximum(vals[0], vals[1])
+        v = np.zeros(F["idx"].size)
+        for c0 in range(0, v.size, 1 << 16):
+            b = F["bbox"][c0:c0 + (1 << 16)].astype(np.float64)
+            vals = []
+            for ax in (0, 1):
+                org = rules.write_field_centre_um[ax] * 1000.0 / db_nm - size / 2
+                lo, hi = b[:, ax] - org, b[:, ax + 2] - org
+                k = np.floor(lo / size)
+                bnd = (k + 1) * size  # first boundary above the lower edge
+                cross = hi > bnd
+                vals.append(np.where(cross, np.minimum(bnd - lo, hi - bnd), 0.0))
+            v[c0:c0 + b.shape[0]] = np.maximum(vals[0], vals[1])
         bad = np.flatnonzero(v > 0)
         emit("field_straddle", rules.write_field_um * 1000.0,
              _violations("max", F["idx"][bad], None, v[bad] * db_nm, bbox_seg(bad), db_um), P)
@@ -1100,8 +1347,12 @@ def _check_layer(flat, lr: LayerRules, rules: RuleSet, db_nm, db_um, method, tim
         name = "strtree"
         if method != "tree" and small.size == 0 and groups.size == 1 and P >= 2 and F["convex"].all():
             n = int(groups[0])
-            order = np.argsort(F["idx"], kind="stable")
-            got = _pairs_lattice(flat, F["idx"][order], n, F["bbox"][order], s_db)
+            if np.all(F["idx"][1:] > F["idx"][:-1]):
+                got = _pairs_lattice(flat, F["idx"], n, F["bbox"], s_db, math.sqrt(r2max), threads=_threads())
+            else:
+                order = np.argsort(F["idx"], kind="stable")
+                got = _pairs_lattice(flat, F["idx"][order], n, F["bbox"][order], s_db, math.sqrt(r2max),
+                                     threads=_threads())
             if got is not None:
                 name = f"lattice ({got[4]} neighbour offsets)"
                 got = got[:4]

@@ -120,3 +120,19 @@ def test_demo_runs_from_any_directory(tmp_path):
 def test_parse_design_in_memory_notebook_use():
     d = parse_design(copy.deepcopy(SMALL_DESIGN))
     assert d.sigma == 1 and d.lattice.period_nm == 325.0 and len(d.terms) == 2
+
+
+def test_failed_check_leaves_no_output(tmp_path, small_design_dict, monkeypatch):
+    # all or nothing: a failure after the masks were written removes them (no partial output)
+    import metalay.compile as C
+
+    def boom(*a, **k):
+        raise RuntimeError("checker crashed")
+
+    monkeypatch.setattr(C, "_run_rules", boom)
+    d = copy.deepcopy(small_design_dict)
+    d["checks"]["rules"] = True
+    design = load_design(write_toml(tmp_path / "d.toml", d))
+    with pytest.raises(RuntimeError):
+        compile_design(design, tmp_path / "o", show_progress=False)
+    assert list((tmp_path / "o").iterdir()) == []
