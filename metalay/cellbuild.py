@@ -301,9 +301,9 @@ def _responses(spec: BuildSpec, dims: dict, height, wavelength_nm, harmonics, *,
         if spec.kind == "round_pillar":
             # a round pillar is isotropic at normal incidence; the y-sliced staircase breaks that by ~1e-3, so
             # both columns carry the polarisation average (the contract's t_long == t_short)
-            for a, b in ((0, 1), (2, 3)):
-                avg = (out[a][sl] + out[b][sl]) / 2
-                out[a][sl], out[b][sl] = avg, avg
+            for i_l, i_s in ((0, 1), (2, 3)):
+                avg = (out[i_l][sl] + out[i_s][sl]) / 2
+                out[i_l][sl], out[i_s][sl] = avg, avg
         if progress is not None:
             progress(sl.stop - sl.start)
     return tuple(out)

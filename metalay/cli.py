@@ -1,13 +1,14 @@
 """Command line: a thin layer over the Python API. Only this module (and the cli_* helpers it registers) prints.
 
 Exit codes: 0 success; 1 design-rule violations (when asked to fail on them); 2 bad input; 3 unreadable mask;
-130 interrupted.
+70 internal error; 130 interrupted.
 """
 
 from __future__ import annotations
 
 import argparse
 import importlib
+import os
 import sys
 from importlib import resources
 from pathlib import Path
@@ -116,6 +117,12 @@ def main(argv=None) -> int:
     except KeyboardInterrupt:
         print("metalay: interrupted (no partial output was left)", file=sys.stderr)
         return 130
+    except Exception as exc:  # an internal fault, not bad input: one line, details on request
+        if os.environ.get("METALAY_DEBUG"):
+            raise
+        print(f"metalay: internal error: {type(exc).__name__}: {exc} (set METALAY_DEBUG=1 for the traceback; "
+              "please report it)", file=sys.stderr)
+        return 70
 
 
 if __name__ == "__main__":  # pragma: no cover

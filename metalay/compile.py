@@ -430,8 +430,7 @@ def _compile_into(design: Design, out_dir: str | Path, *, show_progress: bool | 
     }
     atomic_write_text(out / "manifest.json", json.dumps(manifest, sort_keys=True, indent=2, default=str) + "\n")
     timings["total_s"] = time.perf_counter() - t_start
-    atomic_write_text(out / "timings.json", json.dumps({k: round(v, 3) for k, v in timings.items()},
-                                                       sort_keys=True, indent=2) + "\n")
+    atomic_write_text(out / "timings.json", json.dumps(_rounded(timings), sort_keys=True, indent=2) + "\n")
     files["manifest"] = out / "manifest.json"
     summary = _summary(design, library, manifest, files)
     return CompileResult(out, files, manifest, tuple(warnings), tuple(summary), timings)
@@ -643,6 +642,17 @@ def _run_tiles(tiles, ctx: _TileContext, fn=_tile):
             yield pending.popleft().result()
 
 
+def _rounded(obj):
+    """Timings for timings.json: floats rounded to milliseconds, nested dicts and lists kept."""
+    if isinstance(obj, dict):
+        return {str(k): _rounded(v) for k, v in obj.items()}
+    if isinstance(obj, (list, tuple)):
+        return [_rounded(v) for v in obj]
+    if isinstance(obj, float):
+        return round(obj, 3)
+    return obj
+
+
 def library_cells(library: CellLibrary, cell_ids: list[str]) -> list[str]:
     """The cell ids in use (validated)."""
     return [library.cells[library.cell_index(c)].id for c in cell_ids]
@@ -715,7 +725,12 @@ def _summary(design: Design, library: CellLibrary, manifest: dict, files: dict) 
     for fmt, info in manifest["files"].items():
         lines.append(f"wrote {info['name']} ({info['bytes'] / 1e6:.2f} MB, sha256 {info['sha256'][:12]})")
     for key, res in manifest["checks"].items():
-        lines.append(f"{key} check: {res.get('status', '?')} {res.get('summary', '')}".rstrip())
+        summary = res.get("summary", "")
+        if isinstance(summary, (list, tuple)):
+            lines.append(f"{key} check: {res.get('status', '?')}")
+            lines.extend(f"  {line}" for line in summary)
+        else:
+            lines.append(f"{key} check: {res.get('status', '?')} {summary}".rstrip())
     for w in manifest["warnings"]:
         lines.append(f"warning: {w}")
     return lines

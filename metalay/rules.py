@@ -481,44 +481,18 @@ def _rel_coords(a: np.ndarray, b: np.ndarray):
     return A, B
 
 
-def _edges(P: np.ndarray):
-    """Edge vectors E (2, n, m), squared lengths L2 (n, m) and lengths SQ (n, m) of polygons P (2, n, m)."""
-    E = np.roll(P, -1, axis=1) - P
-    L2 = E[0] * E[0] + E[1] * E[1]
-    return E, L2, np.sqrt(L2)
-
-
-def _vertex_edge(P, Q, E, L2, SQ):
-    """Vertex-to-edge distances from every vertex of P to every edge of Q (both (2, n, m); edges E, L2, SQ of Q).
-
-    Returns (d, dot, wx, wy), each (n_vertices, n_edges, m); ``d`` is evaluated exactly like GEOS
-    pointToSegment (see :func:`_point_segment`): the end-point distance when the foot of the perpendicular falls
-    outside the segment, else |cross| / len2 * sqrt(len2).  ``dot <= 0`` and ``dot >= len2`` replace
-    ``r = dot / len2 <= 0`` and ``r >= 1``, equal for integer coordinates with len2 < 2**52.
-    """
-    wx = P[0][:, None, :] - Q[0][None, :, :]
-    wy = P[1][:, None, :] - Q[1][None, :, :]
-    ex, ey = E[0][None], E[1][None]
-    dot = wx * ex + wy * ey
-    da2 = wx * wx + wy * wy
-    db2 = np.roll(da2, -1, axis=1)
-    lo = dot <= 0
-    hi = dot >= L2[None]
-    with np.errstate(divide="ignore", invalid="ignore"):
-        dmid = np.abs(wx * ey - wy * ex) / L2[None] * SQ[None]
-    d = np.where(lo, np.sqrt(da2), np.where(hi, np.sqrt(db2), dmid))
-    return d, dot, wx, wy
-
-
-def _min_distance_candidates(A, B):
-    """min over all vertex-edge candidates in both directions, (m,), the same values as :func:`_vertex_edge`.
+def _min_distance_candidates(A, B, points: bool = False):
+    """min over all vertex-edge candidates in both directions, (m,), each evaluated like
+    :func:`_point_segment` (GEOS pointToSegment); ``dot <= 0`` and ``dot >= len2`` replace ``r = dot / len2 <= 0``
+    and ``r >= 1`` (equal for integer coordinates with len2 < 2**52).
 
     Both directions are stacked on a leading axis (0: vertices of A to edges of B, 1: B to A).  The end-point
     distance of candidate (v, e) is |v - q_e| when dot <= 0 and |v - q_(e+1)| when dot >= len2, so vertex pair
     (v, w) is a candidate when lo[v, w] or hi[v, w - 1]; sqrt is monotone and correctly rounded, so the minimum
-    is taken over squared integer distances first.
+    is taken over squared integer distances first.  With ``points`` also returns the closest points (4, m)
+    (xa, ya, xb, yb) of a minimising candidate.
     """
-    n = A.shape[1]
+    n, m = A.shape[1], A.shape[2]
     E = np.empty((2, 2) + A.shape[1:])         # (coordinate, direction, edge, pair)
     for c in range(2):
         np.subtract(B[c, 1:], B[c, :-1], out=E[c, 0, :-1])
@@ -539,15 +513,32 @@ def _min_distance_candidates(A, B):
     hi = dot >= l2
     da2 = wx * wx
     da2 += wy * wy
-    vv = np.where(lo | np.roll(hi, 1, axis=2), da2, np.inf).min(axis=(0, 1, 2))
+    vsel = np.where(lo | np.roll(hi, 1, axis=2), da2, np.inf).reshape(2 * n * n, m)
     cr = wx * ey
     cr -= wy * ex
     np.abs(cr, out=cr)
     with np.errstate(divide="ignore", invalid="ignore"):
         cr /= l2
         cr *= SQ[:, None]
-    mid = np.where(lo | hi, np.inf, cr).min(axis=(0, 1, 2))
-    return np.minimum(np.sqrt(vv), mid)
+    mid = np.where(lo | hi, np.inf, cr).reshape(2 * n * n, m)
+    vv = vsel.min(0)
+    mm = mid.min(0)
+    sv = np.sqrt(vv)
+    d = np.minimum(sv, mm)
+    if not points:
+        return d
+    use_v = sv <= mm
+    k = np.where(use_v, (vsel == vv).argmax(0), (mid == mm).argmax(0))
+    r = np.arange(m)
+    dirn, v, e = k // (n * n), (k // n) % n, k % n
+    Pp = P[:, dirn, v, r]
+    Qs = Q[:, dirn, e, r]
+    t = np.where(use_v, 0.0, dot.reshape(2 * n * n, m)[k, r] / np.where(use_v, 1.0, L2[dirn, e, r]))
+    foot = Qs + t * E[:, dirn, e, r]
+    a_side = dirn == 0
+    pa = np.where(a_side, Pp, foot)
+    pb = np.where(a_side, foot, Pp)
+    return d, np.concatenate([pa, pb])
 
 
 def _separated(A, B):
@@ -571,49 +562,22 @@ def _bbox_disjoint(A, B):
             (A[1].max(0) < B[1].min(0)) | (B[1].max(0) < A[1].min(0)))
 
 
-def _pair_distance(A, B):
-    """Exact distance (m,) between convex polygons A, B given as (2, n, m) relative coordinates; 0 if they meet."""
-    d = _min_distance_candidates(A, B)
+def _pair_distance(A, B, points: bool = False):
+    """Exact distance (m,) between convex polygons A, B given as (2, n, m) relative coordinates; 0 if they meet.
+
+    With ``points`` also the closest points (m, 4) = (xa, ya, xb, yb) in the same relative coordinates (for
+    meeting pairs one point twice).
+    """
+    got = _min_distance_candidates(A, B, points)
+    d, p = got if points else (got, None)
     near = np.flatnonzero(~_bbox_disjoint(A, B))
     if near.size:
         sep = _separated(A[:, :, near], B[:, :, near])
-        d[near[~sep]] = 0.0
-    return d
-
-
-def _pair_points(A, B, d):
-    """Closest points (m, 4) = (xa, ya, xb, yb), relative coordinates, of pairs with distances ``d`` from
-    :func:`_pair_distance`: the first minimum in the order (A's vertices to B's edges, then B's vertices to A's
-    edges; vertex-major); for meeting pairs (d == 0) that point twice."""
-    m, n = A.shape[2], A.shape[1]
-    out = np.zeros((m, 4))
-    if m == 0:
-        return out
-    EA, L2A, SQA = _edges(A)
-    EB, L2B, SQB = _edges(B)
-    dAB, dotAB, _, _ = _vertex_edge(A, B, EB, L2B, SQB)
-    dBA, dotBA, _, _ = _vertex_edge(B, A, EA, L2A, SQA)
-    D = np.concatenate([dAB.reshape(n * n, m), dBA.reshape(n * n, m)])
-    k = np.argmin(D, axis=0)
-    r = np.arange(m)
-    flip = k >= n * n
-    kk = np.where(flip, k - n * n, k)
-    v, e = kk // n, kk % n
-    P = np.where(flip, B[:, v, r], A[:, v, r])          # (2, m) the vertex
-    Q0 = np.where(flip, A[:, e, r], B[:, e, r])         # edge start
-    Ev = np.where(flip, EA[:, e, r], EB[:, e, r])
-    l2 = np.where(flip, L2A[e, r], L2B[e, r])
-    dot = np.where(flip, dotBA[v, e, r], dotAB[v, e, r])
-    with np.errstate(divide="ignore", invalid="ignore"):
-        rr = np.where(l2 > 0, dot / l2, 0.0)
-    rc = np.clip(rr, 0.0, 1.0)
-    F = Q0 + rc * Ev                                      # foot on the edge
-    pa = np.where(flip, F, P)
-    pb = np.where(flip, P, F)
-    meet = d == 0
-    pb = np.where(meet, pa, pb)
-    out[:, 0], out[:, 1], out[:, 2], out[:, 3] = pa[0], pa[1], pb[0], pb[1]
-    return out
+        meet = near[~sep]
+        d[meet] = 0.0
+        if points:
+            p[2:, meet] = p[:2, meet]
+    return (d, p.T) if points else d
 
 
 def polygon_distance_kernel(a: np.ndarray, b: np.ndarray):
@@ -649,8 +613,7 @@ def polygon_distance_kernel(a: np.ndarray, b: np.ndarray):
     a = np.asarray(a)
     b = np.asarray(b)
     A, B = _rel_coords(a, b)
-    d = _pair_distance(A, B)
-    p = _pair_points(A, B, d)
+    d, p = _pair_distance(A, B, points=True)
     o = a[:, 0, :].astype(np.float64)
     return d, p[:, :2] + o, p[:, 2:] + o
 
@@ -974,10 +937,9 @@ def _lattice_chunk(X, bbox, plan, lo: int, hi: int, s_db: float):
         keep = ~np.isin(w, diag) | (gap <= s_db * norm * (1.0 + 1e-9))
         if not keep.all():
             a, b, A, B = a[keep], b[keep], A[:, :, keep], B[:, :, keep]
-    d = _pair_distance(A, B)
+    d, c = _pair_distance(A, B, points=True)
     hit = np.flatnonzero((d < s_db) | (d == 0))
-    a, b, d = a[hit], b[hit], d[hit]
-    c = _pair_points(A[:, :, hit], B[:, :, hit], d)
+    a, b, d, c = a[hit], b[hit], d[hit], c[hit]
     o = X[a, 0, :].astype(np.float64)
     c += np.concatenate([o, o], 1)
     return a, b, d, c

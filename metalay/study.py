@@ -51,8 +51,6 @@ import io
 import json
 import math
 import os
-import time
-from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field, replace
 from pathlib import Path
 
@@ -492,16 +490,20 @@ def _band_table(model: SiteModel) -> list[dict]:
 
 def _compare_one(task) -> dict:
     """Compile, check and measure one library (runs in a worker process)."""
+    from . import rules as R
     from .compile import compile_design
     from .library import load_library
 
     design, lib_ref, out_dir, adapt = task
     lib = load_library(lib_ref)
     d2 = design_for_library(design, lib, adapt=adapt)
-    res = compile_design(d2, Path(out_dir) / lib.name, show_progress=False, run_rules=True, run_optics=True)
+    res = compile_design(d2, Path(out_dir) / lib.name, show_progress=False, run_rules=False, run_optics=False)
     man = res.manifest
-    ofig = man["checks"]["optics"]["figures"]
     mask_path = res.files.get("gds") or res.files.get("oas")
+    # the checks compile runs, called here on the written mask (same functions, same output folder)
+    rules_check = R.compile_check(mask_path, lib, d2)
+    optics_check = optics.quick_check(mask_path, lib, d2, out_dir=Path(mask_path).parent / "optics")
+    ofig = optics_check["figures"]
     model = site_model(mask_path, lib, d2)
     margins = rule_margins(mask_path, lib, d2)
     band = _band_table(model)
@@ -517,7 +519,7 @@ def _compare_one(task) -> dict:
         "designed_mode_efficiency": nominal["designed_mode_efficiency"],
         "purity": ofig["oam"]["purity"] if "oam" in ofig else None,
         "design_charge": ofig["oam"]["design_charge"] if "oam" in ofig else None,
-        "rule_violations": man["checks"]["rules"].get("violations"),
+        "rule_violations": rules_check.get("violations"),
         "worst_rule": margins["worst"], "worst_rule_relative_margin": margins["worst_relative_margin"],
         "worst_rule_margin": margins["rules"][margins["worst"]]["margin"] if margins["worst"] else None,
         "elements": man["counts"]["sites"],
@@ -525,7 +527,8 @@ def _compare_one(task) -> dict:
         "responses": "library" if lib.has_responses else "ideal half-wave cells (library has no responses)",
     }
     return {"row": row, "band": band, "margins": margins, "warnings": list(man["warnings"]),
-            "optics_notes": man["checks"]["optics"].get("notes", []), "out_dir": str(res.out_dir),
+            "optics_notes": optics_check.get("notes", []), "out_dir": str(res.out_dir),
+            "rules_summary": rules_check.get("summary", []),
             "band_at_design": {"converted": nominal["converted"], "leakage": nominal["leakage"]}}
 
 
@@ -596,7 +599,7 @@ def compare_libraries(design, libraries, out_dir, *, adapt: bool = True, workers
     CompareResult
     """
     from concurrent.futures import ProcessPoolExecutor
-    from multiprocessing import get_context
+    from multiprocessing import get_all_start_methods, get_context
 
     from .atomic import atomic_write_bytes, ensure_dir
     from .library import load_library
@@ -611,6 +614,8 @@ def compare_libraries(design, libraries, out_dir, *, adapt: bool = True, workers
         raise StudyError(f"compare: library names must be distinct; got {names}")
     out = ensure_dir(out_dir)
     n_workers = max(1, min(len(libs), workers or os.cpu_count() or 1))
+    if "fork" not in get_all_start_methods():
+        n_workers = 1
     tasks = [(design, ref, str(out), adapt) for ref in libs]
     bar = progress(total=len(tasks), desc="compare: libraries", enabled=show_progress, unit="library")
     results = [None] * len(tasks)
@@ -620,7 +625,8 @@ def compare_libraries(design, libraries, out_dir, *, adapt: bool = True, workers
                 results[k] = _compare_one(t)
                 bar.update(1)
         else:
-            with ProcessPoolExecutor(max_workers=n_workers, mp_context=get_context("spawn")) as pool:
+            # fork: the workers inherit the loaded modules (no re-import of the caller's main script)
+            with ProcessPoolExecutor(max_workers=n_workers, mp_context=get_context(_START_METHOD)) as pool:
                 futs = {pool.submit(_compare_one, t): k for k, t in enumerate(tasks)}
                 from concurrent.futures import as_completed
 
@@ -631,7 +637,8 @@ def compare_libraries(design, libraries, out_dir, *, adapt: bool = True, workers
         bar.close()
     rows = tuple(r["row"] for r in results)
     bands = {r["row"]["library"]: r["band"] for r in results}
-    details = {r["row"]["library"]: {k: r[k] for k in ("margins", "warnings", "optics_notes", "out_dir")}
+    details = {r["row"]["library"]: {k: r[k] for k in ("margins", "warnings", "optics_notes", "rules_summary",
+                                                       "out_dir")}
                for r in results}
     notes = [EFFICIENCY_NOTE,
              "Design-rule margin: (measured - limit) for minimum width and gap, (limit - measured) for the aspect "
@@ -748,6 +755,7 @@ class ToleranceSettings:
         return replace(self, **z)
 
 
+_START_METHOD = "fork"
 _KIND_STREAM = {"cd_bias": 0, "detune": 1, "rotation": 2, "missing": 3}
 
 
@@ -781,21 +789,44 @@ def _sample(model: SiteModel, st: ToleranceSettings, seed_seq, cd_ok: bool, budg
     return r
 
 
+_FORKED_MODEL: list = []  # the model handed to forked worker processes (set only around a pool's lifetime)
+
+
+def _sample_block(args) -> list[dict]:
+    st, seeds, cd_ok, budget_only = args
+    model = _FORKED_MODEL[0]
+    return [_sample(model, st, s, cd_ok, budget_only) for s in seeds]
+
+
 def _run_samples(model, st, seeds, cd_ok, workers, bar=None, budget_only=False) -> list[dict]:
-    """Evaluate samples in order (threads; each result depends only on its own seed)."""
-    out = [None] * len(seeds)
-    if workers <= 1:
-        for k, s in enumerate(seeds):
-            out[k] = _sample(model, st, s, cd_ok, budget_only)
+    """Evaluate samples in order; each result depends only on its own seed, never on the worker count.
+
+    With ``workers > 1`` the samples run in forked processes (the interpolation of the OAM resampling holds the
+    GIL, so threads do not scale), in blocks of a few samples; one worker runs in this process.
+    """
+    from multiprocessing import get_all_start_methods, get_context
+
+    if workers <= 1 or len(seeds) < 2 or "fork" not in get_all_start_methods():
+        out = []
+        for s in seeds:
+            out.append(_sample(model, st, s, cd_ok, budget_only))
             if bar is not None:
                 bar.update(1)
         return out
-    with ThreadPoolExecutor(max_workers=workers) as pool:
-        futs = [pool.submit(_sample, model, st, s, cd_ok, budget_only) for s in seeds]
-        for k, f in enumerate(futs):
-            out[k] = f.result()
-            if bar is not None:
-                bar.update(1)
+    from concurrent.futures import ProcessPoolExecutor
+
+    size = max(1, min(8, len(seeds) // (2 * workers)))
+    blocks = [seeds[k:k + size] for k in range(0, len(seeds), size)]
+    out = []
+    _FORKED_MODEL[:] = [model]
+    try:
+        with ProcessPoolExecutor(max_workers=workers, mp_context=get_context(_START_METHOD)) as pool:
+            for got in pool.map(_sample_block, [(st, b, cd_ok, budget_only) for b in blocks]):
+                out.extend(got)
+                if bar is not None:
+                    bar.update(len(got))
+    finally:
+        _FORKED_MODEL[:] = []
     return out
 
 
@@ -874,7 +905,7 @@ def tolerance_study(design, out_dir=None, *, settings: ToleranceSettings = Toler
     max_side, pad_factor
         Optical-check resolution (the defaults of the compile-time check).
     workers : int, optional
-        Threads over samples (default: the number of cores).  Results do not depend on it.
+        Processes over samples (default: the number of cores).  Results do not depend on it.
     show_progress : bool or None
     make_plots : bool
 
