@@ -406,7 +406,7 @@ def build_library(spec: BuildSpec, *, progress=None):
     wl = np.round(wl, 6)
     rep = {d: np.repeat(v, wl.size) for d, v in cell_dims.items()}
     tl, ts, pl, ps = _responses(spec, rep, height, np.tile(wl, c), spec.harmonics)
-    tl, ts, pl, ps = (a.reshape(c, wl.size) for a in (tl, ts, pl, ps))
+    tl, ts, pl, ps = (_q(a.reshape(c, wl.size)) for a in (tl, ts, pl, ps))
 
     # convergence at the design wavelength for the chosen cells
     conv = []
@@ -475,8 +475,16 @@ def build_library(spec: BuildSpec, *, progress=None):
 
 
 def _r(v: float) -> float:
-    """Round for the JSON metadata (12 significant digits keeps provenance stable across BLAS builds)."""
-    return float(f"{float(v):.12g}")
+    """Round for the JSON metadata: 9 significant digits keep provenance byte-stable across BLAS thread counts."""
+    return float(f"{float(v):.9g}")
+
+
+def _q(a: np.ndarray) -> np.ndarray:
+    """Quantise responses to 1e-10 (the solver's last bits vary ~1e-13 with BLAS threading; its accuracy is
+    ~1e-3), so that rebuilding a library gives the same bytes on any machine with high probability."""
+    if np.iscomplexobj(a):
+        return (np.round(a.real, 10) + 0.0) + 1j * (np.round(a.imag, 10) + 0.0)   # + 0.0 turns -0.0 into 0.0
+    return np.round(a, 10) + 0.0
 
 
 # ----------------------------------------------------------------------------------------------------------------
