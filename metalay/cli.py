@@ -6,9 +6,14 @@ Exit codes: 0 success; 1 design-rule violations (when asked to fail on them); 2 
 
 from __future__ import annotations
 
+import os
+
+# One BLAS thread per process: the unit-cell solver's small dense matrices run several times slower with threaded
+# BLAS on a shared 2-core machine, and metalay parallelises over tiles and samples itself.
+os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
+
 import argparse
 import importlib
-import os
 import sys
 from importlib import resources
 from pathlib import Path

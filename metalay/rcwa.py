@@ -492,6 +492,10 @@ def solve(stack: Stack, wavelength_nm, *, harmonics=(5, 5), theta_deg: float = 0
     for lay in stack.layers:
         bb = lay.eps.batch if isinstance(lay.eps, Pattern) else np.asarray(lay.eps).reshape(-1).shape[0]
         b = max(b, bb)
+    for k, lay in enumerate(stack.layers):
+        d = np.asarray(lay.thickness_nm, float)
+        if not np.all(np.isfinite(d)) or np.any(d < 0):
+            raise MetalayError(f"layer {k}: thickness_nm must be finite and >= 0, got {d}")
     n2 = 2 * (2 * mx + 1) * (2 * my + 1)
     if batch_chunk is None:
         batch_chunk = max(1, int(1.5e8 // (n2 * n2 * 16 * 12)))

@@ -23,6 +23,9 @@ rule                kind   measured value
 Spacing is found either by a shapely STRtree over all polygons (general path) or, for polygons centred on a
 rectangular grid of sites (our own lattice masks), by a stencil of lattice neighbours whose reach is bounded by the
 largest circumradius, so both paths examine every pair closer than the limit and give equal results (tested).
+The lattice path works polygon chunk by polygon chunk (cache-sized, on METALAY_THREADS threads, default 2; the
+result does not depend on the chunking or the thread count): exact-safe lower bounds (bounding-box gaps) drop
+pairs that cannot violate, and only the rest get the exact convex-polygon distance.
 
 Counts are per polygon (single-polygon rules, the worst place in the polygon) and per pair (spacing, overlap).
 Reports are sorted worst first, then by polygon index, so the same mask gives the same report.
@@ -40,7 +43,7 @@ from pathlib import Path
 
 import numpy as np
 
-from metalay.errors import MetalayError
+from metalay.errors import MaskReadError, MetalayError
 from metalay.gdsread import FlatPolygons, file_sha256, read_mask
 
 __all__ = [
@@ -90,7 +93,7 @@ RULE_KEYS = {
     "inside_frame": (list, None, None),
 }
 _GEOM_CHUNK = 1 << 14   # polygons per feature chunk (cache-sized)
-_PAIR_CHUNK = 1 << 13   # neighbour pairs per spacing chunk (larger chunks fall out of cache)
+_PAIR_CHUNK = 1 << 14   # neighbour pairs per spacing chunk (~1/3 pass the prefilter; larger chunks fall out of cache)
 
 
 # ----------------------------------------------------------------------------------------------------------------
@@ -511,9 +514,16 @@ def _min_distance_candidates(A, B, points: bool = False):
     dot += wy * ey
     lo = dot <= 0
     hi = dot >= l2
-    da2 = wx * wx
-    da2 += wy * wy
-    vsel = np.where(lo | np.roll(hi, 1, axis=2), da2, np.inf).reshape(2 * n * n, m)
+    # squared vertex-vertex distances: direction 1 is direction 0 transposed (squares of negated exact values)
+    da2 = np.empty_like(wx)
+    np.multiply(wx[0], wx[0], out=da2[0])
+    da2[0] += wy[0] * wy[0]
+    da2[1] = da2[0].transpose(1, 0, 2)
+    vc = np.empty_like(hi)                     # hi of the previous edge: hi[v, w - 1]
+    vc[:, :, 1:] = hi[:, :, :-1]
+    vc[:, :, 0] = hi[:, :, -1]
+    vc |= lo
+    vsel = np.where(vc, da2, np.inf).reshape(2 * n * n, m)
     cr = wx * ey
     cr -= wy * ex
     np.abs(cr, out=cr)
@@ -572,7 +582,7 @@ def _pair_distance(A, B, points: bool = False):
     d, p = got if points else (got, None)
     near = np.flatnonzero(~_bbox_disjoint(A, B))
     if near.size:
-        sep = _separated(A[:, :, near], B[:, :, near])
+        sep = _separated(np.take(A, near, axis=2), np.take(B, near, axis=2))
         meet = near[~sep]
         d[meet] = 0.0
         if points:
@@ -849,9 +859,11 @@ def _lattice_plan(bbox: np.ndarray, rmax: float, reach_db: float, max_stencil: i
     axis.  The stencil holds every site offset whose centre distance is <= 2 * rmax + reach_db, so no pair closer
     than reach_db can be missed (distance >= centre distance - r_a - r_b).
 
-    Returns dict: grid (flat array of polygon positions, -1 where empty), I, J (P,) int32 site indices, ni, nj,
-    row_major (grid index i * nj + j, else j * ni + i: chosen to follow the polygon order), offsets [(di, dj)]
-    (half stencil), gx, gy (doubled site steps).
+    Returns dict: grid (flat array of polygon positions, -1 where empty, padded by the stencil reach so lookups
+    need no bounds checks), I, J (P,) padded site indices, si, sj (grid strides of i and j, the layout chosen to
+    follow the polygon order), offsets [(di, dj)] (half stencil inside the grid), deltas (grid index step per
+    offset), n_offsets (stencil size), gx, gy (doubled site steps), hx2max, hy2max (largest bounding-box width
+    and height).
     """
     P = bbox.shape[0]
     if P < 2:
@@ -874,58 +886,73 @@ def _lattice_plan(bbox: np.ndarray, rmax: float, reach_db: float, max_stencil: i
     ky = int(math.floor(reach / hy)) if hy < 1e30 else 0
     if (2 * kx + 1) * (2 * ky + 1) > 2 * max_stencil:
         return None
-    it = np.int32 if max(ni, nj, P) < 2 ** 31 - 1 else np.int64
-    I, J = ids[0].astype(it), ids[1].astype(it)
+    all_offsets = [(di, dj) for di in range(0, kx + 1) for dj in range(-ky, ky + 1)
+                   if (di > 0 or dj > 0) and math.hypot(di * hx, dj * hy) <= reach]
+    offsets = [(di, dj) for di, dj in all_offsets if di < ni and abs(dj) < nj]
+    kx = max([di for di, _ in offsets], default=0)
+    ky = max([abs(dj) for _, dj in offsets], default=0)
+    # the grid is padded by the stencil reach (kx cells after i, ky cells on both sides of j) so that every
+    # neighbour lookup is one gather without bounds checks
+    nip, njp = ni + kx, nj + 2 * ky
+    it = np.int32 if max(nip * njp, P) < 2 ** 31 - 1 else np.int64
+    I, J = ids[0].astype(it), (ids[1] + ky).astype(it)
     del ids
     # grid layout following the polygon order (consecutive polygons -> nearby grid cells)
     s = slice(0, min(P, 1 << 16))
-    kr = I[s].astype(np.int64) * nj + J[s]
-    kc = J[s].astype(np.int64) * ni + I[s]
+    kr = I[s].astype(np.int64) * njp + J[s]
+    kc = J[s].astype(np.int64) * nip + I[s]
     row_major = bool(np.abs(np.diff(kr)).sum() <= np.abs(np.diff(kc)).sum())
-    key = I.astype(np.int64) * nj + J if row_major else J.astype(np.int64) * ni + I
-    grid = np.full(ni * nj, -1, it)
+    si, sj = (njp, 1) if row_major else (1, nip)
+    key = I.astype(np.int64) * si + J.astype(np.int64) * sj
+    grid = np.full(nip * njp, -1, it)
     grid[key] = np.arange(P, dtype=it)
     if not np.array_equal(grid[key], np.arange(P, dtype=it)):
         return None  # two polygons on one site
     del key
-    offsets = [(di, dj) for di in range(0, kx + 1) for dj in range(-ky, ky + 1)
-               if (di > 0 or dj > 0) and math.hypot(di * hx, dj * hy) <= reach]
-    offsets = [(di, dj) for di, dj in offsets if di < ni and abs(dj) < nj]
-    return {"grid": grid, "I": I, "J": J, "ni": ni, "nj": nj, "row_major": row_major, "offsets": offsets,
-            "n_offsets": len([1 for di in range(0, kx + 1) for dj in range(-ky, ky + 1)
-                              if (di > 0 or dj > 0) and math.hypot(di * hx, dj * hy) <= reach]),
-            "gx": gx, "gy": gy}
+    # largest bounding-box half extents (doubled, integers) for the per-polygon prefilter
+    hx2max = int((bbox[:, 2] - bbox[:, 0]).max())
+    hy2max = int((bbox[:, 3] - bbox[:, 1]).max())
+    return {"grid": grid, "I": I, "J": J, "si": si, "sj": sj, "offsets": offsets, "hx2max": hx2max,
+            "hy2max": hy2max,
+            "deltas": np.array([di * si + dj * sj for di, dj in offsets], np.int64),
+            "n_offsets": len(all_offsets), "gx": gx, "gy": gy}
 
 
 def _lattice_chunk(X, bbox, plan, lo: int, hi: int, s_db: float):
-    """Pairs (a < b positions) of polygons [lo, hi) and their stencil neighbours closer than s_db (or meeting).
+    """Pairs (a, b positions) of polygons [lo, hi) and their stencil neighbours closer than s_db (or meeting).
 
-    Returns (a, b, d, c) with c (k, 4) the closest points in database units (on a, then on b).
+    Returns (a, b, d, c) with c (k, 4) the closest points in database units (on a, then on b), ordered by a and
+    then by stencil offset.
     """
-    grid, I, J, ni, nj = plan["grid"], plan["I"], plan["J"], plan["ni"], plan["nj"]
-    Ic = I[lo:hi].astype(np.int64)
-    Jc = J[lo:hi].astype(np.int64)
-    ar = np.arange(lo, hi)
-    la, lb, lw = [], [], []
-    for k, (di, dj) in enumerate(plan["offsets"]):
-        ii, jj = Ic + di, Jc + dj
-        ok = (ii < ni) & (jj >= 0) & (jj < nj)
-        key = ii[ok] * nj + jj[ok] if plan["row_major"] else jj[ok] * ni + ii[ok]
-        nb = grid[key].astype(np.int64)
-        has = nb >= 0
-        la.append(ar[ok][has])
-        lb.append(nb[has])
-        lw.append(np.full(int(has.sum()), k, np.int16))
-    a, b, w = np.concatenate(la), np.concatenate(lb), np.concatenate(lw)
-    # exact-safe prefilter 1: bounding-box distance (integer) >= s_db cannot violate
-    ba, bb = bbox[a], bbox[b]
-    gxp = np.maximum(np.maximum(bb[:, 0] - ba[:, 2], ba[:, 0] - bb[:, 2]), 0).astype(np.float64)
-    gyp = np.maximum(np.maximum(bb[:, 1] - ba[:, 3], ba[:, 1] - bb[:, 3]), 0).astype(np.float64)
-    keep = gxp * gxp + gyp * gyp <= s_db * s_db * (1.0 + 1e-9)
-    a, b, w = a[keep], b[keep], w[keep]
-    if a.size == 0:
+    n_off = len(plan["offsets"])
+    C = hi - lo
+    if n_off == 0 or C <= 0:
         z = np.zeros(0, np.int64)
         return z, z, np.zeros(0), np.zeros((0, 4))
+    s2 = s_db * s_db * (1.0 + 1e-9)
+    ba = bbox[lo:hi]
+    # exact-safe prefilter 0 (per polygon, no neighbour lookup): the site offset minus this polygon's and the
+    # largest bounding-box half extent bounds the bounding-box gap from below (doubled integer units)
+    off = np.array(plan["offsets"], np.int64) * np.array([plan["gx"], plan["gy"]], np.int64)   # doubled units
+    lx = np.maximum(np.abs(off[None, :, 0]) - (ba[:, 2] - ba[:, 0])[:, None] - plan["hx2max"], 0)
+    ly = np.maximum(np.abs(off[None, :, 1]) - (ba[:, 3] - ba[:, 1])[:, None] - plan["hy2max"], 0)
+    lx, ly = lx.astype(np.float64) / 2, ly.astype(np.float64) / 2
+    sel = np.flatnonzero(lx * lx + ly * ly <= s2)                        # into (C, n_off)
+    c_i, w = sel // n_off, sel % n_off
+    key0 = plan["I"][lo + c_i].astype(np.int64) * plan["si"] + plan["J"][lo + c_i].astype(np.int64) * plan["sj"]
+    nb = plan["grid"][key0 + plan["deltas"][w]]                          # -1 where no polygon
+    # exact-safe prefilter 1: bounding-box distance (integer) >= s_db cannot violate
+    bb = bbox[nb]                                                        # rows of -1 entries are masked below
+    bc = ba[c_i]
+    gxp = np.maximum(np.maximum(bb[:, 0] - bc[:, 2], bc[:, 0] - bb[:, 2]), 0).astype(np.float64)
+    gyp = np.maximum(np.maximum(bb[:, 1] - bc[:, 3], bc[:, 1] - bb[:, 3]), 0).astype(np.float64)
+    keep = np.flatnonzero((nb >= 0) & (gxp * gxp + gyp * gyp <= s2))
+    if keep.size == 0:
+        z = np.zeros(0, np.int64)
+        return z, z, np.zeros(0), np.zeros((0, 4))
+    a = lo + c_i[keep]
+    w = w[keep]
+    b = nb[keep].astype(np.int64)
     A, B = _rel_coords(X[a], X[b])
     # exact-safe prefilter 2 (diagonal offsets): projection gap along the site offset direction
     diag = [k for k, (di, dj) in enumerate(plan["offsets"]) if di != 0 and dj != 0]
@@ -936,7 +963,8 @@ def _lattice_chunk(X, bbox, plan, lo: int, hi: int, s_db: float):
         gap = (B[0] * ux + B[1] * uy).min(0) - (A[0] * ux + A[1] * uy).max(0)
         keep = ~np.isin(w, diag) | (gap <= s_db * norm * (1.0 + 1e-9))
         if not keep.all():
-            a, b, A, B = a[keep], b[keep], A[:, :, keep], B[:, :, keep]
+            a, b = a[keep], b[keep]
+            A, B = np.compress(keep, A, axis=2), np.compress(keep, B, axis=2)
     d, c = _pair_distance(A, B, points=True)
     hit = np.flatnonzero((d < s_db) | (d == 0))
     a, b, d, c = a[hit], b[hit], d[hit], c[hit]
@@ -957,18 +985,13 @@ def _pairs_lattice(flat: FlatPolygons, idx: np.ndarray, n: int, bbox: np.ndarray
         return None
     X = _uniform_view(flat, idx, n)
     P = idx.size
-    step = max(256, _PAIR_CHUNK // max(1, len(plan["offsets"])))
+    step = max(16, _PAIR_CHUNK // max(1, len(plan["offsets"])))
     starts = list(range(0, P, step))
 
     def work(lo):
         return _lattice_chunk(X, bbox, plan, lo, min(P, lo + step), s_db)
 
-    if threads > 1 and len(starts) > 8:
-        from concurrent.futures import ThreadPoolExecutor
-        with ThreadPoolExecutor(max_workers=threads) as ex:
-            parts = list(ex.map(work, starts))
-    else:
-        parts = [work(lo) for lo in starts]
+    parts = _map_chunks(work, starts, threads)
     n_off = plan["n_offsets"]
     del plan
     a = np.concatenate([p[0] for p in parts])
@@ -990,6 +1013,17 @@ def _threads() -> int:
         return 2
 
 
+def _map_chunks(fn, items, threads: int | None = None) -> list:
+    """[fn(x) for x in items], on ``threads`` worker threads when there are enough items (same result, in order)."""
+    threads = _threads() if threads is None else threads
+    if threads > 1 and len(items) > 8:
+        from concurrent.futures import ThreadPoolExecutor
+
+        with ThreadPoolExecutor(max_workers=threads) as ex:
+            return list(ex.map(fn, items))
+    return [fn(x) for x in items]
+
+
 def _uniform_view(flat: FlatPolygons, idx: np.ndarray, n: int) -> np.ndarray:
     """Vertices of polygons ``idx`` (all with ``n`` vertices) as (m, n, 2); a view when idx covers everything."""
     if idx.size == flat.count and flat.xy_db.shape[0] == flat.count * n:
@@ -1005,11 +1039,15 @@ def _violations(kind: str, polygon, other, value, seg_db, db_um: float) -> Viola
     polygon = np.asarray(polygon, np.int64)
     other = np.asarray(other, np.int64) if other is not None else np.full(polygon.shape, -1, np.int64)
     value = np.asarray(value, np.float64)
-    seg = np.asarray(seg_db, np.float64).reshape(-1, 4) * db_um
-    xy = np.stack([(seg[:, 0] + seg[:, 2]) / 2, (seg[:, 1] + seg[:, 3]) / 2], 1)
     key_val = -value if kind == "max" else value
     order = np.lexsort((other, polygon, key_val))
-    return Violations(polygon[order], other[order], value[order], xy[order, 0], xy[order, 1], seg[order])
+    seg = np.asarray(seg_db, np.float64).reshape(-1, 4)[order]
+    seg *= db_um
+    x = seg[:, 0] + seg[:, 2]
+    x /= 2
+    y = seg[:, 1] + seg[:, 3]
+    y /= 2
+    return Violations(polygon[order], other[order], value[order], x, y, seg)
 
 
 def _frame_region(flat: FlatPolygons, frame: tuple[int, int]):
@@ -1056,7 +1094,9 @@ def check_mask(mask, rules: RuleSet, *, method: str = "auto", cell: str | None =
     inside e and the segment v-foot inside the polygon of |e x (v - a)| / |e|.  Interior angle at vertex i:
     pi - s * atan2(e_{i-1} x e_i, e_{i-1} . e_i) with s the orientation sign.  Spacing: see
     :func:`polygon_distance_kernel`; the STRtree path uses GEOS distance, which equals it bit for bit on integer
-    coordinates (same operation order).
+    coordinates (same operation order).  The lattice path drops a pair only when an exact lower bound on its
+    distance (bounding-box gap from the site offset and the largest box, then the bounding-box distance, and for
+    diagonal offsets the projection gap along the offset) is at least the limit, with a relative slack of 1e-9.
     """
     if method not in ("auto", "tree", "lattice"):
         raise RulesError(f"method = {method!r} is invalid; allowed: auto, tree, lattice")
@@ -1068,11 +1108,19 @@ def check_mask(mask, rules: RuleSet, *, method: str = "auto", cell: str | None =
     else:
         name = os.fspath(mask)
         kw = {} if max_elements is None else {"max_elements": max_elements}
-        flat = read_mask(name, layers=rules.layer_pairs(), cell=cell, **kw)
-        timings.append(("read", time.perf_counter() - t0))
-        t1 = time.perf_counter()
-        sha = file_sha256(name)
-        timings.append(("sha256", time.perf_counter() - t1))
+        from concurrent.futures import ThreadPoolExecutor
+
+        # the file hash runs beside the read (hashlib releases the GIL); "sha256" is the wait after the read
+        with ThreadPoolExecutor(max_workers=1) as pool:
+            fut = pool.submit(file_sha256, name)
+            flat = read_mask(name, layers=rules.layer_pairs(), cell=cell, **kw)
+            timings.append(("read", time.perf_counter() - t0))
+            t1 = time.perf_counter()
+            try:
+                sha = fut.result()
+            except OSError as exc:
+                raise MaskReadError(f"{name}: cannot read file for its checksum ({exc.strerror or exc})") from exc
+        timings.append(("sha256 (after read)", time.perf_counter() - t1))
     db_nm = flat.db_unit_m * 1e9
     db_um = flat.db_unit_m * 1e6
     results: list[RuleResult] = []
@@ -1093,27 +1141,34 @@ def _check_layer(flat, lr: LayerRules, rules: RuleSet, db_nm, db_um, method, tim
     want_angle = lr.min_angle_deg is not None
     parts = [(int(n), idx[counts == n] if groups.size > 1 else idx) for n in groups if n >= 3]
     M = sum(gi.size for _, gi in parts)
-    F = {"area2": np.zeros(M, np.int64), "convex": np.zeros(M, bool), "angle": np.full(M, np.inf),
+    F = {"area2": np.zeros(M, np.int64), "convex": np.zeros(M, bool),
+         "angle": np.full(M, np.inf) if want_angle else None,
          "kmin": np.zeros(M, np.int64 if groups.size and groups.max() >= 128 else np.int8),
          "width": np.zeros(M), "bbox": np.zeros((M, 4), np.int64),
          "idx": parts[0][1] if len(parts) == 1 else (np.concatenate([gi for _, gi in parts]) if parts else
                                                       np.zeros(0, np.int64))}
-    r2max = 0.0
+    tasks = []
     pos = 0
     for n, gi in parts:
         whole = gi.size == flat.count and flat.xy_db.shape[0] == flat.count * n
-        for lo in range(0, gi.size, _GEOM_CHUNK):
-            sub = gi[lo:lo + _GEOM_CHUNK]
-            X = flat.xy_db.reshape(-1, n, 2)[lo:lo + _GEOM_CHUNK] if whole else \
-                flat.xy_db[flat.start[sub][:, None] + np.arange(n)]
-            f = _group_features(X, want_angle)
-            s = slice(pos + lo, pos + lo + sub.size)
-            for k in ("area2", "convex", "width", "bbox", "kmin"):
-                F[k][s] = f[k]
-            if want_angle:
-                F["angle"][s] = f["angle"]
-            r2max = max(r2max, f["r2max"])
+        tasks += [(n, gi, whole, pos, lo) for lo in range(0, gi.size, _GEOM_CHUNK)]
         pos += gi.size
+
+    def feature_chunk(task):
+        """Features of one chunk, written into its own slice of F (chunks are disjoint: thread-safe)."""
+        n, gi, whole, pos, lo = task
+        sub = gi[lo:lo + _GEOM_CHUNK]
+        X = flat.xy_db.reshape(-1, n, 2)[lo:lo + _GEOM_CHUNK] if whole else \
+            flat.xy_db[flat.start[sub][:, None] + np.arange(n)]
+        f = _group_features(X, want_angle)
+        s = slice(pos + lo, pos + lo + sub.size)
+        for k in ("area2", "convex", "width", "bbox", "kmin"):
+            F[k][s] = f[k]
+        if want_angle:
+            F["angle"][s] = f["angle"]
+        return f["r2max"]
+
+    r2max = max(_map_chunks(feature_chunk, tasks), default=0.0)
     # polygons needing shapely: not strictly convex, or fewer than 3 vertices
     need_sh = np.concatenate([F["idx"][~F["convex"]], small])
     sh = {}
@@ -1323,13 +1378,19 @@ def _check_layer(flat, lr: LayerRules, rules: RuleSet, db_nm, db_um, method, tim
             got = _pairs_tree(flat, valid_idx, s_db) if valid_idx.size >= 2 else (
                 np.zeros(0, np.int64), np.zeros(0, np.int64), np.zeros(0), np.zeros((0, 4)))
         a, b, d, c = got
+        del got
+
+        def part(m):
+            return (a, b, d, c) if m.all() else (a[m], b[m], d[m], c[m])
+
         if lr.min_spacing_nm is not None:
-            m = d > 0
-            emit("spacing", lr.min_spacing_nm, _violations("min", a[m], b[m], d[m] * db_nm, c[m], db_um), P, name,
+            pa, pb, pd, pc = part(d > 0)
+            emit("spacing", lr.min_spacing_nm, _violations("min", pa, pb, pd * db_nm, pc, db_um), P, name,
                  "min_spacing_nm")
+            del pa, pb, pd, pc
         if lr.forbid_overlap:
-            m = d == 0
-            emit("overlap", 0, _violations("flag", a[m], b[m], d[m], c[m], db_um), P, name)
+            pa, pb, pd, pc = part(d == 0)
+            emit("overlap", 0, _violations("flag", pa, pb, pd, pc, db_um), P, name)
 
     plan = [
         ("width", lr.min_width_nm is not None, r_width),

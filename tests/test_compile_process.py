@@ -11,6 +11,7 @@ from conftest import SMALL_DESIGN, write_toml
 from metalay.compile import compile_design
 from metalay.gdsread import read_mask
 from metalay.lattice import Aperture
+from metalay.library import load_library
 from metalay.process import WriteFieldGrid, aperture_region_db, straddles_write_field
 from metalay.spec import load_design
 
@@ -32,13 +33,15 @@ def test_bias_area_closed_form(tmp_path):
     d = copy.deepcopy(SMALL_DESIGN)
     d["mask"].update({"bias_nm": 10.0, "formats": ["gds"]})
     res = _compile(tmp_path, d, "b")
+    cell = load_library("tio2-nanofin-532").cells[0]
+    L, W = cell.dim("length_nm") + 20.0, cell.dim("width_nm") + 20.0
     polys, _ = _polys(res.files["gds"], 1, 0)
     areas = shapely.area(shapely.polygons([p.astype(float) for p in polys]))
     # snapping moves each vertex by <= 0.5 nm per axis: area changes by at most ~ perimeter * 0.71 nm
     # Common practice (no source)
-    tol = 2 * (270 + 105) * 0.71
-    assert np.abs(areas - 270 * 105).max() <= tol
-    assert abs(areas.mean() - 270 * 105) < 40
+    tol = 2 * (L + W) * 0.71
+    assert np.abs(areas - L * W).max() <= tol
+    assert abs(areas.mean() - L * W) < 40
     assert res.manifest["process"]["bias_nm"] == 10.0
 
 
@@ -114,7 +117,7 @@ def test_write_field_shift_no_straddle_and_counts(tmp_path):
 def test_marks_and_dose_datatypes(tmp_path):
     d = copy.deepcopy(SMALL_DESIGN)
     d["mask"].update({"formats": ["gds"], "marks": {"kind": "cross", "size_um": 20.0, "line_width_um": 2.0},
-                      "dose_datatypes": {"fin-250x85": 7, "frame": 9}})
+                      "dose_datatypes": {load_library("tio2-nanofin-532").cells[0].id: 7, "frame": 9}})
     res = _compile(tmp_path, d, "m")
     marks, _ = _polys(res.files["gds"], 4)
     assert len(marks) == 4 and all(len(m) == 12 for m in marks)

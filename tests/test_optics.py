@@ -214,8 +214,11 @@ def test_cli_and_compile_hook(tmp_path):
 
     design = _design([{"kind": "vortex", "charge": -2}], 30.0)
     path = _mask_from_design(tmp_path, design, "cli.gds")
+    from metalay.library import save_library
+
+    save_library(make_library(), tmp_path)  # the library whose fins the mask holds (250 x 85 nm)
     toml = tmp_path / "d.toml"
-    toml.write_text('[design]\nname = "d"\nwavelength_nm = 532.0\ninput_spin = 1\nlibrary = "tio2-nanofin-532"\n'
+    toml.write_text('[design]\nname = "d"\nwavelength_nm = 532.0\ninput_spin = 1\nlibrary = "test-fins.library.json"\n'
                     '[[phase]]\nkind = "vortex"\ncharge = -2\n[aperture]\nshape = "circle"\ndiameter_um = 30.0\n'
                     '[lattice]\nkind = "square"\nperiod_nm = 325.0\n')
     out = tmp_path / "cli_out"

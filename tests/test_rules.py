@@ -240,13 +240,15 @@ def lattice_mask(tmp_path, n=40, pitch=325, seed=3):
     return p
 
 
-def test_lattice_path_equals_tree_path(tmp_path):
+@pytest.mark.parametrize("spacing_nm, n_offsets", [(70, 4), (260, 6)])  # the 420 nm fin reaches diagonals
+def test_lattice_path_equals_tree_path(tmp_path, spacing_nm, n_offsets):
     p = lattice_mask(tmp_path)
-    rs = rules(min_width_nm=84.5, min_spacing_nm=70, forbid_overlap=True, grid_nm=1, min_angle_deg=80,
+    rs = rules(min_width_nm=84.5, min_spacing_nm=spacing_nm, forbid_overlap=True, grid_nm=1, min_angle_deg=80,
                no_field_straddle=True, write_field_um=3)
     fast = check_mask(p, rs, method="auto")
     slow = check_mask(p, rs, method="tree")
-    assert result(fast, "spacing").method.startswith("lattice") and result(slow, "spacing").method == "strtree"
+    assert result(fast, "spacing").method == f"lattice ({n_offsets} neighbour offsets)"
+    assert result(slow, "spacing").method == "strtree"
     assert result(fast, "spacing").count > 5 and result(fast, "overlap").count >= 1
     for x, y in zip(fast.results, slow.results):
         vx, vy = x.violations, y.violations
@@ -257,6 +259,30 @@ def test_lattice_path_equals_tree_path(tmp_path):
             for seg, val in ((vx.segment_um, vx.value), (vy.segment_um, vy.value)):
                 ln = np.hypot(seg[:, 2] - seg[:, 0], seg[:, 3] - seg[:, 1]) * 1000
                 assert np.allclose(ln, val, rtol=1e-9, atol=1e-6)
+
+
+def test_small_chunks_and_threads_give_the_same_report(tmp_path, monkeypatch):
+    # many small chunks (chunk boundaries inside rows of the lattice), on 1 and on 2 threads, and the tree path
+    import metalay.rules as rules_mod
+
+    p = lattice_mask(tmp_path)
+    rs = rules(min_width_nm=84.5, min_spacing_nm=70, forbid_overlap=True, min_angle_deg=80, min_area_nm2=21300)
+    monkeypatch.setattr(rules_mod, "_GEOM_CHUNK", 37)
+    monkeypatch.setattr(rules_mod, "_PAIR_CHUNK", 64)
+    reports = []
+    for threads in ("1", "2"):
+        monkeypatch.setenv("METALAY_THREADS", threads)
+        reports.append(check_mask(p, rs))
+    reports.append(check_mask(p, rs, method="tree"))
+    assert result(reports[0], "spacing").count > 5 and result(reports[0], "width").count > 0
+    for other in reports[1:]:
+        for x, y in zip(reports[0].results, other.results):
+            assert x.rule == y.rule and x.count == y.count
+            assert np.array_equal(x.violations.polygon, y.violations.polygon)
+            assert np.array_equal(x.violations.other, y.violations.other)
+            assert np.array_equal(x.violations.value, y.violations.value)
+    for x, y in zip(reports[0].results, reports[1].results):  # threads: identical bytes, closest points included
+        assert np.array_equal(x.violations.segment_um, y.violations.segment_um)
 
 
 def test_non_lattice_falls_back_to_tree(tmp_path):
