@@ -139,3 +139,46 @@ def test_marks_overlapping_frame_refused(tmp_path, capsys):
     assert main(["compile", str(design), "-o", str(tmp_path / "o"), "--quiet"]) == 2
     err = capsys.readouterr().err
     assert "mask.marks.positions_um" in err and "\n" not in err.strip()
+
+
+def _two_size_library(tmp_path, with_biased=True):
+    from metalay.library import CellLibrary, CellSpec, save_library
+
+    # invented test library (closed-form responses stated here, not physics data)
+    cells = [CellSpec("fin-a", "nanofin", "fins", (("length_nm", 250.0), ("width_nm", 85.0)))]
+    tl = [[1.0 + 0j, 1.0 + 0j]]
+    ts = [[-1.0 + 0j, -1.0 + 0j]]
+    if with_biased:
+        cells.append(CellSpec("fin-b", "nanofin", "fins", (("length_nm", 270.0), ("width_nm", 105.0))))
+        tl.append([0.9 + 0j, 0.9 + 0j])
+        ts.append([-0.5 + 0j, -0.5 + 0j])
+    lib = CellLibrary(name="two-size", description="invented test library", mode="transmission",
+                      phase_mechanism="geometric", design_wavelength_nm=532.0, period_nm=325.0, lattice="square",
+                      incident_medium="air", exit_medium="air", layers=({"name": "fins", "material": "n=2.4",
+                                                                         "thickness_nm": 600.0, "patterned": True},),
+                      rules={"min_feature_nm": 60.0, "min_gap_nm": 10.0, "grid_nm": 1.0, "source": "test"},
+                      provenance={}, cells=tuple(cells), wavelengths_nm=np.array([500.0, 560.0]),
+                      t_long=np.array(tl), t_short=np.array(ts), power_long=np.ones((len(cells), 2)),
+                      power_short=np.ones((len(cells), 2)))
+    save_library(lib, tmp_path)
+    return str(tmp_path / "two-size.library.json")
+
+
+@pytest.mark.parametrize("with_biased", [True, False])
+def test_optics_uses_response_at_biased_size(tmp_path, with_biased):
+    # Jones algebra (design notes; Bomzon et al. 2002, Opt. Lett. 27, 1141): converted power |(t_l - t_s)/2|^2
+    d = copy.deepcopy(SMALL_DESIGN)
+    d["design"]["library"] = _two_size_library(tmp_path, with_biased)
+    d["mask"].update({"bias_nm": 10.0, "cell": "fin-a", "formats": ["gds"]})
+    d["checks"] = {"rules": False, "optics": True}
+    res = _compile(tmp_path, d, "o")
+    opt = res.manifest["checks"]["optics"]
+    text = " ".join(opt["notes"])
+    conv = opt["figures"]["power_budget"]["converted"]
+    if with_biased:
+        assert "fin-b" in text
+        expected = abs((0.9 - (-0.5)) / 2) ** 2
+    else:
+        assert "no nanofin at the biased size" in text
+        expected = 1.0
+    assert conv == pytest.approx(expected, rel=1e-6)
