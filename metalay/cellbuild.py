@@ -20,7 +20,7 @@ Spec keys (see ``libraries/specs/*.toml``)::
     [stack]    incident_medium, exit_medium; [[stack.layers]] name, material, thickness_nm, patterned,
                background (patterned layer only)
     [rules]    min_feature_nm, min_gap_nm, max_aspect_ratio, grid_nm, source
-    [sweep]    kind ("nanofin" | "elliptic_pillar" | "round_pillar"), one {start_nm, stop_nm, step_nm} table or
+    [sweep]    kind ("nanofin" | "slot" | "elliptic_pillar" | "round_pillar"), one {start_nm, stop_nm, step_nm} table or
                a list per dimension (length_nm/width_nm, major_nm/minor_nm, diameter_nm), optional height_nm list,
                levels (propagation only)
     [solver]   harmonics_x, harmonics_y, n_stairs, convergence_extra (list of extra harmonics, e.g. [2, 4])
@@ -45,7 +45,8 @@ from metalay.rcwa import Layer, Stack, ellipse_pattern, rect_pattern, solve
 __all__ = ["CellBuildError", "BuildSpec", "SweepResult", "load_build_spec", "sweep", "pick_geometric",
            "pick_propagation", "build_library", "import_responses", "plot_library", "library_table"]
 
-_DIMS = {"nanofin": ("length_nm", "width_nm"), "elliptic_pillar": ("major_nm", "minor_nm"),
+_DIMS = {"nanofin": ("length_nm", "width_nm"), "slot": ("length_nm", "width_nm"),
+         "elliptic_pillar": ("major_nm", "minor_nm"),
          "round_pillar": ("diameter_nm",)}
 
 
@@ -191,9 +192,9 @@ def load_build_spec(path) -> BuildSpec:
              "max_aspect_ratio": _pos(ru, "max_aspect_ratio", w), "grid_nm": _pos(ru, "grid_nm", w),
              "source": _get(ru, "source", w, str, "citation or 'Common practice (no source)'")}
     w = f"{where} [sweep]"
-    kind = _get(sw, "kind", w, str, "'nanofin', 'elliptic_pillar' or 'round_pillar'")
+    kind = _get(sw, "kind", w, str, "'nanofin', 'slot', 'elliptic_pillar' or 'round_pillar'")
     if kind not in _DIMS:
-        raise _err(w, "kind", kind, "'nanofin', 'elliptic_pillar' or 'round_pillar'")
+        raise _err(w, "kind", kind, "'nanofin', 'slot', 'elliptic_pillar' or 'round_pillar'")
     if mech == "geometric" and kind == "round_pillar":
         raise _err(w, "kind", kind, "an anisotropic kind for geometric phase ('nanofin', 'elliptic_pillar')")
     dims = {d: _values(sw, d, w) for d in _DIMS[kind]}
@@ -248,7 +249,7 @@ def _rule_mask(spec: BuildSpec, dims: dict, height: np.ndarray) -> np.ndarray:
     vals = [dims[d] for d in _DIMS[spec.kind]]
     smallest = np.minimum.reduce(vals)
     ok = smallest >= r["min_feature_nm"] - 1e-9
-    if spec.kind == "nanofin":
+    if spec.kind in ("nanofin", "slot"):
         extent = np.hypot(dims["length_nm"], dims["width_nm"])      # circumscribed diameter: any rotation
         ok &= dims["length_nm"] > dims["width_nm"]
     elif spec.kind == "elliptic_pillar":
@@ -270,7 +271,7 @@ def _stack_for(spec: BuildSpec, dims: dict, height: np.ndarray, wavelength_nm: n
     for lay in spec.layers:
         if lay["patterned"]:
             e_in, e_out = eps(lay["material"]), eps(lay["background"])
-            if spec.kind == "nanofin":
+            if spec.kind in ("nanofin", "slot"):  # a slot: material = the hole's filling, background = the film
                 pat = rect_pattern(dims["length_nm"], dims["width_nm"], e_in, e_out, p, p)
             elif spec.kind == "elliptic_pillar":
                 pat = ellipse_pattern(dims["major_nm"], dims["minor_nm"], e_in, e_out, p, p, n_stairs=spec.n_stairs)
@@ -360,6 +361,8 @@ def _cell_id(kind: str, dims: dict) -> str:
     f = lambda v: (f"{v:.0f}" if abs(v - round(v)) < 1e-9 else f"{v:g}".replace(".", "p"))  # noqa: E731
     if kind == "nanofin":
         return f"fin-{f(dims['length_nm'])}x{f(dims['width_nm'])}"
+    if kind == "slot":
+        return f"slot-{f(dims['length_nm'])}x{f(dims['width_nm'])}"
     if kind == "elliptic_pillar":
         return f"ellipse-{f(dims['major_nm'])}x{f(dims['minor_nm'])}"
     return f"pillar-d{f(dims['diameter_nm'])}"
@@ -444,7 +447,7 @@ def build_library(spec: BuildSpec, *, progress=None):
                              "Li 1996, J. Opt. Soc. Am. A 13, 1870", "Li 1997, J. Opt. Soc. Am. A 14, 2758",
                              "Rumpf 2011, PIER B 35, 241"],
               "harmonics_x": spec.harmonics[0], "harmonics_y": spec.harmonics[1], "truncation": "rectangular",
-              "n_stairs": spec.n_stairs if spec.kind != "nanofin" else None,
+              "n_stairs": spec.n_stairs if spec.kind not in ("nanofin", "slot") else None,
               "incidence": "normal, from the incident medium", "convergence": conv,
               "sweep": {"kind": spec.kind, **{d: [_r(v) for v in spec.dims[d]] for d in names},
                         "height_nm": [_r(v) for v in spec.heights_nm], "candidates": sw.n_candidates,

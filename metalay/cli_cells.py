@@ -12,7 +12,7 @@ __all__ = ["add_parser", "run"]
 
 
 def add_parser(subparsers) -> None:
-    """Register ``cells build|show|import``."""
+    """Register ``cells build|show|import|complement``."""
     p = subparsers.add_parser("cells", help="unit-cell libraries: build with the RCWA solver, show, import")
     sub = p.add_subparsers(dest="cells_command", required=True)
 
@@ -35,6 +35,13 @@ def add_parser(subparsers) -> None:
     i.add_argument("--meta", type=Path, required=True, help="TOML with [library], [stack], [rules], [[cells]]")
     i.add_argument("-o", "--output", type=Path, default=Path("."), help="output folder (default: current folder)")
     i.set_defaults(func=run)
+
+    c = sub.add_parser("complement", help="estimate a slot (aperture) library from an antenna library by "
+                       "Babinet's principle (labelled as an estimate; prefer a solver-built slot library)")
+    c.add_argument("library", help="antenna library (bundled name or path to <name>.library.json)")
+    c.add_argument("--name", help="name of the new library (default: <antenna name>-babinet-slots)")
+    c.add_argument("-o", "--output", type=Path, default=Path("out") / "cells", help="output folder (default out/cells)")
+    c.set_defaults(func=run)
 
 
 def _default_out(spec: Path) -> Path:
@@ -101,6 +108,15 @@ def run(args) -> int:
         from metalay.cellbuild import import_responses
 
         lib = import_responses(args.table, args.meta)
+        for path in save_library(lib, args.output):
+            print(f"wrote {path}")
+        return 0
+    if cmd == "complement":
+        from metalay.library import load_library
+        from metalay.process import babinet_slot_library
+
+        lib = babinet_slot_library(load_library(args.library), name=args.name)
+        print(f"{lib.name}: Babinet-principle estimate, not a solver result ({lib.provenance.get('responses_source')})")
         for path in save_library(lib, args.output):
             print(f"wrote {path}")
         return 0

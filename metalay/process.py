@@ -975,6 +975,9 @@ def babinet_slot_library(antenna: CellLibrary, *, name: str | None = None) -> Ce
     where = antenna.source_path or antenna.name
     if not antenna.has_responses:
         raise LibraryError(f"{where}: a Babinet slot estimate needs antenna responses (library is geometry only)")
+    if antenna.mode != "transmission":
+        raise LibraryError(f"{where}: a Babinet slot estimate needs a transmission antenna library (a thin screen); "
+                           f"this one is {antenna.mode!r} (a mirror behind the antennas has no complement)")
     fins = [k for k, c in enumerate(antenna.cells) if c.kind == "nanofin"]
     if not fins:
         raise LibraryError(f"{where}: a Babinet slot estimate needs nanofin cells; found kinds "

@@ -202,7 +202,7 @@ def test_import_good_and_bad(tmp_path):
             import_responses(bad, meta)
 
 
-BUNDLED = ["tio2-nanofin-532", "asi-nanofin-1550", "au-antenna-825-reflect", "tio2-pillar-532"]
+BUNDLED = ["tio2-nanofin-532", "asi-nanofin-1550", "au-antenna-825-reflect", "tio2-pillar-532", "au-slot-1550"]
 
 
 @pytest.mark.parametrize("name", BUNDLED)
@@ -212,9 +212,14 @@ def test_bundled_libraries_are_solver_built(name):
     assert lib.provenance["solver"]["name"] == "metalay.rcwa"
     assert lib.provenance["responses_source"] == f"metalay cells build {name}.toml"
     assert (SPECS / f"{name}.toml").is_file()
-    # stated convergence: the +2 harmonics check changes |t| by less than 2e-3 (dielectric) / 1e-2 (gold)
-    conv = lib.provenance["solver"]["convergence"][0]
-    assert conv["max_abs_change_abs_t"] < (1e-2 if lib.mode == "reflection" else 2e-3)
+    # stated convergence: the +2 harmonics check changes |t| by less than 2e-3 (dielectric) / 1e-2 (gold
+    # antennas) / 5e-2 (slots cut through a gold film: the field is confined between metal edges, and metallic
+    # patterns converge slowly in the Fourier modal method; Common practice (no source)); the last recorded
+    # check (+3 harmonics) must be within 1e-2 for every library
+    conv = lib.provenance["solver"]["convergence"]
+    slot = lib.cells[0].kind == "slot"
+    assert conv[0]["max_abs_change_abs_t"] < (5e-2 if slot else 1e-2 if lib.mode == "reflection" else 2e-3)
+    assert conv[-1]["max_abs_change_abs_t"] < 1e-2
     power_ok = np.abs(lib.t_long) ** 2 <= lib.power_long + 1e-9
     assert np.all(power_ok)
     if lib.phase_mechanism == "propagation":

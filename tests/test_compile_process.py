@@ -182,3 +182,35 @@ def test_optics_uses_response_at_biased_size(tmp_path, with_biased):
         assert "no nanofin at the biased size" in text
         expected = 1.0
     assert conv == pytest.approx(expected, rel=1e-6)
+
+
+def test_slot_library_mask_optics_matches_jones(tmp_path):
+    # complementary cells: a solver-built slot library compiles and the optical check of the written mask gives
+    # the converted power |(t_long - t_short)/2|^2 of its cell (Jones algebra, Bomzon et al. 2002, Opt. Lett.
+    # 27, 1141)
+    lib = load_library("au-slot-1550")
+    assert lib.cells[0].kind == "slot" and "solver" in lib.provenance and lib.provenance["solver"]
+    d = copy.deepcopy(SMALL_DESIGN)
+    d["design"].update({"library": "au-slot-1550", "wavelength_nm": 1550.0, "input_spin": -1})
+    d["phase"] = [{"kind": "vortex", "charge": 2}]
+    d["aperture"] = {"shape": "circle", "diameter_um": 40.0}
+    d["lattice"] = {"kind": "square", "period_nm": 600.0}
+    d["checks"] = {"rules": True, "optics": True}
+    res = _compile(tmp_path, d, "slot")
+    tl, ts = lib.response_at(1550.0)
+    conv = res.manifest["checks"]["optics"]["figures"]["power_budget"]["converted"]
+    assert conv == pytest.approx(abs((tl[0] - ts[0]) / 2) ** 2, rel=1e-6)
+    assert res.manifest["checks"]["rules"]["status"] == "clean"
+
+
+def test_babinet_estimate_labelled_and_refused_for_reflection(tmp_path, capsys):
+    from metalay.cli import main
+
+    # Babinet's principle (Booker 1946, J. IEE 93 (IIIA), 620): slot(E along one axis) = 1 - antenna(other axis)
+    assert main(["cells", "complement", "asi-nanofin-1550", "-o", str(tmp_path)]) == 0
+    est = load_library(tmp_path / "asi-nanofin-1550-babinet-slots.library.json")
+    ant = load_library("asi-nanofin-1550")
+    assert "estimate" in est.provenance["responses_source"] and est.cells[0].kind == "slot"
+    assert np.allclose(est.t_long, 1 - ant.t_short) and np.allclose(est.t_short, 1 - ant.t_long)
+    assert main(["cells", "complement", "au-antenna-825-reflect", "-o", str(tmp_path / "r")]) == 2
+    assert "transmission antenna library" in capsys.readouterr().err
