@@ -510,10 +510,18 @@ def _elements(rows, ctx: _TileContext, out: _TileOut, *, active_rows=None) -> _E
     offsets = []
     for k in range(ncell):  # loop over cells (short axis)
         sel = np.flatnonzero(slot == k) if ncell > 1 else slice(None)
+        cell = library.cells[library.cell_index(ctx.cell_ids[k])]
         if ctx.level_offsets is not None:
-            offsets.append(ctx.level_offsets[k][a.level[sel]])
+            off = ctx.level_offsets[k][a.level[sel]]
+            if not is_rotation_invariant(cell):
+                err = np.abs(wrap_pi(2.0 * (recovered_rotation(ctx.level_offsets[k]) - np.arange(
+                    len(ctx.level_offsets[k])) * np.pi / len(ctx.level_offsets[k]))))
+                out.worst_snap = max(out.worst_snap, float(err.max()))
         else:
-            offsets.append(element_offsets(ctx.outlines[k], a.rotation_rad[sel], db))
+            off, err = element_offsets(ctx.outlines[k], a.rotation_rad[sel], db, with_error=True)
+            if not is_rotation_invariant(cell):
+                out.worst_snap = max(out.worst_snap, err)
+        offsets.append(off)
     keep = np.ones(len(sites), bool) if active is None else active.copy()
     if ctx.grid is not None:
         wf = design.mask.write_field
@@ -571,9 +579,6 @@ def _tile(rows, ctx: _TileContext) -> _TileOut:
         if theta.size == 0:
             continue
         out.per_cell[k] = theta.size
-        if not is_rotation_invariant(library.cells[library.cell_index(cid)]):
-            err = np.abs(wrap_pi(2.0 * (recovered_rotation(offsets) - theta)))
-            out.worst_snap = max(out.worst_snap, float(err.max()))
         c_sel = el.centres[sel]
         if ctx.encode_gds:
             out.records.append(boundary_records(ctx.layer, ctx.datatypes[k], centres_db=c_sel, offsets_db=offsets))

@@ -31,7 +31,7 @@ def snap_centres(x_um, y_um, db_unit_nm: float) -> np.ndarray:
     return np.stack([np.rint(np.asarray(x_um) * scale), np.rint(np.asarray(y_um) * scale)], axis=1).astype(np.int64)
 
 
-def element_offsets(outline_nm: np.ndarray, rotation_rad, db_unit_nm: float) -> np.ndarray:
+def element_offsets(outline_nm: np.ndarray, rotation_rad, db_unit_nm: float, *, with_error: bool = False):
     """Rotated outline relative to the centre, snapped to the grid: (N, V, 2) int32 database units.
 
     Parameters
@@ -61,7 +61,23 @@ def element_offsets(outline_nm: np.ndarray, rotation_rad, db_unit_nm: float) -> 
     out[:, :k, :] = flat.T.reshape(n, k, 2)
     if symmetric:  # rint is odd-symmetric, so the opposite vertices are exact negatives
         np.negative(out[:, :k], out=out[:, k:])
-    return out
+    if not with_error:
+        return out
+    if symmetric and nv == 4 and n:
+        # long axis of the snapped parallelogram: (v0 + v3) - (v1 + v2) = 2 (v0 - v1); the angle between it and the
+        # intended direction (cos t, sin t) from the cross product, without an arctan per element
+        ax = flat[0] - flat[2]
+        ay = flat[1] - flat[3]
+        cross = ax * s - ay * c
+        worst_sin2 = float(np.max(cross * cross / (ax * ax + ay * ay)))
+        err = 2.0 * float(np.arcsin(min(1.0, np.sqrt(worst_sin2))))
+    elif n:
+        from .mapping import wrap_pi
+
+        err = float(np.max(np.abs(wrap_pi(2.0 * (recovered_rotation(out) - rotation_rad)))))
+    else:
+        err = 0.0
+    return out, err
 
 
 def element_polygons(centres_db: np.ndarray, offsets_db: np.ndarray) -> np.ndarray:

@@ -176,7 +176,8 @@ def boundary_records(layer: int, datatype: int, vertices_db: np.ndarray | None =
     rec[:, :5] = head.view(np.int32)
     xy = rec[:, 5:5 + nxy].reshape(n, nv + 1, 2)
     if vertices_db is None:
-        np.add(centres_db[:, None, :], offsets_db, out=xy[:, :nv, :], casting="unsafe")
+        c32 = centres_db.astype(np.int32, copy=False)  # in range: checked above
+        np.add(c32[:, None, :], offsets_db.astype(np.int32, copy=False), out=xy[:, :nv, :])
     else:
         xy[:, :nv, :] = vertices_db
     xy[:, nv, :] = xy[:, 0, :]
