@@ -1,6 +1,6 @@
 """Benchmark of the optical check on a ~1e7-fin mask against a gdstk read with a per-polygon Python loop.
 
-Mask: 250 x 85 nm fins on a 325 nm square lattice inside a 1.15 mm circular aperture, rotated by
+Mask: the bundled tio2-nanofin-532 fins (270 x 70 nm) on a 325 nm square lattice inside a 1.15 mm circular aperture, rotated by
 theta = phi / 2 for a charge-3 vortex plus a 4 degree tilt at 532 nm (input spin +1), each fin its own 4-vertex
 BOUNDARY at integer nm (1 nm database unit), vertices snapped half-to-even about integer centres, written flat with
 the project's streaming GDSII writer (metalay.writer.GdsStream, the records metalay compile writes).
@@ -54,7 +54,11 @@ def make_mask(path: str, diameter_um: float) -> dict:
 
     t0 = time.perf_counter()
     design = design_for(diameter_um)
-    base = np.array([(-125.0, -42.5), (125.0, -42.5), (125.0, 42.5), (-125.0, 42.5)])
+    from metalay.library import load_library
+
+    cell = load_library("tio2-nanofin-532").cells[0]  # the bundled library's fin (so decoding matches it)
+    hl, hw = cell.dim("length_nm") / 2, cell.dim("width_nm") / 2
+    base = np.array([(-hl, -hw), (hl, -hw), (hl, hw), (-hl, hw)])
     j0, j1 = row_range(design.aperture, design.lattice)
     count = 0
     with GdsStream(path, "BENCH", db_unit_nm=1.0) as gs:
@@ -150,6 +154,11 @@ def main() -> None:
         made = spawn("make", args, path, tmp)
         print(f"mask: {made['fins']:,} fins, {made['file_mb']:.0f} MB GDSII, written in {made['write_s']:.1f} s "
               f"(peak {made['peak_mb']:.0f} MB)")
+        # untimed warm-up read in its own process: the first process to map a freshly written file pays the page
+        # faults (up to ~2 s here); after this both timed runs start from the same page-cache state
+        with open(path, "rb") as fh:
+            while fh.read(64 << 20):
+                pass
         ours = spawn("ours", args, path, str(Path(tmp) / "report"))
         t = ours["timings"]
         print(f"ours: total {ours['total_s']:.2f} s, peak {ours['peak_mb']:.0f} MB, {ours['sites']:,} sites, "
@@ -167,7 +176,7 @@ def main() -> None:
         ours_rd = t["read_s"] + t["decode_s"]
         print(f"ratio read+decode: baseline / ours = {base['total_s'] / ours_rd:.1f}x "
               f"({base['total_s']:.2f} s vs {ours_rd:.2f} s)")
-        print(f"ratio whole check (ours incl. FFT, OAM, plots, report) vs baseline read only: "
+        print(f"ratio whole check (ours incl. FFT, OAM, plots, report) vs baseline read + loop: "
               f"{base['total_s'] / ours['total_s']:.2f}x")
         print(f"peak memory: ours {ours['peak_mb']:.0f} MB (limit 4096), baseline {base['peak_mb']:.0f} MB")
 
