@@ -25,8 +25,8 @@ from .atomic import atomic_write_text, ensure_dir
 from .cellkinds import is_rotation_invariant, outline_nm
 from .errors import DesignError, MetalayError
 from .lattice import aperture_area_um2, cell_area_um2, row_range, sample_sites
-from .layout import (element_offsets, frame_polygons, group_shapes, recovered_rotation,
-                     snap_centres, text_polygons)
+from .layout import (element_offsets, frame_polygons, group_shapes, recovered_rotation, snap_centres, snap_rows,
+                     text_polygons)
 from .library import CellLibrary, load_library
 from .mapping import assign_cells, wrap_pi
 from .phase import phase_gradient, target_phase
@@ -35,8 +35,8 @@ from .spec import Design
 from .process import (WriteFieldGrid, alignment_marks, aperture_region_db, bias_outline_nm, check_marks_clear,
                       complement_bands, complement_tile, default_mark_positions_um, dose_datatype_lut,
                       fit_write_fields, frame_region_db, pieces_by_vertex_count, shift_phase_error_rad)
-from .writer import (GdsStream, add_polygons, boundary_records, build_gdstk_flat, build_gdstk_levels,
-                     write_gdstk_library)
+from .writer import (GdsStream, add_polygons, boundary_records, boundary_records_rows, build_gdstk_flat,
+                     build_gdstk_levels, write_gdstk_library)
 
 __all__ = ["CompileResult", "compile_design", "SAFETY_CAUTION", "design_warnings", "medium_index"]
 
@@ -479,6 +479,7 @@ class _Elements:
     level: np.ndarray | None  # (N,) rotation level
     centres: np.ndarray       # (N, 2) int64
     offsets: list             # per slot: (N_slot, V_slot, 2) int32, in the order of np.flatnonzero(slot == k)
+    snapped: list             # per slot: SnappedRows (fast record layout) or None
 
 
 def _elements(rows, ctx: _TileContext, out: _TileOut, *, active_rows=None) -> _Elements | None:
@@ -507,21 +508,26 @@ def _elements(rows, ctx: _TileContext, out: _TileOut, *, active_rows=None) -> _E
         r = np.hypot(xs[hit], ys[hit])
         out.alias_r = (min(out.alias_r[0], float(r.min())), max(out.alias_r[1], float(r.max())))
     slot = a.cell_index.astype(np.int64) if ncell > 1 else np.zeros(len(sites), np.int64)
+    # the (N, V, 2) layout is only built when something needs it; GDSII records come from the row layout
+    need_offsets = ctx.grid is not None or ctx.need_groups or ctx.region is not None
     offsets = []
+    snapped = []
     for k in range(ncell):  # loop over cells (short axis)
         sel = np.flatnonzero(slot == k) if ncell > 1 else slice(None)
         cell = library.cells[library.cell_index(ctx.cell_ids[k])]
         if ctx.level_offsets is not None:
-            off = ctx.level_offsets[k][a.level[sel]]
+            offsets.append(ctx.level_offsets[k][a.level[sel]])
+            snapped.append(None)
             if not is_rotation_invariant(cell):
                 err = np.abs(wrap_pi(2.0 * (recovered_rotation(ctx.level_offsets[k]) - np.arange(
                     len(ctx.level_offsets[k])) * np.pi / len(ctx.level_offsets[k]))))
                 out.worst_snap = max(out.worst_snap, float(err.max()))
         else:
-            off, err = element_offsets(ctx.outlines[k], a.rotation_rad[sel], db, with_error=True)
+            sr = snap_rows(ctx.outlines[k], a.rotation_rad[sel], db)
+            snapped.append(sr)
+            offsets.append(sr.offsets() if need_offsets else None)
             if not is_rotation_invariant(cell):
-                out.worst_snap = max(out.worst_snap, err)
-        offsets.append(off)
+                out.worst_snap = max(out.worst_snap, sr.error_rad)
     keep = np.ones(len(sites), bool) if active is None else active.copy()
     if ctx.grid is not None:
         wf = design.mask.write_field
@@ -553,14 +559,17 @@ def _elements(rows, ctx: _TileContext, out: _TileOut, *, active_rows=None) -> _E
             sel_keep = keep[slot == k] if ncell > 1 else keep
             new_offsets.append(o[sel_keep])
         offsets = new_offsets
+        snapped = [None] * ncell  # the row layout no longer matches: records come from the offsets
         centres = centres[keep]
         slot = slot[keep]
         theta = a.rotation_rad[keep]
         level = a.level[keep] if a.level is not None else None
     else:
         theta, level = a.rotation_rad, a.level
+    if ctx.grid is not None:
+        snapped = [None] * ncell  # centres may have moved: records come from the offsets
     out.n += int(keep.sum())
-    return _Elements(slot, theta, level, centres, offsets)
+    return _Elements(slot, theta, level, centres, offsets, snapped)
 
 
 def _tile(rows, ctx: _TileContext) -> _TileOut:
@@ -581,7 +590,11 @@ def _tile(rows, ctx: _TileContext) -> _TileOut:
         out.per_cell[k] = theta.size
         c_sel = el.centres[sel]
         if ctx.encode_gds:
-            out.records.append(boundary_records(ctx.layer, ctx.datatypes[k], centres_db=c_sel, offsets_db=offsets))
+            if el.snapped[k] is not None:
+                out.records.append(boundary_records_rows(ctx.layer, ctx.datatypes[k], c_sel, el.snapped[k]))
+            else:
+                out.records.append(boundary_records(ctx.layer, ctx.datatypes[k], centres_db=c_sel,
+                                                    offsets_db=offsets))
         if ctx.need_groups:
             if ctx.level_offsets is not None:
                 levels_here, idx = np.unique(el.level[sel], return_inverse=True)

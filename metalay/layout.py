@@ -12,7 +12,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-__all__ = ["Polygon", "snap_centres", "element_offsets", "element_polygons", "recovered_rotation",
+__all__ = ["Polygon", "SnappedRows", "snap_rows", "snap_centres", "element_offsets", "element_polygons", "recovered_rotation",
            "group_shapes", "ShapeGroups", "frame_polygons", "text_polygons", "rectangle"]
 
 
@@ -31,8 +31,41 @@ def snap_centres(x_um, y_um, db_unit_nm: float) -> np.ndarray:
     return np.stack([np.rint(np.asarray(x_um) * scale), np.rint(np.asarray(y_um) * scale)], axis=1).astype(np.int64)
 
 
-def element_offsets(outline_nm: np.ndarray, rotation_rad, db_unit_nm: float, *, with_error: bool = False):
-    """Rotated outline relative to the centre, snapped to the grid: (N, V, 2) int32 database units.
+@dataclass(frozen=True)
+class SnappedRows:
+    """Snapped outline offsets, one contiguous row per coordinate (the fast layout for encoding records).
+
+    Attributes
+    ----------
+    rows : ndarray (2k, N) int32
+        ``rows[2v]`` and ``rows[2v + 1]`` are the x and y offsets of vertex ``v`` (database units), for the first
+        ``k`` vertices; when ``symmetric``, vertex ``v + k`` is the negative of vertex ``v``.
+    n_vertices : int
+        Vertices of the outline (``V``).
+    symmetric : bool
+        Outline is centrally symmetric (vertex ``v + V/2 = -v``).
+    error_rad : float
+        Worst geometric-phase error from snapping, ``max |wrap(2 (recovered - intended))|`` (radians).
+    """
+
+    rows: np.ndarray
+    n_vertices: int
+    symmetric: bool
+    error_rad: float
+
+    def offsets(self) -> np.ndarray:
+        """The same offsets as an (N, V, 2) int32 array."""
+        k = self.rows.shape[0] // 2
+        n = self.rows.shape[1]
+        out = np.empty((n, self.n_vertices, 2), dtype=np.int32)
+        out[:, :k, :] = self.rows.T.reshape(n, k, 2)
+        if self.symmetric:  # rint is odd-symmetric, so the opposite vertices are exact negatives
+            np.negative(out[:, :k], out=out[:, k:])
+        return out
+
+
+def snap_rows(outline_nm: np.ndarray, rotation_rad, db_unit_nm: float) -> SnappedRows:
+    """Rotate the outline by each element's rotation and snap it to the grid relative to the centre.
 
     Parameters
     ----------
@@ -42,9 +75,16 @@ def element_offsets(outline_nm: np.ndarray, rotation_rad, db_unit_nm: float, *, 
         Rotation of each element (counter-clockwise, radians).
     db_unit_nm : float
         Database unit in nm.
+
+    Notes
+    -----
+    Each vertex is ``rint(R(theta) v / db)``; for a centrally symmetric outline only half the vertices are computed
+    (rint is odd-symmetric). The snapping error of a 4-vertex outline comes from the cross product of the snapped
+    long axis ``2 (v0 - v1)`` with the intended direction, so no arctangent per element is needed.
     """
+    rotation_rad = np.asarray(rotation_rad, dtype=np.float64)
     nv = outline_nm.shape[0]
-    symmetric = nv % 2 == 0 and np.array_equal(outline_nm[nv // 2:], -outline_nm[:nv // 2])
+    symmetric = bool(nv % 2 == 0 and np.array_equal(outline_nm[nv // 2:], -outline_nm[:nv // 2]))
     k = nv // 2 if symmetric else nv
     c = np.cos(rotation_rad)
     s = np.sin(rotation_rad)
@@ -57,27 +97,33 @@ def element_offsets(outline_nm: np.ndarray, rotation_rad, db_unit_nm: float, *, 
         np.multiply(s, ox, out=flat[2 * v + 1])
         flat[2 * v + 1] += c * oy
     np.rint(flat, out=flat)
-    out = np.empty((n, nv, 2), dtype=np.int32)
-    out[:, :k, :] = flat.T.reshape(n, k, 2)
-    if symmetric:  # rint is odd-symmetric, so the opposite vertices are exact negatives
-        np.negative(out[:, :k], out=out[:, k:])
-    if not with_error:
-        return out
-    if symmetric and nv == 4 and n:
-        # long axis of the snapped parallelogram: (v0 + v3) - (v1 + v2) = 2 (v0 - v1); the angle between it and the
-        # intended direction (cos t, sin t) from the cross product, without an arctan per element
+    rows = flat.astype(np.int32)
+    if n == 0:
+        err = 0.0
+    elif symmetric and nv == 4:
+        # long axis of the snapped parallelogram: (v0 + v3) - (v1 + v2) = 2 (v0 - v1)
         ax = flat[0] - flat[2]
         ay = flat[1] - flat[3]
         cross = ax * s - ay * c
         worst_sin2 = float(np.max(cross * cross / (ax * ax + ay * ay)))
         err = 2.0 * float(np.arcsin(min(1.0, np.sqrt(worst_sin2))))
-    elif n:
+    else:
         from .mapping import wrap_pi
 
+        out = SnappedRows(rows, nv, symmetric, 0.0).offsets()
         err = float(np.max(np.abs(wrap_pi(2.0 * (recovered_rotation(out) - rotation_rad)))))
-    else:
-        err = 0.0
-    return out, err
+    return SnappedRows(rows, nv, symmetric, err)
+
+
+def element_offsets(outline_nm: np.ndarray, rotation_rad, db_unit_nm: float, *, with_error: bool = False):
+    """Rotated outline relative to the centre, snapped to the grid: (N, V, 2) int32 database units.
+
+    See :func:`snap_rows` (same values in the (N, V, 2) layout). With ``with_error`` also the worst
+    geometric-phase snapping error in radians.
+    """
+    snapped = snap_rows(outline_nm, rotation_rad, db_unit_nm)
+    out = snapped.offsets()
+    return (out, snapped.error_rad) if with_error else out
 
 
 def element_polygons(centres_db: np.ndarray, offsets_db: np.ndarray) -> np.ndarray:

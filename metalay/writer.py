@@ -33,7 +33,7 @@ from .atomic import atomic_path
 from .errors import OutputError
 from .layout import Polygon
 
-__all__ = ["GdsStream", "add_polygons", "boundary_records", "gds_real8", "write_gdstk_library", "build_gdstk_flat", "build_gdstk_levels",
+__all__ = ["GdsStream", "add_polygons", "boundary_records", "boundary_records_rows", "gds_real8", "write_gdstk_library", "build_gdstk_flat", "build_gdstk_levels",
            "FIXED_TIMESTAMP", "MAX_GDS_VERTICES"]
 
 FIXED_TIMESTAMP = datetime.datetime(1970, 1, 1, 0, 0, 0)
@@ -182,6 +182,43 @@ def boundary_records(layer: int, datatype: int, vertices_db: np.ndarray | None =
         xy[:, :nv, :] = vertices_db
     xy[:, nv, :] = xy[:, 0, :]
     rec[:, 5 + nxy] = (4 << 16) | _ENDEL
+    return rec.byteswap(inplace=True).view(">i4") if np.little_endian else rec.view(">i4")
+
+
+def boundary_records_rows(layer: int, datatype: int, centres_db: np.ndarray, snapped, *,
+                          where: str = "GDSII") -> np.ndarray:
+    """GDSII BOUNDARY records from site centres and :class:`metalay.layout.SnappedRows` (fast path).
+
+    Same bytes as :func:`boundary_records`; the record words are filled as contiguous rows (one per word, over all
+    elements) and transposed once, which is several times faster than strided writes per element.
+    """
+    rows = snapped.rows
+    n = rows.shape[1]
+    nv = snapped.n_vertices
+    k = rows.shape[0] // 2
+    if nv > MAX_GDS_VERTICES:
+        raise OutputError(f"{where}: polygon with {nv} vertices exceeds the GDSII limit of {MAX_GDS_VERTICES}")
+    reach = int(np.abs(rows).max(initial=0))
+    lo, hi = centres_db.min(initial=0) - reach, centres_db.max(initial=0) + reach
+    if lo < -(2 ** 31) or hi >= 2 ** 31:
+        raise OutputError(f"{where}: coordinates exceed the 32-bit range of GDSII at this database unit")
+    cx = centres_db[:, 0].astype(np.int32)
+    cy = centres_db[:, 1].astype(np.int32)
+    nxy = 2 * (nv + 1)
+    words = 1 + 3 + 1 + nxy + 1
+    head = np.array([(4 << 16) | _BOUNDARY, (6 << 16) | _LAYER, ((layer & 0xFFFF) << 16) | 6,
+                     (_DATATYPE << 16) | (datatype & 0xFFFF), ((4 + 4 * nxy) << 16) | _XY], dtype=np.uint32)
+    rt = np.empty((words, n), dtype=np.int32)
+    rt[:5] = head.view(np.int32)[:, None]
+    for v in range(nv):  # vertices of one outline (a short axis), contiguous over elements
+        src, sign = (v, 1) if v < k else (v - k, -1)
+        op = np.add if sign > 0 else np.subtract
+        op(cx, rows[2 * src], out=rt[5 + 2 * v])
+        op(cy, rows[2 * src + 1], out=rt[6 + 2 * v])
+    rt[5 + 2 * nv] = rt[5]
+    rt[6 + 2 * nv] = rt[6]
+    rt[5 + nxy] = (4 << 16) | _ENDEL
+    rec = np.ascontiguousarray(rt.T)
     return rec.byteswap(inplace=True).view(">i4") if np.little_endian else rec.view(">i4")
 
 
