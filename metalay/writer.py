@@ -294,6 +294,6 @@ def write_gdstk_library(lib, path, fmt: str) -> Path:
         if fmt == "gds":
             lib.write_gds(str(tmp), max_points=MAX_GDS_VERTICES + 1, timestamp=FIXED_TIMESTAMP)
         else:
-            lib.write_oas(str(tmp), compression_level=6, detect_rectangles=False, detect_trapezoids=False,
+            lib.write_oas(str(tmp), compression_level=1, detect_rectangles=False, detect_trapezoids=False,
                           standard_properties=False)
     return Path(path)
