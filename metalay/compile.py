@@ -8,13 +8,11 @@ which gdstk writes at the end. Then the design-rule check and the quick optical 
 from __future__ import annotations
 
 import collections
-import ctypes
 import hashlib
 import json
 import math
 import os
 import shutil
-import sys
 import tempfile
 import time
 from concurrent.futures import ThreadPoolExecutor
@@ -23,6 +21,7 @@ from pathlib import Path
 
 import numpy as np
 
+from ._memory import keep_freed_memory
 from .atomic import atomic_write_text, ensure_dir
 from .cellkinds import is_rotation_invariant, outline_nm
 from .errors import DesignError, MetalayError
@@ -130,28 +129,6 @@ def _sha256(path: Path) -> str:
     return h.hexdigest()
 
 
-_MALLOC_TUNED = False
-
-
-def _keep_freed_memory() -> None:
-    """Ask glibc to reuse freed memory instead of returning it to the kernel after every tile.
-
-    Each tile allocates and frees arrays of a few to tens of MB; by default glibc serves those with fresh mmap
-    pages, so every tile pays page faults again (measured: about 4x fewer minor faults and ~0.5 s less system time
-    at 1e7 sites). Peak memory is unchanged (the same tile-sized buffers are reused). No effect off glibc.
-    """
-    global _MALLOC_TUNED
-    if _MALLOC_TUNED or not sys.platform.startswith("linux"):
-        return
-    _MALLOC_TUNED = True
-    try:
-        libc = ctypes.CDLL("libc.so.6")
-        libc.mallopt(-3, 256 << 20)  # M_MMAP_THRESHOLD: serve blocks up to 256 MB from the heap
-        libc.mallopt(-1, 1 << 30)    # M_TRIM_THRESHOLD: keep up to 1 GB of freed heap for reuse
-    except (OSError, AttributeError):
-        pass
-
-
 def compile_design(design: Design, out_dir: str | Path, **options) -> CompileResult:
     """Compile ``design`` into mask files and a manifest in ``out_dir`` (all or nothing).
 
@@ -160,7 +137,7 @@ def compile_design(design: Design, out_dir: str | Path, **options) -> CompileRes
     leaves no mask and no manifest behind. Options are those of :func:`_compile_into`.
     """
     out = ensure_dir(out_dir)
-    _keep_freed_memory()
+    keep_freed_memory()
     stage = Path(tempfile.mkdtemp(prefix=".metalay-stage-", dir=out))
     try:
         result = _compile_into(design, stage, **options)
