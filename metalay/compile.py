@@ -35,9 +35,10 @@ from .progress import progress
 from .spec import Design
 from .process import (WriteFieldGrid, alignment_marks, aperture_region_db, bias_outline_nm, check_marks_clear,
                       complement_bands, complement_tile, default_mark_positions_um, dose_datatype_lut,
-                      fit_write_fields, frame_region_db, pieces_by_vertex_count, shift_phase_error_rad)
-from .writer import (GdsStream, add_polygons, boundary_records, boundary_records_rows, build_gdstk_flat,
-                     build_gdstk_levels, write_gdstk_library)
+                      field_cell_name, field_index, fit_write_fields, frame_region_db, pieces_by_vertex_count,
+                      shift_phase_error_rad)
+from .writer import (GdsStream, add_polygons, boundary_records, boundary_records_rows, build_gdstk_fields,
+                     build_gdstk_flat, build_gdstk_levels, write_gdstk_library)
 
 __all__ = ["CompileResult", "compile_design", "SAFETY_CAUTION", "design_warnings", "medium_index"]
 
@@ -219,7 +220,8 @@ def _compile_into(design: Design, out_dir: str | Path, *, show_progress: bool | 
     name = design.name
     gds_path = out / f"{name}.gds"
     want_gds = "gds" in mask.formats
-    stream_gds = want_gds and mask.hierarchy == "flat"
+    per_field = mask.write_field is not None and mask.write_field.cell_per_field
+    stream_gds = want_gds and mask.hierarchy == "flat" and not per_field
     need_groups = "oas" in mask.formats or (want_gds and not stream_gds)
     level_offsets = None
     if levels:
@@ -346,7 +348,9 @@ def _compile_into(design: Design, out_dir: str | Path, *, show_progress: bool | 
             bounds = np.searchsorted(shape_of_site[order], np.arange(len(shape_list) + 1))
             members = [centres_all[order[bounds[g]:bounds[g + 1]]].astype(np.int64) for g in range(len(shape_list))]
             del order, centres_all, shape_of_site
-            if mask.hierarchy == "levels":
+            if per_field:
+                lib = _field_library(name, shape_list, members, lut, s_layer, grid, extras, db)
+            elif mask.hierarchy == "levels":
                 lib = build_gdstk_levels(name, [(s_layer, int(lut[slot]), shp) for slot, shp in shape_list],
                                          members, extras, db_unit_nm=db)
             else:
@@ -396,6 +400,7 @@ def _compile_into(design: Design, out_dir: str | Path, *, show_progress: bool | 
     if mask.write_field is not None:
         wf = mask.write_field
         process["write_field"] = {"size_um": list(wf.size_um), "origin_um": list(wf.origin_um),
+                                  "cell_per_field": wf.cell_per_field,
                                   "straddle": wf.straddle, "max_shift_nm": wf.max_shift_nm, "counts": wf_counts,
                                   "worst_shift_nm": round(worst_shift_nm, 3),
                                   "worst_shift_phase_error_deg": round(math.degrees(worst_shift_phase), 6)}
@@ -660,6 +665,23 @@ def _run_tiles(tiles, ctx: _TileContext, fn=_tile):
                 yield pending.popleft().result()
         while pending:
             yield pending.popleft().result()
+
+
+def _field_library(name, shape_list, members, lut, layer, grid, extras, db):
+    """gdstk library with one cell per write field: split every shape group by the field of its sites."""
+    field_groups: dict = {}
+    for (slot, shp), centres in zip(shape_list, members):  # distinct shapes (~1e3), not sites
+        if len(centres) == 0:
+            continue
+        fid = field_index(centres, grid)
+        order = np.lexsort((fid[:, 1], fid[:, 0]))
+        fid, centres = fid[order], centres[order]
+        cut = np.flatnonzero(np.any(np.diff(fid, axis=0) != 0, axis=1)) + 1
+        for part_f, part_c in zip(np.split(fid, cut), np.split(centres, cut)):  # fields this shape occurs in
+            key = (int(part_f[0, 0]), int(part_f[0, 1]))
+            field_groups.setdefault(key, []).append((layer, int(lut[slot]), shp, part_c))
+    names = {key: field_cell_name(name, *key) for key in field_groups}
+    return build_gdstk_fields(name, field_groups, extras, db_unit_nm=db, field_names=names)
 
 
 def _rounded(obj):

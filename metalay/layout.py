@@ -12,7 +12,8 @@ from dataclasses import dataclass
 
 import numpy as np
 
-__all__ = ["Polygon", "SnappedRows", "snap_rows", "snap_centres", "element_offsets", "element_polygons", "recovered_rotation",
+__all__ = ["Polygon", "SnappedRows", "snap_rows", "snap_centres", "element_offsets", "element_polygons",
+           "recovered_rotation",
            "group_shapes", "ShapeGroups", "frame_polygons", "text_polygons", "rectangle"]
 
 

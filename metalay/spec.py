@@ -15,7 +15,8 @@ from .errors import DesignError
 from .lattice import Aperture, Lattice
 from .phase import (PHASE_TERM_KINDS, Axicon, Channel, Lens, Multiplex, QPlate, Tilt, Vortex, load_phase_map)
 
-__all__ = ["Design", "MaskSettings", "WriteFieldSettings", "MarkSettings", "CheckSettings", "load_design", "parse_design", "DEFAULT_LAYERS"]
+__all__ = ["Design", "MaskSettings", "WriteFieldSettings", "MarkSettings", "CheckSettings", "load_design",
+           "parse_design", "DEFAULT_LAYERS"]
 
 #: Default (layer, datatype) per purpose.
 DEFAULT_LAYERS = {"structures": (1, 0), "frame": (2, 0), "label": (3, 0), "marks": (4, 0)}
@@ -34,6 +35,7 @@ class WriteFieldSettings:
     origin_um: tuple[float, float] = (0.0, 0.0)
     straddle: str = "shift"
     max_shift_nm: float = 50.0
+    cell_per_field: bool = False
 
 
 @dataclass(frozen=True)
@@ -297,7 +299,8 @@ def parse_design(data: dict, *, where: str = "<memory>", base_dir: str | Path = 
         write_field = WriteFieldSettings(
             (float(size[0]), float(size[1])), (float(origin[0]), float(origin[1])),
             wf.string("straddle", "shift", options=("shift", "drop", "keep")),
-            float(wf.number("max_shift_nm", 50.0, lo=0.0, hi=1e4)))
+            float(wf.number("max_shift_nm", 50.0, lo=0.0, hi=1e4)),
+            wf.boolean("cell_per_field", False))
         wf.check_unknown()
     marks = None
     if m.has("marks"):
@@ -337,6 +340,10 @@ def parse_design(data: dict, *, where: str = "<memory>", base_dir: str | Path = 
     )
     if mask.tone == "complement" and mask.hierarchy != "flat":
         m.fail("tone", mask.tone, "'complement' needs mask.hierarchy = 'flat'")
+    if (write_field is not None and write_field.cell_per_field
+            and (mask.hierarchy != "flat" or mask.tone != "structures")):
+        raise DesignError(f"{where}: key 'mask.write_field.cell_per_field' = true: needs mask.hierarchy = 'flat' and "
+                          "mask.tone = 'structures'")
     m.check_unknown()
 
     c = top.table("checks", {})

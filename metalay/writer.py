@@ -33,8 +33,19 @@ from .atomic import atomic_path
 from .errors import OutputError
 from .layout import Polygon
 
-__all__ = ["GdsStream", "add_polygons", "boundary_records", "boundary_records_rows", "gds_real8", "write_gdstk_library", "build_gdstk_flat", "build_gdstk_levels",
-           "FIXED_TIMESTAMP", "MAX_GDS_VERTICES"]
+__all__ = [
+    "GdsStream",
+    "add_polygons",
+    "build_gdstk_fields",
+    "boundary_records",
+    "boundary_records_rows",
+    "gds_real8",
+    "write_gdstk_library",
+    "build_gdstk_flat",
+    "build_gdstk_levels",
+    "FIXED_TIMESTAMP",
+    "MAX_GDS_VERTICES",
+]
 
 FIXED_TIMESTAMP = datetime.datetime(1970, 1, 1, 0, 0, 0)
 #: Largest number of distinct vertices of one GDSII boundary (8191 XY points including the closing point).
@@ -275,6 +286,38 @@ def build_gdstk_levels(cell_name: str, level_shapes: list[tuple[int, int, np.nda
     for p in extras:
         top.add(gdstk.Polygon(p.xy_db * s, layer=p.layer, datatype=p.datatype))
     lib.add(top, *masters)
+    return lib
+
+
+def build_gdstk_fields(cell_name: str, field_groups: dict, extras: list[Polygon], *, db_unit_nm: float,
+                       field_names: dict):
+    """A gdstk library with one cell per write field, each placed by a plain reference at the origin.
+
+    Parameters
+    ----------
+    field_groups : dict (ix, iy) -> list of (layer, datatype, shape_db (V, 2), centres_db (M, 2))
+        The elements of each field, grouped by exact snapped shape (one polygon + repetition per group).
+    field_names : dict (ix, iy) -> str
+        Cell name of each field.
+    """
+    gdstk = _gdstk()
+    s = db_unit_nm / 1000.0
+    lib = gdstk.Library("METALAY", unit=1e-6, precision=db_unit_nm * 1e-9)
+    top = gdstk.Cell(cell_name)
+    cells = []
+    for key in sorted(field_groups):  # write fields (a few hundred), not sites
+        cell = gdstk.Cell(field_names[key])
+        for layer, datatype, shape, centres in field_groups[key]:
+            first = centres[0]
+            poly = gdstk.Polygon((shape + first) * s, layer=layer, datatype=datatype)
+            if len(centres) > 1:
+                poly.repetition = gdstk.Repetition(offsets=(centres[1:] - first) * s)
+            cell.add(poly)
+        cells.append(cell)
+        top.add(gdstk.Reference(cell, origin=(0.0, 0.0)))
+    for p in extras:
+        top.add(gdstk.Polygon(p.xy_db * s, layer=p.layer, datatype=p.datatype))
+    lib.add(top, *cells)
     return lib
 
 

@@ -214,3 +214,29 @@ def test_babinet_estimate_labelled_and_refused_for_reflection(tmp_path, capsys):
     assert np.allclose(est.t_long, 1 - ant.t_short) and np.allclose(est.t_short, 1 - ant.t_long)
     assert main(["cells", "complement", "au-antenna-825-reflect", "-o", str(tmp_path / "r")]) == 2
     assert "transmission antenna library" in capsys.readouterr().err
+
+
+def test_one_cell_per_write_field(tmp_path):
+    d = copy.deepcopy(SMALL_DESIGN)
+    d["mask"]["write_field"] = {"size_um": 6.0, "origin_um": [0.05, 0.05], "straddle": "shift",
+                                "max_shift_nm": 200.0, "cell_per_field": True}
+    res = _compile(tmp_path, d, "f")
+    grid = WriteFieldGrid.from_um(6.0, (0.05, 0.05), db_unit_nm=1.0)
+    for fmt in ("gds", "oas"):
+        lib = gdstk.read_gds(str(res.files["gds"])) if fmt == "gds" else gdstk.read_oas(str(res.files["oas"]))
+        top = lib.top_level()[0]
+        assert all(r.rotation == 0 and tuple(r.origin) == (0, 0) for r in top.references)
+        total = 0
+        for ref in top.references:
+            cell = ref.cell
+            ix, iy = (int(t.replace("M", "-")) for t in cell.name.split("_WF_X")[1].split("_Y"))
+            x0 = (grid.origin_db[0] + ix * grid.size_db[0]) / 1000
+            y0 = (grid.origin_db[1] + iy * grid.size_db[1]) / 1000
+            for p in cell.polygons:
+                offs = p.repetition.get_offsets() if p.repetition.size else np.zeros((1, 2))
+                pts = p.points[None, :, :] + offs[:, None, :]
+                # every element lies inside its own field (no straddling after the shift)
+                assert pts[..., 0].min() >= x0 - 1e-9 and pts[..., 0].max() <= x0 + 6.0 + 1e-9
+                assert pts[..., 1].min() >= y0 - 1e-9 and pts[..., 1].max() <= y0 + 6.0 + 1e-9
+                total += len(offs)
+        assert total == res.manifest["counts"]["sites"]
