@@ -677,7 +677,25 @@ def _group_features(X: np.ndarray, want_angle: bool = True):
                      _reduce(np.maximum, [X[:, k, 0] for k in range(n)]),
                      _reduce(np.maximum, [X[:, k, 1] for k in range(n)])], 1)
     width = np.full(m, np.inf)
-    for i in range(n):
+    for _i, _j, d, _dt, _l2 in _vertex_edge_distances(xs, ys, ex, ey):
+        np.minimum(width, d, out=width)
+    width = np.where(convex, width, np.inf)
+    r2max = 0.0
+    if m:
+        cx = (bbox[:, 0] + bbox[:, 2]) / 2.0
+        cy = (bbox[:, 1] + bbox[:, 3]) / 2.0
+        Xf = X.astype(np.float64)
+        r2max = float(((Xf[..., 0] - cx[:, None]) ** 2 + (Xf[..., 1] - cy[:, None]) ** 2).max())
+    return {"area2": area2, "convex": convex, "angle": amin, "kmin": kmin, "width": width, "bbox": bbox,
+            "r2max": r2max}
+
+
+def _vertex_edge_distances(xs, ys, ex, ey):
+    """For each edge ``i`` and each vertex ``j`` not on it: the distance from ``j`` to edge ``i`` where the foot
+    of the perpendicular falls on the edge (inf elsewhere). Yields ``(i, j, d, dt, l2)`` in loop order, with
+    ``dt`` the projection on the edge and ``l2`` its squared length (over the polygons of a chunk)."""
+    n = len(xs)
+    for i in range(n):  # edges of one polygon (a short axis), vectorised over polygons
         l2 = ex[i] * ex[i] + ey[i] * ey[i]
         sq = np.sqrt(l2)
         for j in range(n):
@@ -689,16 +707,7 @@ def _group_features(X: np.ndarray, want_angle: bool = True):
             ok = (dt >= 0) & (dt <= l2) & (l2 > 0)
             with np.errstate(divide="ignore", invalid="ignore"):
                 d = np.where(ok, np.abs(cr) / sq, np.inf)
-            np.minimum(width, d, out=width)
-    width = np.where(convex, width, np.inf)
-    r2max = 0.0
-    if m:
-        cx = (bbox[:, 0] + bbox[:, 2]) / 2.0
-        cy = (bbox[:, 1] + bbox[:, 3]) / 2.0
-        Xf = X.astype(np.float64)
-        r2max = float(((Xf[..., 0] - cx[:, None]) ** 2 + (Xf[..., 1] - cy[:, None]) ** 2).max())
-    return {"area2": area2, "convex": convex, "angle": amin, "kmin": kmin, "width": width, "bbox": bbox,
-            "r2max": r2max}
+            yield i, j, d, dt, l2
 
 
 def _width_segments(X: np.ndarray) -> np.ndarray:
@@ -714,24 +723,13 @@ def _width_segments(X: np.ndarray) -> np.ndarray:
     ey = [ys[(k + 1) % n] - ys[k] for k in range(n)]
     width = np.full(m, np.inf)
     wseg = np.zeros((4, m))
-    for i in range(n):
-        l2 = ex[i] * ex[i] + ey[i] * ey[i]
-        sq = np.sqrt(l2)
-        for j in range(n):
-            if j == i or j == (i + 1) % n:
-                continue
-            wx, wy = xs[j] - xs[i], ys[j] - ys[i]
-            dt = wx * ex[i] + wy * ey[i]
-            cr = ex[i] * wy - ey[i] * wx
-            ok = (dt >= 0) & (dt <= l2) & (l2 > 0)
-            with np.errstate(divide="ignore", invalid="ignore"):
-                d = np.where(ok, np.abs(cr) / sq, np.inf)
-            upd = d < width
-            if upd.any():
-                width = np.where(upd, d, width)
-                t = dt[upd] / l2[upd]
-                wseg[:, upd] = np.stack([xs[j][upd], ys[j][upd], xs[i][upd] + t * ex[i][upd],
-                                         ys[i][upd] + t * ey[i][upd]])
+    for i, j, d, dt, l2 in _vertex_edge_distances(xs, ys, ex, ey):
+        upd = d < width
+        if upd.any():
+            width = np.where(upd, d, width)
+            t = dt[upd] / l2[upd]
+            wseg[:, upd] = np.stack([xs[j][upd], ys[j][upd], xs[i][upd] + t * ex[i][upd],
+                                     ys[i][upd] + t * ey[i][upd]])
     return (wseg + np.stack([ox, oy, ox, oy]).astype(np.float64)).T
 
 
