@@ -161,3 +161,25 @@ def test_assign_cells_geometric_levels():
     assert a.quantisation_error_rad <= np.pi / 8 + 1e-12
     assert set(np.unique(a.level)) == set(range(8))
     assert np.all(a.cell_index == 0)
+
+
+def test_imported_map_bilinear_is_exact_for_linear_phase(tmp_path):
+    # Common practice (no source): bilinear interpolation reproduces a linear function exactly, so a map sampled
+    # from a tilt gives the tilt's phase at every site (to rounding)
+    from metalay.phase import load_phase_map
+
+    xs = np.linspace(-12.0, 12.0, 7)
+    ys = np.linspace(-10.0, 14.0, 9)
+    X, Y = np.meshgrid(xs, ys)
+    tilt = Tilt(3.0, 30.0)
+    values = target_phase((tilt,), X, Y, wavelength_nm=633.0)
+    np.save(tmp_path / "m.npy", values)
+    np.savetxt(tmp_path / "m.csv", values, delimiter=",")
+    rng = np.random.default_rng(4)
+    x = rng.uniform(-12, 12, 500)
+    y = rng.uniform(-10, 14, 500)
+    want = target_phase((tilt,), x, y, wavelength_nm=633.0)
+    for name in ("m.npy", "m.csv"):
+        pm = load_phase_map(tmp_path / name, extent_um=[-12.0, 12.0, -10.0, 14.0], where="test")
+        got = target_phase((pm,), x, y, wavelength_nm=633.0)
+        assert np.max(np.abs(got - want)) < 1e-9
