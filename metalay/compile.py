@@ -24,7 +24,7 @@ import numpy as np
 from ._memory import keep_freed_memory
 from .atomic import atomic_write_text, ensure_dir
 from .cellkinds import is_rotation_invariant, outline_nm
-from .errors import DesignError, MetalayError
+from .errors import DesignError, MetalayError, OutputError
 from .lattice import aperture_area_um2, cell_area_um2, row_range, sample_sites
 from .layout import (element_offsets, frame_polygons, group_shapes, recovered_rotation, snap_centres, snap_rows,
                      text_polygons)
@@ -141,7 +141,10 @@ def compile_design(design: Design, out_dir: str | Path, **options) -> CompileRes
     keep_freed_memory()
     stage = Path(tempfile.mkdtemp(prefix=".metalay-stage-", dir=out))
     try:
-        result = _compile_into(design, stage, **options)
+        try:
+            result = _compile_into(design, stage, **options)
+        except OSError as exc:  # e.g. the disk filled up while writing: one line, nothing left behind
+            raise OutputError(f"{out}: writing failed ({exc.strerror or exc})") from exc
         moved = {}
         for entry in sorted(stage.rglob("*")):
             if entry.is_file():
@@ -223,6 +226,7 @@ def _compile_into(design: Design, out_dir: str | Path, *, show_progress: bool | 
     per_field = mask.write_field is not None and mask.write_field.cell_per_field
     stream_gds = want_gds and mask.hierarchy == "flat" and not per_field
     need_groups = "oas" in mask.formats or (want_gds and not stream_gds)
+    _check_resources(design, out, outlines, stream_gds=stream_gds, need_groups=need_groups)
     level_offsets = None
     if levels:
         thetas = np.arange(levels) * np.pi / levels
@@ -665,6 +669,41 @@ def _run_tiles(tiles, ctx: _TileContext, fn=_tile):
                 yield pending.popleft().result()
         while pending:
             yield pending.popleft().result()
+
+
+#: Memory per site held until the end when OASIS or hierarchical output is built with gdstk (measured ~40 bytes:
+#: our shape ids and centres, the sort, and gdstk's float64 repetition offsets).
+GROUPED_BYTES_PER_SITE = 40
+
+
+def _machine_memory_bytes() -> int:
+    try:
+        return int(os.sysconf("SC_PAGE_SIZE") * os.sysconf("SC_PHYS_PAGES"))
+    except (ValueError, OSError, AttributeError):  # pragma: no cover - non-POSIX
+        return 1 << 62
+
+
+def _check_resources(design: Design, out: Path, outlines, *, stream_gds: bool, need_groups: bool) -> None:
+    """Refuse, before writing anything, a compile that cannot fit this machine's memory or the output disk."""
+    sites = _estimate_sites(design)
+    where = design.source_path
+    if need_groups:
+        need = sites * GROUPED_BYTES_PER_SITE
+        have = _machine_memory_bytes()
+        if need > 0.6 * have:
+            raise DesignError(
+                f"{where}: key 'mask.formats' = {list(design.mask.formats)} (hierarchy "
+                f"'{design.mask.hierarchy}'): OASIS or hierarchical output of about {sites:.3g} sites needs about "
+                f"{need / 1e9:.1f} GB of memory, more than 60% of this machine's {have / 1e9:.1f} GB; allowed here: "
+                "formats = ['gds'] with hierarchy = 'flat' (streamed tile by tile with bounded memory)")
+    if stream_gds:
+        vertices = max(len(o) for o in outlines)
+        need = sites * (4 * (1 + 3 + 1 + 2 * (vertices + 1) + 1))
+        free = shutil.disk_usage(out).free
+        if need > free:
+            raise OutputError(f"{out}: the flat GDSII of about {sites:.3g} sites needs about {need / 1e9:.1f} GB "
+                              f"but the disk has {free / 1e9:.1f} GB free; free space or choose another output "
+                              "folder")
 
 
 def _field_library(name, shape_list, members, lut, layer, grid, extras, db):

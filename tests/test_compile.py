@@ -147,3 +147,26 @@ def test_gds_bytes_do_not_depend_on_other_outputs(tmp_path, small_design_dict):
     a = compile_design(load_design(write_toml(tmp_path / "a.toml", d1)), tmp_path / "a", show_progress=False)
     b = compile_design(load_design(write_toml(tmp_path / "b.toml", d2)), tmp_path / "b", show_progress=False)
     assert a.files["gds"].read_bytes() == b.files["gds"].read_bytes()
+
+
+def test_too_large_for_memory_or_disk_is_refused_before_writing(tmp_path, small_design_dict, monkeypatch, capsys):
+    # bad input that would exhaust memory or disk gets a one-line error before anything is written
+    import shutil as _shutil
+    from collections import namedtuple
+
+    import metalay.compile as C
+    from metalay.cli import main
+
+    design = write_toml(tmp_path / "d.toml", small_design_dict)
+    monkeypatch.setattr(C, "_machine_memory_bytes", lambda: 1000)
+    assert main(["compile", str(design), "-o", str(tmp_path / "o1"), "--quiet"]) == 2
+    err = capsys.readouterr().err.strip()
+    assert "mask.formats" in err and "formats = ['gds']" in err and "\n" not in err
+    assert list((tmp_path / "o1").iterdir()) == []
+    monkeypatch.setattr(C, "_machine_memory_bytes", lambda: 1 << 40)
+    usage = namedtuple("usage", "total used free")
+    monkeypatch.setattr(_shutil, "disk_usage", lambda p: usage(10, 10, 0))
+    assert main(["compile", str(design), "-o", str(tmp_path / "o2"), "--quiet"]) == 2
+    err = capsys.readouterr().err.strip()
+    assert "disk has 0.0 GB free" in err and "\n" not in err
+    assert list((tmp_path / "o2").iterdir()) == []
