@@ -375,7 +375,7 @@ def _compile_into(design: Design, out_dir: str | Path, *, show_progress: bool | 
         "sites": int(n_sites),
         "fill_factor": round(float(fill), 6),
         "elements_per_cell": {cid: int(c) for cid, c in zip(cell_ids, per_cell)},
-        "distinct_shapes": len(shape_list),
+        "distinct_shapes": len(shape_list) if need_groups and not complement else None,  # None: not grouped
         "tiles": len(tiles),
     }
     errors = {
@@ -795,9 +795,9 @@ def _run_optics(path: Path, library: CellLibrary, design: Design) -> dict:
 def _summary(design: Design, library: CellLibrary, manifest: dict, files: dict) -> list[str]:
     c = manifest["counts"]
     e = manifest["errors"]
+    shapes = "" if c["distinct_shapes"] is None else f", {c['distinct_shapes']} distinct snapped shapes"
     lines = [
-        f"design {design.name}: {c['sites']:,} sites, fill factor {c['fill_factor']:.3f}, "
-        f"{c['distinct_shapes']} distinct snapped shapes",
+        f"design {design.name}: {c['sites']:,} sites, fill factor {c['fill_factor']:.3f}{shapes}",
         f"library {library.name} ({library.mode}, {library.phase_mechanism} phase), cell(s) "
         f"{', '.join(manifest['library']['cells_used'])}",
         f"worst phase error: snapping {e['worst_snapping_phase_error_deg']:.3f} deg, quantisation "
