@@ -246,7 +246,8 @@ def _compile_into(design: Design, out_dir: str | Path, *, show_progress: bool | 
             reach_nm += mask.write_field.max_shift_nm
         bands = complement_bands(region, design.lattice, design.aperture, db_unit_nm=db, reach_nm=reach_nm,
                                  rows_per_band=mask.complement_band_rows, field=grid)
-        ctx = replace(ctx, region=region)
+        do_rules_here = design.checks.rules if run_rules is None else run_rules
+        ctx = replace(ctx, region=region, encode_structures=bool(do_rules_here))
         tiles = [(b.rows, b.box_db, k % COMPLEMENT_VERIFY_EVERY == 0) for k, b in enumerate(bands)]
     wf_counts = {"straddling": 0, "shifted": 0, "dropped": 0, "kept_straddling": 0}
     worst_shift_nm = 0.0
@@ -271,9 +272,13 @@ def _compile_into(design: Design, out_dir: str | Path, *, show_progress: bool | 
     t0 = time.perf_counter()
     bar = progress(total=len(tiles), desc=f"{name}: tiles", enabled=show_progress, unit="tile")
     stream = GdsStream(gds_path, name, db_unit_nm=db) if stream_gds else None
+    holes_path = out / ".structures-for-rules.gds"
+    holes = GdsStream(holes_path, name, db_unit_nm=db) if ctx.encode_structures else None
     try:
         if stream is not None:
             stream.__enter__()
+        if holes is not None:
+            holes.__enter__()
         for tile in _run_tiles(tiles, ctx, _complement_tile if complement else _tile):
             bar.update(1)
             if tile.n == 0 and tile.complement is None:
@@ -289,9 +294,10 @@ def _compile_into(design: Design, out_dir: str | Path, *, show_progress: bool | 
                 wf_counts[k] += v
             worst_shift_nm = max(worst_shift_nm, tile.worst_shift_nm)
             worst_shift_phase = max(worst_shift_phase, tile.worst_shift_phase)
-            if stream is not None:
+            target = holes if complement else stream
+            if target is not None:
                 for rec in tile.records:
-                    stream.write_records(rec)
+                    target.write_records(rec)
             if tile.complement is not None:
                 ct = tile.complement
                 comp_stats["polygons"] += ct.count
@@ -324,9 +330,14 @@ def _compile_into(design: Design, out_dir: str | Path, *, show_progress: bool | 
             stream.__exit__(None, None, None)
             known_hashes[gds_path.name] = stream.sha256
             stream = None
+        if holes is not None:
+            holes.polygons(extras)
+            holes.__exit__(None, None, None)
+            holes = None
     except BaseException as exc:
-        if stream is not None:
-            stream.__exit__(type(exc), exc, exc.__traceback__)
+        for open_stream in (stream, holes):
+            if open_stream is not None:
+                open_stream.__exit__(type(exc), exc, exc.__traceback__)
         raise
     timings["layout_and_flat_gds_s"] = time.perf_counter() - t0
     if n_sites == 0:
@@ -388,7 +399,9 @@ def _compile_into(design: Design, out_dir: str | Path, *, show_progress: bool | 
     do_rules = design.checks.rules if run_rules is None else run_rules
     if do_rules:
         t0 = time.perf_counter()
-        checks["rules"] = _run_rules(primary, library, design)
+        checks["rules"] = _run_rules(primary, library, design,
+                                     structures_path=holes_path if ctx.encode_structures else None)
+        holes_path.unlink(missing_ok=True)
         timings["rules_s"] = time.perf_counter() - t0
     do_optics = design.checks.optics if run_optics is None else run_optics
     if do_optics:
@@ -462,6 +475,7 @@ class _TileContext:
     grid: WriteFieldGrid | None = None
     min_gap_db: float = 0.0
     region: object = None
+    encode_structures: bool = False
 
 
 @dataclass
@@ -626,7 +640,6 @@ def _complement_tile(task, ctx: _TileContext) -> _TileOut:
     ncell = len(ctx.cell_ids)
     out = _TileOut(0, np.zeros(ncell, np.int64), [], [])
     el = _elements(rows, ctx, out)
-    db = ctx.design.mask.db_unit_nm
     if el is None:
         centres = np.zeros((0, 2), np.int64)
         offsets = np.zeros((0, 4, 2), np.int32)
@@ -642,6 +655,12 @@ def _complement_tile(task, ctx: _TileContext) -> _TileOut:
         inside = (centres[:, 1] >= box_db[1]) & (centres[:, 1] < box_db[3])
         out.n = int(inside.sum())
         out.per_cell = np.bincount(el.slot[inside], minlength=ncell).astype(np.int64)
+        if ctx.encode_structures:  # the holes themselves, for the design-rule check of the cells
+            for k, o in enumerate(el.offsets):
+                own = inside[el.slot == k] if ncell > 1 else inside
+                c_k = centres[el.slot == k] if ncell > 1 else centres
+                out.records.append(boundary_records(ctx.layer, ctx.datatypes[k], centres_db=c_k[own],
+                                                    offsets_db=o[own]))
     cuts = None
     grid = ctx.grid
     if grid is not None:
@@ -650,7 +669,6 @@ def _complement_tile(task, ctx: _TileContext) -> _TileOut:
         k1 = math.ceil((x1 - grid.origin_db[0]) / grid.size_db[0])
         cuts = grid.origin_db[0] + grid.size_db[0] * np.arange(k0, k1 + 1)
     out.complement = complement_tile(centres, offsets, ctx.region, box_db, cut_x_db=cuts, verify=verify)
-    del db
     return out
 
 
@@ -776,12 +794,63 @@ def _extras(design: Design, library: CellLibrary, lut=None, classes=None):
     return polys
 
 
-def _run_rules(path: Path, library: CellLibrary, design: Design) -> dict:
-    try:
-        from . import rules
-    except ImportError:
-        return {"status": "not available"}
-    return rules.compile_check(path, library, design)
+def _run_rules(path: Path, library: CellLibrary, design: Design, *, structures_path: Path | None = None) -> dict:
+    """The library's default rules on the mask just written (every structure datatype, frame enclosure, and the
+    write field when the design has square fields).
+
+    For tone "complement" the written pieces touch along their cut lines by construction, so on them only grid,
+    validity, vertex count and frame enclosure apply; the feature, gap and aspect rules of the cells are checked
+    on the structures themselves (the holes), written to ``structures_path`` for the purpose.
+    """
+    from dataclasses import replace as dc_replace
+
+    from . import rules
+
+    mask = design.mask
+    wf = mask.write_field
+    square = wf is not None and abs(wf.size_um[0] - wf.size_um[1]) < 1e-12
+    base = rules.rules_from_library(dict(library.rules), layer=mask.layer("structures"),
+                                    film_height_nm=library.film_height_nm, frame_layer=mask.layer("frame"),
+                                    write_field_um=wf.size_um[0] if square else None)
+    if square:  # the same grid compile used: origin and size rounded to the database grid
+        g = WriteFieldGrid.from_um(wf.size_um, wf.origin_um, db_unit_nm=mask.db_unit_nm)
+        to_um = mask.db_unit_nm / 1000.0
+        base = dc_replace(base, write_field_um=g.size_db[0] * to_um,
+                          write_field_centre_um=((g.origin_db[0] + g.size_db[0] / 2) * to_um,
+                                                 (g.origin_db[1] + g.size_db[1] / 2) * to_um))
+    layer = mask.layer("structures")[0]
+    datatypes = sorted({int(v) for k, v in dict(mask.dose_datatypes).items()
+                        if k not in ("complement", "frame", "label", "marks")} | {mask.layer("structures")[1]})
+    template = base.layers[0]
+
+    def ruleset(**changes):
+        return dc_replace(base, layers=tuple(dc_replace(template, datatype=dt, **changes) for dt in datatypes))
+
+    out = {}
+    if structures_path is None:
+        report = rules.check_mask(path, ruleset())
+    else:
+        report = rules.check_mask(structures_path, ruleset(inside_frame=None))
+        pieces = rules.check_mask(path, dc_replace(
+            ruleset(min_width_nm=None, min_spacing_nm=None, forbid_overlap=False, film_height_nm=None,
+                    max_aspect_ratio=None, no_field_straddle=False, max_vertices=8190),
+            layers=tuple(dc_replace(lr, datatype=int(dict(mask.dose_datatypes).get("complement", lr.datatype)))
+                         for lr in ruleset(min_width_nm=None, min_spacing_nm=None, forbid_overlap=False,
+                                           film_height_nm=None, max_aspect_ratio=None, no_field_straddle=False,
+                                           max_vertices=8190).layers)))
+        out["complement_pieces"] = {"status": "clean" if pieces.clean else "violations",
+                                    "violations": pieces.total_violations, "summary": pieces.summary_lines()}
+        out["note"] = ("tone 'complement': feature, gap and aspect rules checked on the structures (the holes); "
+                       "grid, validity, vertex count and frame enclosure on the written pieces")
+    d = report.to_dict(max_listed=20)
+    d.update(out)
+    total = report.total_violations + out.get("complement_pieces", {}).get("violations", 0)
+    d["status"] = "clean" if total == 0 else "violations"
+    d["violations"] = total
+    d["summary"] = report.summary_lines() + [f"pieces: {line}" for line in
+                                             out.get("complement_pieces", {}).get("summary", [])]
+    d["timings_s"] = {k: round(v, 3) for k, v in report.timings_s}
+    return d
 
 
 def _run_optics(path: Path, library: CellLibrary, design: Design) -> dict:
