@@ -677,9 +677,14 @@ def _group_features(X: np.ndarray, want_angle: bool = True):
                      _reduce(np.maximum, [X[:, k, 0] for k in range(n)]),
                      _reduce(np.maximum, [X[:, k, 1] for k in range(n)])], 1)
     width = np.full(m, np.inf)
-    for _i, _j, d, _dt, _l2 in _vertex_edge_distances(xs, ys, ex, ey):
-        np.minimum(width, d, out=width)
-    width = np.where(convex, width, np.inf)
+    if convex.any():  # width is defined here for convex polygons only: skip the O(n^2) loop when there are none
+        if not convex.all():
+            keep = np.flatnonzero(convex)
+            xs, ys, ex, ey = ([a[keep] for a in arrs] for arrs in (xs, ys, ex, ey))
+        w_conv = np.full(xs[0].shape[0], np.inf)
+        for _i, _j, d, _dt, _l2 in _vertex_edge_distances(xs, ys, ex, ey):
+            np.minimum(w_conv, d, out=w_conv)
+        width[convex] = w_conv
     r2max = 0.0
     if m:
         cx = (bbox[:, 0] + bbox[:, 2]) / 2.0
