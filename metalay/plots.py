@@ -122,9 +122,11 @@ def far_field_map(power: np.ndarray, u: np.ndarray, v: np.ndarray, *, title: str
     im = ax.imshow(np.maximum(img, top * 10 ** (-dynamic_range_db / 10) if log else 0), origin="lower",
                    cmap=INTENSITY_CMAP, norm=norm, interpolation="nearest", extent=[u[0], u[-1], v[0], v[-1]])
     fig.colorbar(im, ax=ax).set_label("power per bin (relative)" if not log else "power per bin (log)")
-    for label, (mu, mv) in (marks or {}).items():
+    for k, (label, (mu, mv)) in enumerate((marks or {}).items()):
         ax.plot([mu], [mv], marker="o", mfc="none", mec=HIGHLIGHT_COLOUR, ms=10, mew=1.2)
-        ax.annotate(label, (mu, mv), textcoords="offset points", xytext=(6, 6), color=HIGHLIGHT_COLOUR)
+        # alternate above/below so labels of nearby spots do not overlap
+        ax.annotate(label.replace("_", " "), (mu, mv), textcoords="offset points",
+                    xytext=(6, 7) if k % 2 == 0 else (6, -15), color=HIGHLIGHT_COLOUR)
     ax.set_xlabel("u = sin(theta_x)")
     ax.set_ylabel("v = sin(theta_y)")
     ax.set_title(title)
@@ -136,15 +138,21 @@ def oam_bars(charges, weights, *, design_charge=None, title: str = "OAM spectrum
     """Bar chart of power per topological charge (designed charge highlighted)."""
     charges = np.asarray(charges)
     weights = np.asarray(weights, dtype=np.float64)
-    fig = _figure(5.2, 3.4)
-    ax = fig.add_subplot()
+    fig = _figure(6.4, 3.6)
+    ax, ax_log = fig.subplots(1, 2, gridspec_kw={"width_ratios": [1, 1]})
     colours = [HIGHLIGHT_COLOUR if design_charge is not None and c == design_charge else BAR_COLOUR for c in charges]
-    ax.bar(charges, weights, color=colours, width=0.8)
-    ax.set_xticks(charges)
-    ax.set_xlabel("topological charge l")
+    step = 1 if charges.size <= 9 else (2 if charges.size <= 13 else 5)
+    for a in (ax, ax_log):
+        a.bar(charges, np.maximum(weights, 1e-12) if a is ax_log else weights, color=colours, width=0.8)
+        a.set_xticks(charges[::step])
+        a.set_xlabel("topological charge l")
     ax.set_ylabel("power fraction")
     ax.set_ylim(0, max(1.0, float(weights.max()) * 1.05) if weights.size else 1.0)
     ax.set_title(title)
+    ax_log.set_yscale("log")
+    ax_log.set_ylim(1e-8, 1.5)
+    ax_log.set_title("same, log scale")
+    fig.subplots_adjust(bottom=0.16, wspace=0.35, left=0.1, right=0.97)
     return png_bytes(fig)
 
 
