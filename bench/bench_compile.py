@@ -68,7 +68,6 @@ def _child(mode: str, folder: str, diameter: float, formats: str) -> None:
         out["stages"] = {k: round(v, 2) for k, v in res.timings_s.items()}
     elif mode == "baseline":
         import gdstk
-        import numpy as np
 
         from metalay.lattice import Aperture, Lattice, sample_sites
         from metalay.mapping import geometric_rotation

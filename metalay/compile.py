@@ -605,8 +605,7 @@ def _tile(rows, ctx: _TileContext) -> _TileOut:
     el = _elements((rows[0] - halo, rows[1] + halo), ctx, out, active_rows=rows if halo else None)
     if el is None:
         return out
-    library = ctx.library
-    for k, cid in enumerate(ctx.cell_ids):  # loop over cells (short axis)
+    for k in range(ncell):  # loop over cells (short axis)
         sel = np.flatnonzero(el.slot == k) if ncell > 1 else slice(None)
         offsets = el.offsets[k]
         theta = el.theta[sel]
@@ -818,7 +817,6 @@ def _run_rules(path: Path, library: CellLibrary, design: Design, *, structures_p
         base = dc_replace(base, write_field_um=g.size_db[0] * to_um,
                           write_field_centre_um=((g.origin_db[0] + g.size_db[0] / 2) * to_um,
                                                  (g.origin_db[1] + g.size_db[1] / 2) * to_um))
-    layer = mask.layer("structures")[0]
     datatypes = sorted({int(v) for k, v in dict(mask.dose_datatypes).items()
                         if k not in ("complement", "frame", "label", "marks")} | {mask.layer("structures")[1]})
     template = base.layers[0]

@@ -996,7 +996,6 @@ def _pairs_lattice(flat: FlatPolygons, idx: np.ndarray, n: int, bbox: np.ndarray
 
     parts = _map_chunks(work, starts, threads)
     n_off = plan["n_offsets"]
-    del plan
     a = np.concatenate([p[0] for p in parts])
     b = np.concatenate([p[1] for p in parts])
     d = np.concatenate([p[2] for p in parts])

@@ -83,7 +83,6 @@ def test_write_field_shift_no_straddle_and_counts(tmp_path):
     fins, _ = _polys(base.files["gds"], 1, 0)
     grid = WriteFieldGrid.from_um(5.0, (0.1, 0.1), db_unit_nm=1.0)
     arr = np.stack(fins).astype(np.int64)
-    centres = np.rint(arr.mean(axis=1)).astype(np.int64)
     # independent brute-force count: a fin straddles when its x or y extent contains a field boundary strictly
     lo, hi = arr.min(axis=1), arr.max(axis=1)
     brute = 0

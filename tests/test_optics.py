@@ -1,6 +1,5 @@
 """Optical check from written masks: Jones algebra, quantised gratings, multiplexing, lenses, end to end."""
 
-import hashlib
 
 import numpy as np
 import pytest

@@ -1,6 +1,5 @@
 """Fabrication routes: multi-level etch masks, fork gratings, SLM images, orientation maps, comparison."""
 
-import hashlib
 import io
 import math
 
