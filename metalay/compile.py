@@ -841,6 +841,7 @@ def _run_rules(path: Path, library: CellLibrary, design: Design, *, structures_p
         out["note"] = ("tone 'complement': feature, gap and aspect rules checked on the structures (the holes); "
                        "grid, validity, vertex count and frame enclosure on the written pieces")
     d = report.to_dict(max_listed=20)
+    d["mask"] = Path(path).name  # relative: the file is checked in the staging folder before it is moved
     d.update(out)
     total = report.total_violations + out.get("complement_pieces", {}).get("violations", 0)
     d["status"] = "clean" if total == 0 else "violations"

@@ -170,3 +170,20 @@ def test_too_large_for_memory_or_disk_is_refused_before_writing(tmp_path, small_
     err = capsys.readouterr().err.strip()
     assert "disk has 0.0 GB free" in err and "\n" not in err
     assert list((tmp_path / "o2").iterdir()) == []
+
+
+def test_compile_with_checks_is_deterministic(tmp_path, small_design_dict):
+    d = copy.deepcopy(small_design_dict)
+    d["checks"] = {"rules": True, "optics": True}
+    path = write_toml(tmp_path / "d.toml", d)
+    a = compile_design(load_design(path), tmp_path / "a", show_progress=False)
+    b = compile_design(load_design(path), tmp_path / "b", show_progress=False)
+    files_a = sorted(p.relative_to(tmp_path / "a") for p in (tmp_path / "a").rglob("*") if p.is_file())
+    files_b = sorted(p.relative_to(tmp_path / "b") for p in (tmp_path / "b").rglob("*") if p.is_file())
+    assert files_a == files_b
+    for rel in files_a:
+        if rel.name == "timings.json":
+            continue
+        assert (tmp_path / "a" / rel).read_bytes() == (tmp_path / "b" / rel).read_bytes(), rel
+    assert str(tmp_path) not in (tmp_path / "a" / "manifest.json").read_text()
+    assert a.manifest["checks"]["rules"]["status"] == "clean"
