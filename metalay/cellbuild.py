@@ -129,6 +129,21 @@ def _values(table, key, where):
     return arr
 
 
+def _load_tables(path: Path, sections) -> dict:
+    """Read a TOML file that must hold the given tables; one-line CellBuildError otherwise."""
+    where = str(path)
+    try:
+        data = tomllib.loads(path.read_text(encoding="utf-8"))
+    except OSError as exc:
+        raise CellBuildError(f"{where}: cannot read ({exc.strerror})") from exc
+    except (tomllib.TOMLDecodeError, UnicodeDecodeError) as exc:
+        raise CellBuildError(f"{where}: not valid TOML ({exc})") from exc
+    for sec in sections:
+        if not isinstance(data.get(sec), dict):
+            raise CellBuildError(f"{where}: missing table [{sec}]")
+    return data
+
+
 def load_build_spec(path) -> BuildSpec:
     """Read and validate a build spec TOML file.
 
@@ -139,15 +154,7 @@ def load_build_spec(path) -> BuildSpec:
     """
     path = Path(path)
     where = str(path)
-    try:
-        data = tomllib.loads(path.read_text(encoding="utf-8"))
-    except OSError as exc:
-        raise CellBuildError(f"{where}: cannot read ({exc.strerror})") from exc
-    except (tomllib.TOMLDecodeError, UnicodeDecodeError) as exc:
-        raise CellBuildError(f"{where}: not valid TOML ({exc})") from exc
-    for sec in ("library", "stack", "rules", "sweep"):
-        if not isinstance(data.get(sec), dict):
-            raise CellBuildError(f"{where}: missing table [{sec}]")
+    data = _load_tables(path, ("library", "stack", "rules", "sweep"))
     lib, st, ru, sw = data["library"], data["stack"], data["rules"], data["sweep"]
     so, bd = data.get("solver", {}), data.get("band", {})
     w = f"{where} [library]"
@@ -527,15 +534,7 @@ def import_responses(table_path, meta_path):
 
     meta_path, table_path = Path(meta_path), Path(table_path)
     where = str(meta_path)
-    try:
-        meta = tomllib.loads(meta_path.read_text(encoding="utf-8"))
-    except OSError as exc:
-        raise CellBuildError(f"{where}: cannot read ({exc.strerror})") from exc
-    except (tomllib.TOMLDecodeError, UnicodeDecodeError) as exc:
-        raise CellBuildError(f"{where}: not valid TOML ({exc})") from exc
-    for sec in ("library", "stack", "rules"):
-        if not isinstance(meta.get(sec), dict):
-            raise CellBuildError(f"{where}: missing table [{sec}]")
+    meta = _load_tables(meta_path, ("library", "stack", "rules"))
     lib, st, ru = meta["library"], meta["stack"], meta["rules"]
     w = f"{where} [library]"
     name = _get(lib, "name", w, str, "text")

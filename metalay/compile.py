@@ -200,7 +200,7 @@ def _compile_into(design: Design, out_dir: str | Path, *, show_progress: bool | 
                               "libraries (allowed here: 'flat')")
     outlines = [bias_outline_nm(outline_nm(library.cells[library.cell_index(c)]), mask.bias_nm,
                                 corner=mask.bias_corners, where=design.source_path)
-                for c in library_cells(library, cell_ids)]
+                for c in cell_ids]
     levels = mask.rotation_levels
     s_layer, s_dt = mask.layer("structures")
     classes = list(cell_ids) + ["complement", "frame", "label", "marks"]
@@ -237,7 +237,6 @@ def _compile_into(design: Design, out_dir: str | Path, *, show_progress: bool | 
                        encode_gds=stream_gds and not complement, need_groups=need_groups and not complement,
                        alias_stride=max(1, int(math.ceil(_estimate_sites(design) / ALIAS_SAMPLES))),
                        grid=grid, min_gap_db=min_gap_db)
-    bands = None
     if complement:
         region = (aperture_region_db(design.aperture, db_unit_nm=db) if mask.complement_region == "aperture"
                   else frame_region_db(design.aperture, margin_um=mask.frame_margin_um, db_unit_nm=db))
@@ -749,11 +748,6 @@ def _rounded(obj):
     if isinstance(obj, float):
         return round(obj, 3)
     return obj
-
-
-def library_cells(library: CellLibrary, cell_ids: list[str]) -> list[str]:
-    """The cell ids in use (validated)."""
-    return [library.cells[library.cell_index(c)].id for c in cell_ids]
 
 
 def _estimate_sites(design: Design) -> float:

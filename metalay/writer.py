@@ -31,7 +31,7 @@ import numpy as np
 
 from .atomic import atomic_path
 from .errors import OutputError
-from .layout import Polygon
+from .layout import Polygon, SnappedRows
 
 __all__ = [
     "GdsStream",
@@ -168,32 +168,16 @@ def boundary_records(layer: int, datatype: int, vertices_db: np.ndarray | None =
     Each row is BOUNDARY, LAYER, DATATYPE, XY (V + 1 points, closed), ENDEL: 64 bytes for a 4-vertex element.
     Pure function of its inputs, so tiles can be encoded in worker threads.
     """
-    if vertices_db is None:
-        n, nv, _ = offsets_db.shape
-        lo = centres_db.min(initial=0) + offsets_db.min(initial=0)
-        hi = centres_db.max(initial=0) + offsets_db.max(initial=0)
-    else:
-        n, nv, _ = vertices_db.shape
-        lo, hi = vertices_db.min(initial=0), vertices_db.max(initial=0)
-    if nv > MAX_GDS_VERTICES:
-        raise OutputError(f"{where}: polygon with {nv} vertices exceeds the GDSII limit of {MAX_GDS_VERTICES}")
+    if vertices_db is not None:
+        offsets_db = vertices_db
+        centres_db = np.zeros((vertices_db.shape[0], 2), dtype=np.int64)
+    n, nv, _ = offsets_db.shape
+    lo = centres_db.min(initial=0) + offsets_db.min(initial=0)
+    hi = centres_db.max(initial=0) + offsets_db.max(initial=0)
     if lo < -(2 ** 31) or hi >= 2 ** 31:
         raise OutputError(f"{where}: coordinates exceed the 32-bit range of GDSII at this database unit")
-    nxy = 2 * (nv + 1)
-    words = 1 + 3 + 1 + nxy + 1
-    head = np.array([(4 << 16) | _BOUNDARY, (6 << 16) | _LAYER, ((layer & 0xFFFF) << 16) | 6,
-                     (_DATATYPE << 16) | (datatype & 0xFFFF), ((4 + 4 * nxy) << 16) | _XY], dtype=np.uint32)
-    rec = np.empty((n, words), dtype=np.int32)  # native order, swapped once at the end
-    rec[:, :5] = head.view(np.int32)
-    xy = rec[:, 5:5 + nxy].reshape(n, nv + 1, 2)
-    if vertices_db is None:
-        c32 = centres_db.astype(np.int32, copy=False)  # in range: checked above
-        np.add(c32[:, None, :], offsets_db.astype(np.int32, copy=False), out=xy[:, :nv, :])
-    else:
-        xy[:, :nv, :] = vertices_db
-    xy[:, nv, :] = xy[:, 0, :]
-    rec[:, 5 + nxy] = (4 << 16) | _ENDEL
-    return rec.byteswap(inplace=True).view(">i4") if np.little_endian else rec.view(">i4")
+    rows = np.ascontiguousarray(offsets_db.reshape(n, 2 * nv).T).astype(np.int32, copy=False)
+    return boundary_records_rows(layer, datatype, centres_db, SnappedRows(rows, nv, False, 0.0), where=where)
 
 
 def boundary_records_rows(layer: int, datatype: int, centres_db: np.ndarray, snapped, *,
