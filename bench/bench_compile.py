@@ -57,8 +57,8 @@ def _child(mode: str, folder: str, diameter: float, formats: str) -> None:
     t0 = time.perf_counter()
     out = {}
     if mode == "metalay":
-        from metalay.compile import compile_design
-        from metalay.spec import load_design
+        from metalay.mask.compile import compile_design
+        from metalay.design.spec import load_design
 
         path = Path(folder) / "bench.toml"
         path.write_text(DESIGN.format(diameter=diameter, formats=formats))
@@ -69,9 +69,9 @@ def _child(mode: str, folder: str, diameter: float, formats: str) -> None:
     elif mode == "baseline":
         import gdstk
 
-        from metalay.lattice import Aperture, Lattice, sample_sites
-        from metalay.mapping import geometric_rotation
-        from metalay.phase import Lens, Vortex, target_phase
+        from metalay.design.lattice import Aperture, Lattice, sample_sites
+        from metalay.mask.mapping import geometric_rotation
+        from metalay.design.phase import Lens, Vortex, target_phase
 
         sites = sample_sites(Aperture("circle", diameter_um=diameter), Lattice("square", 325.0))
         phi = target_phase((Vortex(3), Lens(5000.0)), sites.x_um, sites.y_um, wavelength_nm=532.0)

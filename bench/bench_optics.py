@@ -36,7 +36,7 @@ def peak_mb() -> float:
 
 
 def design_for(diameter_um: float):
-    from metalay.spec import parse_design
+    from metalay.design.spec import parse_design
 
     return parse_design({
         "design": {"name": "bench-optics", "wavelength_nm": 532.0, "input_spin": 1, "library": "tio2-nanofin-532"},
@@ -48,13 +48,13 @@ def design_for(diameter_um: float):
 def make_mask(path: str, diameter_um: float) -> dict:
     import numpy as np
 
-    from metalay.lattice import row_range, sample_sites
-    from metalay.phase import target_phase
-    from metalay.writer import GdsStream
+    from metalay.design.lattice import row_range, sample_sites
+    from metalay.design.phase import target_phase
+    from metalay.io.writer import GdsStream
 
     t0 = time.perf_counter()
     design = design_for(diameter_um)
-    from metalay.library import load_library
+    from metalay.cells.library import load_library
 
     cell = load_library("tio2-nanofin-532").cells[0]  # the bundled library's fin (so decoding matches it)
     hl, hw = cell.dim("length_nm") / 2, cell.dim("width_nm") / 2
@@ -78,7 +78,7 @@ def make_mask(path: str, diameter_um: float) -> dict:
 
 
 def run_ours(path: str, diameter_um: float, out_dir: str) -> dict:
-    from metalay import optics
+    from metalay.checks import optics
 
     t0 = time.perf_counter()
     res = optics.check_optics(path, "tio2-nanofin-532", design=design_for(diameter_um), out_dir=out_dir,

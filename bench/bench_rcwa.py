@@ -28,7 +28,7 @@ import numpy as np  # noqa: E402
 
 sys.path.insert(0, str(Path(__file__).resolve().parent.parent))
 
-from metalay.rcwa import Layer, Stack, rect_pattern, solve  # noqa: E402
+from metalay.cells.rcwa import Layer, Stack, rect_pattern, solve  # noqa: E402
 
 WL, P, H = 532.0, 325.0, 600.0
 EPS_FIN, EPS_SUB = 2.45**2, 1.4607**2

@@ -35,7 +35,7 @@ def peak_mb() -> float:
 def make_mask(path: str, diameter_um: float, pitch_nm: int = 325) -> dict:
     import numpy as np
 
-    from metalay.writer import GdsStream
+    from metalay.io.writer import GdsStream
 
     t0 = time.perf_counter()
     n = int(np.ceil(diameter_um * 1000 / 2 / pitch_nm))
@@ -63,7 +63,7 @@ def make_mask(path: str, diameter_um: float, pitch_nm: int = 325) -> dict:
 
 
 def run_ours(path: str, spacing_nm: float) -> dict:
-    from metalay.rules import LayerRules, RuleSet, check_mask
+    from metalay.checks.rules import LayerRules, RuleSet, check_mask
 
     rules = RuleSet("bench", (LayerRules(1, 0, min_width_nm=80.0, min_spacing_nm=spacing_nm, forbid_overlap=True,
                                          min_area_nm2=15000.0, grid_nm=1.0, no_field_straddle=True),),
@@ -82,7 +82,7 @@ def run_baseline(path: str, spacing_nm: float) -> dict:
     import numpy as np
     import shapely
 
-    from metalay.gdsread import read_mask
+    from metalay.io.gdsread import read_mask
 
     t0 = time.perf_counter()
     fp = read_mask(path, layers=[(1, 0)])
@@ -104,7 +104,7 @@ def run_baseline(path: str, spacing_nm: float) -> dict:
 def run_warm(path: str) -> dict:
     """Untimed read in its own process before each timed run, so that every timed run starts from the same
     state (the first process to map a freshly written file was measured up to ~2 s slower on this machine)."""
-    from metalay.gdsread import read_mask
+    from metalay.io.gdsread import read_mask
 
     return {"polygons": read_mask(path, layers=[(1, 0)]).count}
 

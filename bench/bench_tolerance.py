@@ -31,7 +31,7 @@ sys.path.insert(0, str(ROOT))
 
 
 def _library(folder: Path):
-    from metalay.library import CellLibrary, CellSpec, save_library
+    from metalay.cells.library import CellLibrary, CellSpec, save_library
 
     lam = 532.0
     sizes = [(250, 85), (240, 75), (260, 95)]
@@ -55,10 +55,11 @@ def _library(folder: Path):
 
 
 def main() -> int:
-    from metalay import optics, study
-    from metalay.compile import compile_design
-    from metalay.library import load_library
-    from metalay.spec import parse_design
+    from metalay.checks import optics
+    from metalay.studies import study
+    from metalay.mask.compile import compile_design
+    from metalay.cells.library import load_library
+    from metalay.design.spec import parse_design
 
     ap = argparse.ArgumentParser()
     ap.add_argument("--samples", type=int, default=200)

@@ -26,16 +26,16 @@ from pathlib import Path
 import numpy as np
 import shapely
 
-from metalay.cellkinds import outline_nm
+from metalay.cells.cellkinds import outline_nm
 from metalay.designs import __file__ as _designs_init
-from metalay.layout import element_offsets, element_polygons, snap_centres
-from metalay.library import load_library
-from metalay.lattice import Aperture, sample_sites
-from metalay.mapping import assign_cells
-from metalay.phase import target_phase
-from metalay.process import aperture_region_db, complement_bands, complement_tile, pieces_by_vertex_count
-from metalay.spec import load_design
-from metalay.writer import MAX_GDS_VERTICES, GdsStream
+from metalay.mask.layout import element_offsets, element_polygons, snap_centres
+from metalay.cells.library import load_library
+from metalay.design.lattice import Aperture, sample_sites
+from metalay.mask.mapping import assign_cells
+from metalay.design.phase import target_phase
+from metalay.mask.process import aperture_region_db, complement_bands, complement_tile, pieces_by_vertex_count
+from metalay.design.spec import load_design
+from metalay.io.writer import MAX_GDS_VERTICES, GdsStream
 
 
 def _peak_mb() -> float:

@@ -5,10 +5,10 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from metalay.cellbuild import (CellBuildError, SweepResult, build_library, import_responses, load_build_spec,
+from metalay.cells.cellbuild import (CellBuildError, SweepResult, build_library, import_responses, load_build_spec,
                                pick_propagation)
-from metalay.library import load_library, save_library
-from metalay.rcwa import Layer, Stack, rect_pattern, solve
+from metalay.cells.library import load_library, save_library
+from metalay.cells.rcwa import Layer, Stack, rect_pattern, solve
 
 SPECS = Path(__file__).resolve().parent.parent / "libraries" / "specs"
 
@@ -231,7 +231,7 @@ def test_bundled_visible_fin_is_converged_and_reproducible():
     # (must agree within the stated 1e-3 in |t|).
     lib = load_library("tio2-nanofin-532")
     spec = load_build_spec(SPECS / "tio2-nanofin-532.toml")
-    from metalay.cellbuild import _responses
+    from metalay.cells.cellbuild import _responses
 
     cell = lib.cells[0]
     dims = {"length_nm": np.array([cell.dim("length_nm")]), "width_nm": np.array([cell.dim("width_nm")])}

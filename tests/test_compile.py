@@ -11,11 +11,11 @@ import numpy as np
 import pytest
 
 from conftest import SMALL_DESIGN, write_toml
-from metalay.compile import compile_design
-from metalay.layout import recovered_rotation
-from metalay.mapping import geometric_rotation, wrap_pi
-from metalay.phase import target_phase
-from metalay.spec import load_design, parse_design
+from metalay.mask.compile import compile_design
+from metalay.mask.layout import recovered_rotation
+from metalay.mask.mapping import geometric_rotation, wrap_pi
+from metalay.design.phase import target_phase
+from metalay.design.spec import load_design, parse_design
 
 
 def _compile(tmp_path, data, name="out"):
@@ -124,7 +124,7 @@ def test_parse_design_in_memory_notebook_use():
 
 def test_failed_check_leaves_no_output(tmp_path, small_design_dict, monkeypatch):
     # all or nothing: a failure after the masks were written removes them (no partial output)
-    import metalay.compile as C
+    import metalay.mask.compile as C
 
     def boom(*a, **k):
         raise RuntimeError("checker crashed")
@@ -154,7 +154,7 @@ def test_too_large_for_memory_or_disk_is_refused_before_writing(tmp_path, small_
     import shutil as _shutil
     from collections import namedtuple
 
-    import metalay.compile as C
+    import metalay.mask.compile as C
     from metalay.cli import main
 
     design = write_toml(tmp_path / "d.toml", small_design_dict)

@@ -8,12 +8,12 @@ import pytest
 import shapely
 
 from conftest import SMALL_DESIGN, write_toml
-from metalay.compile import compile_design
-from metalay.gdsread import read_mask
-from metalay.lattice import Aperture
-from metalay.library import load_library
-from metalay.process import WriteFieldGrid, aperture_region_db, straddles_write_field
-from metalay.spec import load_design
+from metalay.mask.compile import compile_design
+from metalay.io.gdsread import read_mask
+from metalay.design.lattice import Aperture
+from metalay.cells.library import load_library
+from metalay.mask.process import WriteFieldGrid, aperture_region_db, straddles_write_field
+from metalay.design.spec import load_design
 
 
 def _compile(tmp_path, data, name):
@@ -141,7 +141,7 @@ def test_marks_overlapping_frame_refused(tmp_path, capsys):
 
 
 def _two_size_library(tmp_path, with_biased=True):
-    from metalay.library import CellLibrary, CellSpec, save_library
+    from metalay.cells.library import CellLibrary, CellSpec, save_library
 
     # invented test library (closed-form responses stated here, not physics data)
     cells = [CellSpec("fin-a", "nanofin", "fins", (("length_nm", 250.0), ("width_nm", 85.0)))]

@@ -4,8 +4,8 @@ from pathlib import Path
 
 import pytest
 
-from metalay.compile import compile_design
-from metalay.spec import load_design
+from metalay.mask.compile import compile_design
+from metalay.design.spec import load_design
 
 EXAMPLES = sorted((Path(__file__).resolve().parent.parent / "examples").glob("*.toml"))
 

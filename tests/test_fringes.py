@@ -3,7 +3,7 @@
 import numpy as np
 import pytest
 
-from metalay import fringes
+from metalay.checks import fringes
 
 PITCH, LAM = 0.325, 532.0
 

@@ -13,7 +13,7 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 from metalay.errors import MaskReadError
-from metalay.gdsread import FlatPolygons, _real8, mask_info, read_mask
+from metalay.io.gdsread import FlatPolygons, _real8, mask_info, read_mask
 
 # ------------------------------------------------------------------------------------------------------------------
 # An independent minimal GDSII writer, written from the record descriptions of the format manual.

@@ -4,7 +4,7 @@ import numpy as np
 import pytest
 from scipy import integrate, special
 
-from metalay import grid
+from metalay.checks import grid
 
 
 def _disk(n, pitch_um, radius_um):

@@ -7,7 +7,7 @@ from hypothesis import given
 from hypothesis import strategies as st
 from scipy.spatial import cKDTree
 
-from metalay.lattice import (Aperture, Lattice, aperture_area_um2, cell_area_um2, cell_vertices_um, row_range,
+from metalay.design.lattice import (Aperture, Lattice, aperture_area_um2, cell_area_um2, cell_vertices_um, row_range,
                              sample_sites, site_count)
 
 

@@ -3,7 +3,7 @@
 import numpy as np
 import pytest
 
-from metalay.materials import MaterialError, get_material, malitson_silica_index
+from metalay.cells.materials import MaterialError, get_material, malitson_silica_index
 
 
 def test_fused_silica_nd_line():

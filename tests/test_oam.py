@@ -4,7 +4,7 @@ import numpy as np
 import pytest
 from scipy import special
 
-from metalay import oam
+from metalay.checks import oam
 
 
 def _lg(charge, xx, yy, w_um):

@@ -4,9 +4,9 @@
 import numpy as np
 import pytest
 
-from metalay import optics
-from metalay.library import CellLibrary, CellSpec
-from metalay.spec import parse_design
+from metalay.checks import optics
+from metalay.cells.library import CellLibrary, CellSpec
+from metalay.design.spec import parse_design
 
 LAM = 532.0
 P_NM = 325.0
@@ -122,8 +122,8 @@ def _design(terms, diameter_um, period_nm=P_NM, lattice="square"):
 
 
 def _mask_from_design(tmp_path, design, name):
-    from metalay.lattice import sample_sites
-    from metalay.phase import target_phase
+    from metalay.design.lattice import sample_sites
+    from metalay.design.phase import target_phase
 
     s = sample_sites(design.aperture, design.lattice)
     phi = target_phase(design.terms, s.x_um, s.y_um, wavelength_nm=LAM, sigma=design.sigma)
@@ -213,7 +213,7 @@ def test_cli_and_compile_hook(tmp_path):
 
     design = _design([{"kind": "vortex", "charge": -2}], 30.0)
     path = _mask_from_design(tmp_path, design, "cli.gds")
-    from metalay.library import save_library
+    from metalay.cells.library import save_library
 
     save_library(make_library(), tmp_path)  # the library whose fins the mask holds (250 x 85 nm)
     toml = tmp_path / "d.toml"

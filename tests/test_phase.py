@@ -5,10 +5,10 @@ import pytest
 from hypothesis import given
 from hypothesis import strategies as st
 
-from metalay.lattice import Aperture, Lattice, sample_sites
-from metalay.mapping import assign_cells, geometric_rotation, quantise_rotation, wrap_pi
-from metalay.library import load_library
-from metalay.phase import Axicon, Channel, Lens, Multiplex, QPlate, Tilt, Vortex, target_phase
+from metalay.design.lattice import Aperture, Lattice, sample_sites
+from metalay.mask.mapping import assign_cells, geometric_rotation, quantise_rotation, wrap_pi
+from metalay.cells.library import load_library
+from metalay.design.phase import Axicon, Channel, Lens, Multiplex, QPlate, Tilt, Vortex, target_phase
 
 
 def rot(t):
@@ -166,7 +166,7 @@ def test_assign_cells_geometric_levels():
 def test_imported_map_bilinear_is_exact_for_linear_phase(tmp_path):
     # Common practice (no source): bilinear interpolation reproduces a linear function exactly, so a map sampled
     # from a tilt gives the tilt's phase at every site (to rounding)
-    from metalay.phase import load_phase_map
+    from metalay.design.phase import load_phase_map
 
     xs = np.linspace(-12.0, 12.0, 7)
     ys = np.linspace(-10.0, 14.0, 9)

@@ -11,16 +11,16 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from metalay.errors import DesignError, LibraryError
-from metalay.lattice import Aperture, Lattice, sample_sites
-from metalay.layout import element_offsets, snap_centres
-from metalay.library import CellLibrary, CellSpec
-from metalay.process import (WriteFieldGrid, alignment_marks, aperture_region_db, babinet_slot_library,
+from metalay.design.lattice import Aperture, Lattice, sample_sites
+from metalay.mask.layout import element_offsets, snap_centres
+from metalay.cells.library import CellLibrary, CellSpec
+from metalay.mask.process import (WriteFieldGrid, alignment_marks, aperture_region_db, babinet_slot_library,
                              babinet_slot_response, bias_outline_nm, biased_dims_nm, check_marks_clear,
                              complement_bands, complement_tile, default_mark_positions_um, dose_datatype_lut,
                              field_cell_name, field_index, find_cell_at_dims, fit_write_fields,
                              offset_convex_polygons, pieces_by_vertex_count, shift_phase_error_rad,
                              straddles_write_field)
-from metalay.writer import MAX_GDS_VERTICES, GdsStream
+from metalay.io.writer import MAX_GDS_VERTICES, GdsStream
 
 SQ2 = math.sqrt(2.0)
 
@@ -202,7 +202,7 @@ def test_tone_inversion_overlapping_elements_are_merged():
 
 
 def test_tone_inversion_output_passes_design_rules_when_available(tmp_path):
-    rules = pytest.importorskip("metalay.rules")
+    rules = pytest.importorskip("metalay.checks.rules")
     aperture = Aperture("circle", diameter_um=6.0)
     lattice = Lattice("square", 325.0)
     centres, offsets = _fins(aperture, lattice)
@@ -213,7 +213,7 @@ def test_tone_inversion_output_passes_design_rules_when_available(tmp_path):
         for t in tiles:
             for _v, verts in pieces_by_vertex_count(t):
                 gs.boundaries(1, 0, verts)
-    from metalay.gdsread import read_mask
+    from metalay.io.gdsread import read_mask
 
     flat = read_mask(path)
     assert flat.count == sum(t.count for t in tiles)

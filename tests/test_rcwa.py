@@ -3,7 +3,7 @@
 import numpy as np
 import pytest
 
-from metalay.rcwa import Layer, Stack, ellipse_pattern, jones_circular, rect_pattern, solve, uniform_pattern
+from metalay.cells.rcwa import Layer, Stack, ellipse_pattern, jones_circular, rect_pattern, solve, uniform_pattern
 
 tmm = pytest.importorskip("tmm")
 

@@ -15,8 +15,8 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from metalay.errors import MaskReadError
-from metalay.gdsread import FlatPolygons, read_mask
-from metalay.rules import (LayerRules, RuleSet, RulesError, check_mask, load_rules, parse_rules,
+from metalay.io.gdsread import FlatPolygons, read_mask
+from metalay.checks.rules import (LayerRules, RuleSet, RulesError, check_mask, load_rules, parse_rules,
                            polygon_distance_kernel, rules_from_library)
 
 from test_gdsread import boundary, lib_bytes  # the independent minimal GDSII writer
@@ -263,7 +263,7 @@ def test_lattice_path_equals_tree_path(tmp_path, spacing_nm, n_offsets):
 
 def test_small_chunks_and_threads_give_the_same_report(tmp_path, monkeypatch):
     # many small chunks (chunk boundaries inside rows of the lattice), on 1 and on 2 threads, and the tree path
-    import metalay.rules as rules_mod
+    import metalay.checks.rules as rules_mod
 
     p = lattice_mask(tmp_path)
     rs = rules(min_width_nm=84.5, min_spacing_nm=70, forbid_overlap=True, min_angle_deg=80, min_area_nm2=21300)

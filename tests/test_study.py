@@ -12,12 +12,13 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from metalay import optics, study
+from metalay.checks import optics
+from metalay.studies import study
 from metalay.cli import main as cli_main
-from metalay.compile import compile_design
+from metalay.mask.compile import compile_design
 from metalay.errors import MetalayError
-from metalay.library import CellLibrary, CellSpec, load_library, save_library
-from metalay.spec import parse_design
+from metalay.cells.library import CellLibrary, CellSpec, load_library, save_library
+from metalay.design.spec import parse_design
 
 from conftest import write_toml
 

@@ -7,9 +7,9 @@ from hypothesis import given
 from hypothesis import strategies as st
 
 from gds_minimal import first_boundaries, real8
-from metalay.layout import Polygon, element_offsets, group_shapes, recovered_rotation, snap_centres
-from metalay.mapping import wrap_pi
-from metalay.writer import GdsStream, build_gdstk_flat, gds_real8, write_gdstk_library
+from metalay.mask.layout import Polygon, element_offsets, group_shapes, recovered_rotation, snap_centres
+from metalay.mask.mapping import wrap_pi
+from metalay.io.writer import GdsStream, build_gdstk_flat, gds_real8, write_gdstk_library
 
 
 @pytest.mark.parametrize("value", [1e-3, 1e-9, 1.0, 0.5, 1e-6, 2.5e-10, -3.75, 123456.789])

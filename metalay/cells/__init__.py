@@ -1,0 +1,3 @@
+"""metalay.cells."""
+
+__all__: list[str] = []

@@ -1,0 +1,700 @@
+"""Build cell libraries from the RCWA solver, import responses simulated elsewhere, and plot libraries.
+
+A build spec (TOML, our own keys, units in names) names the stack, the cell kind, the dimension sweep, the
+process rules, the solver settings and the band. :func:`build_library` sweeps the dimensions at the design
+wavelength, keeps only geometries that pass the rules, picks
+
+* for ``phase_mechanism = "geometric"``: the cell with the highest conversion efficiency
+  ``|(t_long - t_short)/2|^2``;
+* for ``"propagation"``: ``levels`` pillars whose zeroth-order fields best cover ``0..2 pi`` in equal phase steps
+  with the flattest, largest amplitude,
+
+then computes the response spectra of the chosen cells over the band and a convergence check at higher truncation,
+and returns a :class:`metalay.library.CellLibrary` with full provenance (no dates, so rebuilding gives the same
+bytes). Every number in the library comes from :func:`metalay.rcwa.solve`.
+
+Spec keys (see ``libraries/specs/*.toml``)::
+
+    [library]  name, description, mode, phase_mechanism, design_wavelength_nm, period_nm, lattice,
+               geometry_source, notes
+    [stack]    incident_medium, exit_medium; [[stack.layers]] name, material, thickness_nm, patterned,
+               background (patterned layer only)
+    [rules]    min_feature_nm, min_gap_nm, max_aspect_ratio, grid_nm, source
+    [sweep]    kind ("nanofin" | "slot" | "elliptic_pillar" | "round_pillar"), one {start_nm, stop_nm, step_nm} table or
+               a list per dimension (length_nm/width_nm, major_nm/minor_nm, diameter_nm), optional height_nm list,
+               levels (propagation only)
+    [solver]   harmonics_x, harmonics_y, n_stairs, convergence_extra (list of extra harmonics, e.g. [2, 4])
+    [band]     relative_half_width, count
+"""
+
+from __future__ import annotations
+
+import csv
+import io
+import math
+import tomllib
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+
+from metalay.errors import LibraryError, MetalayError
+from metalay.cells.materials import get_material
+from metalay.cells.rcwa import Layer, Stack, ellipse_pattern, rect_pattern, solve
+
+__all__ = ["CellBuildError", "BuildSpec", "SweepResult", "load_build_spec", "sweep", "pick_geometric",
+           "pick_propagation", "build_library", "import_responses", "plot_library", "library_table"]
+
+_DIMS = {"nanofin": ("length_nm", "width_nm"), "slot": ("length_nm", "width_nm"),
+         "elliptic_pillar": ("major_nm", "minor_nm"),
+         "round_pillar": ("diameter_nm",)}
+
+
+class CellBuildError(MetalayError):
+    """A build spec or an import table is invalid."""
+
+
+@dataclass(frozen=True)
+class BuildSpec:
+    """A validated build spec (all lengths in nm)."""
+
+    path: str
+    name: str
+    description: str
+    mode: str
+    phase_mechanism: str
+    design_wavelength_nm: float
+    period_nm: float
+    lattice: str
+    geometry_source: str
+    notes: str
+    incident_medium: str
+    exit_medium: str
+    layers: tuple            # dicts: name, material, thickness_nm, patterned, background
+    rules: dict
+    kind: str
+    dims: dict               # name -> ndarray of candidate values
+    heights_nm: tuple        # candidate heights of the patterned layer
+    levels: int
+    harmonics: tuple
+    n_stairs: int
+    convergence_extra: tuple
+    band_half_width: float
+    band_count: int
+
+
+def _err(where, key, value, allowed):
+    return CellBuildError(f"{where}: key '{key}' = {value!r} is invalid (allowed: {allowed})")
+
+
+def _get(table, key, where, typ, allowed_desc, default=None, required=True):
+    if key not in table:
+        if required and default is None:
+            raise CellBuildError(f"{where}: missing key '{key}' ({allowed_desc})")
+        return default
+    val = table[key]
+    if typ is float and isinstance(val, int) and not isinstance(val, bool):
+        val = float(val)
+    if not isinstance(val, typ) or isinstance(val, bool) and typ is not bool:
+        raise _err(where, key, val, allowed_desc)
+    return val
+
+
+def _pos(table, key, where, default=None, lo=0.0, hi=1e7):
+    v = _get(table, key, where, float, f"number in ({lo:g}, {hi:g}]", default)
+    if not (lo < v <= hi) or not math.isfinite(v):
+        raise _err(where, key, v, f"number in ({lo:g}, {hi:g}]")
+    return v
+
+
+def _values(table, key, where):
+    v = table.get(key)
+    if isinstance(v, list):
+        try:
+            arr = np.array([float(x) for x in v])
+        except (TypeError, ValueError) as exc:
+            raise _err(where, key, v, "list of positive numbers") from exc
+    elif isinstance(v, dict):
+        start = _pos(v, "start_nm", f"{where}.{key}")
+        stop = _pos(v, "stop_nm", f"{where}.{key}")
+        step = _pos(v, "step_nm", f"{where}.{key}")
+        if stop < start:
+            raise _err(where, key, v, "stop_nm >= start_nm")
+        arr = start + step * np.arange(int(math.floor((stop - start) / step + 1e-9)) + 1)
+    else:
+        raise CellBuildError(f"{where}: missing key '{key}' (a list of values in nm or a table "
+                             "{start_nm, stop_nm, step_nm})")
+    if arr.size == 0 or arr.size > 400 or np.any(arr <= 0) or not np.all(np.isfinite(arr)):
+        raise _err(where, key, v, "1..400 positive values")
+    return arr
+
+
+def _load_tables(path: Path, sections) -> dict:
+    """Read a TOML file that must hold the given tables; one-line CellBuildError otherwise."""
+    where = str(path)
+    try:
+        data = tomllib.loads(path.read_text(encoding="utf-8"))
+    except OSError as exc:
+        raise CellBuildError(f"{where}: cannot read ({exc.strerror})") from exc
+    except (tomllib.TOMLDecodeError, UnicodeDecodeError) as exc:
+        raise CellBuildError(f"{where}: not valid TOML ({exc})") from exc
+    for sec in sections:
+        if not isinstance(data.get(sec), dict):
+            raise CellBuildError(f"{where}: missing table [{sec}]")
+    return data
+
+
+def load_build_spec(path) -> BuildSpec:
+    """Read and validate a build spec TOML file.
+
+    Raises
+    ------
+    CellBuildError
+        Naming the file, key, value and allowed range.
+    """
+    path = Path(path)
+    where = str(path)
+    data = _load_tables(path, ("library", "stack", "rules", "sweep"))
+    lib, st, ru, sw = data["library"], data["stack"], data["rules"], data["sweep"]
+    so, bd = data.get("solver", {}), data.get("band", {})
+    w = f"{where} [library]"
+    name = _get(lib, "name", w, str, "text like 'tio2-nanofin-532'")
+    if not name or any(c in name for c in "/\\ ") or name.startswith("."):
+        raise _err(w, "name", name, "non-empty, no spaces or slashes")
+    mode = _get(lib, "mode", w, str, "'transmission' or 'reflection'")
+    if mode not in ("transmission", "reflection"):
+        raise _err(w, "mode", mode, "'transmission' or 'reflection'")
+    mech = _get(lib, "phase_mechanism", w, str, "'geometric' or 'propagation'")
+    if mech not in ("geometric", "propagation"):
+        raise _err(w, "phase_mechanism", mech, "'geometric' or 'propagation'")
+    lattice = _get(lib, "lattice", w, str, "'square'", "square")
+    if lattice != "square":
+        raise _err(w, "lattice", lattice, "'square' (the solver handles rectangular lattices only)")
+    wl = _pos(lib, "design_wavelength_nm", w, lo=100.0, hi=20000.0)
+    period = _pos(lib, "period_nm", w, hi=1e5)
+    w = f"{where} [stack]"
+    inc = _get(st, "incident_medium", w, str, "material name")
+    ext = _get(st, "exit_medium", w, str, "material name")
+    layers_raw = st.get("layers")
+    if not isinstance(layers_raw, list) or not layers_raw:
+        raise CellBuildError(f"{w}: need at least one [[stack.layers]] table")
+    layers = []
+    for k, lay in enumerate(layers_raw):
+        lw = f"{w} layers[{k}]"
+        layers.append({"name": _get(lay, "name", lw, str, "text"),
+                       "material": _get(lay, "material", lw, str, "material name"),
+                       "thickness_nm": _pos(lay, "thickness_nm", lw, hi=1e5),
+                       "patterned": _get(lay, "patterned", lw, bool, "true/false", False, required=False),
+                       "background": _get(lay, "background", lw, str, "material name", "air", required=False)})
+    if sum(lay["patterned"] for lay in layers) != 1:
+        raise CellBuildError(f"{w}: exactly one layer must have patterned = true")
+    checks = [(f"layers[{k}].{key}", lay[key]) for k, lay in enumerate(layers) for key in ("material", "background")]
+    for key, mat in checks + [("incident_medium", inc), ("exit_medium", ext)]:
+        try:
+            get_material(mat, base_dir=path.parent)
+        except MetalayError as exc:
+            raise CellBuildError(f"{w}: key '{key}': {exc}") from exc
+    w = f"{where} [rules]"
+    rules = {"min_feature_nm": _pos(ru, "min_feature_nm", w), "min_gap_nm": _pos(ru, "min_gap_nm", w),
+             "max_aspect_ratio": _pos(ru, "max_aspect_ratio", w), "grid_nm": _pos(ru, "grid_nm", w),
+             "source": _get(ru, "source", w, str, "citation or 'Common practice (no source)'")}
+    w = f"{where} [sweep]"
+    kind = _get(sw, "kind", w, str, "'nanofin', 'slot', 'elliptic_pillar' or 'round_pillar'")
+    if kind not in _DIMS:
+        raise _err(w, "kind", kind, "'nanofin', 'slot', 'elliptic_pillar' or 'round_pillar'")
+    if mech == "geometric" and kind == "round_pillar":
+        raise _err(w, "kind", kind, "an anisotropic kind for geometric phase ('nanofin', 'elliptic_pillar')")
+    dims = {d: _values(sw, d, w) for d in _DIMS[kind]}
+    patterned = next(lay for lay in layers if lay["patterned"])
+    heights = tuple(_values(sw, "height_nm", w)) if "height_nm" in sw else (patterned["thickness_nm"],)
+    levels = int(_pos(sw, "levels", w, 8.0, hi=64)) if mech == "propagation" else 1
+    w = f"{where} [solver]"
+    hx = int(_pos(so, "harmonics_x", w, 6.0, lo=0.5, hi=25))
+    hy = int(_pos(so, "harmonics_y", w, float(hx), lo=0.5, hi=25))
+    n_stairs = int(_pos(so, "n_stairs", w, 8.0, lo=0.5, hi=64))
+    extra = so.get("convergence_extra", [2, 4])
+    if not isinstance(extra, list) or not all(isinstance(e, int) and 0 < e <= 10 for e in extra):
+        raise _err(w, "convergence_extra", extra, "list of integers 1..10")
+    w = f"{where} [band]"
+    half = _pos(bd, "relative_half_width", w, 0.15, hi=0.5)
+    count = int(_pos(bd, "count", w, 11.0, lo=0.5, hi=201))
+    return BuildSpec(where, name, _get(lib, "description", f"{where} [library]", str, "text", ""), mode, mech, wl,
+                     period, lattice, _get(lib, "geometry_source", f"{where} [library]", str, "citation"),
+                     _get(lib, "notes", f"{where} [library]", str, "text", "", required=False), inc, ext,
+                     tuple(layers), rules, kind, dims, heights, levels, (hx, hy), n_stairs, tuple(extra), half,
+                     count)
+
+
+# ----------------------------------------------------------------------------------------------------------------
+
+
+@dataclass(frozen=True)
+class SweepResult:
+    """Responses of all rule-passing geometries at the design wavelength.
+
+    Attributes
+    ----------
+    dims : dict name -> ndarray (G,)
+        Dimensions of each geometry (and ``height_nm``).
+    t_long, t_short : ndarray (G,) complex
+    power_long, power_short : ndarray (G,) float
+    n_candidates : int
+        Geometries in the sweep before the rules.
+    """
+
+    dims: dict
+    t_long: np.ndarray
+    t_short: np.ndarray
+    power_long: np.ndarray
+    power_short: np.ndarray
+    n_candidates: int
+
+
+def _rule_mask(spec: BuildSpec, dims: dict, height: np.ndarray) -> np.ndarray:
+    """Geometries passing min feature, min gap (for any rotation) and aspect ratio."""
+    r = spec.rules
+    vals = [dims[d] for d in _DIMS[spec.kind]]
+    smallest = np.minimum.reduce(vals)
+    ok = smallest >= r["min_feature_nm"] - 1e-9
+    if spec.kind in ("nanofin", "slot"):
+        extent = np.hypot(dims["length_nm"], dims["width_nm"])      # circumscribed diameter: any rotation
+        ok &= dims["length_nm"] > dims["width_nm"]
+    elif spec.kind == "elliptic_pillar":
+        extent = dims["major_nm"]
+        ok &= dims["major_nm"] > dims["minor_nm"]
+    else:
+        extent = dims["diameter_nm"]
+    ok &= extent + r["min_gap_nm"] <= spec.period_nm + 1e-9
+    ok &= height / smallest <= r["max_aspect_ratio"] + 1e-9
+    return ok
+
+
+def _stack_for(spec: BuildSpec, dims: dict, height: np.ndarray, wavelength_nm: np.ndarray) -> Stack:
+    """Solver stack for geometries/wavelengths batched over B (all arrays (B,))."""
+    base = Path(spec.path).parent
+    eps = lambda name: get_material(name, base_dir=base).epsilon(wavelength_nm)  # noqa: E731
+    layers = []
+    p = spec.period_nm
+    for lay in spec.layers:
+        if lay["patterned"]:
+            e_in, e_out = eps(lay["material"]), eps(lay["background"])
+            if spec.kind in ("nanofin", "slot"):  # a slot: material = the hole's filling, background = the film
+                pat = rect_pattern(dims["length_nm"], dims["width_nm"], e_in, e_out, p, p)
+            elif spec.kind == "elliptic_pillar":
+                pat = ellipse_pattern(dims["major_nm"], dims["minor_nm"], e_in, e_out, p, p, n_stairs=spec.n_stairs)
+            else:
+                pat = ellipse_pattern(dims["diameter_nm"], dims["diameter_nm"], e_in, e_out, p, p,
+                                      n_stairs=spec.n_stairs)
+            layers.append(Layer(height, pat))
+        else:
+            layers.append(Layer(lay["thickness_nm"], eps(lay["material"])))
+    return Stack(eps(spec.incident_medium), tuple(layers), eps(spec.exit_medium), p, p)
+
+
+def _responses(spec: BuildSpec, dims: dict, height, wavelength_nm, harmonics, *, progress=None, chunk=16):
+    """(t_long, t_short, power_long, power_short) for batched geometries, in chunks (progress callback per chunk)."""
+    b = np.broadcast(*dims.values(), height, wavelength_nm).shape[0]
+    full = {k: np.broadcast_to(v, (b,)).astype(float) for k, v in dims.items()}
+    h = np.broadcast_to(height, (b,)).astype(float)
+    wl = np.broadcast_to(wavelength_nm, (b,)).astype(float)
+    out = [np.empty(b, complex), np.empty(b, complex), np.empty(b), np.empty(b)]
+    for s in range(0, b, chunk):
+        sl = slice(s, min(b, s + chunk))
+        res = solve(_stack_for(spec, {k: v[sl] for k, v in full.items()}, h[sl], wl[sl]), wl[sl],
+                    harmonics=harmonics)
+        jm = res.t_jones if spec.mode == "transmission" else res.r_jones
+        pw = res.power_t if spec.mode == "transmission" else res.power_r
+        out[0][sl], out[1][sl] = jm[:, 0, 0], jm[:, 1, 1]
+        out[2][sl], out[3][sl] = pw[:, 0], pw[:, 1]
+        if spec.kind == "round_pillar":
+            # a round pillar is isotropic at normal incidence; the y-sliced staircase breaks that by ~1e-3, so
+            # both columns carry the polarisation average (the contract's t_long == t_short)
+            for i_l, i_s in ((0, 1), (2, 3)):
+                avg = (out[i_l][sl] + out[i_s][sl]) / 2
+                out[i_l][sl], out[i_s][sl] = avg, avg
+        if progress is not None:
+            progress(sl.stop - sl.start)
+    return tuple(out)
+
+
+def sweep(spec: BuildSpec, *, progress=None) -> SweepResult:
+    """Solve every rule-passing geometry of the spec at the design wavelength.
+
+    Parameters
+    ----------
+    spec : BuildSpec
+    progress : callable(int) or None
+        Called with the number of geometries finished after each chunk (for a progress bar).
+    """
+    names = _DIMS[spec.kind]
+    grids = np.meshgrid(*[spec.dims[d] for d in names], np.array(spec.heights_nm), indexing="ij")
+    flat = {d: g.ravel() for d, g in zip(names, grids[:-1])}
+    height = grids[-1].ravel()
+    ok = _rule_mask(spec, flat, height)
+    if not np.any(ok):
+        raise CellBuildError(f"{spec.path}: no geometry of the sweep passes the rules {spec.rules}")
+    dims = {d: v[ok] for d, v in flat.items()}
+    tl, ts, pl, ps = _responses(spec, dims, height[ok], spec.design_wavelength_nm, spec.harmonics,
+                                progress=progress)
+    return SweepResult({**dims, "height_nm": height[ok]}, tl, ts, pl, ps, int(ok.size))
+
+
+def pick_geometric(sw: SweepResult) -> int:
+    """Index of the geometry with the highest conversion efficiency ``|(t_long - t_short)/2|^2``."""
+    ce = np.abs((sw.t_long - sw.t_short) / 2) ** 2
+    return int(np.argmax(ce))
+
+
+def pick_propagation(sw: SweepResult, levels: int) -> np.ndarray:
+    """Indices of ``levels`` pillars approximating ``exp(i (phi0 + 2 pi k / levels))`` with flat, high amplitude.
+
+    Notes
+    -----
+    For each global offset ``phi0`` on a 1-degree grid and each level k, take the pillar maximising the projection
+    ``Re(t exp(-i(phi0 + 2 pi k/levels)))``; keep the offset whose worst projection (the flattest and largest
+    amplitude set) is best. Ties resolve to the smaller offset and smaller index (deterministic).
+    """
+    t = sw.t_long
+    offsets = np.deg2rad(np.arange(360.0))
+    targets = offsets[:, None] + 2 * np.pi * np.arange(levels)[None, :] / levels       # (O, K)
+    proj = np.real(t[None, None, :] * np.exp(-1j * targets)[:, :, None])              # (O, K, G)
+    best = np.argmax(proj, axis=2)                                                     # (O, K)
+    score = np.take_along_axis(proj, best[:, :, None], axis=2)[:, :, 0].min(axis=1)    # (O,)
+    o = int(np.argmax(score))
+    return best[o]
+
+
+def _cell_id(kind: str, dims: dict) -> str:
+    f = lambda v: (f"{v:.0f}" if abs(v - round(v)) < 1e-9 else f"{v:g}".replace(".", "p"))  # noqa: E731
+    if kind == "nanofin":
+        return f"fin-{f(dims['length_nm'])}x{f(dims['width_nm'])}"
+    if kind == "slot":
+        return f"slot-{f(dims['length_nm'])}x{f(dims['width_nm'])}"
+    if kind == "elliptic_pillar":
+        return f"ellipse-{f(dims['major_nm'])}x{f(dims['minor_nm'])}"
+    return f"pillar-d{f(dims['diameter_nm'])}"
+
+
+def build_library(spec: BuildSpec, *, progress=None):
+    """Sweep, pick, compute spectra and convergence, and return a CellLibrary (not yet written).
+
+    Parameters
+    ----------
+    spec : BuildSpec
+    progress : callable(total: int) -> callable(int) or None
+        Factory of a progress callback for the sweep (the CLI passes a tqdm bar).
+
+    Returns
+    -------
+    (CellLibrary, SweepResult)
+    """
+    from metalay.cells.library import CellLibrary, CellSpec
+
+    names = _DIMS[spec.kind]
+    n_total = int(np.prod([spec.dims[d].size for d in names])) * len(spec.heights_nm)
+    cb = progress(n_total) if progress is not None else None
+    sw = sweep(spec, progress=cb)
+    if spec.phase_mechanism == "geometric":
+        picks = np.array([pick_geometric(sw)])
+    else:
+        picks = pick_propagation(sw, spec.levels)
+    heights = sw.dims["height_nm"][picks]
+    if np.unique(heights).size != 1:
+        raise CellBuildError(f"{spec.path}: picked cells have different heights {np.unique(heights)}; "
+                             "sweep one height for propagation-phase libraries")
+    height = float(heights[0])
+    chosen = [{d: float(sw.dims[d][i]) for d in names} for i in picks]
+    # de-duplicate (a propagation set may pick one pillar for two neighbouring levels) and sort by id
+    uniq = {}
+    for c in chosen:
+        uniq.setdefault(_cell_id(spec.kind, c), c)
+    ids = sorted(uniq)
+    cell_dims = {d: np.array([uniq[i][d] for i in ids]) for d in names}
+    c = len(ids)
+    wl = spec.design_wavelength_nm * np.linspace(1 - spec.band_half_width, 1 + spec.band_half_width,
+                                                 spec.band_count)
+    wl = np.round(wl, 6)
+    rep = {d: np.repeat(v, wl.size) for d, v in cell_dims.items()}
+    tl, ts, pl, ps = _responses(spec, rep, height, np.tile(wl, c), spec.harmonics)
+    tl, ts, pl, ps = (_q(a.reshape(c, wl.size)) for a in (tl, ts, pl, ps))
+
+    # convergence at the design wavelength for the chosen cells
+    conv = []
+    t0l, t0s, _, _ = _responses(spec, cell_dims, height, spec.design_wavelength_nm, spec.harmonics)
+    for e in spec.convergence_extra:
+        hh = (spec.harmonics[0] + e, spec.harmonics[1] + e)
+        t1l, t1s, _, _ = _responses(spec, cell_dims, height, spec.design_wavelength_nm, hh)
+        conv.append({"harmonics_x": hh[0], "harmonics_y": hh[1],
+                     "max_abs_change_t": _r(max(np.max(np.abs(t1l - t0l)), np.max(np.abs(t1s - t0s)))),
+                     "max_abs_change_abs_t": _r(max(np.max(np.abs(np.abs(t1l) - np.abs(t0l))),
+                                                    np.max(np.abs(np.abs(t1s) - np.abs(t0s))))),
+                     "max_change_phase_deg": _r(max(np.max(np.abs(np.angle(t1l / t0l, deg=True))),
+                                                    np.max(np.abs(np.angle(t1s / t0s, deg=True)))))})
+
+    base = Path(spec.path).parent
+    mats = {}
+    for nm in {spec.incident_medium, spec.exit_medium, *[lay["material"] for lay in spec.layers],
+               *[lay["background"] for lay in spec.layers if lay["patterned"]]}:
+        mats[nm] = get_material(nm, base_dir=base).describe()
+    k = wl.size // 2
+    if spec.phase_mechanism == "geometric":
+        ce = np.abs((tl[:, k] - ts[:, k]) / 2) ** 2
+        found = (f"Solver found: best of {sw.t_long.size} rule-passing geometries ({sw.n_candidates} swept) is "
+                 f"{ids[0]} at height {height:g} nm: |t_long| = {abs(tl[0, k]):.4f}, |t_short| = {abs(ts[0, k]):.4f}, "
+                 f"phase difference {np.angle(tl[0, k] / ts[0, k], deg=True):.2f} deg, conversion efficiency "
+                 f"{ce[0]:.4f} at {wl[k]:g} nm.")
+    else:
+        ph = np.angle(tl[:, k] / tl[0, k], deg=True) % 360
+        found = (f"Solver found: {c} pillars from {sw.t_long.size} rule-passing diameters ({sw.n_candidates} "
+                 f"swept), |t| from {np.min(np.abs(tl[:, k])):.3f} to {np.max(np.abs(tl[:, k])):.3f}, relative "
+                 f"phases {', '.join(f'{p:.0f}' for p in np.sort(ph))} deg at {wl[k]:g} nm.")
+    solver = {"name": "metalay.rcwa", "method": "RCWA / Fourier modal method with scattering matrices",
+              "factorization": "Li 1997 (inverse rule along the discontinuity, Laurent along the other axis)",
+              "references": ["Moharam et al. 1995, J. Opt. Soc. Am. A 12, 1068",
+                             "Li 1996, J. Opt. Soc. Am. A 13, 1870", "Li 1997, J. Opt. Soc. Am. A 14, 2758",
+                             "Rumpf 2011, PIER B 35, 241"],
+              "harmonics_x": spec.harmonics[0], "harmonics_y": spec.harmonics[1], "truncation": "rectangular",
+              "n_stairs": spec.n_stairs if spec.kind not in ("nanofin", "slot") else None,
+              "incidence": "normal, from the incident medium", "convergence": conv,
+              "sweep": {"kind": spec.kind, **{d: [_r(v) for v in spec.dims[d]] for d in names},
+                        "height_nm": [_r(v) for v in spec.heights_nm], "candidates": sw.n_candidates,
+                        "passed_rules": int(sw.t_long.size),
+                        "criterion": ("max conversion efficiency |(t_long - t_short)/2|^2"
+                                      if spec.phase_mechanism == "geometric" else
+                                      f"{spec.levels} equal phase levels, max of the worst projection "
+                                      "Re(t exp(-i phi_k))")},
+              "band": {"relative_half_width": spec.band_half_width, "count": spec.band_count}}
+    provenance = {"geometry_source": spec.geometry_source,
+                  "responses_source": f"metalay cells build {Path(spec.path).name}",
+                  "solver": solver, "materials": {k2: mats[k2] for k2 in sorted(mats)},
+                  "notes": (spec.notes + " " if spec.notes else "") + found}
+    layers = tuple({"name": lay["name"], "material": lay["material"],
+                    "thickness_nm": height if lay["patterned"] else lay["thickness_nm"],
+                    "patterned": lay["patterned"], **({"background": lay["background"]} if lay["patterned"] else {})}
+                   for lay in spec.layers)
+    patterned = next(lay["name"] for lay in spec.layers if lay["patterned"])
+    cells = tuple(CellSpec(id=i, kind=spec.kind, layer=patterned,
+                           dims_nm=tuple((d, float(uniq[i][d])) for d in names)) for i in ids)
+    lib = CellLibrary(name=spec.name, description=spec.description, mode=spec.mode,
+                      phase_mechanism=spec.phase_mechanism, design_wavelength_nm=spec.design_wavelength_nm,
+                      period_nm=spec.period_nm, lattice=spec.lattice, incident_medium=spec.incident_medium,
+                      exit_medium=spec.exit_medium if spec.mode == "transmission" else spec.incident_medium,
+                      layers=layers, rules=dict(spec.rules), provenance=provenance, cells=cells,
+                      wavelengths_nm=wl, t_long=tl, t_short=ts, power_long=pl, power_short=ps)
+    return lib, sw
+
+
+def _r(v: float) -> float:
+    """Round for the JSON metadata: 9 significant digits keep provenance byte-stable across BLAS thread counts."""
+    return float(f"{float(v):.9g}")
+
+
+def _q(a: np.ndarray) -> np.ndarray:
+    """Quantise responses to 1e-10 (the solver's last bits vary ~1e-13 with BLAS threading; its accuracy is
+    ~1e-3), so that rebuilding a library gives the same bytes on any machine with high probability."""
+    if np.iscomplexobj(a):
+        return (np.round(a.real, 10) + 0.0) + 1j * (np.round(a.imag, 10) + 0.0)   # + 0.0 turns -0.0 into 0.0
+    return np.round(a, 10) + 0.0
+
+
+# ----------------------------------------------------------------------------------------------------------------
+# Import
+
+
+_IMPORT_HEADER = ("cell_id", "wavelength_nm", "t_long_re", "t_long_im", "t_short_re", "t_short_im", "power_long",
+                  "power_short")
+
+
+def import_responses(table_path, meta_path):
+    """Turn responses simulated elsewhere into a library.
+
+    Parameters
+    ----------
+    table_path : path
+        CSV with header ``cell_id,wavelength_nm,t_long_re,t_long_im,t_short_re,t_short_im,power_long,power_short``
+        (field amplitudes normalised so that ``|t|^2`` is the zeroth-order power ratio; powers are the total output
+        power, all orders, or empty when unknown).
+    meta_path : path
+        TOML with ``[library]`` (name, description, mode, phase_mechanism, design_wavelength_nm, period_nm,
+        geometry_source, responses_source), ``[stack]`` (incident_medium, exit_medium, [[stack.layers]]),
+        ``[rules]`` and ``[[cells]]`` (id, kind, layer, dimensions in nm).
+
+    Returns
+    -------
+    CellLibrary
+
+    Raises
+    ------
+    CellBuildError
+        Bad columns, units or ranges: non-numeric, wavelength outside 100..20000 nm, a passive-cell violation
+        ``|t|^2 > 1 + 1e-6`` or ``power < |t|^2 - 1e-6``, cells missing from the table or tabulated at different
+        wavelengths.
+    """
+    from metalay.cells.library import CELL_KINDS, CellLibrary, CellSpec
+
+    meta_path, table_path = Path(meta_path), Path(table_path)
+    where = str(meta_path)
+    meta = _load_tables(meta_path, ("library", "stack", "rules"))
+    lib, st, ru = meta["library"], meta["stack"], meta["rules"]
+    w = f"{where} [library]"
+    name = _get(lib, "name", w, str, "text")
+    mode = _get(lib, "mode", w, str, "'transmission' or 'reflection'")
+    if mode not in ("transmission", "reflection"):
+        raise _err(w, "mode", mode, "'transmission' or 'reflection'")
+    mech = _get(lib, "phase_mechanism", w, str, "'geometric' or 'propagation'")
+    if mech not in ("geometric", "propagation"):
+        raise _err(w, "phase_mechanism", mech, "'geometric' or 'propagation'")
+    cells_raw = meta.get("cells")
+    if not isinstance(cells_raw, list) or not cells_raw:
+        raise CellBuildError(f"{where}: need at least one [[cells]] table")
+    cells = []
+    for k, cr in enumerate(cells_raw):
+        cw = f"{where} cells[{k}]"
+        kind = _get(cr, "kind", cw, str, ", ".join(CELL_KINDS))
+        if kind not in CELL_KINDS:
+            raise _err(cw, "kind", kind, ", ".join(CELL_KINDS))
+        cells.append(CellSpec(id=_get(cr, "id", cw, str, "text"), kind=kind,
+                              layer=_get(cr, "layer", cw, str, "layer name"),
+                              dims_nm=tuple((d, _pos(cr, d, cw)) for d in CELL_KINDS[kind])))
+    ids = [c.id for c in cells]
+    if len(set(ids)) != len(ids):
+        raise CellBuildError(f"{where}: duplicate cell ids")
+    tw = str(table_path)
+    try:
+        text = table_path.read_text(encoding="utf-8")
+    except (OSError, UnicodeDecodeError) as exc:
+        raise CellBuildError(f"{tw}: cannot read as UTF-8 text") from exc
+    rows = list(csv.reader(io.StringIO(text)))
+    if not rows or tuple(h.strip() for h in rows[0]) != _IMPORT_HEADER:
+        raise CellBuildError(f"{tw}: header must be exactly {','.join(_IMPORT_HEADER)}")
+    per = {i: [] for i in ids}
+    for ln, row in enumerate(rows[1:], start=2):
+        if not row:
+            continue
+        if len(row) != 8:
+            raise CellBuildError(f"{tw}:{ln}: expected 8 columns, got {len(row)}")
+        if row[0] not in per:
+            raise CellBuildError(f"{tw}:{ln}: cell_id {row[0]!r} is not in {where} (cells: {ids})")
+        try:
+            v = [float(x) for x in row[1:6]] + [float(x) if x.strip() else math.nan for x in row[6:]]
+        except ValueError as exc:
+            raise CellBuildError(f"{tw}:{ln}: non-numeric value in {row}") from exc
+        if not all(math.isfinite(x) for x in v[:5]):
+            raise CellBuildError(f"{tw}:{ln}: wavelength_nm and t columns must be finite numbers")
+        if not 100.0 <= v[0] <= 20000.0:
+            raise CellBuildError(f"{tw}:{ln}: wavelength_nm = {v[0]:g} outside 100..20000 (values must be in nm)")
+        for a, b, pcol, label in ((v[1], v[2], v[5], "long"), (v[3], v[4], v[6], "short")):
+            t2 = a * a + b * b
+            if t2 > 1 + 1e-6:
+                raise CellBuildError(f"{tw}:{ln}: |t_{label}|^2 = {t2:.6g} > 1 (a passive cell; amplitudes must be "
+                                     "normalised so that |t|^2 is a power ratio)")
+            if math.isfinite(pcol) and not (t2 - 1e-6 <= pcol <= 1 + 1e-6):
+                raise CellBuildError(f"{tw}:{ln}: power_{label} = {pcol:g} must be in [|t_{label}|^2, 1]")
+        per[row[0]].append(v)
+    wls = None
+    for cid in ids:
+        if not per[cid]:
+            raise CellBuildError(f"{tw}: no rows for cell_id {cid!r}")
+        per[cid].sort(key=lambda r: r[0])
+        wl = [r[0] for r in per[cid]]
+        if len(set(wl)) != len(wl):
+            raise CellBuildError(f"{tw}: cell_id {cid!r} has repeated wavelength_nm")
+        if wls is None:
+            wls = wl
+        elif wl != wls:
+            raise CellBuildError(f"{tw}: cell_id {cid!r} is tabulated at different wavelengths than {ids[0]!r}")
+    arr = np.array([per[i] for i in ids])
+    w = f"{where} [stack]"
+    layers_raw = st.get("layers")
+    if not isinstance(layers_raw, list) or not layers_raw:
+        raise CellBuildError(f"{w}: need at least one [[stack.layers]] table")
+    layers = tuple({"name": _get(lay, "name", w, str, "text"), "material": _get(lay, "material", w, str, "name"),
+                    "thickness_nm": _pos(lay, "thickness_nm", w),
+                    "patterned": _get(lay, "patterned", w, bool, "true/false", False, required=False)}
+                   for lay in layers_raw)
+    w = f"{where} [rules]"
+    rules = {"min_feature_nm": _pos(ru, "min_feature_nm", w), "min_gap_nm": _pos(ru, "min_gap_nm", w),
+             "max_aspect_ratio": _pos(ru, "max_aspect_ratio", w), "grid_nm": _pos(ru, "grid_nm", w),
+             "source": _get(ru, "source", w, str, "citation or 'Common practice (no source)'")}
+    inc = _get(st, "incident_medium", f"{where} [stack]", str, "material name")
+    prov = {"geometry_source": _get(lib, "geometry_source", f"{where} [library]", str, "citation"),
+            "responses_source": "imported: " + _get(lib, "responses_source", f"{where} [library]", str,
+                                                    "how the responses were simulated (code, settings)"),
+            "solver": None, "materials": None, "notes": f"imported with metalay cells import from {table_path.name}"}
+    return CellLibrary(name=name, description=_get(lib, "description", f"{where} [library]", str, "text", ""),
+                       mode=mode, phase_mechanism=mech,
+                       design_wavelength_nm=_pos(lib, "design_wavelength_nm", f"{where} [library]", lo=100, hi=2e4),
+                       period_nm=_pos(lib, "period_nm", f"{where} [library]"), lattice="square",
+                       incident_medium=inc,
+                       exit_medium=_get(st, "exit_medium", f"{where} [stack]", str, "material name")
+                       if mode == "transmission" else inc,
+                       layers=layers, rules=rules, provenance=prov, cells=tuple(cells),
+                       wavelengths_nm=np.array(wls), t_long=arr[:, :, 1] + 1j * arr[:, :, 2],
+                       t_short=arr[:, :, 3] + 1j * arr[:, :, 4], power_long=arr[:, :, 5], power_short=arr[:, :, 6])
+
+
+# ----------------------------------------------------------------------------------------------------------------
+# Tables and plots
+
+
+def library_table(lib) -> list[dict]:
+    """Rows (one per cell and wavelength) with |t_long|, |t_short|, phase difference, conversion and leakage."""
+    if not lib.has_responses:
+        raise LibraryError(f"{lib.source_path or lib.name}: library has no responses (geometry only)")
+    rows = []
+    for c, cell in enumerate(lib.cells):
+        for k, wl in enumerate(lib.wavelengths_nm):
+            tl, ts = lib.t_long[c, k], lib.t_short[c, k]
+            rows.append({"cell_id": cell.id, "wavelength_nm": float(wl), "abs_t_long": abs(tl),
+                         "abs_t_short": abs(ts), "phase_long_deg": float(np.angle(tl, deg=True)),
+                         "phase_difference_deg": float(np.angle(tl * np.conj(ts), deg=True)),
+                         "conversion": abs((tl - ts) / 2) ** 2, "leakage": abs((tl + ts) / 2) ** 2})
+    return rows
+
+
+def plot_library(lib, png_path) -> Path:
+    """Write a PNG of a library's responses (atomic). Geometric: |t|, phase difference, conversion and leakage
+    versus wavelength; propagation: phase and amplitude versus diameter at the design wavelength."""
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+
+    from metalay.util.atomic import atomic_write_bytes
+
+    if not lib.has_responses:
+        raise LibraryError(f"{lib.source_path or lib.name}: library has no responses to plot (geometry only)")
+    wl = lib.wavelengths_nm
+    word = "r" if lib.mode == "reflection" else "t"
+    fig, axes = plt.subplots(1, 2, figsize=(10, 4), dpi=100)
+    if lib.phase_mechanism == "geometric":
+        for c, cell in enumerate(lib.cells):
+            tl, ts = lib.t_long[c], lib.t_short[c]
+            axes[0].plot(wl, np.abs(tl), label=f"|{word}_long| {cell.id}")
+            axes[0].plot(wl, np.abs(ts), "--", label=f"|{word}_short| {cell.id}")
+            axes[0].plot(wl, np.abs((tl - ts) / 2) ** 2, "-o", ms=3, label="conversion efficiency")
+            axes[0].plot(wl, np.abs((tl + ts) / 2) ** 2, "-s", ms=3, label="leakage")
+            axes[1].plot(wl, np.angle(tl * np.conj(ts), deg=True) % 360, "-o", ms=3, label=cell.id)
+        axes[0].set_xlabel("wavelength (nm)")
+        axes[1].set_xlabel("wavelength (nm)")
+        axes[1].axhline(180, color="gray", lw=0.5)
+        axes[1].set_ylabel("phase difference long - short (deg)")
+    else:
+        k = int(np.argmin(np.abs(wl - lib.design_wavelength_nm)))
+        d = np.array([c.max_extent_nm for c in lib.cells])
+        order = np.argsort(d)
+        t = lib.t_long[order, k]
+        axes[0].plot(d[order], np.abs(t), "-o", label=f"|{word}| at {wl[k]:g} nm")
+        axes[1].plot(d[order], np.unwrap(np.angle(t)) - np.angle(t[0]), "-o")
+        axes[0].set_xlabel("diameter (nm)")
+        axes[1].set_xlabel("diameter (nm)")
+        axes[1].set_ylabel("phase relative to the smallest pillar (rad)")
+    axes[0].set_ylabel("amplitude / power ratio")
+    axes[0].set_ylim(0, 1.05)
+    axes[0].legend(fontsize=7)
+    fig.suptitle(f"{lib.name} ({lib.mode}, {lib.phase_mechanism} phase, period {lib.period_nm:g} nm)")
+    fig.tight_layout()
+    buf = io.BytesIO()
+    fig.savefig(buf, format="png", metadata={"Software": None})
+    plt.close(fig)
+    return atomic_write_bytes(Path(png_path), buf.getvalue())

@@ -1,0 +1,3 @@
+"""metalay.checks."""
+
+__all__: list[str] = []

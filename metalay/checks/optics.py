@@ -1,0 +1,1255 @@
+"""Optical check of a written mask: near field from the decoded elements, far field, OAM, efficiency, crosstalk.
+
+Pipeline (each step a pure function on arrays; :func:`check_optics` chains them)::
+
+    read_mask (gdsread)  ->  decode_sites (decode)  ->  site_fields (Jones algebra per site)
+        ->  rasterize (one sample per lattice site; hexagonal lattices as equal-area bricks)
+        ->  far_field (grid) / angular_spectrum_points (grid, lenses)
+        ->  power_budget, spot_metrics, oam_spectrum (oam), crosstalk_matrix, lens_metrics, read_charge (fringes)
+        ->  plots (PNG) + report (HTML)
+
+Model and conventions
+---------------------
+* Each site is a unit cell with the library's zeroth-order complex responses ``t_long``, ``t_short`` at the chosen
+  wavelength; the cell rotated by ``theta`` has the Jones matrix ``R(-theta) diag(t_long, t_short) R(theta)``.
+  For input ``|sigma>`` the output is ``(t_long + t_short)/2 |sigma> + (t_long - t_short)/2 exp(2 i sigma theta)
+  |-sigma>``.  ``|sigma> = (x + i sigma y)/sqrt(2)``; time dependence ``exp(-i omega t)``.
+* The near field is piecewise constant over each unit cell (see :mod:`metalay.grid`); powers are fractions of the
+  power incident on the illuminated cells (``|t|^2`` is the zeroth-order power ratio, exit impedance included).
+* Illuminated region: the sites of the design's aperture when a design is given, otherwise the occupied sites
+  with enclosed holes filled.  Illuminated sites without an element transmit ``empty_t`` unconverted.
+* Far-field angles are direction cosines in air (``u = wavelength f``), the medium the beam ends in after leaving
+  a flat substrate.
+
+References
+----------
+Pancharatnam 1956, Proc. Indian Acad. Sci. A 44, 247; Berry 1987, J. Mod. Opt. 34, 1401 (geometric phase).
+Goodman 2005, Introduction to Fourier Optics, 3rd ed. (Fraunhofer and angular-spectrum propagation).
+"""
+
+from __future__ import annotations
+
+import hashlib
+import os
+import time
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+from scipy import ndimage
+
+from metalay.checks import fringes, grid, oam
+from metalay.checks.decode import DecodedSites, decode_sites
+from metalay.util._memory import keep_freed_memory
+from metalay.errors import MetalayError
+
+__all__ = [
+    "SAFETY_NOTE",
+    "OpticsTarget",
+    "SiteFields",
+    "NearField",
+    "OpticsResult",
+    "input_jones",
+    "site_fields",
+    "rasterize",
+    "power_budget",
+    "spot_fractions",
+    "crosstalk_matrix",
+    "lens_metrics",
+    "target_from_design",
+    "check_optics",
+    "quick_check",
+    "compile_check",
+]
+
+SAFETY_NOTE = ("This is a design aid. Verify every mask with full-wave simulation and with your facility's process "
+               "rules before fabrication. Follow the laser-safety classes and chemical-safety rules of your site and "
+               "local codes.")
+
+SQRT3 = np.sqrt(3.0)
+
+
+# ----------------------------------------------------------------------------------------------------------------
+# Jones algebra on sites
+# ----------------------------------------------------------------------------------------------------------------
+
+def input_jones(polarization: str, *, design_sigma: int = 1) -> np.ndarray:
+    """Normalised input Jones vector ``(E_x, E_y)``.
+
+    Parameters
+    ----------
+    polarization : str
+        ``"design"`` (the design's input spin), ``"spin+1"``, ``"spin-1"`` (``|sigma> = (x + i sigma y)/sqrt(2)``),
+        ``"linear-x"``, ``"linear-y"`` or ``"linear:<angle_deg>"`` (angle from +x towards +y).
+    design_sigma : {+1, -1}
+        Spin the design was made for.
+    """
+    p = polarization.strip().lower()
+    if p == "design":
+        p = "spin+1" if design_sigma == 1 else "spin-1"
+    if p in ("spin+1", "spin+"):
+        return np.array([1.0, 1.0j]) / np.sqrt(2)
+    if p in ("spin-1", "spin-"):
+        return np.array([1.0, -1.0j]) / np.sqrt(2)
+    if p == "linear-x":
+        return np.array([1.0, 0.0], dtype=complex)
+    if p == "linear-y":
+        return np.array([0.0, 1.0], dtype=complex)
+    if p.startswith("linear:"):
+        try:
+            a = np.radians(float(p.split(":", 1)[1]))
+        except ValueError:
+            a = None
+        if a is not None and np.isfinite(a):
+            return np.array([np.cos(a), np.sin(a)], dtype=complex)
+    raise MetalayError(f"polarization = {polarization!r}; allowed: 'design', 'spin+1', 'spin-1', 'linear-x', "
+                       "'linear-y', 'linear:<angle_deg>'")
+
+
+@dataclass(frozen=True, eq=False)
+class SiteFields:
+    """Output field per site, split by circular polarisation (parallel arrays of length S, complex64).
+
+    Attributes
+    ----------
+    designed : ndarray
+        Component in the designed output polarisation ``|-sigma_d>`` (carries ``exp(i phi)``).
+    other : ndarray
+        Component in ``|sigma_d>``.
+    converted : ndarray
+        The converted part of ``designed``: ``a_sigma (t_long - t_short)/2 exp(2 i sigma_d theta)``.
+    leaked_power : ndarray float32
+        Unconverted power per site, ``(|a_+|^2 + |a_-|^2) |(t_long + t_short)/2|^2``.
+    sigma : int
+        Design spin ``sigma_d``.
+    """
+
+    designed: np.ndarray
+    other: np.ndarray
+    converted: np.ndarray
+    leaked_power: np.ndarray
+    sigma: int
+
+
+def site_fields(t_long: np.ndarray, t_short: np.ndarray, rotation_rad: np.ndarray, jones_in: np.ndarray, *,
+                sigma: int = 1) -> SiteFields:
+    """Jones output of rotated cells for one input polarisation, in the circular basis.
+
+    Parameters
+    ----------
+    t_long, t_short : ndarray (S,) complex
+        Principal responses of each site's cell.
+    rotation_rad : ndarray (S,)
+        Cell rotation (long axis from +x).
+    jones_in : ndarray (2,) complex
+        Normalised input ``(E_x, E_y)``.
+    sigma : {+1, -1}
+        Design spin: the designed output is ``|-sigma>``.
+
+    Returns
+    -------
+    SiteFields
+
+    Notes
+    -----
+    With ``a_s = <s|E_in> = (E_x - i s E_y)/sqrt(2)``, ``leak = (t_l + t_s)/2`` and ``conv = (t_l - t_s)/2``::
+
+        out_{-sigma} = a_{-sigma} leak + a_sigma conv exp(+2 i sigma theta)
+        out_{sigma}  = a_sigma leak + a_{-sigma} conv exp(-2 i sigma theta)
+
+    References
+    ----------
+    Bomzon, Kleiner & Hasman 2001, Opt. Lett. 26, 1424; Hasman et al. 2003, Appl. Phys. Lett. 82, 328
+    (space-variant subwavelength gratings: Jones algebra of the geometric phase).
+    """
+    if sigma not in (1, -1):
+        raise MetalayError(f"sigma = {sigma!r}; allowed: 1, -1")
+    # single precision throughout: the fields are stored as complex64 anyway (relative error ~1e-7)
+    t_long = np.asarray(t_long, dtype=np.complex64)
+    t_short = np.asarray(t_short, dtype=np.complex64)
+    ex, ey = complex(jones_in[0]), complex(jones_in[1])
+    a_s = np.complex64((ex - 1j * sigma * ey) / np.sqrt(2))
+    a_m = np.complex64((ex + 1j * sigma * ey) / np.sqrt(2))
+    leak = np.float32(0.5) * (t_long + t_short)
+    conv = np.float32(0.5) * (t_long - t_short)
+    two_theta = (2.0 * sigma) * np.asarray(rotation_rad, dtype=np.float64)
+    ph = np.empty(two_theta.shape, dtype=np.complex64)
+    ph.real = np.cos(two_theta)
+    ph.imag = np.sin(two_theta)
+    converted = (a_s * conv) * ph
+    designed = a_m * leak + converted
+    other = a_s * leak + (a_m * conv) * np.conj(ph)
+    leaked_power = np.float32(abs(a_s) ** 2 + abs(a_m) ** 2) * (leak.real ** 2 + leak.imag ** 2)
+    return SiteFields(designed, other, converted, leaked_power.astype(np.float32, copy=False), int(sigma))
+
+
+# ----------------------------------------------------------------------------------------------------------------
+# Site lattice -> sampled near field
+# ----------------------------------------------------------------------------------------------------------------
+
+@dataclass(frozen=True, eq=False)
+class NearField:
+    """Near field on a rectangular sample grid (row = y, column = x).
+
+    Attributes
+    ----------
+    x_um, y_um : ndarray (nx,), (ny,)
+        Sample centres.
+    dx_um, dy_um : float
+        Sample pitch (square lattice: the period; hexagonal: p/2 by p sqrt(3)/2 bricks sampled twice per cell).
+    designed, other, converted : ndarray (ny, nx) complex64
+        Components as in :class:`SiteFields` (empty illuminated cells: ``empty_t`` unconverted; outside: 0).
+    illuminated : ndarray (ny, nx) bool
+    samples_per_site : int
+        1 (square) or 2 (hexagonal bricks).
+    decimation : int
+        Block size used to shrink a large grid (1 = full resolution).
+    note : str
+        How the lattice was sampled (stated in the report).
+    """
+
+    x_um: np.ndarray
+    y_um: np.ndarray
+    dx_um: float
+    dy_um: float
+    designed: np.ndarray
+    other: np.ndarray
+    converted: np.ndarray
+    illuminated: np.ndarray
+    samples_per_site: int
+    decimation: int
+    note: str
+    cells_illuminated: int = 0
+    cells_empty: int = 0
+
+    @property
+    def n_illuminated_cells(self) -> float:
+        """Illuminated unit cells (elements plus empty cells), counted before any decimation."""
+        return float(self.cells_illuminated)
+
+    @property
+    def cell_area_um2(self) -> float:
+        """Area of one unit cell."""
+        return self.dx_um * self.dy_um * self.samples_per_site / self.decimation ** 2
+
+
+def _site_pixels(i, j, lattice: str):
+    """Grid (row, col) of each site: square one pixel; hexagonal two bricks (col c-1 and c with c = 2i + j%2)."""
+    if lattice == "square":
+        return j, i, None
+    c = 2 * i + (j % 2)
+    return j, c - 1, c
+
+
+def rasterize(decoded: DecodedSites, fields: SiteFields, *, empty_t: complex = 1.0, jones_in=None,
+              expected_ij=None, decimation: int = 1) -> NearField:
+    """Place per-site fields on a sample grid (one sample per square-lattice site).
+
+    Parameters
+    ----------
+    decoded : DecodedSites
+        Site indices (``i``, ``j``), lattice and period.
+    fields : SiteFields
+        Per-site output (same order as ``decoded``).
+    empty_t : complex
+        Unconverted amplitude transmitted by an illuminated cell that has no element.
+    jones_in : ndarray (2,), optional
+        Input polarisation (needed to split ``empty_t`` into circular components); default the design spin.
+    expected_ij : (ndarray, ndarray), optional
+        Indices of every site of the design's aperture (illuminated region); default: occupied sites with
+        enclosed holes filled (``scipy.ndimage.binary_fill_holes``).
+    decimation : int
+        Average blocks of ``decimation x decimation`` samples (for very large masks).
+
+    Returns
+    -------
+    NearField
+
+    Notes
+    -----
+    Hexagonal lattices (rows along x, odd rows shifted by p/2) are sampled on a ``p/2 x p sqrt(3)/2`` grid in
+    which each cell is a brick of two samples: same centre and same area as the hexagonal cell, so powers and the
+    far field near the axis are exact; the cell shape (brick instead of hexagon) only alters the cell-aperture
+    factor at large angles.
+    """
+    p = decoded.period_nm * 1e-3
+    ox, oy = decoded.origin_um
+    ii, jj = decoded.i, decoded.j
+    if expected_ij is not None:
+        ei, ej = (np.asarray(a, dtype=np.int64) for a in expected_ij)
+        all_i, all_j = np.concatenate([ii, ei]), np.concatenate([jj, ej])
+    else:
+        all_i, all_j = ii, jj
+    if all_i.size == 0:
+        raise MetalayError("optics: the mask has no decoded structures to illuminate")
+    r, c0, c1 = _site_pixels(all_i, all_j, decoded.lattice)
+    rmin, cmin = int(r.min()), int(c0.min())
+    cmax = int((c1 if c1 is not None else c0).max())
+    ny, nx = int(r.max()) - rmin + 1, cmax - cmin + 1
+    sr, sc0, sc1 = _site_pixels(ii, jj, decoded.lattice)
+    sr = sr - rmin
+    cols = [sc0 - cmin] + ([sc1 - cmin] if sc1 is not None else [])
+    occupied = np.zeros((ny, nx), bool)
+    for cc in cols:
+        occupied[sr, cc] = True
+    if expected_ij is not None:
+        er, ec0, ec1 = _site_pixels(ei, ej, decoded.lattice)
+        illum = occupied.copy()
+        for cc in [ec0] + ([ec1] if ec1 is not None else []):
+            illum[er - rmin, cc - cmin] = True
+    else:
+        illum = ndimage.binary_fill_holes(occupied)
+    if jones_in is None:
+        jones_in = input_jones("design", design_sigma=fields.sigma)
+    sig = fields.sigma
+    a_s = (jones_in[0] - 1j * sig * jones_in[1]) / np.sqrt(2)
+    a_m = (jones_in[0] + 1j * sig * jones_in[1]) / np.sqrt(2)
+    empty = illum & ~occupied
+    out = {}
+    for name, vals, fill in (("designed", fields.designed, a_m * empty_t), ("other", fields.other, a_s * empty_t),
+                             ("converted", fields.converted, 0.0)):
+        arr = np.zeros((ny, nx), dtype=np.complex64)
+        arr[empty] = fill
+        for cc in cols:
+            arr[sr, cc] = vals
+        out[name] = arr
+    if decoded.lattice == "square":
+        dx, dy = p, p
+        x = (cmin + np.arange(nx)) * p + ox
+        spp = 1
+        note = "square lattice: one sample per site (the cell's response over the whole cell)"
+    else:
+        dx, dy = p / 2, p * SQRT3 / 2
+        x = (cmin + 0.5 + np.arange(nx)) * p / 2 + ox
+        spp = 2
+        note = ("hexagonal lattice: each cell resampled as a brick of two p/2 x p*sqrt(3)/2 samples with the "
+                "cell's centre and area (exact powers; brick instead of hexagon aperture at large angles)")
+    y = (rmin + np.arange(ny)) * dy + oy
+    n_cells = int(illum.sum()) // spp
+    n_empty = int(empty.sum()) // spp
+    if decimation > 1:
+        m = int(decimation)
+        pad_y, pad_x = (-ny) % m, (-nx) % m
+
+        def block(a, mean=True):
+            a = np.pad(a, ((0, pad_y), (0, pad_x)))
+            b = a.reshape(a.shape[0] // m, m, a.shape[1] // m, m)
+            return b.mean(axis=(1, 3)) if mean else b.any(axis=(1, 3))
+
+        out = {k: block(v).astype(np.complex64) for k, v in out.items()}
+        illum = block(illum, mean=False)
+        x = x[0] + (np.arange(out["designed"].shape[1]) * m + (m - 1) / 2) * dx
+        y = y[0] + (np.arange(out["designed"].shape[0]) * m + (m - 1) / 2) * dy
+        dx, dy = dx * m, dy * m
+        note += f"; decimated by {m} x {m} block averages"
+    return NearField(x_um=x, y_um=y, dx_um=float(dx), dy_um=float(dy), designed=out["designed"],
+                     other=out["other"], converted=out["converted"], illuminated=illum, samples_per_site=spp,
+                     decimation=int(decimation), note=note, cells_illuminated=n_cells, cells_empty=n_empty)
+
+
+def power_budget(fields: SiteFields, n_illuminated: float, *, n_empty: float = 0.0, empty_t: complex = 1.0,
+                 jones_in=None) -> dict:
+    """Zeroth-order power budget as fractions of the power incident on the illuminated cells.
+
+    Parameters
+    ----------
+    fields : SiteFields
+        Per-site output of the elements.
+    n_illuminated : float
+        Number of illuminated cells (elements plus empty cells).
+    n_empty : float
+        Illuminated cells without an element (transmit ``empty_t`` unconverted).
+    empty_t : complex
+        Amplitude of an empty cell.
+    jones_in : ndarray (2,), optional
+        Input polarisation (default: the design spin).
+
+    Returns
+    -------
+    dict
+        ``converted`` (cross-polarised, design-carrying), ``leakage`` (unconverted, any polarisation),
+        ``designed_polarization`` and ``other_polarization`` (total power in ``|-sigma_d>`` and ``|sigma_d>``),
+        ``zeroth_order_total`` (sum of both), ``not_in_zeroth_order`` (1 - that: absorption, reflection and higher
+        lattice orders).
+
+    Notes
+    -----
+    For circular input ``|sigma_d>``: converted ``= |(t_l - t_s)/2|^2`` and leakage ``= |(t_l + t_s)/2|^2`` per
+    cell; their sum is ``(|t_l|^2 + |t_s|^2)/2``.
+    """
+    n = float(n_illuminated)
+    if n <= 0:
+        raise MetalayError("optics: no illuminated cells")
+    d = float(np.sum(np.abs(fields.designed.astype(np.complex128)) ** 2))
+    o = float(np.sum(np.abs(fields.other.astype(np.complex128)) ** 2))
+    c = float(np.sum(np.abs(fields.converted.astype(np.complex128)) ** 2))
+    lk = float(np.sum(fields.leaked_power, dtype=np.float64))
+    if jones_in is None:
+        jones_in = input_jones("design", design_sigma=fields.sigma)
+    sig = fields.sigma
+    a_s = (jones_in[0] - 1j * sig * jones_in[1]) / np.sqrt(2)
+    a_m = (jones_in[0] + 1j * sig * jones_in[1]) / np.sqrt(2)
+    e = float(n_empty) * abs(empty_t) ** 2
+    d += e * abs(a_m) ** 2
+    o += e * abs(a_s) ** 2
+    return {
+        "converted": c / n,
+        "leakage": (lk + e) / n,
+        "designed_polarization": d / n,
+        "other_polarization": o / n,
+        "zeroth_order_total": (d + o) / n,
+        "not_in_zeroth_order": max(0.0, 1.0 - (d + o) / n),
+        "empty_cells": float(n_empty),
+        "illuminated_cells": n,
+    }
+
+
+# ----------------------------------------------------------------------------------------------------------------
+# What the design intends
+# ----------------------------------------------------------------------------------------------------------------
+
+@dataclass(frozen=True)
+class OpticsTarget:
+    """What the mask is meant to do, as far as the optical check needs it.
+
+    Attributes
+    ----------
+    wavelength_nm : float
+        Wavelength of the check (vacuum).
+    sigma : {+1, -1}
+        Design input spin; the designed beam is in ``|-sigma>``.
+    charge : int or None
+        Topological charge about the beam axis (vortex terms plus ``2 sigma q`` of q-plate terms); None when the
+        design has no single axis charge (multiplexed or imported phase maps).
+    center_um : (float, float)
+        Vortex axis in the mask plane.
+    direction : (float, float)
+        Direction cosines ``(u, v)`` of the designed beam (sum of the tilt terms; in air).
+    focal_length_um : float or None
+        Lens focal length (first lens term).
+    lens_medium_index : float
+        Medium the lens focuses in.
+    channels : tuple of (charge, u, v)
+        Multiplexed channels.
+    terms : tuple
+        All phase terms (target phase).
+    remove_terms : tuple
+        Terms removed before the OAM spectrum and the interferogram (tilt, lens, axicon).
+    aperture_diameter_um : float or None
+        Design aperture (for reporting; the check measures the illuminated area itself).
+    """
+
+    wavelength_nm: float
+    sigma: int = 1
+    charge: int | None = 0
+    center_um: tuple = (0.0, 0.0)
+    direction: tuple = (0.0, 0.0)
+    focal_length_um: float | None = None
+    lens_medium_index: float = 1.0
+    channels: tuple = ()
+    terms: tuple = ()
+    remove_terms: tuple = ()
+    aperture_diameter_um: float | None = None
+
+
+def target_from_design(design, *, wavelength_nm: float | None = None) -> OpticsTarget:
+    """Build an :class:`OpticsTarget` from a validated design (:class:`metalay.spec.Design`)."""
+    from metalay.design.phase import Axicon, Lens, Multiplex, QPlate, Tilt, Vortex
+
+    charge = 0.0
+    single_axis = True
+    center = (0.0, 0.0)
+    u = v = 0.0
+    focal, lens_n = None, 1.0
+    channels = []
+    remove = []
+    for t in design.terms:  # loop over phase terms (short axis)
+        if isinstance(t, Vortex):
+            charge += t.charge
+            center = (t.center_x_um, t.center_y_um)
+        elif isinstance(t, QPlate):
+            charge += 2 * design.sigma * t.q
+        elif isinstance(t, Tilt):
+            s = np.sin(np.radians(t.angle_deg))
+            u += s * np.cos(np.radians(t.azimuth_deg))
+            v += s * np.sin(np.radians(t.azimuth_deg))
+            remove.append(t)
+        elif isinstance(t, Lens):
+            if focal is None:
+                focal, lens_n = t.focal_length_um, t.medium_index
+            remove.append(t)
+        elif isinstance(t, Axicon):
+            remove.append(t)
+        elif isinstance(t, Multiplex):
+            single_axis = False
+            for ch in t.channels:
+                s = np.sin(np.radians(ch.angle_deg))
+                channels.append((int(ch.charge), float(s * np.cos(np.radians(ch.azimuth_deg))),
+                                 float(s * np.sin(np.radians(ch.azimuth_deg)))))
+        else:  # imported phase map: no single known axis charge
+            single_axis = False
+    q = round(charge)
+    return OpticsTarget(
+        wavelength_nm=float(wavelength_nm or design.wavelength_nm), sigma=int(design.sigma),
+        charge=int(q) if single_axis and abs(charge - q) < 1e-9 else None, center_um=tuple(map(float, center)),
+        direction=(float(u), float(v)), focal_length_um=focal, lens_medium_index=float(lens_n),
+        channels=tuple(channels), terms=tuple(design.terms), remove_terms=tuple(remove),
+        aperture_diameter_um=float(design.aperture.diameter_um or 2 * max(design.aperture.half_extent_um)))
+
+
+def _target_phase(terms, x_um, y_um, target: OpticsTarget) -> np.ndarray:
+    from metalay.design.phase import target_phase
+
+    return target_phase(terms, x_um, y_um, wavelength_nm=target.wavelength_nm, sigma=target.sigma)
+
+
+# ----------------------------------------------------------------------------------------------------------------
+# Far-field metrics
+# ----------------------------------------------------------------------------------------------------------------
+
+def _disk_sum(ff: grid.FarField, u0: float, v0: float, radius_u: float) -> float:
+    """Power in the far-field disk ``(u - u0)^2 + (v - v0)^2 < radius_u^2`` (only the rows/cols it touches)."""
+    cols = np.flatnonzero(np.abs(ff.u - u0) <= radius_u)
+    rows = np.flatnonzero(np.abs(ff.v - v0) <= radius_u)
+    if cols.size == 0 or rows.size == 0:
+        return 0.0
+    sub = ff.power[rows[0]:rows[-1] + 1, cols[0]:cols[-1] + 1]
+    du = ff.u[cols[0]:cols[-1] + 1] - u0
+    dv = ff.v[rows[0]:rows[-1] + 1] - v0
+    inside = dv[:, None] ** 2 + du[None, :] ** 2 < radius_u ** 2
+    return float(sub[inside].sum(dtype=np.float64))
+
+
+def _evanescent_sum(ff: grid.FarField) -> float:
+    """Power in bins with ``u^2 + v^2 >= 1`` (evanescent directions), summed over the grid's corners only.
+
+    A bin can be evanescent only where ``|u| >= sqrt(1 - v_max^2)`` and ``|v| >= sqrt(1 - u_max^2)``, so only
+    those rows and columns are masked (the same sum as masking the whole grid).
+    """
+    umax, vmax = float(np.max(np.abs(ff.u))), float(np.max(np.abs(ff.v)))
+    cols = np.flatnonzero(np.abs(ff.u) >= np.sqrt(max(0.0, 1.0 - vmax * vmax)) * (1 - 1e-12))
+    rows = np.flatnonzero(np.abs(ff.v) >= np.sqrt(max(0.0, 1.0 - umax * umax)) * (1 - 1e-12))
+    if cols.size == 0 or rows.size == 0:
+        return 0.0
+    sub = ff.power[np.ix_(rows, cols)]
+    outside = ff.v[rows][:, None] ** 2 + ff.u[cols][None, :] ** 2 >= 1.0
+    return float(sub[outside].sum(dtype=np.float64))
+
+
+def spot_fractions(ff: grid.FarField, centres, radius_u: float) -> dict:
+    """Share of the far-field power of one polarisation component in disks about the given directions.
+
+    Parameters
+    ----------
+    ff : FarField
+    centres : dict name -> (u, v)
+        Directions of the spots (designed order, zero order, channels...).
+    radius_u : float
+        Disk radius in direction-cosine units.
+
+    Returns
+    -------
+    dict
+        One entry per centre, plus ``outside_spots`` (propagating power elsewhere), ``evanescent`` (bins with
+        ``u^2 + v^2 >= 1``) and ``higher_lattice_orders`` (power outside the sampled Brillouin zone), all as
+        fractions of the component's near-field power.
+    """
+    out = {name: _disk_sum(ff, u0, v0, radius_u) for name, (u0, v0) in centres.items()}
+    total = float(ff.power.sum(dtype=np.float64))
+    evan = _evanescent_sum(ff)
+    out["outside_spots"] = total - evan - sum(out.values())
+    out["evanescent"] = evan
+    out["higher_lattice_orders"] = 1.0 - total
+    return out
+
+
+def _bilinear(ff: grid.FarField, u0: float, v0: float) -> float:
+    cu = (u0 - ff.u[0]) / ff.du
+    cv = (v0 - ff.v[0]) / ff.dv
+    return float(ndimage.map_coordinates(ff.power, [[cv], [cu]], order=1, mode="constant")[0])
+
+
+def _peak_near(ff: grid.FarField, u0: float, v0: float, radius_u: float):
+    """Brightest bin within ``radius_u`` of (u0, v0), refined by a 3-point parabola per axis."""
+    cols = np.flatnonzero(np.abs(ff.u - u0) <= radius_u)
+    rows = np.flatnonzero(np.abs(ff.v - v0) <= radius_u)
+    sub = ff.power[rows[0]:rows[-1] + 1, cols[0]:cols[-1] + 1]
+    r, c = np.unravel_index(np.argmax(sub), sub.shape)
+    r, c = r + rows[0], c + cols[0]
+
+    def refine(a, b, cc):
+        den = a - 2 * b + cc
+        return 0.5 * (a - cc) / den if den != 0 else 0.0
+
+    p = ff.power
+    fu = refine(float(p[r, c - 1]), float(p[r, c]), float(p[r, c + 1])) if 0 < c < p.shape[1] - 1 else 0.0
+    fv = refine(float(p[r - 1, c]), float(p[r, c]), float(p[r + 1, c])) if 0 < r < p.shape[0] - 1 else 0.0
+    return float(ff.u[c] + fu * ff.du), float(ff.v[r] + fv * ff.dv), float(p[r, c])
+
+
+def _centroid_near(ff: grid.FarField, u0: float, v0: float, radius_u: float):
+    """Power-weighted centre of the far field within ``radius_u`` of (u0, v0) (works for rings as well)."""
+    cols = np.flatnonzero(np.abs(ff.u - u0) <= radius_u)
+    rows = np.flatnonzero(np.abs(ff.v - v0) <= radius_u)
+    sub = ff.power[rows[0]:rows[-1] + 1, cols[0]:cols[-1] + 1].astype(np.float64)
+    uu, vv = ff.u[cols[0]:cols[-1] + 1], ff.v[rows[0]:rows[-1] + 1]
+    w = sub * ((uu[None, :] - u0) ** 2 + (vv[:, None] - v0) ** 2 < radius_u ** 2)
+    tot = w.sum()
+    if tot <= 0:
+        return float(u0), float(v0)
+    return float((w.sum(axis=0) * uu).sum() / tot), float((w.sum(axis=1) * vv).sum() / tot)
+
+
+def crosstalk_matrix(near: NearField, channels, wavelength_nm: float, *, radius_u: float,
+                     pad_factor: float = 2.0, workers: int = 2) -> dict:
+    """Channel crosstalk of a multiplexed (demultiplexing) mask.
+
+    Each channel ``k`` (charge ``l_k``, direction ``(u_k, v_k)``) is probed by illuminating the mask with the
+    conjugate vortex ``exp(-i l_k phi)``: channel ``k`` then forms a bright, solid spot at its direction while the
+    other channels keep a vortex (dark centre) at theirs.
+
+    Parameters
+    ----------
+    near : NearField
+    channels : sequence of (charge, u, v)
+    wavelength_nm : float
+    radius_u : float
+        Search radius for each spot's measured position.
+    pad_factor : float
+    workers : int
+
+    Returns
+    -------
+    dict
+        ``matrix`` (C x C list: on-axis far-field power per bin at spot ``j`` when probing channel ``i``),
+        ``matrix_db`` (relative to each row's diagonal), ``isolation_db`` per channel (diagonal over the largest
+        off-diagonal entry of its row), ``worst_isolation_db``, ``positions`` (measured (u, v) of each probed
+        spot), ``position_error`` (distance to the design in direction cosines) and ``position_error_deg``.
+
+    References
+    ----------
+    Mair et al. 2001, Nature 412, 313 (conjugate-vortex detection of OAM states: only the matching charge gives
+    an on-axis spot).
+    """
+    phi = np.arctan2(near.y_um[:, None], near.x_um[None, :])
+    c = len(channels)
+    mat = np.zeros((c, c))
+    pos = np.zeros((c, 2))
+    for k, (lk, uk, vk) in enumerate(channels):  # loop over channels (short axis)
+        probe = near.designed * np.exp(-1j * lk * phi).astype(np.complex64)
+        ff = grid.far_field(probe, near.dx_um, near.dy_um, wavelength_nm, x0_um=float(near.x_um[0]),
+                            y0_um=float(near.y_um[0]), pad_factor=pad_factor, workers=workers)
+        for m, (_, um, vm) in enumerate(channels):
+            mat[k, m] = _bilinear(ff, um, vm)
+        pu, pv, _ = _peak_near(ff, uk, vk, radius_u)
+        pos[k] = (pu, pv)
+        del ff, probe
+    design = np.array([[u, v] for _, u, v in channels])
+    err = np.hypot(*(pos - design).T)
+    diag = np.diag(mat).copy()
+    with np.errstate(divide="ignore"):
+        rel_db = 10 * np.log10(np.maximum(mat, 1e-300) / np.maximum(diag[:, None], 1e-300))
+        off = np.where(np.eye(c, dtype=bool), -np.inf, mat).max(axis=1) if c > 1 else np.zeros(c)
+        iso = 10 * np.log10(np.maximum(diag, 1e-300) / np.maximum(off, 1e-300)) if c > 1 else np.full(c, np.inf)
+    ang_meas = np.degrees(np.arcsin(np.clip(np.hypot(*pos.T), 0, 1)))
+    ang_design = np.degrees(np.arcsin(np.clip(np.hypot(*design.T), 0, 1)))
+    return {"matrix": mat.tolist(), "matrix_db": rel_db.tolist(), "isolation_db": iso.tolist(),
+            "worst_isolation_db": float(iso.min()) if c else None, "positions": pos.tolist(),
+            "design_positions": design.tolist(), "position_error": err.tolist(),
+            "position_error_deg": np.abs(ang_meas - ang_design).tolist(), "charges": [int(ch[0]) for ch in channels]}
+
+
+def lens_metrics(near: NearField, wavelength_nm: float, focal_length_um: float, *, ideal: np.ndarray | None = None,
+                 medium_index: float = 1.0, center_um=(0.0, 0.0), n_out: int = 121, pad_factor: float | None = None,
+                 workers: int = 2) -> dict:
+    """Focal spot of a lens mask: FWHM, first dark ring, Strehl ratio and focusing efficiency.
+
+    Parameters
+    ----------
+    near : NearField
+        The designed component is propagated.
+    wavelength_nm, focal_length_um : float
+    ideal : ndarray (ny, nx) complex, optional
+        Aberration-free field on the same grid (same amplitude, exact design phase) for the Strehl ratio.
+    medium_index : float
+        Medium between mask and focus.
+    center_um : (float, float)
+        Expected lateral focus position.
+    n_out : int
+        Samples per side of the focal-plane window (``+-3`` Airy radii).
+    pad_factor : float, optional
+        Padding of the propagation (default 2, or 1 for grids above 2048 samples per side).
+
+    Returns
+    -------
+    dict
+        ``fwhm_x_um``, ``fwhm_y_um``, ``fwhm_airy_um`` (``0.514 lambda / NA``), ``first_dark_ring_um`` and
+        ``airy_radius_um`` (``0.61 lambda / NA``), ``numerical_aperture``, ``strehl`` (peak over the ideal peak),
+        ``focusing_efficiency`` (power within ``3 x FWHM`` of the peak over the incident power),
+        ``peak_position_um``, ``diameter_um``, ``profile`` (radius, normalised intensity) for plots.
+
+    Notes
+    -----
+    Airy pattern: ``I(r) = [2 J_1(v)/v]^2`` with ``v = 2 pi NA r / lambda``; first zero ``0.61 lambda / NA``,
+    full width at half maximum ``0.514 lambda / NA`` (paraxially ``1.22 lambda f / D`` and ``1.03 lambda f / D``).
+
+    References
+    ----------
+    Born & Wolf, Principles of Optics, 7th ed., sec. 8.5.2 (Airy pattern) and sec. 9.1 (Strehl ratio).
+    From memory: Arbabi et al. 2015, Nat. Commun. 6, 7069 (focusing efficiency within a radius of 3 x FWHM).
+    """
+    lam = wavelength_nm * 1e-3 / medium_index
+    area = near.n_illuminated_cells * near.cell_area_um2
+    diameter = 2 * np.sqrt(area / np.pi)
+    na = np.sin(np.arctan(diameter / (2 * focal_length_um)))
+    r0 = 0.61 * lam / na
+    half = 3.0 * r0
+    xs = center_um[0] + np.linspace(-half, half, n_out)
+    ys = center_um[1] + np.linspace(-half, half, n_out)
+    if pad_factor is None:
+        pad_factor = 1.0 if max(near.designed.shape) > 2048 else 2.0
+    kw = dict(x0_um=float(near.x_um[0]), y0_um=float(near.y_um[0]), medium_index=medium_index,
+              pad_factor=pad_factor, workers=workers)
+    u = grid.angular_spectrum_points(near.designed, near.dx_um, near.dy_um, wavelength_nm, focal_length_um, xs, ys,
+                                     **kw)
+    inten = np.abs(u) ** 2
+    r, c = np.unravel_index(np.argmax(inten), inten.shape)
+    peak = float(inten[r, c])
+
+    def fwhm(profile, axis):
+        half_v = profile.max() / 2
+        k = int(np.argmax(profile))
+        lo = k
+        while lo > 0 and profile[lo] > half_v:
+            lo -= 1
+        hi = k
+        while hi < profile.size - 1 and profile[hi] > half_v:
+            hi += 1
+        xl = np.interp(half_v, [profile[lo], profile[lo + 1]], [axis[lo], axis[lo + 1]])
+        xh = np.interp(half_v, [profile[hi], profile[hi - 1]], [axis[hi], axis[hi - 1]])
+        return float(xh - xl)
+
+    fx = fwhm(inten[r, :], xs)
+    fy = fwhm(inten[:, c], ys)
+    rr = np.hypot(xs[None, :] - xs[c], ys[:, None] - ys[r])
+    step = xs[1] - xs[0]
+    bins = np.rint(rr / step).astype(int)
+    prof = np.bincount(bins.ravel(), inten.ravel()) / np.maximum(np.bincount(bins.ravel()), 1)
+    radius = np.arange(prof.size) * step
+    valid = radius <= half
+    prof, radius = prof[valid], radius[valid]
+    rising = np.flatnonzero(np.diff(prof) > 0)
+    first_dark = float("nan")
+    if rising.size:
+        k = int(rising[0])
+        first_dark = float(radius[k])
+        if 0 < k < prof.size - 1:  # parabolic refinement of the minimum
+            a, b, cc = prof[k - 1], prof[k], prof[k + 1]
+            den = a - 2 * b + cc
+            if den > 0:
+                first_dark += float(0.5 * (a - cc) / den * step)
+    fwhm_mean = 0.5 * (fx + fy)
+    eff = float(inten[rr < 3 * fwhm_mean].sum() * step * step / area)
+    strehl = None
+    if ideal is not None:
+        ui = grid.angular_spectrum_points(ideal, near.dx_um, near.dy_um, wavelength_nm, focal_length_um, xs, ys,
+                                          **kw)
+        strehl = peak / float(np.max(np.abs(ui) ** 2))
+    return {"fwhm_x_um": fx, "fwhm_y_um": fy, "fwhm_airy_um": float(0.514 * lam / na),
+            "first_dark_ring_um": first_dark, "airy_radius_um": float(r0), "numerical_aperture": float(na),
+            "strehl": strehl, "focusing_efficiency": eff, "peak_position_um": [float(xs[c]), float(ys[r])],
+            "peak_intensity": peak, "diameter_um": float(diameter), "focal_length_um": float(focal_length_um),
+            "profile": {"radius_um": radius.tolist(), "intensity": (prof / max(prof.max(), 1e-300)).tolist()}}
+
+
+# ----------------------------------------------------------------------------------------------------------------
+# Entry points
+# ----------------------------------------------------------------------------------------------------------------
+
+@dataclass(frozen=True, eq=False)
+class OpticsResult:
+    """Outcome of :func:`check_optics`.
+
+    Attributes
+    ----------
+    figures : dict
+        JSON-ready numbers (power budget, spots, OAM, crosstalk, lens, charge reading, decoding statistics).
+    images : dict name -> (caption, PNG bytes)
+    html : str or None
+        Single-page report (when plots were made).
+    files : dict name -> {"path", "sha256", "bytes"}
+        Files written to ``out_dir`` (empty when no folder was given).
+    timings : dict
+        Seconds per stage (not written to files: they vary between runs).
+    notes : tuple of str
+        Modelling notes and approximations.
+    near : NearField or None
+    far : FarField or None
+        Arrays of the last run (kept when ``keep_arrays`` is true).
+    """
+
+    figures: dict
+    images: dict
+    html: str | None
+    files: dict
+    timings: dict
+    notes: tuple
+    near: NearField | None = None
+    far: grid.FarField | None = None
+
+
+def _ideal_responses(n_cells: int):
+    """Perfect half-wave cells: ``t_long = 1``, ``t_short = -1`` (full conversion, no leakage)."""
+    return np.ones(n_cells, complex), -np.ones(n_cells, complex)
+
+
+def _site_xy(decoded: DecodedSites):
+    """Lattice-site coordinates (um) of the decoded sites (ideal positions, not the measured centres)."""
+    p = decoded.period_nm * 1e-3
+    if decoded.lattice == "square":
+        return decoded.i * p + decoded.origin_um[0], decoded.j * p + decoded.origin_um[1]
+    return ((decoded.i + 0.5 * (decoded.j % 2)) * p + decoded.origin_um[0],
+            decoded.j * p * SQRT3 / 2 + decoded.origin_um[1])
+
+
+def _block(a: np.ndarray, m: int) -> np.ndarray:
+    if m <= 1:
+        return a
+    ny, nx = (a.shape[0] // m) * m, (a.shape[1] // m) * m
+    return a[:ny, :nx].reshape(ny // m, m, nx // m, m).mean(axis=(1, 3))
+
+
+def _sha256(path) -> str:
+    h = hashlib.sha256()
+    with open(path, "rb") as fh:
+        for chunk in iter(lambda: fh.read(1 << 22), b""):
+            h.update(chunk)
+    return h.hexdigest()
+
+
+def _json_ready(obj):
+    if isinstance(obj, dict):
+        return {str(k): _json_ready(v) for k, v in obj.items()}
+    if isinstance(obj, (list, tuple)):
+        return [_json_ready(v) for v in obj]
+    if isinstance(obj, (np.floating, float)):
+        v = float(obj)
+        return v if np.isfinite(v) else None
+    if isinstance(obj, (np.integer,)):
+        return int(obj)
+    if isinstance(obj, np.bool_):
+        return bool(obj)
+    return obj
+
+
+def _biased_responses(lib, t_long, t_short, decoded, bias_nm: float, notes: list):
+    """Responses for a biased mask: the library cell at the biased size where the library has one.
+
+    A bias pre-compensates the process; the mask as written carries cells grown by ``2 * bias_nm``. Where the
+    library has a cell of the same kind at exactly that size, its response is the one of the mask as written (no
+    process shift); otherwise the nominal response is kept, which assumes the process removes the bias exactly,
+    and a note says so.
+    """
+    from metalay.mask.process import biased_dims_nm, find_cell_at_dims
+
+    t_long, t_short = t_long.copy(), t_short.copy()
+    used = np.unique(decoded.cell)
+    for k in used:  # cells in use (a short axis)
+        cell = lib.cells[int(k)]
+        j = find_cell_at_dims(lib, cell.kind, biased_dims_nm(cell, bias_nm))
+        if j is None:
+            notes.append(f"bias {bias_nm:+g} nm: the library has no {cell.kind} at the biased size of cell "
+                         f"{cell.id}; its nominal response is used (assumes the process removes the bias exactly)")
+        else:
+            t_long[k], t_short[k] = t_long[j], t_short[j]
+            notes.append(f"bias {bias_nm:+g} nm: cell {cell.id} as written has the size of library cell "
+                         f"{lib.cells[j].id}, whose response is used (the mask as written, before the process)")
+    return t_long, t_short
+
+
+def check_optics(mask_path, library, *, design=None, target: OpticsTarget | None = None,
+                 wavelength_nm: float | None = None, polarization: str = "design", out_dir=None,
+                 layer=None, bias_nm: float | None = None, size_tol_nm: float = 3.0, unmatched: str = "error",
+                 empty_t: complex = 1.0, pad_factor: float = 2.0, max_side: int = 4096,
+                 charges=range(-10, 11), make_plots: bool = True, log_far_field: bool = True,
+                 keep_arrays: bool = False, workers: int = 2, title: str | None = None) -> OpticsResult:
+    """Check the optics of a written mask: decode it, build the near field, compute far field and metrics.
+
+    Parameters
+    ----------
+    mask_path : str or Path
+        GDSII or OASIS file.
+    library : CellLibrary or str
+        Cell library (object, bundled name or path); its responses at the wavelength are used, or ideal
+        half-wave cells (``t_long = 1, t_short = -1``) when it carries geometry only (stated in the notes).
+    design : Design, optional
+        The design the mask was compiled from: gives the target (charge, tilt, lens, channels), lattice, aperture
+        (illuminated sites) and spin.
+    target : OpticsTarget, optional
+        Overrides what is derived from ``design``.
+    wavelength_nm : float, optional
+        Check wavelength (default the design's, else the library's).
+    polarization : str
+        Input polarisation, see :func:`input_jones`.
+    out_dir : str or Path, optional
+        Write ``figures.json``, the PNG figures and ``report.html`` here (atomic writes).
+    layer : (int, int), optional
+        Structure layer/datatype (default: the design's structure layer, else (1, 0)).
+    bias_nm : float, optional
+        Process bias per edge written into the mask (default: the design's ``mask.bias_nm``, else 0).
+    size_tol_nm, unmatched
+        Decoding options, see :func:`metalay.decode.decode_sites`.
+    empty_t : complex
+        Unconverted amplitude of an illuminated cell with no element.
+    pad_factor : float
+        Far-field zero padding (2 samples the intensity at the aperture's Nyquist rate).
+    max_side : int
+        Largest near-field grid side; larger masks are decimated by block averaging (stated, with an error
+        estimate, in the notes).
+    charges : iterable of int
+        OAM charges reported.
+    make_plots : bool
+        Render PNG figures and the HTML report.
+    log_far_field : bool
+        Log scale for the far-field image.
+    keep_arrays : bool
+        Keep the near and far field in the result.
+    workers : int
+        FFT threads.
+    title : str, optional
+        Report title.
+
+    Returns
+    -------
+    OpticsResult
+    """
+    from metalay.checks import plots as P
+    from metalay.io.gdsread import read_mask
+    from metalay.cells.library import CellLibrary, load_library
+
+    t_all = time.perf_counter()
+    keep_freed_memory()
+    timings = {}
+    notes = []
+    mask_path = Path(mask_path)
+    lib = library if isinstance(library, CellLibrary) else load_library(library)
+
+    mask_settings = getattr(design, "mask", None)
+    if layer is None:
+        layer = mask_settings.layer("structures") if mask_settings is not None else (1, 0)
+    if bias_nm is None:
+        bias_nm = float(getattr(mask_settings, "bias_nm", 0.0) or 0.0)
+    if getattr(mask_settings, "tone", "structures") != "structures":
+        raise MetalayError(f"{mask_path}: mask.tone = {mask_settings.tone!r}; the optical check reads structure "
+                           "polygons and supports tone 'structures' only")
+    t0 = time.perf_counter()
+    flat = read_mask(mask_path, layers=[tuple(layer)])
+    timings["read_s"] = time.perf_counter() - t0
+
+    no_target = target is None and design is None
+    if target is None:
+        if design is not None:
+            target = target_from_design(design, wavelength_nm=wavelength_nm)
+        else:
+            target = OpticsTarget(wavelength_nm=float(wavelength_nm or lib.design_wavelength_nm), charge=None)
+    wl = target.wavelength_nm
+    if lib.has_responses:
+        t_long, t_short = lib.response_at(wl)
+        resp_note = f"cell responses from library {lib.name} at {wl:g} nm"
+    else:
+        t_long, t_short = _ideal_responses(len(lib.cells))
+        resp_note = (f"library {lib.name} has no optical responses: ideal half-wave cells assumed (t_long = 1, "
+                     "t_short = -1), so efficiencies are upper bounds set by the layout only")
+    notes.append(resp_note)
+    period_nm = design.lattice.period_nm if design is not None else lib.period_nm
+    lattice = design.lattice.kind if design is not None else lib.lattice
+
+    t0 = time.perf_counter()
+    decoded = decode_sites(flat, lib.cells, period_nm=period_nm, lattice=lattice, layer=tuple(layer),
+                           size_tol_nm=size_tol_nm, bias_nm=bias_nm, unmatched=unmatched, where=str(mask_path))
+    timings["decode_s"] = time.perf_counter() - t0
+    if bias_nm and lib.has_responses:
+        t_long, t_short = _biased_responses(lib, t_long, t_short, decoded, bias_nm, notes)
+    # a small window of polygons for the layout figure, then free the vertex table
+    zoom_c = target.center_um
+    zoom_hw = max(1.5, 4 * period_nm * 1e-3)
+    first = flat.xy_db[flat.start[:-1]] * (flat.db_unit_m * 1e6)
+    win = (np.abs(first[:, 0] - zoom_c[0]) < zoom_hw + 1) & (np.abs(first[:, 1] - zoom_c[1]) < zoom_hw + 1)
+    zoom_flat = flat.select(win) if make_plots else None
+    db_um = flat.db_unit_m * 1e6
+    del flat, first
+
+    t0 = time.perf_counter()
+    jin = input_jones(polarization, design_sigma=target.sigma)
+    sf = site_fields(t_long[decoded.cell], t_short[decoded.cell], decoded.rotation_rad, jin, sigma=target.sigma)
+    expected = None
+    if design is not None:
+        from metalay.design.lattice import sample_sites
+
+        s = sample_sites(design.aperture, design.lattice)
+        expected = (s.i, s.j)
+        notes.append(f"illuminated region: the {len(s):,} sites of the design aperture")
+    else:
+        notes.append("illuminated region: occupied sites with enclosed holes filled (no design given)")
+    r_, c0_, c1_ = _site_pixels(decoded.i, decoded.j, decoded.lattice)
+    side = max(int(np.ptp(r_)) + 1, int(np.ptp(c1_ if c1_ is not None else c0_)) + 2)
+    m = int(np.ceil(side / max_side)) if side > max_side else 1
+    near = rasterize(decoded, sf, empty_t=empty_t, jones_in=jin, expected_ij=expected, decimation=m)
+    notes.append(near.note)
+    budget = power_budget(sf, near.cells_illuminated, n_empty=near.cells_empty, empty_t=empty_t, jones_in=jin)
+    xs_site, ys_site = _site_xy(decoded)
+    phi_t = _target_phase(target.terms, xs_site, ys_site, target) if target.terms else None
+    timings["near_field_s"] = time.perf_counter() - t0
+
+    lam_um = wl * 1e-3
+    diameter = 2 * np.sqrt(near.cells_illuminated * near.cell_area_um2 / np.pi)
+    lmax = max([abs(target.charge or 0)] + [abs(c[0]) for c in target.channels])
+    radius_u = (2.5 + 0.5 * lmax) * lam_um / diameter
+    if m > 1:
+        f_d = np.hypot(*target.direction) / lam_um
+        if target.focal_length_um:
+            f_d = max(f_d, np.sin(np.arctan(diameter / (2 * target.focal_length_um))) / lam_um)
+        for ch in target.channels:
+            f_d = max(f_d, np.hypot(ch[1], ch[2]) / lam_um)
+        p0 = near.dx_um / m
+        dm = abs(np.sin(np.pi * m * p0 * f_d) / (m * np.sin(np.pi * p0 * f_d))) if f_d > 0 else 1.0
+        est = 1 - (dm * np.sinc(m * p0 * f_d) / np.sinc(p0 * f_d)) ** 2 if f_d > 0 else 0.0
+        notes.append(f"near field decimated {m} x {m} (grid side {side} > {max_side}): far field valid for "
+                     f"|u| < {lam_um / (2 * near.dx_um):.3f}; estimated relative error of the designed-spot power "
+                     f"{est:.2e} (block average of a local phase gradient at {f_d:.3g} cycles/um)")
+
+    t0 = time.perf_counter()
+    need_field = bool(target.channels)
+    ff = grid.far_field(near.designed, near.dx_um, near.dy_um, wl, x0_um=float(near.x_um[0]),
+                        y0_um=float(near.y_um[0]), pad_factor=pad_factor, keep_field=need_field, workers=workers)
+    timings["fft_s"] = time.perf_counter() - t0
+
+    t0 = time.perf_counter()
+    figures = {"wavelength_nm": wl, "input_polarization": polarization, "design_spin": target.sigma,
+               "power_budget": budget, "decode": decoded.stats,
+               "grid": {"nx": int(near.designed.shape[1]), "ny": int(near.designed.shape[0]),
+                        "dx_um": near.dx_um, "dy_um": near.dy_um, "decimation": m,
+                        "fft_side": [int(ff.u.size), int(ff.v.size)], "pad_factor": pad_factor},
+               "aperture_equivalent_diameter_um": float(diameter), "lobe_radius_u": float(radius_u)}
+    if phi_t is not None:
+        err = np.angle(sf.converted.astype(np.complex128) * np.exp(-1j * phi_t))
+        ok = np.abs(sf.converted) > 0
+        if ok.any():
+            g = np.angle(np.sum(np.exp(1j * err[ok])))
+            e = np.angle(np.exp(1j * (err[ok] - g)))
+            figures["phase_error_deg"] = {"rms": float(np.degrees(np.sqrt(np.mean(e * e)))),
+                                          "max": float(np.degrees(np.max(np.abs(e))))}
+    centres = {}
+    if no_target:
+        pu, pv, _ = _peak_near(ff, 0.0, 0.0, 1.0)
+        figures["brightest_direction"] = {"u": pu, "v": pv,
+                                          "angle_deg": float(np.degrees(np.arcsin(min(1.0, np.hypot(pu, pv)))))}
+        notes.append("no design given: no designed spot, OAM or charge reading (pass the design for those)")
+    elif not target.channels and not target.focal_length_um:
+        centres["designed"] = target.direction
+        if np.hypot(*target.direction) > 2 * radius_u:
+            centres["zero_order"] = (0.0, 0.0)
+        else:
+            notes.append("the designed spot overlaps the zero-order spot (deflection below two lobe radii): its "
+                         "disk also holds any unconverted light")
+    for k, (lc, uc, vc) in enumerate(target.channels):
+        centres[f"channel_{k}_l{lc:+d}"] = (uc, vc)
+    spots = spot_fractions(ff, centres, radius_u)
+    pol = budget["designed_polarization"]
+    figures["far_field"] = {"fractions_of_designed_polarization": spots,
+                            "fractions_of_incident": {k: v * pol for k, v in spots.items()}}
+    if "designed" in spots:
+        figures["designed_spot_efficiency"] = spots["designed"] * pol
+        pu, pv = _centroid_near(ff, *target.direction, radius_u)
+        figures["designed_spot_position"] = {"measured": [pu, pv], "design": list(target.direction),
+                                             "method": "power centroid within the lobe radius",
+                                             "deflection_deg": float(np.degrees(np.arcsin(min(1.0, np.hypot(pu, pv)))))}
+
+    oam_field = None
+    if target.charge is not None:
+        xx = near.x_um[None, :]
+        yy = near.y_um[:, None]
+        oam_field = near.converted
+        if target.remove_terms:
+            ph = _target_phase(target.remove_terms, xx, yy, target)
+            oam_field = near.converted * np.exp(-1j * ph).astype(np.complex64)
+            del ph
+        room = min(target.center_um[0] - near.x_um[0], near.x_um[-1] - target.center_um[0],
+                   target.center_um[1] - near.y_um[0], near.y_um[-1] - target.center_um[1])
+        r_oam = min(diameter / 2 - 1.5 * max(near.dx_um, near.dy_um), room - max(near.dx_um, near.dy_um))
+        order = 3 if max(oam_field.shape) <= 2048 else 1
+        spec = oam.oam_spectrum(oam_field, near.x_um, near.y_um, center=target.center_um, radius_um=r_oam,
+                                charges=charges, order=order, workers=workers)
+        notes.append(f"OAM spectrum: field resampled on a polar grid ({spec.n_radial} radii x {spec.n_azimuthal} "
+                     f"angles, {'cubic' if order == 3 else 'bilinear'} interpolation) within {spec.radius_um:.2f} "
+                     "um of the axis, after removing the tilt/lens/axicon terms of the design")
+        figures["oam"] = {"about": "beam axis (non-vortex terms removed)", "charges": spec.charges.tolist(),
+                          "interpolation_order": order,
+                          "weights": spec.weights.tolist(), "design_charge": target.charge,
+                          "purity": spec.purity(target.charge), "radius_um": spec.radius_um,
+                          "mean_charge": spec.mean_charge()}
+        # interferogram on a grid of at most 1024 samples per side (block averages keep the vortex phase)
+        mf = int(np.ceil(max(oam_field.shape) / 1024))
+        fld = _block(oam_field, mf)
+        fx_ = near.x_um[0] + (np.arange(fld.shape[1]) * mf + (mf - 1) / 2) * near.dx_um
+        fy_ = near.y_um[0] + (np.arange(fld.shape[0]) * mf + (mf - 1) / 2) * near.dy_um
+        inten = fringes.interferogram(fld, fx_, fy_, wavelength_nm=wl)
+        reading = fringes.read_charge(inten, fx_, fy_, center=target.center_um, workers=workers)
+        figures["fringe_reading"] = {"charge": reading.charge, "design_charge": target.charge,
+                                     "agrees": reading.charge == target.charge,
+                                     "windings": reading.windings.tolist(), "loop_radii_um": reading.radii_um.tolist(),
+                                     "loop_agreement": reading.agreement}
+    if target.channels:
+        ch_oam = []
+        for k, (lc, uc, vc) in enumerate(target.channels):
+            cols = np.flatnonzero(np.abs(ff.u - uc) <= radius_u + 3 * ff.du)
+            rows = np.flatnonzero(np.abs(ff.v - vc) <= radius_u + 3 * ff.dv)
+            sub = ff.field[rows[0]:rows[-1] + 1, cols[0]:cols[-1] + 1]
+            sp = oam.oam_spectrum(sub, ff.u[cols[0]:cols[-1] + 1], ff.v[rows[0]:rows[-1] + 1], center=(uc, vc),
+                                  radius_um=radius_u, charges=charges, samples_per_pitch=2.0)
+            ch_oam.append({"charge": lc, "purity": sp.purity(lc), "weights": sp.weights.tolist()})
+        figures["oam_channels"] = {"about": "far-field spot of each channel", "charges": list(charges),
+                                   "channels": ch_oam}
+        figures["crosstalk"] = crosstalk_matrix(near, target.channels, wl, radius_u=radius_u,
+                                                pad_factor=pad_factor, workers=workers)
+    if target.focal_length_um:
+        lens_n = target.lens_medium_index
+        f_um = target.focal_length_um
+        u0, v0 = target.direction
+        w0 = np.sqrt(max(1e-12, 1 - u0 * u0 - v0 * v0))
+        ideal = None
+        if target.terms:
+            ph = _target_phase(target.terms, near.x_um[None, :], near.y_um[:, None], target)
+            ideal = np.abs(near.converted) * np.exp(1j * ph)
+            del ph
+        figures["lens"] = lens_metrics(near, wl, f_um, ideal=ideal, medium_index=lens_n,
+                                       center_um=(f_um * u0 / w0, f_um * v0 / w0), workers=workers)
+        del ideal
+    timings["metrics_s"] = time.perf_counter() - t0
+
+    images = {}
+    html_text = None
+    if make_plots:
+        t0 = time.perf_counter()
+        sm = max(1, int(np.ceil(max(near.designed.shape) / 700)))
+        xs, ys = near.x_um[::sm], near.y_um[::sm]
+        valid = near.illuminated[::sm, ::sm]
+        if target.terms:
+            images["1_target_phase"] = ("target phase of the design (wrapped), sampled on the grid",
+                                        P.phase_map(_target_phase(target.terms, xs[None, :], ys[:, None], target),
+                                                    xs, ys, title="target phase", valid=valid))
+        conv = near.converted[::sm, ::sm]
+        images["2_mask_phase"] = ("phase of the converted field decoded from the mask",
+                                  P.phase_map(np.angle(conv), xs, ys, title="mask-derived phase",
+                                              valid=valid & (np.abs(conv) > 0)))
+        images["3_layout_zoom"] = (f"mask polygons within {zoom_hw:g} um of ({zoom_c[0]:g}, {zoom_c[1]:g}) um",
+                                   P.layout_zoom(zoom_flat.start, zoom_flat.xy_db, db_um, center_um=zoom_c,
+                                                 half_width_um=zoom_hw))
+        ext = min(1.0, max(3 * np.hypot(*target.direction), 40 * lam_um / diameter,
+                           *[1.5 * np.hypot(c[1], c[2]) for c in target.channels] or [0]))
+        if target.focal_length_um:
+            ext = 1.0
+        images["4_far_field"] = ("far-field power of the designed polarisation over direction cosines",
+                                 P.far_field_map(ff.power, ff.u, ff.v, log=log_far_field, extent_u=ext,
+                                                 marks={k: v for k, v in centres.items()},
+                                                 title="far field" + (" (log)" if log_far_field else "")))
+        if "oam" in figures:
+            o = figures["oam"]
+            images["5_oam_spectrum"] = ("OAM spectrum of the converted beam about its axis",
+                                        P.oam_bars(o["charges"], o["weights"], design_charge=target.charge))
+            images["7_interferogram"] = (f"converted beam with a tilted plane reference; charge read: "
+                                         f"{figures['fringe_reading']['charge']}",
+                                         P.interferogram_map(inten, fx_, fy_))
+        if "crosstalk" in figures:
+            c = figures["crosstalk"]
+            images["6_crosstalk"] = ("crosstalk: on-axis power at each channel spot, probing with each channel's "
+                                     "conjugate vortex", P.crosstalk_map(c["matrix_db"], c["charges"]))
+        if "lens" in figures:
+            lm = figures["lens"]
+            images["8_focal_spot"] = ("focal spot profile against the Airy pattern of the same aperture",
+                                      P.focal_profile(lm["profile"]["radius_um"], lm["profile"]["intensity"],
+                                                      airy_radius_um=lm["airy_radius_um"]))
+        timings["plots_s"] = time.perf_counter() - t0
+    figures = _json_ready(figures)
+    inputs = {"mask": {"path": mask_path.name, "sha256": _sha256(mask_path), "bytes": mask_path.stat().st_size},
+              "library": {"name": lib.name, "sha256": lib.sha256},
+              "design": getattr(design, "name", None), "wavelength_nm": wl, "polarization": polarization,
+              "layer": list(layer), "bias_nm": bias_nm, "size_tol_nm": size_tol_nm, "empty_t": str(empty_t),
+              "pad_factor": pad_factor, "max_side": max_side}
+    figures["inputs"] = _json_ready(inputs)
+    if make_plots:
+        from metalay.checks.report import render_html
+
+        html_text = render_html(title=title or f"Optical check of {mask_path.name}", caution=SAFETY_NOTE,
+                                inputs=inputs, figures={k: v for k, v in figures.items() if k != "inputs"},
+                                images=images, notes=notes)
+    files = {}
+    if out_dir is not None:
+        files = _write_outputs(Path(out_dir), figures, images, html_text)
+    timings["total_s"] = time.perf_counter() - t_all
+    return OpticsResult(figures=figures, images=images, html=html_text, files=files, timings=timings,
+                        notes=tuple(notes), near=near if keep_arrays else None, far=ff if keep_arrays else None)
+
+
+def _write_outputs(out_dir: Path, figures: dict, images: dict, html_text) -> dict:
+    import json
+
+    from metalay.util.atomic import atomic_write_bytes, ensure_dir
+
+    ensure_dir(out_dir)
+    written = {}
+
+    def put(name, data: bytes):
+        path = atomic_write_bytes(out_dir / name, data)
+        written[name] = {"path": str(path), "sha256": hashlib.sha256(data).hexdigest(), "bytes": len(data)}
+
+    put("optics.json", (json.dumps(figures, sort_keys=True, indent=2, allow_nan=False) + "\n").encode())
+    for name in sorted(images):
+        put(f"{name.split('_', 1)[1]}.png", images[name][1])
+    if html_text is not None:
+        put("optics_report.html", html_text.encode("utf-8"))
+    return written
+
+
+def quick_check(mask_path, library, design, *, out_dir=None, workers: int = 2) -> dict:
+    """A fast optical check of a freshly written mask, for ``compile``.
+
+    Runs :func:`check_optics` with the near field capped at 1024 samples per side (block-averaged beyond, stated
+    in the notes), OAM charges -10..10, and writes the figures and the report to ``out_dir`` when given.
+
+    Returns
+    -------
+    dict
+        ``figures`` (numbers), ``files`` (name -> path, sha256, bytes), ``notes``, ``timings``.
+    """
+    res = check_optics(mask_path, library, design=design, out_dir=out_dir, max_side=1024, pad_factor=2.0,
+                       workers=workers)
+    return {"figures": res.figures, "files": res.files, "notes": list(res.notes), "timings": res.timings}
+
+
+def compile_check(path, library, design) -> dict:
+    """Hook for ``metalay compile``: quick check written to ``<mask folder>/optics``; a manifest-ready dict.
+
+    Returns
+    -------
+    dict
+        ``status`` ("ok"), ``summary`` (one line), ``figures``, ``files`` (relative to the mask folder), ``notes``.
+    """
+    out_dir = Path(path).parent / "optics"
+    q = quick_check(path, library, design, out_dir=out_dir)
+    f = q["figures"]
+    parts = [f"converted {f['power_budget']['converted']:.3f}", f"leakage {f['power_budget']['leakage']:.3f}"]
+    if "designed_spot_efficiency" in f:
+        parts.append(f"designed spot {f['designed_spot_efficiency']:.3f}")
+    if "oam" in f:
+        parts.append(f"OAM purity l={f['oam']['design_charge']}: {f['oam']['purity']:.4f}")
+    if "fringe_reading" in f:
+        parts.append(f"fringe charge {f['fringe_reading']['charge']}")
+    if "crosstalk" in f and f["crosstalk"]["worst_isolation_db"] is not None:
+        parts.append(f"worst isolation {f['crosstalk']['worst_isolation_db']:.1f} dB")
+    if "lens" in f and f["lens"]["strehl"] is not None:
+        parts.append(f"Strehl {f['lens']['strehl']:.3f}")
+    files = {k: {"path": os.path.relpath(v["path"], Path(path).parent), "sha256": v["sha256"], "bytes": v["bytes"]}
+             for k, v in q["files"].items()}
+    return {"status": "ok", "summary": "; ".join(parts), "figures": f, "files": files, "notes": q["notes"],
+            "timings_s": q["timings"]}

@@ -1,0 +1,1513 @@
+"""Design-rule checks on flattened mask polygons: exact geometry, vectorised over polygons.
+
+Rules (per layer/datatype; each with its fabrication reason in :data:`RULE_REASONS`):
+
+==================  =====  =================================================================================
+rule                kind   measured value
+==================  =====  =================================================================================
+``width``           min    local width: shortest vertex-to-facing-edge distance across the inside [nm]
+``spacing``         min    distance between two distinct, disjoint polygons [nm]
+``overlap``         flag   two distinct polygons touch or overlap (distance 0)
+``area``            min    polygon area [nm^2]
+``notch``           min    gap across the outside between two parts of one polygon (slot, hole) [nm]
+``hole_area``       min    area of a hole of a keyhole polygon [nm^2]
+``vertices``        max    vertices per polygon
+``grid``            flag   largest distance of a vertex from the grid, per off-grid polygon [nm]
+``angle``           min    smallest interior angle [deg]
+``validity``        flag   self-intersecting or degenerate polygon
+``aspect_ratio``    max    film height / local width
+``field_straddle``  flag   polygon crosses a write-field boundary; value = smaller part across it [nm]
+``frame_enclosure`` flag   polygon not inside the region enclosed by the frame layer
+==================  =====  =================================================================================
+
+Spacing is found either by a shapely STRtree over all polygons (general path) or, for polygons centred on a
+rectangular grid of sites (our own lattice masks), by a stencil of lattice neighbours whose reach is bounded by the
+largest circumradius, so both paths examine every pair closer than the limit and give equal results (tested).
+The lattice path works polygon chunk by polygon chunk (cache-sized, on METALAY_THREADS threads, default 2; the
+result does not depend on the chunking or the thread count): exact-safe lower bounds (bounding-box gaps) drop
+pairs that cannot violate, and only the rest get the exact convex-polygon distance.
+
+Counts are per polygon (single-polygon rules, the worst place in the polygon) and per pair (spacing, overlap).
+Reports are sorted worst first, then by polygon index, so the same mask gives the same report.
+"""
+
+from __future__ import annotations
+
+import math
+import os
+import re
+import time
+import tomllib
+from dataclasses import dataclass, field, replace
+from pathlib import Path
+
+import numpy as np
+
+from metalay.errors import MaskReadError, MetalayError
+from metalay.io.gdsread import FlatPolygons, file_sha256, read_mask
+
+__all__ = [
+    "LayerRules", "RuleSet", "Violations", "RuleResult", "RuleReport", "RULE_REASONS", "RULE_KEYS",
+    "load_rules", "parse_rules", "rules_from_library", "check_mask", "write_marker_gds", "compile_check",
+    "RulesError", "polygon_distance_kernel",
+]
+
+
+class RulesError(MetalayError):
+    """A rules file or value is invalid (exit code 2)."""
+
+
+RULE_REASONS = {
+    "width": "Narrower lines do not resolve in the resist, or break during development and etch.",
+    "spacing": "Closer features bridge: proximity-effect dose and resist residue merge neighbours.",
+    "overlap": "Touching or overlapping polygons merge into one feature and receive a doubled exposure dose.",
+    "area": "Very small features lift off or wash away and may fall below the writer's smallest shot.",
+    "notch": "Narrow slots or holes inside a feature do not clear in development and etch.",
+    "hole_area": "Small enclosed openings do not clear in development and etch.",
+    "vertices": "Many-vertex polygons slow fracturing and can exceed format or machine limits.",
+    "grid": "Vertices off the writing grid are rounded by the fracturer, changing sizes and gaps.",
+    "angle": "Acute corners round off in exposure and etch; sharp tips break or lift off.",
+    "validity": "Self-intersecting or degenerate polygons are filled differently by each fracturing tool.",
+    "aspect_ratio": "Tall narrow pillars bend or collapse under capillary forces when drying, and etch tapers.",
+    "field_straddle": "A feature across a write-field boundary is split and suffers field-stitching errors.",
+    "frame_enclosure": "Structures outside the frame fall outside the exposed, etched or diced area.",
+}
+_KIND = {"width": "min", "spacing": "min", "overlap": "flag", "area": "min", "notch": "min", "hole_area": "min",
+         "vertices": "max", "grid": "flag", "angle": "min", "validity": "flag", "aspect_ratio": "max",
+         "field_straddle": "flag", "frame_enclosure": "flag"}
+_UNIT = {"width": "nm", "spacing": "nm", "overlap": "nm", "area": "nm^2", "notch": "nm", "hole_area": "nm^2",
+         "vertices": "count", "grid": "nm", "angle": "deg", "validity": "-", "aspect_ratio": "ratio",
+         "field_straddle": "nm", "frame_enclosure": "nm"}
+_MARKER = {"width": "segment", "spacing": "segment", "overlap": "polygon", "area": "polygon", "notch": "segment",
+           "hole_area": "point", "vertices": "polygon", "grid": "point", "angle": "point", "validity": "point",
+           "aspect_ratio": "segment", "field_straddle": "polygon", "frame_enclosure": "polygon"}
+_RULE_ORDER = tuple(RULE_REASONS)
+
+#: Keys of a ``[[layers]]`` table in a rules file, with (type, low, high) bounds.
+RULE_KEYS = {
+    "min_width_nm": (float, 0.0, 1e7), "min_spacing_nm": (float, 0.0, 1e7), "forbid_overlap": (bool, None, None),
+    "min_area_nm2": (float, 0.0, 1e14), "min_notch_nm": (float, 0.0, 1e7), "min_hole_area_nm2": (float, 0.0, 1e14),
+    "max_vertices": (int, 3, 10_000_000), "grid_nm": (float, 1e-6, 1e6), "min_angle_deg": (float, 0.0, 180.0),
+    "check_validity": (bool, None, None), "film_height_nm": (float, 0.0, 1e7),
+    "max_aspect_ratio": (float, 0.0, 1e6), "no_field_straddle": (bool, None, None),
+    "inside_frame": (list, None, None),
+}
+_GEOM_CHUNK = 1 << 14   # polygons per feature chunk (cache-sized)
+_PAIR_CHUNK = 1 << 14   # neighbour pairs per spacing chunk (~1/3 pass the prefilter; larger chunks fall out of cache)
+
+
+# ----------------------------------------------------------------------------------------------------------------
+# Rule sets
+# ----------------------------------------------------------------------------------------------------------------
+
+@dataclass(frozen=True)
+class LayerRules:
+    """Rules for one (layer, datatype); ``None`` or ``False`` switches a rule off.
+
+    Lengths in nm, areas in nm^2, angles in degrees.  ``sources`` maps a key to the origin of its value
+    (a cited process paper or ``"Common practice (no source)"``).
+    """
+
+    layer: int
+    datatype: int
+    name: str = ""
+    min_width_nm: float | None = None
+    min_spacing_nm: float | None = None
+    forbid_overlap: bool = False
+    min_area_nm2: float | None = None
+    min_notch_nm: float | None = None
+    min_hole_area_nm2: float | None = None
+    max_vertices: int | None = None
+    grid_nm: float | None = None
+    min_angle_deg: float | None = None
+    check_validity: bool = False
+    film_height_nm: float | None = None
+    max_aspect_ratio: float | None = None
+    no_field_straddle: bool = False
+    inside_frame: tuple[int, int] | None = None
+    sources: tuple[tuple[str, str], ...] = ()
+
+    def source(self, key: str) -> str:
+        return dict(self.sources).get(key, "")
+
+
+@dataclass(frozen=True)
+class RuleSet:
+    """A process's design rules: per-layer rules plus the write field."""
+
+    name: str
+    layers: tuple[LayerRules, ...]
+    description: str = ""
+    write_field_um: float | None = None
+    write_field_centre_um: tuple[float, float] = (0.0, 0.0)
+    write_field_source: str = ""
+    source_path: str | None = None
+
+    def layer_pairs(self) -> list[tuple[int, int]]:
+        """Every (layer, datatype) the rules read, including frame layers."""
+        out = {(r.layer, r.datatype) for r in self.layers}
+        out |= {tuple(r.inside_frame) for r in self.layers if r.inside_frame is not None}
+        return sorted(out)
+
+
+def _fail(where: str, key: str, value, allowed: str) -> RulesError:
+    return RulesError(f"{where}: key '{key}' = {value!r} is invalid; allowed: {allowed}")
+
+
+def parse_rules(data: dict, *, where: str = "<rules>") -> RuleSet:
+    """Validate a rules dictionary (the parsed TOML) and return a :class:`RuleSet`.
+
+    See :func:`load_rules` for the format.
+    """
+    top_keys = {"format", "format_version", "name", "description", "write_field", "layers"}
+    for k in data:
+        if k not in top_keys:
+            raise _fail(where, k, data[k], "one of " + ", ".join(sorted(top_keys)))
+    if data.get("format", "metalay.rules") != "metalay.rules":
+        raise _fail(where, "format", data.get("format"), "'metalay.rules'")
+    if data.get("format_version", 1) != 1:
+        raise _fail(where, "format_version", data.get("format_version"), "1")
+    name = data.get("name", "rules")
+    if not isinstance(name, str):
+        raise _fail(where, "name", name, "a string")
+    wf, wfc, wfs = None, (0.0, 0.0), ""
+    if "write_field" in data:
+        t = data["write_field"]
+        if not isinstance(t, dict):
+            raise _fail(where, "write_field", t, "a table with size_um, centre_um, source")
+        for k in t:
+            if k not in ("size_um", "centre_um", "source"):
+                raise _fail(where, f"write_field.{k}", t[k], "size_um, centre_um, source")
+        wf = t.get("size_um")
+        if not isinstance(wf, (int, float)) or isinstance(wf, bool) or not (0 < wf <= 1e5):
+            raise _fail(where, "write_field.size_um", wf, "a number in (0, 1e5] micrometres")
+        c = t.get("centre_um", [0.0, 0.0])
+        if (not isinstance(c, list) or len(c) != 2
+                or not all(isinstance(v, (int, float)) and not isinstance(v, bool) for v in c)):
+            raise _fail(where, "write_field.centre_um", c, "[x, y] in micrometres")
+        wf, wfc, wfs = float(wf), (float(c[0]), float(c[1])), str(t.get("source", ""))
+    layers_raw = data.get("layers", [])
+    if not isinstance(layers_raw, list) or not layers_raw:
+        raise _fail(where, "layers", layers_raw, "a non-empty array of tables [[layers]]")
+    layers = []
+    seen = set()
+    for n, t in enumerate(layers_raw):
+        w = f"layers[{n}]"
+        if not isinstance(t, dict):
+            raise _fail(where, w, t, "a table")
+        kw = {}
+        for k in ("layer", "datatype"):
+            v = t.get(k, 0 if k == "datatype" else None)
+            if not isinstance(v, int) or isinstance(v, bool) or not (0 <= v <= 65535):
+                raise _fail(where, f"{w}.{k}", v, "an integer 0..65535")
+            kw[k] = v
+        if (kw["layer"], kw["datatype"]) in seen:
+            raise _fail(where, f"{w}.layer", kw["layer"], "each (layer, datatype) once")
+        seen.add((kw["layer"], kw["datatype"]))
+        for k, v in t.items():
+            if k in ("layer", "datatype"):
+                continue
+            if k == "name":
+                if not isinstance(v, str):
+                    raise _fail(where, f"{w}.name", v, "a string")
+                kw["name"] = v
+            elif k == "sources":
+                if not isinstance(v, dict) or not all(isinstance(s, str) for s in v.values()):
+                    raise _fail(where, f"{w}.sources", v, "a table of strings keyed by rule key")
+                for sk in v:
+                    if sk not in RULE_KEYS:
+                        raise _fail(where, f"{w}.sources.{sk}", v[sk], "a rule key of this table")
+                kw["sources"] = tuple(sorted(v.items()))
+            elif k in RULE_KEYS:
+                typ, lo, hi = RULE_KEYS[k]
+                if typ is bool:
+                    if not isinstance(v, bool):
+                        raise _fail(where, f"{w}.{k}", v, "true or false")
+                elif typ is list:
+                    if (not isinstance(v, list) or len(v) != 2
+                            or not all(isinstance(x, int) and not isinstance(x, bool) and 0 <= x <= 65535
+                                       for x in v)):
+                        raise _fail(where, f"{w}.{k}", v, "[layer, datatype], integers 0..65535")
+                    v = (int(v[0]), int(v[1]))
+                else:
+                    ok = isinstance(v, (int, float)) and not isinstance(v, bool) and (typ is float or
+                                                                                       isinstance(v, int))
+                    if not ok or not (lo <= v <= hi) or (typ is float and not math.isfinite(v)):
+                        kind = "an integer" if typ is int else "a number"
+                        raise _fail(where, f"{w}.{k}", v, f"{kind} in [{lo:g}, {hi:g}]")
+                    v = typ(v)
+                kw[k] = v
+            else:
+                raise _fail(where, f"{w}.{k}", v, "layer, datatype, name, sources, " + ", ".join(RULE_KEYS))
+        lr = LayerRules(**kw)
+        if (lr.max_aspect_ratio is None) != (lr.film_height_nm is None):
+            raise _fail(where, f"{w}.max_aspect_ratio", lr.max_aspect_ratio,
+                        "given together with film_height_nm (both or neither)")
+        layers.append(lr)
+    return RuleSet(name=name, layers=tuple(layers), description=str(data.get("description", "")),
+                   write_field_um=wf, write_field_centre_um=wfc, write_field_source=wfs)
+
+
+def load_rules(path) -> RuleSet:
+    """Load a rules file (TOML) or a bundled rules set by name (e.g. ``"tio2-ebl-example"``).
+
+    Format (``format = "metalay.rules"``, ``format_version = 1``)::
+
+        name = "my-process"
+        [write_field]              # optional: e-beam/stepper field, one field centred on centre_um
+        size_um = 100.0
+        centre_um = [0.0, 0.0]
+        [[layers]]
+        layer = 1
+        datatype = 0
+        min_width_nm = 60.0        # any of RULE_KEYS; absent keys switch rules off
+        [layers.sources]
+        min_width_nm = "Common practice (no source)"
+    """
+    p = Path(path)
+    if not p.exists() and not p.suffix:
+        bundled = Path(__file__).resolve().parents[2] / "libraries" / "rules" / f"{p.name}.toml"
+        if not bundled.exists():
+            try:
+                from importlib.resources import files
+                bundled = Path(str(files("metalay.libraries") / "rules" / f"{p.name}.toml"))
+            except (ModuleNotFoundError, TypeError):
+                pass
+        p = bundled
+    try:
+        raw = p.read_bytes()
+    except OSError as exc:
+        raise RulesError(f"{path}: cannot read rules file ({exc.strerror or exc})") from exc
+    try:
+        data = tomllib.loads(raw.decode("utf-8"))
+    except (tomllib.TOMLDecodeError, UnicodeDecodeError) as exc:
+        raise RulesError(f"{p}: not a valid TOML rules file ({exc})") from exc
+    return replace(parse_rules(data, where=str(p)), source_path=str(p))
+
+
+def rules_from_library(lib_rules: dict, *, layer: tuple[int, int] = (1, 0), film_height_nm: float | None = None,
+                       frame_layer: tuple[int, int] | None = None, write_field_um: float | None = None,
+                       name: str = "library-default") -> RuleSet:
+    """Default rules from a cell library's ``rules`` dict (min_feature_nm, min_gap_nm, max_aspect_ratio, grid_nm).
+
+    Width, spacing, overlap, grid and validity always; aspect ratio when ``film_height_nm`` is given; frame
+    enclosure when ``frame_layer`` is given; write-field straddling when ``write_field_um`` is given.
+    """
+    src = str(lib_rules.get("source", ""))
+    def num(k):
+        v = lib_rules.get(k)
+        if v is None:
+            return None
+        if not isinstance(v, (int, float)) or isinstance(v, bool) or not math.isfinite(v) or v <= 0:
+            raise RulesError(f"library rules: key '{k}' = {v!r} is invalid; allowed: a positive number")
+        return float(v)
+    ar = num("max_aspect_ratio")
+    keys = {"min_width_nm": num("min_feature_nm"), "min_spacing_nm": num("min_gap_nm"), "grid_nm": num("grid_nm")}
+    lr = LayerRules(layer=int(layer[0]), datatype=int(layer[1]), name="structures", forbid_overlap=True,
+                    check_validity=True, **keys,
+                    film_height_nm=float(film_height_nm) if (film_height_nm and ar) else None,
+                    max_aspect_ratio=ar if (film_height_nm and ar) else None,
+                    no_field_straddle=write_field_um is not None,
+                    inside_frame=tuple(frame_layer) if frame_layer is not None else None,
+                    sources=tuple(sorted((k, src) for k in ("min_width_nm", "min_spacing_nm", "grid_nm",
+                                                             "max_aspect_ratio"))))
+    return RuleSet(name=name, layers=(lr,), description="defaults from the cell library",
+                   write_field_um=write_field_um)
+
+
+# ----------------------------------------------------------------------------------------------------------------
+# Report structures
+# ----------------------------------------------------------------------------------------------------------------
+
+@dataclass(frozen=True)
+class Violations:
+    """Violations of one rule, sorted worst first (then by polygon indices).
+
+    Attributes
+    ----------
+    polygon, other : np.ndarray (V,) int64
+        Index of the polygon in the checked :class:`FlatPolygons`; ``other`` is the second polygon of a pair
+        rule, else -1.
+    value : np.ndarray (V,) float64
+        Measured value in the rule's unit.
+    x_um, y_um : np.ndarray (V,) float64
+        Location of the violation (closest points' midpoint, vertex, or bounding-box centre) in micrometres.
+    segment_um : np.ndarray (V, 4) float64
+        (x0, y0, x1, y1): the measured segment (pair or width rules) or the location twice.
+    """
+
+    polygon: np.ndarray
+    other: np.ndarray
+    value: np.ndarray
+    x_um: np.ndarray
+    y_um: np.ndarray
+    segment_um: np.ndarray
+
+    @property
+    def count(self) -> int:
+        return int(self.polygon.shape[0])
+
+    @staticmethod
+    def empty() -> "Violations":
+        z = np.zeros(0)
+        return Violations(np.zeros(0, np.int64), np.zeros(0, np.int64), z, z, z, np.zeros((0, 4)))
+
+
+@dataclass(frozen=True)
+class RuleResult:
+    """Outcome of one rule on one layer."""
+
+    rule: str
+    layer: int
+    datatype: int
+    limit: float
+    unit: str
+    kind: str
+    reason: str
+    source: str
+    checked: int
+    method: str
+    violations: Violations
+
+    @property
+    def count(self) -> int:
+        return self.violations.count
+
+    @property
+    def worst_value(self) -> float | None:
+        return float(self.violations.value[0]) if self.count else None
+
+    @property
+    def worst_xy_um(self) -> tuple[float, float] | None:
+        v = self.violations
+        return (float(v.x_um[0]), float(v.y_um[0])) if self.count else None
+
+    def to_dict(self, max_listed: int) -> dict:
+        v = self.violations
+        n = min(self.count, max_listed)
+        listed = [{"polygon": int(v.polygon[i]), "other": int(v.other[i]) if v.other[i] >= 0 else None,
+                   "value": _r(v.value[i]), "x_um": _r(v.x_um[i]), "y_um": _r(v.y_um[i])} for i in range(n)]
+        return {"rule": self.rule, "layer": self.layer, "datatype": self.datatype, "limit": _r(self.limit),
+                "unit": self.unit, "kind": self.kind, "reason": self.reason, "source": self.source,
+                "checked": self.checked, "method": self.method, "count": self.count,
+                "worst_value": None if self.worst_value is None else _r(self.worst_value),
+                "worst_xy_um": None if self.worst_xy_um is None else [_r(c) for c in self.worst_xy_um],
+                "listed": listed, "listed_truncated": self.count > n}
+
+
+def _r(x) -> float:
+    """Round for the JSON report (12 significant digits: stable across platforms)."""
+    x = float(x)
+    return float(f"{x:.12g}") if math.isfinite(x) else x
+
+
+@dataclass(frozen=True)
+class RuleReport:
+    """All rule results for one mask.  ``timings_s`` is kept out of :meth:`to_dict` (reports are deterministic)."""
+
+    mask: str
+    sha256: str | None
+    db_unit_m: float
+    polygons: int
+    rules_name: str
+    results: tuple[RuleResult, ...]
+    timings_s: tuple[tuple[str, float], ...] = field(default=(), compare=False)
+
+    @property
+    def total_violations(self) -> int:
+        return sum(r.count for r in self.results)
+
+    @property
+    def clean(self) -> bool:
+        return self.total_violations == 0
+
+    def to_dict(self, max_listed: int = 100) -> dict:
+        return {"format": "metalay.rule-report", "format_version": 1, "mask": self.mask, "sha256": self.sha256,
+                "db_unit_m": self.db_unit_m, "polygons": self.polygons, "rules": self.rules_name,
+                "clean": self.clean, "total_violations": self.total_violations,
+                "results": [r.to_dict(max_listed) for r in self.results]}
+
+    def summary_lines(self) -> list[str]:
+        """One line per rule: layer, rule, count, worst value and its location."""
+        lines = []
+        for r in self.results:
+            head = f"{r.layer}/{r.datatype} {r.rule:<16} limit {r.limit:g} {r.unit}"
+            if r.count == 0:
+                lines.append(f"{head}: clean ({r.checked} checked, {r.method})")
+            else:
+                x, y = r.worst_xy_um
+                lines.append(f"{head}: {r.count} violations, worst {r.worst_value:.6g} {r.unit} "
+                             f"at ({x:.4f}, {y:.4f}) um ({r.method})")
+        return lines
+
+
+# ----------------------------------------------------------------------------------------------------------------
+# Geometry kernels (exact on integer coordinates up to the final division / square root)
+# ----------------------------------------------------------------------------------------------------------------
+
+def _point_segment(px, py, ax, ay, bx, by):
+    """Distance from points P to segments AB (broadcast), same operation order as GEOS pointToSegment.
+
+    Returns (d, fx, fy): distance and the closest point on the segment.
+    """
+    ex, ey = bx - ax, by - ay
+    len2 = ex * ex + ey * ey
+    dot = (px - ax) * ex + (py - ay) * ey
+    with np.errstate(divide="ignore", invalid="ignore"):
+        r = np.where(len2 > 0, dot / len2, 0.0)
+        s = ((ay - py) * ex - (ax - px) * ey) / len2
+        dmid = np.abs(s) * np.sqrt(len2)
+    da = np.sqrt((px - ax) ** 2 + (py - ay) ** 2)
+    db = np.sqrt((px - bx) ** 2 + (py - by) ** 2)
+    d = np.where(r <= 0, da, np.where(r >= 1, db, dmid))
+    rc = np.clip(r, 0.0, 1.0)
+    return d, ax + rc * ex, ay + rc * ey
+
+
+def _reduce(fn, cols):
+    out = cols[0]
+    for c in cols[1:]:
+        out = fn(out, c)
+    return out
+
+
+def _rel_coords(a: np.ndarray, b: np.ndarray):
+    """Coordinates of a and b (m, n, 2) relative to a's first vertex as (2, n, m) float64 (exact integers)."""
+    m, n, _ = a.shape
+    A = np.empty((2, n, m))
+    B = np.empty((2, n, m))
+    for c in range(2):
+        o = a[:, 0, c]
+        for k in range(n):
+            np.subtract(a[:, k, c], o, out=A[c, k], casting="unsafe")
+            np.subtract(b[:, k, c], o, out=B[c, k], casting="unsafe")
+    return A, B
+
+
+def _min_distance_candidates(A, B, points: bool = False):
+    """min over all vertex-edge candidates in both directions, (m,), each evaluated like
+    :func:`_point_segment` (GEOS pointToSegment); ``dot <= 0`` and ``dot >= len2`` replace ``r = dot / len2 <= 0``
+    and ``r >= 1`` (equal for integer coordinates with len2 < 2**52).
+
+    Both directions are stacked on a leading axis (0: vertices of A to edges of B, 1: B to A).  The end-point
+    distance of candidate (v, e) is |v - q_e| when dot <= 0 and |v - q_(e+1)| when dot >= len2, so vertex pair
+    (v, w) is a candidate when lo[v, w] or hi[v, w - 1]; sqrt is monotone and correctly rounded, so the minimum
+    is taken over squared integer distances first.  With ``points`` also returns the closest points (4, m)
+    (xa, ya, xb, yb) of a minimising candidate.
+    """
+    n, m = A.shape[1], A.shape[2]
+    E = np.empty((2, 2) + A.shape[1:])         # (coordinate, direction, edge, pair)
+    for c in range(2):
+        np.subtract(B[c, 1:], B[c, :-1], out=E[c, 0, :-1])
+        np.subtract(B[c, 0], B[c, n - 1], out=E[c, 0, -1])
+        np.subtract(A[c, 1:], A[c, :-1], out=E[c, 1, :-1])
+        np.subtract(A[c, 0], A[c, n - 1], out=E[c, 1, -1])
+    L2 = E[0] * E[0] + E[1] * E[1]             # (direction, edge, pair)
+    SQ = np.sqrt(L2)
+    P = np.stack([A, B], 1)                    # (coordinate, direction, vertex, pair)
+    Q = np.stack([B, A], 1)
+    wx = P[0][:, :, None] - Q[0][:, None, :]   # (direction, vertex, edge, pair)
+    wy = P[1][:, :, None] - Q[1][:, None, :]
+    ex, ey = E[0][:, None], E[1][:, None]
+    l2 = L2[:, None]
+    dot = wx * ex
+    dot += wy * ey
+    lo = dot <= 0
+    hi = dot >= l2
+    # squared vertex-vertex distances: direction 1 is direction 0 transposed (squares of negated exact values)
+    da2 = np.empty_like(wx)
+    np.multiply(wx[0], wx[0], out=da2[0])
+    da2[0] += wy[0] * wy[0]
+    da2[1] = da2[0].transpose(1, 0, 2)
+    vc = np.empty_like(hi)                     # hi of the previous edge: hi[v, w - 1]
+    vc[:, :, 1:] = hi[:, :, :-1]
+    vc[:, :, 0] = hi[:, :, -1]
+    vc |= lo
+    vsel = np.where(vc, da2, np.inf).reshape(2 * n * n, m)
+    cr = wx * ey
+    cr -= wy * ex
+    np.abs(cr, out=cr)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        cr /= l2
+        cr *= SQ[:, None]
+    mid = np.where(lo | hi, np.inf, cr).reshape(2 * n * n, m)
+    vv = vsel.min(0)
+    mm = mid.min(0)
+    sv = np.sqrt(vv)
+    d = np.minimum(sv, mm)
+    if not points:
+        return d
+    use_v = sv <= mm
+    k = np.where(use_v, (vsel == vv).argmax(0), (mid == mm).argmax(0))
+    r = np.arange(m)
+    dirn, v, e = k // (n * n), (k // n) % n, k % n
+    Pp = P[:, dirn, v, r]
+    Qs = Q[:, dirn, e, r]
+    t = np.where(use_v, 0.0, dot.reshape(2 * n * n, m)[k, r] / np.where(use_v, 1.0, L2[dirn, e, r]))
+    foot = Qs + t * E[:, dirn, e, r]
+    a_side = dirn == 0
+    pa = np.where(a_side, Pp, foot)
+    pb = np.where(a_side, foot, Pp)
+    return d, np.concatenate([pa, pb])
+
+
+def _separated(A, B):
+    """Exact separating-axis test over the edge normals of both convex polygons (2, n, m) -> (m,) bool."""
+    m = A.shape[2]
+    sep = np.zeros(m, bool)
+    for P in (A, B):
+        nx = np.roll(P[1], -1, axis=0) - P[1]
+        ny = P[0] - np.roll(P[0], -1, axis=0)
+        pa = nx[:, None, :] * A[0][None] + ny[:, None, :] * A[1][None]   # (axes, vertices, m)
+        pb = nx[:, None, :] * B[0][None] + ny[:, None, :] * B[1][None]
+        amax, amin = pa.max(1), pa.min(1)
+        bmax, bmin = pb.max(1), pb.min(1)
+        sep |= ((amax < bmin) | (bmax < amin)).any(0)
+    return sep
+
+
+def _bbox_disjoint(A, B):
+    """True where the bounding boxes of A and B (2, n, m) are strictly disjoint (then the polygons are too)."""
+    return ((A[0].max(0) < B[0].min(0)) | (B[0].max(0) < A[0].min(0)) |
+            (A[1].max(0) < B[1].min(0)) | (B[1].max(0) < A[1].min(0)))
+
+
+def _pair_distance(A, B, points: bool = False):
+    """Exact distance (m,) between convex polygons A, B given as (2, n, m) relative coordinates; 0 if they meet.
+
+    With ``points`` also the closest points (m, 4) = (xa, ya, xb, yb) in the same relative coordinates (for
+    meeting pairs one point twice).
+    """
+    got = _min_distance_candidates(A, B, points)
+    d, p = got if points else (got, None)
+    near = np.flatnonzero(~_bbox_disjoint(A, B))
+    if near.size:
+        sep = _separated(np.take(A, near, axis=2), np.take(B, near, axis=2))
+        meet = near[~sep]
+        d[meet] = 0.0
+        if points:
+            p[2:, meet] = p[:2, meet]
+    return (d, p.T) if points else d
+
+
+def polygon_distance_kernel(a: np.ndarray, b: np.ndarray):
+    """Exact distance between pairs of convex polygons with the same vertex count.
+
+    Parameters
+    ----------
+    a, b : np.ndarray, shape (m, n, 2), integer-valued
+        Vertices of the two polygons of each pair (any orientation, closing vertex not repeated).
+
+    Returns
+    -------
+    d : np.ndarray (m,) float64
+        0 where the polygons touch or overlap, else the smallest vertex-to-edge distance.
+    pa, pb : np.ndarray (m, 2) float64
+        Closest points on a and b (for overlapping pairs: one point twice).
+
+    Notes
+    -----
+    Overlap is decided exactly by the separating-axis theorem with integer edge normals: two convex polygons are
+    disjoint iff their projections on some edge normal of either polygon are disjoint (tested only where the
+    bounding boxes meet; disjoint boxes mean disjoint polygons).  For disjoint polygons the distance is attained
+    at a vertex of one and an edge of the other, so ``d = min(min_v dist(v_a, edges_b), min_v dist(v_b,
+    edges_a))`` with each point-to-segment distance evaluated like GEOS: ``|v - a|`` if ``(v - a).e <= 0``,
+    ``|v - b|`` if ``(v - a).e >= |e|^2``, else ``|e x (v - a)| / |e|^2 * |e|``.  Coordinates are taken relative to
+    a's first vertex, so all products before the final division are exact integers in float64 (for polygons
+    under ~1e7 database units across).  Every operation is vectorised over the m pairs (arrays (n, n, m)).
+
+    References
+    ----------
+    Gottschalk, Lin, Manocha 1996, SIGGRAPH '96, 171-180 (separating axis theorem for convex sets).
+    """
+    a = np.asarray(a)
+    b = np.asarray(b)
+    A, B = _rel_coords(a, b)
+    d, p = _pair_distance(A, B, points=True)
+    o = a[:, 0, :].astype(np.float64)
+    return d, p[:, :2] + o, p[:, 2:] + o
+
+
+def _group_features(X: np.ndarray, want_angle: bool = True):
+    """Per-polygon features of a uniform group X (m, n, 2) int64 (loops over the n vertices, vectorised over m).
+
+    Returns dict with area2 (signed, int64), strictly convex & simple flag, min interior angle (deg, only when
+    ``want_angle``) and the index of its vertex (kmin), local width (convex polygons only; inf otherwise), bbox
+    (m, 4) int64 and r2max (largest squared vertex distance from a bounding-box centre, a float).
+    Width segments: :func:`_width_segments`.
+    """
+    m, n, _ = X.shape
+    ox, oy = X[:, 0, 0], X[:, 0, 1]
+    xi = [X[:, k, 0] - ox for k in range(n)]
+    yi = [X[:, k, 1] - oy for k in range(n)]
+    area2 = np.zeros(m, np.int64)
+    for k in range(n):
+        area2 += xi[k] * yi[(k + 1) % n] - xi[(k + 1) % n] * yi[k]
+    xs = [c.astype(np.float64) for c in xi]
+    ys = [c.astype(np.float64) for c in yi]
+    ex = [xs[(k + 1) % n] - xs[k] for k in range(n)]
+    ey = [ys[(k + 1) % n] - ys[k] for k in range(n)]
+    sgn = np.sign(area2).astype(np.float64)
+    convex = area2 != 0
+    # with every turn strictly in (0, pi) the total turning of a closed polygon with n <= 4 vertices is exactly
+    # 2 pi (a multiple of 2 pi below 4 pi), so the summed turning angle is needed only for n > 4 or the angle rule
+    need_turn = want_angle or n > 4
+    total = np.zeros(m) if need_turn else None
+    amin = np.full(m, np.inf) if want_angle else None
+    kmin = np.zeros(m, np.int8 if n < 128 else np.int64)
+    for k in range(n):
+        cr = ex[k - 1] * ey[k] - ey[k - 1] * ex[k]
+        convex &= cr * sgn > 0
+        if not need_turn:
+            continue
+        dt = ex[k - 1] * ex[k] + ey[k - 1] * ey[k]
+        turn = np.arctan2(cr, dt)
+        total += turn
+        if want_angle:
+            ang = np.degrees(np.pi - sgn * turn)
+            zero = ((ex[k - 1] == 0) & (ey[k - 1] == 0)) | ((ex[k] == 0) & (ey[k] == 0))
+            ang = np.where(zero, 180.0, ang)
+            upd = ang < amin
+            amin = np.where(upd, ang, amin)
+            kmin = np.where(upd, k, kmin).astype(kmin.dtype)
+    if need_turn:
+        convex &= np.abs(np.abs(total) - 2 * np.pi) < 1e-6
+    bbox = np.stack([_reduce(np.minimum, [X[:, k, 0] for k in range(n)]),
+                     _reduce(np.minimum, [X[:, k, 1] for k in range(n)]),
+                     _reduce(np.maximum, [X[:, k, 0] for k in range(n)]),
+                     _reduce(np.maximum, [X[:, k, 1] for k in range(n)])], 1)
+    width = np.full(m, np.inf)
+    if convex.any():  # width is defined here for convex polygons only: skip the O(n^2) loop when there are none
+        if not convex.all():
+            keep = np.flatnonzero(convex)
+            xs, ys, ex, ey = ([a[keep] for a in arrs] for arrs in (xs, ys, ex, ey))
+        w_conv = np.full(xs[0].shape[0], np.inf)
+        for _i, _j, d, _dt, _l2 in _vertex_edge_distances(xs, ys, ex, ey):
+            np.minimum(w_conv, d, out=w_conv)
+        width[convex] = w_conv
+    r2max = 0.0
+    if m:
+        cx = (bbox[:, 0] + bbox[:, 2]) / 2.0
+        cy = (bbox[:, 1] + bbox[:, 3]) / 2.0
+        Xf = X.astype(np.float64)
+        r2max = float(((Xf[..., 0] - cx[:, None]) ** 2 + (Xf[..., 1] - cy[:, None]) ** 2).max())
+    return {"area2": area2, "convex": convex, "angle": amin, "kmin": kmin, "width": width, "bbox": bbox,
+            "r2max": r2max}
+
+
+def _vertex_edge_distances(xs, ys, ex, ey):
+    """For each edge ``i`` and each vertex ``j`` not on it: the distance from ``j`` to edge ``i`` where the foot
+    of the perpendicular falls on the edge (inf elsewhere). Yields ``(i, j, d, dt, l2)`` in loop order, with
+    ``dt`` the projection on the edge and ``l2`` its squared length (over the polygons of a chunk)."""
+    n = len(xs)
+    for i in range(n):  # edges of one polygon (a short axis), vectorised over polygons
+        l2 = ex[i] * ex[i] + ey[i] * ey[i]
+        sq = np.sqrt(l2)
+        for j in range(n):
+            if j == i or j == (i + 1) % n:
+                continue
+            wx, wy = xs[j] - xs[i], ys[j] - ys[i]
+            dt = wx * ex[i] + wy * ey[i]
+            cr = ex[i] * wy - ey[i] * wx
+            ok = (dt >= 0) & (dt <= l2) & (l2 > 0)
+            with np.errstate(divide="ignore", invalid="ignore"):
+                d = np.where(ok, np.abs(cr) / sq, np.inf)
+            yield i, j, d, dt, l2
+
+
+def _width_segments(X: np.ndarray) -> np.ndarray:
+    """Width segment (m, 4) = (vertex, foot on the facing edge) of convex polygons X (m, n, 2), database units.
+
+    The first smallest (edge i, vertex j) pair in loop order, as in :func:`_group_features`.
+    """
+    m, n, _ = X.shape
+    ox, oy = X[:, 0, 0], X[:, 0, 1]
+    xs = [(X[:, k, 0] - ox).astype(np.float64) for k in range(n)]
+    ys = [(X[:, k, 1] - oy).astype(np.float64) for k in range(n)]
+    ex = [xs[(k + 1) % n] - xs[k] for k in range(n)]
+    ey = [ys[(k + 1) % n] - ys[k] for k in range(n)]
+    width = np.full(m, np.inf)
+    wseg = np.zeros((4, m))
+    for i, j, d, dt, l2 in _vertex_edge_distances(xs, ys, ex, ey):
+        upd = d < width
+        if upd.any():
+            width = np.where(upd, d, width)
+            t = dt[upd] / l2[upd]
+            wseg[:, upd] = np.stack([xs[j][upd], ys[j][upd], xs[i][upd] + t * ex[i][upd],
+                                     ys[i][upd] + t * ey[i][upd]])
+    return (wseg + np.stack([ox, oy, ox, oy]).astype(np.float64)).T
+
+
+def _ring(flat: FlatPolygons, k: int) -> np.ndarray:
+    return flat.xy_db[flat.start[k]:flat.start[k + 1]]
+
+
+def _shapely_polygon_analysis(ring: np.ndarray, want_width: bool, want_notch: bool):
+    """Exact analysis of a non-convex (or non-strict) polygon with shapely.
+
+    Returns dict: valid (bool), where (x, y) of invalidity, width (d, seg) and notch (d, seg) or None,
+    holes [(area, (x, y))].
+    """
+    import shapely
+
+    out = {"valid": True, "where": None, "width": None, "notch": None, "holes": []}
+    n = ring.shape[0]
+    uniq = np.unique(ring, axis=0).shape[0] if n else 0
+    if n < 3 or uniq < 3:
+        out["valid"] = False
+        out["where"] = tuple(ring.mean(0)) if n else (0.0, 0.0)
+        return out
+    coords = ring.astype(np.float64)
+    poly = shapely.Polygon(coords)
+    area_ring = abs(float(np.sum(coords[:, 0] * np.roll(coords[:, 1], -1) - np.roll(coords[:, 0], -1)
+                                 * coords[:, 1]))) / 2
+    if area_ring == 0:
+        out["valid"] = False
+        out["where"] = tuple(coords.mean(0))
+        return out
+    if not shapely.is_valid(poly):
+        fixed = shapely.make_valid(poly, method="structure", keep_collapsed=False)
+        # a keyhole (boundary touching itself along a cut line) encodes a polygon with holes: accept it
+        if fixed.geom_type == "Polygon" and abs(fixed.area - area_ring) <= 1e-9 * area_ring:
+            poly = fixed
+        else:
+            out["valid"] = False
+            reason = shapely.is_valid_reason(shapely.Polygon(coords))
+            mt = re.search(r"\[([-+0-9.eE]+) ([-+0-9.eE]+)\]", reason)
+            out["where"] = (float(mt.group(1)), float(mt.group(2))) if mt else tuple(coords.mean(0))
+            return out
+    for hole in poly.interiors:
+        hp = shapely.Polygon(hole)
+        c = hp.centroid
+        out["holes"].append((hp.area, (c.x, c.y)))
+    if not (want_width or want_notch):
+        return out
+    ii = np.repeat(np.arange(n), n)
+    jj = np.tile(np.arange(n), n)
+    sel = (jj != ii) & (jj != (ii + 1) % n)
+    ii, jj = ii[sel], jj[sel]
+    a = coords[ii]
+    e = coords[(ii + 1) % n] - a
+    v = coords[jj]
+    w = v - a
+    len2 = (e * e).sum(1)
+    dt = (w * e).sum(1)
+    ok = (len2 > 0) & (dt >= 0) & (dt <= len2)
+    cr = e[:, 0] * w[:, 1] - e[:, 1] * w[:, 0]
+    ok &= cr != 0
+    if not ok.any():
+        return out
+    a, e, v, len2, dt, cr = a[ok], e[ok], v[ok], len2[ok], dt[ok], cr[ok]
+    d = np.abs(cr) / np.sqrt(len2)
+    foot = a + e * (dt / len2)[:, None]
+    segs = shapely.linestrings(np.stack([v, foot], 1))
+    shapely.prepare(poly)
+    for key, want, region in (("width", want_width, poly), ("notch", want_notch, None)):
+        if not want:
+            continue
+        if region is None:
+            minx, miny, maxx, maxy = poly.bounds
+            region = shapely.box(minx - 1, miny - 1, maxx + 1, maxy + 1).difference(poly)
+            shapely.prepare(region)
+        mid = (v + foot) / 2
+        # the segment must cross the region, not run along its boundary
+        inside = shapely.covers(region, segs) & shapely.contains_xy(region, mid[:, 0], mid[:, 1])
+        if inside.any():
+            k = np.flatnonzero(inside)[np.argmin(d[inside])]
+            out[key] = (float(d[k]), np.concatenate([v[k], foot[k]]))
+    return out
+
+
+# ----------------------------------------------------------------------------------------------------------------
+# Spacing: general path (STRtree) and lattice-neighbour fast path
+# ----------------------------------------------------------------------------------------------------------------
+
+def _shapely_polygons(flat: FlatPolygons, idx: np.ndarray):
+    import shapely
+
+    counts = np.diff(flat.start)[idx]
+    vidx = np.repeat(flat.start[idx], counts) + (np.arange(int(counts.sum())) - np.repeat(np.cumsum(counts) - counts,
+                                                                                           counts))
+    rings = shapely.linearrings(flat.xy_db[vidx].astype(np.float64), indices=np.repeat(np.arange(idx.size), counts))
+    return shapely.polygons(rings)
+
+
+def _pairs_tree(flat: FlatPolygons, idx: np.ndarray, s_db: float):
+    """All pairs (i < j, indices into flat) at distance < s_db (or touching when s_db == 0), via STRtree."""
+    import shapely
+
+    polys = _shapely_polygons(flat, idx)
+    tree = shapely.STRtree(polys)
+    if s_db > 0:
+        q = tree.query(polys, predicate="dwithin", distance=s_db)
+    else:
+        q = tree.query(polys, predicate="intersects")
+    q = q[:, q[0] < q[1]]
+    a, b = q[0], q[1]
+    d = shapely.distance(polys[a], polys[b])
+    keep = (d < s_db) | (d == 0)
+    a, b, d = a[keep], b[keep], d[keep]
+    if a.size:
+        lines = shapely.shortest_line(polys[a], polys[b])
+        c = shapely.get_coordinates(lines).reshape(-1, 4)
+    else:
+        c = np.zeros((0, 4))
+    return idx[a], idx[b], d, c
+
+
+def _lattice_plan(bbox: np.ndarray, rmax: float, reach_db: float, max_stencil: int = 400):
+    """Site grid of polygons centred on a rectangular grid of sites, or None if they are not on one.
+
+    A site is the doubled bounding-box centre (integer); the grid steps are the gcd of the site differences per
+    axis.  The stencil holds every site offset whose centre distance is <= 2 * rmax + reach_db, so no pair closer
+    than reach_db can be missed (distance >= centre distance - r_a - r_b).
+
+    Returns dict: grid (flat array of polygon positions, -1 where empty, padded by the stencil reach so lookups
+    need no bounds checks), I, J (P,) padded site indices, si, sj (grid strides of i and j, the layout chosen to
+    follow the polygon order), offsets [(di, dj)] (half stencil inside the grid), deltas (grid index step per
+    offset), n_offsets (stencil size), gx, gy (doubled site steps), hx2max, hy2max (largest bounding-box width
+    and height).
+    """
+    P = bbox.shape[0]
+    if P < 2:
+        return None
+    steps, ids = [], []
+    for ax in (0, 1):
+        c2 = bbox[:, ax] + bbox[:, ax + 2]
+        c2 -= c2.min()
+        g = int(np.gcd.reduce(c2))
+        g = g if g > 0 else 1 << 40
+        ids.append(c2 // g)
+        steps.append(g)
+    gx, gy = steps
+    ni, nj = int(ids[0].max()) + 1, int(ids[1].max()) + 1
+    if ni * nj > 8 * P + (1 << 20):
+        return None
+    reach = 2.0 * rmax + reach_db
+    hx, hy = gx / 2.0, gy / 2.0  # site steps in database units
+    kx = int(math.floor(reach / hx)) if hx < 1e30 else 0
+    ky = int(math.floor(reach / hy)) if hy < 1e30 else 0
+    if (2 * kx + 1) * (2 * ky + 1) > 2 * max_stencil:
+        return None
+    all_offsets = [(di, dj) for di in range(0, kx + 1) for dj in range(-ky, ky + 1)
+                   if (di > 0 or dj > 0) and math.hypot(di * hx, dj * hy) <= reach]
+    offsets = [(di, dj) for di, dj in all_offsets if di < ni and abs(dj) < nj]
+    kx = max([di for di, _ in offsets], default=0)
+    ky = max([abs(dj) for _, dj in offsets], default=0)
+    # the grid is padded by the stencil reach (kx cells after i, ky cells on both sides of j) so that every
+    # neighbour lookup is one gather without bounds checks
+    nip, njp = ni + kx, nj + 2 * ky
+    it = np.int32 if max(nip * njp, P) < 2 ** 31 - 1 else np.int64
+    I, J = ids[0].astype(it), (ids[1] + ky).astype(it)
+    del ids
+    # grid layout following the polygon order (consecutive polygons -> nearby grid cells)
+    s = slice(0, min(P, 1 << 16))
+    kr = I[s].astype(np.int64) * njp + J[s]
+    kc = J[s].astype(np.int64) * nip + I[s]
+    row_major = bool(np.abs(np.diff(kr)).sum() <= np.abs(np.diff(kc)).sum())
+    si, sj = (njp, 1) if row_major else (1, nip)
+    key = I.astype(np.int64) * si + J.astype(np.int64) * sj
+    grid = np.full(nip * njp, -1, it)
+    grid[key] = np.arange(P, dtype=it)
+    if not np.array_equal(grid[key], np.arange(P, dtype=it)):
+        return None  # two polygons on one site
+    del key
+    # largest bounding-box half extents (doubled, integers) for the per-polygon prefilter
+    hx2max = int((bbox[:, 2] - bbox[:, 0]).max())
+    hy2max = int((bbox[:, 3] - bbox[:, 1]).max())
+    return {"grid": grid, "I": I, "J": J, "si": si, "sj": sj, "offsets": offsets, "hx2max": hx2max,
+            "hy2max": hy2max,
+            "deltas": np.array([di * si + dj * sj for di, dj in offsets], np.int64),
+            "n_offsets": len(all_offsets), "gx": gx, "gy": gy}
+
+
+def _lattice_chunk(X, bbox, plan, lo: int, hi: int, s_db: float):
+    """Pairs (a, b positions) of polygons [lo, hi) and their stencil neighbours closer than s_db (or meeting).
+
+    Returns (a, b, d, c) with c (k, 4) the closest points in database units (on a, then on b), ordered by a and
+    then by stencil offset.
+    """
+    n_off = len(plan["offsets"])
+    C = hi - lo
+    if n_off == 0 or C <= 0:
+        z = np.zeros(0, np.int64)
+        return z, z, np.zeros(0), np.zeros((0, 4))
+    s2 = s_db * s_db * (1.0 + 1e-9)
+    ba = bbox[lo:hi]
+    # exact-safe prefilter 0 (per polygon, no neighbour lookup): the site offset minus this polygon's and the
+    # largest bounding-box half extent bounds the bounding-box gap from below (doubled integer units)
+    off = np.array(plan["offsets"], np.int64) * np.array([plan["gx"], plan["gy"]], np.int64)   # doubled units
+    lx = np.maximum(np.abs(off[None, :, 0]) - (ba[:, 2] - ba[:, 0])[:, None] - plan["hx2max"], 0)
+    ly = np.maximum(np.abs(off[None, :, 1]) - (ba[:, 3] - ba[:, 1])[:, None] - plan["hy2max"], 0)
+    lx, ly = lx.astype(np.float64) / 2, ly.astype(np.float64) / 2
+    sel = np.flatnonzero(lx * lx + ly * ly <= s2)                        # into (C, n_off)
+    c_i, w = sel // n_off, sel % n_off
+    key0 = plan["I"][lo + c_i].astype(np.int64) * plan["si"] + plan["J"][lo + c_i].astype(np.int64) * plan["sj"]
+    nb = plan["grid"][key0 + plan["deltas"][w]]                          # -1 where no polygon
+    # exact-safe prefilter 1: bounding-box distance (integer) >= s_db cannot violate
+    bb = bbox[nb]                                                        # rows of -1 entries are masked below
+    bc = ba[c_i]
+    gxp = np.maximum(np.maximum(bb[:, 0] - bc[:, 2], bc[:, 0] - bb[:, 2]), 0).astype(np.float64)
+    gyp = np.maximum(np.maximum(bb[:, 1] - bc[:, 3], bc[:, 1] - bb[:, 3]), 0).astype(np.float64)
+    keep = np.flatnonzero((nb >= 0) & (gxp * gxp + gyp * gyp <= s2))
+    if keep.size == 0:
+        z = np.zeros(0, np.int64)
+        return z, z, np.zeros(0), np.zeros((0, 4))
+    a = lo + c_i[keep]
+    w = w[keep]
+    b = nb[keep].astype(np.int64)
+    A, B = _rel_coords(X[a], X[b])
+    # exact-safe prefilter 2 (diagonal offsets): projection gap along the site offset direction
+    diag = [k for k, (di, dj) in enumerate(plan["offsets"]) if di != 0 and dj != 0]
+    if diag:
+        off = np.array(plan["offsets"], np.float64) * np.array([plan["gx"], plan["gy"]], np.float64)
+        ux, uy = off[w, 0], off[w, 1]
+        norm = np.hypot(ux, uy)
+        gap = (B[0] * ux + B[1] * uy).min(0) - (A[0] * ux + A[1] * uy).max(0)
+        keep = ~np.isin(w, diag) | (gap <= s_db * norm * (1.0 + 1e-9))
+        if not keep.all():
+            a, b = a[keep], b[keep]
+            A, B = np.compress(keep, A, axis=2), np.compress(keep, B, axis=2)
+    d, c = _pair_distance(A, B, points=True)
+    hit = np.flatnonzero((d < s_db) | (d == 0))
+    a, b, d, c = a[hit], b[hit], d[hit], c[hit]
+    o = X[a, 0, :].astype(np.float64)
+    c += np.concatenate([o, o], 1)
+    return a, b, d, c
+
+
+def _pairs_lattice(flat: FlatPolygons, idx: np.ndarray, n: int, bbox: np.ndarray, s_db: float, rmax: float,
+                   threads: int = 2):
+    """Lattice fast path over polygons ``idx`` (all strictly convex with ``n`` vertices); None if not a lattice.
+
+    Pairs are produced polygon chunk by polygon chunk (cache-sized, optionally on ``threads`` threads; the
+    result is the same as serial, chunks are concatenated in order).
+    """
+    plan = _lattice_plan(bbox, rmax, s_db)
+    if plan is None:
+        return None
+    X = _uniform_view(flat, idx, n)
+    P = idx.size
+    step = max(16, _PAIR_CHUNK // max(1, len(plan["offsets"])))
+    starts = list(range(0, P, step))
+
+    def work(lo):
+        return _lattice_chunk(X, bbox, plan, lo, min(P, lo + step), s_db)
+
+    parts = _map_chunks(work, starts, threads)
+    n_off = plan["n_offsets"]
+    a = np.concatenate([p[0] for p in parts])
+    b = np.concatenate([p[1] for p in parts])
+    d = np.concatenate([p[2] for p in parts])
+    c = np.concatenate([p[3] for p in parts])
+    del parts
+    swap = a > b
+    lo_, hi_ = np.where(swap, b, a), np.where(swap, a, b)
+    c[swap] = c[swap][:, [2, 3, 0, 1]]
+    return idx[lo_], idx[hi_], d, c, n_off
+
+
+def _threads() -> int:
+    """Worker threads for the spacing chunks: 2 (numpy releases the GIL), 1 when METALAY_THREADS=1."""
+    try:
+        return max(1, min(8, int(os.environ.get("METALAY_THREADS", "2"))))
+    except ValueError:
+        return 2
+
+
+def _map_chunks(fn, items, threads: int | None = None) -> list:
+    """[fn(x) for x in items], on ``threads`` worker threads when there are enough items (same result, in order)."""
+    threads = _threads() if threads is None else threads
+    if threads > 1 and len(items) > 8:
+        from concurrent.futures import ThreadPoolExecutor
+
+        with ThreadPoolExecutor(max_workers=threads) as ex:
+            return list(ex.map(fn, items))
+    return [fn(x) for x in items]
+
+
+def _uniform_view(flat: FlatPolygons, idx: np.ndarray, n: int) -> np.ndarray:
+    """Vertices of polygons ``idx`` (all with ``n`` vertices) as (m, n, 2); a view when idx covers everything."""
+    if idx.size == flat.count and flat.xy_db.shape[0] == flat.count * n:
+        return flat.xy_db.reshape(flat.count, n, 2)
+    return flat.xy_db[flat.start[idx][:, None] + np.arange(n)]
+
+
+# ----------------------------------------------------------------------------------------------------------------
+# The check
+# ----------------------------------------------------------------------------------------------------------------
+
+def _violations(kind: str, polygon, other, value, seg_db, db_um: float) -> Violations:
+    polygon = np.asarray(polygon, np.int64)
+    other = np.asarray(other, np.int64) if other is not None else np.full(polygon.shape, -1, np.int64)
+    value = np.asarray(value, np.float64)
+    key_val = -value if kind == "max" else value
+    order = np.lexsort((other, polygon, key_val))
+    seg = np.asarray(seg_db, np.float64).reshape(-1, 4)[order]
+    seg *= db_um
+    x = seg[:, 0] + seg[:, 2]
+    x /= 2
+    y = seg[:, 1] + seg[:, 3]
+    y /= 2
+    return Violations(polygon[order], other[order], value[order], x, y, seg)
+
+
+def _frame_region(flat: FlatPolygons, frame: tuple[int, int]):
+    import shapely
+
+    sel = np.flatnonzero((flat.layer == frame[0]) & (flat.datatype == frame[1]))
+    if sel.size == 0:
+        return None
+    polys = shapely.make_valid(_shapely_polygons(flat, sel))
+    u = shapely.union_all(polys)
+    parts = shapely.get_parts(u)
+    parts = parts[shapely.get_type_id(parts) == 3]
+    holes = [shapely.Polygon(r) for p in parts for r in p.interiors]
+    if holes:
+        return shapely.union_all(holes)
+    return shapely.union_all([shapely.Polygon(p.exterior) for p in parts])
+
+
+def check_mask(mask, rules: RuleSet, *, method: str = "auto", cell: str | None = None,
+               max_elements: int | None = None) -> RuleReport:
+    """Check a mask against a rule set.
+
+    Parameters
+    ----------
+    mask : str, os.PathLike or FlatPolygons
+        A GDSII/OASIS file (read with :func:`metalay.gdsread.read_mask`, only the layers the rules use) or
+        polygons already read.
+    rules : RuleSet
+    method : {"auto", "tree", "lattice"}
+        Spacing search: "auto" uses the lattice-neighbour stencil when every polygon of the layer is a strictly
+        convex polygon with the same vertex count centred on a rectangular grid of sites, else the STRtree;
+        "tree" always uses the STRtree; "lattice" is "auto" (the tree remains the fallback).
+    cell : str, optional
+        Structure to check (default: every top structure).
+
+    Returns
+    -------
+    RuleReport
+        Results in rule-file order (layers) and :data:`RULE_REASONS` order (rules).
+
+    Notes
+    -----
+    Local width of a polygon: min over (edge e, vertex v not on e) with the foot of the perpendicular from v
+    inside e and the segment v-foot inside the polygon of |e x (v - a)| / |e|.  Interior angle at vertex i:
+    pi - s * atan2(e_{i-1} x e_i, e_{i-1} . e_i) with s the orientation sign.  Spacing: see
+    :func:`polygon_distance_kernel`; the STRtree path uses GEOS distance, which equals it bit for bit on integer
+    coordinates (same operation order).  The lattice path drops a pair only when an exact lower bound on its
+    distance (bounding-box gap from the site offset and the largest box, then the bounding-box distance, and for
+    diagonal offsets the projection gap along the offset) is at least the limit, with a relative slack of 1e-9.
+    """
+    if method not in ("auto", "tree", "lattice"):
+        raise RulesError(f"method = {method!r} is invalid; allowed: auto, tree, lattice")
+    timings: list[tuple[str, float]] = []
+    t0 = time.perf_counter()
+    sha = None
+    if isinstance(mask, FlatPolygons):
+        flat, name = mask, "<memory>"
+    else:
+        name = os.fspath(mask)
+        kw = {} if max_elements is None else {"max_elements": max_elements}
+        from concurrent.futures import ThreadPoolExecutor
+
+        # the file hash runs beside the read (hashlib releases the GIL); "sha256" is the wait after the read
+        with ThreadPoolExecutor(max_workers=1) as pool:
+            fut = pool.submit(file_sha256, name)
+            flat = read_mask(name, layers=rules.layer_pairs(), cell=cell, **kw)
+            timings.append(("read", time.perf_counter() - t0))
+            t1 = time.perf_counter()
+            try:
+                sha = fut.result()
+            except OSError as exc:
+                raise MaskReadError(f"{name}: cannot read file for its checksum ({exc.strerror or exc})") from exc
+        timings.append(("sha256 (after read)", time.perf_counter() - t1))
+    db_nm = flat.db_unit_m * 1e9
+    db_um = flat.db_unit_m * 1e6
+    results: list[RuleResult] = []
+    for lr in rules.layers:
+        results.extend(_check_layer(flat, lr, rules, db_nm, db_um, method, timings))
+    return RuleReport(name, sha, flat.db_unit_m, flat.count, rules.name, tuple(results), tuple(timings))
+
+
+def _check_layer(flat, lr: LayerRules, rules: RuleSet, db_nm, db_um, method, timings):
+    tag = f"{lr.layer}/{lr.datatype}"
+    t0 = time.perf_counter()
+    sel = (flat.layer == lr.layer) & (flat.datatype == lr.datatype)
+    idx = np.flatnonzero(sel)
+    P = idx.size
+    counts = np.diff(flat.start)[idx]
+    groups = np.unique(counts) if P else np.zeros(0, np.int64)
+    small = idx[counts < 3]
+    want_angle = lr.min_angle_deg is not None
+    parts = [(int(n), idx[counts == n] if groups.size > 1 else idx) for n in groups if n >= 3]
+    M = sum(gi.size for _, gi in parts)
+    F = {"area2": np.zeros(M, np.int64), "convex": np.zeros(M, bool),
+         "angle": np.full(M, np.inf) if want_angle else None,
+         "kmin": np.zeros(M, np.int64 if groups.size and groups.max() >= 128 else np.int8),
+         "width": np.zeros(M), "bbox": np.zeros((M, 4), np.int64),
+         "idx": parts[0][1] if len(parts) == 1 else (np.concatenate([gi for _, gi in parts]) if parts else
+                                                      np.zeros(0, np.int64))}
+    tasks = []
+    pos = 0
+    for n, gi in parts:
+        whole = gi.size == flat.count and flat.xy_db.shape[0] == flat.count * n
+        tasks += [(n, gi, whole, pos, lo) for lo in range(0, gi.size, _GEOM_CHUNK)]
+        pos += gi.size
+
+    def feature_chunk(task):
+        """Features of one chunk, written into its own slice of F (chunks are disjoint: thread-safe)."""
+        n, gi, whole, pos, lo = task
+        sub = gi[lo:lo + _GEOM_CHUNK]
+        X = flat.xy_db.reshape(-1, n, 2)[lo:lo + _GEOM_CHUNK] if whole else \
+            flat.xy_db[flat.start[sub][:, None] + np.arange(n)]
+        f = _group_features(X, want_angle)
+        s = slice(pos + lo, pos + lo + sub.size)
+        for k in ("area2", "convex", "width", "bbox", "kmin"):
+            F[k][s] = f[k]
+        if want_angle:
+            F["angle"][s] = f["angle"]
+        return f["r2max"]
+
+    r2max = max(_map_chunks(feature_chunk, tasks), default=0.0)
+    # polygons needing shapely: not strictly convex, or fewer than 3 vertices
+    need_sh = np.concatenate([F["idx"][~F["convex"]], small])
+    sh = {}
+    for k in need_sh.tolist():
+        sh[k] = _shapely_polygon_analysis(_ring(flat, k), lr.min_width_nm is not None or lr.max_aspect_ratio
+                                          is not None, lr.min_notch_nm is not None)
+    width = F["width"]
+    sh_width = {k: r["width"] for k, r in sh.items() if r["width"] is not None}
+    if sh_width:
+        ks = np.array(sorted(sh_width), np.int64)
+        order = np.argsort(F["idx"], kind="stable")
+        at = np.searchsorted(F["idx"], ks, sorter=order)
+        ok = at < order.size
+        ok[ok] = F["idx"][order[at[ok]]] == ks[ok]
+        rows = order[at[ok]]
+        width[rows] = [sh_width[k][0] for k in ks[ok].tolist()]
+        sh_seg = dict(zip(rows.tolist(), (sh_width[k][1] for k in ks[ok].tolist())))
+    else:
+        sh_seg = {}
+
+    def width_seg(rows):
+        """Width segments (database units) of rows of F: convex ones recomputed, shapely ones from the analysis."""
+        seg = np.zeros((rows.size, 4))
+        ks = F["idx"][rows]
+        cnt = np.diff(flat.start)[ks]
+        for nn in np.unique(cnt):
+            s = np.flatnonzero(cnt == nn)
+            if nn >= 3:
+                for lo in range(0, s.size, _GEOM_CHUNK):
+                    ss = s[lo:lo + _GEOM_CHUNK]
+                    seg[ss] = _width_segments(flat.xy_db[flat.start[ks[ss]][:, None] + np.arange(nn)])
+        for p, r in enumerate(rows.tolist()):
+            if r in sh_seg:
+                seg[p] = sh_seg[r]
+        return seg
+
+    timings.append((f"geometry {tag}", time.perf_counter() - t0))
+
+    out = []
+
+    def emit(rule, limit, vio, checked, method_name="vector", source_key=None):
+        src = lr.source(source_key) if source_key else ""
+        out.append(RuleResult(rule, lr.layer, lr.datatype, float(limit), _UNIT[rule], _KIND[rule],
+                              RULE_REASONS[rule], src, int(checked), method_name, vio))
+
+    def timed(name, fn):
+        t = time.perf_counter()
+        fn()
+        timings.append((f"{name} {tag}", time.perf_counter() - t))
+
+    def bbox_seg(rows):
+        b = F["bbox"][rows].astype(np.float64)
+        c = np.stack([(b[:, 0] + b[:, 2]) / 2, (b[:, 1] + b[:, 3]) / 2], 1)
+        return np.concatenate([c, c], 1)
+
+    def r_width():
+        w = lr.min_width_nm / db_nm
+        bad = np.flatnonzero(width < w)
+        emit("width", lr.min_width_nm, _violations("min", F["idx"][bad], None, width[bad] * db_nm, width_seg(bad), db_um),
+             P, source_key="min_width_nm")
+
+    def r_area():
+        area_nm2 = np.abs(F["area2"]) / 2.0 * db_nm * db_nm
+        bad = np.flatnonzero(area_nm2 < lr.min_area_nm2)
+        emit("area", lr.min_area_nm2, _violations("min", F["idx"][bad], None, area_nm2[bad], bbox_seg(bad), db_um),
+             P, source_key="min_area_nm2")
+
+    def r_vertices():
+        c = np.diff(flat.start)[F["idx"]]
+        bad = np.flatnonzero(c > lr.max_vertices)
+        emit("vertices", lr.max_vertices, _violations("max", F["idx"][bad], None, c[bad], bbox_seg(bad), db_um),
+             P, source_key="max_vertices")
+
+    def r_grid():
+        g = lr.grid_nm / db_nm
+        gi = int(round(g))
+        if abs(g - gi) > 1e-9 or gi < 1:
+            raise RulesError(f"layer {tag}: grid_nm = {lr.grid_nm} is not a whole multiple of the mask's database "
+                             f"unit ({db_nm:g} nm); allowed: k * {db_nm:g} nm")
+        if gi == 1 or P == 0:
+            emit("grid", lr.grid_nm, Violations.empty(), P, source_key="grid_nm")
+            return
+        vsel = np.repeat(sel, np.diff(flat.start))
+        xy = flat.xy_db[vsel]
+        off = np.abs(xy - np.rint(xy / gi).astype(np.int64) * gi).max(1)
+        pid = np.repeat(idx, counts)
+        badv = np.flatnonzero(off > 0)
+        if badv.size == 0:
+            emit("grid", lr.grid_nm, Violations.empty(), P, source_key="grid_nm")
+            return
+        # worst vertex per polygon
+        order = np.lexsort((-off[badv], pid[badv]))
+        bv = badv[order]
+        first = np.concatenate([[True], pid[bv][1:] != pid[bv][:-1]])
+        bv = bv[first]
+        pts = xy[bv].astype(np.float64)
+        emit("grid", lr.grid_nm, _violations("max", pid[bv], None, off[bv] * db_nm, np.concatenate([pts, pts], 1),
+                                             db_um), P, source_key="grid_nm")
+
+    def r_angle():
+        bad = np.flatnonzero(F["angle"] < lr.min_angle_deg)
+        p = flat.xy_db[flat.start[F["idx"][bad]] + F["kmin"][bad]].astype(np.float64)
+        emit("angle", lr.min_angle_deg, _violations("min", F["idx"][bad], None, F["angle"][bad],
+                                                    np.concatenate([p, p], 1), db_um), P, source_key="min_angle_deg")
+
+    def r_validity():
+        bad = [(k, r["where"]) for k, r in sorted(sh.items()) if not r["valid"]]
+        ks = np.array([k for k, _ in bad], np.int64)
+        pts = np.array([w for _, w in bad], np.float64).reshape(-1, 2)
+        emit("validity", 0, _violations("flag", ks, None, np.zeros(ks.size), np.concatenate([pts, pts], 1), db_um),
+             P)
+
+    def r_notch():
+        rows = [(k, r["notch"]) for k, r in sorted(sh.items()) if r["notch"] is not None
+                and r["notch"][0] * db_nm < lr.min_notch_nm]
+        ks = np.array([k for k, _ in rows], np.int64)
+        emit("notch", lr.min_notch_nm, _violations("min", ks, None, np.array([r[0] * db_nm for _, r in rows]),
+                                                   np.array([r[1] for _, r in rows]).reshape(-1, 4), db_um),
+             len(sh), source_key="min_notch_nm")
+
+    def r_holes():
+        rows = [(k, a * db_nm * db_nm, c) for k, r in sorted(sh.items()) for a, c in r["holes"]
+                if a * db_nm * db_nm < lr.min_hole_area_nm2]
+        ks = np.array([k for k, _, _ in rows], np.int64)
+        pts = np.array([c for _, _, c in rows], np.float64).reshape(-1, 2)
+        emit("hole_area", lr.min_hole_area_nm2, _violations("min", ks, None, np.array([a for _, a, _ in rows]),
+                                                            np.concatenate([pts, pts], 1), db_um),
+             len(sh), source_key="min_hole_area_nm2")
+
+    def r_aspect():
+        ar = lr.film_height_nm / (width * db_nm)
+        bad = np.flatnonzero(ar > lr.max_aspect_ratio)
+        emit("aspect_ratio", lr.max_aspect_ratio, _violations("max", F["idx"][bad], None, ar[bad], width_seg(bad), db_um),
+             P, source_key="max_aspect_ratio")
+
+    def r_straddle():
+        if rules.write_field_um is None:
+            raise RulesError(f"layer {tag}: no_field_straddle = true needs a [write_field] table with size_um")
+        size = rules.write_field_um * 1000.0 / db_nm
+        v = np.zeros(F["idx"].size)
+        for c0 in range(0, v.size, 1 << 16):
+            b = F["bbox"][c0:c0 + (1 << 16)].astype(np.float64)
+            vals = []
+            for ax in (0, 1):
+                org = rules.write_field_centre_um[ax] * 1000.0 / db_nm - size / 2
+                lo, hi = b[:, ax] - org, b[:, ax + 2] - org
+                k = np.floor(lo / size)
+                bnd = (k + 1) * size  # first boundary above the lower edge
+                cross = hi > bnd
+                vals.append(np.where(cross, np.minimum(bnd - lo, hi - bnd), 0.0))
+            v[c0:c0 + b.shape[0]] = np.maximum(vals[0], vals[1])
+        bad = np.flatnonzero(v > 0)
+        emit("field_straddle", rules.write_field_um * 1000.0,
+             _violations("max", F["idx"][bad], None, v[bad] * db_nm, bbox_seg(bad), db_um), P)
+
+    def r_frame():
+        import shapely
+
+        region = _frame_region(flat, lr.inside_frame)
+        if region is None:
+            bad = np.arange(F["idx"].size)
+            emit("frame_enclosure", 0, _violations("flag", F["idx"][bad], None, np.zeros(bad.size), bbox_seg(bad),
+                                                   db_um), P)
+            return
+        b = F["bbox"]
+        rb = np.asarray(region.bounds)
+        is_rect = region.geom_type == "Polygon" and abs(region.area - (rb[2] - rb[0]) * (rb[3] - rb[1])) == 0
+        if is_rect:
+            inside = (b[:, 0] >= rb[0]) & (b[:, 1] >= rb[1]) & (b[:, 2] <= rb[2]) & (b[:, 3] <= rb[3])
+        else:
+            shapely.prepare(region)
+            vsel = np.repeat(sel, np.diff(flat.start))
+            pin = shapely.contains_xy(region, flat.xy_db[vsel, 0].astype(np.float64),
+                                      flat.xy_db[vsel, 1].astype(np.float64))
+            pin |= shapely.intersects_xy(region.boundary, flat.xy_db[vsel, 0].astype(np.float64),
+                                         flat.xy_db[vsel, 1].astype(np.float64))
+            allin = np.logical_and.reduceat(pin, np.concatenate([[0], np.cumsum(counts)[:-1]])) if P else pin
+            allin_by_idx = dict(zip(idx.tolist(), allin.tolist()))
+            inside = np.array([allin_by_idx[k] for k in F["idx"].tolist()], bool) if F["idx"].size else \
+                np.zeros(0, bool)
+            convex_region = abs(region.convex_hull.area - region.area) == 0
+            if not convex_region and inside.any():
+                cand = np.flatnonzero(inside)
+                inside[cand] = shapely.covers(region, _shapely_polygons(flat, F["idx"][cand]))
+        bad = np.flatnonzero(~inside)
+        emit("frame_enclosure", 0, _violations("flag", F["idx"][bad], None, np.zeros(bad.size), bbox_seg(bad),
+                                               db_um), P)
+
+    def r_spacing():
+        s_nm = lr.min_spacing_nm if lr.min_spacing_nm is not None else 0.0
+        s_db = s_nm / db_nm
+        got = None
+        name = "strtree"
+        if method != "tree" and small.size == 0 and groups.size == 1 and P >= 2 and F["convex"].all():
+            n = int(groups[0])
+            if np.all(F["idx"][1:] > F["idx"][:-1]):
+                got = _pairs_lattice(flat, F["idx"], n, F["bbox"], s_db, math.sqrt(r2max), threads=_threads())
+            else:
+                order = np.argsort(F["idx"], kind="stable")
+                got = _pairs_lattice(flat, F["idx"][order], n, F["bbox"][order], s_db, math.sqrt(r2max),
+                                     threads=_threads())
+            if got is not None:
+                name = f"lattice ({got[4]} neighbour offsets)"
+                got = got[:4]
+        if got is None:
+            valid_idx = idx[counts >= 3]
+            got = _pairs_tree(flat, valid_idx, s_db) if valid_idx.size >= 2 else (
+                np.zeros(0, np.int64), np.zeros(0, np.int64), np.zeros(0), np.zeros((0, 4)))
+        a, b, d, c = got
+        del got
+
+        def part(m):
+            return (a, b, d, c) if m.all() else (a[m], b[m], d[m], c[m])
+
+        if lr.min_spacing_nm is not None:
+            pa, pb, pd, pc = part(d > 0)
+            emit("spacing", lr.min_spacing_nm, _violations("min", pa, pb, pd * db_nm, pc, db_um), P, name,
+                 "min_spacing_nm")
+            del pa, pb, pd, pc
+        if lr.forbid_overlap:
+            pa, pb, pd, pc = part(d == 0)
+            emit("overlap", 0, _violations("flag", pa, pb, pd, pc, db_um), P, name)
+
+    plan = [
+        ("width", lr.min_width_nm is not None, r_width),
+        ("spacing", lr.min_spacing_nm is not None or lr.forbid_overlap, r_spacing),
+        ("area", lr.min_area_nm2 is not None, r_area),
+        ("notch", lr.min_notch_nm is not None, r_notch),
+        ("hole_area", lr.min_hole_area_nm2 is not None, r_holes),
+        ("vertices", lr.max_vertices is not None, r_vertices),
+        ("grid", lr.grid_nm is not None, r_grid),
+        ("angle", lr.min_angle_deg is not None, r_angle),
+        ("validity", lr.check_validity, r_validity),
+        ("aspect_ratio", lr.max_aspect_ratio is not None, r_aspect),
+        ("field_straddle", lr.no_field_straddle, r_straddle),
+        ("frame_enclosure", lr.inside_frame is not None, r_frame),
+    ]
+    for name, on, fn in plan:
+        if on:
+            timed(name, fn)
+    rank = {r: i for i, r in enumerate(_RULE_ORDER)}
+    out.sort(key=lambda r: rank[r.rule])
+    return out
+
+
+# ----------------------------------------------------------------------------------------------------------------
+# Marker GDSII
+# ----------------------------------------------------------------------------------------------------------------
+
+def write_marker_gds(report: RuleReport, flat: FlatPolygons, path, *, marker_layer: int = 1000,
+                     max_markers: int = 1_000_000, marker_half_width_nm: float = 5.0) -> dict:
+    """Write a GDSII file with one marker polygon per violation plus the polygons involved.
+
+    Markers go on ``marker_layer`` with datatype = 1 + the rule's index in :data:`RULE_REASONS` (so a viewer can
+    toggle rules separately); involved polygons keep their own layer/datatype.  Segment rules get a thin rectangle
+    along the measured segment, point rules a small square, polygon rules a copy of the polygon.  At most
+    ``max_markers`` markers per rule (worst first).  Written atomically; returns counts.
+    """
+    from metalay.io.writer import GdsStream
+
+    db_nm = flat.db_unit_m * 1e9
+    db_um = flat.db_unit_m * 1e6
+    hw = max(1.0, marker_half_width_nm / db_nm)
+    involved = []
+    per_n: dict[int, list] = {}
+    n_markers = 0
+    rank = {r: i for i, r in enumerate(_RULE_ORDER)}
+    for res in report.results:
+        v = res.violations
+        m = min(v.count, max_markers)
+        if m == 0:
+            continue
+        dt = 1 + rank[res.rule]
+        involved.append(v.polygon[:m])
+        involved.append(v.other[:m][v.other[:m] >= 0])
+        style = _MARKER[res.rule]
+        if style == "polygon":
+            sub = flat.select(np.isin(np.arange(flat.count), v.polygon[:m]))
+            for n in np.unique(np.diff(sub.start)):
+                k = np.flatnonzero(np.diff(sub.start) == n)
+                per_n.setdefault(int(n), []).append((marker_layer, dt,
+                                                     sub.xy_db[sub.start[k][:, None] + np.arange(n)]))
+        else:
+            seg = v.segment_um[:m] / db_um
+            p0, p1 = seg[:, :2], seg[:, 2:]
+            dvec = p1 - p0
+            ln = np.hypot(dvec[:, 0], dvec[:, 1])
+            u = np.where(ln[:, None] > 0, dvec / np.maximum(ln, 1e-300)[:, None], [1.0, 0.0])
+            nrm = np.stack([-u[:, 1], u[:, 0]], 1)
+            if style == "point":
+                p0, p1 = p0 - u * hw, p1 + u * hw
+            else:
+                p0, p1 = p0 - u * (ln[:, None] == 0) * hw, p1 + u * (ln[:, None] == 0) * hw
+            quad = np.stack([p0 - nrm * hw, p1 - nrm * hw, p1 + nrm * hw, p0 + nrm * hw], 1)
+            per_n.setdefault(4, []).append((marker_layer, dt, np.rint(quad).astype(np.int64)))
+        n_markers += m
+    inv = np.unique(np.concatenate(involved)) if involved else np.zeros(0, np.int64)
+    ctx = flat.select(np.isin(np.arange(flat.count), inv))
+    with GdsStream(path, "MARKERS", db_unit_nm=db_nm) as gs:
+        cnt = np.diff(ctx.start)
+        for n in np.unique(cnt):
+            k = np.flatnonzero(cnt == n)
+            X = ctx.xy_db[ctx.start[k][:, None] + np.arange(n)]
+            key = ctx.layer[k].astype(np.int64) * 65536 + ctx.datatype[k]
+            for kk in np.unique(key):
+                s = key == kk
+                gs.boundaries(int(kk // 65536), int(kk % 65536), X[s])
+        for n in sorted(per_n):
+            for layer, dt, X in per_n[n]:
+                gs.boundaries(layer, dt, X)
+    return {"markers": int(n_markers), "context_polygons": int(inv.size), "marker_layer": marker_layer}
+
+
+# ----------------------------------------------------------------------------------------------------------------
+# compile integration
+# ----------------------------------------------------------------------------------------------------------------
+
+def compile_check(path, library, design, *, max_listed: int = 20) -> dict:
+    """Run the library's default rules on a mask ``compile`` just wrote; return a JSON-ready dict.
+
+    Film height = thickness of the library's first patterned layer; frame enclosure on the design's frame layer
+    when the mask has one.
+    """
+    film = None
+    for layer in getattr(library, "layers", ()):
+        if layer.get("patterned"):
+            film = float(layer.get("thickness_nm"))
+            break
+    try:
+        struct_layer = design.mask.layer("structures")
+    except (AttributeError, KeyError):
+        struct_layer = (1, 0)
+    rules = rules_from_library(dict(library.rules), layer=struct_layer, film_height_nm=film)
+    report = check_mask(path, rules)
+    d = report.to_dict(max_listed=max_listed)
+    d["status"] = "clean" if report.clean else "violations"
+    d["violations"] = report.total_violations
+    d["timings_s"] = {k: round(v, 3) for k, v in report.timings_s}
+    d["summary"] = report.summary_lines()
+    return d

@@ -1,0 +1,124 @@
+"""``metalay cells``: build cell libraries with the RCWA solver, show them, import responses from elsewhere.
+
+Registered by :mod:`metalay.cli` through ``add_parser(subparsers)`` and ``run(args) -> int``.
+"""
+
+from __future__ import annotations
+
+import sys
+from pathlib import Path
+
+__all__ = ["add_parser", "run"]
+
+
+def add_parser(subparsers) -> None:
+    """Register ``cells build|show|import|complement``."""
+    p = subparsers.add_parser("cells", help="unit-cell libraries: build with the RCWA solver, show, import")
+    sub = p.add_subparsers(dest="cells_command", required=True)
+
+    b = sub.add_parser("build", help="sweep a cell kind with the RCWA solver and write a library")
+    b.add_argument("spec", type=Path, help="build spec (.toml), e.g. libraries/specs/tio2-nanofin-532.toml")
+    b.add_argument("-o", "--output", type=Path,
+                   help="output folder (default: the folder above the spec's 'specs' folder, else the spec's folder)")
+    b.add_argument("--quiet", action="store_true", help="no progress bar and no summary")
+    b.set_defaults(func=run)
+
+    s = sub.add_parser("show", help="print a library's responses and plot them (PNG)")
+    s.add_argument("library", help="bundled library name or path to <name>.library.json")
+    s.add_argument("--png", type=Path, help="PNG path (default out/cells/<name>.png)")
+    s.add_argument("--no-plot", action="store_true", help="print only")
+    s.set_defaults(func=run)
+
+    i = sub.add_parser("import", help="turn responses simulated elsewhere (CSV) into a library")
+    i.add_argument("table", type=Path, help="CSV: cell_id,wavelength_nm,t_long_re,t_long_im,t_short_re,t_short_im,"
+                   "power_long,power_short")
+    i.add_argument("--meta", type=Path, required=True, help="TOML with [library], [stack], [rules], [[cells]]")
+    i.add_argument("-o", "--output", type=Path, default=Path("."), help="output folder (default: current folder)")
+    i.set_defaults(func=run)
+
+    c = sub.add_parser("complement", help="estimate a slot (aperture) library from an antenna library by "
+                       "Babinet's principle (labelled as an estimate; prefer a solver-built slot library)")
+    c.add_argument("library", help="antenna library (bundled name or path to <name>.library.json)")
+    c.add_argument("--name", help="name of the new library (default: <antenna name>-babinet-slots)")
+    c.add_argument("-o", "--output", type=Path, default=Path("out") / "cells", help="output folder (default out/cells)")
+    c.set_defaults(func=run)
+
+
+def _default_out(spec: Path) -> Path:
+    parent = spec.resolve().parent
+    return parent.parent if parent.name == "specs" else parent
+
+
+def run(args) -> int:
+    """Run one ``cells`` subcommand; returns the exit code (MetalayError propagates to metalay.cli)."""
+    from metalay.cells.library import save_library
+
+    cmd = args.cells_command
+    if cmd == "build":
+        from metalay.cells.cellbuild import build_library, load_build_spec
+        from metalay.util.progress import progress
+
+        spec = load_build_spec(args.spec)
+        bars = []
+
+        def factory(total):
+            bar = progress(total=total, desc=f"sweep {spec.name}", enabled=False if args.quiet else None,
+                           unit="cell")
+            bars.append(bar)
+            return bar.update
+
+        lib, sw = build_library(spec, progress=factory)
+        for bar in bars:
+            bar.close()
+        written = save_library(lib, args.output or _default_out(args.spec))
+        if not args.quiet:
+            print(lib.provenance["notes"])
+            for c in lib.provenance["solver"]["convergence"]:
+                print(f"convergence: harmonics ({c['harmonics_x']}, {c['harmonics_y']}) changes |t| by at most "
+                      f"{c['max_abs_change_abs_t']:.2e} and the phase by {c['max_change_phase_deg']:.2f} deg")
+            for path in written:
+                print(f"wrote {path}")
+        return 0
+    if cmd == "show":
+        from metalay.cells.cellbuild import library_table, plot_library
+        from metalay.cells.library import load_library
+
+        lib = load_library(args.library)
+        print(f"{lib.name}: {lib.mode}, {lib.phase_mechanism} phase, design {lib.design_wavelength_nm:g} nm, "
+              f"period {lib.period_nm:g} nm, {len(lib.cells)} cell(s)")
+        print(f"responses: {lib.provenance.get('responses_source')}")
+        for cell in lib.cells:
+            dims = ", ".join(f"{k} = {v:g}" for k, v in cell.dims_nm)
+            print(f"cell {cell.id}: {cell.kind}, {dims}")
+        if not lib.has_responses:
+            print("no responses (geometry only)")
+            return 0
+        word = "r" if lib.mode == "reflection" else "t"
+        print(f"{'cell':>16} {'wl_nm':>8} {'|'+word+'_long|':>9} {'|'+word+'_short|':>10} {'dphase_deg':>10} "
+              f"{'conversion':>10} {'leakage':>8}")
+        for row in library_table(lib):
+            print(f"{row['cell_id']:>16} {row['wavelength_nm']:8.2f} {row['abs_t_long']:9.4f} "
+                  f"{row['abs_t_short']:10.4f} {row['phase_difference_deg']:10.2f} {row['conversion']:10.4f} "
+                  f"{row['leakage']:8.4f}")
+        if not args.no_plot:
+            png = args.png or Path("out") / "cells" / f"{lib.name}.png"
+            print(f"wrote {plot_library(lib, png)}")
+        return 0
+    if cmd == "import":
+        from metalay.cells.cellbuild import import_responses
+
+        lib = import_responses(args.table, args.meta)
+        for path in save_library(lib, args.output):
+            print(f"wrote {path}")
+        return 0
+    if cmd == "complement":
+        from metalay.cells.library import load_library
+        from metalay.mask.process import babinet_slot_library
+
+        lib = babinet_slot_library(load_library(args.library), name=args.name)
+        print(f"{lib.name}: Babinet-principle estimate, not a solver result ({lib.provenance.get('responses_source')})")
+        for path in save_library(lib, args.output):
+            print(f"wrote {path}")
+        return 0
+    print(f"metalay cells: unknown subcommand {cmd!r}", file=sys.stderr)
+    return 2

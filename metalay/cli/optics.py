@@ -1,0 +1,105 @@
+"""``metalay optics``: optical check of a written mask (registered by :mod:`metalay.cli`)."""
+
+from __future__ import annotations
+
+import argparse
+from pathlib import Path
+
+from metalay.errors import MetalayError
+
+__all__ = ["add_parser", "run"]
+
+
+def add_parser(subparsers) -> argparse.ArgumentParser:
+    """Register the ``optics`` subcommand."""
+    p = subparsers.add_parser(
+        "optics", help="check the optics of a written mask (far field, OAM, efficiency, crosstalk, report)",
+        description="Read a GDSII/OASIS mask, identify the element at every lattice site, build the near field "
+                    "from the cell library's responses and compute the far field, power budget, OAM spectrum, "
+                    "charge read from a simulated interferogram, channel crosstalk and lens metrics.")
+    p.add_argument("mask", type=Path, help="mask file (.gds or .oas)")
+    p.add_argument("--library", help="cell library: bundled name or path to *.library.json "
+                                     "(default: the design's library)")
+    p.add_argument("--design", type=Path, help="design file (.toml) the mask was compiled from: sets the target, "
+                                               "lattice, aperture and input spin")
+    p.add_argument("-o", "--output", type=Path, help="output folder (default out/<mask stem>-optics)")
+    p.add_argument("--wavelength-nm", type=float, help="check wavelength (default: design, else library)")
+    p.add_argument("--polarization", default="design",
+                   help="input: design, spin+1, spin-1, linear-x, linear-y or linear:<angle_deg> (default design)")
+    p.add_argument("--bias-nm", type=float, default=None,
+                   help="process bias per edge written into the mask (default: the design's, else 0)")
+    p.add_argument("--size-tol-nm", type=float, default=3.0, help="size tolerance for matching library cells")
+    p.add_argument("--unmatched", choices=("error", "nearest", "drop"), default="error",
+                   help="elements matching no cell: stop, use the nearest cell, or leave the site empty")
+    p.add_argument("--pad-factor", type=float, default=2.0, help="far-field zero padding (>= 1, default 2)")
+    p.add_argument("--max-side", type=int, default=4096,
+                   help="largest near-field grid side; larger masks are block-averaged (default 4096)")
+    p.add_argument("--linear-scale", action="store_true", help="far-field image on a linear scale (default log)")
+    p.add_argument("--no-plots", action="store_true", help="numbers only (no PNG figures, no HTML report)")
+    p.add_argument("--quiet", action="store_true", help="print nothing but errors")
+    p.set_defaults(func=run)
+    return p
+
+
+def _check_range(name, value, lo, hi=None):
+    if value is None:
+        return
+    if not (value >= lo) or (hi is not None and value > hi):
+        rng = f">= {lo}" if hi is None else f"{lo}..{hi}"
+        raise MetalayError(f"command line: --{name} = {value!r}; allowed {rng}")
+
+
+def run(args) -> int:
+    """Run the optical check; print a summary (the only printing happens here)."""
+    from metalay.checks.optics import SAFETY_NOTE, check_optics
+
+    _check_range("pad-factor", args.pad_factor, 1.0, 8.0)
+    _check_range("max-side", args.max_side, 64, 16384)
+    _check_range("size-tol-nm", args.size_tol_nm, 0.0)
+    _check_range("wavelength-nm", args.wavelength_nm, 100.0, 20000.0)
+    if not args.mask.is_file():
+        raise MetalayError(f"{args.mask}: mask file not found")
+    design = None
+    if args.design is not None:
+        from metalay.design.spec import load_design
+
+        design = load_design(args.design)
+    library = args.library or (design.library if design is not None else None)
+    if library is None:
+        raise MetalayError("command line: give --library (or --design, whose library is then used)")
+    out = args.output or Path("out") / f"{args.mask.stem}-optics"
+    res = check_optics(args.mask, library, design=design, wavelength_nm=args.wavelength_nm,
+                       polarization=args.polarization, out_dir=out, bias_nm=args.bias_nm,
+                       size_tol_nm=args.size_tol_nm, unmatched=args.unmatched, pad_factor=args.pad_factor,
+                       max_side=args.max_side, make_plots=not args.no_plots, log_far_field=not args.linear_scale)
+    if not args.quiet:
+        f = res.figures
+        b = f["power_budget"]
+        print(f"sites decoded: {f['decode']['sites']:,} (unmatched {f['decode']['unmatched']}, off-lattice "
+              f"{f['decode']['off_lattice']}, duplicates {f['decode']['duplicates']})")
+        print(f"power: converted {b['converted']:.4f}, leakage {b['leakage']:.4f}, not in zeroth order "
+              f"{b['not_in_zeroth_order']:.4f} (fractions of incident)")
+        if "designed_spot_efficiency" in f:
+            pos = f["designed_spot_position"]
+            print(f"designed spot: {f['designed_spot_efficiency']:.4f} of incident at {pos['deflection_deg']:.3f} deg")
+        if "brightest_direction" in f:
+            print(f"brightest far-field direction: {f['brightest_direction']['angle_deg']:.3f} deg")
+        if "oam" in f:
+            print(f"OAM purity of l = {f['oam']['design_charge']}: {f['oam']['purity']:.5f}")
+        if "fringe_reading" in f:
+            r = f["fringe_reading"]
+            print(f"charge read from the interferogram: {r['charge']} (design {r['design_charge']})")
+        if "crosstalk" in f:
+            print(f"worst channel isolation: {f['crosstalk']['worst_isolation_db']:.2f} dB")
+        if "lens" in f:
+            lm = f["lens"]
+            strehl = "n/a" if lm["strehl"] is None else f"{lm['strehl']:.4f}"
+            print(f"focal spot FWHM {lm['fwhm_x_um']:.3f} x {lm['fwhm_y_um']:.3f} um (Airy {lm['fwhm_airy_um']:.3f}), "
+                  f"Strehl {strehl}, focusing efficiency {lm['focusing_efficiency']:.4f}")
+        for note in res.notes:
+            print(f"note: {note}")
+        t = res.timings
+        print("time: " + ", ".join(f"{k[:-2]} {v:.2f} s" for k, v in t.items()))
+        print(f"output folder: {out}")
+        print(SAFETY_NOTE)
+    return 0

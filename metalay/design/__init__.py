@@ -1,0 +1,3 @@
+"""metalay.design."""
+
+__all__: list[str] = []

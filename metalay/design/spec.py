@@ -1,0 +1,427 @@
+"""Design files (TOML): parse once, validate at the edge, return frozen dataclasses.
+
+Every error is one line naming the file, the key (dotted path), the value and the allowed range or options.
+The full key reference is in the README ("Design file reference").
+"""
+
+from __future__ import annotations
+
+import math
+import tomllib
+from dataclasses import dataclass, field
+from pathlib import Path
+
+from metalay.errors import DesignError
+from metalay.design.lattice import Aperture, Lattice
+from metalay.design.phase import (PHASE_TERM_KINDS, Axicon, Channel, Lens, Multiplex, QPlate, Tilt, Vortex, load_phase_map)
+
+__all__ = ["Design", "MaskSettings", "WriteFieldSettings", "MarkSettings", "CheckSettings", "load_design",
+           "parse_design", "DEFAULT_LAYERS"]
+
+#: Default (layer, datatype) per purpose.
+DEFAULT_LAYERS = {"structures": (1, 0), "frame": (2, 0), "label": (3, 0), "marks": (4, 0)}
+_HIERARCHY = ("flat", "levels")
+_FORMATS = ("gds", "oas")
+_SHAPES = ("circle", "square", "rectangle", "annulus")
+_LATTICES = ("square", "hexagonal")
+_MAX_SITES = 2_000_000_000
+
+
+@dataclass(frozen=True)
+class WriteFieldSettings:
+    """E-beam write fields: size, grid origin, what to do with elements that straddle a boundary."""
+
+    size_um: tuple[float, float]
+    origin_um: tuple[float, float] = (0.0, 0.0)
+    straddle: str = "shift"
+    max_shift_nm: float = 50.0
+    cell_per_field: bool = False
+
+
+@dataclass(frozen=True)
+class MarkSettings:
+    """Alignment marks outside the frame."""
+
+    kind: str = "cross"
+    size_um: float = 100.0
+    line_width_um: float = 10.0
+    gap_um: float = 20.0
+    positions_um: tuple | None = None
+
+
+@dataclass(frozen=True)
+class MaskSettings:
+    """How the mask is written (database unit, layers, hierarchy, rotation levels, formats, frame, label)."""
+
+    db_unit_nm: float = 1.0
+    layers: tuple[tuple[str, tuple[int, int]], ...] = tuple(DEFAULT_LAYERS.items())
+    hierarchy: str = "flat"
+    rotation_levels: int = 0
+    formats: tuple[str, ...] = ("gds", "oas")
+    cell: str | None = None
+    frame_margin_um: float = 10.0
+    frame_width_um: float = 5.0
+    label: bool = True
+    label_height_um: float = 20.0
+    bias_nm: float = 0.0
+    bias_corners: str = "sharp"
+    tone: str = "structures"
+    complement_region: str = "aperture"
+    complement_band_rows: int = 64
+    write_field: WriteFieldSettings | None = None
+    marks: MarkSettings | None = None
+    dose_datatypes: tuple[tuple[str, int], ...] = ()
+
+    def layer(self, purpose: str) -> tuple[int, int]:
+        return dict(self.layers)[purpose]
+
+
+@dataclass(frozen=True)
+class CheckSettings:
+    """Which checks ``compile`` runs on the written mask."""
+
+    rules: bool = True
+    fail_on_violations: bool = False
+    optics: bool = True
+
+
+@dataclass(frozen=True)
+class Design:
+    """A validated design."""
+
+    name: str
+    wavelength_nm: float
+    sigma: int
+    terms: tuple
+    aperture: Aperture
+    lattice: Lattice
+    library: str
+    mask: MaskSettings
+    checks: CheckSettings
+    source_path: str = "<memory>"
+    raw: dict = field(default_factory=dict, compare=False, repr=False)
+
+
+class _Reader:
+    """Typed access to a TOML table with error messages that name file and dotted key."""
+
+    def __init__(self, data: dict, where: str, prefix: str = ""):
+        self.data = data
+        self.where = where
+        self.prefix = prefix
+        self.used: set[str] = set()
+
+    def key(self, k: str) -> str:
+        return f"{self.prefix}{k}"
+
+    def fail(self, k: str, value, allowed: str):
+        raise DesignError(f"{self.where}: key '{self.key(k)}' = {value!r}: {allowed}")
+
+    def has(self, k: str) -> bool:
+        return k in self.data
+
+    def raw(self, k: str, default=...):
+        self.used.add(k)
+        if k not in self.data:
+            if default is ...:
+                raise DesignError(f"{self.where}: missing key '{self.key(k)}'")
+            return default
+        return self.data[k]
+
+    def number(self, k: str, default=..., *, lo=None, hi=None, lo_open=False, integer=False):
+        v = self.raw(k, default)
+        if v is None:
+            return v
+        rng = _range_text(lo, hi, lo_open)
+        if isinstance(v, bool) or not isinstance(v, (int, float)) or (integer and not isinstance(v, int)):
+            self.fail(k, v, f"expected {'an integer' if integer else 'a number'} {rng}".rstrip())
+        if isinstance(v, float) and not math.isfinite(v):
+            self.fail(k, v, f"must be finite {rng}".rstrip())
+        if lo is not None and (v < lo or (lo_open and v == lo)) or hi is not None and v > hi:
+            self.fail(k, v, f"out of range, allowed {rng}")
+        return v
+
+    def string(self, k: str, default=..., *, options=None):
+        v = self.raw(k, default)
+        if v is None:
+            return v
+        if not isinstance(v, str):
+            self.fail(k, v, "expected a string" + (f", one of {list(options)}" if options else ""))
+        if options is not None and v not in options:
+            self.fail(k, v, f"not one of {list(options)}")
+        return v
+
+    def boolean(self, k: str, default=...):
+        v = self.raw(k, default)
+        if not isinstance(v, bool):
+            self.fail(k, v, "expected true or false")
+        return v
+
+    def table(self, k: str, default=...) -> "_Reader":
+        v = self.raw(k, default)
+        if not isinstance(v, dict):
+            self.fail(k, v, "expected a table")
+        return _Reader(v, self.where, f"{self.key(k)}.")
+
+    def check_unknown(self):
+        unknown = sorted(set(self.data) - self.used)
+        if unknown:
+            raise DesignError(f"{self.where}: unknown key '{self.key(unknown[0])}' (allowed here: "
+                              f"{sorted(self.used)})")
+
+
+def _range_text(lo, hi, lo_open) -> str:
+    if lo is None and hi is None:
+        return ""
+    if hi is None:
+        return f"({'>' if lo_open else '>='} {lo})"
+    if lo is None:
+        return f"(<= {hi})"
+    return f"({'>' if lo_open else '>='} {lo} and <= {hi})"
+
+
+def load_design(path: str | Path) -> Design:
+    """Read and validate a design file.
+
+    Raises
+    ------
+    DesignError
+        With a one-line message naming the file, key, value and allowed range.
+    """
+    path = Path(path)
+    where = str(path)
+    try:
+        raw = path.read_bytes()
+    except FileNotFoundError as exc:
+        raise DesignError(f"{where}: design file not found") from exc
+    except OSError as exc:
+        raise DesignError(f"{where}: cannot read design file ({exc.strerror or exc})") from exc
+    try:
+        data = tomllib.loads(raw.decode("utf-8"))
+    except UnicodeDecodeError as exc:
+        raise DesignError(f"{where}: not UTF-8 text") from exc
+    except tomllib.TOMLDecodeError as exc:
+        raise DesignError(f"{where}: not valid TOML ({exc})") from exc
+    return parse_design(data, where=where, base_dir=path.parent)
+
+
+def parse_design(data: dict, *, where: str = "<memory>", base_dir: str | Path = ".") -> Design:
+    """Validate an already-parsed TOML document (see :func:`load_design`)."""
+    base_dir = Path(base_dir)
+    top = _Reader(data, where)
+    d = top.table("design")
+    name = d.string("name")
+    if not name or len(name) > 64 or not all(c.isalnum() or c in "-_." for c in name):
+        d.fail("name", name, "use 1 to 64 characters from letters, digits, '-', '_' and '.'")
+    wavelength_nm = d.number("wavelength_nm", lo=100.0, hi=20000.0)
+    sigma = d.number("input_spin", integer=True)
+    if sigma not in (1, -1):
+        d.fail("input_spin", sigma, "allowed values are 1 (spin +1) and -1 (spin -1)")
+    library = d.string("library")
+    if not library:
+        d.fail("library", library, "give a bundled library name or a path to a *.library.json file")
+    if library.endswith(".json") and not Path(library).is_absolute():
+        library = str((base_dir / library))
+    d.check_unknown()
+
+    terms_raw = top.raw("phase")
+    if not isinstance(terms_raw, list) or not terms_raw:
+        top.fail("phase", terms_raw, "expected a non-empty list of [[phase]] tables")
+    terms = tuple(_parse_term(t, where, k, base_dir, wavelength_nm) for k, t in enumerate(terms_raw))
+
+    a = top.table("aperture")
+    shape = a.string("shape", options=_SHAPES)
+    if shape == "circle":
+        aperture = Aperture(shape, diameter_um=a.number("diameter_um", lo=0, lo_open=True, hi=1e5))
+    elif shape == "annulus":
+        outer = a.number("diameter_um", lo=0, lo_open=True, hi=1e5)
+        inner = a.number("inner_diameter_um", lo=0, lo_open=True, hi=1e5)
+        if inner >= outer:
+            a.fail("inner_diameter_um", inner, f"must be smaller than diameter_um = {outer}")
+        aperture = Aperture(shape, diameter_um=outer, inner_diameter_um=inner)
+    elif shape == "square":
+        aperture = Aperture(shape, width_um=a.number("width_um", lo=0, lo_open=True, hi=1e5))
+    else:
+        aperture = Aperture(shape, width_um=a.number("width_um", lo=0, lo_open=True, hi=1e5),
+                            height_um=a.number("height_um", lo=0, lo_open=True, hi=1e5))
+    a.check_unknown()
+
+    lt = top.table("lattice")
+    lattice = Lattice(lt.string("kind", options=_LATTICES), lt.number("period_nm", lo=10.0, hi=100000.0))
+    lt.check_unknown()
+    min_extent_um = 2 * min(aperture.half_extent_um)
+    if aperture.shape == "annulus":
+        min_extent_um = (aperture.diameter_um - aperture.inner_diameter_um) / 2
+    if min_extent_um < lattice.period_um:
+        raise DesignError(f"{where}: aperture ({min_extent_um:g} um across) is smaller than one unit cell "
+                          f"(lattice.period_nm = {lattice.period_nm:g}); allowed: aperture >= one period")
+    est_sites = _estimated_sites(aperture, lattice)
+    if est_sites > _MAX_SITES:
+        raise DesignError(f"{where}: aperture and lattice give about {est_sites:.3g} sites; allowed up to "
+                          f"{_MAX_SITES:.0e}")
+
+    m = top.table("mask", {})
+    db_unit_nm = m.number("db_unit_nm", 1.0, lo=0.001, hi=100.0)
+    layers = dict(DEFAULT_LAYERS)
+    if m.has("layers"):
+        lr = m.table("layers")
+        for purpose in DEFAULT_LAYERS:
+            if lr.has(purpose):
+                v = lr.raw(purpose)
+                if (not isinstance(v, list) or len(v) != 2 or not all(isinstance(x, int) and not isinstance(x, bool)
+                                                                       and 0 <= x <= 255 for x in v)):
+                    lr.fail(purpose, v, "expected [layer, datatype], integers 0..255")
+                layers[purpose] = (v[0], v[1])
+        lr.check_unknown()
+    hierarchy = m.string("hierarchy", "flat", options=_HIERARCHY)
+    levels = m.number("rotation_levels", 0, lo=0, hi=4096, integer=True)
+    if levels == 1:
+        m.fail("rotation_levels", levels, "allowed 0 (exact rotation per site) or 2..4096")
+    if hierarchy == "levels" and levels == 0:
+        m.fail("hierarchy", hierarchy, "'levels' needs mask.rotation_levels >= 2")
+    formats = m.raw("formats", ["gds", "oas"])
+    if (not isinstance(formats, list) or not formats or any(f not in _FORMATS for f in formats)
+            or len(set(formats)) != len(formats)):
+        m.fail("formats", formats, f"expected a non-empty list of distinct values from {list(_FORMATS)}")
+    write_field = None
+    if m.has("write_field"):
+        wf = m.table("write_field")
+        size = wf.raw("size_um")
+        if isinstance(size, (int, float)) and not isinstance(size, bool):
+            size = [size, size]
+        if (not isinstance(size, list) or len(size) != 2 or not all(
+                isinstance(v, (int, float)) and not isinstance(v, bool) and 0.1 <= v <= 1e5 for v in size)):
+            wf.fail("size_um", wf.data.get("size_um"), "expected a number or [width, height], 0.1..1e5 um")
+        origin = wf.raw("origin_um", [0.0, 0.0])
+        if (not isinstance(origin, list) or len(origin) != 2
+                or not all(isinstance(v, (int, float)) and not isinstance(v, bool) for v in origin)):
+            wf.fail("origin_um", origin, "expected [x, y] in um")
+        write_field = WriteFieldSettings(
+            (float(size[0]), float(size[1])), (float(origin[0]), float(origin[1])),
+            wf.string("straddle", "shift", options=("shift", "drop", "keep")),
+            float(wf.number("max_shift_nm", 50.0, lo=0.0, hi=1e4)),
+            wf.boolean("cell_per_field", False))
+        wf.check_unknown()
+    marks = None
+    if m.has("marks"):
+        mk = m.table("marks")
+        positions = mk.raw("positions_um", None)
+        if positions is not None and (not isinstance(positions, list) or not positions or not all(
+                isinstance(p, list) and len(p) == 2 and all(isinstance(v, (int, float)) and not isinstance(v, bool)
+                                                            for v in p) for p in positions)):
+            mk.fail("positions_um", positions, "expected a list of [x, y] positions in um")
+        size_um = float(mk.number("size_um", 100.0, lo=1.0, hi=1e4))
+        line_um = float(mk.number("line_width_um", 10.0, lo=0.1, hi=1e4))
+        if line_um >= size_um:
+            mk.fail("line_width_um", line_um, f"must be smaller than size_um = {size_um:g}")
+        marks = MarkSettings(mk.string("kind", "cross", options=("cross", "square")), size_um, line_um,
+                             float(mk.number("gap_um", 20.0, lo=0.0, hi=1e5)),
+                             tuple((float(a), float(b)) for a, b in positions) if positions else None)
+        mk.check_unknown()
+    dose = ()
+    if m.has("dose_datatypes"):
+        dd = m.table("dose_datatypes")
+        for key in sorted(dd.data):
+            dd.number(key, integer=True, lo=0, hi=255)
+        dose = tuple(sorted((k, int(v)) for k, v in dd.data.items()))
+    mask = MaskSettings(
+        db_unit_nm=float(db_unit_nm), layers=tuple(layers.items()), hierarchy=hierarchy, rotation_levels=levels,
+        formats=tuple(f for f in _FORMATS if f in formats), cell=m.string("cell", None),
+        frame_margin_um=float(m.number("frame_margin_um", 10.0, lo=0.0, hi=1e4)),
+        frame_width_um=float(m.number("frame_width_um", 5.0, lo=0.0, lo_open=True, hi=1e3)),
+        label=m.boolean("label", True),
+        label_height_um=float(m.number("label_height_um", 20.0, lo=0.5, hi=1e4)),
+        bias_nm=float(m.number("bias_nm", 0.0, lo=-200.0, hi=200.0)),
+        bias_corners=m.string("bias_corners", "sharp", options=("sharp", "chamfer")),
+        tone=m.string("tone", "structures", options=("structures", "complement")),
+        complement_region=m.string("complement_region", "aperture", options=("aperture", "frame")),
+        complement_band_rows=m.number("complement_band_rows", 64, lo=1, hi=100000, integer=True),
+        write_field=write_field, marks=marks, dose_datatypes=dose,
+    )
+    if mask.tone == "complement" and mask.hierarchy != "flat":
+        m.fail("tone", mask.tone, "'complement' needs mask.hierarchy = 'flat'")
+    if (write_field is not None and write_field.cell_per_field
+            and (mask.hierarchy != "flat" or mask.tone != "structures")):
+        raise DesignError(f"{where}: key 'mask.write_field.cell_per_field' = true: needs mask.hierarchy = 'flat' and "
+                          "mask.tone = 'structures'")
+    m.check_unknown()
+
+    c = top.table("checks", {})
+    checks = CheckSettings(rules=c.boolean("rules", True), fail_on_violations=c.boolean("fail_on_violations", False),
+                           optics=c.boolean("optics", True))
+    c.check_unknown()
+    top.raw("routes", {})  # fabrication-route settings, validated by metalay.routes
+    top.check_unknown()
+    return Design(name=name, wavelength_nm=float(wavelength_nm), sigma=int(sigma), terms=terms, aperture=aperture,
+                  lattice=lattice, library=library, mask=mask, checks=checks, source_path=where, raw=data)
+
+
+def _estimated_sites(aperture: Aperture, lattice: Lattice) -> float:
+    from metalay.design.lattice import aperture_area_um2, cell_area_um2
+
+    return aperture_area_um2(aperture) / cell_area_um2(lattice)
+
+
+def _parse_term(t, where: str, k: int, base_dir: Path, wavelength_nm: float):
+    if not isinstance(t, dict):
+        raise DesignError(f"{where}: key 'phase[{k}]' = {t!r}: expected a table")
+    r = _Reader(t, where, f"phase[{k}].")
+    kind = r.string("kind", options=PHASE_TERM_KINDS)
+    if kind == "vortex":
+        term = Vortex(r.number("charge", integer=True, lo=-1000, hi=1000),
+                      float(r.number("center_x_um", 0.0)), float(r.number("center_y_um", 0.0)))
+    elif kind == "tilt":
+        term = _parse_tilt(r, wavelength_nm)
+    elif kind == "lens":
+        term = Lens(float(r.number("focal_length_um", lo=0, lo_open=True, hi=1e7)),
+                    float(r.number("medium_index", 1.0, lo=1.0, hi=5.0)),
+                    float(r.number("center_x_um", 0.0)), float(r.number("center_y_um", 0.0)))
+    elif kind == "axicon":
+        if r.has("numerical_aperture"):
+            na = r.number("numerical_aperture", lo=0, lo_open=True, hi=0.99)
+            term = Axicon(math.degrees(math.asin(na)))
+        else:
+            term = Axicon(float(r.number("half_angle_deg", lo=0, lo_open=True, hi=80.0)))
+    elif kind == "qplate":
+        q = r.number("q", lo=-100, hi=100)
+        if abs(2 * q - round(2 * q)) > 1e-12:
+            r.fail("q", q, "must be a multiple of 1/2 (the pattern must be continuous around the centre)")
+        term = QPlate(float(q), float(r.number("alpha0_deg", 0.0, lo=-360, hi=360)))
+    elif kind == "multiplex":
+        chans = r.raw("channels")
+        if not isinstance(chans, list) or not chans or len(chans) > 64:
+            r.fail("channels", chans, "expected a list of 1 to 64 channel tables")
+        parsed = []
+        for n, ch in enumerate(chans):
+            if not isinstance(ch, dict):
+                r.fail(f"channels[{n}]", ch, "expected a table")
+            cr = _Reader(ch, where, f"phase[{k}].channels[{n}].")
+            parsed.append(Channel(cr.number("charge", integer=True, lo=-1000, hi=1000),
+                                  float(cr.number("angle_deg", lo=0.0, hi=89.0)),
+                                  float(cr.number("azimuth_deg", 0.0, lo=-360.0, hi=360.0)),
+                                  float(cr.number("weight", 1.0, lo=0.0, lo_open=True, hi=1e6)),
+                                  float(cr.number("offset_deg", 0.0, lo=-360.0, hi=360.0))))
+            cr.check_unknown()
+        term = Multiplex(tuple(parsed))
+    else:  # map
+        file = r.string("file")
+        extent = r.raw("extent_um")
+        if (not isinstance(extent, list) or len(extent) != 4
+                or not all(isinstance(v, (int, float)) and not isinstance(v, bool) for v in extent)):
+            r.fail("extent_um", extent, "expected [x_min, x_max, y_min, y_max] in micrometres")
+        path = Path(file) if Path(file).is_absolute() else base_dir / file
+        term = load_phase_map(path, extent_um=extent, where=f"{where}: key 'phase[{k}].file'")
+    r.check_unknown()
+    return term
+
+
+def _parse_tilt(r: _Reader, wavelength_nm: float) -> Tilt:
+    azimuth = float(r.number("azimuth_deg", 0.0, lo=-360.0, hi=360.0))
+    if r.has("carrier_period_um"):
+        period_um = r.number("carrier_period_um", lo=0, lo_open=True, hi=1e6)
+        s = wavelength_nm * 1e-3 / period_um
+        if s >= 1:
+            r.fail("carrier_period_um", period_um, f"must exceed the wavelength ({wavelength_nm * 1e-3:g} um) "
+                   "for a propagating order")
+        return Tilt(math.degrees(math.asin(s)), azimuth)
+    return Tilt(float(r.number("angle_deg", lo=0.0, hi=89.0)), azimuth)

@@ -1,0 +1,3 @@
+"""metalay.io."""
+
+__all__: list[str] = []

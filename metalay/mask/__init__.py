@@ -1,0 +1,3 @@
+"""metalay.mask."""
+
+__all__: list[str] = []

@@ -1,0 +1,879 @@
+"""The main job: a validated design -> mask files (GDSII, OASIS) + manifest.json, tile by tile.
+
+Pipeline per tile (a band of lattice rows): sites -> target phase -> cell and rotation -> snapped polygons ->
+streamed into the flat GDSII file; shape groups (or rotation levels) are gathered for OASIS and hierarchical GDSII,
+which gdstk writes at the end. Then the design-rule check and the quick optical check run on the written mask.
+"""
+
+from __future__ import annotations
+
+import collections
+import hashlib
+import json
+import math
+import os
+import shutil
+import tempfile
+import time
+from concurrent.futures import ThreadPoolExecutor
+from dataclasses import dataclass, field, replace
+from pathlib import Path
+
+import numpy as np
+
+from metalay.util._memory import keep_freed_memory
+from metalay.util.atomic import atomic_write_text, ensure_dir
+from metalay.cells.cellkinds import is_rotation_invariant, outline_nm
+from metalay.errors import DesignError, MetalayError, OutputError
+from metalay.design.lattice import aperture_area_um2, cell_area_um2, row_range, sample_sites
+from metalay.mask.layout import (element_offsets, frame_polygons, group_shapes, recovered_rotation, snap_centres, snap_rows,
+                     text_polygons)
+from metalay.cells.library import CellLibrary, load_library
+from metalay.mask.mapping import assign_cells, wrap_pi
+from metalay.design.phase import phase_gradient, target_phase
+from metalay.util.progress import progress
+from metalay.design.spec import Design
+from metalay.mask.process import (WriteFieldGrid, alignment_marks, aperture_region_db, bias_outline_nm, check_marks_clear,
+                      complement_bands, complement_tile, default_mark_positions_um, dose_datatype_lut,
+                      field_cell_name, field_index, fit_write_fields, frame_region_db, pieces_by_vertex_count,
+                      shift_phase_error_rad)
+from metalay.io.writer import (GdsStream, add_polygons, boundary_records, boundary_records_rows, build_gdstk_fields,
+                     build_gdstk_flat, build_gdstk_levels, write_gdstk_library)
+
+__all__ = ["CompileResult", "compile_design", "SAFETY_CAUTION", "design_warnings", "medium_index"]
+
+SAFETY_CAUTION = (
+    "Caution: metalay is a design aid. Verify every mask with full-wave simulation and against your facility's "
+    "process rules before fabrication. Lithography, etching and lift-off use hazardous chemicals (resists, "
+    "developers, solvents, hydrofluoric acid); the finished device is used with lasers. Follow your site's "
+    "chemical-safety and laser-safety rules (laser class, eyewear, beam enclosures) and local codes; defer to "
+    "licensed professionals where required.")
+
+#: Sites per tile: bounds memory (about 200 bytes per site in flight).
+SITES_PER_TILE = 250_000
+#: Sites sampled for the aliasing estimate.
+ALIAS_SAMPLES = 200_000
+#: Every n-th band of a tone inversion is verified by an exact XOR against the intended region.
+COMPLEMENT_VERIFY_EVERY = 16
+
+
+@dataclass(frozen=True)
+class CompileResult:
+    """What :func:`compile_design` produced."""
+
+    out_dir: Path
+    files: dict
+    manifest: dict
+    warnings: tuple[str, ...]
+    summary: tuple[str, ...]
+    timings_s: dict = field(default_factory=dict)
+
+
+def medium_index(name: str, wavelength_nm: float) -> float | None:
+    """Real refractive index of a named medium at ``wavelength_nm`` (None when unknown)."""
+    if name in ("air", "vacuum"):
+        return 1.0
+    try:
+        from metalay.cells import materials
+    except ImportError:  # pragma: no cover - materials module is part of the package
+        return None
+    try:
+        n = materials.get_material(name).index(wavelength_nm)
+    except MetalayError:
+        return None
+    return float(np.real(n))
+
+
+def design_warnings(design: Design, library: CellLibrary, *, alias_fraction: float, alias_r_max_um: float,
+                    alias_r_min_um: float) -> list[str]:
+    """Warnings that do not stop the compile.
+
+    Sub-wavelength period: only the zeroth order propagates in a medium of index n at normal incidence when
+    ``p < lambda / n`` (grating equation, Born & Wolf, Principles of Optics). Aliasing: a phase that changes by more
+    than pi between neighbouring sites cannot be represented by the sampling (Nyquist-Shannon sampling theorem;
+    Goodman, Introduction to Fourier Optics, sampling of band-limited functions).
+    """
+    out = []
+    p_nm = design.lattice.period_nm
+    wl = design.wavelength_nm
+    exit_name = library.exit_medium if library.mode == "transmission" else library.incident_medium
+    for label, name in (("exit", exit_name), ("incident", library.incident_medium)):
+        n = medium_index(name, wl)
+        if n is None:
+            out.append(f"index of the {label} medium {name!r} is unknown: sub-wavelength check skipped")
+        elif p_nm >= wl / n:
+            out.append(f"lattice period {p_nm:g} nm >= wavelength/n = {wl / n:.1f} nm in the {label} medium "
+                       f"{name!r} (n = {n:.4f}): spurious diffraction orders propagate there")
+        if library.mode == "reflection" or name == exit_name == library.incident_medium:
+            break
+    if abs(library.period_nm - p_nm) > 1e-9:
+        out.append(f"the library was characterised at period {library.period_nm:g} nm but the design uses "
+                   f"{p_nm:g} nm: responses may differ")
+    if abs(library.design_wavelength_nm - wl) > 0.02 * wl:
+        out.append(f"design wavelength {wl:g} nm differs from the library's {library.design_wavelength_nm:g} nm")
+    if alias_fraction > 0:
+        out.append(f"phase gradient exceeds pi per period at {100 * alias_fraction:.3g}% of sites (radius "
+                   f"{alias_r_min_um:.3g} to {alias_r_max_um:.3g} um): the phase is aliased there")
+    return out
+
+
+def _design_hash(design: Design, library: CellLibrary) -> str:
+    text = json.dumps(design.raw, sort_keys=True, default=str) + library.sha256
+    return hashlib.sha256(text.encode()).hexdigest()
+
+
+def _sha256(path: Path) -> str:
+    h = hashlib.sha256()
+    with open(path, "rb") as fh:
+        for block in iter(lambda: fh.read(8 << 20), b""):
+            h.update(block)
+    return h.hexdigest()
+
+
+def compile_design(design: Design, out_dir: str | Path, **options) -> CompileResult:
+    """Compile ``design`` into mask files and a manifest in ``out_dir`` (all or nothing).
+
+    Files are first written into a staging folder inside ``out_dir`` and moved into place only when every stage
+    (writing, design rules, optics) has succeeded; on any error the staging folder is removed, so a failed run
+    leaves no mask and no manifest behind. Options are those of :func:`_compile_into`.
+    """
+    out = ensure_dir(out_dir)
+    keep_freed_memory()
+    stage = Path(tempfile.mkdtemp(prefix=".metalay-stage-", dir=out))
+    try:
+        try:
+            result = _compile_into(design, stage, **options)
+        except OSError as exc:  # e.g. the disk filled up while writing: one line, nothing left behind
+            raise OutputError(f"{out}: writing failed ({exc.strerror or exc})") from exc
+        moved = {}
+        for entry in sorted(stage.rglob("*")):
+            if entry.is_file():
+                final = out / entry.relative_to(stage)
+                final.parent.mkdir(parents=True, exist_ok=True)
+                os.replace(entry, final)
+        for key, p in result.files.items():
+            moved[key] = out / Path(p).relative_to(stage)
+        return replace(result, out_dir=out, files=moved)
+    finally:
+        shutil.rmtree(stage, ignore_errors=True)
+
+
+def _compile_into(design: Design, out_dir: str | Path, *, show_progress: bool | None = None,
+                   run_rules: bool | None = None, run_optics: bool | None = None,
+                   sites_per_tile: int = SITES_PER_TILE) -> CompileResult:
+    """Compile ``design`` into mask files and a manifest in ``out_dir``.
+
+    Parameters
+    ----------
+    design : Design
+        A validated design (:func:`metalay.spec.load_design`).
+    out_dir : str or Path
+        Output folder (created). Files: ``<name>.gds``, ``<name>.oas`` (as requested), ``manifest.json``,
+        ``timings.json``.
+    show_progress : bool or None
+        Progress bar on stderr (None: only on a terminal).
+    run_rules, run_optics : bool or None
+        Override the design's ``[checks]`` settings.
+    sites_per_tile : int
+        Tile size bound (memory).
+
+    Returns
+    -------
+    CompileResult
+    """
+    t_start = time.perf_counter()
+    timings: dict[str, float] = {}
+    library = load_library(design.library)
+    out = ensure_dir(out_dir)
+    mask = design.mask
+    db = mask.db_unit_nm
+    if library.phase_mechanism == "geometric":
+        cell_ids = [mask.cell or library.cells[0].id]
+        library.cell_index(cell_ids[0])
+    else:
+        cell_ids = [c.id for c in library.cells]
+        if mask.cell is not None:
+            raise DesignError(f"{design.source_path}: key 'mask.cell' = {mask.cell!r}: not allowed with the "
+                              f"propagation-phase library {library.name!r} (it chooses cells by phase)")
+        if mask.hierarchy == "levels":
+            raise DesignError(f"{design.source_path}: key 'mask.hierarchy' = 'levels': only for geometric-phase "
+                              "libraries (allowed here: 'flat')")
+    outlines = [bias_outline_nm(outline_nm(library.cells[library.cell_index(c)]), mask.bias_nm,
+                                corner=mask.bias_corners, where=design.source_path)
+                for c in cell_ids]
+    levels = mask.rotation_levels
+    s_layer, s_dt = mask.layer("structures")
+    classes = list(cell_ids) + ["complement", "frame", "label", "marks"]
+    dose = dict(mask.dose_datatypes)
+    lut = dose_datatype_lut(classes, dose, s_dt, where=design.source_path)
+    for purpose in ("frame", "label", "marks"):  # purposes keep their own datatype unless a dose one is set
+        if purpose not in dose:
+            lut[classes.index(purpose)] = mask.layer(purpose)[1]
+    grid = None
+    if mask.write_field is not None:
+        wf = mask.write_field
+        grid = WriteFieldGrid.from_um(wf.size_um, wf.origin_um, db_unit_nm=db)
+    complement = mask.tone == "complement"
+
+    j0, j1 = row_range(design.aperture, design.lattice)
+    sites_per_row = max(1.0, 2 * design.aperture.half_extent_um[0] / design.lattice.period_um)
+    rows_per_tile = max(1, int(sites_per_tile / sites_per_row))
+    tiles = [(a, min(a + rows_per_tile, j1)) for a in range(j0, j1, rows_per_tile)]
+
+    name = design.name
+    gds_path = out / f"{name}.gds"
+    want_gds = "gds" in mask.formats
+    per_field = mask.write_field is not None and mask.write_field.cell_per_field
+    stream_gds = want_gds and mask.hierarchy == "flat" and not per_field
+    need_groups = "oas" in mask.formats or (want_gds and not stream_gds)
+    _check_resources(design, out, outlines, stream_gds=stream_gds, need_groups=need_groups)
+    level_offsets = None
+    if levels:
+        thetas = np.arange(levels) * np.pi / levels
+        level_offsets = [element_offsets(o, thetas, db) for o in outlines]  # (K, V, 2) per cell
+    min_gap_db = float(library.rules.get("min_gap_nm", 0.0)) / db
+    ctx = _TileContext(design=design, library=library, cell_ids=cell_ids, outlines=outlines,
+                       level_offsets=level_offsets, layer=s_layer, datatypes=tuple(int(v) for v in lut),
+                       encode_gds=stream_gds and not complement, need_groups=need_groups and not complement,
+                       alias_stride=max(1, int(math.ceil(_estimate_sites(design) / ALIAS_SAMPLES))),
+                       grid=grid, min_gap_db=min_gap_db)
+    if complement:
+        region = (aperture_region_db(design.aperture, db_unit_nm=db) if mask.complement_region == "aperture"
+                  else frame_region_db(design.aperture, margin_um=mask.frame_margin_um, db_unit_nm=db))
+        reach_nm = max(float(np.hypot(*o.T).max()) for o in outlines) + 2 * db
+        if grid is not None:
+            reach_nm += mask.write_field.max_shift_nm
+        bands = complement_bands(region, design.lattice, design.aperture, db_unit_nm=db, reach_nm=reach_nm,
+                                 rows_per_band=mask.complement_band_rows, field=grid)
+        do_rules_here = design.checks.rules if run_rules is None else run_rules
+        ctx = replace(ctx, region=region, encode_structures=bool(do_rules_here))
+        tiles = [(b.rows, b.box_db, k % COMPLEMENT_VERIFY_EVERY == 0) for k, b in enumerate(bands)]
+    wf_counts = {"straddling": 0, "shifted": 0, "dropped": 0, "kept_straddling": 0}
+    worst_shift_nm = 0.0
+    worst_shift_phase = 0.0
+    comp_stats = {"polygons": 0, "max_vertices": 0, "area_db2": 0.0, "target_area_db2": 0.0, "xor_db2": 0.0,
+                  "xor_bound_db2": 0.0, "bands_verified": 0}
+    comp_pieces: list[tuple[int, np.ndarray]] = []
+
+    n_sites = 0
+    per_cell = np.zeros(len(cell_ids), dtype=np.int64)
+    worst_snap = 0.0
+    quant_err = 0.0
+    shape_table: dict = {}
+    shape_list: list[tuple[int, np.ndarray]] = []  # (cell slot, offsets (V, 2))
+    site_shape: list[np.ndarray] = []
+    site_centre: list[np.ndarray] = []
+    alias_hits = 0
+    alias_total = 0
+    alias_r = [math.inf, 0.0]
+
+    known_hashes: dict[str, str] = {}
+    t0 = time.perf_counter()
+    bar = progress(total=len(tiles), desc=f"{name}: tiles", enabled=show_progress, unit="tile")
+    stream = GdsStream(gds_path, name, db_unit_nm=db) if stream_gds else None
+    holes_path = out / ".structures-for-rules.gds"
+    holes = GdsStream(holes_path, name, db_unit_nm=db) if ctx.encode_structures else None
+    try:
+        if stream is not None:
+            stream.__enter__()
+        if holes is not None:
+            holes.__enter__()
+        for tile in _run_tiles(tiles, ctx, _complement_tile if complement else _tile):
+            bar.update(1)
+            if tile.n == 0 and tile.complement is None:
+                continue
+            n_sites += tile.n
+            per_cell += tile.per_cell
+            worst_snap = max(worst_snap, tile.worst_snap)
+            quant_err = max(quant_err, tile.quant_err)
+            alias_hits += tile.alias_hits
+            alias_total += tile.alias_total
+            alias_r = [min(alias_r[0], tile.alias_r[0]), max(alias_r[1], tile.alias_r[1])]
+            for k, v in tile.wf_counts.items():
+                wf_counts[k] += v
+            worst_shift_nm = max(worst_shift_nm, tile.worst_shift_nm)
+            worst_shift_phase = max(worst_shift_phase, tile.worst_shift_phase)
+            target = holes if complement else stream
+            if target is not None:
+                for rec in tile.records:
+                    target.write_records(rec)
+            if tile.complement is not None:
+                ct = tile.complement
+                comp_stats["polygons"] += ct.count
+                comp_stats["max_vertices"] = max(comp_stats["max_vertices"], int(ct.max_vertices))
+                comp_stats["area_db2"] += float(ct.area_db2)
+                comp_stats["target_area_db2"] += float(ct.target_area_db2)
+                if ct.xor_area_db2 is not None and np.isfinite(ct.xor_area_db2):
+                    comp_stats["xor_db2"] += float(ct.xor_area_db2)
+                    comp_stats["xor_bound_db2"] += float(ct.xor_bound_db2)
+                    comp_stats["bands_verified"] += 1
+                for nv, verts in pieces_by_vertex_count(ct):
+                    if stream is not None:
+                        stream.boundaries(s_layer, int(lut[classes.index("complement")]), verts)
+                    if "oas" in mask.formats:
+                        comp_pieces.append((nv, verts))
+            for slot, local_keys, local_shapes, shape_idx, centres in tile.groups:
+                gmap = np.empty(len(local_keys), dtype=np.int32)
+                for u, key in enumerate(local_keys):  # distinct shapes or levels (~1e3), not sites
+                    gid = shape_table.get((slot, key))
+                    if gid is None:
+                        gid = shape_table[(slot, key)] = len(shape_list)
+                        shape_list.append((slot, local_shapes[u]))
+                    gmap[u] = gid
+                site_shape.append(gmap[shape_idx])
+                site_centre.append(centres)
+        bar.close()
+        extras = _extras(design, library, lut, classes)
+        if stream is not None:
+            stream.polygons(extras)
+            stream.__exit__(None, None, None)
+            known_hashes[gds_path.name] = stream.sha256
+            stream = None
+        if holes is not None:
+            holes.polygons(extras)
+            holes.__exit__(None, None, None)
+            holes = None
+    except BaseException as exc:
+        for open_stream in (stream, holes):
+            if open_stream is not None:
+                open_stream.__exit__(type(exc), exc, exc.__traceback__)
+        raise
+    timings["layout_and_flat_gds_s"] = time.perf_counter() - t0
+    if n_sites == 0:
+        raise DesignError(f"{design.source_path}: no whole unit cell fits inside the aperture (allowed: aperture "
+                          f"larger than one cell of period {design.lattice.period_nm:g} nm)")
+
+    files: dict[str, Path] = {}
+    if stream_gds:
+        files["gds"] = gds_path
+    gk_formats = [f for f in mask.formats if f == "oas" or (f == "gds" and not stream_gds)]
+    if gk_formats:
+        t0 = time.perf_counter()
+        if complement:
+            lib = build_gdstk_flat(name, [], extras, db_unit_nm=db)
+            add_polygons(lib, name, s_layer, int(lut[classes.index("complement")]), [v for _, v in comp_pieces],
+                         db_unit_nm=db)
+            del comp_pieces
+        else:
+            shape_of_site = np.concatenate(site_shape)
+            centres_all = np.concatenate(site_centre)
+            del site_shape, site_centre
+            order = np.argsort(shape_of_site, kind="stable")
+            bounds = np.searchsorted(shape_of_site[order], np.arange(len(shape_list) + 1))
+            members = [centres_all[order[bounds[g]:bounds[g + 1]]].astype(np.int64) for g in range(len(shape_list))]
+            del order, centres_all, shape_of_site
+            if per_field:
+                lib = _field_library(name, shape_list, members, lut, s_layer, grid, extras, db)
+            elif mask.hierarchy == "levels":
+                lib = build_gdstk_levels(name, [(s_layer, int(lut[slot]), shp) for slot, shp in shape_list],
+                                         members, extras, db_unit_nm=db)
+            else:
+                lib = build_gdstk_flat(name, [(s_layer, int(lut[slot]), shp, m)
+                                              for (slot, shp), m in zip(shape_list, members)], extras,
+                                       db_unit_nm=db)
+            del members
+        for fmt in gk_formats:
+            files[fmt] = write_gdstk_library(lib, out / f"{name}.{fmt}", fmt)
+        del lib
+        timings["gdstk_write_s"] = time.perf_counter() - t0
+
+    alias_fraction = alias_hits / max(alias_total, 1)
+    warnings = design_warnings(design, library, alias_fraction=alias_fraction, alias_r_min_um=alias_r[0],
+                               alias_r_max_um=alias_r[1])
+    fill = n_sites * cell_area_um2(design.lattice) / aperture_area_um2(design.aperture)
+    counts = {
+        "sites": int(n_sites),
+        "fill_factor": round(float(fill), 6),
+        "elements_per_cell": {cid: int(c) for cid, c in zip(cell_ids, per_cell)},
+        "distinct_shapes": len(shape_list) if need_groups and not complement else None,  # None: not grouped
+        "tiles": len(tiles),
+    }
+    errors = {
+        "worst_snapping_phase_error_deg": round(math.degrees(worst_snap), 6),
+        "worst_quantisation_phase_error_deg": round(math.degrees(quant_err), 6),
+        "aliased_site_fraction": round(alias_fraction, 6),
+    }
+    checks = {}
+    primary = files.get("gds") or files.get("oas")
+    do_rules = design.checks.rules if run_rules is None else run_rules
+    if do_rules:
+        t0 = time.perf_counter()
+        checks["rules"] = _run_rules(primary, library, design,
+                                     structures_path=holes_path if ctx.encode_structures else None)
+        holes_path.unlink(missing_ok=True)
+        timings["rules_s"] = time.perf_counter() - t0
+    do_optics = design.checks.optics if run_optics is None else run_optics
+    if do_optics:
+        t0 = time.perf_counter()
+        checks["optics"] = _run_optics(primary, library, design)
+        timings["optics_s"] = time.perf_counter() - t0
+
+    for key, res in checks.items():  # timings are not deterministic: they go to timings.json
+        if isinstance(res, dict) and "timings_s" in res:
+            timings[f"{key}_stages"] = res.pop("timings_s")
+    process = {"bias_nm": mask.bias_nm, "bias_corners": mask.bias_corners, "tone": mask.tone,
+               "dose_datatypes": dict(zip(classes, (int(v) for v in lut)))}
+    if mask.write_field is not None:
+        wf = mask.write_field
+        process["write_field"] = {"size_um": list(wf.size_um), "origin_um": list(wf.origin_um),
+                                  "cell_per_field": wf.cell_per_field,
+                                  "straddle": wf.straddle, "max_shift_nm": wf.max_shift_nm, "counts": wf_counts,
+                                  "worst_shift_nm": round(worst_shift_nm, 3),
+                                  "worst_shift_phase_error_deg": round(math.degrees(worst_shift_phase), 6)}
+    if complement:
+        tgt = comp_stats["target_area_db2"]
+        process["complement"] = {
+            "region": mask.complement_region, "polygons": comp_stats["polygons"],
+            "max_vertices": comp_stats["max_vertices"],
+            "area_relative_difference": round(abs(comp_stats["area_db2"] - tgt) / tgt, 9) if tgt else 0.0,
+            "bands": len(tiles), "bands_xor_verified": comp_stats["bands_verified"],
+            "xor_area_um2": round(comp_stats["xor_db2"] * (db * 1e-3) ** 2, 6),
+            "xor_bound_um2": round(comp_stats["xor_bound_db2"] * (db * 1e-3) ** 2, 6)}
+    if mask.marks is not None:
+        process["marks"] = {"kind": mask.marks.kind, "size_um": mask.marks.size_um}
+
+    manifest = {
+        "metalay_manifest_version": 1,
+        "process": process,
+        "design": {"name": name, "source": Path(design.source_path).name, "echo": design.raw},
+        "design_hash": _design_hash(design, library),
+        "library": {"name": library.name, "sha256": library.sha256, "mode": library.mode,
+                    "phase_mechanism": library.phase_mechanism, "cells_used": cell_ids,
+                    "responses": library.provenance.get("responses_source", "")},
+        "mask": {"db_unit_nm": db, "user_unit_um": 1.0, "hierarchy": mask.hierarchy,
+                 "rotation_levels": levels, "layers": {k: list(v) for k, v in mask.layers}},
+        "counts": counts,
+        "errors": errors,
+        "warnings": warnings,
+        "checks": checks,
+        "files": {fmt: {"name": p.name, "bytes": p.stat().st_size, "sha256": known_hashes.get(p.name) or _sha256(p)}
+                  for fmt, p in sorted(files.items())},
+        "timings_file": "timings.json",
+        "caution": SAFETY_CAUTION,
+    }
+    atomic_write_text(out / "manifest.json", json.dumps(manifest, sort_keys=True, indent=2, default=str) + "\n")
+    timings["total_s"] = time.perf_counter() - t_start
+    atomic_write_text(out / "timings.json", json.dumps(_rounded(timings), sort_keys=True, indent=2) + "\n")
+    files["manifest"] = out / "manifest.json"
+    summary = _summary(design, library, manifest, files)
+    return CompileResult(out, files, manifest, tuple(warnings), tuple(summary), timings)
+
+
+@dataclass(frozen=True)
+class _TileContext:
+    design: Design
+    library: CellLibrary
+    cell_ids: list
+    outlines: list
+    level_offsets: list | None
+    layer: int
+    datatypes: tuple
+    encode_gds: bool
+    need_groups: bool
+    alias_stride: int
+    grid: WriteFieldGrid | None = None
+    min_gap_db: float = 0.0
+    region: object = None
+    encode_structures: bool = False
+
+
+@dataclass
+class _TileOut:
+    n: int
+    per_cell: np.ndarray
+    records: list
+    groups: list
+    worst_snap: float = 0.0
+    quant_err: float = 0.0
+    alias_hits: int = 0
+    alias_total: int = 0
+    alias_r: tuple = (math.inf, 0.0)
+    wf_counts: dict = field(default_factory=dict)
+    worst_shift_nm: float = 0.0
+    worst_shift_phase: float = 0.0
+    complement: object = None
+
+
+@dataclass
+class _Elements:
+    """Elements of one tile after mapping, snapping and write-field fitting (arrays parallel over elements)."""
+
+    slot: np.ndarray          # (N,) cell slot
+    theta: np.ndarray         # (N,) intended rotation
+    level: np.ndarray | None  # (N,) rotation level
+    centres: np.ndarray       # (N, 2) int64
+    offsets: list             # per slot: (N_slot, V_slot, 2) int32, in the order of np.flatnonzero(slot == k)
+    snapped: list             # per slot: SnappedRows (fast record layout) or None
+
+
+def _elements(rows, ctx: _TileContext, out: _TileOut, *, active_rows=None) -> _Elements | None:
+    """Sites of ``rows`` -> phase -> cells -> snapped outlines (+ write-field fit). Fills ``out``'s statistics."""
+    design, library = ctx.design, ctx.library
+    db = design.mask.db_unit_nm
+    sites = sample_sites(design.aperture, design.lattice, rows=rows)
+    if len(sites) == 0:
+        return None
+    phi = target_phase(design.terms, sites.x_um, sites.y_um, wavelength_nm=design.wavelength_nm, sigma=design.sigma)
+    ncell = len(ctx.cell_ids)
+    a = assign_cells(phi, library, sigma=design.sigma, cell_id=ctx.cell_ids[0] if ncell == 1 else None,
+                     rotation_levels=design.mask.rotation_levels, wavelength_nm=design.wavelength_nm)
+    centres = snap_centres(sites.x_um, sites.y_um, db)
+    active = None if active_rows is None else (sites.j >= active_rows[0]) & (sites.j < active_rows[1])
+    own = slice(None) if active is None else active
+    out.quant_err = max(out.quant_err, a.quantisation_error_rad)
+    # aliasing estimate on a deterministic sub-sample of this tile's own sites
+    xs, ys = sites.x_um[own][::ctx.alias_stride], sites.y_um[own][::ctx.alias_stride]
+    g = phase_gradient(design.terms, xs, ys, wavelength_nm=design.wavelength_nm, sigma=design.sigma,
+                       step_um=design.lattice.period_um * 1e-3)
+    hit = g * design.lattice.period_um > np.pi
+    out.alias_total += int(hit.size)
+    if hit.any():
+        out.alias_hits += int(hit.sum())
+        r = np.hypot(xs[hit], ys[hit])
+        out.alias_r = (min(out.alias_r[0], float(r.min())), max(out.alias_r[1], float(r.max())))
+    slot = a.cell_index.astype(np.int64) if ncell > 1 else np.zeros(len(sites), np.int64)
+    # the (N, V, 2) layout is only built when something needs it; GDSII records come from the row layout
+    need_offsets = ctx.grid is not None or ctx.need_groups or ctx.region is not None
+    offsets = []
+    snapped = []
+    for k in range(ncell):  # loop over cells (short axis)
+        sel = np.flatnonzero(slot == k) if ncell > 1 else slice(None)
+        cell = library.cells[library.cell_index(ctx.cell_ids[k])]
+        if ctx.level_offsets is not None:
+            offsets.append(ctx.level_offsets[k][a.level[sel]])
+            snapped.append(None)
+            if not is_rotation_invariant(cell):
+                err = np.abs(wrap_pi(2.0 * (recovered_rotation(ctx.level_offsets[k]) - np.arange(
+                    len(ctx.level_offsets[k])) * np.pi / len(ctx.level_offsets[k]))))
+                out.worst_snap = max(out.worst_snap, float(err.max()))
+        else:
+            sr = snap_rows(ctx.outlines[k], a.rotation_rad[sel], db)
+            snapped.append(sr)
+            offsets.append(sr.offsets() if need_offsets else None)
+            if not is_rotation_invariant(cell):
+                out.worst_snap = max(out.worst_snap, sr.error_rad)
+    keep = np.ones(len(sites), bool) if active is None else active.copy()
+    if ctx.grid is not None:
+        wf = design.mask.write_field
+        vmax = max(o.shape[1] for o in offsets)
+        padded = np.empty((len(sites), vmax, 2), np.int32)
+        for k, o in enumerate(offsets):  # pad with the last vertex (same hull) so all cells share one array
+            sel = np.flatnonzero(slot == k) if ncell > 1 else slice(None)
+            padded[sel, :o.shape[1]] = o
+            padded[sel, o.shape[1]:] = o[:, -1:, :]
+        fit = fit_write_fields(centres, padded, ctx.grid, mode=wf.straddle, max_shift_db=wf.max_shift_nm / db,
+                               min_gap_db=ctx.min_gap_db, active=active)
+        for key, val in (("straddling", fit.n_straddling), ("shifted", fit.n_shifted), ("dropped", fit.n_dropped),
+                         ("kept_straddling", fit.n_kept_straddling)):
+            out.wf_counts[key] = out.wf_counts.get(key, 0) + int(val)
+        moved = np.flatnonzero(np.any(fit.shift_db != 0, axis=1) & keep)
+        if moved.size:
+            shift_nm = np.hypot(*fit.shift_db[moved].T.astype(np.float64)) * db
+            out.worst_shift_nm = max(out.worst_shift_nm, float(shift_nm.max()))
+            gm = phase_gradient(design.terms, sites.x_um[moved], sites.y_um[moved],
+                                wavelength_nm=design.wavelength_nm, sigma=design.sigma,
+                                step_um=design.lattice.period_um * 1e-3)
+            err = shift_phase_error_rad(fit.shift_db[moved], gm, db_unit_nm=db)
+            out.worst_shift_phase = max(out.worst_shift_phase, float(np.max(err, initial=0.0)))
+        centres = fit.centres_db
+        keep &= fit.keep
+    if not keep.all():
+        new_offsets = []
+        for k, o in enumerate(offsets):
+            sel_keep = keep[slot == k] if ncell > 1 else keep
+            new_offsets.append(o[sel_keep])
+        offsets = new_offsets
+        snapped = [None] * ncell  # the row layout no longer matches: records come from the offsets
+        centres = centres[keep]
+        slot = slot[keep]
+        theta = a.rotation_rad[keep]
+        level = a.level[keep] if a.level is not None else None
+    else:
+        theta, level = a.rotation_rad, a.level
+    if ctx.grid is not None:
+        snapped = [None] * ncell  # centres may have moved: records come from the offsets
+    out.n += int(keep.sum())
+    return _Elements(slot, theta, level, centres, offsets, snapped)
+
+
+def _tile(rows, ctx: _TileContext) -> _TileOut:
+    """All per-site work of one tile (a band of lattice rows): a pure function, safe to run in a worker thread."""
+    ncell = len(ctx.cell_ids)
+    out = _TileOut(0, np.zeros(ncell, np.int64), [], [])
+    halo = 1 if ctx.grid is not None else 0  # write-field fitting needs the neighbours across the tile edge
+    el = _elements((rows[0] - halo, rows[1] + halo), ctx, out, active_rows=rows if halo else None)
+    if el is None:
+        return out
+    for k in range(ncell):  # loop over cells (short axis)
+        sel = np.flatnonzero(el.slot == k) if ncell > 1 else slice(None)
+        offsets = el.offsets[k]
+        theta = el.theta[sel]
+        if theta.size == 0:
+            continue
+        out.per_cell[k] = theta.size
+        c_sel = el.centres[sel]
+        if ctx.encode_gds:
+            if el.snapped[k] is not None:
+                out.records.append(boundary_records_rows(ctx.layer, ctx.datatypes[k], c_sel, el.snapped[k]))
+            else:
+                out.records.append(boundary_records(ctx.layer, ctx.datatypes[k], centres_db=c_sel,
+                                                    offsets_db=offsets))
+        if ctx.need_groups:
+            if ctx.level_offsets is not None:
+                levels_here, idx = np.unique(el.level[sel], return_inverse=True)
+                keys = [int(v) for v in levels_here]
+                shapes = [ctx.level_offsets[k][v] for v in keys]
+            else:
+                groups = group_shapes(offsets)
+                keys = [shp.tobytes() for shp in groups.shapes_db]
+                shapes = list(groups.shapes_db)
+                idx = groups.shape_of_site
+            out.groups.append((k, keys, shapes, idx.ravel(), c_sel.astype(np.int32)))
+    return out
+
+
+def _complement_tile(task, ctx: _TileContext) -> _TileOut:
+    """One band of the tone inversion: the region minus the band's elements, as hole-free polygons."""
+    rows, box_db, verify = task
+    ncell = len(ctx.cell_ids)
+    out = _TileOut(0, np.zeros(ncell, np.int64), [], [])
+    el = _elements(rows, ctx, out)
+    if el is None:
+        centres = np.zeros((0, 2), np.int64)
+        offsets = np.zeros((0, 4, 2), np.int32)
+    else:
+        centres = el.centres
+        vmax = max(o.shape[1] for o in el.offsets)
+        offsets = np.empty((len(centres), vmax, 2), np.int32)
+        for k, o in enumerate(el.offsets):
+            sel = np.flatnonzero(el.slot == k) if ncell > 1 else slice(None)
+            offsets[sel, :o.shape[1]] = o
+            offsets[sel, o.shape[1]:] = o[:, -1:, :]
+        # count only the elements whose centre lies in this band's box (bands overlap by their halo rows)
+        inside = (centres[:, 1] >= box_db[1]) & (centres[:, 1] < box_db[3])
+        out.n = int(inside.sum())
+        out.per_cell = np.bincount(el.slot[inside], minlength=ncell).astype(np.int64)
+        if ctx.encode_structures:  # the holes themselves, for the design-rule check of the cells
+            for k, o in enumerate(el.offsets):
+                own = inside[el.slot == k] if ncell > 1 else inside
+                c_k = centres[el.slot == k] if ncell > 1 else centres
+                out.records.append(boundary_records(ctx.layer, ctx.datatypes[k], centres_db=c_k[own],
+                                                    offsets_db=o[own]))
+    cuts = None
+    grid = ctx.grid
+    if grid is not None:
+        x0, x1 = box_db[0], box_db[2]
+        k0 = math.floor((x0 - grid.origin_db[0]) / grid.size_db[0])
+        k1 = math.ceil((x1 - grid.origin_db[0]) / grid.size_db[0])
+        cuts = grid.origin_db[0] + grid.size_db[0] * np.arange(k0, k1 + 1)
+    out.complement = complement_tile(centres, offsets, ctx.region, box_db, cut_x_db=cuts, verify=verify)
+    return out
+
+
+def _run_tiles(tiles, ctx: _TileContext, fn=_tile):
+    """Yield ``fn(tile, ctx)`` in order, computing up to ``workers`` tiles ahead in threads (bounded memory)."""
+    workers = max(1, min(2, os.cpu_count() or 1))
+    if workers == 1 or len(tiles) == 1:
+        for t in tiles:
+            yield fn(t, ctx)
+        return
+    with ThreadPoolExecutor(max_workers=workers) as pool:
+        pending = collections.deque()
+        for t in tiles:
+            pending.append(pool.submit(fn, t, ctx))
+            if len(pending) > workers:
+                yield pending.popleft().result()
+        while pending:
+            yield pending.popleft().result()
+
+
+#: Memory per site held until the end when OASIS or hierarchical output is built with gdstk (measured ~40 bytes:
+#: our shape ids and centres, the sort, and gdstk's float64 repetition offsets).
+GROUPED_BYTES_PER_SITE = 40
+
+
+def _machine_memory_bytes() -> int:
+    try:
+        return int(os.sysconf("SC_PAGE_SIZE") * os.sysconf("SC_PHYS_PAGES"))
+    except (ValueError, OSError, AttributeError):  # pragma: no cover - non-POSIX
+        return 1 << 62
+
+
+def _check_resources(design: Design, out: Path, outlines, *, stream_gds: bool, need_groups: bool) -> None:
+    """Refuse, before writing anything, a compile that cannot fit this machine's memory or the output disk."""
+    sites = _estimate_sites(design)
+    where = design.source_path
+    if need_groups:
+        need = sites * GROUPED_BYTES_PER_SITE
+        have = _machine_memory_bytes()
+        if need > 0.6 * have:
+            raise DesignError(
+                f"{where}: key 'mask.formats' = {list(design.mask.formats)} (hierarchy "
+                f"'{design.mask.hierarchy}'): OASIS or hierarchical output of about {sites:.3g} sites needs about "
+                f"{need / 1e9:.1f} GB of memory, more than 60% of this machine's {have / 1e9:.1f} GB; allowed here: "
+                "formats = ['gds'] with hierarchy = 'flat' (streamed tile by tile with bounded memory)")
+    if stream_gds:
+        vertices = max(len(o) for o in outlines)
+        need = sites * (4 * (1 + 3 + 1 + 2 * (vertices + 1) + 1))
+        free = shutil.disk_usage(out).free
+        if need > free:
+            raise OutputError(f"{out}: the flat GDSII of about {sites:.3g} sites needs about {need / 1e9:.1f} GB "
+                              f"but the disk has {free / 1e9:.1f} GB free; free space or choose another output "
+                              "folder")
+
+
+def _field_library(name, shape_list, members, lut, layer, grid, extras, db):
+    """gdstk library with one cell per write field: split every shape group by the field of its sites."""
+    field_groups: dict = {}
+    for (slot, shp), centres in zip(shape_list, members):  # distinct shapes (~1e3), not sites
+        if len(centres) == 0:
+            continue
+        fid = field_index(centres, grid)
+        order = np.lexsort((fid[:, 1], fid[:, 0]))
+        fid, centres = fid[order], centres[order]
+        cut = np.flatnonzero(np.any(np.diff(fid, axis=0) != 0, axis=1)) + 1
+        for part_f, part_c in zip(np.split(fid, cut), np.split(centres, cut)):  # fields this shape occurs in
+            key = (int(part_f[0, 0]), int(part_f[0, 1]))
+            field_groups.setdefault(key, []).append((layer, int(lut[slot]), shp, part_c))
+    names = {key: field_cell_name(name, *key) for key in field_groups}
+    return build_gdstk_fields(name, field_groups, extras, db_unit_nm=db, field_names=names)
+
+
+def _rounded(obj):
+    """Timings for timings.json: floats rounded to milliseconds, nested dicts and lists kept."""
+    if isinstance(obj, dict):
+        return {str(k): _rounded(v) for k, v in obj.items()}
+    if isinstance(obj, (list, tuple)):
+        return [_rounded(v) for v in obj]
+    if isinstance(obj, float):
+        return round(obj, 3)
+    return obj
+
+
+def _estimate_sites(design: Design) -> float:
+    return aperture_area_um2(design.aperture) / cell_area_um2(design.lattice)
+
+
+def _extras(design: Design, library: CellLibrary, lut=None, classes=None):
+    """Frame, label and alignment marks (a handful of polygons)."""
+    mask = design.mask
+    db = mask.db_unit_nm
+    hw, hh = design.aperture.half_extent_um
+
+    def dt(purpose):
+        return int(lut[classes.index(purpose)]) if lut is not None else mask.layer(purpose)[1]
+
+    fl, _ = mask.layer("frame")
+    polys = frame_polygons(hw, hh, margin_um=mask.frame_margin_um, width_um=mask.frame_width_um,
+                           db_unit_nm=db, layer=fl, datatype=dt("frame"))
+    if mask.label:
+        ll, _ = mask.layer("label")
+        text = f"{design.name} {_design_hash(design, library)[:8]}"
+        x = -hw - mask.frame_margin_um - mask.frame_width_um
+        y = -hh - mask.frame_margin_um - mask.frame_width_um - 1.5 * mask.label_height_um
+        polys += text_polygons(text, height_um=mask.label_height_um, x_um=x, y_um=y, db_unit_nm=db,
+                               layer=ll, datatype=dt("label"))
+    if mask.marks is not None:
+        mk = mask.marks
+        positions = mk.positions_um or default_mark_positions_um(
+            design.aperture, frame_margin_um=mask.frame_margin_um, frame_width_um=mask.frame_width_um,
+            size_um=mk.size_um, gap_um=mk.gap_um)
+        marks = alignment_marks(mk.kind, positions, size_um=mk.size_um, line_width_um=mk.line_width_um,
+                                db_unit_nm=db, layer=mask.layer("marks")[0], datatype=dt("marks"))
+        keepout = frame_region_db(design.aperture, margin_um=mask.frame_margin_um + mask.frame_width_um,
+                                  db_unit_nm=db)
+        check_marks_clear(marks, keepout, where=design.source_path)
+        polys += marks
+    return polys
+
+
+def _run_rules(path: Path, library: CellLibrary, design: Design, *, structures_path: Path | None = None) -> dict:
+    """The library's default rules on the mask just written (every structure datatype, frame enclosure, and the
+    write field when the design has square fields).
+
+    For tone "complement" the written pieces touch along their cut lines by construction, so on them only grid,
+    validity, vertex count and frame enclosure apply; the feature, gap and aspect rules of the cells are checked
+    on the structures themselves (the holes), written to ``structures_path`` for the purpose.
+    """
+    from dataclasses import replace as dc_replace
+
+    from metalay.checks import rules
+
+    mask = design.mask
+    wf = mask.write_field
+    square = wf is not None and abs(wf.size_um[0] - wf.size_um[1]) < 1e-12
+    base = rules.rules_from_library(dict(library.rules), layer=mask.layer("structures"),
+                                    film_height_nm=library.film_height_nm, frame_layer=mask.layer("frame"),
+                                    write_field_um=wf.size_um[0] if square else None)
+    if square:  # the same grid compile used: origin and size rounded to the database grid
+        g = WriteFieldGrid.from_um(wf.size_um, wf.origin_um, db_unit_nm=mask.db_unit_nm)
+        to_um = mask.db_unit_nm / 1000.0
+        base = dc_replace(base, write_field_um=g.size_db[0] * to_um,
+                          write_field_centre_um=((g.origin_db[0] + g.size_db[0] / 2) * to_um,
+                                                 (g.origin_db[1] + g.size_db[1] / 2) * to_um))
+    datatypes = sorted({int(v) for k, v in dict(mask.dose_datatypes).items()
+                        if k not in ("complement", "frame", "label", "marks")} | {mask.layer("structures")[1]})
+    template = base.layers[0]
+
+    def ruleset(**changes):
+        return dc_replace(base, layers=tuple(dc_replace(template, datatype=dt, **changes) for dt in datatypes))
+
+    out = {}
+    if structures_path is None:
+        report = rules.check_mask(path, ruleset())
+    else:
+        report = rules.check_mask(structures_path, ruleset(inside_frame=None))
+        pieces = rules.check_mask(path, dc_replace(
+            ruleset(min_width_nm=None, min_spacing_nm=None, forbid_overlap=False, film_height_nm=None,
+                    max_aspect_ratio=None, no_field_straddle=False, max_vertices=8190),
+            layers=tuple(dc_replace(lr, datatype=int(dict(mask.dose_datatypes).get("complement", lr.datatype)))
+                         for lr in ruleset(min_width_nm=None, min_spacing_nm=None, forbid_overlap=False,
+                                           film_height_nm=None, max_aspect_ratio=None, no_field_straddle=False,
+                                           max_vertices=8190).layers)))
+        out["complement_pieces"] = {"status": "clean" if pieces.clean else "violations",
+                                    "violations": pieces.total_violations, "summary": pieces.summary_lines()}
+        out["note"] = ("tone 'complement': feature, gap and aspect rules checked on the structures (the holes); "
+                       "grid, validity, vertex count and frame enclosure on the written pieces")
+    d = report.to_dict(max_listed=20)
+    d["mask"] = Path(path).name  # relative: the file is checked in the staging folder before it is moved
+    d.update(out)
+    total = report.total_violations + out.get("complement_pieces", {}).get("violations", 0)
+    d["status"] = "clean" if total == 0 else "violations"
+    d["violations"] = total
+    d["summary"] = report.summary_lines() + [f"pieces: {line}" for line in
+                                             out.get("complement_pieces", {}).get("summary", [])]
+    d["timings_s"] = {k: round(v, 3) for k, v in report.timings_s}
+    return d
+
+
+def _run_optics(path: Path, library: CellLibrary, design: Design) -> dict:
+    try:
+        from metalay.checks import optics
+    except ImportError:
+        return {"status": "not available"}
+    return optics.compile_check(path, library, design)
+
+
+def _summary(design: Design, library: CellLibrary, manifest: dict, files: dict) -> list[str]:
+    c = manifest["counts"]
+    e = manifest["errors"]
+    shapes = "" if c["distinct_shapes"] is None else f", {c['distinct_shapes']} distinct snapped shapes"
+    lines = [
+        f"design {design.name}: {c['sites']:,} sites, fill factor {c['fill_factor']:.3f}{shapes}",
+        f"library {library.name} ({library.mode}, {library.phase_mechanism} phase), cell(s) "
+        f"{', '.join(manifest['library']['cells_used'])}",
+        f"worst phase error: snapping {e['worst_snapping_phase_error_deg']:.3f} deg, quantisation "
+        f"{e['worst_quantisation_phase_error_deg']:.3f} deg",
+    ]
+    for fmt, info in manifest["files"].items():
+        lines.append(f"wrote {info['name']} ({info['bytes'] / 1e6:.2f} MB, sha256 {info['sha256'][:12]})")
+    for key, res in manifest["checks"].items():
+        summary = res.get("summary", "")
+        if isinstance(summary, (list, tuple)):
+            lines.append(f"{key} check: {res.get('status', '?')}")
+            lines.extend(f"  {line}" for line in summary)
+        else:
+            lines.append(f"{key} check: {res.get('status', '?')} {summary}".rstrip())
+    for w in manifest["warnings"]:
+        lines.append(f"warning: {w}")
+    return lines

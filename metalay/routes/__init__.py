@@ -1,0 +1,3 @@
+"""metalay.routes."""
+
+__all__: list[str] = []

@@ -1,0 +1,3 @@
+"""metalay.studies."""
+
+__all__: list[str] = []

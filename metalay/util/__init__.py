@@ -1,0 +1,3 @@
+"""metalay.util."""
+
+__all__: list[str] = []
