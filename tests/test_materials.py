@@ -3,7 +3,8 @@
 import numpy as np
 import pytest
 
-from metalay.cells.materials import MaterialError, get_material, malitson_silica_index
+from metalay.errors import MaterialError
+from metalay.cells.materials import get_material, malitson_silica_index
 
 
 def test_fused_silica_nd_line():

@@ -10,7 +10,7 @@ import shapely
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from metalay.errors import DesignError, LibraryError
+from metalay.errors import DesignError, GeometryError, LibraryError
 from metalay.design.lattice import Aperture, Lattice, sample_sites
 from metalay.mask.layout import element_offsets, snap_centres
 from metalay.cells.library import CellLibrary, CellSpec
@@ -100,7 +100,7 @@ def test_bias_shrink_is_the_same_for_both_corner_modes_and_collapse_is_refused()
     assert shoelace(a) == pytest.approx(230 * 65)
     with pytest.raises(DesignError, match=r"mask\.bias_nm.*allowed > -42\.5"):
         bias_outline_nm(rect(250, 85), -43, where="d.toml")
-    with pytest.raises(ValueError):
+    with pytest.raises(GeometryError):
         offset_convex_polygons(rect(250, 85)[::-1], 2.0)  # clockwise input
 
 

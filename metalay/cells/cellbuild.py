@@ -32,17 +32,17 @@ from __future__ import annotations
 import csv
 import io
 import math
-import tomllib
 from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
 
-from metalay.errors import LibraryError, MetalayError
+from metalay.errors import CellBuildError, LibraryError, MetalayError
 from metalay.cells.materials import get_material
 from metalay.cells.rcwa import Layer, Stack, ellipse_pattern, rect_pattern, solve
+from metalay.validate import TomlTable, load_toml
 
-__all__ = ["CellBuildError", "BuildSpec", "SweepResult", "load_build_spec", "sweep", "pick_geometric",
+__all__ = ["BuildSpec", "SweepResult", "load_build_spec", "sweep", "pick_geometric",
            "pick_propagation", "build_library", "import_responses", "plot_library", "library_table"]
 
 _DIMS = {"nanofin": ("length_nm", "width_nm"), "slot": ("length_nm", "width_nm"),
@@ -50,8 +50,7 @@ _DIMS = {"nanofin": ("length_nm", "width_nm"), "slot": ("length_nm", "width_nm")
          "round_pillar": ("diameter_nm",)}
 
 
-class CellBuildError(MetalayError):
-    """A build spec or an import table is invalid."""
+_REQUIRED = ...
 
 
 @dataclass(frozen=True)
@@ -83,144 +82,114 @@ class BuildSpec:
     band_count: int
 
 
-def _err(where, key, value, allowed):
-    return CellBuildError(f"{where}: key '{key}' = {value!r} is invalid (allowed: {allowed})")
+def _text(t: TomlTable, key: str, default=_REQUIRED) -> str:
+    return t.string(key, default)
 
 
-def _get(table, key, where, typ, allowed_desc, default=None, required=True):
-    if key not in table:
-        if required and default is None:
-            raise CellBuildError(f"{where}: missing key '{key}' ({allowed_desc})")
-        return default
-    val = table[key]
-    if typ is float and isinstance(val, int) and not isinstance(val, bool):
-        val = float(val)
-    if not isinstance(val, typ) or isinstance(val, bool) and typ is not bool:
-        raise _err(where, key, val, allowed_desc)
-    return val
+def _pos(t: TomlTable, key: str, default=_REQUIRED, lo=0.0, hi=1e7) -> float:
+    """A finite number in ``(lo, hi]``, as float."""
+    return float(t.number(key, default, lo=lo, lo_open=True, hi=hi))
 
 
-def _pos(table, key, where, default=None, lo=0.0, hi=1e7):
-    v = _get(table, key, where, float, f"number in ({lo:g}, {hi:g}]", default)
-    if not (lo < v <= hi) or not math.isfinite(v):
-        raise _err(where, key, v, f"number in ({lo:g}, {hi:g}]")
-    return v
-
-
-def _values(table, key, where):
-    v = table.get(key)
+def _values(t: TomlTable, key: str) -> np.ndarray:
+    """Candidate values in nm: a list, or a table ``{start_nm, stop_nm, step_nm}``; 1..400 positive values."""
+    v = t.raw(key, None)
     if isinstance(v, list):
-        try:
-            arr = np.array([float(x) for x in v])
-        except (TypeError, ValueError) as exc:
-            raise _err(where, key, v, "list of positive numbers") from exc
+        if not all(isinstance(x, (int, float)) and not isinstance(x, bool) for x in v):
+            t.fail(key, v, "expected a list of positive numbers")
+        arr = np.array([float(x) for x in v])
     elif isinstance(v, dict):
-        start = _pos(v, "start_nm", f"{where}.{key}")
-        stop = _pos(v, "stop_nm", f"{where}.{key}")
-        step = _pos(v, "step_nm", f"{where}.{key}")
+        r = t.table(key)
+        start, stop, step = _pos(r, "start_nm"), _pos(r, "stop_nm"), _pos(r, "step_nm")
         if stop < start:
-            raise _err(where, key, v, "stop_nm >= start_nm")
+            t.fail(key, v, "expected stop_nm >= start_nm")
         arr = start + step * np.arange(int(math.floor((stop - start) / step + 1e-9)) + 1)
     else:
-        raise CellBuildError(f"{where}: missing key '{key}' (a list of values in nm or a table "
+        raise CellBuildError(f"{t.where}: missing key '{t.key(key)}' (a list of values in nm or a table "
                              "{start_nm, stop_nm, step_nm})")
     if arr.size == 0 or arr.size > 400 or np.any(arr <= 0) or not np.all(np.isfinite(arr)):
-        raise _err(where, key, v, "1..400 positive values")
+        t.fail(key, v, "expected 1..400 positive values")
     return arr
 
 
-def _load_tables(path: Path, sections) -> dict:
+def _load_tables(path: Path, sections) -> TomlTable:
     """Read a TOML file that must hold the given tables; one-line CellBuildError otherwise."""
-    where = str(path)
-    try:
-        data = tomllib.loads(path.read_text(encoding="utf-8"))
-    except OSError as exc:
-        raise CellBuildError(f"{where}: cannot read ({exc.strerror})") from exc
-    except (tomllib.TOMLDecodeError, UnicodeDecodeError) as exc:
-        raise CellBuildError(f"{where}: not valid TOML ({exc})") from exc
+    doc = TomlTable(load_toml(path, what="TOML file", error=CellBuildError), str(path), error=CellBuildError)
     for sec in sections:
-        if not isinstance(data.get(sec), dict):
-            raise CellBuildError(f"{where}: missing table [{sec}]")
-    return data
+        doc.table(sec)
+    return doc
+
+
+def _rules(ru: TomlTable) -> dict:
+    return {"min_feature_nm": _pos(ru, "min_feature_nm"), "min_gap_nm": _pos(ru, "min_gap_nm"),
+            "max_aspect_ratio": _pos(ru, "max_aspect_ratio"), "grid_nm": _pos(ru, "grid_nm"),
+            "source": _text(ru, "source")}
+
+
+def _stack_layers(st: TomlTable, *, background: bool) -> list[dict]:
+    layers = []
+    for lay in st.tables("layers"):
+        entry = {"name": _text(lay, "name"), "material": _text(lay, "material"),
+                 "thickness_nm": _pos(lay, "thickness_nm", hi=1e5 if background else 1e7),
+                 "patterned": lay.boolean("patterned", False)}
+        if background:
+            entry["background"] = _text(lay, "background", "air")
+        layers.append(entry)
+    return layers
 
 
 def load_build_spec(path) -> BuildSpec:
-    """Read and validate a build spec TOML file.
+    """Read and validate a build spec TOML file (through :class:`metalay.validate.TomlTable`).
 
     Raises
     ------
     CellBuildError
-        Naming the file, key, value and allowed range.
+        Naming the file, the dotted key, the value and the allowed range.
     """
     path = Path(path)
     where = str(path)
-    data = _load_tables(path, ("library", "stack", "rules", "sweep"))
-    lib, st, ru, sw = data["library"], data["stack"], data["rules"], data["sweep"]
-    so, bd = data.get("solver", {}), data.get("band", {})
-    w = f"{where} [library]"
-    name = _get(lib, "name", w, str, "text like 'tio2-nanofin-532'")
+    doc = _load_tables(path, ("library", "stack", "rules", "sweep"))
+    lib, st, ru, sw = doc.table("library"), doc.table("stack"), doc.table("rules"), doc.table("sweep")
+    so, bd = doc.table("solver", {}), doc.table("band", {})
+    name = _text(lib, "name")
     if not name or any(c in name for c in "/\\ ") or name.startswith("."):
-        raise _err(w, "name", name, "non-empty, no spaces or slashes")
-    mode = _get(lib, "mode", w, str, "'transmission' or 'reflection'")
-    if mode not in ("transmission", "reflection"):
-        raise _err(w, "mode", mode, "'transmission' or 'reflection'")
-    mech = _get(lib, "phase_mechanism", w, str, "'geometric' or 'propagation'")
-    if mech not in ("geometric", "propagation"):
-        raise _err(w, "phase_mechanism", mech, "'geometric' or 'propagation'")
-    lattice = _get(lib, "lattice", w, str, "'square'", "square")
+        lib.fail("name", name, "expected non-empty text, no spaces or slashes")
+    mode = lib.string("mode", options=("transmission", "reflection"))
+    mech = lib.string("phase_mechanism", options=("geometric", "propagation"))
+    lattice = lib.string("lattice", "square")
     if lattice != "square":
-        raise _err(w, "lattice", lattice, "'square' (the solver handles rectangular lattices only)")
-    wl = _pos(lib, "design_wavelength_nm", w, lo=100.0, hi=20000.0)
-    period = _pos(lib, "period_nm", w, hi=1e5)
-    w = f"{where} [stack]"
-    inc = _get(st, "incident_medium", w, str, "material name")
-    ext = _get(st, "exit_medium", w, str, "material name")
-    layers_raw = st.get("layers")
-    if not isinstance(layers_raw, list) or not layers_raw:
-        raise CellBuildError(f"{w}: need at least one [[stack.layers]] table")
-    layers = []
-    for k, lay in enumerate(layers_raw):
-        lw = f"{w} layers[{k}]"
-        layers.append({"name": _get(lay, "name", lw, str, "text"),
-                       "material": _get(lay, "material", lw, str, "material name"),
-                       "thickness_nm": _pos(lay, "thickness_nm", lw, hi=1e5),
-                       "patterned": _get(lay, "patterned", lw, bool, "true/false", False, required=False),
-                       "background": _get(lay, "background", lw, str, "material name", "air", required=False)})
+        lib.fail("lattice", lattice, "allowed: 'square' (the solver handles rectangular lattices only)")
+    wl = _pos(lib, "design_wavelength_nm", lo=100.0, hi=20000.0)
+    period = _pos(lib, "period_nm", hi=1e5)
+    inc = _text(st, "incident_medium")
+    ext = _text(st, "exit_medium")
+    layers = _stack_layers(st, background=True)
     if sum(lay["patterned"] for lay in layers) != 1:
-        raise CellBuildError(f"{w}: exactly one layer must have patterned = true")
-    checks = [(f"layers[{k}].{key}", lay[key]) for k, lay in enumerate(layers) for key in ("material", "background")]
-    for key, mat in checks + [("incident_medium", inc), ("exit_medium", ext)]:
+        raise CellBuildError(f"{where}: key 'stack.layers': exactly one layer must have patterned = true")
+    checks = [(f"stack.layers[{k}].{key}", lay[key]) for k, lay in enumerate(layers)
+              for key in ("material", "background")]
+    for key, mat in checks + [("stack.incident_medium", inc), ("stack.exit_medium", ext)]:
         try:
             get_material(mat, base_dir=path.parent)
         except MetalayError as exc:
-            raise CellBuildError(f"{w}: key '{key}': {exc}") from exc
-    w = f"{where} [rules]"
-    rules = {"min_feature_nm": _pos(ru, "min_feature_nm", w), "min_gap_nm": _pos(ru, "min_gap_nm", w),
-             "max_aspect_ratio": _pos(ru, "max_aspect_ratio", w), "grid_nm": _pos(ru, "grid_nm", w),
-             "source": _get(ru, "source", w, str, "citation or 'Common practice (no source)'")}
-    w = f"{where} [sweep]"
-    kind = _get(sw, "kind", w, str, "'nanofin', 'slot', 'elliptic_pillar' or 'round_pillar'")
-    if kind not in _DIMS:
-        raise _err(w, "kind", kind, "'nanofin', 'slot', 'elliptic_pillar' or 'round_pillar'")
+            raise CellBuildError(f"{where}: key '{key}': {exc}") from exc
+    rules = _rules(ru)
+    kind = sw.string("kind", options=tuple(_DIMS))
     if mech == "geometric" and kind == "round_pillar":
-        raise _err(w, "kind", kind, "an anisotropic kind for geometric phase ('nanofin', 'elliptic_pillar')")
-    dims = {d: _values(sw, d, w) for d in _DIMS[kind]}
+        sw.fail("kind", kind, "allowed: an anisotropic kind for geometric phase ('nanofin', 'elliptic_pillar')")
+    dims = {d: _values(sw, d) for d in _DIMS[kind]}
     patterned = next(lay for lay in layers if lay["patterned"])
-    heights = tuple(_values(sw, "height_nm", w)) if "height_nm" in sw else (patterned["thickness_nm"],)
-    levels = int(_pos(sw, "levels", w, 8.0, hi=64)) if mech == "propagation" else 1
-    w = f"{where} [solver]"
-    hx = int(_pos(so, "harmonics_x", w, 6.0, lo=0.5, hi=25))
-    hy = int(_pos(so, "harmonics_y", w, float(hx), lo=0.5, hi=25))
-    n_stairs = int(_pos(so, "n_stairs", w, 8.0, lo=0.5, hi=64))
-    extra = so.get("convergence_extra", [2, 4])
-    if not isinstance(extra, list) or not all(isinstance(e, int) and 0 < e <= 10 for e in extra):
-        raise _err(w, "convergence_extra", extra, "list of integers 1..10")
-    w = f"{where} [band]"
-    half = _pos(bd, "relative_half_width", w, 0.15, hi=0.5)
-    count = int(_pos(bd, "count", w, 11.0, lo=0.5, hi=201))
-    return BuildSpec(where, name, _get(lib, "description", f"{where} [library]", str, "text", ""), mode, mech, wl,
-                     period, lattice, _get(lib, "geometry_source", f"{where} [library]", str, "citation"),
-                     _get(lib, "notes", f"{where} [library]", str, "text", "", required=False), inc, ext,
+    heights = tuple(_values(sw, "height_nm")) if sw.has("height_nm") else (patterned["thickness_nm"],)
+    levels = int(_pos(sw, "levels", 8.0, hi=64)) if mech == "propagation" else 1
+    hx = int(_pos(so, "harmonics_x", 6.0, lo=0.5, hi=25))
+    hy = int(_pos(so, "harmonics_y", float(hx), lo=0.5, hi=25))
+    n_stairs = int(_pos(so, "n_stairs", 8.0, lo=0.5, hi=64))
+    extra = so.numbers("convergence_extra", [2, 4], lo=1, hi=10, integer=True, allowed="a list of integers 1..10")
+    half = _pos(bd, "relative_half_width", 0.15, hi=0.5)
+    count = int(_pos(bd, "count", 11.0, lo=0.5, hi=201))
+    return BuildSpec(where, name, _text(lib, "description", ""), mode, mech, wl,
+                     period, lattice, _text(lib, "geometry_source"),
+                     _text(lib, "notes", ""), inc, ext,
                      tuple(layers), rules, kind, dims, heights, levels, (hx, hy), n_stairs, tuple(extra), half,
                      count)
 
@@ -535,27 +504,15 @@ def import_responses(table_path, meta_path):
     meta_path, table_path = Path(meta_path), Path(table_path)
     where = str(meta_path)
     meta = _load_tables(meta_path, ("library", "stack", "rules"))
-    lib, st, ru = meta["library"], meta["stack"], meta["rules"]
-    w = f"{where} [library]"
-    name = _get(lib, "name", w, str, "text")
-    mode = _get(lib, "mode", w, str, "'transmission' or 'reflection'")
-    if mode not in ("transmission", "reflection"):
-        raise _err(w, "mode", mode, "'transmission' or 'reflection'")
-    mech = _get(lib, "phase_mechanism", w, str, "'geometric' or 'propagation'")
-    if mech not in ("geometric", "propagation"):
-        raise _err(w, "phase_mechanism", mech, "'geometric' or 'propagation'")
-    cells_raw = meta.get("cells")
-    if not isinstance(cells_raw, list) or not cells_raw:
-        raise CellBuildError(f"{where}: need at least one [[cells]] table")
+    lib, st, ru = meta.table("library"), meta.table("stack"), meta.table("rules")
+    name = _text(lib, "name")
+    mode = lib.string("mode", options=("transmission", "reflection"))
+    mech = lib.string("phase_mechanism", options=("geometric", "propagation"))
     cells = []
-    for k, cr in enumerate(cells_raw):
-        cw = f"{where} cells[{k}]"
-        kind = _get(cr, "kind", cw, str, ", ".join(CELL_KINDS))
-        if kind not in CELL_KINDS:
-            raise _err(cw, "kind", kind, ", ".join(CELL_KINDS))
-        cells.append(CellSpec(id=_get(cr, "id", cw, str, "text"), kind=kind,
-                              layer=_get(cr, "layer", cw, str, "layer name"),
-                              dims_nm=tuple((d, _pos(cr, d, cw)) for d in CELL_KINDS[kind])))
+    for cr in meta.tables("cells"):
+        kind = cr.string("kind", options=tuple(CELL_KINDS))
+        cells.append(CellSpec(id=_text(cr, "id"), kind=kind, layer=_text(cr, "layer"),
+                              dims_nm=tuple((d, _pos(cr, d)) for d in CELL_KINDS[kind])))
     ids = [c.id for c in cells]
     if len(set(ids)) != len(ids):
         raise CellBuildError(f"{where}: duplicate cell ids")
@@ -604,30 +561,18 @@ def import_responses(table_path, meta_path):
         elif wl != wls:
             raise CellBuildError(f"{tw}: cell_id {cid!r} is tabulated at different wavelengths than {ids[0]!r}")
     arr = np.array([per[i] for i in ids])
-    w = f"{where} [stack]"
-    layers_raw = st.get("layers")
-    if not isinstance(layers_raw, list) or not layers_raw:
-        raise CellBuildError(f"{w}: need at least one [[stack.layers]] table")
-    layers = tuple({"name": _get(lay, "name", w, str, "text"), "material": _get(lay, "material", w, str, "name"),
-                    "thickness_nm": _pos(lay, "thickness_nm", w),
-                    "patterned": _get(lay, "patterned", w, bool, "true/false", False, required=False)}
-                   for lay in layers_raw)
-    w = f"{where} [rules]"
-    rules = {"min_feature_nm": _pos(ru, "min_feature_nm", w), "min_gap_nm": _pos(ru, "min_gap_nm", w),
-             "max_aspect_ratio": _pos(ru, "max_aspect_ratio", w), "grid_nm": _pos(ru, "grid_nm", w),
-             "source": _get(ru, "source", w, str, "citation or 'Common practice (no source)'")}
-    inc = _get(st, "incident_medium", f"{where} [stack]", str, "material name")
-    prov = {"geometry_source": _get(lib, "geometry_source", f"{where} [library]", str, "citation"),
-            "responses_source": "imported: " + _get(lib, "responses_source", f"{where} [library]", str,
-                                                    "how the responses were simulated (code, settings)"),
+    layers = tuple(_stack_layers(st, background=False))
+    rules = _rules(ru)
+    inc = _text(st, "incident_medium")
+    prov = {"geometry_source": _text(lib, "geometry_source"),
+            "responses_source": "imported: " + _text(lib, "responses_source"),
             "solver": None, "materials": None, "notes": f"imported with metalay cells import from {table_path.name}"}
-    return CellLibrary(name=name, description=_get(lib, "description", f"{where} [library]", str, "text", ""),
+    return CellLibrary(name=name, description=_text(lib, "description", ""),
                        mode=mode, phase_mechanism=mech,
-                       design_wavelength_nm=_pos(lib, "design_wavelength_nm", f"{where} [library]", lo=100, hi=2e4),
-                       period_nm=_pos(lib, "period_nm", f"{where} [library]"), lattice="square",
+                       design_wavelength_nm=_pos(lib, "design_wavelength_nm", lo=100, hi=2e4),
+                       period_nm=_pos(lib, "period_nm"), lattice="square",
                        incident_medium=inc,
-                       exit_medium=_get(st, "exit_medium", f"{where} [stack]", str, "material name")
-                       if mode == "transmission" else inc,
+                       exit_medium=_text(st, "exit_medium") if mode == "transmission" else inc,
                        layers=layers, rules=rules, provenance=prov, cells=tuple(cells),
                        wavelengths_nm=np.array(wls), t_long=arr[:, :, 1] + 1j * arr[:, :, 2],
                        t_short=arr[:, :, 3] + 1j * arr[:, :, 4], power_long=arr[:, :, 5], power_short=arr[:, :, 6])

@@ -22,13 +22,9 @@ from pathlib import Path
 
 import numpy as np
 
-from metalay.errors import MetalayError
+from metalay.errors import MaterialError, MetalayError
 
-__all__ = ["Material", "MaterialError", "get_material", "material_names", "malitson_silica_index"]
-
-
-class MaterialError(MetalayError):
-    """Unknown material, malformed table, or wavelength outside a material's range."""
+__all__ = ["Material", "get_material", "material_names", "malitson_silica_index"]
 
 
 @dataclass(frozen=True)

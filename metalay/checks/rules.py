@@ -37,24 +37,20 @@ import math
 import os
 import re
 import time
-import tomllib
 from dataclasses import dataclass, field, replace
 from pathlib import Path
 
 import numpy as np
 
-from metalay.errors import MaskReadError, MetalayError
+from metalay.errors import MaskReadError, MetalayError, RulesError
 from metalay.io.gdsread import FlatPolygons, file_sha256, read_mask
+from metalay.validate import TomlTable, load_toml
 
 __all__ = [
     "LayerRules", "RuleSet", "Violations", "RuleResult", "RuleReport", "RULE_REASONS", "RULE_KEYS",
     "load_rules", "parse_rules", "rules_from_library", "check_mask", "write_marker_gds", "compile_check",
-    "RulesError", "polygon_distance_kernel",
+    "polygon_distance_kernel",
 ]
-
-
-class RulesError(MetalayError):
-    """A rules file or value is invalid (exit code 2)."""
 
 
 RULE_REASONS = {
@@ -150,102 +146,68 @@ class RuleSet:
         return sorted(out)
 
 
-def _fail(where: str, key: str, value, allowed: str) -> RulesError:
-    return RulesError(f"{where}: key '{key}' = {value!r} is invalid; allowed: {allowed}")
-
-
 def parse_rules(data: dict, *, where: str = "<rules>") -> RuleSet:
     """Validate a rules dictionary (the parsed TOML) and return a :class:`RuleSet`.
 
-    See :func:`load_rules` for the format.
+    See :func:`load_rules` for the format. Errors (:class:`RulesError`) name the file, the dotted key, the value
+    and the allowed range, through :class:`metalay.validate.TomlTable`.
     """
-    top_keys = {"format", "format_version", "name", "description", "write_field", "layers"}
-    for k in data:
-        if k not in top_keys:
-            raise _fail(where, k, data[k], "one of " + ", ".join(sorted(top_keys)))
-    if data.get("format", "metalay.rules") != "metalay.rules":
-        raise _fail(where, "format", data.get("format"), "'metalay.rules'")
-    if data.get("format_version", 1) != 1:
-        raise _fail(where, "format_version", data.get("format_version"), "1")
-    name = data.get("name", "rules")
-    if not isinstance(name, str):
-        raise _fail(where, "name", name, "a string")
+    top = TomlTable(data, where, error=RulesError)
+    top.string("format", "metalay.rules", options=("metalay.rules",))
+    version = top.raw("format_version", 1)
+    if version != 1:
+        top.fail("format_version", version, "allowed: 1")
+    name = top.string("name", "rules")
+    description = str(top.raw("description", ""))
     wf, wfc, wfs = None, (0.0, 0.0), ""
-    if "write_field" in data:
-        t = data["write_field"]
-        if not isinstance(t, dict):
-            raise _fail(where, "write_field", t, "a table with size_um, centre_um, source")
-        for k in t:
-            if k not in ("size_um", "centre_um", "source"):
-                raise _fail(where, f"write_field.{k}", t[k], "size_um, centre_um, source")
-        wf = t.get("size_um")
-        if not isinstance(wf, (int, float)) or isinstance(wf, bool) or not (0 < wf <= 1e5):
-            raise _fail(where, "write_field.size_um", wf, "a number in (0, 1e5] micrometres")
-        c = t.get("centre_um", [0.0, 0.0])
-        if (not isinstance(c, list) or len(c) != 2
-                or not all(isinstance(v, (int, float)) and not isinstance(v, bool) for v in c)):
-            raise _fail(where, "write_field.centre_um", c, "[x, y] in micrometres")
-        wf, wfc, wfs = float(wf), (float(c[0]), float(c[1])), str(t.get("source", ""))
-    layers_raw = data.get("layers", [])
-    if not isinstance(layers_raw, list) or not layers_raw:
-        raise _fail(where, "layers", layers_raw, "a non-empty array of tables [[layers]]")
+    if top.has("write_field"):
+        t = top.table("write_field")
+        wf = float(t.number("size_um", lo=0, lo_open=True, hi=1e5))
+        c = t.numbers("centre_um", [0.0, 0.0], length=2, allowed="[x, y] in micrometres")
+        wfc, wfs = (float(c[0]), float(c[1])), str(t.raw("source", ""))
+        t.check_unknown()
     layers = []
     seen = set()
-    for n, t in enumerate(layers_raw):
-        w = f"layers[{n}]"
-        if not isinstance(t, dict):
-            raise _fail(where, w, t, "a table")
-        kw = {}
-        for k in ("layer", "datatype"):
-            v = t.get(k, 0 if k == "datatype" else None)
-            if not isinstance(v, int) or isinstance(v, bool) or not (0 <= v <= 65535):
-                raise _fail(where, f"{w}.{k}", v, "an integer 0..65535")
-            kw[k] = v
-        if (kw["layer"], kw["datatype"]) in seen:
-            raise _fail(where, f"{w}.layer", kw["layer"], "each (layer, datatype) once")
-        seen.add((kw["layer"], kw["datatype"]))
-        for k, v in t.items():
-            if k in ("layer", "datatype"):
-                continue
-            if k == "name":
-                if not isinstance(v, str):
-                    raise _fail(where, f"{w}.name", v, "a string")
-                kw["name"] = v
-            elif k == "sources":
-                if not isinstance(v, dict) or not all(isinstance(s, str) for s in v.values()):
-                    raise _fail(where, f"{w}.sources", v, "a table of strings keyed by rule key")
-                for sk in v:
-                    if sk not in RULE_KEYS:
-                        raise _fail(where, f"{w}.sources.{sk}", v[sk], "a rule key of this table")
-                kw["sources"] = tuple(sorted(v.items()))
-            elif k in RULE_KEYS:
-                typ, lo, hi = RULE_KEYS[k]
-                if typ is bool:
-                    if not isinstance(v, bool):
-                        raise _fail(where, f"{w}.{k}", v, "true or false")
-                elif typ is list:
-                    if (not isinstance(v, list) or len(v) != 2
-                            or not all(isinstance(x, int) and not isinstance(x, bool) and 0 <= x <= 65535
-                                       for x in v)):
-                        raise _fail(where, f"{w}.{k}", v, "[layer, datatype], integers 0..65535")
-                    v = (int(v[0]), int(v[1]))
-                else:
-                    ok = isinstance(v, (int, float)) and not isinstance(v, bool) and (typ is float or
-                                                                                       isinstance(v, int))
-                    if not ok or not (lo <= v <= hi) or (typ is float and not math.isfinite(v)):
-                        kind = "an integer" if typ is int else "a number"
-                        raise _fail(where, f"{w}.{k}", v, f"{kind} in [{lo:g}, {hi:g}]")
-                    v = typ(v)
-                kw[k] = v
-            else:
-                raise _fail(where, f"{w}.{k}", v, "layer, datatype, name, sources, " + ", ".join(RULE_KEYS))
-        lr = LayerRules(**kw)
-        if (lr.max_aspect_ratio is None) != (lr.film_height_nm is None):
-            raise _fail(where, f"{w}.max_aspect_ratio", lr.max_aspect_ratio,
-                        "given together with film_height_nm (both or neither)")
+    for t in top.tables("layers"):
+        lr = _parse_layer_rules(t)
+        if (lr.layer, lr.datatype) in seen:
+            t.fail("layer", lr.layer, "expected each (layer, datatype) once")
+        seen.add((lr.layer, lr.datatype))
         layers.append(lr)
-    return RuleSet(name=name, layers=tuple(layers), description=str(data.get("description", "")),
+    top.check_unknown()
+    return RuleSet(name=name, layers=tuple(layers), description=description,
                    write_field_um=wf, write_field_centre_um=wfc, write_field_source=wfs)
+
+
+def _parse_layer_rules(t: TomlTable) -> LayerRules:
+    """One ``[[layers]]`` table: layer, datatype, name, sources and any of :data:`RULE_KEYS`."""
+    kw = {"layer": t.number("layer", integer=True, lo=0, hi=65535),
+          "datatype": t.number("datatype", 0, integer=True, lo=0, hi=65535)}
+    if t.has("name"):
+        kw["name"] = t.string("name")
+    if t.has("sources"):
+        src = t.raw("sources")
+        if not isinstance(src, dict) or not all(isinstance(v, str) for v in src.values()):
+            t.fail("sources", src, "expected a table of strings keyed by rule key")
+        TomlTable(src, t.where, t.key("sources."), error=RulesError).check_unknown(allowed=RULE_KEYS)
+        kw["sources"] = tuple(sorted(src.items()))
+    for k, (typ, lo, hi) in RULE_KEYS.items():
+        if not t.has(k):
+            continue
+        if typ is bool:
+            kw[k] = t.boolean(k)
+        elif typ is list:
+            v = t.numbers(k, length=2, lo=0, hi=65535, integer=True,
+                          allowed="[layer, datatype], integers 0..65535")
+            kw[k] = (int(v[0]), int(v[1]))
+        else:
+            kind = "an integer" if typ is int else "a number"
+            kw[k] = typ(t.number(k, lo=lo, hi=hi, integer=typ is int, allowed=f"{kind} in [{lo:g}, {hi:g}]"))
+    t.check_unknown(allowed=("layer", "datatype", "name", "sources", *RULE_KEYS))
+    lr = LayerRules(**kw)
+    if (lr.max_aspect_ratio is None) != (lr.film_height_nm is None):
+        t.fail("max_aspect_ratio", lr.max_aspect_ratio, "give it together with film_height_nm (both or neither)")
+    return lr
 
 
 def load_rules(path) -> RuleSet:
@@ -274,14 +236,7 @@ def load_rules(path) -> RuleSet:
             except (ModuleNotFoundError, TypeError):
                 pass
         p = bundled
-    try:
-        raw = p.read_bytes()
-    except OSError as exc:
-        raise RulesError(f"{path}: cannot read rules file ({exc.strerror or exc})") from exc
-    try:
-        data = tomllib.loads(raw.decode("utf-8"))
-    except (tomllib.TOMLDecodeError, UnicodeDecodeError) as exc:
-        raise RulesError(f"{p}: not a valid TOML rules file ({exc})") from exc
+    data = load_toml(p, what="rules file", error=RulesError)
     return replace(parse_rules(data, where=str(p)), source_path=str(p))
 
 

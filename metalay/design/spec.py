@@ -7,11 +7,11 @@ The full key reference is in the README ("Design file reference").
 from __future__ import annotations
 
 import math
-import tomllib
 from dataclasses import dataclass, field
 from pathlib import Path
 
 from metalay.errors import DesignError
+from metalay.validate import TomlTable, load_toml
 from metalay.design.lattice import Aperture, Lattice
 from metalay.design.phase import (PHASE_TERM_KINDS, Axicon, Channel, Lens, Multiplex, QPlate, Tilt, Vortex, load_phase_map)
 
@@ -102,84 +102,6 @@ class Design:
     raw: dict = field(default_factory=dict, compare=False, repr=False)
 
 
-class _Reader:
-    """Typed access to a TOML table with error messages that name file and dotted key."""
-
-    def __init__(self, data: dict, where: str, prefix: str = ""):
-        self.data = data
-        self.where = where
-        self.prefix = prefix
-        self.used: set[str] = set()
-
-    def key(self, k: str) -> str:
-        return f"{self.prefix}{k}"
-
-    def fail(self, k: str, value, allowed: str):
-        raise DesignError(f"{self.where}: key '{self.key(k)}' = {value!r}: {allowed}")
-
-    def has(self, k: str) -> bool:
-        return k in self.data
-
-    def raw(self, k: str, default=...):
-        self.used.add(k)
-        if k not in self.data:
-            if default is ...:
-                raise DesignError(f"{self.where}: missing key '{self.key(k)}'")
-            return default
-        return self.data[k]
-
-    def number(self, k: str, default=..., *, lo=None, hi=None, lo_open=False, integer=False):
-        v = self.raw(k, default)
-        if v is None:
-            return v
-        rng = _range_text(lo, hi, lo_open)
-        if isinstance(v, bool) or not isinstance(v, (int, float)) or (integer and not isinstance(v, int)):
-            self.fail(k, v, f"expected {'an integer' if integer else 'a number'} {rng}".rstrip())
-        if isinstance(v, float) and not math.isfinite(v):
-            self.fail(k, v, f"must be finite {rng}".rstrip())
-        if lo is not None and (v < lo or (lo_open and v == lo)) or hi is not None and v > hi:
-            self.fail(k, v, f"out of range, allowed {rng}")
-        return v
-
-    def string(self, k: str, default=..., *, options=None):
-        v = self.raw(k, default)
-        if v is None:
-            return v
-        if not isinstance(v, str):
-            self.fail(k, v, "expected a string" + (f", one of {list(options)}" if options else ""))
-        if options is not None and v not in options:
-            self.fail(k, v, f"not one of {list(options)}")
-        return v
-
-    def boolean(self, k: str, default=...):
-        v = self.raw(k, default)
-        if not isinstance(v, bool):
-            self.fail(k, v, "expected true or false")
-        return v
-
-    def table(self, k: str, default=...) -> "_Reader":
-        v = self.raw(k, default)
-        if not isinstance(v, dict):
-            self.fail(k, v, "expected a table")
-        return _Reader(v, self.where, f"{self.key(k)}.")
-
-    def check_unknown(self):
-        unknown = sorted(set(self.data) - self.used)
-        if unknown:
-            raise DesignError(f"{self.where}: unknown key '{self.key(unknown[0])}' (allowed here: "
-                              f"{sorted(self.used)})")
-
-
-def _range_text(lo, hi, lo_open) -> str:
-    if lo is None and hi is None:
-        return ""
-    if hi is None:
-        return f"({'>' if lo_open else '>='} {lo})"
-    if lo is None:
-        return f"(<= {hi})"
-    return f"({'>' if lo_open else '>='} {lo} and <= {hi})"
-
-
 def load_design(path: str | Path) -> Design:
     """Read and validate a design file.
 
@@ -190,25 +112,14 @@ def load_design(path: str | Path) -> Design:
     """
     path = Path(path)
     where = str(path)
-    try:
-        raw = path.read_bytes()
-    except FileNotFoundError as exc:
-        raise DesignError(f"{where}: design file not found") from exc
-    except OSError as exc:
-        raise DesignError(f"{where}: cannot read design file ({exc.strerror or exc})") from exc
-    try:
-        data = tomllib.loads(raw.decode("utf-8"))
-    except UnicodeDecodeError as exc:
-        raise DesignError(f"{where}: not UTF-8 text") from exc
-    except tomllib.TOMLDecodeError as exc:
-        raise DesignError(f"{where}: not valid TOML ({exc})") from exc
+    data = load_toml(path, what="design file", error=DesignError)
     return parse_design(data, where=where, base_dir=path.parent)
 
 
 def parse_design(data: dict, *, where: str = "<memory>", base_dir: str | Path = ".") -> Design:
     """Validate an already-parsed TOML document (see :func:`load_design`)."""
     base_dir = Path(base_dir)
-    top = _Reader(data, where)
+    top = TomlTable(data, where)
     d = top.table("design")
     name = d.string("name")
     if not name or len(name) > 64 or not all(c.isalnum() or c in "-_." for c in name):
@@ -224,10 +135,7 @@ def parse_design(data: dict, *, where: str = "<memory>", base_dir: str | Path = 
         library = str((base_dir / library))
     d.check_unknown()
 
-    terms_raw = top.raw("phase")
-    if not isinstance(terms_raw, list) or not terms_raw:
-        top.fail("phase", terms_raw, "expected a non-empty list of [[phase]] tables")
-    terms = tuple(_parse_term(t, where, k, base_dir, wavelength_nm) for k, t in enumerate(terms_raw))
+    terms = tuple(_parse_term(t, base_dir, wavelength_nm) for t in top.tables("phase"))
 
     a = top.table("aperture")
     shape = a.string("shape", options=_SHAPES)
@@ -362,10 +270,7 @@ def _estimated_sites(aperture: Aperture, lattice: Lattice) -> float:
     return aperture_area_um2(aperture) / cell_area_um2(lattice)
 
 
-def _parse_term(t, where: str, k: int, base_dir: Path, wavelength_nm: float):
-    if not isinstance(t, dict):
-        raise DesignError(f"{where}: key 'phase[{k}]' = {t!r}: expected a table")
-    r = _Reader(t, where, f"phase[{k}].")
+def _parse_term(r: TomlTable, base_dir: Path, wavelength_nm: float):
     kind = r.string("kind", options=PHASE_TERM_KINDS)
     if kind == "vortex":
         term = Vortex(r.number("charge", integer=True, lo=-1000, hi=1000),
@@ -388,14 +293,8 @@ def _parse_term(t, where: str, k: int, base_dir: Path, wavelength_nm: float):
             r.fail("q", q, "must be a multiple of 1/2 (the pattern must be continuous around the centre)")
         term = QPlate(float(q), float(r.number("alpha0_deg", 0.0, lo=-360, hi=360)))
     elif kind == "multiplex":
-        chans = r.raw("channels")
-        if not isinstance(chans, list) or not chans or len(chans) > 64:
-            r.fail("channels", chans, "expected a list of 1 to 64 channel tables")
         parsed = []
-        for n, ch in enumerate(chans):
-            if not isinstance(ch, dict):
-                r.fail(f"channels[{n}]", ch, "expected a table")
-            cr = _Reader(ch, where, f"phase[{k}].channels[{n}].")
+        for cr in r.tables("channels", max_count=64):
             parsed.append(Channel(cr.number("charge", integer=True, lo=-1000, hi=1000),
                                   float(cr.number("angle_deg", lo=0.0, hi=89.0)),
                                   float(cr.number("azimuth_deg", 0.0, lo=-360.0, hi=360.0)),
@@ -410,12 +309,12 @@ def _parse_term(t, where: str, k: int, base_dir: Path, wavelength_nm: float):
                 or not all(isinstance(v, (int, float)) and not isinstance(v, bool) for v in extent)):
             r.fail("extent_um", extent, "expected [x_min, x_max, y_min, y_max] in micrometres")
         path = Path(file) if Path(file).is_absolute() else base_dir / file
-        term = load_phase_map(path, extent_um=extent, where=f"{where}: key 'phase[{k}].file'")
+        term = load_phase_map(path, extent_um=extent, where=f"{r.where}: key '{r.key('file')}'")
     r.check_unknown()
     return term
 
 
-def _parse_tilt(r: _Reader, wavelength_nm: float) -> Tilt:
+def _parse_tilt(r: TomlTable, wavelength_nm: float) -> Tilt:
     azimuth = float(r.number("azimuth_deg", 0.0, lo=-360.0, hi=360.0))
     if r.has("carrier_period_um"):
         period_um = r.number("carrier_period_um", lo=0, lo_open=True, hi=1e6)

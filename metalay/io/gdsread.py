@@ -24,7 +24,7 @@ from pathlib import Path
 
 import numpy as np
 
-from metalay.errors import MaskReadError
+from metalay.errors import GeometryError, MaskReadError
 
 __all__ = [
     "FlatPolygons",
@@ -114,7 +114,7 @@ class FlatPolygons:
         np.cumsum(counts, out=start[1:])
         xy = np.asarray(xy_db, dtype=np.int64).reshape(-1, 2)
         if start[-1] != xy.shape[0]:
-            raise ValueError(f"vertex counts sum to {start[-1]} but xy_db has {xy.shape[0]} rows")
+            raise GeometryError(f"vertex counts sum to {start[-1]} but xy_db has {xy.shape[0]} rows")
         return FlatPolygons(np.broadcast_to(np.asarray(layer, np.int32), counts.shape).copy(),
                             np.broadcast_to(np.asarray(datatype, np.int32), counts.shape).copy(),
                             start, xy, float(db_unit_m), float(user_unit_m))

@@ -85,7 +85,7 @@ import numpy as np
 import shapely
 
 from metalay.cells.cellkinds import polygon_vertex_count
-from metalay.errors import DesignError, LibraryError, OutputError
+from metalay.errors import DesignError, GeometryError, LibraryError, OutputError
 from metalay.design.lattice import Aperture, Lattice, row_range
 from metalay.mask.layout import Polygon
 from metalay.cells.library import CellLibrary, CellSpec
@@ -135,8 +135,10 @@ def offset_convex_polygons(vertices, distance, *, corner: str = "sharp") -> np.n
 
     Raises
     ------
-    ValueError
+    GeometryError
         When the polygons are not convex and counter-clockwise, or a shrink makes an edge vanish.
+    DesignError
+        When ``corner`` is not one of :data:`BIAS_CORNERS`.
 
     Notes
     -----
@@ -147,16 +149,16 @@ def offset_convex_polygons(vertices, distance, *, corner: str = "sharp") -> np.n
     edge lines.
     """
     if corner not in BIAS_CORNERS:
-        raise ValueError(f"corner = {corner!r}: not one of {list(BIAS_CORNERS)}")
+        raise DesignError(f"corner = {corner!r}: not one of {list(BIAS_CORNERS)}")
     v = np.asarray(vertices, dtype=np.float64)
     d = float(distance)
     e = np.roll(v, -1, axis=-2) - v  # edge k from vertex k to k+1
     length = np.hypot(e[..., 0], e[..., 1])
     if np.any(length <= 0):
-        raise ValueError("polygon has a zero-length edge")
+        raise GeometryError("polygon has a zero-length edge")
     cross = e[..., 0] * np.roll(e, -1, axis=-2)[..., 1] - e[..., 1] * np.roll(e, -1, axis=-2)[..., 0]
     if np.any(cross < -1e-9 * length * np.roll(length, -1, axis=-1)):
-        raise ValueError("polygon is not convex and counter-clockwise")
+        raise GeometryError("polygon is not convex and counter-clockwise")
     n_out = np.stack([e[..., 1], -e[..., 0]], axis=-1) / length[..., None]  # outward normal of edge k
     n2 = n_out
     n1 = np.roll(n_out, 1, axis=-2)  # incoming edge k-1 at vertex k
@@ -168,7 +170,7 @@ def offset_convex_polygons(vertices, distance, *, corner: str = "sharp") -> np.n
         if d < 0:
             e_new = np.roll(out, -1, axis=-2) - out
             if np.any(np.sum(e_new * e, axis=-1) <= 0):
-                raise ValueError(f"offset {d:g} makes an edge vanish")
+                raise GeometryError(f"offset {d:g} makes an edge vanish")
         return out
     s = n1 + n2
     u = s / np.linalg.norm(s, axis=-1, keepdims=True)
@@ -219,14 +221,14 @@ def bias_outline_nm(outline_nm, bias_nm: float, *, corner: str = "sharp", where:
     o = np.asarray(outline_nm, dtype=np.float64)
     try:
         return offset_convex_polygons(o, bias_nm, corner=corner)
-    except ValueError as exc:
+    except GeometryError as exc:
         lo, hi = -float(np.min(np.abs(o))), 0.0  # bisection for the largest allowed shrink (short loop)
         for _ in range(50):
             mid = 0.5 * (lo + hi)
             try:
                 offset_convex_polygons(o, mid, corner="sharp")
                 hi = mid
-            except ValueError:
+            except GeometryError:
                 lo = mid
         raise DesignError(f"{where}: key '{key}' = {bias_nm!r}: {exc}; allowed > {hi:.3f} nm for this cell") \
             from exc
@@ -732,7 +734,7 @@ def fit_write_fields(centres_db, offsets_db, grid: WriteFieldGrid, *, mode: str 
     FieldFit
     """
     if mode not in STRADDLE_MODES:
-        raise ValueError(f"mode = {mode!r}: not one of {list(STRADDLE_MODES)}")
+        raise DesignError(f"mode = {mode!r}: not one of {list(STRADDLE_MODES)}")
     c = np.asarray(centres_db, dtype=np.int64)
     o = np.asarray(offsets_db).astype(np.int64)
     n = c.shape[0]
@@ -859,13 +861,13 @@ def alignment_marks(kind: str, positions_um, *, size_um: float, line_width_um: f
         Mark centres, micrometres.
     """
     if kind not in MARK_KINDS:
-        raise ValueError(f"kind = {kind!r}: not one of {list(MARK_KINDS)}")
+        raise DesignError(f"kind = {kind!r}: not one of {list(MARK_KINDS)}")
     s = 1000.0 / db_unit_nm
     h = int(np.rint(size_um * s / 2))
     if kind == "cross":
         w = max(1, int(np.rint(line_width_um * s / 2)))
         if w >= h:
-            raise ValueError("cross bar width must be smaller than its span")
+            raise DesignError("cross bar width must be smaller than its span")
         shape = np.array([[w, -h], [w, -w], [h, -w], [h, w], [w, w], [w, h], [-w, h], [-w, w], [-h, w],
                           [-h, -w], [-w, -w], [-w, -h]], dtype=np.int64)
     else:

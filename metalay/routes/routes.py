@@ -59,7 +59,7 @@ from metalay.routes import _routes_geom as geo
 from metalay.util.atomic import atomic_write_bytes, atomic_write_text, ensure_dir
 from metalay.errors import DesignError, MetalayError
 from metalay.design.phase import Axicon, Lens, Multiplex, PhaseMap, QPlate, Tilt, Vortex, phase_gradient, target_phase
-from metalay.design.spec import _Reader
+from metalay.validate import TomlTable
 from metalay.io.writer import MAX_GDS_VERTICES, GdsStream
 
 __all__ = [
@@ -153,7 +153,7 @@ def parse_routes(design) -> RouteSettings:
     """
     where = design.source_path
     data = design.raw.get("routes", {}) if isinstance(design.raw, dict) else {}
-    top = _Reader({"routes": data}, where)
+    top = TomlTable({"routes": data}, where)
     r = top.table("routes", {})
     hx, hy = design.aperture.half_extent_um
     extent = 2 * max(hx, hy)

@@ -58,10 +58,9 @@ import numpy as np
 
 from metalay.checks import grid, oam, optics
 from metalay.checks.decode import DecodedSites, cell_shape_table, decode_sites
-from metalay.errors import MetalayError
+from metalay.errors import MetalayError, StudyError
 
 __all__ = [
-    "StudyError",
     "SiteModel",
     "site_model",
     "evaluate_sites",
@@ -82,10 +81,6 @@ EFFICIENCY_NOTE = (
     "zeroth-order reflected power. converted = cross-polarised power; leakage = unconverted power; designed spot = "
     "power in the far-field disk about the designed direction; designed mode = power of the converted field "
     "projected on the ideal designed beam.")
-
-
-class StudyError(MetalayError):
-    """Bad input to a comparison or tolerance study (exit code 2)."""
 
 
 # ----------------------------------------------------------------------------------------------------------------
