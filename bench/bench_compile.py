@@ -57,7 +57,7 @@ def _child(mode: str, folder: str, diameter: float, formats: str) -> None:
     t0 = time.perf_counter()
     out = {}
     if mode == "metalay":
-        from metalay.mask.compile import compile_design
+        from metalay.api import compile_design
         from metalay.design.spec import load_design
 
         path = Path(folder) / "bench.toml"

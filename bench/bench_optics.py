@@ -82,7 +82,7 @@ def run_ours(path: str, diameter_um: float, out_dir: str) -> dict:
 
     t0 = time.perf_counter()
     res = optics.check_optics(path, "tio2-nanofin-532", design=design_for(diameter_um), out_dir=out_dir,
-                              pad_factor=2.0, max_side=4096)
+                              options=optics.OpticsOptions(pad_factor=2.0, max_side=4096))
     total = time.perf_counter() - t0
     f = res.figures
     return {"total_s": total, "timings": res.timings, "peak_mb": peak_mb(), "sites": f["decode"]["sites"],

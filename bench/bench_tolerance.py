@@ -57,7 +57,7 @@ def _library(folder: Path):
 def main() -> int:
     from metalay.checks import optics
     from metalay.studies import study
-    from metalay.mask.compile import compile_design
+    from metalay.api import compile_design
     from metalay.cells.library import load_library
     from metalay.design.spec import parse_design
 
@@ -81,8 +81,8 @@ def main() -> int:
         mask = res.files["gds"]
         sites = res.manifest["counts"]["sites"]
         t0 = time.perf_counter()
-        optics.check_optics(mask, load_library(lib_path), design=design, max_side=1024, pad_factor=2.0,
-                            make_plots=False)
+        optics.check_optics(mask, load_library(lib_path), design=design,
+                            options=optics.OpticsOptions(max_side=1024, pad_factor=2.0, make_plots=False))
         t_check = time.perf_counter() - t0
         st = study.ToleranceSettings(samples=args.samples, cd_bias_sd_nm=3.0, rotation_sd_deg=2.0,
                                      missing_fraction=0.001, seed=1)

@@ -10,7 +10,7 @@ Architecture map (one module per pipeline stage, plain data between stages)::
     cellkinds.outline_nm(cell)        outline of a cell kind at rotation 0
     layout.element_offsets(...)       rotated outlines snapped to the database grid; grouping; frame; label
     writer.GdsStream / gdstk          flat GDSII stream writer; OASIS and hierarchical GDSII via gdstk
-    compile.compile_design(d, out)    the pipeline, tile by tile, + manifest.json
+    compile.compile_mask(d, out)      the pipeline, tile by tile, + manifest.json
     gdsread.read_mask(path)           vectorised mask reader (GDSII record walk, OASIS via gdstk)
     rules.check_mask(...)             design-rule check (shapely STRtree + lattice fast path)
     optics.check_optics(...)          near field from the written mask -> far field, OAM spectrum, metrics

@@ -1,6 +1,7 @@
 """The main job end to end: design file -> GDSII + OASIS + manifest, read back and checked."""
 
 import copy
+from dataclasses import replace
 import json
 import os
 import subprocess
@@ -11,7 +12,7 @@ import numpy as np
 import pytest
 
 from conftest import SMALL_DESIGN, write_toml
-from metalay.mask.compile import compile_design
+from metalay.api import compile_design
 from metalay.mask.layout import recovered_rotation
 from metalay.mask.mapping import geometric_rotation, wrap_pi
 from metalay.design.phase import target_phase
@@ -122,20 +123,40 @@ def test_parse_design_in_memory_notebook_use():
     assert d.sigma == 1 and d.lattice.period_nm == 325.0 and len(d.terms) == 2
 
 
-def test_failed_check_leaves_no_output(tmp_path, small_design_dict, monkeypatch):
+def test_failed_check_leaves_no_output(tmp_path, small_design_dict):
     # all or nothing: a failure after the masks were written removes them (no partial output)
-    import metalay.mask.compile as C
+    from metalay.mask.compile import compile_mask
+    from metalay.mask.steps import MaskCheck
 
-    def boom(*a, **k):
+    seen = []
+
+    def boom(written):
+        seen.append(written.path.is_file())
         raise RuntimeError("checker crashed")
 
-    monkeypatch.setattr(C, "_run_rules", boom)
-    d = copy.deepcopy(small_design_dict)
-    d["checks"]["rules"] = True
-    design = load_design(write_toml(tmp_path / "d.toml", d))
+    design = load_design(write_toml(tmp_path / "d.toml", small_design_dict))
     with pytest.raises(RuntimeError):
-        compile_design(design, tmp_path / "o", show_progress=False)
+        compile_mask(design, tmp_path / "o", checks=[MaskCheck("boom", boom)], show_progress=False)
+    assert seen == [True]  # the check ran on a mask that had been written
     assert list((tmp_path / "o").iterdir()) == []
+
+
+def test_checks_are_steps_handed_to_compile(tmp_path, small_design_dict):
+    # the compile runs exactly the steps it is given, when the design enables them, and records their results
+    from metalay.checks.steps import default_checks
+    from metalay.mask.compile import compile_mask
+    from metalay.mask.steps import MaskCheck
+
+    design = load_design(write_toml(tmp_path / "d.toml", small_design_dict))
+    steps = [MaskCheck("count", lambda w: {"status": "clean", "bytes": w.path.stat().st_size}),
+             MaskCheck("off", lambda w: {"status": "never"}, enabled=lambda d: False)]
+    res = compile_mask(design, tmp_path / "o", checks=steps, show_progress=False)
+    assert set(res.manifest["checks"]) == {"count"}
+    assert res.manifest["checks"]["count"]["bytes"] == res.files["gds"].stat().st_size
+    assert [c.name for c in default_checks()] == ["rules", "optics"]
+    assert [c.name for c in default_checks(rules=False)] == ["optics"]
+    assert default_checks(optics=True)[1].enabled(replace(design, checks=replace(design.checks, optics=False)))
+    assert not default_checks()[1].enabled(replace(design, checks=replace(design.checks, optics=False)))
 
 
 def test_gds_bytes_do_not_depend_on_other_outputs(tmp_path, small_design_dict):

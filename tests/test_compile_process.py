@@ -8,7 +8,7 @@ import pytest
 import shapely
 
 from conftest import SMALL_DESIGN, write_toml
-from metalay.mask.compile import compile_design
+from metalay.api import compile_design
 from metalay.io.gdsread import read_mask
 from metalay.design.lattice import Aperture
 from metalay.cells.library import load_library

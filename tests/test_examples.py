@@ -4,7 +4,7 @@ from pathlib import Path
 
 import pytest
 
-from metalay.mask.compile import compile_design
+from metalay.api import compile_design
 from metalay.design.spec import load_design
 
 EXAMPLES = sorted((Path(__file__).resolve().parent.parent / "examples").glob("*.toml"))

@@ -59,7 +59,8 @@ def test_quantised_blazed_grating_efficiency_swanson(tmp_path, levels):
     path = write_fins_gds(tmp_path / "grating.gds", ii * P_NM, jj * P_NM, theta)
     u_design = LAM / (levels * per_level * P_NM)
     target = optics.OpticsTarget(wavelength_nm=LAM, sigma=1, charge=None, direction=(u_design, 0.0))
-    res = optics.check_optics(path, make_library(), target=target, pad_factor=1.0, make_plots=False)
+    res = optics.check_optics(path, make_library(), target=target,
+                              options=optics.OpticsOptions(pad_factor=1.0, make_plots=False))
     eff = res.figures["far_field"]["fractions_of_designed_polarization"]["designed"]
     expected = np.sinc(1.0 / levels) ** 2
     # tolerance 1e-3: 1 nm vertex snapping leaves <= 0.5 deg of geometric-phase error (efficiency loss < 1e-4)
@@ -80,14 +81,15 @@ def test_jones_powers_uniform_rotation(tmp_path):
     for pol in ("spin+1", "spin-1"):
         sigma = 1 if pol == "spin+1" else -1
         target = optics.OpticsTarget(wavelength_nm=LAM, sigma=sigma, charge=None)
-        b = optics.check_optics(path, lib, target=target, make_plots=False)
+        b = optics.check_optics(path, lib, target=target, options=optics.OpticsOptions(make_plots=False))
         budget = b.figures["power_budget"]
         assert budget["converted"] == pytest.approx(abs((tl - ts) / 2) ** 2, rel=1e-6)
         assert budget["leakage"] == pytest.approx(abs((tl + ts) / 2) ** 2, rel=1e-6)
         assert budget["other_polarization"] == pytest.approx(abs((tl + ts) / 2) ** 2, rel=1e-6)
     # linear input: half of each circular part converts (|a_+|^2 = |a_-|^2 = 1/2)
     lin = optics.check_optics(path, lib, target=optics.OpticsTarget(wavelength_nm=LAM, charge=None),
-                              polarization="linear:30", make_plots=False).figures["power_budget"]
+                              options=optics.OpticsOptions(polarization="linear:30", make_plots=False)
+                              ).figures["power_budget"]
     assert lin["converted"] == pytest.approx(0.5 * abs((tl - ts) / 2) ** 2, rel=1e-6)
     # Source: Hecht, Optics, 5th ed., sec. 8.13 (Jones calculus): a linear retarder-polariser passes
     # |t_l|^2 cos^2(a) + |t_s|^2 sin^2(a), a = angle between the input polarisation and the long axis
@@ -158,7 +160,7 @@ def test_multiplexed_four_channel_crosstalk(tmp_path):
     chans = [{"charge": q, "angle_deg": 3.0, "azimuth_deg": az} for q, az in ((-3, 0), (-1, 90), (2, 180), (4, 270))]
     design = _design([{"kind": "multiplex", "channels": chans}], 50.0)
     path = _mask_from_design(tmp_path, design, "mux.gds")
-    res = optics.check_optics(path, make_library(), design=design, make_plots=True)
+    res = optics.check_optics(path, make_library(), design=design, options=optics.OpticsOptions(make_plots=True))
     ct = res.figures["crosstalk"]
     mat = np.array(ct["matrix"])
     # diagonal-dominant in every row; worst isolation reported
@@ -176,7 +178,7 @@ def test_lens_focal_spot_against_airy(tmp_path):
     # FWHM 0.514 lambda / NA) and sec. 9.1 (Strehl ratio 1 for an aberration-free pupil).
     design = _design([{"kind": "lens", "focal_length_um": 200.0}], 50.0)
     path = _mask_from_design(tmp_path, design, "lens.gds")
-    res = optics.check_optics(path, make_library(), design=design, make_plots=False)
+    res = optics.check_optics(path, make_library(), design=design, options=optics.OpticsOptions(make_plots=False))
     lm = res.figures["lens"]
     assert lm["first_dark_ring_um"] == pytest.approx(lm["airy_radius_um"], rel=0.03)
     assert lm["fwhm_x_um"] == pytest.approx(lm["fwhm_airy_um"], rel=0.03)
@@ -188,7 +190,7 @@ def test_hexagonal_lattice_grating_deflects_by_grating_equation(tmp_path):
     lib = make_library(lattice="hexagonal", period_nm=400.0)
     design = _design([{"kind": "tilt", "angle_deg": 5.0}], 30.0, period_nm=400.0, lattice="hexagonal")
     path = _mask_from_design(tmp_path, design, "hex.gds")
-    res = optics.check_optics(path, lib, design=design, make_plots=False)
+    res = optics.check_optics(path, lib, design=design, options=optics.OpticsOptions(make_plots=False))
     assert res.figures["designed_spot_position"]["deflection_deg"] == pytest.approx(5.0, abs=0.1)
     assert res.figures["far_field"]["fractions_of_designed_polarization"]["designed"] > 0.9
 
@@ -205,7 +207,7 @@ def test_bad_polarization_and_unmatched_elements(tmp_path):
     lib2 = CellLibrary(**{**lib.__dict__, "cells": (small,)})
     with pytest.raises(MaskReadError, match="match no library cell"):
         optics.check_optics(path, lib2, target=optics.OpticsTarget(wavelength_nm=LAM, charge=None),
-                            make_plots=False)
+                            options=optics.OpticsOptions(make_plots=False))
 
 
 def test_cli_and_compile_hook(tmp_path):

@@ -15,7 +15,7 @@ import pytest
 from metalay.checks import optics
 from metalay.studies import study
 from metalay.cli import main as cli_main
-from metalay.mask.compile import compile_design
+from metalay.api import compile_design
 from metalay.errors import MetalayError
 from metalay.cells.library import CellLibrary, CellSpec, load_library, save_library
 from metalay.design.spec import parse_design
@@ -80,8 +80,8 @@ def setup(tmp_path_factory):
 
 def test_zero_perturbation_equals_optical_check_exactly(setup):
     design, mask = setup["design"], setup["mask"]
-    ref = optics.check_optics(mask, load_library(setup["pa"]), design=design, max_side=1024, pad_factor=2.0,
-                              make_plots=False).figures
+    ref = optics.check_optics(mask, load_library(setup["pa"]), design=design,
+                              options=optics.OpticsOptions(max_side=1024, pad_factor=2.0, make_plots=False)).figures
     st = study.ToleranceSettings(samples=3, seed=7)
     res = study.tolerance_study(design, settings=st, mask=mask, workers=2)
     assert ref["oam"]["purity"] < 1.0 and ref["designed_spot_efficiency"] > 0.5

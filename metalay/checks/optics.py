@@ -32,7 +32,7 @@ from __future__ import annotations
 import hashlib
 import os
 import time
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
@@ -57,6 +57,14 @@ __all__ = [
     "crosstalk_matrix",
     "lens_metrics",
     "target_from_design",
+    "ideal_responses",
+    "site_xy",
+    "near_field_decimation",
+    "json_ready",
+    "spot_centres",
+    "Evaluation",
+    "evaluate_elements",
+    "OpticsOptions",
     "check_optics",
     "quick_check",
     "compile_check",
@@ -798,18 +806,25 @@ class OpticsResult:
     far: grid.FarField | None = None
 
 
-def _ideal_responses(n_cells: int):
+def ideal_responses(n_cells: int):
     """Perfect half-wave cells: ``t_long = 1``, ``t_short = -1`` (full conversion, no leakage)."""
     return np.ones(n_cells, complex), -np.ones(n_cells, complex)
 
 
-def _site_xy(decoded: DecodedSites):
+def site_xy(decoded: DecodedSites):
     """Lattice-site coordinates (um) of the decoded sites (ideal positions, not the measured centres)."""
     p = decoded.period_nm * 1e-3
     if decoded.lattice == "square":
         return decoded.i * p + decoded.origin_um[0], decoded.j * p + decoded.origin_um[1]
     return ((decoded.i + 0.5 * (decoded.j % 2)) * p + decoded.origin_um[0],
             decoded.j * p * SQRT3 / 2 + decoded.origin_um[1])
+
+
+def near_field_decimation(decoded: DecodedSites, max_side: int) -> tuple[int, int]:
+    """Block size ``m`` that keeps the near-field grid side at most ``max_side``, and the full-resolution side."""
+    r_, c0_, c1_ = _site_pixels(decoded.i, decoded.j, decoded.lattice)
+    side = max(int(np.ptp(r_)) + 1, int(np.ptp(c1_ if c1_ is not None else c0_)) + 2)
+    return (int(np.ceil(side / max_side)) if side > max_side else 1), side
 
 
 def _block(a: np.ndarray, m: int) -> np.ndarray:
@@ -827,11 +842,12 @@ def _sha256(path) -> str:
     return h.hexdigest()
 
 
-def _json_ready(obj):
+def json_ready(obj):
+    """``obj`` with numpy scalars as Python numbers, non-finite floats as None, tuples as lists (for JSON)."""
     if isinstance(obj, dict):
-        return {str(k): _json_ready(v) for k, v in obj.items()}
+        return {str(k): json_ready(v) for k, v in obj.items()}
     if isinstance(obj, (list, tuple)):
-        return [_json_ready(v) for v in obj]
+        return [json_ready(v) for v in obj]
     if isinstance(obj, (np.floating, float)):
         v = float(obj)
         return v if np.isfinite(v) else None
@@ -843,6 +859,7 @@ def _json_ready(obj):
 
 
 def _biased_responses(lib, t_long, t_short, decoded, bias_nm: float, notes: list):
+
     """Responses for a biased mask: the library cell at the biased size where the library has one.
 
     A bias pre-compensates the process; the mask as written carries cells grown by ``2 * bias_nm``. Where the
@@ -867,13 +884,510 @@ def _biased_responses(lib, t_long, t_short, decoded, bias_nm: float, notes: list
     return t_long, t_short
 
 
-def check_optics(mask_path, library, *, design=None, target: OpticsTarget | None = None,
-                 wavelength_nm: float | None = None, polarization: str = "design", out_dir=None,
-                 layer=None, bias_nm: float | None = None, size_tol_nm: float = 3.0, unmatched: str = "error",
-                 empty_t: complex = 1.0, pad_factor: float = 2.0, max_side: int = 4096,
-                 charges=range(-10, 11), make_plots: bool = True, log_far_field: bool = True,
-                 keep_arrays: bool = False, workers: int = 2, title: str | None = None) -> OpticsResult:
+# ----------------------------------------------------------------------------------------------------------------
+# Evaluation of decoded elements (shared by the optical check and the tolerance / comparison studies)
+# ----------------------------------------------------------------------------------------------------------------
+
+@dataclass(frozen=True, eq=False)
+class Evaluation:
+    """What :func:`evaluate_elements` computed for one set of elements.
+
+    Attributes
+    ----------
+    fields : SiteFields
+        Output per element.
+    near : NearField
+        Sampled near field (aperture as illuminated region when given).
+    budget : dict
+        :func:`power_budget` of the elements.
+    diameter_um : float
+        Diameter of the disk with the illuminated area.
+    radius_u : float
+        Spot (lobe) radius in direction cosines: ``(2.5 + l_max/2) lambda / D``.
+    far : FarField or None
+        Far field of the designed polarisation (None with ``far_field=False`` or ``keep_far=False``).
+    centres : dict name -> (u, v)
+        Spot centres measured (designed spot, zero order, channels).
+    spots : dict name -> float
+        Fraction of the designed-polarisation power in each spot disk.
+    oam : OamSpectrum or None
+        OAM spectrum of the converted field about the beam axis (designs with an axis charge).
+    oam_field : ndarray or None
+        The converted near field with the tilt, lens and axicon terms removed (what ``oam`` was computed from).
+    oam_order : int
+        Interpolation order of the polar resampling (3 up to 2048 samples per side, else 1).
+    """
+
+    fields: SiteFields
+    near: NearField
+    budget: dict
+    diameter_um: float
+    radius_u: float
+    far: grid.FarField | None = None
+    centres: dict = field(default_factory=dict)
+    spots: dict = field(default_factory=dict)
+    oam: oam.OamSpectrum | None = None
+    oam_field: np.ndarray | None = None
+    oam_order: int = 3
+
+
+def spot_centres(target: OpticsTarget, radius_u: float) -> tuple[dict, bool]:
+    """Far-field spots to measure: the designed spot (and the zero order when apart), or one per channel.
+
+    Returns the centres and whether the designed spot overlaps the zero order (deflection below two lobe radii).
+    """
+    centres = {}
+    overlaps = False
+    if not target.channels and not target.focal_length_um:
+        centres["designed"] = target.direction
+        if np.hypot(*target.direction) > 2 * radius_u:
+            centres["zero_order"] = (0.0, 0.0)
+        else:
+            overlaps = True
+    for k, (lc, uc, vc) in enumerate(target.channels):
+        centres[f"channel_{k}_l{lc:+d}"] = (uc, vc)
+    return centres, overlaps
+
+
+def _oam_about_axis(near: NearField, target: OpticsTarget, diameter_um: float, *, charges, workers: int,
+                    remove_factor=None):
+    """OAM spectrum of the converted near field about the beam axis, tilt/lens/axicon terms removed."""
+    oam_field = near.converted
+    if target.remove_terms and remove_factor is not None:
+        oam_field = near.converted * remove_factor(near, target)
+    elif target.remove_terms:
+        ph = _target_phase(target.remove_terms, near.x_um[None, :], near.y_um[:, None], target)
+        # one expression on purpose: numpy multiplies into the temporary, whose last bits differ from a product
+        # into a new array, and bench/output_hashes.json pins the report bytes
+        oam_field = near.converted * np.exp(-1j * ph).astype(np.complex64)
+        del ph
+    room = min(target.center_um[0] - near.x_um[0], near.x_um[-1] - target.center_um[0],
+               target.center_um[1] - near.y_um[0], near.y_um[-1] - target.center_um[1])
+    r_oam = min(diameter_um / 2 - 1.5 * max(near.dx_um, near.dy_um), room - max(near.dx_um, near.dy_um))
+    order = 3 if max(oam_field.shape) <= 2048 else 1
+    spec = oam.oam_spectrum(oam_field, near.x_um, near.y_um, center=target.center_um, radius_um=r_oam,
+                            charges=charges, order=order, workers=workers)
+    return spec, oam_field, order
+
+
+def evaluate_elements(decoded: DecodedSites, t_long, t_short, rotation_rad, target: OpticsTarget, *,
+                      jones_in: np.ndarray, expected_ij=None, decimation: int = 1, empty_t: complex = 1.0,
+                      pad_factor: float = 2.0, charges=range(-10, 11), far_field: bool = True,
+                      keep_far: bool = True, keep_field: bool = False, measure_spots: bool = True,
+                      remove_factor=None, workers: int = 2) -> Evaluation:
+    """Optical evaluation of decoded elements: site fields -> near field -> power budget -> far field -> spots -> OAM.
+
+    The one evaluation path of :func:`check_optics` and of the studies (:mod:`metalay.studies.study`), so an
+    unperturbed study sample reproduces the check's figures exactly.
+
+    Parameters
+    ----------
+    decoded : DecodedSites
+        Elements (lattice indices; ``rotation_rad`` and responses are given separately).
+    t_long, t_short : ndarray (S,) complex
+        Responses per element at the wavelength of ``target``.
+    rotation_rad : ndarray (S,)
+        Rotation per element.
+    target : OpticsTarget
+        What the mask is meant to do (wavelength, spin, axis, channels, terms).
+    jones_in : ndarray (2,)
+        Input polarisation (:func:`input_jones`).
+    expected_ij : (ndarray, ndarray), optional
+        Lattice indices of the illuminated sites (see :func:`rasterize`).
+    decimation : int
+        Near-field block size (:func:`near_field_decimation`).
+    empty_t : complex
+        Unconverted amplitude of an illuminated cell without an element.
+    pad_factor : float
+        Far-field zero padding.
+    charges : iterable of int
+        OAM charges.
+    far_field : bool
+        False: stop after the power budget (no FFT, no OAM).
+    keep_far, keep_field : bool
+        Keep the far field in the result; keep its complex field too (needed for channel spectra).
+    measure_spots : bool
+        Measure the designed spots (False when there is no design to say where they are).
+    remove_factor : callable (NearField, OpticsTarget) -> ndarray, optional
+        Gives ``exp(-i phi_removed)`` (tilt, lens, axicon terms; complex64) on the near-field grid, for callers
+        that cache it between evaluations; computed here when not given.
+    workers : int
+        FFT threads.
+
+    Returns
+    -------
+    Evaluation
+    """
+    sf = site_fields(t_long, t_short, rotation_rad, jones_in, sigma=target.sigma)
+    near = rasterize(decoded, sf, empty_t=empty_t, jones_in=jones_in, expected_ij=expected_ij,
+                     decimation=decimation)
+    budget = power_budget(sf, near.cells_illuminated, n_empty=near.cells_empty, empty_t=empty_t, jones_in=jones_in)
+    lam_um = target.wavelength_nm * 1e-3
+    diameter = 2 * np.sqrt(near.cells_illuminated * near.cell_area_um2 / np.pi)
+    lmax = max([abs(target.charge or 0)] + [abs(c[0]) for c in target.channels])
+    radius_u = (2.5 + 0.5 * lmax) * lam_um / diameter
+    if not far_field:
+        return Evaluation(sf, near, budget, float(diameter), float(radius_u))
+    ff = grid.far_field(near.designed, near.dx_um, near.dy_um, target.wavelength_nm, x0_um=float(near.x_um[0]),
+                        y0_um=float(near.y_um[0]), pad_factor=pad_factor, keep_field=keep_field, workers=workers)
+    centres = spot_centres(target, radius_u)[0] if measure_spots else {}
+    spots = spot_fractions(ff, centres, radius_u)
+    if not keep_far:
+        ff = None
+    spec = oam_field = None
+    order = 3
+    if target.charge is not None:
+        spec, oam_field, order = _oam_about_axis(near, target, diameter, charges=charges, workers=workers,
+                                                 remove_factor=remove_factor)
+    return Evaluation(sf, near, budget, float(diameter), float(radius_u), ff, centres, spots, spec, oam_field,
+                      order)
+
+
+# ----------------------------------------------------------------------------------------------------------------
+# The optical check of a written mask, in named stages
+# ----------------------------------------------------------------------------------------------------------------
+
+@dataclass(frozen=True)
+class OpticsOptions:
+    """How :func:`check_optics` decodes, samples and reports (defaults are the command line's).
+
+    Attributes
+    ----------
+    wavelength_nm : float, optional
+        Check wavelength (default the design's, else the library's).
+    polarization : str
+        Input polarisation, see :func:`input_jones`.
+    layer : (int, int), optional
+        Structure layer/datatype (default: the design's structure layer, else (1, 0)).
+    bias_nm : float, optional
+        Process bias per edge written into the mask (default: the design's ``mask.bias_nm``, else 0).
+    size_tol_nm, unmatched
+        Decoding options, see :func:`metalay.checks.decode.decode_sites`.
+    empty_t : complex
+        Unconverted amplitude of an illuminated cell with no element.
+    pad_factor : float
+        Far-field zero padding (2 samples the intensity at the aperture's Nyquist rate).
+    max_side : int
+        Largest near-field grid side; larger masks are decimated by block averaging (stated, with an error
+        estimate, in the notes).
+    charges : tuple of int
+        OAM charges reported.
+    make_plots : bool
+        Render PNG figures and the HTML report.
+    log_far_field : bool
+        Log scale for the far-field image.
+    keep_arrays : bool
+        Keep the near and far field in the result.
+    workers : int
+        FFT threads.
+    title : str, optional
+        Report title.
+    """
+
+    wavelength_nm: float | None = None
+    polarization: str = "design"
+    layer: tuple | None = None
+    bias_nm: float | None = None
+    size_tol_nm: float = 3.0
+    unmatched: str = "error"
+    empty_t: complex = 1.0
+    pad_factor: float = 2.0
+    max_side: int = 4096
+    charges: tuple = tuple(range(-10, 11))
+    make_plots: bool = True
+    log_far_field: bool = True
+    keep_arrays: bool = False
+    workers: int = 2
+    title: str | None = None
+
+
+@dataclass(frozen=True, eq=False)
+class _Decoded:
+    """Stage 1 of the check: the mask read and decoded, with responses and the target."""
+
+    mask_path: Path
+    library: object
+    design: object
+    target: OpticsTarget
+    no_target: bool
+    layer: tuple
+    bias_nm: float
+    decoded: DecodedSites
+    t_long: np.ndarray
+    t_short: np.ndarray
+    period_nm: float
+    zoom: tuple            # (flat polygons near the centre or None, centre (um), half width (um), db unit (um))
+
+
+def _read_and_decode(mask_path: Path, lib, design, target, opt: OpticsOptions, notes: list,
+                     timings: dict) -> _Decoded:
+    """Stage 1: read the structure layer, decode sites, pick the responses (biased sizes) and the target."""
+    from metalay.io.gdsread import read_mask
+
+    mask_settings = getattr(design, "mask", None)
+    layer = opt.layer
+    if layer is None:
+        layer = mask_settings.layer("structures") if mask_settings is not None else (1, 0)
+    bias_nm = opt.bias_nm
+    if bias_nm is None:
+        bias_nm = float(getattr(mask_settings, "bias_nm", 0.0) or 0.0)
+    if getattr(mask_settings, "tone", "structures") != "structures":
+        raise MetalayError(f"{mask_path}: mask.tone = {mask_settings.tone!r}; the optical check reads structure "
+                           "polygons and supports tone 'structures' only")
+    t0 = time.perf_counter()
+    flat = read_mask(mask_path, layers=[tuple(layer)])
+    timings["read_s"] = time.perf_counter() - t0
+    no_target = target is None and design is None
+    if target is None:
+        if design is not None:
+            target = target_from_design(design, wavelength_nm=opt.wavelength_nm)
+        else:
+            target = OpticsTarget(wavelength_nm=float(opt.wavelength_nm or lib.design_wavelength_nm), charge=None)
+    wl = target.wavelength_nm
+    if lib.has_responses:
+        t_long, t_short = lib.response_at(wl)
+        notes.append(f"cell responses from library {lib.name} at {wl:g} nm")
+    else:
+        t_long, t_short = ideal_responses(len(lib.cells))
+        notes.append(f"library {lib.name} has no optical responses: ideal half-wave cells assumed (t_long = 1, "
+                     "t_short = -1), so efficiencies are upper bounds set by the layout only")
+    period_nm = design.lattice.period_nm if design is not None else lib.period_nm
+    lattice = design.lattice.kind if design is not None else lib.lattice
+    t0 = time.perf_counter()
+    decoded = decode_sites(flat, lib.cells, period_nm=period_nm, lattice=lattice, layer=tuple(layer),
+                           size_tol_nm=opt.size_tol_nm, bias_nm=bias_nm, unmatched=opt.unmatched,
+                           where=str(mask_path))
+    timings["decode_s"] = time.perf_counter() - t0
+    if bias_nm and lib.has_responses:
+        t_long, t_short = _biased_responses(lib, t_long, t_short, decoded, bias_nm, notes)
+    # a small window of polygons for the layout figure, then free the vertex table
+    zoom_c = target.center_um
+    zoom_hw = max(1.5, 4 * period_nm * 1e-3)
+    db_um = flat.db_unit_m * 1e6
+    first = flat.xy_db[flat.start[:-1]] * db_um
+    win = (np.abs(first[:, 0] - zoom_c[0]) < zoom_hw + 1) & (np.abs(first[:, 1] - zoom_c[1]) < zoom_hw + 1)
+    zoom_flat = flat.select(win) if opt.make_plots else None
+    return _Decoded(mask_path, lib, design, target, no_target, tuple(layer), bias_nm, decoded, t_long, t_short,
+                    period_nm, (zoom_flat, zoom_c, zoom_hw, db_um))
+
+
+def _decimation_note(ev: Evaluation, target: OpticsTarget, m: int, side: int, max_side: int) -> str:
+    """What block-averaging the near field costs: valid far-field range and the designed-spot error estimate."""
+    near = ev.near
+    lam_um = target.wavelength_nm * 1e-3
+    f_d = np.hypot(*target.direction) / lam_um
+    if target.focal_length_um:
+        f_d = max(f_d, np.sin(np.arctan(ev.diameter_um / (2 * target.focal_length_um))) / lam_um)
+    for ch in target.channels:
+        f_d = max(f_d, np.hypot(ch[1], ch[2]) / lam_um)
+    p0 = near.dx_um / m
+    dm = abs(np.sin(np.pi * m * p0 * f_d) / (m * np.sin(np.pi * p0 * f_d))) if f_d > 0 else 1.0
+    est = 1 - (dm * np.sinc(m * p0 * f_d) / np.sinc(p0 * f_d)) ** 2 if f_d > 0 else 0.0
+    return (f"near field decimated {m} x {m} (grid side {side} > {max_side}): far field valid for "
+            f"|u| < {lam_um / (2 * near.dx_um):.3f}; estimated relative error of the designed-spot power "
+            f"{est:.2e} (block average of a local phase gradient at {f_d:.3g} cycles/um)")
+
+
+def _evaluate(dec: _Decoded, opt: OpticsOptions, notes: list, timings: dict) -> Evaluation:
+    """Stage 2: the shared evaluation (:func:`evaluate_elements`) of the decoded elements."""
+    target, decoded = dec.target, dec.decoded
+    t0 = time.perf_counter()
+    jin = input_jones(opt.polarization, design_sigma=target.sigma)
+    expected = None
+    if dec.design is not None:
+        from metalay.design.lattice import sample_sites
+
+        s = sample_sites(dec.design.aperture, dec.design.lattice)
+        expected = (s.i, s.j)
+        notes.append(f"illuminated region: the {len(s):,} sites of the design aperture")
+    else:
+        notes.append("illuminated region: occupied sites with enclosed holes filled (no design given)")
+    m, side = near_field_decimation(decoded, opt.max_side)
+    ev = evaluate_elements(decoded, dec.t_long[decoded.cell], dec.t_short[decoded.cell], decoded.rotation_rad,
+                           target, jones_in=jin, expected_ij=expected, decimation=m, empty_t=opt.empty_t,
+                           pad_factor=opt.pad_factor, charges=opt.charges, keep_field=bool(target.channels),
+                           measure_spots=not dec.no_target, workers=opt.workers)
+    notes.append(ev.near.note)
+    if m > 1:
+        notes.append(_decimation_note(ev, target, m, side, opt.max_side))
+    timings["evaluate_s"] = time.perf_counter() - t0
+    return ev
+
+
+def _phase_error_deg(dec: _Decoded, ev: Evaluation) -> dict | None:
+    """RMS and worst error of the converted phase against the target at the sites (global offset removed)."""
+    if not dec.target.terms:
+        return None
+    xs_site, ys_site = site_xy(dec.decoded)
+    phi_t = _target_phase(dec.target.terms, xs_site, ys_site, dec.target)
+    err = np.angle(ev.fields.converted.astype(np.complex128) * np.exp(-1j * phi_t))
+    ok = np.abs(ev.fields.converted) > 0
+    if not ok.any():
+        return None
+    g = np.angle(np.sum(np.exp(1j * err[ok])))
+    e = np.angle(np.exp(1j * (err[ok] - g)))
+    return {"rms": float(np.degrees(np.sqrt(np.mean(e * e)))), "max": float(np.degrees(np.max(np.abs(e))))}
+
+
+def _spot_figures(dec: _Decoded, ev: Evaluation, figures: dict, notes: list) -> None:
+    """Far-field spots: fractions, designed-spot efficiency and position (or the brightest direction)."""
+    target, ff = dec.target, ev.far
+    if dec.no_target:
+        pu, pv, _ = _peak_near(ff, 0.0, 0.0, 1.0)
+        figures["brightest_direction"] = {"u": pu, "v": pv,
+                                          "angle_deg": float(np.degrees(np.arcsin(min(1.0, np.hypot(pu, pv)))))}
+        notes.append("no design given: no designed spot, OAM or charge reading (pass the design for those)")
+    elif spot_centres(target, ev.radius_u)[1]:
+        notes.append("the designed spot overlaps the zero-order spot (deflection below two lobe radii): its "
+                     "disk also holds any unconverted light")
+    pol = ev.budget["designed_polarization"]
+    figures["far_field"] = {"fractions_of_designed_polarization": ev.spots,
+                            "fractions_of_incident": {k: v * pol for k, v in ev.spots.items()}}
+    if "designed" in ev.spots:
+        figures["designed_spot_efficiency"] = ev.spots["designed"] * pol
+        pu, pv = _centroid_near(ff, *target.direction, ev.radius_u)
+        figures["designed_spot_position"] = {"measured": [pu, pv], "design": list(target.direction),
+                                             "method": "power centroid within the lobe radius",
+                                             "deflection_deg": float(np.degrees(np.arcsin(min(1.0, np.hypot(pu, pv)))))}
+
+
+def _oam_figures(dec: _Decoded, ev: Evaluation, opt: OpticsOptions, figures: dict, notes: list):
+    """OAM spectrum about the axis and the charge read from a simulated interferogram; returns the fringes."""
+    target, near, spec = dec.target, ev.near, ev.oam
+    notes.append(f"OAM spectrum: field resampled on a polar grid ({spec.n_radial} radii x {spec.n_azimuthal} "
+                 f"angles, {'cubic' if ev.oam_order == 3 else 'bilinear'} interpolation) within "
+                 f"{spec.radius_um:.2f} um of the axis, after removing the tilt/lens/axicon terms of the design")
+    figures["oam"] = {"about": "beam axis (non-vortex terms removed)", "charges": spec.charges.tolist(),
+                      "interpolation_order": ev.oam_order,
+                      "weights": spec.weights.tolist(), "design_charge": target.charge,
+                      "purity": spec.purity(target.charge), "radius_um": spec.radius_um,
+                      "mean_charge": spec.mean_charge()}
+    # interferogram on a grid of at most 1024 samples per side (block averages keep the vortex phase)
+    mf = int(np.ceil(max(ev.oam_field.shape) / 1024))
+    fld = _block(ev.oam_field, mf)
+    fx_ = near.x_um[0] + (np.arange(fld.shape[1]) * mf + (mf - 1) / 2) * near.dx_um
+    fy_ = near.y_um[0] + (np.arange(fld.shape[0]) * mf + (mf - 1) / 2) * near.dy_um
+    inten = fringes.interferogram(fld, fx_, fy_, wavelength_nm=target.wavelength_nm)
+    reading = fringes.read_charge(inten, fx_, fy_, center=target.center_um, workers=opt.workers)
+    figures["fringe_reading"] = {"charge": reading.charge, "design_charge": target.charge,
+                                 "agrees": reading.charge == target.charge,
+                                 "windings": reading.windings.tolist(), "loop_radii_um": reading.radii_um.tolist(),
+                                 "loop_agreement": reading.agreement}
+    return inten, fx_, fy_
+
+
+def _channel_figures(dec: _Decoded, ev: Evaluation, opt: OpticsOptions, figures: dict) -> None:
+    """Per-channel OAM purity in the far-field spots and the crosstalk matrix of a multiplexed design."""
+    target, ff, radius_u = dec.target, ev.far, ev.radius_u
+    ch_oam = []
+    for k, (lc, uc, vc) in enumerate(target.channels):
+        cols = np.flatnonzero(np.abs(ff.u - uc) <= radius_u + 3 * ff.du)
+        rows = np.flatnonzero(np.abs(ff.v - vc) <= radius_u + 3 * ff.dv)
+        sub = ff.field[rows[0]:rows[-1] + 1, cols[0]:cols[-1] + 1]
+        sp = oam.oam_spectrum(sub, ff.u[cols[0]:cols[-1] + 1], ff.v[rows[0]:rows[-1] + 1], center=(uc, vc),
+                              radius_um=radius_u, charges=opt.charges, samples_per_pitch=2.0)
+        ch_oam.append({"charge": lc, "purity": sp.purity(lc), "weights": sp.weights.tolist()})
+    figures["oam_channels"] = {"about": "far-field spot of each channel", "charges": list(opt.charges),
+                               "channels": ch_oam}
+    figures["crosstalk"] = crosstalk_matrix(ev.near, target.channels, target.wavelength_nm, radius_u=radius_u,
+                                            pad_factor=opt.pad_factor, workers=opt.workers)
+
+
+def _lens_figures(dec: _Decoded, ev: Evaluation, opt: OpticsOptions, figures: dict) -> None:
+    """Focal spot, Strehl ratio and efficiency of a lens design (angular-spectrum propagation)."""
+    target, near = dec.target, ev.near
+    f_um = target.focal_length_um
+    u0, v0 = target.direction
+    w0 = np.sqrt(max(1e-12, 1 - u0 * u0 - v0 * v0))
+    ideal = None
+    if target.terms:
+        ph = _target_phase(target.terms, near.x_um[None, :], near.y_um[:, None], target)
+        ideal = np.abs(near.converted) * np.exp(1j * ph)
+        del ph
+    figures["lens"] = lens_metrics(near, target.wavelength_nm, f_um, ideal=ideal,
+                                   medium_index=target.lens_medium_index,
+                                   center_um=(f_um * u0 / w0, f_um * v0 / w0), workers=opt.workers)
+
+
+def _figures(dec: _Decoded, ev: Evaluation, opt: OpticsOptions, notes: list, timings: dict):
+    """Stage 3: every figure of merit (JSON-ready numbers); returns them and the interferogram for the plots."""
+    t0 = time.perf_counter()
+    near, ff = ev.near, ev.far
+    figures = {"wavelength_nm": dec.target.wavelength_nm, "input_polarization": opt.polarization,
+               "design_spin": dec.target.sigma, "power_budget": ev.budget, "decode": dec.decoded.stats,
+               "grid": {"nx": int(near.designed.shape[1]), "ny": int(near.designed.shape[0]),
+                        "dx_um": near.dx_um, "dy_um": near.dy_um, "decimation": near.decimation,
+                        "fft_side": [int(ff.u.size), int(ff.v.size)], "pad_factor": opt.pad_factor},
+               "aperture_equivalent_diameter_um": ev.diameter_um, "lobe_radius_u": ev.radius_u}
+    phase_error = _phase_error_deg(dec, ev)
+    if phase_error is not None:
+        figures["phase_error_deg"] = phase_error
+    _spot_figures(dec, ev, figures, notes)
+    fringe_image = None
+    if ev.oam is not None:
+        fringe_image = _oam_figures(dec, ev, opt, figures, notes)
+    if dec.target.channels:
+        _channel_figures(dec, ev, opt, figures)
+    if dec.target.focal_length_um:
+        _lens_figures(dec, ev, opt, figures)
+    timings["metrics_s"] = time.perf_counter() - t0
+    return figures, fringe_image
+
+
+def _images(dec: _Decoded, ev: Evaluation, figures: dict, fringe_image, opt: OpticsOptions) -> dict:
+    """Stage 4: the PNG figures of the report, name -> (caption, PNG bytes)."""
+    from metalay.checks import plots
+
+    target, near, ff = dec.target, ev.near, ev.far
+    zoom_flat, zoom_c, zoom_hw, db_um = dec.zoom
+    images = {}
+    sm = max(1, int(np.ceil(max(near.designed.shape) / 700)))
+    xs, ys = near.x_um[::sm], near.y_um[::sm]
+    valid = near.illuminated[::sm, ::sm]
+    if target.terms:
+        images["1_target_phase"] = ("target phase of the design (wrapped), sampled on the grid",
+                                    plots.phase_map(_target_phase(target.terms, xs[None, :], ys[:, None], target),
+                                                    xs, ys, title="target phase", valid=valid))
+    conv = near.converted[::sm, ::sm]
+    images["2_mask_phase"] = ("phase of the converted field decoded from the mask",
+                              plots.phase_map(np.angle(conv), xs, ys, title="mask-derived phase",
+                                              valid=valid & (np.abs(conv) > 0)))
+    images["3_layout_zoom"] = (f"mask polygons within {zoom_hw:g} um of ({zoom_c[0]:g}, {zoom_c[1]:g}) um",
+                               plots.layout_zoom(zoom_flat.start, zoom_flat.xy_db, db_um, center_um=zoom_c,
+                                                 half_width_um=zoom_hw))
+    lam_um = target.wavelength_nm * 1e-3
+    ext = min(1.0, max(3 * np.hypot(*target.direction), 40 * lam_um / ev.diameter_um,
+                       *[1.5 * np.hypot(c[1], c[2]) for c in target.channels] or [0]))
+    if target.focal_length_um:
+        ext = 1.0
+    images["4_far_field"] = ("far-field power of the designed polarisation over direction cosines",
+                             plots.far_field_map(ff.power, ff.u, ff.v, log=opt.log_far_field, extent_u=ext,
+                                                 marks=dict(ev.centres),
+                                                 title="far field" + (" (log)" if opt.log_far_field else "")))
+    if "oam" in figures:
+        o = figures["oam"]
+        images["5_oam_spectrum"] = ("OAM spectrum of the converted beam about its axis",
+                                    plots.oam_bars(o["charges"], o["weights"], design_charge=target.charge))
+        images["7_interferogram"] = (f"converted beam with a tilted plane reference; charge read: "
+                                     f"{figures['fringe_reading']['charge']}", plots.interferogram_map(*fringe_image))
+    if "crosstalk" in figures:
+        c = figures["crosstalk"]
+        images["6_crosstalk"] = ("crosstalk: on-axis power at each channel spot, probing with each channel's "
+                                 "conjugate vortex", plots.crosstalk_map(c["matrix_db"], c["charges"]))
+    if "lens" in figures:
+        lm = figures["lens"]
+        images["8_focal_spot"] = ("focal spot profile against the Airy pattern of the same aperture",
+                                  plots.focal_profile(lm["profile"]["radius_um"], lm["profile"]["intensity"],
+                                                      airy_radius_um=lm["airy_radius_um"]))
+    return images
+
+
+def check_optics(mask_path, library, *, design=None, target: OpticsTarget | None = None, out_dir=None,
+                 options: OpticsOptions = OpticsOptions()) -> OpticsResult:
     """Check the optics of a written mask: decode it, build the near field, compute far field and metrics.
+
+    Stages: :func:`_read_and_decode` -> :func:`evaluate_elements` (via ``_evaluate``) -> ``_figures`` ->
+    ``_images`` -> report and files.
 
     Parameters
     ----------
@@ -887,308 +1401,50 @@ def check_optics(mask_path, library, *, design=None, target: OpticsTarget | None
         (illuminated sites) and spin.
     target : OpticsTarget, optional
         Overrides what is derived from ``design``.
-    wavelength_nm : float, optional
-        Check wavelength (default the design's, else the library's).
-    polarization : str
-        Input polarisation, see :func:`input_jones`.
     out_dir : str or Path, optional
-        Write ``figures.json``, the PNG figures and ``report.html`` here (atomic writes).
-    layer : (int, int), optional
-        Structure layer/datatype (default: the design's structure layer, else (1, 0)).
-    bias_nm : float, optional
-        Process bias per edge written into the mask (default: the design's ``mask.bias_nm``, else 0).
-    size_tol_nm, unmatched
-        Decoding options, see :func:`metalay.decode.decode_sites`.
-    empty_t : complex
-        Unconverted amplitude of an illuminated cell with no element.
-    pad_factor : float
-        Far-field zero padding (2 samples the intensity at the aperture's Nyquist rate).
-    max_side : int
-        Largest near-field grid side; larger masks are decimated by block averaging (stated, with an error
-        estimate, in the notes).
-    charges : iterable of int
-        OAM charges reported.
-    make_plots : bool
-        Render PNG figures and the HTML report.
-    log_far_field : bool
-        Log scale for the far-field image.
-    keep_arrays : bool
-        Keep the near and far field in the result.
-    workers : int
-        FFT threads.
-    title : str, optional
-        Report title.
+        Write ``optics.json``, the PNG figures and ``optics_report.html`` here (atomic writes).
+    options : OpticsOptions
+        Wavelength, polarisation, layer, bias, decoding, sampling, plotting and thread settings.
 
     Returns
     -------
     OpticsResult
     """
-    from metalay.checks import plots as P
-    from metalay.io.gdsread import read_mask
     from metalay.cells.library import CellLibrary, load_library
 
+    opt = options
     t_all = time.perf_counter()
     keep_freed_memory()
-    timings = {}
-    notes = []
+    timings, notes = {}, []
     mask_path = Path(mask_path)
     lib = library if isinstance(library, CellLibrary) else load_library(library)
-
-    mask_settings = getattr(design, "mask", None)
-    if layer is None:
-        layer = mask_settings.layer("structures") if mask_settings is not None else (1, 0)
-    if bias_nm is None:
-        bias_nm = float(getattr(mask_settings, "bias_nm", 0.0) or 0.0)
-    if getattr(mask_settings, "tone", "structures") != "structures":
-        raise MetalayError(f"{mask_path}: mask.tone = {mask_settings.tone!r}; the optical check reads structure "
-                           "polygons and supports tone 'structures' only")
-    t0 = time.perf_counter()
-    flat = read_mask(mask_path, layers=[tuple(layer)])
-    timings["read_s"] = time.perf_counter() - t0
-
-    no_target = target is None and design is None
-    if target is None:
-        if design is not None:
-            target = target_from_design(design, wavelength_nm=wavelength_nm)
-        else:
-            target = OpticsTarget(wavelength_nm=float(wavelength_nm or lib.design_wavelength_nm), charge=None)
-    wl = target.wavelength_nm
-    if lib.has_responses:
-        t_long, t_short = lib.response_at(wl)
-        resp_note = f"cell responses from library {lib.name} at {wl:g} nm"
-    else:
-        t_long, t_short = _ideal_responses(len(lib.cells))
-        resp_note = (f"library {lib.name} has no optical responses: ideal half-wave cells assumed (t_long = 1, "
-                     "t_short = -1), so efficiencies are upper bounds set by the layout only")
-    notes.append(resp_note)
-    period_nm = design.lattice.period_nm if design is not None else lib.period_nm
-    lattice = design.lattice.kind if design is not None else lib.lattice
-
-    t0 = time.perf_counter()
-    decoded = decode_sites(flat, lib.cells, period_nm=period_nm, lattice=lattice, layer=tuple(layer),
-                           size_tol_nm=size_tol_nm, bias_nm=bias_nm, unmatched=unmatched, where=str(mask_path))
-    timings["decode_s"] = time.perf_counter() - t0
-    if bias_nm and lib.has_responses:
-        t_long, t_short = _biased_responses(lib, t_long, t_short, decoded, bias_nm, notes)
-    # a small window of polygons for the layout figure, then free the vertex table
-    zoom_c = target.center_um
-    zoom_hw = max(1.5, 4 * period_nm * 1e-3)
-    first = flat.xy_db[flat.start[:-1]] * (flat.db_unit_m * 1e6)
-    win = (np.abs(first[:, 0] - zoom_c[0]) < zoom_hw + 1) & (np.abs(first[:, 1] - zoom_c[1]) < zoom_hw + 1)
-    zoom_flat = flat.select(win) if make_plots else None
-    db_um = flat.db_unit_m * 1e6
-    del flat, first
-
-    t0 = time.perf_counter()
-    jin = input_jones(polarization, design_sigma=target.sigma)
-    sf = site_fields(t_long[decoded.cell], t_short[decoded.cell], decoded.rotation_rad, jin, sigma=target.sigma)
-    expected = None
-    if design is not None:
-        from metalay.design.lattice import sample_sites
-
-        s = sample_sites(design.aperture, design.lattice)
-        expected = (s.i, s.j)
-        notes.append(f"illuminated region: the {len(s):,} sites of the design aperture")
-    else:
-        notes.append("illuminated region: occupied sites with enclosed holes filled (no design given)")
-    r_, c0_, c1_ = _site_pixels(decoded.i, decoded.j, decoded.lattice)
-    side = max(int(np.ptp(r_)) + 1, int(np.ptp(c1_ if c1_ is not None else c0_)) + 2)
-    m = int(np.ceil(side / max_side)) if side > max_side else 1
-    near = rasterize(decoded, sf, empty_t=empty_t, jones_in=jin, expected_ij=expected, decimation=m)
-    notes.append(near.note)
-    budget = power_budget(sf, near.cells_illuminated, n_empty=near.cells_empty, empty_t=empty_t, jones_in=jin)
-    xs_site, ys_site = _site_xy(decoded)
-    phi_t = _target_phase(target.terms, xs_site, ys_site, target) if target.terms else None
-    timings["near_field_s"] = time.perf_counter() - t0
-
-    lam_um = wl * 1e-3
-    diameter = 2 * np.sqrt(near.cells_illuminated * near.cell_area_um2 / np.pi)
-    lmax = max([abs(target.charge or 0)] + [abs(c[0]) for c in target.channels])
-    radius_u = (2.5 + 0.5 * lmax) * lam_um / diameter
-    if m > 1:
-        f_d = np.hypot(*target.direction) / lam_um
-        if target.focal_length_um:
-            f_d = max(f_d, np.sin(np.arctan(diameter / (2 * target.focal_length_um))) / lam_um)
-        for ch in target.channels:
-            f_d = max(f_d, np.hypot(ch[1], ch[2]) / lam_um)
-        p0 = near.dx_um / m
-        dm = abs(np.sin(np.pi * m * p0 * f_d) / (m * np.sin(np.pi * p0 * f_d))) if f_d > 0 else 1.0
-        est = 1 - (dm * np.sinc(m * p0 * f_d) / np.sinc(p0 * f_d)) ** 2 if f_d > 0 else 0.0
-        notes.append(f"near field decimated {m} x {m} (grid side {side} > {max_side}): far field valid for "
-                     f"|u| < {lam_um / (2 * near.dx_um):.3f}; estimated relative error of the designed-spot power "
-                     f"{est:.2e} (block average of a local phase gradient at {f_d:.3g} cycles/um)")
-
-    t0 = time.perf_counter()
-    need_field = bool(target.channels)
-    ff = grid.far_field(near.designed, near.dx_um, near.dy_um, wl, x0_um=float(near.x_um[0]),
-                        y0_um=float(near.y_um[0]), pad_factor=pad_factor, keep_field=need_field, workers=workers)
-    timings["fft_s"] = time.perf_counter() - t0
-
-    t0 = time.perf_counter()
-    figures = {"wavelength_nm": wl, "input_polarization": polarization, "design_spin": target.sigma,
-               "power_budget": budget, "decode": decoded.stats,
-               "grid": {"nx": int(near.designed.shape[1]), "ny": int(near.designed.shape[0]),
-                        "dx_um": near.dx_um, "dy_um": near.dy_um, "decimation": m,
-                        "fft_side": [int(ff.u.size), int(ff.v.size)], "pad_factor": pad_factor},
-               "aperture_equivalent_diameter_um": float(diameter), "lobe_radius_u": float(radius_u)}
-    if phi_t is not None:
-        err = np.angle(sf.converted.astype(np.complex128) * np.exp(-1j * phi_t))
-        ok = np.abs(sf.converted) > 0
-        if ok.any():
-            g = np.angle(np.sum(np.exp(1j * err[ok])))
-            e = np.angle(np.exp(1j * (err[ok] - g)))
-            figures["phase_error_deg"] = {"rms": float(np.degrees(np.sqrt(np.mean(e * e)))),
-                                          "max": float(np.degrees(np.max(np.abs(e))))}
-    centres = {}
-    if no_target:
-        pu, pv, _ = _peak_near(ff, 0.0, 0.0, 1.0)
-        figures["brightest_direction"] = {"u": pu, "v": pv,
-                                          "angle_deg": float(np.degrees(np.arcsin(min(1.0, np.hypot(pu, pv)))))}
-        notes.append("no design given: no designed spot, OAM or charge reading (pass the design for those)")
-    elif not target.channels and not target.focal_length_um:
-        centres["designed"] = target.direction
-        if np.hypot(*target.direction) > 2 * radius_u:
-            centres["zero_order"] = (0.0, 0.0)
-        else:
-            notes.append("the designed spot overlaps the zero-order spot (deflection below two lobe radii): its "
-                         "disk also holds any unconverted light")
-    for k, (lc, uc, vc) in enumerate(target.channels):
-        centres[f"channel_{k}_l{lc:+d}"] = (uc, vc)
-    spots = spot_fractions(ff, centres, radius_u)
-    pol = budget["designed_polarization"]
-    figures["far_field"] = {"fractions_of_designed_polarization": spots,
-                            "fractions_of_incident": {k: v * pol for k, v in spots.items()}}
-    if "designed" in spots:
-        figures["designed_spot_efficiency"] = spots["designed"] * pol
-        pu, pv = _centroid_near(ff, *target.direction, radius_u)
-        figures["designed_spot_position"] = {"measured": [pu, pv], "design": list(target.direction),
-                                             "method": "power centroid within the lobe radius",
-                                             "deflection_deg": float(np.degrees(np.arcsin(min(1.0, np.hypot(pu, pv)))))}
-
-    oam_field = None
-    if target.charge is not None:
-        xx = near.x_um[None, :]
-        yy = near.y_um[:, None]
-        oam_field = near.converted
-        if target.remove_terms:
-            ph = _target_phase(target.remove_terms, xx, yy, target)
-            oam_field = near.converted * np.exp(-1j * ph).astype(np.complex64)
-            del ph
-        room = min(target.center_um[0] - near.x_um[0], near.x_um[-1] - target.center_um[0],
-                   target.center_um[1] - near.y_um[0], near.y_um[-1] - target.center_um[1])
-        r_oam = min(diameter / 2 - 1.5 * max(near.dx_um, near.dy_um), room - max(near.dx_um, near.dy_um))
-        order = 3 if max(oam_field.shape) <= 2048 else 1
-        spec = oam.oam_spectrum(oam_field, near.x_um, near.y_um, center=target.center_um, radius_um=r_oam,
-                                charges=charges, order=order, workers=workers)
-        notes.append(f"OAM spectrum: field resampled on a polar grid ({spec.n_radial} radii x {spec.n_azimuthal} "
-                     f"angles, {'cubic' if order == 3 else 'bilinear'} interpolation) within {spec.radius_um:.2f} "
-                     "um of the axis, after removing the tilt/lens/axicon terms of the design")
-        figures["oam"] = {"about": "beam axis (non-vortex terms removed)", "charges": spec.charges.tolist(),
-                          "interpolation_order": order,
-                          "weights": spec.weights.tolist(), "design_charge": target.charge,
-                          "purity": spec.purity(target.charge), "radius_um": spec.radius_um,
-                          "mean_charge": spec.mean_charge()}
-        # interferogram on a grid of at most 1024 samples per side (block averages keep the vortex phase)
-        mf = int(np.ceil(max(oam_field.shape) / 1024))
-        fld = _block(oam_field, mf)
-        fx_ = near.x_um[0] + (np.arange(fld.shape[1]) * mf + (mf - 1) / 2) * near.dx_um
-        fy_ = near.y_um[0] + (np.arange(fld.shape[0]) * mf + (mf - 1) / 2) * near.dy_um
-        inten = fringes.interferogram(fld, fx_, fy_, wavelength_nm=wl)
-        reading = fringes.read_charge(inten, fx_, fy_, center=target.center_um, workers=workers)
-        figures["fringe_reading"] = {"charge": reading.charge, "design_charge": target.charge,
-                                     "agrees": reading.charge == target.charge,
-                                     "windings": reading.windings.tolist(), "loop_radii_um": reading.radii_um.tolist(),
-                                     "loop_agreement": reading.agreement}
-    if target.channels:
-        ch_oam = []
-        for k, (lc, uc, vc) in enumerate(target.channels):
-            cols = np.flatnonzero(np.abs(ff.u - uc) <= radius_u + 3 * ff.du)
-            rows = np.flatnonzero(np.abs(ff.v - vc) <= radius_u + 3 * ff.dv)
-            sub = ff.field[rows[0]:rows[-1] + 1, cols[0]:cols[-1] + 1]
-            sp = oam.oam_spectrum(sub, ff.u[cols[0]:cols[-1] + 1], ff.v[rows[0]:rows[-1] + 1], center=(uc, vc),
-                                  radius_um=radius_u, charges=charges, samples_per_pitch=2.0)
-            ch_oam.append({"charge": lc, "purity": sp.purity(lc), "weights": sp.weights.tolist()})
-        figures["oam_channels"] = {"about": "far-field spot of each channel", "charges": list(charges),
-                                   "channels": ch_oam}
-        figures["crosstalk"] = crosstalk_matrix(near, target.channels, wl, radius_u=radius_u,
-                                                pad_factor=pad_factor, workers=workers)
-    if target.focal_length_um:
-        lens_n = target.lens_medium_index
-        f_um = target.focal_length_um
-        u0, v0 = target.direction
-        w0 = np.sqrt(max(1e-12, 1 - u0 * u0 - v0 * v0))
-        ideal = None
-        if target.terms:
-            ph = _target_phase(target.terms, near.x_um[None, :], near.y_um[:, None], target)
-            ideal = np.abs(near.converted) * np.exp(1j * ph)
-            del ph
-        figures["lens"] = lens_metrics(near, wl, f_um, ideal=ideal, medium_index=lens_n,
-                                       center_um=(f_um * u0 / w0, f_um * v0 / w0), workers=workers)
-        del ideal
-    timings["metrics_s"] = time.perf_counter() - t0
-
-    images = {}
-    html_text = None
-    if make_plots:
+    dec = _read_and_decode(mask_path, lib, design, target, opt, notes, timings)
+    ev = _evaluate(dec, opt, notes, timings)
+    figures, fringe_image = _figures(dec, ev, opt, notes, timings)
+    images, html_text = {}, None
+    if opt.make_plots:
         t0 = time.perf_counter()
-        sm = max(1, int(np.ceil(max(near.designed.shape) / 700)))
-        xs, ys = near.x_um[::sm], near.y_um[::sm]
-        valid = near.illuminated[::sm, ::sm]
-        if target.terms:
-            images["1_target_phase"] = ("target phase of the design (wrapped), sampled on the grid",
-                                        P.phase_map(_target_phase(target.terms, xs[None, :], ys[:, None], target),
-                                                    xs, ys, title="target phase", valid=valid))
-        conv = near.converted[::sm, ::sm]
-        images["2_mask_phase"] = ("phase of the converted field decoded from the mask",
-                                  P.phase_map(np.angle(conv), xs, ys, title="mask-derived phase",
-                                              valid=valid & (np.abs(conv) > 0)))
-        images["3_layout_zoom"] = (f"mask polygons within {zoom_hw:g} um of ({zoom_c[0]:g}, {zoom_c[1]:g}) um",
-                                   P.layout_zoom(zoom_flat.start, zoom_flat.xy_db, db_um, center_um=zoom_c,
-                                                 half_width_um=zoom_hw))
-        ext = min(1.0, max(3 * np.hypot(*target.direction), 40 * lam_um / diameter,
-                           *[1.5 * np.hypot(c[1], c[2]) for c in target.channels] or [0]))
-        if target.focal_length_um:
-            ext = 1.0
-        images["4_far_field"] = ("far-field power of the designed polarisation over direction cosines",
-                                 P.far_field_map(ff.power, ff.u, ff.v, log=log_far_field, extent_u=ext,
-                                                 marks={k: v for k, v in centres.items()},
-                                                 title="far field" + (" (log)" if log_far_field else "")))
-        if "oam" in figures:
-            o = figures["oam"]
-            images["5_oam_spectrum"] = ("OAM spectrum of the converted beam about its axis",
-                                        P.oam_bars(o["charges"], o["weights"], design_charge=target.charge))
-            images["7_interferogram"] = (f"converted beam with a tilted plane reference; charge read: "
-                                         f"{figures['fringe_reading']['charge']}",
-                                         P.interferogram_map(inten, fx_, fy_))
-        if "crosstalk" in figures:
-            c = figures["crosstalk"]
-            images["6_crosstalk"] = ("crosstalk: on-axis power at each channel spot, probing with each channel's "
-                                     "conjugate vortex", P.crosstalk_map(c["matrix_db"], c["charges"]))
-        if "lens" in figures:
-            lm = figures["lens"]
-            images["8_focal_spot"] = ("focal spot profile against the Airy pattern of the same aperture",
-                                      P.focal_profile(lm["profile"]["radius_um"], lm["profile"]["intensity"],
-                                                      airy_radius_um=lm["airy_radius_um"]))
+        images = _images(dec, ev, figures, fringe_image, opt)
         timings["plots_s"] = time.perf_counter() - t0
-    figures = _json_ready(figures)
+    figures = json_ready(figures)
     inputs = {"mask": {"path": mask_path.name, "sha256": _sha256(mask_path), "bytes": mask_path.stat().st_size},
               "library": {"name": lib.name, "sha256": lib.sha256},
-              "design": getattr(design, "name", None), "wavelength_nm": wl, "polarization": polarization,
-              "layer": list(layer), "bias_nm": bias_nm, "size_tol_nm": size_tol_nm, "empty_t": str(empty_t),
-              "pad_factor": pad_factor, "max_side": max_side}
-    figures["inputs"] = _json_ready(inputs)
-    if make_plots:
+              "design": getattr(design, "name", None), "wavelength_nm": dec.target.wavelength_nm,
+              "polarization": opt.polarization, "layer": list(dec.layer), "bias_nm": dec.bias_nm,
+              "size_tol_nm": opt.size_tol_nm, "empty_t": str(opt.empty_t), "pad_factor": opt.pad_factor,
+              "max_side": opt.max_side}
+    figures["inputs"] = json_ready(inputs)
+    if opt.make_plots:
         from metalay.checks.report import render_html
 
-        html_text = render_html(title=title or f"Optical check of {mask_path.name}", caution=SAFETY_NOTE,
+        html_text = render_html(title=opt.title or f"Optical check of {mask_path.name}", caution=SAFETY_NOTE,
                                 inputs=inputs, figures={k: v for k, v in figures.items() if k != "inputs"},
                                 images=images, notes=notes)
-    files = {}
-    if out_dir is not None:
-        files = _write_outputs(Path(out_dir), figures, images, html_text)
+    files = _write_outputs(Path(out_dir), figures, images, html_text) if out_dir is not None else {}
     timings["total_s"] = time.perf_counter() - t_all
     return OpticsResult(figures=figures, images=images, html=html_text, files=files, timings=timings,
-                        notes=tuple(notes), near=near if keep_arrays else None, far=ff if keep_arrays else None)
+                        notes=tuple(notes), near=ev.near if opt.keep_arrays else None,
+                        far=ev.far if opt.keep_arrays else None)
 
 
 def _write_outputs(out_dir: Path, figures: dict, images: dict, html_text) -> dict:
@@ -1222,8 +1478,8 @@ def quick_check(mask_path, library, design, *, out_dir=None, workers: int = 2) -
     dict
         ``figures`` (numbers), ``files`` (name -> path, sha256, bytes), ``notes``, ``timings``.
     """
-    res = check_optics(mask_path, library, design=design, out_dir=out_dir, max_side=1024, pad_factor=2.0,
-                       workers=workers)
+    res = check_optics(mask_path, library, design=design, out_dir=out_dir,
+                       options=OpticsOptions(max_side=1024, pad_factor=2.0, workers=workers))
     return {"figures": res.figures, "files": res.files, "notes": list(res.notes), "timings": res.timings}
 
 

@@ -33,8 +33,7 @@ def demo_design_path() -> Path:
 
 
 def _compile(design_path, out_dir, args) -> int:
-    from metalay.mask.compile import SAFETY_CAUTION, compile_design
-    from metalay.design.spec import load_design
+    from metalay.api import SAFETY_CAUTION, compile_design, load_design
 
     design = load_design(design_path)
     result = compile_design(design, out_dir, show_progress=False if args.quiet else None,

@@ -51,7 +51,7 @@ def _check_range(name, value, lo, hi=None):
 
 def run(args) -> int:
     """Run the optical check; print a summary (the only printing happens here)."""
-    from metalay.checks.optics import SAFETY_NOTE, check_optics
+    from metalay.checks.optics import SAFETY_NOTE, OpticsOptions, check_optics
 
     _check_range("pad-factor", args.pad_factor, 1.0, 8.0)
     _check_range("max-side", args.max_side, 64, 16384)
@@ -68,10 +68,11 @@ def run(args) -> int:
     if library is None:
         raise MetalayError("command line: give --library (or --design, whose library is then used)")
     out = args.output or Path("out") / f"{args.mask.stem}-optics"
-    res = check_optics(args.mask, library, design=design, wavelength_nm=args.wavelength_nm,
-                       polarization=args.polarization, out_dir=out, bias_nm=args.bias_nm,
-                       size_tol_nm=args.size_tol_nm, unmatched=args.unmatched, pad_factor=args.pad_factor,
-                       max_side=args.max_side, make_plots=not args.no_plots, log_far_field=not args.linear_scale)
+    options = OpticsOptions(wavelength_nm=args.wavelength_nm, polarization=args.polarization, bias_nm=args.bias_nm,
+                            size_tol_nm=args.size_tol_nm, unmatched=args.unmatched, pad_factor=args.pad_factor,
+                            max_side=args.max_side, make_plots=not args.no_plots,
+                            log_far_field=not args.linear_scale)
+    res = check_optics(args.mask, library, design=design, out_dir=out, options=options)
     if not args.quiet:
         f = res.figures
         b = f["power_budget"]

@@ -1,13 +1,22 @@
 """The main job: a validated design -> mask files (GDSII, OASIS) + manifest.json, tile by tile.
 
-Pipeline per tile (a band of lattice rows): sites -> target phase -> cell and rotation -> snapped polygons ->
-streamed into the flat GDSII file; shape groups (or rotation levels) are gathered for OASIS and hierarchical GDSII,
-which gdstk writes at the end. Then the design-rule check and the quick optical check run on the written mask.
+:func:`compile_mask` runs five named stages into a staging folder, then moves the files into place:
+
+1. ``_plan``: library, cells and their biased outlines, datatypes, tiles, output formats; refuses a compile that
+   cannot fit the machine's memory or disk before anything is written;
+2. ``_write_tiles``: per tile (a band of lattice rows, ``_tile`` / ``_complement_tile`` in worker threads): sites ->
+   target phase -> cell and rotation -> snapped polygons -> streamed into the flat GDSII file; statistics summed and
+   shape groups (or rotation levels) gathered for OASIS and hierarchical GDSII;
+3. ``_write_gdstk_formats``: OASIS and hierarchical GDSII through gdstk;
+4. ``_run_checks``: the checks the caller hands in (:class:`~metalay.mask.steps.MaskCheck` steps; this module never
+   imports a check, the standard set is :func:`metalay.checks.steps.default_checks`);
+5. ``_manifest``: counts, worst errors, warnings, check results, file hashes.
 """
 
 from __future__ import annotations
 
 import collections
+import contextlib
 import hashlib
 import json
 import math
@@ -15,32 +24,34 @@ import os
 import shutil
 import tempfile
 import time
+from collections.abc import Sequence
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field, replace
 from pathlib import Path
 
 import numpy as np
 
+from metalay.cells.cellkinds import is_rotation_invariant, outline_nm
+from metalay.cells.library import CellLibrary, load_library
+from metalay.design.lattice import aperture_area_um2, cell_area_um2, row_range, sample_sites
+from metalay.design.phase import phase_gradient, target_phase
+from metalay.design.spec import Design
+from metalay.errors import DesignError, MetalayError, OutputError
+from metalay.io.writer import (GdsStream, add_polygons, boundary_records, boundary_records_rows, build_gdstk_fields,
+                               build_gdstk_flat, build_gdstk_levels, write_gdstk_library)
+from metalay.mask.layout import (element_offsets, frame_polygons, group_shapes, recovered_rotation, snap_centres,
+                                 snap_rows, text_polygons)
+from metalay.mask.mapping import assign_cells, wrap_pi
+from metalay.mask.process import (WriteFieldGrid, alignment_marks, aperture_region_db, bias_outline_nm,
+                                  check_marks_clear, complement_bands, complement_tile, default_mark_positions_um,
+                                  dose_datatype_lut, field_cell_name, field_index, fit_write_fields,
+                                  frame_region_db, pieces_by_vertex_count, shift_phase_error_rad)
+from metalay.mask.steps import MaskCheck, WrittenMask
 from metalay.util._memory import keep_freed_memory
 from metalay.util.atomic import atomic_write_text, ensure_dir
-from metalay.cells.cellkinds import is_rotation_invariant, outline_nm
-from metalay.errors import DesignError, MetalayError, OutputError
-from metalay.design.lattice import aperture_area_um2, cell_area_um2, row_range, sample_sites
-from metalay.mask.layout import (element_offsets, frame_polygons, group_shapes, recovered_rotation, snap_centres, snap_rows,
-                     text_polygons)
-from metalay.cells.library import CellLibrary, load_library
-from metalay.mask.mapping import assign_cells, wrap_pi
-from metalay.design.phase import phase_gradient, target_phase
 from metalay.util.progress import progress
-from metalay.design.spec import Design
-from metalay.mask.process import (WriteFieldGrid, alignment_marks, aperture_region_db, bias_outline_nm, check_marks_clear,
-                      complement_bands, complement_tile, default_mark_positions_um, dose_datatype_lut,
-                      field_cell_name, field_index, fit_write_fields, frame_region_db, pieces_by_vertex_count,
-                      shift_phase_error_rad)
-from metalay.io.writer import (GdsStream, add_polygons, boundary_records, boundary_records_rows, build_gdstk_fields,
-                     build_gdstk_flat, build_gdstk_levels, write_gdstk_library)
 
-__all__ = ["CompileResult", "compile_design", "SAFETY_CAUTION", "design_warnings", "medium_index"]
+__all__ = ["CompileResult", "compile_mask", "SAFETY_CAUTION", "SITES_PER_TILE", "design_warnings", "medium_index"]
 
 SAFETY_CAUTION = (
     "Caution: metalay is a design aid. Verify every mask with full-wave simulation and against your facility's "
@@ -59,7 +70,7 @@ COMPLEMENT_VERIFY_EVERY = 16
 
 @dataclass(frozen=True)
 class CompileResult:
-    """What :func:`compile_design` produced."""
+    """What :func:`compile_mask` produced."""
 
     out_dir: Path
     files: dict
@@ -130,19 +141,41 @@ def _sha256(path: Path) -> str:
     return h.hexdigest()
 
 
-def compile_design(design: Design, out_dir: str | Path, **options) -> CompileResult:
-    """Compile ``design`` into mask files and a manifest in ``out_dir`` (all or nothing).
+def compile_mask(design: Design, out_dir: str | Path, *, checks: Sequence[MaskCheck] = (),
+                 show_progress: bool | None = None, sites_per_tile: int = SITES_PER_TILE) -> CompileResult:
+    """Compile ``design`` into mask files and a manifest in ``out_dir`` (all or nothing), then run ``checks``.
 
     Files are first written into a staging folder inside ``out_dir`` and moved into place only when every stage
-    (writing, design rules, optics) has succeeded; on any error the staging folder is removed, so a failed run
-    leaves no mask and no manifest behind. Options are those of :func:`_compile_into`.
+    (writing and every check) has succeeded; on any error the staging folder is removed, so a failed run leaves no
+    mask and no manifest behind.
+
+    Parameters
+    ----------
+    design : Design
+        A validated design (:func:`metalay.design.spec.load_design`).
+    out_dir : str or Path
+        Output folder (created). Files: ``<name>.gds``, ``<name>.oas`` (as requested), ``manifest.json``,
+        ``timings.json`` and whatever the checks write (e.g. ``optics/``).
+    checks : sequence of MaskCheck
+        Checks run on the written mask, in order, when enabled for this design; their results go to
+        ``manifest["checks"]``. The standard set is :func:`metalay.checks.steps.default_checks`
+        (:func:`metalay.api.compile_design` passes it).
+    show_progress : bool or None
+        Progress bar on stderr (None: only on a terminal).
+    sites_per_tile : int
+        Tile size bound (memory).
+
+    Returns
+    -------
+    CompileResult
     """
     out = ensure_dir(out_dir)
     keep_freed_memory()
     stage = Path(tempfile.mkdtemp(prefix=".metalay-stage-", dir=out))
     try:
         try:
-            result = _compile_into(design, stage, **options)
+            result = _compile_into(design, stage, checks=checks, show_progress=show_progress,
+                                   sites_per_tile=sites_per_tile)
         except OSError as exc:  # e.g. the disk filled up while writing: one line, nothing left behind
             raise OutputError(f"{out}: writing failed ({exc.strerror or exc})") from exc
         moved = {}
@@ -158,35 +191,82 @@ def compile_design(design: Design, out_dir: str | Path, **options) -> CompileRes
         shutil.rmtree(stage, ignore_errors=True)
 
 
-def _compile_into(design: Design, out_dir: str | Path, *, show_progress: bool | None = None,
-                   run_rules: bool | None = None, run_optics: bool | None = None,
-                   sites_per_tile: int = SITES_PER_TILE) -> CompileResult:
-    """Compile ``design`` into mask files and a manifest in ``out_dir``.
-
-    Parameters
-    ----------
-    design : Design
-        A validated design (:func:`metalay.spec.load_design`).
-    out_dir : str or Path
-        Output folder (created). Files: ``<name>.gds``, ``<name>.oas`` (as requested), ``manifest.json``,
-        ``timings.json``.
-    show_progress : bool or None
-        Progress bar on stderr (None: only on a terminal).
-    run_rules, run_optics : bool or None
-        Override the design's ``[checks]`` settings.
-    sites_per_tile : int
-        Tile size bound (memory).
-
-    Returns
-    -------
-    CompileResult
-    """
+def _compile_into(design: Design, out: Path, *, checks: Sequence[MaskCheck], show_progress: bool | None,
+                  sites_per_tile: int) -> CompileResult:
+    """The stages of one compile into the folder ``out``: plan, tiles, gdstk formats, checks, manifest."""
     t_start = time.perf_counter()
     timings: dict[str, float] = {}
-    library = load_library(design.library)
-    out = ensure_dir(out_dir)
+    enabled = [c for c in checks if c.enabled(design)]
+    plan = _plan(design, out, sites_per_tile=sites_per_tile,
+                 structures_for_checks=any(c.needs_structures for c in enabled))
+    t0 = time.perf_counter()
+    gathered, known_hashes = _write_tiles(plan, show_progress=show_progress)
+    timings["layout_and_flat_gds_s"] = time.perf_counter() - t0
+    if gathered.totals.n_sites == 0:
+        raise DesignError(f"{design.source_path}: no whole unit cell fits inside the aperture (allowed: aperture "
+                          f"larger than one cell of period {design.lattice.period_nm:g} nm)")
+    files: dict[str, Path] = {}
+    if plan.stream_gds:
+        files["gds"] = plan.gds_path
+    if plan.gdstk_formats:
+        t0 = time.perf_counter()
+        files.update(_write_gdstk_formats(plan, gathered))
+        timings["gdstk_write_s"] = time.perf_counter() - t0
+    results = _run_checks(plan, enabled, files, timings)
+    manifest = _manifest(plan, gathered, files, results, known_hashes)
+    atomic_write_text(out / "manifest.json", json.dumps(manifest, sort_keys=True, indent=2, default=str) + "\n")
+    timings["total_s"] = time.perf_counter() - t_start
+    atomic_write_text(out / "timings.json", json.dumps(_rounded(timings), sort_keys=True, indent=2) + "\n")
+    files["manifest"] = out / "manifest.json"
+    summary = _summary(design, plan.library, manifest, files)
+    return CompileResult(out, files, manifest, tuple(manifest["warnings"]), tuple(summary), timings)
+
+
+# ----------------------------------------------------------------------------------------------------------------
+# Stage 1: the plan (cells, datatypes, tiles, output formats), checked against the machine before writing
+# ----------------------------------------------------------------------------------------------------------------
+
+@dataclass(frozen=True)
+class _Plan:
+    """Everything decided before the first tile: what to write, where, and how the tiles are cut."""
+
+    design: Design
+    library: CellLibrary
+    out: Path
+    cell_ids: list
+    outlines: list
+    classes: list            # structure classes: cell ids, then complement, frame, label, marks
+    lut: np.ndarray          # datatype per class
+    grid: WriteFieldGrid | None
+    tiles: list              # (row0, row1) per tile, or (rows, box_db, verify) per complement band
+    ctx: "_TileContext"
+    stream_gds: bool         # flat GDSII streamed tile by tile by our own writer
+    need_groups: bool        # OASIS or hierarchical GDSII: gather shape groups for gdstk
+    per_field: bool          # one GDSII/OASIS cell per write field
+
+    @property
+    def complement(self) -> bool:
+        return self.design.mask.tone == "complement"
+
+    @property
+    def gds_path(self) -> Path:
+        return self.out / f"{self.design.name}.gds"
+
+    @property
+    def holes_path(self) -> Path:
+        return self.out / ".structures-for-rules.gds"
+
+    @property
+    def gdstk_formats(self) -> list[str]:
+        return [f for f in self.design.mask.formats if f == "oas" or (f == "gds" and not self.stream_gds)]
+
+    def datatype(self, purpose: str) -> int:
+        return int(self.lut[self.classes.index(purpose)])
+
+
+def _cells_and_outlines(design: Design, library: CellLibrary) -> tuple[list, list]:
+    """Cell ids the design uses and their biased outlines (nm, rotation 0)."""
     mask = design.mask
-    db = mask.db_unit_nm
     if library.phase_mechanism == "geometric":
         cell_ids = [mask.cell or library.cells[0].id]
         library.cell_index(cell_ids[0])
@@ -201,247 +281,308 @@ def _compile_into(design: Design, out_dir: str | Path, *, show_progress: bool | 
     outlines = [bias_outline_nm(outline_nm(library.cells[library.cell_index(c)]), mask.bias_nm,
                                 corner=mask.bias_corners, where=design.source_path)
                 for c in cell_ids]
-    levels = mask.rotation_levels
-    s_layer, s_dt = mask.layer("structures")
+    return cell_ids, outlines
+
+
+def _datatype_table(design: Design, cell_ids: list) -> tuple[list, np.ndarray]:
+    """Structure classes and their datatypes (dose datatypes; purposes keep their own unless a dose one is set)."""
+    mask = design.mask
     classes = list(cell_ids) + ["complement", "frame", "label", "marks"]
     dose = dict(mask.dose_datatypes)
-    lut = dose_datatype_lut(classes, dose, s_dt, where=design.source_path)
-    for purpose in ("frame", "label", "marks"):  # purposes keep their own datatype unless a dose one is set
+    lut = dose_datatype_lut(classes, dose, mask.layer("structures")[1], where=design.source_path)
+    for purpose in ("frame", "label", "marks"):
         if purpose not in dose:
             lut[classes.index(purpose)] = mask.layer(purpose)[1]
+    return classes, lut
+
+
+def _plan(design: Design, out: Path, *, sites_per_tile: int, structures_for_checks: bool) -> _Plan:
+    """Stage 1: load the library, choose cells, datatypes, output paths and tiles; refuse what cannot fit."""
+    library = load_library(design.library)
+    mask = design.mask
+    db_unit_nm = mask.db_unit_nm
+    cell_ids, outlines = _cells_and_outlines(design, library)
+    classes, lut = _datatype_table(design, cell_ids)
     grid = None
     if mask.write_field is not None:
         wf = mask.write_field
-        grid = WriteFieldGrid.from_um(wf.size_um, wf.origin_um, db_unit_nm=db)
+        grid = WriteFieldGrid.from_um(wf.size_um, wf.origin_um, db_unit_nm=db_unit_nm)
     complement = mask.tone == "complement"
-
     j0, j1 = row_range(design.aperture, design.lattice)
     sites_per_row = max(1.0, 2 * design.aperture.half_extent_um[0] / design.lattice.period_um)
     rows_per_tile = max(1, int(sites_per_tile / sites_per_row))
     tiles = [(a, min(a + rows_per_tile, j1)) for a in range(j0, j1, rows_per_tile)]
-
-    name = design.name
-    gds_path = out / f"{name}.gds"
     want_gds = "gds" in mask.formats
     per_field = mask.write_field is not None and mask.write_field.cell_per_field
     stream_gds = want_gds and mask.hierarchy == "flat" and not per_field
     need_groups = "oas" in mask.formats or (want_gds and not stream_gds)
     _check_resources(design, out, outlines, stream_gds=stream_gds, need_groups=need_groups)
     level_offsets = None
-    if levels:
-        thetas = np.arange(levels) * np.pi / levels
-        level_offsets = [element_offsets(o, thetas, db) for o in outlines]  # (K, V, 2) per cell
-    min_gap_db = float(library.rules.get("min_gap_nm", 0.0)) / db
+    if mask.rotation_levels:
+        thetas = np.arange(mask.rotation_levels) * np.pi / mask.rotation_levels
+        level_offsets = [element_offsets(o, thetas, db_unit_nm) for o in outlines]  # (K, V, 2) per cell
     ctx = _TileContext(design=design, library=library, cell_ids=cell_ids, outlines=outlines,
-                       level_offsets=level_offsets, layer=s_layer, datatypes=tuple(int(v) for v in lut),
-                       encode_gds=stream_gds and not complement, need_groups=need_groups and not complement,
+                       level_offsets=level_offsets, layer=mask.layer("structures")[0],
+                       datatypes=tuple(int(v) for v in lut), encode_gds=stream_gds and not complement,
+                       need_groups=need_groups and not complement,
                        alias_stride=max(1, int(math.ceil(_estimate_sites(design) / ALIAS_SAMPLES))),
-                       grid=grid, min_gap_db=min_gap_db)
+                       grid=grid, min_gap_db=float(library.rules.get("min_gap_nm", 0.0)) / db_unit_nm)
     if complement:
-        region = (aperture_region_db(design.aperture, db_unit_nm=db) if mask.complement_region == "aperture"
-                  else frame_region_db(design.aperture, margin_um=mask.frame_margin_um, db_unit_nm=db))
-        reach_nm = max(float(np.hypot(*o.T).max()) for o in outlines) + 2 * db
-        if grid is not None:
-            reach_nm += mask.write_field.max_shift_nm
-        bands = complement_bands(region, design.lattice, design.aperture, db_unit_nm=db, reach_nm=reach_nm,
-                                 rows_per_band=mask.complement_band_rows, field=grid)
-        do_rules_here = design.checks.rules if run_rules is None else run_rules
-        ctx = replace(ctx, region=region, encode_structures=bool(do_rules_here))
-        tiles = [(b.rows, b.box_db, k % COMPLEMENT_VERIFY_EVERY == 0) for k, b in enumerate(bands)]
-    wf_counts = {"straddling": 0, "shifted": 0, "dropped": 0, "kept_straddling": 0}
-    worst_shift_nm = 0.0
-    worst_shift_phase = 0.0
-    comp_stats = {"polygons": 0, "max_vertices": 0, "area_db2": 0.0, "target_area_db2": 0.0, "xor_db2": 0.0,
-                  "xor_bound_db2": 0.0, "bands_verified": 0}
-    comp_pieces: list[tuple[int, np.ndarray]] = []
+        ctx, tiles = _complement_plan(design, ctx, outlines, grid, encode_structures=structures_for_checks)
+    return _Plan(design, library, out, cell_ids, outlines, classes, lut, grid, tiles, ctx, stream_gds,
+                 need_groups, per_field)
 
-    n_sites = 0
-    per_cell = np.zeros(len(cell_ids), dtype=np.int64)
-    worst_snap = 0.0
-    quant_err = 0.0
-    shape_table: dict = {}
-    shape_list: list[tuple[int, np.ndarray]] = []  # (cell slot, offsets (V, 2))
-    site_shape: list[np.ndarray] = []
-    site_centre: list[np.ndarray] = []
-    alias_hits = 0
-    alias_total = 0
-    alias_r = [math.inf, 0.0]
 
+def _complement_plan(design: Design, ctx: "_TileContext", outlines, grid, *, encode_structures: bool):
+    """Tone inversion: the region to invert and its bands (every ``COMPLEMENT_VERIFY_EVERY``-th XOR-verified)."""
+    mask = design.mask
+    db_unit_nm = mask.db_unit_nm
+    region = (aperture_region_db(design.aperture, db_unit_nm=db_unit_nm) if mask.complement_region == "aperture"
+              else frame_region_db(design.aperture, margin_um=mask.frame_margin_um, db_unit_nm=db_unit_nm))
+    reach_nm = max(float(np.hypot(*o.T).max()) for o in outlines) + 2 * db_unit_nm
+    if grid is not None:
+        reach_nm += mask.write_field.max_shift_nm
+    bands = complement_bands(region, design.lattice, design.aperture, db_unit_nm=db_unit_nm, reach_nm=reach_nm,
+                             rows_per_band=mask.complement_band_rows, field=grid)
+    ctx = replace(ctx, region=region, encode_structures=bool(encode_structures))
+    return ctx, [(b.rows, b.box_db, k % COMPLEMENT_VERIFY_EVERY == 0) for k, b in enumerate(bands)]
+
+
+# ----------------------------------------------------------------------------------------------------------------
+# Stage 2: tiles -> flat GDSII stream, statistics, shape groups
+# ----------------------------------------------------------------------------------------------------------------
+
+@dataclass
+class _Totals:
+    """Per-tile statistics summed in tile order (so the sums are the same for any thread count)."""
+
+    n_sites: int
+    per_cell: np.ndarray
+    worst_snap: float = 0.0
+    quant_err: float = 0.0
+    alias_hits: int = 0
+    alias_total: int = 0
+    alias_r: list = field(default_factory=lambda: [math.inf, 0.0])
+    wf_counts: dict = field(default_factory=lambda: {"straddling": 0, "shifted": 0, "dropped": 0,
+                                                     "kept_straddling": 0})
+    worst_shift_nm: float = 0.0
+    worst_shift_phase: float = 0.0
+    comp: dict = field(default_factory=lambda: {"polygons": 0, "max_vertices": 0, "area_db2": 0.0,
+                                                "target_area_db2": 0.0, "xor_db2": 0.0, "xor_bound_db2": 0.0,
+                                                "bands_verified": 0})
+
+    def add(self, tile: "_TileOut") -> None:
+        self.n_sites += tile.n
+        self.per_cell += tile.per_cell
+        self.worst_snap = max(self.worst_snap, tile.worst_snap)
+        self.quant_err = max(self.quant_err, tile.quant_err)
+        self.alias_hits += tile.alias_hits
+        self.alias_total += tile.alias_total
+        self.alias_r = [min(self.alias_r[0], tile.alias_r[0]), max(self.alias_r[1], tile.alias_r[1])]
+        for k, v in tile.wf_counts.items():
+            self.wf_counts[k] += v
+        self.worst_shift_nm = max(self.worst_shift_nm, tile.worst_shift_nm)
+        self.worst_shift_phase = max(self.worst_shift_phase, tile.worst_shift_phase)
+        ct = tile.complement
+        if ct is not None:
+            self.comp["polygons"] += ct.count
+            self.comp["max_vertices"] = max(self.comp["max_vertices"], int(ct.max_vertices))
+            self.comp["area_db2"] += float(ct.area_db2)
+            self.comp["target_area_db2"] += float(ct.target_area_db2)
+            if ct.xor_area_db2 is not None and np.isfinite(ct.xor_area_db2):
+                self.comp["xor_db2"] += float(ct.xor_area_db2)
+                self.comp["xor_bound_db2"] += float(ct.xor_bound_db2)
+                self.comp["bands_verified"] += 1
+
+
+@dataclass
+class _Gathered:
+    """What the tiles leave for the gdstk writers and the manifest."""
+
+    totals: _Totals
+    shape_table: dict = field(default_factory=dict)  # (cell slot, shape key) -> group id
+    shape_list: list = field(default_factory=list)   # (cell slot, offsets (V, 2)) per group
+    site_shape: list = field(default_factory=list)   # group id per site, per tile
+    site_centre: list = field(default_factory=list)  # centres per site, per tile
+    comp_pieces: list = field(default_factory=list)  # (vertex count, vertices) of tone-inversion pieces
+    extras: list = field(default_factory=list)       # frame, label, marks
+
+    def add_groups(self, groups) -> None:
+        """Give each distinct shape (or rotation level) of a tile a global group id."""
+        for slot, local_keys, local_shapes, shape_idx, centres in groups:
+            gmap = np.empty(len(local_keys), dtype=np.int32)
+            for u, key in enumerate(local_keys):  # distinct shapes or levels (~1e3), not sites
+                gid = self.shape_table.get((slot, key))
+                if gid is None:
+                    gid = self.shape_table[(slot, key)] = len(self.shape_list)
+                    self.shape_list.append((slot, local_shapes[u]))
+                gmap[u] = gid
+            self.site_shape.append(gmap[shape_idx])
+            self.site_centre.append(centres)
+
+    def members(self) -> list[np.ndarray]:
+        """Centres (int64, (n_g, 2)) of the sites of each group, consuming the per-tile lists."""
+        shape_of_site = np.concatenate(self.site_shape)
+        centres_all = np.concatenate(self.site_centre)
+        self.site_shape, self.site_centre = [], []
+        order = np.argsort(shape_of_site, kind="stable")
+        bounds = np.searchsorted(shape_of_site[order], np.arange(len(self.shape_list) + 1))
+        return [centres_all[order[bounds[g]:bounds[g + 1]]].astype(np.int64) for g in range(len(self.shape_list))]
+
+
+def _write_tiles(plan: _Plan, *, show_progress: bool | None) -> tuple[_Gathered, dict[str, str]]:
+    """Stage 2: run every tile (threads, in order), stream the flat GDSII, gather statistics and shape groups.
+
+    Returns the gathered data and the SHA-256 of the streamed GDSII (computed while writing).
+    """
+    design, mask = plan.design, plan.design.mask
+    db_unit_nm = mask.db_unit_nm
+    gathered = _Gathered(_Totals(0, np.zeros(len(plan.cell_ids), dtype=np.int64)))
     known_hashes: dict[str, str] = {}
-    t0 = time.perf_counter()
-    bar = progress(total=len(tiles), desc=f"{name}: tiles", enabled=show_progress, unit="tile")
-    stream = GdsStream(gds_path, name, db_unit_nm=db) if stream_gds else None
-    holes_path = out / ".structures-for-rules.gds"
-    holes = GdsStream(holes_path, name, db_unit_nm=db) if ctx.encode_structures else None
-    try:
-        if stream is not None:
-            stream.__enter__()
-        if holes is not None:
-            holes.__enter__()
-        for tile in _run_tiles(tiles, ctx, _complement_tile if complement else _tile):
+    bar = progress(total=len(plan.tiles), desc=f"{design.name}: tiles", enabled=show_progress, unit="tile")
+    with contextlib.ExitStack() as streams:
+        stream = holes = None
+        if plan.stream_gds:
+            stream = streams.enter_context(GdsStream(plan.gds_path, design.name, db_unit_nm=db_unit_nm))
+        if plan.ctx.encode_structures:
+            holes = streams.enter_context(GdsStream(plan.holes_path, design.name, db_unit_nm=db_unit_nm))
+        target = holes if plan.complement else stream
+        for tile in _run_tiles(plan.tiles, plan.ctx, _complement_tile if plan.complement else _tile):
             bar.update(1)
             if tile.n == 0 and tile.complement is None:
                 continue
-            n_sites += tile.n
-            per_cell += tile.per_cell
-            worst_snap = max(worst_snap, tile.worst_snap)
-            quant_err = max(quant_err, tile.quant_err)
-            alias_hits += tile.alias_hits
-            alias_total += tile.alias_total
-            alias_r = [min(alias_r[0], tile.alias_r[0]), max(alias_r[1], tile.alias_r[1])]
-            for k, v in tile.wf_counts.items():
-                wf_counts[k] += v
-            worst_shift_nm = max(worst_shift_nm, tile.worst_shift_nm)
-            worst_shift_phase = max(worst_shift_phase, tile.worst_shift_phase)
-            target = holes if complement else stream
+            gathered.totals.add(tile)
             if target is not None:
                 for rec in tile.records:
                     target.write_records(rec)
             if tile.complement is not None:
-                ct = tile.complement
-                comp_stats["polygons"] += ct.count
-                comp_stats["max_vertices"] = max(comp_stats["max_vertices"], int(ct.max_vertices))
-                comp_stats["area_db2"] += float(ct.area_db2)
-                comp_stats["target_area_db2"] += float(ct.target_area_db2)
-                if ct.xor_area_db2 is not None and np.isfinite(ct.xor_area_db2):
-                    comp_stats["xor_db2"] += float(ct.xor_area_db2)
-                    comp_stats["xor_bound_db2"] += float(ct.xor_bound_db2)
-                    comp_stats["bands_verified"] += 1
-                for nv, verts in pieces_by_vertex_count(ct):
+                for nv, verts in pieces_by_vertex_count(tile.complement):
                     if stream is not None:
-                        stream.boundaries(s_layer, int(lut[classes.index("complement")]), verts)
+                        stream.boundaries(plan.ctx.layer, plan.datatype("complement"), verts)
                     if "oas" in mask.formats:
-                        comp_pieces.append((nv, verts))
-            for slot, local_keys, local_shapes, shape_idx, centres in tile.groups:
-                gmap = np.empty(len(local_keys), dtype=np.int32)
-                for u, key in enumerate(local_keys):  # distinct shapes or levels (~1e3), not sites
-                    gid = shape_table.get((slot, key))
-                    if gid is None:
-                        gid = shape_table[(slot, key)] = len(shape_list)
-                        shape_list.append((slot, local_shapes[u]))
-                    gmap[u] = gid
-                site_shape.append(gmap[shape_idx])
-                site_centre.append(centres)
+                        gathered.comp_pieces.append((nv, verts))
+            gathered.add_groups(tile.groups)
         bar.close()
-        extras = _extras(design, library, lut, classes)
-        if stream is not None:
-            stream.polygons(extras)
-            stream.__exit__(None, None, None)
-            known_hashes[gds_path.name] = stream.sha256
-            stream = None
-        if holes is not None:
-            holes.polygons(extras)
-            holes.__exit__(None, None, None)
-            holes = None
-    except BaseException as exc:
-        for open_stream in (stream, holes):
-            if open_stream is not None:
-                open_stream.__exit__(type(exc), exc, exc.__traceback__)
-        raise
-    timings["layout_and_flat_gds_s"] = time.perf_counter() - t0
-    if n_sites == 0:
-        raise DesignError(f"{design.source_path}: no whole unit cell fits inside the aperture (allowed: aperture "
-                          f"larger than one cell of period {design.lattice.period_nm:g} nm)")
+        gathered.extras = _extras(design, plan.library, plan.lut, plan.classes)
+        for s in (stream, holes):
+            if s is not None:
+                s.polygons(gathered.extras)
+    if stream is not None:
+        known_hashes[plan.gds_path.name] = stream.sha256
+    return gathered, known_hashes
 
-    files: dict[str, Path] = {}
-    if stream_gds:
-        files["gds"] = gds_path
-    gk_formats = [f for f in mask.formats if f == "oas" or (f == "gds" and not stream_gds)]
-    if gk_formats:
-        t0 = time.perf_counter()
-        if complement:
-            lib = build_gdstk_flat(name, [], extras, db_unit_nm=db)
-            add_polygons(lib, name, s_layer, int(lut[classes.index("complement")]), [v for _, v in comp_pieces],
-                         db_unit_nm=db)
-            del comp_pieces
+
+# ----------------------------------------------------------------------------------------------------------------
+# Stage 3: OASIS and hierarchical GDSII through gdstk
+# ----------------------------------------------------------------------------------------------------------------
+
+def _write_gdstk_formats(plan: _Plan, gathered: _Gathered) -> dict[str, Path]:
+    """Stage 3: build one gdstk library from the gathered groups (or complement pieces) and write each format."""
+    name, mask = plan.design.name, plan.design.mask
+    db_unit_nm = mask.db_unit_nm
+    s_layer = plan.ctx.layer
+    if plan.complement:
+        lib = build_gdstk_flat(name, [], gathered.extras, db_unit_nm=db_unit_nm)
+        add_polygons(lib, name, s_layer, plan.datatype("complement"), [v for _, v in gathered.comp_pieces],
+                     db_unit_nm=db_unit_nm)
+        gathered.comp_pieces = []
+    else:
+        members = gathered.members()
+        shape_list = gathered.shape_list
+        if plan.per_field:
+            lib = _field_library(name, shape_list, members, plan.lut, s_layer, plan.grid, gathered.extras,
+                                 db_unit_nm)
+        elif mask.hierarchy == "levels":
+            lib = build_gdstk_levels(name, [(s_layer, int(plan.lut[slot]), shp) for slot, shp in shape_list],
+                                     members, gathered.extras, db_unit_nm=db_unit_nm)
         else:
-            shape_of_site = np.concatenate(site_shape)
-            centres_all = np.concatenate(site_centre)
-            del site_shape, site_centre
-            order = np.argsort(shape_of_site, kind="stable")
-            bounds = np.searchsorted(shape_of_site[order], np.arange(len(shape_list) + 1))
-            members = [centres_all[order[bounds[g]:bounds[g + 1]]].astype(np.int64) for g in range(len(shape_list))]
-            del order, centres_all, shape_of_site
-            if per_field:
-                lib = _field_library(name, shape_list, members, lut, s_layer, grid, extras, db)
-            elif mask.hierarchy == "levels":
-                lib = build_gdstk_levels(name, [(s_layer, int(lut[slot]), shp) for slot, shp in shape_list],
-                                         members, extras, db_unit_nm=db)
-            else:
-                lib = build_gdstk_flat(name, [(s_layer, int(lut[slot]), shp, m)
-                                              for (slot, shp), m in zip(shape_list, members)], extras,
-                                       db_unit_nm=db)
-            del members
-        for fmt in gk_formats:
-            files[fmt] = write_gdstk_library(lib, out / f"{name}.{fmt}", fmt)
-        del lib
-        timings["gdstk_write_s"] = time.perf_counter() - t0
+            lib = build_gdstk_flat(name, [(s_layer, int(plan.lut[slot]), shp, m)
+                                          for (slot, shp), m in zip(shape_list, members)], gathered.extras,
+                                   db_unit_nm=db_unit_nm)
+        del members
+    return {fmt: write_gdstk_library(lib, plan.out / f"{name}.{fmt}", fmt) for fmt in plan.gdstk_formats}
 
-    alias_fraction = alias_hits / max(alias_total, 1)
-    warnings = design_warnings(design, library, alias_fraction=alias_fraction, alias_r_min_um=alias_r[0],
-                               alias_r_max_um=alias_r[1])
-    fill = n_sites * cell_area_um2(design.lattice) / aperture_area_um2(design.aperture)
-    counts = {
-        "sites": int(n_sites),
-        "fill_factor": round(float(fill), 6),
-        "elements_per_cell": {cid: int(c) for cid, c in zip(cell_ids, per_cell)},
-        "distinct_shapes": len(shape_list) if need_groups and not complement else None,  # None: not grouped
-        "tiles": len(tiles),
-    }
-    errors = {
-        "worst_snapping_phase_error_deg": round(math.degrees(worst_snap), 6),
-        "worst_quantisation_phase_error_deg": round(math.degrees(quant_err), 6),
-        "aliased_site_fraction": round(alias_fraction, 6),
-    }
-    checks = {}
+
+# ----------------------------------------------------------------------------------------------------------------
+# Stage 4: the checks handed in by the caller; stage 5: the manifest
+# ----------------------------------------------------------------------------------------------------------------
+
+def _run_checks(plan: _Plan, checks: Sequence[MaskCheck], files: dict, timings: dict) -> dict:
+    """Stage 4: run each enabled check on the primary mask file; results keyed by check name."""
     primary = files.get("gds") or files.get("oas")
-    do_rules = design.checks.rules if run_rules is None else run_rules
-    if do_rules:
+    written = WrittenMask(primary, plan.library, plan.design,
+                          structures_path=plan.holes_path if plan.ctx.encode_structures else None)
+    results = {}
+    for check in checks:
         t0 = time.perf_counter()
-        checks["rules"] = _run_rules(primary, library, design,
-                                     structures_path=holes_path if ctx.encode_structures else None)
-        holes_path.unlink(missing_ok=True)
-        timings["rules_s"] = time.perf_counter() - t0
-    do_optics = design.checks.optics if run_optics is None else run_optics
-    if do_optics:
-        t0 = time.perf_counter()
-        checks["optics"] = _run_optics(primary, library, design)
-        timings["optics_s"] = time.perf_counter() - t0
-
-    for key, res in checks.items():  # timings are not deterministic: they go to timings.json
+        results[check.name] = check.run(written if check.needs_structures else replace(written,
+                                                                                       structures_path=None))
+        timings[f"{check.name}_s"] = time.perf_counter() - t0
+    plan.holes_path.unlink(missing_ok=True)
+    for key, res in results.items():  # timings are not deterministic: they go to timings.json
         if isinstance(res, dict) and "timings_s" in res:
             timings[f"{key}_stages"] = res.pop("timings_s")
+    return results
+
+
+def _process_block(plan: _Plan, totals: _Totals) -> dict:
+    """The manifest's ``process`` block: bias, tone statistics, write-field counts, marks, datatypes."""
+    mask = plan.design.mask
+    db_unit_nm = mask.db_unit_nm
     process = {"bias_nm": mask.bias_nm, "bias_corners": mask.bias_corners, "tone": mask.tone,
-               "dose_datatypes": dict(zip(classes, (int(v) for v in lut)))}
+               "dose_datatypes": dict(zip(plan.classes, (int(v) for v in plan.lut)))}
     if mask.write_field is not None:
         wf = mask.write_field
         process["write_field"] = {"size_um": list(wf.size_um), "origin_um": list(wf.origin_um),
                                   "cell_per_field": wf.cell_per_field,
-                                  "straddle": wf.straddle, "max_shift_nm": wf.max_shift_nm, "counts": wf_counts,
-                                  "worst_shift_nm": round(worst_shift_nm, 3),
-                                  "worst_shift_phase_error_deg": round(math.degrees(worst_shift_phase), 6)}
-    if complement:
-        tgt = comp_stats["target_area_db2"]
+                                  "straddle": wf.straddle, "max_shift_nm": wf.max_shift_nm,
+                                  "counts": totals.wf_counts, "worst_shift_nm": round(totals.worst_shift_nm, 3),
+                                  "worst_shift_phase_error_deg": round(math.degrees(totals.worst_shift_phase), 6)}
+    if plan.complement:
+        comp = totals.comp
+        tgt = comp["target_area_db2"]
         process["complement"] = {
-            "region": mask.complement_region, "polygons": comp_stats["polygons"],
-            "max_vertices": comp_stats["max_vertices"],
-            "area_relative_difference": round(abs(comp_stats["area_db2"] - tgt) / tgt, 9) if tgt else 0.0,
-            "bands": len(tiles), "bands_xor_verified": comp_stats["bands_verified"],
-            "xor_area_um2": round(comp_stats["xor_db2"] * (db * 1e-3) ** 2, 6),
-            "xor_bound_um2": round(comp_stats["xor_bound_db2"] * (db * 1e-3) ** 2, 6)}
+            "region": mask.complement_region, "polygons": comp["polygons"],
+            "max_vertices": comp["max_vertices"],
+            "area_relative_difference": round(abs(comp["area_db2"] - tgt) / tgt, 9) if tgt else 0.0,
+            "bands": len(plan.tiles), "bands_xor_verified": comp["bands_verified"],
+            "xor_area_um2": round(comp["xor_db2"] * (db_unit_nm * 1e-3) ** 2, 6),
+            "xor_bound_um2": round(comp["xor_bound_db2"] * (db_unit_nm * 1e-3) ** 2, 6)}
     if mask.marks is not None:
         process["marks"] = {"kind": mask.marks.kind, "size_um": mask.marks.size_um}
+    return process
 
-    manifest = {
+
+def _manifest(plan: _Plan, gathered: _Gathered, files: dict, checks: dict, known_hashes: dict) -> dict:
+    """Stage 5: the manifest (deterministic: no timings, no dates, file names relative)."""
+    design, library, mask = plan.design, plan.library, plan.design.mask
+    totals = gathered.totals
+    alias_fraction = totals.alias_hits / max(totals.alias_total, 1)
+    warnings = design_warnings(design, library, alias_fraction=alias_fraction, alias_r_min_um=totals.alias_r[0],
+                               alias_r_max_um=totals.alias_r[1])
+    fill = totals.n_sites * cell_area_um2(design.lattice) / aperture_area_um2(design.aperture)
+    counts = {
+        "sites": int(totals.n_sites),
+        "fill_factor": round(float(fill), 6),
+        "elements_per_cell": {cid: int(c) for cid, c in zip(plan.cell_ids, totals.per_cell)},
+        "distinct_shapes": len(gathered.shape_list) if plan.need_groups and not plan.complement else None,
+        "tiles": len(plan.tiles),
+    }
+    errors = {
+        "worst_snapping_phase_error_deg": round(math.degrees(totals.worst_snap), 6),
+        "worst_quantisation_phase_error_deg": round(math.degrees(totals.quant_err), 6),
+        "aliased_site_fraction": round(alias_fraction, 6),
+    }
+    return {
         "metalay_manifest_version": 1,
-        "process": process,
-        "design": {"name": name, "source": Path(design.source_path).name, "echo": design.raw},
+        "process": _process_block(plan, totals),
+        "design": {"name": design.name, "source": Path(design.source_path).name, "echo": design.raw},
         "design_hash": _design_hash(design, library),
         "library": {"name": library.name, "sha256": library.sha256, "mode": library.mode,
-                    "phase_mechanism": library.phase_mechanism, "cells_used": cell_ids,
+                    "phase_mechanism": library.phase_mechanism, "cells_used": plan.cell_ids,
                     "responses": library.provenance.get("responses_source", "")},
-        "mask": {"db_unit_nm": db, "user_unit_um": 1.0, "hierarchy": mask.hierarchy,
-                 "rotation_levels": levels, "layers": {k: list(v) for k, v in mask.layers}},
+        "mask": {"db_unit_nm": mask.db_unit_nm, "user_unit_um": 1.0, "hierarchy": mask.hierarchy,
+                 "rotation_levels": mask.rotation_levels, "layers": {k: list(v) for k, v in mask.layers}},
         "counts": counts,
         "errors": errors,
         "warnings": warnings,
@@ -451,13 +592,11 @@ def _compile_into(design: Design, out_dir: str | Path, *, show_progress: bool | 
         "timings_file": "timings.json",
         "caution": SAFETY_CAUTION,
     }
-    atomic_write_text(out / "manifest.json", json.dumps(manifest, sort_keys=True, indent=2, default=str) + "\n")
-    timings["total_s"] = time.perf_counter() - t_start
-    atomic_write_text(out / "timings.json", json.dumps(_rounded(timings), sort_keys=True, indent=2) + "\n")
-    files["manifest"] = out / "manifest.json"
-    summary = _summary(design, library, manifest, files)
-    return CompileResult(out, files, manifest, tuple(warnings), tuple(summary), timings)
 
+
+# ----------------------------------------------------------------------------------------------------------------
+# Per-tile work (pure functions, run in worker threads)
+# ----------------------------------------------------------------------------------------------------------------
 
 @dataclass(frozen=True)
 class _TileContext:
@@ -785,73 +924,6 @@ def _extras(design: Design, library: CellLibrary, lut=None, classes=None):
         check_marks_clear(marks, keepout, where=design.source_path)
         polys += marks
     return polys
-
-
-def _run_rules(path: Path, library: CellLibrary, design: Design, *, structures_path: Path | None = None) -> dict:
-    """The library's default rules on the mask just written (every structure datatype, frame enclosure, and the
-    write field when the design has square fields).
-
-    For tone "complement" the written pieces touch along their cut lines by construction, so on them only grid,
-    validity, vertex count and frame enclosure apply; the feature, gap and aspect rules of the cells are checked
-    on the structures themselves (the holes), written to ``structures_path`` for the purpose.
-    """
-    from dataclasses import replace as dc_replace
-
-    from metalay.checks import rules
-
-    mask = design.mask
-    wf = mask.write_field
-    square = wf is not None and abs(wf.size_um[0] - wf.size_um[1]) < 1e-12
-    base = rules.rules_from_library(dict(library.rules), layer=mask.layer("structures"),
-                                    film_height_nm=library.film_height_nm, frame_layer=mask.layer("frame"),
-                                    write_field_um=wf.size_um[0] if square else None)
-    if square:  # the same grid compile used: origin and size rounded to the database grid
-        g = WriteFieldGrid.from_um(wf.size_um, wf.origin_um, db_unit_nm=mask.db_unit_nm)
-        to_um = mask.db_unit_nm / 1000.0
-        base = dc_replace(base, write_field_um=g.size_db[0] * to_um,
-                          write_field_centre_um=((g.origin_db[0] + g.size_db[0] / 2) * to_um,
-                                                 (g.origin_db[1] + g.size_db[1] / 2) * to_um))
-    datatypes = sorted({int(v) for k, v in dict(mask.dose_datatypes).items()
-                        if k not in ("complement", "frame", "label", "marks")} | {mask.layer("structures")[1]})
-    template = base.layers[0]
-
-    def ruleset(**changes):
-        return dc_replace(base, layers=tuple(dc_replace(template, datatype=dt, **changes) for dt in datatypes))
-
-    out = {}
-    if structures_path is None:
-        report = rules.check_mask(path, ruleset())
-    else:
-        report = rules.check_mask(structures_path, ruleset(inside_frame=None))
-        pieces = rules.check_mask(path, dc_replace(
-            ruleset(min_width_nm=None, min_spacing_nm=None, forbid_overlap=False, film_height_nm=None,
-                    max_aspect_ratio=None, no_field_straddle=False, max_vertices=8190),
-            layers=tuple(dc_replace(lr, datatype=int(dict(mask.dose_datatypes).get("complement", lr.datatype)))
-                         for lr in ruleset(min_width_nm=None, min_spacing_nm=None, forbid_overlap=False,
-                                           film_height_nm=None, max_aspect_ratio=None, no_field_straddle=False,
-                                           max_vertices=8190).layers)))
-        out["complement_pieces"] = {"status": "clean" if pieces.clean else "violations",
-                                    "violations": pieces.total_violations, "summary": pieces.summary_lines()}
-        out["note"] = ("tone 'complement': feature, gap and aspect rules checked on the structures (the holes); "
-                       "grid, validity, vertex count and frame enclosure on the written pieces")
-    d = report.to_dict(max_listed=20)
-    d["mask"] = Path(path).name  # relative: the file is checked in the staging folder before it is moved
-    d.update(out)
-    total = report.total_violations + out.get("complement_pieces", {}).get("violations", 0)
-    d["status"] = "clean" if total == 0 else "violations"
-    d["violations"] = total
-    d["summary"] = report.summary_lines() + [f"pieces: {line}" for line in
-                                             out.get("complement_pieces", {}).get("summary", [])]
-    d["timings_s"] = {k: round(v, 3) for k, v in report.timings_s}
-    return d
-
-
-def _run_optics(path: Path, library: CellLibrary, design: Design) -> dict:
-    try:
-        from metalay.checks import optics
-    except ImportError:
-        return {"status": "not available"}
-    return optics.compile_check(path, library, design)
 
 
 def _summary(design: Design, library: CellLibrary, manifest: dict, files: dict) -> list[str]:

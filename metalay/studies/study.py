@@ -56,7 +56,7 @@ from pathlib import Path
 
 import numpy as np
 
-from metalay.checks import grid, oam, optics
+from metalay.checks import optics
 from metalay.checks.decode import DecodedSites, cell_shape_table, decode_sites
 from metalay.errors import MetalayError, StudyError
 
@@ -161,12 +161,10 @@ def site_model(mask_path, library, design, *, max_side: int = 1024, pad_factor: 
     del flat
     target = optics.target_from_design(design)
     s = sample_sites(design.aperture, design.lattice)
-    r_, c0_, c1_ = optics._site_pixels(decoded.i, decoded.j, decoded.lattice)
-    side = max(int(np.ptp(r_)) + 1, int(np.ptp(c1_ if c1_ is not None else c0_)) + 2)
-    m = int(np.ceil(side / max_side)) if side > max_side else 1
+    m = optics.near_field_decimation(decoded, max_side)[0]
     phi = None
     if target.terms:
-        xs, ys = optics._site_xy(decoded)
+        xs, ys = optics.site_xy(decoded)
         phi = target_phase(target.terms, xs, ys, wavelength_nm=target.wavelength_nm, sigma=target.sigma)
     return SiteModel(decoded=decoded, library=lib, design=design, target=target, expected_ij=(s.i, s.j),
                      decimation=m, pad_factor=float(pad_factor), charges=tuple(charges), empty_t=complex(empty_t),
@@ -235,7 +233,7 @@ def evaluate_sites(model: SiteModel, *, t_long=None, t_short=None, rotation_rad=
         if lib.has_responses:
             tl_c, ts_c = lib.response_at(wl)
         else:
-            tl_c, ts_c = optics._ideal_responses(len(lib.cells))
+            tl_c, ts_c = optics.ideal_responses(len(lib.cells))
         t_long = tl_c[d.cell] if t_long is None else t_long
         t_short = ts_c[d.cell] if t_short is None else t_short
     rot = d.rotation_rad if rotation_rad is None else rotation_rad
@@ -247,53 +245,28 @@ def evaluate_sites(model: SiteModel, *, t_long=None, t_short=None, rotation_rad=
                      rotation_rad=np.asarray(rot)[keep], size_error_nm=d.size_error_nm[keep])
         t_long, t_short, rot = np.asarray(t_long)[keep], np.asarray(t_short)[keep], np.asarray(rot)[keep]
         phi = phi[keep] if phi is not None else None
-    jin = optics.input_jones("design", design_sigma=target.sigma)
-    sf = optics.site_fields(t_long, t_short, rot, jin, sigma=target.sigma)
     if dd.i.size == 0:
         raise StudyError(f"{model.mask_path}: every element was removed by the perturbation")
-    near = optics.rasterize(dd, sf, empty_t=model.empty_t, jones_in=jin, expected_ij=model.expected_ij,
-                            decimation=model.decimation)
-    budget = optics.power_budget(sf, near.cells_illuminated, n_empty=near.cells_empty, empty_t=model.empty_t,
-                                 jones_in=jin)
+    jin = optics.input_jones("design", design_sigma=target.sigma)
+    ev = optics.evaluate_elements(dd, t_long, t_short, rot, target, jones_in=jin, expected_ij=model.expected_ij,
+                                  decimation=model.decimation, empty_t=model.empty_t, pad_factor=model.pad_factor,
+                                  charges=model.charges, far_field=not budget_only, keep_far=False,
+                                  remove_factor=lambda near, tgt: _remove_factor(model, near, tgt),
+                                  workers=workers)
+    budget, near = ev.budget, ev.near
     out = {"wavelength_nm": wl, "converted": budget["converted"], "leakage": budget["leakage"],
            "designed_polarization": budget["designed_polarization"]}
     if phi is not None:
-        s = np.sum(sf.converted.astype(np.complex128) * np.exp(-1j * phi))
+        s = np.sum(ev.fields.converted.astype(np.complex128) * np.exp(-1j * phi))
         out["designed_mode_efficiency"] = float(abs(s) ** 2 / float(near.cells_illuminated) ** 2)
     else:
         out["designed_mode_efficiency"] = None
     if budget_only:
         return out
-    lam_um = wl * 1e-3
-    diameter = 2 * np.sqrt(near.cells_illuminated * near.cell_area_um2 / np.pi)
-    lmax = max([abs(target.charge or 0)] + [abs(c[0]) for c in target.channels])
-    radius_u = (2.5 + 0.5 * lmax) * lam_um / diameter
-    ff = grid.far_field(near.designed, near.dx_um, near.dy_um, wl, x0_um=float(near.x_um[0]),
-                        y0_um=float(near.y_um[0]), pad_factor=model.pad_factor, keep_field=False, workers=workers)
-    centres = {}
-    if not target.channels and not target.focal_length_um:
-        centres["designed"] = target.direction
-        if np.hypot(*target.direction) > 2 * radius_u:
-            centres["zero_order"] = (0.0, 0.0)
-    for k, (lc, uc, vc) in enumerate(target.channels):
-        centres[f"channel_{k}_l{lc:+d}"] = (uc, vc)
-    spots = optics.spot_fractions(ff, centres, radius_u)
-    del ff
     pol = budget["designed_polarization"]
-    out["designed_spot_efficiency"] = float(spots["designed"] * pol) if "designed" in spots else None
-    out["purity"] = None
-    out["oam_weights"] = None
-    if target.charge is not None:
-        oam_field = near.converted
-        if target.remove_terms:
-            oam_field = near.converted * _remove_factor(model, near, target)
-        room = min(target.center_um[0] - near.x_um[0], near.x_um[-1] - target.center_um[0],
-                   target.center_um[1] - near.y_um[0], near.y_um[-1] - target.center_um[1])
-        r_oam = min(diameter / 2 - 1.5 * max(near.dx_um, near.dy_um), room - max(near.dx_um, near.dy_um))
-        spec = oam.oam_spectrum(oam_field, near.x_um, near.y_um, center=target.center_um, radius_um=r_oam,
-                                charges=model.charges, workers=workers)
-        out["purity"] = float(spec.purity(target.charge))
-        out["oam_weights"] = [float(w) for w in spec.weights]
+    out["designed_spot_efficiency"] = float(ev.spots["designed"] * pol) if "designed" in ev.spots else None
+    out["purity"] = None if ev.oam is None else float(ev.oam.purity(target.charge))
+    out["oam_weights"] = None if ev.oam is None else [float(w) for w in ev.oam.weights]
     return out
 
 
@@ -486,13 +459,13 @@ def _band_table(model: SiteModel) -> list[dict]:
 def _compare_one(task) -> dict:
     """Compile, check and measure one library (runs in a worker process)."""
     from metalay.checks import rules as R
-    from metalay.mask.compile import compile_design
+    from metalay.mask.compile import compile_mask
     from metalay.cells.library import load_library
 
     design, lib_ref, out_dir, adapt = task
     lib = load_library(lib_ref)
     d2 = design_for_library(design, lib, adapt=adapt)
-    res = compile_design(d2, Path(out_dir) / lib.name, show_progress=False, run_rules=False, run_optics=False)
+    res = compile_mask(d2, Path(out_dir) / lib.name, show_progress=False)
     man = res.manifest
     mask_path = res.files.get("gds") or res.files.get("oas")
     # the checks compile runs, called here on the written mask (same functions, same output folder)
@@ -568,7 +541,7 @@ def _csv_text(columns, rows) -> str:
 
 
 def _json_bytes(obj) -> bytes:
-    return (json.dumps(optics._json_ready(obj), sort_keys=True, indent=2, allow_nan=False) + "\n").encode()
+    return (json.dumps(optics.json_ready(obj), sort_keys=True, indent=2, allow_nan=False) + "\n").encode()
 
 
 def compare_libraries(design, libraries, out_dir, *, adapt: bool = True, workers: int | None = None,
@@ -922,7 +895,7 @@ def tolerance_study(design, out_dir=None, *, settings: ToleranceSettings = Toler
     Ruze 1966, Proc. IEEE 54, 633.
     """
     from metalay.util.atomic import atomic_write_bytes, ensure_dir
-    from metalay.mask.compile import compile_design
+    from metalay.mask.compile import compile_mask
     from metalay.cells.library import load_library
     from metalay.util.progress import progress
 
@@ -932,7 +905,7 @@ def tolerance_study(design, out_dir=None, *, settings: ToleranceSettings = Toler
     if mask is None:
         if out_dir is None:
             raise StudyError("tolerance: give out_dir (the mask is compiled there) or an existing mask")
-        res = compile_design(design, Path(out_dir) / "mask", show_progress=False, run_rules=False, run_optics=False)
+        res = compile_mask(design, Path(out_dir) / "mask", show_progress=False)
         mask = res.files.get("gds") or res.files.get("oas")
     elif not Path(mask).is_file():
         raise StudyError(f"tolerance: mask = {str(mask)!r} not found")

@@ -1,0 +1,49 @@
+"""The Python face of ``metalay compile``, for notebooks and the command line.
+
+Example
+-------
+>>> from metalay.api import compile_design, load_design
+>>> result = compile_design(load_design("my_design.toml"), "out/my_design")   # doctest: +SKIP
+>>> print("\\n".join(result.summary))                                        # doctest: +SKIP
+
+:func:`compile_design` is :func:`metalay.mask.compile.compile_mask` with the standard checks
+(:func:`metalay.checks.steps.default_checks`: design rules, then the quick optical check); call ``compile_mask``
+with your own :class:`~metalay.mask.steps.MaskCheck` steps to run others.
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+from metalay.checks.steps import default_checks
+from metalay.design.spec import Design, load_design, parse_design
+from metalay.mask.compile import SAFETY_CAUTION, SITES_PER_TILE, CompileResult, compile_mask
+
+__all__ = ["compile_design", "load_design", "parse_design", "CompileResult", "SAFETY_CAUTION"]
+
+
+def compile_design(design: Design, out_dir: str | Path, *, run_rules: bool | None = None,
+                   run_optics: bool | None = None, show_progress: bool | None = None,
+                   sites_per_tile: int = SITES_PER_TILE) -> CompileResult:
+    """Compile ``design`` into mask files, a manifest and the standard checks in ``out_dir`` (all or nothing).
+
+    Parameters
+    ----------
+    design : Design
+        A validated design (:func:`load_design` or :func:`parse_design`).
+    out_dir : str or Path
+        Output folder (created).
+    run_rules, run_optics : bool or None
+        Override the design's ``[checks]`` settings (None: as the design says).
+    show_progress : bool or None
+        Progress bar on stderr (None: only on a terminal).
+    sites_per_tile : int
+        Tile size bound (memory).
+
+    Returns
+    -------
+    CompileResult
+        Files, manifest, warnings and summary lines.
+    """
+    return compile_mask(design, out_dir, checks=default_checks(rules=run_rules, optics=run_optics),
+                        show_progress=show_progress, sites_per_tile=sites_per_tile)

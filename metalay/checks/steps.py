@@ -1,0 +1,129 @@
+"""The checks a compile runs on the mask it wrote, as :class:`~metalay.mask.steps.MaskCheck` steps.
+
+:func:`default_checks` assembles the standard set (design rules, then the quick optical check); the compile
+receives it as an argument (:func:`metalay.mask.compile.compile_mask`), so the checks depend on the mask stages and
+never the other way round. :func:`metalay.api.compile_design` and the command line pass this set.
+"""
+
+from __future__ import annotations
+
+from dataclasses import replace
+from pathlib import Path
+
+from metalay.checks.rules import check_mask, rules_from_library
+from metalay.design.spec import Design
+from metalay.mask.process import WriteFieldGrid
+from metalay.mask.steps import MaskCheck, WrittenMask
+
+__all__ = ["default_checks", "rules_step", "optics_step", "run_rules_on_written", "run_optics_on_written"]
+
+#: Vertex limit of the written pieces of a tone inversion (GDSII allows 8191 points, the last repeats the first).
+_PIECE_MAX_VERTICES = 8190
+
+
+def _switch(setting: str, forced: bool | None):
+    """``enabled`` of a step: the design's ``[checks]`` setting, unless forced on."""
+    if forced:
+        return lambda design: True
+
+    def from_design(design: Design) -> bool:
+        return bool(getattr(design.checks, setting))
+    return from_design
+
+
+def rules_step(*, force: bool | None = None) -> MaskCheck:
+    """The design-rule check step (:func:`run_rules_on_written`); on when ``[checks] rules`` is (or ``force``)."""
+    return MaskCheck("rules", run_rules_on_written, _switch("rules", force), needs_structures=True)
+
+
+def optics_step(*, force: bool | None = None) -> MaskCheck:
+    """The quick optical check step (:func:`run_optics_on_written`); on when ``[checks] optics`` is (or ``force``)."""
+    return MaskCheck("optics", run_optics_on_written, _switch("optics", force))
+
+
+def default_checks(*, rules: bool | None = None, optics: bool | None = None) -> tuple[MaskCheck, ...]:
+    """The standard checks of ``metalay compile``: design rules, then optics.
+
+    Parameters
+    ----------
+    rules, optics : bool or None
+        None: as the design's ``[checks]`` table says; True: run regardless; False: leave the step out.
+
+    Returns
+    -------
+    tuple of MaskCheck
+        Pass to :func:`metalay.mask.compile.compile_mask` as ``checks``.
+    """
+    steps = []
+    if rules is not False:
+        steps.append(rules_step(force=rules))
+    if optics is not False:
+        steps.append(optics_step(force=optics))
+    return tuple(steps)
+
+
+def _library_ruleset(written: WrittenMask):
+    """The library's default rules for this mask: every structure datatype, the frame, square write fields."""
+    library, mask = written.library, written.design.mask
+    wf = mask.write_field
+    square = wf is not None and abs(wf.size_um[0] - wf.size_um[1]) < 1e-12
+    base = rules_from_library(dict(library.rules), layer=mask.layer("structures"),
+                              film_height_nm=library.film_height_nm, frame_layer=mask.layer("frame"),
+                              write_field_um=wf.size_um[0] if square else None)
+    if square:  # the same grid compile used: origin and size rounded to the database grid
+        g = WriteFieldGrid.from_um(wf.size_um, wf.origin_um, db_unit_nm=mask.db_unit_nm)
+        to_um = mask.db_unit_nm / 1000.0
+        base = replace(base, write_field_um=g.size_db[0] * to_um,
+                       write_field_centre_um=((g.origin_db[0] + g.size_db[0] / 2) * to_um,
+                                              (g.origin_db[1] + g.size_db[1] / 2) * to_um))
+    datatypes = sorted({int(v) for k, v in dict(mask.dose_datatypes).items()
+                        if k not in ("complement", "frame", "label", "marks")} | {mask.layer("structures")[1]})
+    template = base.layers[0]
+
+    def ruleset(**changes):
+        return replace(base, layers=tuple(replace(template, datatype=dt, **changes) for dt in datatypes))
+    return ruleset
+
+
+def run_rules_on_written(written: WrittenMask) -> dict:
+    """The library's default rules on the mask just written (every structure datatype, frame enclosure, and the
+    write field when the design has square fields); a manifest-ready dict.
+
+    For tone "complement" the written pieces touch along their cut lines by construction, so on them only grid,
+    validity, vertex count and frame enclosure apply; the feature, gap and aspect rules of the cells are checked
+    on the structures themselves (the holes), written to ``written.structures_path`` for the purpose.
+    """
+    path, mask = written.path, written.design.mask
+    ruleset = _library_ruleset(written)
+    out = {}
+    if written.structures_path is None:
+        report = check_mask(path, ruleset())
+    else:
+        report = check_mask(written.structures_path, ruleset(inside_frame=None))
+        piece_rules = ruleset(min_width_nm=None, min_spacing_nm=None, forbid_overlap=False, film_height_nm=None,
+                              max_aspect_ratio=None, no_field_straddle=False, max_vertices=_PIECE_MAX_VERTICES)
+        complement_dt = dict(mask.dose_datatypes).get("complement")
+        pieces = check_mask(path, replace(piece_rules, layers=tuple(
+            replace(lr, datatype=int(lr.datatype if complement_dt is None else complement_dt))
+            for lr in piece_rules.layers)))
+        out["complement_pieces"] = {"status": "clean" if pieces.clean else "violations",
+                                    "violations": pieces.total_violations, "summary": pieces.summary_lines()}
+        out["note"] = ("tone 'complement': feature, gap and aspect rules checked on the structures (the holes); "
+                       "grid, validity, vertex count and frame enclosure on the written pieces")
+    d = report.to_dict(max_listed=20)
+    d["mask"] = Path(path).name  # relative: the file is checked in the staging folder before it is moved
+    d.update(out)
+    total = report.total_violations + out.get("complement_pieces", {}).get("violations", 0)
+    d["status"] = "clean" if total == 0 else "violations"
+    d["violations"] = total
+    d["summary"] = report.summary_lines() + [f"pieces: {line}" for line in
+                                             out.get("complement_pieces", {}).get("summary", [])]
+    d["timings_s"] = {k: round(v, 3) for k, v in report.timings_s}
+    return d
+
+
+def run_optics_on_written(written: WrittenMask) -> dict:
+    """The quick optical check of the mask just written (:func:`metalay.checks.optics.compile_check`)."""
+    from metalay.checks import optics  # imported when the step runs: it pulls in the FFT and plotting stack
+
+    return optics.compile_check(written.path, written.library, written.design)

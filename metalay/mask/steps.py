@@ -1,0 +1,68 @@
+"""What a compile hands to the checks it runs on the mask it has just written.
+
+:func:`metalay.mask.compile.compile_mask` receives its checks as a sequence of :class:`MaskCheck` steps and never
+imports a check module: the standard set is assembled in :func:`metalay.checks.steps.default_checks` (and used by
+:func:`metalay.api.compile_design` and the command line). A step is a name, a function of :class:`WrittenMask`
+returning a JSON-ready dict (it becomes ``manifest["checks"][name]``) and the design setting that switches it on.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable
+from dataclasses import dataclass
+from pathlib import Path
+
+from metalay.cells.library import CellLibrary
+from metalay.design.spec import Design
+
+__all__ = ["WrittenMask", "MaskCheck"]
+
+
+@dataclass(frozen=True)
+class WrittenMask:
+    """A mask file just written by a compile (still in its staging folder), with what it was made from.
+
+    Attributes
+    ----------
+    path : Path
+        The primary mask file: the GDSII file when one was written, else the OASIS file.
+    library : CellLibrary
+        The cell library the design used.
+    design : Design
+        The validated design.
+    structures_path : Path or None
+        For tone ``"complement"``: a GDSII file holding the structures themselves (the holes), written when a step
+        asks for it (:attr:`MaskCheck.needs_structures`); None otherwise.
+    """
+
+    path: Path
+    library: CellLibrary
+    design: Design
+    structures_path: Path | None = None
+
+
+def _always(design: Design) -> bool:
+    return True
+
+
+@dataclass(frozen=True)
+class MaskCheck:
+    """One check a compile runs on the mask it wrote.
+
+    Attributes
+    ----------
+    name : str
+        Key in ``manifest["checks"]``; its time goes to ``timings.json`` as ``<name>_s``.
+    run : callable (WrittenMask) -> dict
+        Computes the check; a ``"timings_s"`` entry of the result is moved to ``timings.json`` (timings are not
+        deterministic, the manifest is).
+    enabled : callable (Design) -> bool
+        Whether this design asks for the check (e.g. its ``[checks]`` setting).
+    needs_structures : bool
+        The step wants :attr:`WrittenMask.structures_path` for tone ``"complement"`` masks.
+    """
+
+    name: str
+    run: Callable[[WrittenMask], dict]
+    enabled: Callable[[Design], bool] = _always
+    needs_structures: bool = False
