@@ -992,14 +992,14 @@ def _uniform_view(flat: FlatPolygons, idx: np.ndarray, n: int) -> np.ndarray:
 # The check
 # ----------------------------------------------------------------------------------------------------------------
 
-def _violations(kind: str, polygon, other, value, seg_db, db_um: float) -> Violations:
+def _violations(kind: str, polygon, other, value, seg_db, db_unit_nm: float) -> Violations:
     polygon = np.asarray(polygon, np.int64)
     other = np.asarray(other, np.int64) if other is not None else np.full(polygon.shape, -1, np.int64)
     value = np.asarray(value, np.float64)
     key_val = -value if kind == "max" else value
     order = np.lexsort((other, polygon, key_val))
     seg = np.asarray(seg_db, np.float64).reshape(-1, 4)[order]
-    seg *= db_um
+    seg *= db_unit_nm / 1000.0  # database units -> um
     x = seg[:, 0] + seg[:, 2]
     x /= 2
     y = seg[:, 1] + seg[:, 3]
@@ -1078,78 +1078,174 @@ def check_mask(mask, rules: RuleSet, *, method: str = "auto", cell: str | None =
             except OSError as exc:
                 raise MaskReadError(f"{name}: cannot read file for its checksum ({exc.strerror or exc})") from exc
         timings.append(("sha256 (after read)", time.perf_counter() - t1))
-    db_nm = flat.db_unit_m * 1e9
-    db_um = flat.db_unit_m * 1e6
+    db_unit_nm = flat.db_unit_m * 1e9
     results: list[RuleResult] = []
     for lr in rules.layers:
-        results.extend(_check_layer(flat, lr, rules, db_nm, db_um, method, timings))
+        results.extend(_check_layer(flat, lr, rules, db_unit_nm, method, timings))
     return RuleReport(name, sha, flat.db_unit_m, flat.count, rules.name, tuple(results), tuple(timings))
 
 
-def _check_layer(flat, lr: LayerRules, rules: RuleSet, db_nm, db_um, method, timings):
-    tag = f"{lr.layer}/{lr.datatype}"
-    t0 = time.perf_counter()
-    sel = (flat.layer == lr.layer) & (flat.datatype == lr.datatype)
-    idx = np.flatnonzero(sel)
-    P = idx.size
-    counts = np.diff(flat.start)[idx]
-    groups = np.unique(counts) if P else np.zeros(0, np.int64)
-    small = idx[counts < 3]
+@dataclass(eq=False)
+class _LayerGeometry:
+    """Per-polygon features of one (layer, datatype), vectorised; feature rows follow ``poly``.
+
+    Attributes
+    ----------
+    on_layer : ndarray (P_all,) bool
+        Which polygons of the mask are on this layer/datatype.
+    layer_polys : ndarray (P,) int64
+        Their indices in the mask.
+    vertex_counts : ndarray (P,) int64
+        Vertices of each of them.
+    count_values : ndarray
+        The distinct vertex counts.
+    degenerate : ndarray int64
+        Mask indices of polygons with fewer than 3 vertices.
+    poly : ndarray (M,) int64
+        Mask index of each measured polygon (3 or more vertices), grouped by vertex count.
+    area2, convex, angle_deg, angle_vertex, width_db, bbox_db
+        Twice the signed area (database units squared), strict convexity, smallest interior angle (deg, or None when
+        no rule needs it) and its vertex, local width (database units; shapely's for non-convex polygons), bounding
+        box ``(x0, y0, x1, y1)``.
+    r2max_db2 : float
+        Largest squared circumradius about the polygon centres (database units squared).
+    shapely_results : dict mask index -> dict
+        Exact analysis (validity, width, notch, holes) of the non-convex and degenerate polygons.
+    shapely_width_seg : dict feature row -> segment
+        Width segments found by that analysis.
+    """
+
+    on_layer: np.ndarray
+    layer_polys: np.ndarray
+    vertex_counts: np.ndarray
+    count_values: np.ndarray
+    degenerate: np.ndarray
+    poly: np.ndarray
+    area2: np.ndarray
+    convex: np.ndarray
+    angle_deg: np.ndarray | None
+    angle_vertex: np.ndarray
+    width_db: np.ndarray
+    bbox_db: np.ndarray
+    r2max_db2: float = 0.0
+    shapely_results: dict = field(default_factory=dict)
+    shapely_width_seg: dict = field(default_factory=dict)
+
+    @property
+    def n_polygons(self) -> int:
+        return int(self.layer_polys.size)
+
+
+def _layer_geometry(flat: FlatPolygons, lr: LayerRules) -> _LayerGeometry:
+    """Features of every polygon on ``lr``'s layer: vectorised for convex polygons (by vertex count, in chunks on
+    threads), exact shapely analysis for the others."""
+    on_layer = (flat.layer == lr.layer) & (flat.datatype == lr.datatype)
+    layer_polys = np.flatnonzero(on_layer)
+    vertex_counts = np.diff(flat.start)[layer_polys]
+    count_values = np.unique(vertex_counts) if layer_polys.size else np.zeros(0, np.int64)
     want_angle = lr.min_angle_deg is not None
-    parts = [(int(n), idx[counts == n] if groups.size > 1 else idx) for n in groups if n >= 3]
-    M = sum(gi.size for _, gi in parts)
-    F = {"area2": np.zeros(M, np.int64), "convex": np.zeros(M, bool),
-         "angle": np.full(M, np.inf) if want_angle else None,
-         "kmin": np.zeros(M, np.int64 if groups.size and groups.max() >= 128 else np.int8),
-         "width": np.zeros(M), "bbox": np.zeros((M, 4), np.int64),
-         "idx": parts[0][1] if len(parts) == 1 else (np.concatenate([gi for _, gi in parts]) if parts else
-                                                      np.zeros(0, np.int64))}
+    by_count = [(int(n), layer_polys[vertex_counts == n] if count_values.size > 1 else layer_polys)
+                for n in count_values if n >= 3]
+    n_measured = sum(members.size for _, members in by_count)
+    poly = by_count[0][1] if len(by_count) == 1 else (
+        np.concatenate([members for _, members in by_count]) if by_count else np.zeros(0, np.int64))
+    geom = _LayerGeometry(
+        on_layer, layer_polys, vertex_counts, count_values, layer_polys[vertex_counts < 3], poly,
+        area2=np.zeros(n_measured, np.int64), convex=np.zeros(n_measured, bool),
+        angle_deg=np.full(n_measured, np.inf) if want_angle else None,
+        angle_vertex=np.zeros(n_measured, np.int64 if count_values.size and count_values.max() >= 128 else np.int8),
+        width_db=np.zeros(n_measured), bbox_db=np.zeros((n_measured, 4), np.int64))
+    geom.r2max_db2 = _convex_features(flat, geom, by_count, want_angle)
+    _shapely_features(flat, lr, geom)
+    return geom
+
+
+def _convex_features(flat: FlatPolygons, geom: _LayerGeometry, by_count, want_angle: bool) -> float:
+    """Fill the vectorised features of ``geom`` chunk by chunk (disjoint slices: thread-safe); largest r^2."""
     tasks = []
     pos = 0
-    for n, gi in parts:
-        whole = gi.size == flat.count and flat.xy_db.shape[0] == flat.count * n
-        tasks += [(n, gi, whole, pos, lo) for lo in range(0, gi.size, _GEOM_CHUNK)]
-        pos += gi.size
+    for n, members in by_count:
+        whole = members.size == flat.count and flat.xy_db.shape[0] == flat.count * n
+        tasks += [(n, members, whole, pos, lo) for lo in range(0, members.size, _GEOM_CHUNK)]
+        pos += members.size
 
     def feature_chunk(task):
-        """Features of one chunk, written into its own slice of F (chunks are disjoint: thread-safe)."""
-        n, gi, whole, pos, lo = task
-        sub = gi[lo:lo + _GEOM_CHUNK]
-        X = flat.xy_db.reshape(-1, n, 2)[lo:lo + _GEOM_CHUNK] if whole else \
+        n, members, whole, pos, lo = task
+        sub = members[lo:lo + _GEOM_CHUNK]
+        vertices = flat.xy_db.reshape(-1, n, 2)[lo:lo + _GEOM_CHUNK] if whole else \
             flat.xy_db[flat.start[sub][:, None] + np.arange(n)]
-        f = _group_features(X, want_angle)
-        s = slice(pos + lo, pos + lo + sub.size)
-        for k in ("area2", "convex", "width", "bbox", "kmin"):
-            F[k][s] = f[k]
+        f = _group_features(vertices, want_angle)
+        rows = slice(pos + lo, pos + lo + sub.size)
+        geom.area2[rows] = f["area2"]
+        geom.convex[rows] = f["convex"]
+        geom.width_db[rows] = f["width"]
+        geom.bbox_db[rows] = f["bbox"]
+        geom.angle_vertex[rows] = f["kmin"]
         if want_angle:
-            F["angle"][s] = f["angle"]
+            geom.angle_deg[rows] = f["angle"]
         return f["r2max"]
 
-    r2max = max(_map_chunks(feature_chunk, tasks), default=0.0)
-    # polygons needing shapely: not strictly convex, or fewer than 3 vertices
-    need_sh = np.concatenate([F["idx"][~F["convex"]], small])
-    sh = {}
-    for k in need_sh.tolist():
-        sh[k] = _shapely_polygon_analysis(_ring(flat, k), lr.min_width_nm is not None or lr.max_aspect_ratio
-                                          is not None, lr.min_notch_nm is not None)
-    width = F["width"]
-    sh_width = {k: r["width"] for k, r in sh.items() if r["width"] is not None}
-    if sh_width:
-        ks = np.array(sorted(sh_width), np.int64)
-        order = np.argsort(F["idx"], kind="stable")
-        at = np.searchsorted(F["idx"], ks, sorter=order)
-        ok = at < order.size
-        ok[ok] = F["idx"][order[at[ok]]] == ks[ok]
-        rows = order[at[ok]]
-        width[rows] = [sh_width[k][0] for k in ks[ok].tolist()]
-        sh_seg = dict(zip(rows.tolist(), (sh_width[k][1] for k in ks[ok].tolist())))
-    else:
-        sh_seg = {}
+    return max(_map_chunks(feature_chunk, tasks), default=0.0)
 
-    def width_seg(rows):
-        """Width segments (database units) of rows of F: convex ones recomputed, shapely ones from the analysis."""
+
+def _shapely_features(flat: FlatPolygons, lr: LayerRules, geom: _LayerGeometry) -> None:
+    """Exact analysis of the polygons that are not strictly convex or have fewer than 3 vertices."""
+    need_shapely = np.concatenate([geom.poly[~geom.convex], geom.degenerate])
+    want_width = lr.min_width_nm is not None or lr.max_aspect_ratio is not None
+    for k in need_shapely.tolist():
+        geom.shapely_results[k] = _shapely_polygon_analysis(_ring(flat, k), want_width, lr.min_notch_nm is not None)
+    sh_width = {k: r["width"] for k, r in geom.shapely_results.items() if r["width"] is not None}
+    if not sh_width:
+        return
+    ks = np.array(sorted(sh_width), np.int64)
+    order = np.argsort(geom.poly, kind="stable")
+    at = np.searchsorted(geom.poly, ks, sorter=order)
+    ok = at < order.size
+    ok[ok] = geom.poly[order[at[ok]]] == ks[ok]
+    rows = order[at[ok]]
+    geom.width_db[rows] = [sh_width[k][0] for k in ks[ok].tolist()]
+    geom.shapely_width_seg = dict(zip(rows.tolist(), (sh_width[k][1] for k in ks[ok].tolist())))
+
+
+@dataclass
+class _LayerCheck:
+    """One layer's rules being checked: the polygons, their features and the results so far."""
+
+    flat: FlatPolygons
+    lr: LayerRules
+    rules: RuleSet
+    geom: _LayerGeometry
+    db_unit_nm: float
+    method: str
+    results: list = field(default_factory=list)
+
+    @property
+    def tag(self) -> str:
+        return f"{self.lr.layer}/{self.lr.datatype}"
+
+    def record(self, rule, limit, vio: Violations, checked, method_name="vector", source_key=None):
+        """Record the result of ``rule`` with its limit, unit, reason and source."""
+        src = self.lr.source(source_key) if source_key else ""
+        self.results.append(RuleResult(rule, self.lr.layer, self.lr.datatype, float(limit), _UNIT[rule],
+                                       _KIND[rule], RULE_REASONS[rule], src, int(checked), method_name, vio))
+
+    def emit(self, rule, limit, polygon, other, value, seg_db, checked, method_name="vector", source_key=None,
+             kind=None):
+        """Record the violations of ``rule``, sorted worst first (``kind`` "min", "max" or "flag" orders them)."""
+        vio = _violations(kind or _KIND[rule], polygon, other, value, seg_db, self.db_unit_nm)
+        self.record(rule, limit, vio, checked, method_name, source_key)
+
+    def bbox_seg(self, rows) -> np.ndarray:
+        """Marker segments (degenerate, at the bounding-box centre) of feature rows."""
+        b = self.geom.bbox_db[rows].astype(np.float64)
+        c = np.stack([(b[:, 0] + b[:, 2]) / 2, (b[:, 1] + b[:, 3]) / 2], 1)
+        return np.concatenate([c, c], 1)
+
+    def width_seg(self, rows) -> np.ndarray:
+        """Width segments (database units) of feature rows: convex ones recomputed, others from shapely."""
+        flat, geom = self.flat, self.geom
         seg = np.zeros((rows.size, 4))
-        ks = F["idx"][rows]
+        ks = geom.poly[rows]
         cnt = np.diff(flat.start)[ks]
         for nn in np.unique(cnt):
             s = np.flatnonzero(cnt == nn)
@@ -1158,217 +1254,221 @@ def _check_layer(flat, lr: LayerRules, rules: RuleSet, db_nm, db_um, method, tim
                     ss = s[lo:lo + _GEOM_CHUNK]
                     seg[ss] = _width_segments(flat.xy_db[flat.start[ks[ss]][:, None] + np.arange(nn)])
         for p, r in enumerate(rows.tolist()):
-            if r in sh_seg:
-                seg[p] = sh_seg[r]
+            if r in geom.shapely_width_seg:
+                seg[p] = geom.shapely_width_seg[r]
         return seg
 
-    timings.append((f"geometry {tag}", time.perf_counter() - t0))
 
-    out = []
+def _rule_width(c: _LayerCheck) -> None:
+    g, lr = c.geom, c.lr
+    bad = np.flatnonzero(g.width_db < lr.min_width_nm / c.db_unit_nm)
+    c.emit("width", lr.min_width_nm, g.poly[bad], None, g.width_db[bad] * c.db_unit_nm, c.width_seg(bad),
+           g.n_polygons, source_key="min_width_nm")
 
-    def emit(rule, limit, vio, checked, method_name="vector", source_key=None):
-        src = lr.source(source_key) if source_key else ""
-        out.append(RuleResult(rule, lr.layer, lr.datatype, float(limit), _UNIT[rule], _KIND[rule],
-                              RULE_REASONS[rule], src, int(checked), method_name, vio))
 
-    def timed(name, fn):
-        t = time.perf_counter()
-        fn()
-        timings.append((f"{name} {tag}", time.perf_counter() - t))
+def _rule_area(c: _LayerCheck) -> None:
+    g, lr = c.geom, c.lr
+    area_nm2 = np.abs(g.area2) / 2.0 * c.db_unit_nm * c.db_unit_nm
+    bad = np.flatnonzero(area_nm2 < lr.min_area_nm2)
+    c.emit("area", lr.min_area_nm2, g.poly[bad], None, area_nm2[bad], c.bbox_seg(bad), g.n_polygons,
+           source_key="min_area_nm2")
 
-    def bbox_seg(rows):
-        b = F["bbox"][rows].astype(np.float64)
-        c = np.stack([(b[:, 0] + b[:, 2]) / 2, (b[:, 1] + b[:, 3]) / 2], 1)
-        return np.concatenate([c, c], 1)
 
-    def r_width():
-        w = lr.min_width_nm / db_nm
-        bad = np.flatnonzero(width < w)
-        emit("width", lr.min_width_nm, _violations("min", F["idx"][bad], None, width[bad] * db_nm, width_seg(bad), db_um),
-             P, source_key="min_width_nm")
+def _rule_vertices(c: _LayerCheck) -> None:
+    g, lr = c.geom, c.lr
+    count = np.diff(c.flat.start)[g.poly]
+    bad = np.flatnonzero(count > lr.max_vertices)
+    c.emit("vertices", lr.max_vertices, g.poly[bad], None, count[bad], c.bbox_seg(bad), g.n_polygons,
+           source_key="max_vertices")
 
-    def r_area():
-        area_nm2 = np.abs(F["area2"]) / 2.0 * db_nm * db_nm
-        bad = np.flatnonzero(area_nm2 < lr.min_area_nm2)
-        emit("area", lr.min_area_nm2, _violations("min", F["idx"][bad], None, area_nm2[bad], bbox_seg(bad), db_um),
-             P, source_key="min_area_nm2")
 
-    def r_vertices():
-        c = np.diff(flat.start)[F["idx"]]
-        bad = np.flatnonzero(c > lr.max_vertices)
-        emit("vertices", lr.max_vertices, _violations("max", F["idx"][bad], None, c[bad], bbox_seg(bad), db_um),
-             P, source_key="max_vertices")
-
-    def r_grid():
-        g = lr.grid_nm / db_nm
-        gi = int(round(g))
-        if abs(g - gi) > 1e-9 or gi < 1:
-            raise RulesError(f"layer {tag}: grid_nm = {lr.grid_nm} is not a whole multiple of the mask's database "
-                             f"unit ({db_nm:g} nm); allowed: k * {db_nm:g} nm")
-        if gi == 1 or P == 0:
-            emit("grid", lr.grid_nm, Violations.empty(), P, source_key="grid_nm")
-            return
-        vsel = np.repeat(sel, np.diff(flat.start))
-        xy = flat.xy_db[vsel]
-        off = np.abs(xy - np.rint(xy / gi).astype(np.int64) * gi).max(1)
-        pid = np.repeat(idx, counts)
+def _rule_grid(c: _LayerCheck) -> None:
+    g, lr, flat, db_unit_nm = c.geom, c.lr, c.flat, c.db_unit_nm
+    grid_db = lr.grid_nm / db_unit_nm
+    step = int(round(grid_db))
+    if abs(grid_db - step) > 1e-9 or step < 1:
+        raise RulesError(f"layer {c.tag}: grid_nm = {lr.grid_nm} is not a whole multiple of the mask's database "
+                         f"unit ({db_unit_nm:g} nm); allowed: k * {db_unit_nm:g} nm")
+    off = badv = None
+    if step > 1 and g.n_polygons:
+        xy = flat.xy_db[np.repeat(g.on_layer, np.diff(flat.start))]
+        off = np.abs(xy - np.rint(xy / step).astype(np.int64) * step).max(1)
+        pid = np.repeat(g.layer_polys, g.vertex_counts)
         badv = np.flatnonzero(off > 0)
-        if badv.size == 0:
-            emit("grid", lr.grid_nm, Violations.empty(), P, source_key="grid_nm")
-            return
-        # worst vertex per polygon
-        order = np.lexsort((-off[badv], pid[badv]))
-        bv = badv[order]
-        first = np.concatenate([[True], pid[bv][1:] != pid[bv][:-1]])
-        bv = bv[first]
-        pts = xy[bv].astype(np.float64)
-        emit("grid", lr.grid_nm, _violations("max", pid[bv], None, off[bv] * db_nm, np.concatenate([pts, pts], 1),
-                                             db_um), P, source_key="grid_nm")
+    if badv is None or badv.size == 0:
+        c.record("grid", lr.grid_nm, Violations.empty(), g.n_polygons, source_key="grid_nm")
+        return
+    order = np.lexsort((-off[badv], pid[badv]))  # worst vertex per polygon
+    bv = badv[order]
+    bv = bv[np.concatenate([[True], pid[bv][1:] != pid[bv][:-1]])]
+    pts = xy[bv].astype(np.float64)
+    c.emit("grid", lr.grid_nm, pid[bv], None, off[bv] * db_unit_nm, np.concatenate([pts, pts], 1), g.n_polygons,
+           source_key="grid_nm", kind="max")
 
-    def r_angle():
-        bad = np.flatnonzero(F["angle"] < lr.min_angle_deg)
-        p = flat.xy_db[flat.start[F["idx"][bad]] + F["kmin"][bad]].astype(np.float64)
-        emit("angle", lr.min_angle_deg, _violations("min", F["idx"][bad], None, F["angle"][bad],
-                                                    np.concatenate([p, p], 1), db_um), P, source_key="min_angle_deg")
 
-    def r_validity():
-        bad = [(k, r["where"]) for k, r in sorted(sh.items()) if not r["valid"]]
-        ks = np.array([k for k, _ in bad], np.int64)
-        pts = np.array([w for _, w in bad], np.float64).reshape(-1, 2)
-        emit("validity", 0, _violations("flag", ks, None, np.zeros(ks.size), np.concatenate([pts, pts], 1), db_um),
-             P)
+def _rule_angle(c: _LayerCheck) -> None:
+    g, lr, flat = c.geom, c.lr, c.flat
+    bad = np.flatnonzero(g.angle_deg < lr.min_angle_deg)
+    p = flat.xy_db[flat.start[g.poly[bad]] + g.angle_vertex[bad]].astype(np.float64)
+    c.emit("angle", lr.min_angle_deg, g.poly[bad], None, g.angle_deg[bad], np.concatenate([p, p], 1),
+           g.n_polygons, source_key="min_angle_deg")
 
-    def r_notch():
-        rows = [(k, r["notch"]) for k, r in sorted(sh.items()) if r["notch"] is not None
-                and r["notch"][0] * db_nm < lr.min_notch_nm]
-        ks = np.array([k for k, _ in rows], np.int64)
-        emit("notch", lr.min_notch_nm, _violations("min", ks, None, np.array([r[0] * db_nm for _, r in rows]),
-                                                   np.array([r[1] for _, r in rows]).reshape(-1, 4), db_um),
-             len(sh), source_key="min_notch_nm")
 
-    def r_holes():
-        rows = [(k, a * db_nm * db_nm, c) for k, r in sorted(sh.items()) for a, c in r["holes"]
-                if a * db_nm * db_nm < lr.min_hole_area_nm2]
-        ks = np.array([k for k, _, _ in rows], np.int64)
-        pts = np.array([c for _, _, c in rows], np.float64).reshape(-1, 2)
-        emit("hole_area", lr.min_hole_area_nm2, _violations("min", ks, None, np.array([a for _, a, _ in rows]),
-                                                            np.concatenate([pts, pts], 1), db_um),
-             len(sh), source_key="min_hole_area_nm2")
+def _rule_validity(c: _LayerCheck) -> None:
+    bad = [(k, r["where"]) for k, r in sorted(c.geom.shapely_results.items()) if not r["valid"]]
+    ks = np.array([k for k, _ in bad], np.int64)
+    pts = np.array([w for _, w in bad], np.float64).reshape(-1, 2)
+    c.emit("validity", 0, ks, None, np.zeros(ks.size), np.concatenate([pts, pts], 1), c.geom.n_polygons)
 
-    def r_aspect():
-        ar = lr.film_height_nm / (width * db_nm)
-        bad = np.flatnonzero(ar > lr.max_aspect_ratio)
-        emit("aspect_ratio", lr.max_aspect_ratio, _violations("max", F["idx"][bad], None, ar[bad], width_seg(bad), db_um),
-             P, source_key="max_aspect_ratio")
 
-    def r_straddle():
-        if rules.write_field_um is None:
-            raise RulesError(f"layer {tag}: no_field_straddle = true needs a [write_field] table with size_um")
-        size = rules.write_field_um * 1000.0 / db_nm
-        v = np.zeros(F["idx"].size)
-        for c0 in range(0, v.size, 1 << 16):
-            b = F["bbox"][c0:c0 + (1 << 16)].astype(np.float64)
-            vals = []
-            for ax in (0, 1):
-                org = rules.write_field_centre_um[ax] * 1000.0 / db_nm - size / 2
-                lo, hi = b[:, ax] - org, b[:, ax + 2] - org
-                k = np.floor(lo / size)
-                bnd = (k + 1) * size  # first boundary above the lower edge
-                cross = hi > bnd
-                vals.append(np.where(cross, np.minimum(bnd - lo, hi - bnd), 0.0))
-            v[c0:c0 + b.shape[0]] = np.maximum(vals[0], vals[1])
-        bad = np.flatnonzero(v > 0)
-        emit("field_straddle", rules.write_field_um * 1000.0,
-             _violations("max", F["idx"][bad], None, v[bad] * db_nm, bbox_seg(bad), db_um), P)
+def _rule_notch(c: _LayerCheck) -> None:
+    sh, lr, db_unit_nm = c.geom.shapely_results, c.lr, c.db_unit_nm
+    rows = [(k, r["notch"]) for k, r in sorted(sh.items()) if r["notch"] is not None
+            and r["notch"][0] * db_unit_nm < lr.min_notch_nm]
+    ks = np.array([k for k, _ in rows], np.int64)
+    c.emit("notch", lr.min_notch_nm, ks, None, np.array([r[0] * db_unit_nm for _, r in rows]),
+           np.array([r[1] for _, r in rows]).reshape(-1, 4), len(sh), source_key="min_notch_nm")
 
-    def r_frame():
-        import shapely
 
-        region = _frame_region(flat, lr.inside_frame)
-        if region is None:
-            bad = np.arange(F["idx"].size)
-            emit("frame_enclosure", 0, _violations("flag", F["idx"][bad], None, np.zeros(bad.size), bbox_seg(bad),
-                                                   db_um), P)
-            return
-        b = F["bbox"]
-        rb = np.asarray(region.bounds)
-        is_rect = region.geom_type == "Polygon" and abs(region.area - (rb[2] - rb[0]) * (rb[3] - rb[1])) == 0
-        if is_rect:
-            inside = (b[:, 0] >= rb[0]) & (b[:, 1] >= rb[1]) & (b[:, 2] <= rb[2]) & (b[:, 3] <= rb[3])
+def _rule_holes(c: _LayerCheck) -> None:
+    sh, lr, db_unit_nm = c.geom.shapely_results, c.lr, c.db_unit_nm
+    rows = [(k, a * db_unit_nm * db_unit_nm, centre) for k, r in sorted(sh.items()) for a, centre in r["holes"]
+            if a * db_unit_nm * db_unit_nm < lr.min_hole_area_nm2]
+    ks = np.array([k for k, _, _ in rows], np.int64)
+    pts = np.array([centre for _, _, centre in rows], np.float64).reshape(-1, 2)
+    c.emit("hole_area", lr.min_hole_area_nm2, ks, None, np.array([a for _, a, _ in rows]),
+           np.concatenate([pts, pts], 1), len(sh), source_key="min_hole_area_nm2")
+
+
+def _rule_aspect(c: _LayerCheck) -> None:
+    g, lr = c.geom, c.lr
+    ratio = lr.film_height_nm / (g.width_db * c.db_unit_nm)
+    bad = np.flatnonzero(ratio > lr.max_aspect_ratio)
+    c.emit("aspect_ratio", lr.max_aspect_ratio, g.poly[bad], None, ratio[bad], c.width_seg(bad), g.n_polygons,
+           source_key="max_aspect_ratio")
+
+
+def _rule_straddle(c: _LayerCheck) -> None:
+    g, rules, db_unit_nm = c.geom, c.rules, c.db_unit_nm
+    if rules.write_field_um is None:
+        raise RulesError(f"layer {c.tag}: no_field_straddle = true needs a [write_field] table with size_um")
+    size = rules.write_field_um * 1000.0 / db_unit_nm
+    smaller_part = np.zeros(g.poly.size)
+    for c0 in range(0, smaller_part.size, 1 << 16):
+        b = g.bbox_db[c0:c0 + (1 << 16)].astype(np.float64)
+        vals = []
+        for ax in (0, 1):
+            org = rules.write_field_centre_um[ax] * 1000.0 / db_unit_nm - size / 2
+            lo, hi = b[:, ax] - org, b[:, ax + 2] - org
+            bnd = (np.floor(lo / size) + 1) * size  # first boundary above the lower edge
+            vals.append(np.where(hi > bnd, np.minimum(bnd - lo, hi - bnd), 0.0))
+        smaller_part[c0:c0 + b.shape[0]] = np.maximum(vals[0], vals[1])
+    bad = np.flatnonzero(smaller_part > 0)
+    c.emit("field_straddle", rules.write_field_um * 1000.0, g.poly[bad], None, smaller_part[bad] * db_unit_nm,
+           c.bbox_seg(bad), g.n_polygons, kind="max")
+
+
+def _inside_region(c: _LayerCheck, region) -> np.ndarray:
+    """Per feature row: the polygon lies inside ``region`` (boundary included)."""
+    import shapely
+
+    g, flat = c.geom, c.flat
+    b = g.bbox_db
+    rb = np.asarray(region.bounds)
+    if region.geom_type == "Polygon" and abs(region.area - (rb[2] - rb[0]) * (rb[3] - rb[1])) == 0:
+        return (b[:, 0] >= rb[0]) & (b[:, 1] >= rb[1]) & (b[:, 2] <= rb[2]) & (b[:, 3] <= rb[3])
+    shapely.prepare(region)
+    vsel = np.repeat(g.on_layer, np.diff(flat.start))
+    x, y = flat.xy_db[vsel, 0].astype(np.float64), flat.xy_db[vsel, 1].astype(np.float64)
+    pin = shapely.contains_xy(region, x, y)
+    pin |= shapely.intersects_xy(region.boundary, x, y)
+    allin = (np.logical_and.reduceat(pin, np.concatenate([[0], np.cumsum(g.vertex_counts)[:-1]]))
+             if g.n_polygons else pin)
+    allin_by_idx = dict(zip(g.layer_polys.tolist(), allin.tolist()))
+    inside = np.array([allin_by_idx[k] for k in g.poly.tolist()], bool) if g.poly.size else np.zeros(0, bool)
+    if abs(region.convex_hull.area - region.area) != 0 and inside.any():
+        cand = np.flatnonzero(inside)
+        inside[cand] = shapely.covers(region, _shapely_polygons(flat, g.poly[cand]))
+    return inside
+
+
+def _rule_frame(c: _LayerCheck) -> None:
+    g = c.geom
+    region = _frame_region(c.flat, c.lr.inside_frame)
+    bad = np.arange(g.poly.size) if region is None else np.flatnonzero(~_inside_region(c, region))
+    c.emit("frame_enclosure", 0, g.poly[bad], None, np.zeros(bad.size), c.bbox_seg(bad), g.n_polygons)
+
+
+def _spacing_pairs(c: _LayerCheck, spacing_db: float):
+    """Pairs closer than ``spacing_db``: lattice-neighbour stencil when it applies, else the STRtree path."""
+    g, flat = c.geom, c.flat
+    if (c.method != "tree" and g.degenerate.size == 0 and g.count_values.size == 1 and g.n_polygons >= 2
+            and g.convex.all()):
+        n = int(g.count_values[0])
+        if np.all(g.poly[1:] > g.poly[:-1]):
+            got = _pairs_lattice(flat, g.poly, n, g.bbox_db, spacing_db, math.sqrt(g.r2max_db2),
+                                 threads=_threads())
         else:
-            shapely.prepare(region)
-            vsel = np.repeat(sel, np.diff(flat.start))
-            pin = shapely.contains_xy(region, flat.xy_db[vsel, 0].astype(np.float64),
-                                      flat.xy_db[vsel, 1].astype(np.float64))
-            pin |= shapely.intersects_xy(region.boundary, flat.xy_db[vsel, 0].astype(np.float64),
-                                         flat.xy_db[vsel, 1].astype(np.float64))
-            allin = np.logical_and.reduceat(pin, np.concatenate([[0], np.cumsum(counts)[:-1]])) if P else pin
-            allin_by_idx = dict(zip(idx.tolist(), allin.tolist()))
-            inside = np.array([allin_by_idx[k] for k in F["idx"].tolist()], bool) if F["idx"].size else \
-                np.zeros(0, bool)
-            convex_region = abs(region.convex_hull.area - region.area) == 0
-            if not convex_region and inside.any():
-                cand = np.flatnonzero(inside)
-                inside[cand] = shapely.covers(region, _shapely_polygons(flat, F["idx"][cand]))
-        bad = np.flatnonzero(~inside)
-        emit("frame_enclosure", 0, _violations("flag", F["idx"][bad], None, np.zeros(bad.size), bbox_seg(bad),
-                                               db_um), P)
+            order = np.argsort(g.poly, kind="stable")
+            got = _pairs_lattice(flat, g.poly[order], n, g.bbox_db[order], spacing_db, math.sqrt(g.r2max_db2),
+                                 threads=_threads())
+        if got is not None:
+            return got[:4], f"lattice ({got[4]} neighbour offsets)"
+    valid_idx = g.layer_polys[g.vertex_counts >= 3]
+    got = _pairs_tree(flat, valid_idx, spacing_db) if valid_idx.size >= 2 else (
+        np.zeros(0, np.int64), np.zeros(0, np.int64), np.zeros(0), np.zeros((0, 4)))
+    return got, "strtree"
 
-    def r_spacing():
-        s_nm = lr.min_spacing_nm if lr.min_spacing_nm is not None else 0.0
-        s_db = s_nm / db_nm
-        got = None
-        name = "strtree"
-        if method != "tree" and small.size == 0 and groups.size == 1 and P >= 2 and F["convex"].all():
-            n = int(groups[0])
-            if np.all(F["idx"][1:] > F["idx"][:-1]):
-                got = _pairs_lattice(flat, F["idx"], n, F["bbox"], s_db, math.sqrt(r2max), threads=_threads())
-            else:
-                order = np.argsort(F["idx"], kind="stable")
-                got = _pairs_lattice(flat, F["idx"][order], n, F["bbox"][order], s_db, math.sqrt(r2max),
-                                     threads=_threads())
-            if got is not None:
-                name = f"lattice ({got[4]} neighbour offsets)"
-                got = got[:4]
-        if got is None:
-            valid_idx = idx[counts >= 3]
-            got = _pairs_tree(flat, valid_idx, s_db) if valid_idx.size >= 2 else (
-                np.zeros(0, np.int64), np.zeros(0, np.int64), np.zeros(0), np.zeros((0, 4)))
-        a, b, d, c = got
-        del got
 
-        def part(m):
-            return (a, b, d, c) if m.all() else (a[m], b[m], d[m], c[m])
+def _rule_spacing(c: _LayerCheck) -> None:
+    lr = c.lr
+    spacing_nm = lr.min_spacing_nm if lr.min_spacing_nm is not None else 0.0
+    (a, b, d, seg), name = _spacing_pairs(c, spacing_nm / c.db_unit_nm)
 
-        if lr.min_spacing_nm is not None:
-            pa, pb, pd, pc = part(d > 0)
-            emit("spacing", lr.min_spacing_nm, _violations("min", pa, pb, pd * db_nm, pc, db_um), P, name,
-                 "min_spacing_nm")
-            del pa, pb, pd, pc
-        if lr.forbid_overlap:
-            pa, pb, pd, pc = part(d == 0)
-            emit("overlap", 0, _violations("flag", pa, pb, pd, pc, db_um), P, name)
+    def part(m):
+        return (a, b, d, seg) if m.all() else (a[m], b[m], d[m], seg[m])
 
-    plan = [
-        ("width", lr.min_width_nm is not None, r_width),
-        ("spacing", lr.min_spacing_nm is not None or lr.forbid_overlap, r_spacing),
-        ("area", lr.min_area_nm2 is not None, r_area),
-        ("notch", lr.min_notch_nm is not None, r_notch),
-        ("hole_area", lr.min_hole_area_nm2 is not None, r_holes),
-        ("vertices", lr.max_vertices is not None, r_vertices),
-        ("grid", lr.grid_nm is not None, r_grid),
-        ("angle", lr.min_angle_deg is not None, r_angle),
-        ("validity", lr.check_validity, r_validity),
-        ("aspect_ratio", lr.max_aspect_ratio is not None, r_aspect),
-        ("field_straddle", lr.no_field_straddle, r_straddle),
-        ("frame_enclosure", lr.inside_frame is not None, r_frame),
-    ]
-    for name, on, fn in plan:
-        if on:
-            timed(name, fn)
+    if lr.min_spacing_nm is not None:
+        pa, pb, pd, pc = part(d > 0)
+        c.emit("spacing", lr.min_spacing_nm, pa, pb, pd * c.db_unit_nm, pc, c.geom.n_polygons, name,
+               "min_spacing_nm")
+        del pa, pb, pd, pc
+    if lr.forbid_overlap:
+        pa, pb, pd, pc = part(d == 0)
+        c.emit("overlap", 0, pa, pb, pd, pc, c.geom.n_polygons, name)
+
+
+#: The rules of a layer: name, whether ``LayerRules`` switches it on, and the function computing it.
+_RULE_STEPS = (
+    ("width", lambda lr: lr.min_width_nm is not None, _rule_width),
+    ("spacing", lambda lr: lr.min_spacing_nm is not None or lr.forbid_overlap, _rule_spacing),
+    ("area", lambda lr: lr.min_area_nm2 is not None, _rule_area),
+    ("notch", lambda lr: lr.min_notch_nm is not None, _rule_notch),
+    ("hole_area", lambda lr: lr.min_hole_area_nm2 is not None, _rule_holes),
+    ("vertices", lambda lr: lr.max_vertices is not None, _rule_vertices),
+    ("grid", lambda lr: lr.grid_nm is not None, _rule_grid),
+    ("angle", lambda lr: lr.min_angle_deg is not None, _rule_angle),
+    ("validity", lambda lr: lr.check_validity, _rule_validity),
+    ("aspect_ratio", lambda lr: lr.max_aspect_ratio is not None, _rule_aspect),
+    ("field_straddle", lambda lr: lr.no_field_straddle, _rule_straddle),
+    ("frame_enclosure", lambda lr: lr.inside_frame is not None, _rule_frame),
+)
+
+
+def _check_layer(flat: FlatPolygons, lr: LayerRules, rules: RuleSet, db_unit_nm: float, method: str,
+                 timings: list) -> list:
+    """All rules of one layer/datatype: polygon features once, then each switched-on rule (in report order)."""
+    tag = f"{lr.layer}/{lr.datatype}"
+    t0 = time.perf_counter()
+    check = _LayerCheck(flat, lr, rules, _layer_geometry(flat, lr), db_unit_nm, method)
+    timings.append((f"geometry {tag}", time.perf_counter() - t0))
+    for name, switched_on, rule in _RULE_STEPS:  # loop over rules (a short axis)
+        if switched_on(lr):
+            t = time.perf_counter()
+            rule(check)
+            timings.append((f"{name} {tag}", time.perf_counter() - t))
     rank = {r: i for i, r in enumerate(_RULE_ORDER)}
-    out.sort(key=lambda r: rank[r.rule])
-    return out
+    return sorted(check.results, key=lambda r: rank[r.rule])
 
 
 # ----------------------------------------------------------------------------------------------------------------
