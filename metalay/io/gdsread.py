@@ -238,17 +238,17 @@ def _ascii(raw: bytes) -> str:
 # GDSII record walk
 # ----------------------------------------------------------------------------------------------------------------
 
-class _Walker:
-    def __init__(self, path: str, mm, buf: np.ndarray, layer_filter, max_elements: int):
+class _Records:
+    """Validated access to the records of a memory-mapped GDSII file: headers, element templates, element runs."""
+
+    def __init__(self, path: str, mm, buf: np.ndarray):
         self.path = path
-        self.max_elements = max_elements
-        self.n_placements = 0
         self.mm = mm
         self.buf = buf
         self.n = buf.shape[0]
-        self.layer_filter = layer_filter
 
     def header(self, pos: int) -> tuple[int, int, int]:
+        """(length, record type, data type) of the record at ``pos``, checked against the file and the manual."""
         if pos + 4 > self.n:
             raise _err(self.path, f"truncated file: record header expected at byte {pos}, file has {self.n} bytes")
         length, rtype, dtype = struct.unpack_from(">HBB", self.mm, pos)
@@ -264,61 +264,6 @@ class _Walker:
             raise _err(self.path, f"record 0x{rtype:02X} at byte {pos} has data type {dtype}, expected {want}")
         return length, rtype, dtype
 
-    def walk(self) -> _Library:
-        pos = 0
-        length, rtype, _ = self.header(0)
-        if rtype != _HEADER:
-            raise _err(self.path, "not a GDSII stream file (first record is not HEADER)")
-        pos += length
-        db_unit_m = user_unit_m = None
-        cells: dict[str, _Cell] = {}
-        cell: _Cell | None = None
-        while True:
-            length, rtype, _ = self.header(pos)
-            if rtype == _ENDLIB:
-                break
-            if rtype == _UNITS:
-                if length != 20:
-                    raise _err(self.path, f"UNITS record at byte {pos} has length {length}, expected 20")
-                vals = _real8(self.buf[pos + 4:pos + 20].reshape(2, 8))
-                db_in_user, db_m = float(vals[0]), float(vals[1])
-                if not (math.isfinite(db_in_user) and math.isfinite(db_m) and db_in_user > 0 and 0 < db_m < 1):
-                    raise _err(self.path, f"UNITS at byte {pos} invalid: database unit {db_m} m, "
-                                          f"{db_in_user} user units (allowed: positive, database unit < 1 m)")
-                db_unit_m, user_unit_m = db_m, db_m / db_in_user
-                pos += length
-            elif rtype == _BGNSTR:
-                if cell is not None:
-                    raise _err(self.path, f"BGNSTR at byte {pos} inside structure {cell.name!r}")
-                pos += length
-                length, rtype, _ = self.header(pos)
-                if rtype != _STRNAME:
-                    raise _err(self.path, f"expected STRNAME at byte {pos} after BGNSTR")
-                name = _ascii(bytes(self.mm[pos + 4:pos + length]))
-                if name in cells:
-                    raise _err(self.path, f"structure name {name!r} defined twice (second at byte {pos})")
-                if db_unit_m is None:
-                    raise _err(self.path, f"structure {name!r} at byte {pos} comes before the UNITS record")
-                cell = _Cell(name)
-                cells[name] = cell
-                pos += length
-            elif rtype == _ENDSTR:
-                if cell is None:
-                    raise _err(self.path, f"ENDSTR at byte {pos} outside a structure")
-                cell = None
-                pos += length
-            elif rtype in _ELEMENT_STARTS:
-                if cell is None:
-                    raise _err(self.path, f"element record 0x{rtype:02X} at byte {pos} outside a structure")
-                pos = self.element_run(pos, cell)
-            else:
-                pos += length
-        if cell is not None:
-            raise _err(self.path, f"ENDLIB reached inside structure {cell.name!r} (missing ENDSTR)")
-        if db_unit_m is None:
-            raise _err(self.path, "no UNITS record")
-        return _Library(self.path, "GDSII", db_unit_m, user_unit_m, cells, self.buf)
-
     def element_template(self, pos: int) -> tuple[int, list]:
         """Walk one element from ``pos`` to its ENDEL; return (size, [(rel_off, length, rtype)])."""
         recs = []
@@ -332,41 +277,25 @@ class _Walker:
             if rtype == _ENDEL:
                 return p - pos, recs
 
-    def element_run(self, pos: int, cell: _Cell) -> int:
-        size, recs = self.element_template(pos)
+    def run_length(self, pos: int, size: int, recs: list) -> int:
+        """How many elements from ``pos`` repeat the template's record headers (found in doubling chunks)."""
         cols = np.concatenate([np.arange(off, off + 4) for off, _, _ in recs])
         expect = self.buf[pos + cols]
         k = 1
         chunk = 16
         while True:
-            avail = (self.n - (pos + k * size)) // size
-            m = min(chunk, avail)
+            m = min(chunk, (self.n - (pos + k * size)) // size)
             if m <= 0:
-                break
+                return k
             s0 = pos + k * size
-            block = self.buf[s0:s0 + m * size].reshape(m, size)
-            ok = (block[:, cols] == expect).all(axis=1)
-            if ok.all():
-                k += m
-                chunk = min(chunk * 2, _RUN_CHUNK_MAX)
-            else:
-                k += int(np.argmin(ok))
-                break
-        block = self.buf[pos:pos + k * size].reshape(k, size)
-        kind = recs[0][2]
-        byt = {}
-        for off, length, rtype in recs:
-            byt.setdefault(rtype, (off + 4, length - 4))
-        cell.n_elements[kind] = cell.n_elements.get(kind, 0) + k
-        if kind in (_BOUNDARY, _BOX):
-            self.decode_boundary(pos, block, byt, kind, cell)
-        elif kind == _PATH:
-            self.decode_path(pos, block, byt, cell)
-        elif kind in (_SREF, _AREF):
-            self.decode_ref(pos, block, byt, kind, cell)
-        return pos + k * size
+            ok = (self.buf[s0:s0 + m * size].reshape(m, size)[:, cols] == expect).all(axis=1)
+            if not ok.all():
+                return k + int(np.argmin(ok))
+            k += m
+            chunk = min(chunk * 2, _RUN_CHUNK_MAX)
 
-    def _need(self, pos, byt, rtype, name, nbytes=None):
+    def need(self, pos, byt, rtype, name, nbytes=None):
+        """(offset, length) of record ``rtype`` inside the element at ``pos`` (required, optionally sized)."""
         if rtype not in byt:
             raise _err(self.path, f"element at byte {pos} lacks its {name} record")
         off, ln = byt[rtype]
@@ -374,115 +303,225 @@ class _Walker:
             raise _err(self.path, f"{name} record in element at byte {pos} has {ln} data bytes, expected {nbytes}")
         return off, ln
 
-    def decode_boundary(self, pos, block, byt, kind, cell):
-        lo, _ = self._need(pos, byt, _LAYER, "LAYER", 2)
-        tname, trec = ("DATATYPE", _DATATYPE) if kind == _BOUNDARY else ("BOXTYPE", _BOXTYPE)
-        do, _ = self._need(pos, byt, trec, tname, 2)
-        xo, xl = self._need(pos, byt, _XY, "XY")
-        if xl % 8 or xl < 8 * 3:
-            raise _err(self.path, f"XY record in element at byte {pos} has {xl} data bytes "
-                                  f"(allowed: a multiple of 8, at least 3 points)")
-        n_xy = xl // 8
-        layer = _int16(block[:, lo:lo + 2])[:, 0]
-        datatype = _int16(block[:, do:do + 2])[:, 0]
-        closed = (block[:, xo:xo + 8] == block[:, xo + xl - 8:xo + xl]).all(axis=1)
-        keep = self.layer_filter(layer, datatype)
-        if kind == _BOX:
-            xy = np.ascontiguousarray(block[:, xo:xo + xl]).view(">i4").astype(np.int64).reshape(-1, n_xy, 2)
-            vmask = np.ones(xy.shape[:2], bool)
-            vmask[closed, -1] = False
-            vmask &= keep[:, None]
-            counts = vmask.sum(axis=1)[keep]
-            cell.explicit.append(_Explicit(layer[keep], datatype[keep], counts, xy[vmask]))
-            return
-        cell.runs.append(_Run(pos, block.shape[1], block.shape[0], xo, n_xy, layer, datatype, closed, keep))
 
-    def decode_path(self, pos, block, byt, cell):
-        lo, _ = self._need(pos, byt, _LAYER, "LAYER", 2)
-        do, _ = self._need(pos, byt, _DATATYPE, "DATATYPE", 2)
-        xo, xl = self._need(pos, byt, _XY, "XY")
-        if xl % 8 or xl < 16:
-            raise _err(self.path, f"XY record of PATH at byte {pos} has {xl} data bytes (allowed: >= 2 points)")
-        k = block.shape[0]
-        layer = _int16(block[:, lo:lo + 2])[:, 0]
-        datatype = _int16(block[:, do:do + 2])[:, 0]
-        keep = self.layer_filter(layer, datatype)
-        if not keep.any():
-            return
-        width = np.zeros(k)
-        if _WIDTH in byt:
-            wo, _ = self._need(pos, byt, _WIDTH, "WIDTH", 4)
-            width = np.abs(np.ascontiguousarray(block[:, wo:wo + 4]).view(">i4")[:, 0].astype(np.float64))
-        ptype = np.zeros(k, np.int32)
-        if _PATHTYPE in byt:
-            po, _ = self._need(pos, byt, _PATHTYPE, "PATHTYPE", 2)
-            ptype = _int16(block[:, po:po + 2])[:, 0]
-        ext = {}
-        for rt, nm in ((_BGNEXTN, "BGNEXTN"), (_ENDEXTN, "ENDEXTN")):
-            ext[rt] = np.zeros(k)
-            if rt in byt:
-                eo, _ = self._need(pos, byt, rt, nm, 4)
-                ext[rt] = np.ascontiguousarray(block[:, eo:eo + 4]).view(">i4")[:, 0].astype(np.float64)
-        xy = np.ascontiguousarray(block[:, xo:xo + xl]).view(">i4").astype(np.float64).reshape(k, -1, 2)
-        cell.explicit.append(_paths_to_polygons(xy[keep], width[keep], ptype[keep], ext[_BGNEXTN][keep],
-                                                ext[_ENDEXTN][keep], layer[keep], datatype[keep]))
+@dataclass
+class _WalkState:
+    """What the walk carries from record to record."""
 
-    def decode_ref(self, pos, block, byt, kind, cell):
-        so, sl = self._need(pos, byt, _SNAME, "SNAME")
-        xo, xl = self._need(pos, byt, _XY, "XY", 8 if kind == _SREF else 24)
-        k = block.shape[0]
-        refl = np.zeros(k, bool)
-        if _STRANS in byt:
-            to, _ = self._need(pos, byt, _STRANS, "STRANS", 2)
-            refl = (block[:, to] & 0x80) != 0
-        mag = np.ones(k)
-        if _MAG in byt:
-            mo, _ = self._need(pos, byt, _MAG, "MAG", 8)
-            mag = _real8(block[:, mo:mo + 8])
-        ang = np.zeros(k)
-        if _ANGLE in byt:
-            ao, _ = self._need(pos, byt, _ANGLE, "ANGLE", 8)
-            ang = _real8(block[:, ao:ao + 8])
-        if not (np.isfinite(mag).all() and np.isfinite(ang).all() and (mag > 0).all() and (mag < 1e6).all()):
-            raise _err(self.path, f"reference at byte {pos}: MAG/ANGLE not finite or MAG outside (0, 1e6)")
-        xy = np.ascontiguousarray(block[:, xo:xo + xl]).view(">i4").astype(np.float64).reshape(k, -1, 2)
-        c, s = np.cos(np.radians(ang)), np.sin(np.radians(ang))
-        # exact zeros/ones at multiples of 90 degrees keep integer placements exact
-        c = np.where(np.abs(c) < 1e-15, 0.0, c)
-        s = np.where(np.abs(s) < 1e-15, 0.0, s)
-        fy = np.where(refl, -1.0, 1.0)
-        lin = np.stack([c * mag, -s * mag * fy, s * mag, c * mag * fy], axis=1)  # R(angle) @ diag(mag, mag*fy)
-        if kind == _SREF:
-            aff = np.concatenate([lin, xy[:, 0, :]], axis=1)
-            rep = np.ones(k, np.int64)
+    layer_filter: object
+    max_elements: int
+    n_placements: int = 0
+    db_unit_m: float | None = None
+    user_unit_m: float | None = None
+
+
+def _walk_gdsii(rd: _Records, layer_filter, max_elements: int) -> _Library:
+    """Stage 1 of reading GDSII: walk the records into cells of element runs, explicit polygons and references."""
+    length, rtype, _ = rd.header(0)
+    if rtype != _HEADER:
+        raise _err(rd.path, "not a GDSII stream file (first record is not HEADER)")
+    pos = length
+    state = _WalkState(layer_filter, max_elements)
+    cells: dict[str, _Cell] = {}
+    cell: _Cell | None = None
+    while True:
+        length, rtype, _ = rd.header(pos)
+        if rtype == _ENDLIB:
+            break
+        if rtype == _UNITS:
+            state.db_unit_m, state.user_unit_m = _units_record(rd, pos, length)
+            pos += length
+        elif rtype == _BGNSTR:
+            if cell is not None:
+                raise _err(rd.path, f"BGNSTR at byte {pos} inside structure {cell.name!r}")
+            cell, pos = _begin_structure(rd, pos + length, cells, state)
+        elif rtype == _ENDSTR:
+            if cell is None:
+                raise _err(rd.path, f"ENDSTR at byte {pos} outside a structure")
+            cell = None
+            pos += length
+        elif rtype in _ELEMENT_STARTS:
+            if cell is None:
+                raise _err(rd.path, f"element record 0x{rtype:02X} at byte {pos} outside a structure")
+            pos = _element_run(rd, pos, cell, state)
         else:
-            co, _ = self._need(pos, byt, _COLROW, "COLROW", 4)
-            colrow = _int16(block[:, co:co + 4])
-            cols, rows = colrow[:, 0].astype(np.int64), colrow[:, 1].astype(np.int64)
-            if (cols < 1).any() or (rows < 1).any():
-                raise _err(self.path, f"AREF at byte {pos}: COLROW must be >= 1 (got {cols.min()}, {rows.min()})")
-            tot = cols * rows
-            self.n_placements += int(tot.sum())
-            if self.n_placements > self.max_elements:
-                raise _err(self.path, f"AREF at byte {pos}: {self.n_placements} array placements exceed the "
-                                      f"limit max_elements={self.max_elements}")
-            rep = tot
-            eidx = np.repeat(np.arange(k), tot)
-            local = np.arange(int(tot.sum())) - np.repeat(np.cumsum(tot) - tot, tot)
-            ci = local % cols[eidx]
-            ri = local // cols[eidx]
-            o, pc, pr = xy[eidx, 0], xy[eidx, 1], xy[eidx, 2]
-            t = (o + (pc - o) * (ci / cols[eidx])[:, None] + (pr - o) * (ri / rows[eidx])[:, None])
-            aff = np.concatenate([lin[eidx], t], axis=1)
-        names_raw = np.ascontiguousarray(block[:, so:so + sl])
-        if k == 1:
-            groups = [(bytes(names_raw[0]), np.ones(aff.shape[0], bool))]
-        else:
-            u, inv = np.unique(names_raw.view(f"V{sl}")[:, 0], return_inverse=True)
-            inv_rep = np.repeat(inv.ravel(), rep)
-            groups = [(bytes(u[g]), inv_rep == g) for g in range(u.shape[0])]
-        for nm, sel in groups:
-            cell.refs.append(_RefGroup(_ascii(nm), aff[sel], pos))
+            pos += length
+    if cell is not None:
+        raise _err(rd.path, f"ENDLIB reached inside structure {cell.name!r} (missing ENDSTR)")
+    if state.db_unit_m is None:
+        raise _err(rd.path, "no UNITS record")
+    return _Library(rd.path, "GDSII", state.db_unit_m, state.user_unit_m, cells, rd.buf)
+
+
+def _units_record(rd: _Records, pos: int, length: int) -> tuple[float, float]:
+    """(database unit, user unit) in metres from the UNITS record at ``pos``."""
+    if length != 20:
+        raise _err(rd.path, f"UNITS record at byte {pos} has length {length}, expected 20")
+    vals = _real8(rd.buf[pos + 4:pos + 20].reshape(2, 8))
+    db_in_user, db_m = float(vals[0]), float(vals[1])
+    if not (math.isfinite(db_in_user) and math.isfinite(db_m) and db_in_user > 0 and 0 < db_m < 1):
+        raise _err(rd.path, f"UNITS at byte {pos} invalid: database unit {db_m} m, "
+                            f"{db_in_user} user units (allowed: positive, database unit < 1 m)")
+    return db_m, db_m / db_in_user
+
+
+def _begin_structure(rd: _Records, pos: int, cells: dict, state: _WalkState) -> tuple[_Cell, int]:
+    """The STRNAME record after a BGNSTR: a new, uniquely named cell; returns it and the next position."""
+    length, rtype, _ = rd.header(pos)
+    if rtype != _STRNAME:
+        raise _err(rd.path, f"expected STRNAME at byte {pos} after BGNSTR")
+    name = _ascii(bytes(rd.mm[pos + 4:pos + length]))
+    if name in cells:
+        raise _err(rd.path, f"structure name {name!r} defined twice (second at byte {pos})")
+    if state.db_unit_m is None:
+        raise _err(rd.path, f"structure {name!r} at byte {pos} comes before the UNITS record")
+    cell = cells[name] = _Cell(name)
+    return cell, pos + length
+
+
+def _element_run(rd: _Records, pos: int, cell: _Cell, state: _WalkState) -> int:
+    """Stage 2: the run of identically structured elements at ``pos``, decoded as one strided block."""
+    size, recs = rd.element_template(pos)
+    k = rd.run_length(pos, size, recs)
+    block = rd.buf[pos:pos + k * size].reshape(k, size)
+    kind = recs[0][2]
+    byt = {}
+    for off, length, rtype in recs:
+        byt.setdefault(rtype, (off + 4, length - 4))
+    cell.n_elements[kind] = cell.n_elements.get(kind, 0) + k
+    if kind in (_BOUNDARY, _BOX):
+        _decode_boundary(rd, pos, block, byt, kind, cell, state.layer_filter)
+    elif kind == _PATH:
+        _decode_path(rd, pos, block, byt, cell, state.layer_filter)
+    elif kind in (_SREF, _AREF):
+        _decode_ref(rd, pos, block, byt, kind, cell, state)
+    return pos + k * size
+
+
+def _decode_boundary(rd: _Records, pos, block, byt, kind, cell: _Cell, layer_filter) -> None:
+    """BOUNDARY runs stay views of the file (decoded when flattened); BOX elements become explicit polygons."""
+    lo, _ = rd.need(pos, byt, _LAYER, "LAYER", 2)
+    tname, trec = ("DATATYPE", _DATATYPE) if kind == _BOUNDARY else ("BOXTYPE", _BOXTYPE)
+    do, _ = rd.need(pos, byt, trec, tname, 2)
+    xo, xl = rd.need(pos, byt, _XY, "XY")
+    if xl % 8 or xl < 8 * 3:
+        raise _err(rd.path, f"XY record in element at byte {pos} has {xl} data bytes "
+                            f"(allowed: a multiple of 8, at least 3 points)")
+    n_xy = xl // 8
+    layer = _int16(block[:, lo:lo + 2])[:, 0]
+    datatype = _int16(block[:, do:do + 2])[:, 0]
+    closed = (block[:, xo:xo + 8] == block[:, xo + xl - 8:xo + xl]).all(axis=1)
+    keep = layer_filter(layer, datatype)
+    if kind == _BOX:
+        xy = np.ascontiguousarray(block[:, xo:xo + xl]).view(">i4").astype(np.int64).reshape(-1, n_xy, 2)
+        vmask = np.ones(xy.shape[:2], bool)
+        vmask[closed, -1] = False
+        vmask &= keep[:, None]
+        counts = vmask.sum(axis=1)[keep]
+        cell.explicit.append(_Explicit(layer[keep], datatype[keep], counts, xy[vmask]))
+        return
+    cell.runs.append(_Run(pos, block.shape[1], block.shape[0], xo, n_xy, layer, datatype, closed, keep))
+
+
+def _decode_path(rd: _Records, pos, block, byt, cell: _Cell, layer_filter) -> None:
+    """PATH elements outlined as polygons (width, path type and extensions per element)."""
+    lo, _ = rd.need(pos, byt, _LAYER, "LAYER", 2)
+    do, _ = rd.need(pos, byt, _DATATYPE, "DATATYPE", 2)
+    xo, xl = rd.need(pos, byt, _XY, "XY")
+    if xl % 8 or xl < 16:
+        raise _err(rd.path, f"XY record of PATH at byte {pos} has {xl} data bytes (allowed: >= 2 points)")
+    k = block.shape[0]
+    layer = _int16(block[:, lo:lo + 2])[:, 0]
+    datatype = _int16(block[:, do:do + 2])[:, 0]
+    keep = layer_filter(layer, datatype)
+    if not keep.any():
+        return
+    width = np.zeros(k)
+    if _WIDTH in byt:
+        wo, _ = rd.need(pos, byt, _WIDTH, "WIDTH", 4)
+        width = np.abs(np.ascontiguousarray(block[:, wo:wo + 4]).view(">i4")[:, 0].astype(np.float64))
+    ptype = np.zeros(k, np.int32)
+    if _PATHTYPE in byt:
+        po, _ = rd.need(pos, byt, _PATHTYPE, "PATHTYPE", 2)
+        ptype = _int16(block[:, po:po + 2])[:, 0]
+    ext = {}
+    for rt, nm in ((_BGNEXTN, "BGNEXTN"), (_ENDEXTN, "ENDEXTN")):
+        ext[rt] = np.zeros(k)
+        if rt in byt:
+            eo, _ = rd.need(pos, byt, rt, nm, 4)
+            ext[rt] = np.ascontiguousarray(block[:, eo:eo + 4]).view(">i4")[:, 0].astype(np.float64)
+    xy = np.ascontiguousarray(block[:, xo:xo + xl]).view(">i4").astype(np.float64).reshape(k, -1, 2)
+    cell.explicit.append(_paths_to_polygons(xy[keep], width[keep], ptype[keep], ext[_BGNEXTN][keep],
+                                            ext[_ENDEXTN][keep], layer[keep], datatype[keep]))
+
+
+def _ref_linear(rd: _Records, pos, block, byt) -> np.ndarray:
+    """Linear part ``R(angle) diag(mag, mag * fy)`` of each reference, shape (k, 4), from STRANS, MAG, ANGLE."""
+    k = block.shape[0]
+    refl = np.zeros(k, bool)
+    if _STRANS in byt:
+        to, _ = rd.need(pos, byt, _STRANS, "STRANS", 2)
+        refl = (block[:, to] & 0x80) != 0
+    mag = np.ones(k)
+    if _MAG in byt:
+        mo, _ = rd.need(pos, byt, _MAG, "MAG", 8)
+        mag = _real8(block[:, mo:mo + 8])
+    ang = np.zeros(k)
+    if _ANGLE in byt:
+        ao, _ = rd.need(pos, byt, _ANGLE, "ANGLE", 8)
+        ang = _real8(block[:, ao:ao + 8])
+    if not (np.isfinite(mag).all() and np.isfinite(ang).all() and (mag > 0).all() and (mag < 1e6).all()):
+        raise _err(rd.path, f"reference at byte {pos}: MAG/ANGLE not finite or MAG outside (0, 1e6)")
+    c, s = np.cos(np.radians(ang)), np.sin(np.radians(ang))
+    # exact zeros/ones at multiples of 90 degrees keep integer placements exact
+    c = np.where(np.abs(c) < 1e-15, 0.0, c)
+    s = np.where(np.abs(s) < 1e-15, 0.0, s)
+    fy = np.where(refl, -1.0, 1.0)
+    return np.stack([c * mag, -s * mag * fy, s * mag, c * mag * fy], axis=1)
+
+
+def _aref_affine(rd: _Records, pos, block, byt, xy, lin, state: _WalkState):
+    """Every placement of an AREF run (counted against ``max_elements`` first); affine maps and counts."""
+    co, _ = rd.need(pos, byt, _COLROW, "COLROW", 4)
+    colrow = _int16(block[:, co:co + 4])
+    cols, rows = colrow[:, 0].astype(np.int64), colrow[:, 1].astype(np.int64)
+    if (cols < 1).any() or (rows < 1).any():
+        raise _err(rd.path, f"AREF at byte {pos}: COLROW must be >= 1 (got {cols.min()}, {rows.min()})")
+    tot = cols * rows
+    state.n_placements += int(tot.sum())
+    if state.n_placements > state.max_elements:
+        raise _err(rd.path, f"AREF at byte {pos}: {state.n_placements} array placements exceed the "
+                            f"limit max_elements={state.max_elements}")
+    eidx = np.repeat(np.arange(block.shape[0]), tot)
+    local = np.arange(int(tot.sum())) - np.repeat(np.cumsum(tot) - tot, tot)
+    ci = local % cols[eidx]
+    ri = local // cols[eidx]
+    o, pc, pr = xy[eidx, 0], xy[eidx, 1], xy[eidx, 2]
+    t = (o + (pc - o) * (ci / cols[eidx])[:, None] + (pr - o) * (ri / rows[eidx])[:, None])
+    return np.concatenate([lin[eidx], t], axis=1), tot
+
+
+def _decode_ref(rd: _Records, pos, block, byt, kind, cell: _Cell, state: _WalkState) -> None:
+    """SREF/AREF runs: affine placements grouped by the referenced cell's name."""
+    so, sl = rd.need(pos, byt, _SNAME, "SNAME")
+    xo, xl = rd.need(pos, byt, _XY, "XY", 8 if kind == _SREF else 24)
+    k = block.shape[0]
+    lin = _ref_linear(rd, pos, block, byt)
+    xy = np.ascontiguousarray(block[:, xo:xo + xl]).view(">i4").astype(np.float64).reshape(k, -1, 2)
+    if kind == _SREF:
+        aff = np.concatenate([lin, xy[:, 0, :]], axis=1)
+        rep = np.ones(k, np.int64)
+    else:
+        aff, rep = _aref_affine(rd, pos, block, byt, xy, lin, state)
+    names_raw = np.ascontiguousarray(block[:, so:so + sl])
+    if k == 1:
+        groups = [(bytes(names_raw[0]), np.ones(aff.shape[0], bool))]
+    else:
+        u, inv = np.unique(names_raw.view(f"V{sl}")[:, 0], return_inverse=True)
+        inv_rep = np.repeat(inv.ravel(), rep)
+        groups = [(bytes(u[g]), inv_rep == g) for g in range(u.shape[0])]
+    for nm, sel in groups:
+        cell.refs.append(_RefGroup(_ascii(nm), aff[sel], pos))
 
 
 def _paths_to_polygons(xy, width, ptype, bext, eext, layer, datatype) -> _Explicit:
@@ -718,20 +757,31 @@ def _decode_run(buf, r: _Run, lo: int, hi: int):
     return r.layer[lo:hi][keep], r.datatype[lo:hi][keep], cnt, out
 
 
-def _flatten(lib: _Library, cell: str | None, max_elements: int, max_vertices: int, max_depth: int,
-             ) -> FlatPolygons:
-    tops, order = _topology(lib, cell, max_depth)
-    sizes = _flat_sizes(lib, order)
-    total_p = sum(sizes[t][0] for t in tops)
-    total_v = sum(sizes[t][1] for t in tops)
-    if total_p > max_elements:
-        raise _err(lib.path, f"{total_p} polygons after resolving references exceed the limit max_elements="
-                             f"{max_elements}")
-    if total_v > max_vertices:
-        raise _err(lib.path, f"{total_v} vertices after resolving references exceed the limit max_vertices="
-                             f"{max_vertices}")
-    # placements per cell (parents first); instance counts are bounded by the polygon count check only when
-    # cells hold polygons, so count empty-cell instances separately
+class _FlatOut:
+    """Output arrays of a flattening, filled polygon by polygon block in order."""
+
+    def __init__(self, total_p: int, total_v: int):
+        self.layer = np.empty(total_p, np.int32)
+        self.datatype = np.empty(total_p, np.int32)
+        self.counts = np.empty(total_p, np.int64)
+        self.xy = np.empty((total_v, 2), np.int64)
+        self.ip = self.iv = 0
+
+    def put(self, layer, datatype, counts, xy) -> None:
+        """Append polygons (per-polygon arrays of length n, vertices (m, 2))."""
+        n, m = layer.shape[0], xy.shape[0]
+        self.layer[self.ip:self.ip + n], self.datatype[self.ip:self.ip + n] = layer, datatype
+        self.counts[self.ip:self.ip + n] = counts
+        self.xy[self.iv:self.iv + m] = xy
+        self.ip, self.iv = self.ip + n, self.iv + m
+
+
+def _placements(lib: _Library, tops: list, order: list, sizes: dict, max_elements: int) -> dict:
+    """Affine placements of every cell that holds polygons (parents first), counted against ``max_elements``.
+
+    Instance counts are bounded by the polygon count check only when cells hold polygons, so instances of cells
+    with polygons are counted here as they are composed.
+    """
     inst: dict[str, list] = {t: [np.array([[1.0, 0.0, 0.0, 1.0, 0.0, 0.0]])] for t in tops}
     n_inst_total = 0
     for name in order:
@@ -742,68 +792,73 @@ def _flatten(lib: _Library, cell: str | None, max_elements: int, max_vertices: i
         for r in lib.cells[name].refs:
             if sizes[r.child][0] == 0:
                 continue
-            n_new = parent.shape[0] * r.affine.shape[0]
-            n_inst_total += n_new
+            n_inst_total += parent.shape[0] * r.affine.shape[0]
             if n_inst_total > max_elements:
                 raise _err(lib.path, f"more than {max_elements} reference placements (limit max_elements)")
             inst.setdefault(r.child, []).append(_compose(parent, r.affine))
-    layer = np.empty(total_p, np.int32)
-    datatype = np.empty(total_p, np.int32)
-    counts = np.empty(total_p, np.int64)
-    xy = np.empty((total_v, 2), np.int64)
-    ip = iv = 0
+    return inst
+
+
+def _put_in_place(lib: _Library, c: _Cell, out: _FlatOut) -> None:
+    """A cell placed once without transform: runs stream straight into the output, chunk by chunk."""
+    for r in c.runs:
+        for lo in range(0, r.k, _DECODE_CHUNK):
+            out.put(*_decode_run(lib.buf, r, lo, min(r.k, lo + _DECODE_CHUNK)))
+    for e in c.explicit:
+        out.put(e.layer, e.datatype, e.counts, e.xy)
+
+
+def _put_placed(lib: _Library, c: _Cell, aff: np.ndarray, out: _FlatOut) -> None:
+    """A cell at every placement ``aff`` (m, 6): integer translations exactly, other maps rounded to the grid."""
+    lay, dt, cnt, pts = _cell_geometry(lib, c)
+    translate_only = np.all(aff[:, :4] == [1.0, 0.0, 0.0, 1.0]) and np.all(aff[:, 4:] == np.rint(aff[:, 4:]))
+    step = max(1, _DECODE_CHUNK * 4 // max(1, pts.shape[0]))
+    ptsf = pts.astype(np.float64)
+    for lo in range(0, aff.shape[0], step):
+        a = aff[lo:lo + step]
+        m = a.shape[0]
+        if translate_only:
+            placed = pts[None, :, :] + a[:, None, 4:].astype(np.int64)
+        else:
+            x = ptsf[None, :, 0]
+            y = ptsf[None, :, 1]
+            placed = np.stack([a[:, 0:1] * x + a[:, 1:2] * y + a[:, 4:5],
+                               a[:, 2:3] * x + a[:, 3:4] * y + a[:, 5:6]], axis=-1)
+            placed = np.rint(placed).astype(np.int64)
+            # a reflection (det < 0) reverses the vertex order; keep it as written (orientation is not used)
+        out.put(np.tile(lay, m), np.tile(dt, m), np.tile(cnt, m), placed.reshape(-1, 2))
+
+
+def _flatten(lib: _Library, cell: str | None, max_elements: int, max_vertices: int, max_depth: int,
+             ) -> FlatPolygons:
+    """Stage 3 of reading: every polygon of the top cell(s) in place, sizes counted before anything is allocated."""
+    tops, order = _topology(lib, cell, max_depth)
+    sizes = _flat_sizes(lib, order)
+    total_p = sum(sizes[t][0] for t in tops)
+    total_v = sum(sizes[t][1] for t in tops)
+    if total_p > max_elements:
+        raise _err(lib.path, f"{total_p} polygons after resolving references exceed the limit max_elements="
+                             f"{max_elements}")
+    if total_v > max_vertices:
+        raise _err(lib.path, f"{total_v} vertices after resolving references exceed the limit max_vertices="
+                             f"{max_vertices}")
+    inst = _placements(lib, tops, order, sizes, max_elements)
+    out = _FlatOut(total_p, total_v)
     for name in order:
         if name not in inst:
             continue
         c = lib.cells[name]
-        p_own, v_own = c.own_counts()
-        if p_own == 0:
+        if c.own_counts()[0] == 0:
             continue
         aff = inst[name][0]
-        ident = aff.shape[0] == 1 and np.array_equal(aff[0], [1.0, 0.0, 0.0, 1.0, 0.0, 0.0])
-        if ident:
-            # stream runs straight into the output, chunk by chunk
-            for r in c.runs:
-                for lo in range(0, r.k, _DECODE_CHUNK):
-                    hi = min(r.k, lo + _DECODE_CHUNK)
-                    lay, dt, cnt, pts = _decode_run(lib.buf, r, lo, hi)
-                    n, m = lay.shape[0], pts.shape[0]
-                    layer[ip:ip + n], datatype[ip:ip + n], counts[ip:ip + n] = lay, dt, cnt
-                    xy[iv:iv + m] = pts
-                    ip, iv = ip + n, iv + m
-            for e in c.explicit:
-                n, m = e.layer.shape[0], e.xy.shape[0]
-                layer[ip:ip + n], datatype[ip:ip + n], counts[ip:ip + n] = e.layer, e.datatype, e.counts
-                xy[iv:iv + m] = e.xy
-                ip, iv = ip + n, iv + m
-            continue
-        lay, dt, cnt, pts = _cell_geometry(lib, c)
-        translate_only = np.all(aff[:, :4] == [1.0, 0.0, 0.0, 1.0]) and np.all(aff[:, 4:] == np.rint(aff[:, 4:]))
-        step = max(1, _DECODE_CHUNK * 4 // max(1, pts.shape[0]))
-        ptsf = pts.astype(np.float64)
-        for lo in range(0, aff.shape[0], step):
-            a = aff[lo:lo + step]
-            m = a.shape[0]
-            if translate_only:
-                out = pts[None, :, :] + a[:, None, 4:].astype(np.int64)
-            else:
-                x = ptsf[None, :, 0]
-                y = ptsf[None, :, 1]
-                out = np.stack([a[:, 0:1] * x + a[:, 1:2] * y + a[:, 4:5],
-                                a[:, 2:3] * x + a[:, 3:4] * y + a[:, 5:6]], axis=-1)
-                out = np.rint(out).astype(np.int64)
-                # a reflection (det < 0) reverses the vertex order; keep it as written (orientation is not used)
-            n = m * lay.shape[0]
-            layer[ip:ip + n] = np.tile(lay, m)
-            datatype[ip:ip + n] = np.tile(dt, m)
-            counts[ip:ip + n] = np.tile(cnt, m)
-            xy[iv:iv + out.shape[0] * out.shape[1]] = out.reshape(-1, 2)
-            ip += n
-            iv += out.shape[0] * out.shape[1]
-    assert ip == total_p and iv == total_v
+        if aff.shape[0] == 1 and np.array_equal(aff[0], [1.0, 0.0, 0.0, 1.0, 0.0, 0.0]):
+            _put_in_place(lib, c, out)
+        else:
+            _put_placed(lib, c, aff, out)
+    assert out.ip == total_p and out.iv == total_v
     start = np.zeros(total_p + 1, np.int64)
-    np.cumsum(counts, out=start[1:])
-    return FlatPolygons(layer, datatype, start, xy, float(lib.db_unit_m), float(lib.user_unit_m))
+    np.cumsum(out.counts, out=start[1:])
+    return FlatPolygons(out.layer, out.datatype, start, out.xy, float(lib.db_unit_m), float(lib.user_unit_m))
 
 
 # ----------------------------------------------------------------------------------------------------------------
@@ -859,7 +914,7 @@ def _parse(path, layers=None, max_elements: int = DEFAULT_MAX_ELEMENTS):
         raise _err(path, f"cannot map file ({exc})") from exc
     fh.close()
     buf = np.frombuffer(mm, dtype=np.uint8, count=size)
-    return _Walker(path, mm, buf, filt, max_elements).walk(), mm
+    return _walk_gdsii(_Records(path, mm, buf), filt, max_elements), mm
 
 
 def read_mask(path, *, layers=None, cell: str | None = None, max_elements: int = DEFAULT_MAX_ELEMENTS,
