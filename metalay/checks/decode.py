@@ -246,6 +246,52 @@ def _match(shapes: ShapeTable, cs: CellShapes, bias_nm: float):
     return best, err
 
 
+def _lattice_indices(shapes, period_nm: float, lattice: str, origin_um):
+    """Nearest lattice site ``(i, j)`` of each polygon centre and the centre's distance from it (nm)."""
+    p = period_nm
+    x0, y0 = origin_um[0] * 1000.0, origin_um[1] * 1000.0
+    if lattice == "square":
+        jj = np.rint((shapes.y_nm - y0) / p).astype(np.int64)
+        ii = np.rint((shapes.x_nm - x0) / p).astype(np.int64)
+        sx, sy = ii * p + x0, jj * p + y0
+    else:
+        rp = p * SQRT3 / 2
+        jj = np.rint((shapes.y_nm - y0) / rp).astype(np.int64)
+        half = (jj % 2) * 0.5
+        ii = np.rint((shapes.x_nm - x0) / p - half).astype(np.int64)
+        sx, sy = (ii + half) * p + x0, jj * rp + y0
+    sx -= shapes.x_nm
+    sy -= shapes.y_nm
+    return ii, jj, np.hypot(sx, sy, out=sx)
+
+
+def _one_per_site(ii, jj, keep):
+    """Kept polygons in (j, i) site order, one per site (the first; the others count as duplicates).
+
+    Returns their indices, whether that is every polygon in file order (no gather needed), and the duplicates.
+    """
+    n_poly = ii.size
+    every = bool(keep.all())
+    idx = np.arange(n_poly) if every else np.flatnonzero(keep)
+    # site key in (j, i) order; masks written row by row are already sorted, so the sort is usually skipped
+    imin = int(ii.min()) if n_poly else 0
+    width = int(ii.max()) - imin + 1 if n_poly else 1
+    key = (jj - int(jj.min() if n_poly else 0)) * width + (ii - imin)
+    if not every:
+        key = key[idx]
+    if key.size > 1 and not np.all(key[1:] > key[:-1]):
+        order = np.argsort(key, kind="stable")
+        idx, key = idx[order], key[order]
+        every = False
+    first = np.ones(idx.size, bool)
+    if idx.size > 1:
+        first[1:] = key[1:] != key[:-1]
+    n_dup = int(idx.size - first.sum())
+    if n_dup:
+        idx = idx[first]
+    return idx, every, n_dup
+
+
 def decode_sites(flat, cells, *, period_nm: float, lattice: str = "square", layer=(1, 0), origin_um=(0.0, 0.0),
                  size_tol_nm: float = 3.0, bias_nm: float = 0.0, unmatched: str = "error",
                  where: str = "mask") -> DecodedSites:
@@ -317,49 +363,15 @@ def decode_sites(flat, cells, *, period_nm: float, lattice: str = "square", laye
             f"{shapes.b_nm[k]:.1f} nm (bias_nm = {bias_nm:g}); pass the mask's bias, a larger tolerance, or "
             "unmatched='nearest'")
     keep = np.ones(n_poly, bool) if unmatched != "drop" else ~bad
-    p = period_nm
-    x0, y0 = origin_um[0] * 1000.0, origin_um[1] * 1000.0
-    if lattice == "square":
-        jj = np.rint((shapes.y_nm - y0) / p).astype(np.int64)
-        ii = np.rint((shapes.x_nm - x0) / p).astype(np.int64)
-        sx, sy = ii * p + x0, jj * p + y0
-    else:
-        rp = p * SQRT3 / 2
-        jj = np.rint((shapes.y_nm - y0) / rp).astype(np.int64)
-        half = (jj % 2) * 0.5
-        ii = np.rint((shapes.x_nm - x0) / p - half).astype(np.int64)
-        sx, sy = (ii + half) * p + x0, jj * rp + y0
-    sx -= shapes.x_nm
-    sy -= shapes.y_nm
-    offset = np.hypot(sx, sy, out=sx)
-    del sy
-    off = offset > p / 4
+    ii, jj, offset = _lattice_indices(shapes, period_nm, lattice, origin_um)
+    off = offset > period_nm / 4
     n_off = int(off.sum())
     if n_off > n_poly // 2:
         raise MaskReadError(f"{where}: {n_off} of {n_poly} structures lie more than a quarter period from a "
-                            f"{lattice} lattice of period {p:g} nm with origin ({origin_um[0]:g}, {origin_um[1]:g}) "
-                            "um; check the library period, lattice and origin")
+                            f"{lattice} lattice of period {period_nm:g} nm with origin ({origin_um[0]:g}, "
+                            f"{origin_um[1]:g}) um; check the library period, lattice and origin")
     keep &= ~off
-    every = bool(keep.all())
-    idx = np.arange(n_poly) if every else np.flatnonzero(keep)
-    # site key in (j, i) order; masks written row by row are already sorted, so the sort is usually skipped
-    imin = int(ii.min()) if n_poly else 0
-    width = int(ii.max()) - imin + 1 if n_poly else 1
-    key = (jj - int(jj.min() if n_poly else 0)) * width + (ii - imin)
-    if not every:
-        key = key[idx]
-    if key.size > 1 and not np.all(key[1:] > key[:-1]):
-        order = np.argsort(key, kind="stable")
-        idx, key = idx[order], key[order]
-        every = False
-    # one element per site: keep the first in (j, i) order, count the rest as duplicates
-    first = np.ones(idx.size, bool)
-    if idx.size > 1:
-        first[1:] = key[1:] != key[:-1]
-    n_dup = int(idx.size - first.sum())
-    if n_dup:
-        idx = idx[first]
-    del key, first
+    idx, every, n_dup = _one_per_site(ii, jj, keep)
 
     def take(a):  # no gather when every polygon is kept in file order
         return a if every else a[idx]

@@ -282,31 +282,8 @@ def rasterize(decoded: DecodedSites, fields: SiteFields, *, empty_t: complex = 1
     """
     p = decoded.period_nm * 1e-3
     ox, oy = decoded.origin_um
-    ii, jj = decoded.i, decoded.j
-    if expected_ij is not None:
-        ei, ej = (np.asarray(a, dtype=np.int64) for a in expected_ij)
-        all_i, all_j = np.concatenate([ii, ei]), np.concatenate([jj, ej])
-    else:
-        all_i, all_j = ii, jj
-    if all_i.size == 0:
-        raise MetalayError("optics: the mask has no decoded structures to illuminate")
-    r, c0, c1 = _site_pixels(all_i, all_j, decoded.lattice)
-    rmin, cmin = int(r.min()), int(c0.min())
-    cmax = int((c1 if c1 is not None else c0).max())
-    ny, nx = int(r.max()) - rmin + 1, cmax - cmin + 1
-    sr, sc0, sc1 = _site_pixels(ii, jj, decoded.lattice)
-    sr = sr - rmin
-    cols = [sc0 - cmin] + ([sc1 - cmin] if sc1 is not None else [])
-    occupied = np.zeros((ny, nx), bool)
-    for cc in cols:
-        occupied[sr, cc] = True
-    if expected_ij is not None:
-        er, ec0, ec1 = _site_pixels(ei, ej, decoded.lattice)
-        illum = occupied.copy()
-        for cc in [ec0] + ([ec1] if ec1 is not None else []):
-            illum[er - rmin, cc - cmin] = True
-    else:
-        illum = ndimage.binary_fill_holes(occupied)
+    sr, cols, occupied, illum, (rmin, cmin) = _site_grid(decoded, expected_ij)
+    ny, nx = occupied.shape
     if jones_in is None:
         jones_in = input_jones("design", design_sigma=fields.sigma)
     sig = fields.sigma
@@ -337,22 +314,63 @@ def rasterize(decoded: DecodedSites, fields: SiteFields, *, empty_t: complex = 1
     n_empty = int(empty.sum()) // spp
     if decimation > 1:
         m = int(decimation)
-        pad_y, pad_x = (-ny) % m, (-nx) % m
-
-        def block(a, mean=True):
-            a = np.pad(a, ((0, pad_y), (0, pad_x)))
-            b = a.reshape(a.shape[0] // m, m, a.shape[1] // m, m)
-            return b.mean(axis=(1, 3)) if mean else b.any(axis=(1, 3))
-
-        out = {k: block(v).astype(np.complex64) for k, v in out.items()}
-        illum = block(illum, mean=False)
-        x = x[0] + (np.arange(out["designed"].shape[1]) * m + (m - 1) / 2) * dx
-        y = y[0] + (np.arange(out["designed"].shape[0]) * m + (m - 1) / 2) * dy
+        out, illum, x, y = _decimate(out, illum, x, y, dx, dy, m)
         dx, dy = dx * m, dy * m
         note += f"; decimated by {m} x {m} block averages"
     return NearField(x_um=x, y_um=y, dx_um=float(dx), dy_um=float(dy), designed=out["designed"],
                      other=out["other"], converted=out["converted"], illuminated=illum, samples_per_site=spp,
                      decimation=int(decimation), note=note, cells_illuminated=n_cells, cells_empty=n_empty)
+
+
+def _site_grid(decoded: DecodedSites, expected_ij):
+    """Sample positions of the decoded sites and the occupied / illuminated masks of the grid.
+
+    Returns the site rows, the site columns (one or two arrays), the occupied and illuminated masks (ny, nx) and
+    the grid's first (row, column).
+    """
+    ii, jj = decoded.i, decoded.j
+    if expected_ij is not None:
+        ei, ej = (np.asarray(a, dtype=np.int64) for a in expected_ij)
+        all_i, all_j = np.concatenate([ii, ei]), np.concatenate([jj, ej])
+    else:
+        all_i, all_j = ii, jj
+    if all_i.size == 0:
+        raise MetalayError("optics: the mask has no decoded structures to illuminate")
+    r, c0, c1 = _site_pixels(all_i, all_j, decoded.lattice)
+    rmin, cmin = int(r.min()), int(c0.min())
+    cmax = int((c1 if c1 is not None else c0).max())
+    ny, nx = int(r.max()) - rmin + 1, cmax - cmin + 1
+    sr, sc0, sc1 = _site_pixels(ii, jj, decoded.lattice)
+    sr = sr - rmin
+    cols = [sc0 - cmin] + ([sc1 - cmin] if sc1 is not None else [])
+    occupied = np.zeros((ny, nx), bool)
+    for cc in cols:
+        occupied[sr, cc] = True
+    if expected_ij is not None:
+        er, ec0, ec1 = _site_pixels(ei, ej, decoded.lattice)
+        illum = occupied.copy()
+        for cc in [ec0] + ([ec1] if ec1 is not None else []):
+            illum[er - rmin, cc - cmin] = True
+    else:
+        illum = ndimage.binary_fill_holes(occupied)
+    return sr, cols, occupied, illum, (rmin, cmin)
+
+
+def _decimate(out: dict, illum, x, y, dx: float, dy: float, m: int):
+    """Block averages of ``m x m`` samples (illuminated where any sample is) and the block-centre axes."""
+    ny, nx = illum.shape
+    pad_y, pad_x = (-ny) % m, (-nx) % m
+
+    def block(a, mean=True):
+        a = np.pad(a, ((0, pad_y), (0, pad_x)))
+        b = a.reshape(a.shape[0] // m, m, a.shape[1] // m, m)
+        return b.mean(axis=(1, 3)) if mean else b.any(axis=(1, 3))
+
+    out = {k: block(v).astype(np.complex64) for k, v in out.items()}
+    illum = block(illum, mean=False)
+    x = x[0] + (np.arange(out["designed"].shape[1]) * m + (m - 1) / 2) * dx
+    y = y[0] + (np.arange(out["designed"].shape[0]) * m + (m - 1) / 2) * dy
+    return out, illum, x, y
 
 
 def power_budget(fields: SiteFields, n_illuminated: float, *, n_empty: float = 0.0, empty_t: complex = 1.0,

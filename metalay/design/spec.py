@@ -117,10 +117,32 @@ def load_design(path: str | Path) -> Design:
 
 
 def parse_design(data: dict, *, where: str = "<memory>", base_dir: str | Path = ".") -> Design:
-    """Validate an already-parsed TOML document (see :func:`load_design`)."""
+    """Validate an already-parsed TOML document (see :func:`load_design`).
+
+    Tables are read in file-reference order (design, phase, aperture, lattice, mask, checks, routes), each by its
+    own ``_parse_*`` stage through :class:`metalay.validate.TomlTable`; the first invalid value stops with a
+    :class:`~metalay.errors.DesignError` naming the file, the dotted key, the value and the allowed range.
+    """
     base_dir = Path(base_dir)
     top = TomlTable(data, where)
-    d = top.table("design")
+    name, wavelength_nm, sigma, library = _parse_design_table(top.table("design"), base_dir)
+    terms = tuple(_parse_term(t, base_dir, wavelength_nm) for t in top.tables("phase"))
+    aperture = _parse_aperture(top.table("aperture"))
+    lattice = _parse_lattice(top.table("lattice"), aperture)
+    mask = _parse_mask(top.table("mask", {}))
+    c = top.table("checks", {})
+    checks = CheckSettings(rules=c.boolean("rules", True), fail_on_violations=c.boolean("fail_on_violations", False),
+                           optics=c.boolean("optics", True))
+    c.check_unknown()
+    top.raw("routes", {})  # fabrication-route settings, validated by metalay.routes
+    top.check_unknown()
+    return Design(name=name, wavelength_nm=float(wavelength_nm), sigma=int(sigma), terms=terms, aperture=aperture,
+                  lattice=lattice, library=library, mask=mask, checks=checks, source_path=where, raw=data)
+
+
+def _parse_design_table(d: TomlTable, base_dir: Path):
+    """``[design]``: name, wavelength, input spin, library (a relative library path is taken from the file's
+    folder)."""
     name = d.string("name")
     if not name or len(name) > 64 or not all(c.isalnum() or c in "-_." for c in name):
         d.fail("name", name, "use 1 to 64 characters from letters, digits, '-', '_' and '.'")
@@ -134,10 +156,11 @@ def parse_design(data: dict, *, where: str = "<memory>", base_dir: str | Path = 
     if library.endswith(".json") and not Path(library).is_absolute():
         library = str((base_dir / library))
     d.check_unknown()
+    return name, wavelength_nm, sigma, library
 
-    terms = tuple(_parse_term(t, base_dir, wavelength_nm) for t in top.tables("phase"))
 
-    a = top.table("aperture")
+def _parse_aperture(a: TomlTable) -> Aperture:
+    """``[aperture]``: circle, annulus, square or rectangle with its sizes in micrometres."""
     shape = a.string("shape", options=_SHAPES)
     if shape == "circle":
         aperture = Aperture(shape, diameter_um=a.number("diameter_um", lo=0, lo_open=True, hi=1e5))
@@ -153,23 +176,28 @@ def parse_design(data: dict, *, where: str = "<memory>", base_dir: str | Path = 
         aperture = Aperture(shape, width_um=a.number("width_um", lo=0, lo_open=True, hi=1e5),
                             height_um=a.number("height_um", lo=0, lo_open=True, hi=1e5))
     a.check_unknown()
+    return aperture
 
-    lt = top.table("lattice")
+
+def _parse_lattice(lt: TomlTable, aperture: Aperture) -> Lattice:
+    """``[lattice]``: kind and period; the aperture must hold at least one cell and at most ``_MAX_SITES``."""
     lattice = Lattice(lt.string("kind", options=_LATTICES), lt.number("period_nm", lo=10.0, hi=100000.0))
     lt.check_unknown()
     min_extent_um = 2 * min(aperture.half_extent_um)
     if aperture.shape == "annulus":
         min_extent_um = (aperture.diameter_um - aperture.inner_diameter_um) / 2
     if min_extent_um < lattice.period_um:
-        raise DesignError(f"{where}: aperture ({min_extent_um:g} um across) is smaller than one unit cell "
+        raise DesignError(f"{lt.where}: aperture ({min_extent_um:g} um across) is smaller than one unit cell "
                           f"(lattice.period_nm = {lattice.period_nm:g}); allowed: aperture >= one period")
     est_sites = _estimated_sites(aperture, lattice)
     if est_sites > _MAX_SITES:
-        raise DesignError(f"{where}: aperture and lattice give about {est_sites:.3g} sites; allowed up to "
+        raise DesignError(f"{lt.where}: aperture and lattice give about {est_sites:.3g} sites; allowed up to "
                           f"{_MAX_SITES:.0e}")
+    return lattice
 
-    m = top.table("mask", {})
-    db_unit_nm = m.number("db_unit_nm", 1.0, lo=0.001, hi=100.0)
+
+def _parse_layers(m: TomlTable) -> dict:
+    """``[mask.layers]``: ``[layer, datatype]`` per purpose over :data:`DEFAULT_LAYERS`."""
     layers = dict(DEFAULT_LAYERS)
     if m.has("layers"):
         lr = m.table("layers")
@@ -181,6 +209,52 @@ def parse_design(data: dict, *, where: str = "<memory>", base_dir: str | Path = 
                     lr.fail(purpose, v, "expected [layer, datatype], integers 0..255")
                 layers[purpose] = (v[0], v[1])
         lr.check_unknown()
+    return layers
+
+
+def _parse_write_field(wf: TomlTable) -> WriteFieldSettings:
+    """``[mask.write_field]``: size, grid origin, straddle handling."""
+    size = wf.raw("size_um")
+    if isinstance(size, (int, float)) and not isinstance(size, bool):
+        size = [size, size]
+    if (not isinstance(size, list) or len(size) != 2 or not all(
+            isinstance(v, (int, float)) and not isinstance(v, bool) and 0.1 <= v <= 1e5 for v in size)):
+        wf.fail("size_um", wf.data.get("size_um"), "expected a number or [width, height], 0.1..1e5 um")
+    origin = wf.raw("origin_um", [0.0, 0.0])
+    if (not isinstance(origin, list) or len(origin) != 2
+            or not all(isinstance(v, (int, float)) and not isinstance(v, bool) for v in origin)):
+        wf.fail("origin_um", origin, "expected [x, y] in um")
+    write_field = WriteFieldSettings(
+        (float(size[0]), float(size[1])), (float(origin[0]), float(origin[1])),
+        wf.string("straddle", "shift", options=("shift", "drop", "keep")),
+        float(wf.number("max_shift_nm", 50.0, lo=0.0, hi=1e4)),
+        wf.boolean("cell_per_field", False))
+    wf.check_unknown()
+    return write_field
+
+
+def _parse_marks(mk: TomlTable) -> MarkSettings:
+    """``[mask.marks]``: kind, size, bar width, gap, optional explicit positions."""
+    positions = mk.raw("positions_um", None)
+    if positions is not None and (not isinstance(positions, list) or not positions or not all(
+            isinstance(p, list) and len(p) == 2 and all(isinstance(v, (int, float)) and not isinstance(v, bool)
+                                                        for v in p) for p in positions)):
+        mk.fail("positions_um", positions, "expected a list of [x, y] positions in um")
+    size_um = float(mk.number("size_um", 100.0, lo=1.0, hi=1e4))
+    line_um = float(mk.number("line_width_um", 10.0, lo=0.1, hi=1e4))
+    if line_um >= size_um:
+        mk.fail("line_width_um", line_um, f"must be smaller than size_um = {size_um:g}")
+    marks = MarkSettings(mk.string("kind", "cross", options=("cross", "square")), size_um, line_um,
+                         float(mk.number("gap_um", 20.0, lo=0.0, hi=1e5)),
+                         tuple((float(a), float(b)) for a, b in positions) if positions else None)
+    mk.check_unknown()
+    return marks
+
+
+def _parse_mask(m: TomlTable) -> MaskSettings:
+    """``[mask]``: database unit, layers, hierarchy, rotation levels, formats, frame, label, process settings."""
+    db_unit_nm = m.number("db_unit_nm", 1.0, lo=0.001, hi=100.0)
+    layers = _parse_layers(m)
     hierarchy = m.string("hierarchy", "flat", options=_HIERARCHY)
     levels = m.number("rotation_levels", 0, lo=0, hi=4096, integer=True)
     if levels == 1:
@@ -191,41 +265,8 @@ def parse_design(data: dict, *, where: str = "<memory>", base_dir: str | Path = 
     if (not isinstance(formats, list) or not formats or any(f not in _FORMATS for f in formats)
             or len(set(formats)) != len(formats)):
         m.fail("formats", formats, f"expected a non-empty list of distinct values from {list(_FORMATS)}")
-    write_field = None
-    if m.has("write_field"):
-        wf = m.table("write_field")
-        size = wf.raw("size_um")
-        if isinstance(size, (int, float)) and not isinstance(size, bool):
-            size = [size, size]
-        if (not isinstance(size, list) or len(size) != 2 or not all(
-                isinstance(v, (int, float)) and not isinstance(v, bool) and 0.1 <= v <= 1e5 for v in size)):
-            wf.fail("size_um", wf.data.get("size_um"), "expected a number or [width, height], 0.1..1e5 um")
-        origin = wf.raw("origin_um", [0.0, 0.0])
-        if (not isinstance(origin, list) or len(origin) != 2
-                or not all(isinstance(v, (int, float)) and not isinstance(v, bool) for v in origin)):
-            wf.fail("origin_um", origin, "expected [x, y] in um")
-        write_field = WriteFieldSettings(
-            (float(size[0]), float(size[1])), (float(origin[0]), float(origin[1])),
-            wf.string("straddle", "shift", options=("shift", "drop", "keep")),
-            float(wf.number("max_shift_nm", 50.0, lo=0.0, hi=1e4)),
-            wf.boolean("cell_per_field", False))
-        wf.check_unknown()
-    marks = None
-    if m.has("marks"):
-        mk = m.table("marks")
-        positions = mk.raw("positions_um", None)
-        if positions is not None and (not isinstance(positions, list) or not positions or not all(
-                isinstance(p, list) and len(p) == 2 and all(isinstance(v, (int, float)) and not isinstance(v, bool)
-                                                            for v in p) for p in positions)):
-            mk.fail("positions_um", positions, "expected a list of [x, y] positions in um")
-        size_um = float(mk.number("size_um", 100.0, lo=1.0, hi=1e4))
-        line_um = float(mk.number("line_width_um", 10.0, lo=0.1, hi=1e4))
-        if line_um >= size_um:
-            mk.fail("line_width_um", line_um, f"must be smaller than size_um = {size_um:g}")
-        marks = MarkSettings(mk.string("kind", "cross", options=("cross", "square")), size_um, line_um,
-                             float(mk.number("gap_um", 20.0, lo=0.0, hi=1e5)),
-                             tuple((float(a), float(b)) for a, b in positions) if positions else None)
-        mk.check_unknown()
+    write_field = _parse_write_field(m.table("write_field")) if m.has("write_field") else None
+    marks = _parse_marks(m.table("marks")) if m.has("marks") else None
     dose = ()
     if m.has("dose_datatypes"):
         dd = m.table("dose_datatypes")
@@ -250,18 +291,10 @@ def parse_design(data: dict, *, where: str = "<memory>", base_dir: str | Path = 
         m.fail("tone", mask.tone, "'complement' needs mask.hierarchy = 'flat'")
     if (write_field is not None and write_field.cell_per_field
             and (mask.hierarchy != "flat" or mask.tone != "structures")):
-        raise DesignError(f"{where}: key 'mask.write_field.cell_per_field' = true: needs mask.hierarchy = 'flat' and "
-                          "mask.tone = 'structures'")
+        raise DesignError(f"{m.where}: key 'mask.write_field.cell_per_field' = true: needs mask.hierarchy = 'flat' "
+                          "and mask.tone = 'structures'")
     m.check_unknown()
-
-    c = top.table("checks", {})
-    checks = CheckSettings(rules=c.boolean("rules", True), fail_on_violations=c.boolean("fail_on_violations", False),
-                           optics=c.boolean("optics", True))
-    c.check_unknown()
-    top.raw("routes", {})  # fabrication-route settings, validated by metalay.routes
-    top.check_unknown()
-    return Design(name=name, wavelength_nm=float(wavelength_nm), sigma=int(sigma), terms=terms, aperture=aperture,
-                  lattice=lattice, library=library, mask=mask, checks=checks, source_path=where, raw=data)
+    return mask
 
 
 def _estimated_sites(aperture: Aperture, lattice: Lattice) -> float:

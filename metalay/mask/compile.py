@@ -648,7 +648,7 @@ class _Elements:
 def _elements(rows, ctx: _TileContext, out: _TileOut, *, active_rows=None) -> _Elements | None:
     """Sites of ``rows`` -> phase -> cells -> snapped outlines (+ write-field fit). Fills ``out``'s statistics."""
     design, library = ctx.design, ctx.library
-    db = design.mask.db_unit_nm
+    db_unit_nm = design.mask.db_unit_nm
     sites = sample_sites(design.aperture, design.lattice, rows=rows)
     if len(sites) == 0:
         return None
@@ -656,11 +656,35 @@ def _elements(rows, ctx: _TileContext, out: _TileOut, *, active_rows=None) -> _E
     ncell = len(ctx.cell_ids)
     a = assign_cells(phi, library, sigma=design.sigma, cell_id=ctx.cell_ids[0] if ncell == 1 else None,
                      rotation_levels=design.mask.rotation_levels, wavelength_nm=design.wavelength_nm)
-    centres = snap_centres(sites.x_um, sites.y_um, db)
+    centres = snap_centres(sites.x_um, sites.y_um, db_unit_nm)
     active = None if active_rows is None else (sites.j >= active_rows[0]) & (sites.j < active_rows[1])
-    own = slice(None) if active is None else active
     out.quant_err = max(out.quant_err, a.quantisation_error_rad)
-    # aliasing estimate on a deterministic sub-sample of this tile's own sites
+    _alias_estimate(sites, active, ctx, out)
+    slot = a.cell_index.astype(np.int64) if ncell > 1 else np.zeros(len(sites), np.int64)
+    offsets, snapped = _snap_cells(a, slot, ctx, out)
+    keep = np.ones(len(sites), bool) if active is None else active.copy()
+    if ctx.grid is not None:
+        centres, fit_keep = _fit_fields(sites, centres, offsets, slot, active, keep, ctx, out)
+        keep &= fit_keep
+    if not keep.all():
+        offsets = [o[keep[slot == k] if ncell > 1 else keep] for k, o in enumerate(offsets)]
+        snapped = [None] * ncell  # the row layout no longer matches: records come from the offsets
+        centres = centres[keep]
+        slot = slot[keep]
+        theta = a.rotation_rad[keep]
+        level = a.level[keep] if a.level is not None else None
+    else:
+        theta, level = a.rotation_rad, a.level
+    if ctx.grid is not None:
+        snapped = [None] * ncell  # centres may have moved: records come from the offsets
+    out.n += int(keep.sum())
+    return _Elements(slot, theta, level, centres, offsets, snapped)
+
+
+def _alias_estimate(sites, active, ctx: _TileContext, out: _TileOut) -> None:
+    """Count sites where the phase changes by more than pi per period, on a deterministic sub-sample."""
+    design = ctx.design
+    own = slice(None) if active is None else active
     xs, ys = sites.x_um[own][::ctx.alias_stride], sites.y_um[own][::ctx.alias_stride]
     g = phase_gradient(design.terms, xs, ys, wavelength_nm=design.wavelength_nm, sigma=design.sigma,
                        step_um=design.lattice.period_um * 1e-3)
@@ -670,7 +694,13 @@ def _elements(rows, ctx: _TileContext, out: _TileOut, *, active_rows=None) -> _E
         out.alias_hits += int(hit.sum())
         r = np.hypot(xs[hit], ys[hit])
         out.alias_r = (min(out.alias_r[0], float(r.min())), max(out.alias_r[1], float(r.max())))
-    slot = a.cell_index.astype(np.int64) if ncell > 1 else np.zeros(len(sites), np.int64)
+
+
+def _snap_cells(a, slot, ctx: _TileContext, out: _TileOut):
+    """Snapped outlines per cell slot (rotation levels or exact rotations) and the worst snapping phase error."""
+    library = ctx.library
+    db_unit_nm = ctx.design.mask.db_unit_nm
+    ncell = len(ctx.cell_ids)
     # the (N, V, 2) layout is only built when something needs it; GDSII records come from the row layout
     need_offsets = ctx.grid is not None or ctx.need_groups or ctx.region is not None
     offsets = []
@@ -686,53 +716,44 @@ def _elements(rows, ctx: _TileContext, out: _TileOut, *, active_rows=None) -> _E
                     len(ctx.level_offsets[k])) * np.pi / len(ctx.level_offsets[k]))))
                 out.worst_snap = max(out.worst_snap, float(err.max()))
         else:
-            sr = snap_rows(ctx.outlines[k], a.rotation_rad[sel], db)
+            sr = snap_rows(ctx.outlines[k], a.rotation_rad[sel], db_unit_nm)
             snapped.append(sr)
             offsets.append(sr.offsets() if need_offsets else None)
             if not is_rotation_invariant(cell):
                 out.worst_snap = max(out.worst_snap, sr.error_rad)
-    keep = np.ones(len(sites), bool) if active is None else active.copy()
-    if ctx.grid is not None:
-        wf = design.mask.write_field
-        vmax = max(o.shape[1] for o in offsets)
-        padded = np.empty((len(sites), vmax, 2), np.int32)
-        for k, o in enumerate(offsets):  # pad with the last vertex (same hull) so all cells share one array
-            sel = np.flatnonzero(slot == k) if ncell > 1 else slice(None)
-            padded[sel, :o.shape[1]] = o
-            padded[sel, o.shape[1]:] = o[:, -1:, :]
-        fit = fit_write_fields(centres, padded, ctx.grid, mode=wf.straddle, max_shift_db=wf.max_shift_nm / db,
-                               min_gap_db=ctx.min_gap_db, active=active)
-        for key, val in (("straddling", fit.n_straddling), ("shifted", fit.n_shifted), ("dropped", fit.n_dropped),
-                         ("kept_straddling", fit.n_kept_straddling)):
-            out.wf_counts[key] = out.wf_counts.get(key, 0) + int(val)
-        moved = np.flatnonzero(np.any(fit.shift_db != 0, axis=1) & keep)
-        if moved.size:
-            shift_nm = np.hypot(*fit.shift_db[moved].T.astype(np.float64)) * db
-            out.worst_shift_nm = max(out.worst_shift_nm, float(shift_nm.max()))
-            gm = phase_gradient(design.terms, sites.x_um[moved], sites.y_um[moved],
-                                wavelength_nm=design.wavelength_nm, sigma=design.sigma,
-                                step_um=design.lattice.period_um * 1e-3)
-            err = shift_phase_error_rad(fit.shift_db[moved], gm, db_unit_nm=db)
-            out.worst_shift_phase = max(out.worst_shift_phase, float(np.max(err, initial=0.0)))
-        centres = fit.centres_db
-        keep &= fit.keep
-    if not keep.all():
-        new_offsets = []
-        for k, o in enumerate(offsets):
-            sel_keep = keep[slot == k] if ncell > 1 else keep
-            new_offsets.append(o[sel_keep])
-        offsets = new_offsets
-        snapped = [None] * ncell  # the row layout no longer matches: records come from the offsets
-        centres = centres[keep]
-        slot = slot[keep]
-        theta = a.rotation_rad[keep]
-        level = a.level[keep] if a.level is not None else None
-    else:
-        theta, level = a.rotation_rad, a.level
-    if ctx.grid is not None:
-        snapped = [None] * ncell  # centres may have moved: records come from the offsets
-    out.n += int(keep.sum())
-    return _Elements(slot, theta, level, centres, offsets, snapped)
+    return offsets, snapped
+
+
+def _fit_fields(sites, centres, offsets, slot, active, keep, ctx: _TileContext, out: _TileOut):
+    """Fit elements into write fields (shift, drop or keep straddlers); counts, worst shift and its phase error.
+
+    Returns the fitted centres and which elements are kept.
+    """
+    design = ctx.design
+    wf = design.mask.write_field
+    db_unit_nm = design.mask.db_unit_nm
+    ncell = len(ctx.cell_ids)
+    vmax = max(o.shape[1] for o in offsets)
+    padded = np.empty((len(sites), vmax, 2), np.int32)
+    for k, o in enumerate(offsets):  # pad with the last vertex (same hull) so all cells share one array
+        sel = np.flatnonzero(slot == k) if ncell > 1 else slice(None)
+        padded[sel, :o.shape[1]] = o
+        padded[sel, o.shape[1]:] = o[:, -1:, :]
+    fit = fit_write_fields(centres, padded, ctx.grid, mode=wf.straddle, max_shift_db=wf.max_shift_nm / db_unit_nm,
+                           min_gap_db=ctx.min_gap_db, active=active)
+    for key, val in (("straddling", fit.n_straddling), ("shifted", fit.n_shifted), ("dropped", fit.n_dropped),
+                     ("kept_straddling", fit.n_kept_straddling)):
+        out.wf_counts[key] = out.wf_counts.get(key, 0) + int(val)
+    moved = np.flatnonzero(np.any(fit.shift_db != 0, axis=1) & keep)
+    if moved.size:
+        shift_nm = np.hypot(*fit.shift_db[moved].T.astype(np.float64)) * db_unit_nm
+        out.worst_shift_nm = max(out.worst_shift_nm, float(shift_nm.max()))
+        gm = phase_gradient(design.terms, sites.x_um[moved], sites.y_um[moved],
+                            wavelength_nm=design.wavelength_nm, sigma=design.sigma,
+                            step_um=design.lattice.period_um * 1e-3)
+        err = shift_phase_error_rad(fit.shift_db[moved], gm, db_unit_nm=db_unit_nm)
+        out.worst_shift_phase = max(out.worst_shift_phase, float(np.max(err, initial=0.0)))
+    return fit.centres_db, fit.keep
 
 
 def _tile(rows, ctx: _TileContext) -> _TileOut:

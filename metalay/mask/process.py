@@ -438,15 +438,9 @@ def complement_tile(centres_db, offsets_db, region, box_db, *, max_vertices: int
         region_box = box
     else:
         region_box = shapely.intersection(region, box)
-    centres = np.asarray(centres_db, dtype=np.int64)
-    offsets = np.asarray(offsets_db)
-    absv = centres[:, None, :] + offsets.astype(np.int64)
-    lo = absv.min(axis=1)
-    hi = absv.max(axis=1)
-    sel = np.flatnonzero((hi[:, 0] > x0) & (lo[:, 0] < x1) & (hi[:, 1] > y0) & (lo[:, 1] < y1))
-    absv, lo, hi, cx = absv[sel], lo[sel], hi[sel], centres[sel, 0]
+    absv, lo, hi, cx = _elements_in_box(centres_db, offsets_db, (x0, y0, x1, y1))
     empty = ComplementTile(np.zeros(1, np.int64), np.zeros((0, 2), np.int64), 0.0, 0.0,
-                           0.0 if verify else math.nan, 0.0 if verify else math.nan, int(sel.size), 0)
+                           0.0 if verify else math.nan, 0.0 if verify else math.nan, int(cx.size), 0)
     if shapely.is_empty(region_box) or shapely.area(region_box) == 0:
         return empty
     cuts = cx[(cx > x0) & (cx < x1)]
@@ -470,26 +464,7 @@ def complement_tile(centres_db, offsets_db, region, box_db, *, max_vertices: int
         strips = shapely.box(xs[s0:s1], y0, xs[s0 + 1:s1 + 1], y1)
         if not rect:
             strips = shapely.intersection(strips, region_box)
-        ea = np.maximum(a, s0)
-        eb = np.minimum(b, s1)
-        cnt = np.maximum(eb - ea, 0)
-        has = cnt > 0
-        total = int(cnt.sum())
-        holes = np.empty(s1 - s0, dtype=object)
-        holes[:] = shapely.from_wkt("MULTIPOLYGON EMPTY")
-        if total:
-            owner = np.repeat(np.flatnonzero(has), cnt[has])
-            first = np.repeat(np.cumsum(cnt[has]) - cnt[has], cnt[has])
-            strip = np.repeat(ea[has], cnt[has]) + (np.arange(total) - first) - s0
-            order = np.argsort(strip, kind="stable")
-            strip, owner = strip[order], owner[order]
-            used, dense = np.unique(strip, return_inverse=True)
-            mps = shapely.multipolygons(elem_polys[owner], indices=dense)
-            bad = ~shapely.is_valid(mps)
-            for k in np.flatnonzero(bad):  # strips whose elements overlap or touch (rare): true union
-                mps[k] = shapely.union_all(shapely.get_parts(mps[k]))
-            holes[used] = mps
-        diff = shapely.difference(strips, holes)
+        diff = shapely.difference(strips, _strip_holes(elem_polys, a, b, s0, s1))
         parts, pid = shapely.get_parts(diff, return_index=True)
         nz = shapely.area(parts) > 0
         polys, ids = _hole_free(parts[nz], pid[nz], max_vertices)
@@ -508,7 +483,43 @@ def complement_tile(centres_db, offsets_db, region, box_db, *, max_vertices: int
     area = float(np.sum(shapely.area(_ragged_polygons(pieces_out))))
     nan = math.nan
     return ComplementTile(start, xy, area, area_t, xor_t if verify else nan,
-                          bound_t if verify else nan, int(sel.size), int(counts.max()))
+                          bound_t if verify else nan, int(cx.size), int(counts.max()))
+
+
+def _elements_in_box(centres_db, offsets_db, box_db):
+    """Absolute vertices, bounding boxes and centre x of the elements that reach into ``box_db``."""
+    x0, y0, x1, y1 = box_db
+    centres = np.asarray(centres_db, dtype=np.int64)
+    absv = centres[:, None, :] + np.asarray(offsets_db).astype(np.int64)
+    lo = absv.min(axis=1)
+    hi = absv.max(axis=1)
+    sel = np.flatnonzero((hi[:, 0] > x0) & (lo[:, 0] < x1) & (hi[:, 1] > y0) & (lo[:, 1] < y1))
+    return absv[sel], lo[sel], hi[sel], centres[sel, 0]
+
+
+def _strip_holes(elem_polys, a, b, s0: int, s1: int) -> np.ndarray:
+    """Per strip ``s0 <= s < s1``: the elements overlapping it (strips ``[a, b)`` per element) as one multipolygon,
+    a true union where elements overlap or touch; empty where there are none."""
+    ea = np.maximum(a, s0)
+    eb = np.minimum(b, s1)
+    cnt = np.maximum(eb - ea, 0)
+    has = cnt > 0
+    total = int(cnt.sum())
+    holes = np.empty(s1 - s0, dtype=object)
+    holes[:] = shapely.from_wkt("MULTIPOLYGON EMPTY")
+    if total:
+        owner = np.repeat(np.flatnonzero(has), cnt[has])
+        first = np.repeat(np.cumsum(cnt[has]) - cnt[has], cnt[has])
+        strip = np.repeat(ea[has], cnt[has]) + (np.arange(total) - first) - s0
+        order = np.argsort(strip, kind="stable")
+        strip, owner = strip[order], owner[order]
+        used, dense = np.unique(strip, return_inverse=True)
+        mps = shapely.multipolygons(elem_polys[owner], indices=dense)
+        bad = ~shapely.is_valid(mps)
+        for k in np.flatnonzero(bad):  # strips whose elements overlap or touch (rare): true union
+            mps[k] = shapely.union_all(shapely.get_parts(mps[k]))
+        holes[used] = mps
+    return holes
 
 
 def _ragged_polygons(rings: list[np.ndarray]) -> np.ndarray:

@@ -1129,119 +1129,168 @@ def compare_routes(design, settings: RouteSettings | None = None, *, routes=("id
     Swanson 1989, MIT Lincoln Laboratory TR 854 (sinc^2(1/N)); Goodman 2005, sec. 4.4 (binary gratings);
     Torner, Torres & Carrasco 2005, Opt. Express 13, 873 (spiral spectrum).
     """
-    import scipy.fft as sfft
+    grid = _compare_grid(design, settings or parse_routes(design), samples, workers)
+    rows = []
+    for r in routes:  # loop over routes (a handful)
+        route = _COMPARED_ROUTES.get(r)
+        if route is None:
+            raise DesignError(f"{design.source_path}: unknown route {r!r}; allowed "
+                              "ideal, metasurface, etch, fork, slm, orient")
+        rows.append(route(grid))
+    return tuple(rows)
 
-    from metalay.checks.grid import centered_axis, far_field, frequency_axis
-    from metalay.mask.mapping import geometric_rotation, quantise_rotation
-    from metalay.checks.oam import oam_spectrum
 
-    settings = settings or parse_routes(design)
+@dataclass(frozen=True, eq=False)
+class _CompareGrid:
+    """The common sample grid of :func:`compare_routes` and the design's target on it."""
+
+    design: object
+    settings: RouteSettings
+    n: int
+    step: float
+    ax: np.ndarray
+    xx: np.ndarray
+    yy: np.ndarray
+    inside: np.ndarray
+    phi: np.ndarray
+    f_tilt: np.ndarray
+    smooth: object        # tilt, lens and axicon phase (removed before the OAM spectrum), or 0.0
+    charge: int | None
+    centre: tuple
+    workers: int
+
+    @property
+    def n_in(self) -> float:
+        return float(self.inside.sum())
+
+
+def _compare_grid(design, settings: RouteSettings, samples, workers: int) -> _CompareGrid:
+    from metalay.checks.grid import centered_axis
+
     n = int(samples or settings.compare_samples)
     hx, hy = design.aperture.half_extent_um
     step = 2 * max(hx, hy) / n
     ax = centered_axis(n, step)
     xx, yy = np.meshgrid(ax, ax)
-    inside = _inside(design.aperture, xx, yy)
-    n_in = float(inside.sum())
-    phi = _phase_func(design)(xx, yy)
     lam = design.wavelength_nm
-    f_tilt = _tilt_frequency(design.terms, lam)
     smooth_terms = tuple(t for t in design.terms if isinstance(t, (Tilt, Lens, Axicon)))
     smooth = target_phase(smooth_terms, xx, yy, wavelength_nm=lam, sigma=design.sigma) if smooth_terms else 0.0
     charge, centre = net_charge(design)
+    return _CompareGrid(design, settings, n, step, ax, xx, yy, _inside(design.aperture, xx, yy),
+                        _phase_func(design)(xx, yy), _tilt_frequency(design.terms, lam), smooth, charge, centre,
+                        workers)
 
-    def figures(name, t, carrier_f, expected, note=""):
-        carrier = 2 * np.pi * (xx * carrier_f[0] + yy * carrier_f[1])
-        ref = np.exp(1j * (phi + carrier))
-        t = np.where(inside, t, 0)
-        eff = float(abs(np.vdot(ref[inside], t[inside])) ** 2 / (n_in * n_in))
-        f_lin = f_tilt + np.asarray(carrier_f)
-        fmag = float(np.hypot(*f_lin))
-        ff = None
+
+def _route_figures(g: _CompareGrid, name, t, carrier_f, expected, note="") -> RouteFigures:
+    """Efficiency against the target, first-order power fraction and OAM purity of transmission ``t``."""
+    import scipy.fft as sfft
+
+    from metalay.checks.grid import far_field, frequency_axis
+    from metalay.checks.oam import oam_spectrum
+
+    lam, n_in, inside, step, n = g.design.wavelength_nm, g.n_in, g.inside, g.step, g.n
+    carrier = 2 * np.pi * (g.xx * carrier_f[0] + g.yy * carrier_f[1])
+    ref = np.exp(1j * (g.phi + carrier))
+    t = np.where(inside, t, 0)
+    eff = float(abs(np.vdot(ref[inside], t[inside])) ** 2 / (n_in * n_in))
+    f_lin = g.f_tilt + np.asarray(carrier_f)
+    fmag = float(np.hypot(*f_lin))
+    ff = None
+    if fmag > 0:
+        res = far_field(t.astype(np.complex64), step, step, lam, pad_factor=2.0, cell_aperture=False,
+                        workers=g.workers)
+        win = ((res.fx_per_um[None, :] - f_lin[0]) ** 2 + (res.fy_per_um[:, None] - f_lin[1]) ** 2
+               < (0.5 * fmag) ** 2)
+        ff = float(res.power[win].sum() * res.near_power / n_in)
+    pur = None
+    if g.charge is not None:
+        b = t * np.exp(-1j * (g.smooth + carrier))
         if fmag > 0:
-            res = far_field(t.astype(np.complex64), step, step, lam, pad_factor=2.0, cell_aperture=False,
-                            workers=workers)
-            win = ((res.fx_per_um[None, :] - f_lin[0]) ** 2 + (res.fy_per_um[:, None] - f_lin[1]) ** 2
-                   < (0.5 * fmag) ** 2)
-            ff = float(res.power[win].sum() * res.near_power / n_in)
-        pur = None
-        if charge is not None:
-            b = t * np.exp(-1j * (smooth + carrier))
-            if fmag > 0:
-                m = int(sfft.next_fast_len(int(1.5 * n)))
-                spec = sfft.fft2(b, s=(m, m), workers=workers)
-                f = sfft.ifftshift(frequency_axis(m, step))
-                spec *= (f[None, :] ** 2 + f[:, None] ** 2) < (0.5 * fmag) ** 2
-                b = sfft.ifft2(spec, workers=workers)[:n, :n]
-            sp = oam_spectrum(b, ax, ax, center=centre, charges=range(charge - 12, charge + 13), workers=workers)
-            pur = sp.purity(charge)
-        return RouteFigures(name, eff, ff, pur, expected, note)
+            m = int(sfft.next_fast_len(int(1.5 * n)))
+            spec = sfft.fft2(b, s=(m, m), workers=g.workers)
+            f = sfft.ifftshift(frequency_axis(m, step))
+            spec *= (f[None, :] ** 2 + f[:, None] ** 2) < (0.5 * fmag) ** 2
+            b = sfft.ifft2(spec, workers=g.workers)[:n, :n]
+        sp = oam_spectrum(b, g.ax, g.ax, center=g.centre, charges=range(g.charge - 12, g.charge + 13),
+                          workers=g.workers)
+        pur = sp.purity(g.charge)
+    return RouteFigures(name, eff, ff, pur, expected, note)
 
-    rows = []
-    zero = np.zeros(2)
-    for r in routes:  # loop over routes (a handful)
-        if r == "ideal":
-            rows.append(figures("ideal", np.exp(1j * phi), zero, 1.0, "continuous target phase"))
-        elif r == "metasurface":
-            sx, sy = _lattice_sample(design, xx, yy)
-            theta = geometric_rotation(_phase_func(design)(sx, sy), design.sigma)
-            note = "ideal cells, geometric phase at lattice sites"
-            if design.mask.rotation_levels:
-                theta, _ = quantise_rotation(theta, design.mask.rotation_levels)
-                note += f", {design.mask.rotation_levels} rotation levels"
-            exp_ms = multilevel_efficiency(design.mask.rotation_levels) if design.mask.rotation_levels else None
-            rows.append(figures("metasurface", np.exp(2j * design.sigma * theta), zero, exp_ms, note))
-        elif r == "etch":
-            es = settings.etch
-            nsub = substrate_index(es.material, lam, index=es.index, where=design.source_path,
-                                   base_dir=settings.base_dir)
-            depths = etch_depths_nm(es.levels, lam, nsub)
-            e = etched_depth_nm(phi, es.levels, lam, nsub)
-            t = np.exp(1j * 2 * np.pi * (nsub - 1) * (depths.sum() - e) / lam)
-            rows.append(figures("etch", t, zero, multilevel_efficiency(es.levels),
-                                f"{es.levels} levels, n = {nsub:.4f}, phase from depth and index"))
-        elif r == "fork":
-            fs = settings.fork
-            fterms = _fork_terms(design, fs)
-            pf = target_phase(fterms, xx, yy, wavelength_nm=lam, sigma=design.sigma)
-            line = np.cos(pf) > math.cos(math.pi * fs.duty)
-            t = line.astype(np.complex128) if fs.kind == "amplitude" else np.where(line, -1.0, 1.0).astype(complex)
-            az = math.radians(fs.azimuth_deg)
-            cf = np.array([math.cos(az), math.sin(az)]) / fs.period_um
-            if fs.charge is not None:
-                rows.append(RouteFigures("fork", float("nan"), None, None,
-                                         binary_grating_efficiency(fs.kind, fs.duty),
-                                         "skipped: routes.fork.charge overrides the target"))
-                continue
-            if 2 * step > fs.period_um / 2:
-                rows.append(RouteFigures("fork", float("nan"), None, None, binary_grating_efficiency(fs.kind, fs.duty),
-                                         "skipped: compare grid too coarse for the fork period"))
-                continue
-            row = figures("fork", t, cf, binary_grating_efficiency(fs.kind, fs.duty),
-                          f"binary {fs.kind}, period {fs.period_um:g} um, duty {fs.duty:g}")
-            rows.append(row)
-        elif r == "slm":
-            im = slm_image(design, settings)
-            h, w = im.gray.shape
-            c = np.rint(xx / im.pitch_um + (w - 1) / 2).astype(np.int64)
-            rr = np.rint((h - 1) / 2 - yy / im.pitch_um).astype(np.int64)
-            on = (c >= 0) & (c < w) & (rr >= 0) & (rr < h)
-            t = np.where(on, np.exp(1j * im.phase_rad[np.clip(rr, 0, h - 1), np.clip(c, 0, w - 1)]), 0)
-            exp_slm = None if im.lut_source else multilevel_efficiency(2 ** im.bit_depth)
-            rows.append(figures("slm", t, im.carrier_f_per_um, exp_slm,
-                                f"{im.bit_depth}-bit, pitch {im.pitch_um:g} um" + (", LUT" if im.lut_source else "")))
-        elif r == "orient":
-            om = orientation_map(design, settings)
-            h, w = om.code.shape
-            c = np.clip(np.rint(xx / om.pitch_um + (w - 1) / 2).astype(np.int64), 0, w - 1)
-            rr = np.clip(np.rint((h - 1) / 2 - yy / om.pitch_um).astype(np.int64), 0, h - 1)
-            theta = om.code[rr, c].astype(np.float64) * np.pi / 65536
-            rows.append(figures("orient", np.exp(2j * design.sigma * theta), zero, None,
-                                f"half-wave retarder, pitch {om.pitch_um:g} um"))
-        else:
-            raise DesignError(f"{design.source_path}: unknown route {r!r}; allowed "
-                              "ideal, metasurface, etch, fork, slm, orient")
-    return tuple(rows)
+
+_ZERO = np.zeros(2)
+
+
+def _route_ideal(g: _CompareGrid) -> RouteFigures:
+    return _route_figures(g, "ideal", np.exp(1j * g.phi), _ZERO, 1.0, "continuous target phase")
+
+
+def _route_metasurface(g: _CompareGrid) -> RouteFigures:
+    from metalay.mask.mapping import geometric_rotation, quantise_rotation
+
+    design = g.design
+    sx, sy = _lattice_sample(design, g.xx, g.yy)
+    theta = geometric_rotation(_phase_func(design)(sx, sy), design.sigma)
+    note = "ideal cells, geometric phase at lattice sites"
+    levels = design.mask.rotation_levels
+    if levels:
+        theta, _ = quantise_rotation(theta, levels)
+        note += f", {levels} rotation levels"
+    exp_ms = multilevel_efficiency(levels) if levels else None
+    return _route_figures(g, "metasurface", np.exp(2j * design.sigma * theta), _ZERO, exp_ms, note)
+
+
+def _route_etch(g: _CompareGrid) -> RouteFigures:
+    design, es, lam = g.design, g.settings.etch, g.design.wavelength_nm
+    nsub = substrate_index(es.material, lam, index=es.index, where=design.source_path, base_dir=g.settings.base_dir)
+    depths = etch_depths_nm(es.levels, lam, nsub)
+    e = etched_depth_nm(g.phi, es.levels, lam, nsub)
+    t = np.exp(1j * 2 * np.pi * (nsub - 1) * (depths.sum() - e) / lam)
+    return _route_figures(g, "etch", t, _ZERO, multilevel_efficiency(es.levels),
+                          f"{es.levels} levels, n = {nsub:.4f}, phase from depth and index")
+
+
+def _route_fork(g: _CompareGrid) -> RouteFigures:
+    design, fs = g.design, g.settings.fork
+    pf = target_phase(_fork_terms(design, fs), g.xx, g.yy, wavelength_nm=design.wavelength_nm, sigma=design.sigma)
+    line = np.cos(pf) > math.cos(math.pi * fs.duty)
+    t = line.astype(np.complex128) if fs.kind == "amplitude" else np.where(line, -1.0, 1.0).astype(complex)
+    az = math.radians(fs.azimuth_deg)
+    cf = np.array([math.cos(az), math.sin(az)]) / fs.period_um
+    expected = binary_grating_efficiency(fs.kind, fs.duty)
+    if fs.charge is not None:
+        return RouteFigures("fork", float("nan"), None, None, expected,
+                            "skipped: routes.fork.charge overrides the target")
+    if 2 * g.step > fs.period_um / 2:
+        return RouteFigures("fork", float("nan"), None, None, expected,
+                            "skipped: compare grid too coarse for the fork period")
+    return _route_figures(g, "fork", t, cf, expected, f"binary {fs.kind}, period {fs.period_um:g} um, duty {fs.duty:g}")
+
+
+def _route_slm(g: _CompareGrid) -> RouteFigures:
+    im = slm_image(g.design, g.settings)
+    h, w = im.gray.shape
+    c = np.rint(g.xx / im.pitch_um + (w - 1) / 2).astype(np.int64)
+    rr = np.rint((h - 1) / 2 - g.yy / im.pitch_um).astype(np.int64)
+    on = (c >= 0) & (c < w) & (rr >= 0) & (rr < h)
+    t = np.where(on, np.exp(1j * im.phase_rad[np.clip(rr, 0, h - 1), np.clip(c, 0, w - 1)]), 0)
+    exp_slm = None if im.lut_source else multilevel_efficiency(2 ** im.bit_depth)
+    return _route_figures(g, "slm", t, im.carrier_f_per_um, exp_slm,
+                          f"{im.bit_depth}-bit, pitch {im.pitch_um:g} um" + (", LUT" if im.lut_source else ""))
+
+
+def _route_orient(g: _CompareGrid) -> RouteFigures:
+    om = orientation_map(g.design, g.settings)
+    h, w = om.code.shape
+    c = np.clip(np.rint(g.xx / om.pitch_um + (w - 1) / 2).astype(np.int64), 0, w - 1)
+    rr = np.clip(np.rint((h - 1) / 2 - g.yy / om.pitch_um).astype(np.int64), 0, h - 1)
+    theta = om.code[rr, c].astype(np.float64) * np.pi / 65536
+    return _route_figures(g, "orient", np.exp(2j * g.design.sigma * theta), _ZERO, None,
+                          f"half-wave retarder, pitch {om.pitch_um:g} um")
+
+
+#: The routes :func:`compare_routes` knows, by name.
+_COMPARED_ROUTES = {"ideal": _route_ideal, "metasurface": _route_metasurface, "etch": _route_etch,
+                    "fork": _route_fork, "slm": _route_slm, "orient": _route_orient}
 
 
 def format_table(rows) -> list[str]:

@@ -894,23 +894,63 @@ def tolerance_study(design, out_dir=None, *, settings: ToleranceSettings = Toler
     ----------
     Ruze 1966, Proc. IEEE 54, 633.
     """
-    from metalay.util.atomic import atomic_write_bytes, ensure_dir
-    from metalay.mask.compile import compile_mask
     from metalay.cells.library import load_library
     from metalay.util.progress import progress
 
     settings.validate()
     n_workers = max(1, int(workers or os.cpu_count() or 1))
     notes = [EFFICIENCY_NOTE]
+    mask = _mask_for_study(design, out_dir, mask)
+    lib = load_library(design.library)
+    model = site_model(mask, lib, design, max_side=max_side, pad_factor=pad_factor)
+    cd_ok = _check_tolerance_inputs(design, lib, model, settings, notes)
+    nominal = evaluate_sites(model, workers=n_workers)
+    nominal.pop("oam_weights", None)
+    seeds = np.random.SeedSequence(int(settings.seed)).spawn(settings.samples)
+    kinds = [k for k in settings.kinds() if not (k == "cd_bias" and not cd_ok)]
+    sweep_plan = []
+    if settings.purity_threshold is not None:
+        sweep_plan = [(k, float(s)) for k in kinds for s in settings.sweep_levels]
+    total = settings.samples + len(sweep_plan) * settings.sweep_samples
+    bar = progress(total=total, desc="tolerance: samples", enabled=show_progress, unit="sample")
+    try:
+        samples = _run_samples(model, settings, seeds, cd_ok, n_workers, bar)
+        sweeps = _run_sweeps(model, settings, sweep_plan, cd_ok, n_workers, bar)
+    finally:
+        bar.close()
+    clipped = sum(1 for s in samples if s["clipped"])
+    if clipped:
+        notes.append(f"{clipped} samples drew a CD bias beyond the sizes the library covers: clipped to its end "
+                     "(their spread is understated)")
+    thresholds = {kind: _threshold_crossing(settings.purity_threshold, kind, rows) for kind, rows in sweeps.items()}
+    stats = _stats(samples)
+    result_json = {"format": "metalay.tolerance-study", "format_version": 1, "design": design.name,
+                   "library": lib.name, "mask": Path(mask).name, "settings": settings.__dict__,
+                   "nominal": nominal, "statistics": stats, "thresholds": thresholds, "notes": notes,
+                   "elements": len(model.decoded), "caution": optics.SAFETY_NOTE}
+    files = {}
+    if out_dir is not None:
+        files = _write_tolerance_files(out_dir, result_json, samples, nominal, thresholds, make_plots)
+    return ToleranceResult(nominal=nominal, samples=tuple(samples), statistics=stats, thresholds=thresholds,
+                           files=files, notes=tuple(notes), settings=settings)
+
+
+def _mask_for_study(design, out_dir, mask):
+    """The given mask, or the design compiled into ``<out_dir>/mask`` (checks off)."""
+    from metalay.mask.compile import compile_mask
+
     if mask is None:
         if out_dir is None:
             raise StudyError("tolerance: give out_dir (the mask is compiled there) or an existing mask")
         res = compile_mask(design, Path(out_dir) / "mask", show_progress=False)
-        mask = res.files.get("gds") or res.files.get("oas")
-    elif not Path(mask).is_file():
+        return res.files.get("gds") or res.files.get("oas")
+    if not Path(mask).is_file():
         raise StudyError(f"tolerance: mask = {str(mask)!r} not found")
-    lib = load_library(design.library)
-    model = site_model(mask, lib, design, max_side=max_side, pad_factor=pad_factor)
+    return mask
+
+
+def _check_tolerance_inputs(design, lib, model: SiteModel, settings: ToleranceSettings, notes: list) -> bool:
+    """Refuse what cannot be evaluated; note what is skipped. Returns whether CD bias can be evaluated."""
     if not lib.has_responses:
         notes.append(f"library {lib.name} has no optical responses: ideal half-wave cells (t_long = 1, t_short = "
                      "-1) assumed; CD bias and detuning cannot be evaluated")
@@ -924,71 +964,57 @@ def tolerance_study(design, out_dir=None, *, settings: ToleranceSettings = Toler
     if settings.purity_threshold is not None and model.target.charge is None:
         raise StudyError(f"{design.source_path}: purity_threshold needs a design with one topological charge about "
                          "the beam axis")
-    nominal = evaluate_sites(model, workers=n_workers)
-    nominal.pop("oam_weights", None)
-    root = np.random.SeedSequence(int(settings.seed))
-    seeds = root.spawn(settings.samples)
-    kinds = [k for k in settings.kinds() if not (k == "cd_bias" and not cd_ok)]
-    sweep_plan = []
-    if settings.purity_threshold is not None:
-        sweep_seeds = np.random.SeedSequence([int(settings.seed), 1]).spawn(settings.sweep_samples)
-        sweep_plan = [(k, float(s)) for k in kinds for s in settings.sweep_levels]
-    total = settings.samples + len(sweep_plan) * settings.sweep_samples
-    bar = progress(total=total, desc="tolerance: samples", enabled=show_progress, unit="sample")
-    try:
-        samples = _run_samples(model, settings, seeds, cd_ok, n_workers, bar)
-        sweeps = {}
-        for kind, scale in sweep_plan:
-            st = settings.only(kind, scale)
-            got = _run_samples(model, st, sweep_seeds, cd_ok, n_workers, bar)
-            pur = np.array([g["purity"] for g in got], float)
-            sweeps.setdefault(kind, []).append({"scale": scale, "magnitude": _magnitude(st, kind),
-                                               "purity_p5": float(np.percentile(pur, 5)),
-                                               "purity_median": float(np.median(pur))})
-    finally:
-        bar.close()
-    clipped = sum(1 for s in samples if s["clipped"])
-    if clipped:
-        notes.append(f"{clipped} samples drew a CD bias beyond the sizes the library covers: clipped to its end "
-                     "(their spread is understated)")
-    thresholds = {}
-    for kind, rows in sweeps.items():
-        thr = settings.purity_threshold
-        mags = [r["magnitude"] for r in rows]
-        p5 = [r["purity_p5"] for r in rows]
-        at = None
-        for k in range(1, len(rows)):
-            if p5[k] < thr <= p5[k - 1]:
-                f = (p5[k - 1] - thr) / (p5[k - 1] - p5[k])
-                at = mags[k - 1] + f * (mags[k] - mags[k - 1])
-                break
-        if at is None and p5 and p5[0] < thr:
-            at = 0.0
-        thresholds[kind] = {"threshold": thr, "unit": _KIND_UNITS[kind][1], "tolerance": at,
-                            "beyond_sweep": at is None, "sweep_max": max(mags) if mags else None,
-                            "criterion": "5th percentile of purity", "sweep": rows}
-    stats = _stats(samples)
-    files = {}
-    result_json = {"format": "metalay.tolerance-study", "format_version": 1, "design": design.name,
-                   "library": lib.name, "mask": Path(mask).name, "settings": settings.__dict__,
-                   "nominal": nominal, "statistics": stats, "thresholds": thresholds, "notes": notes,
-                   "elements": len(model.decoded), "caution": optics.SAFETY_NOTE}
-    if out_dir is not None:
-        out = ensure_dir(out_dir)
-        files["tolerance.json"] = atomic_write_bytes(out / "tolerance.json", _json_bytes(result_json))
-        cols = ("sample", "cd_bias_nm", "detune_nm", "missing", "converted", "leakage", "designed_spot_efficiency",
-                "designed_mode_efficiency", "purity")
-        rows = [{"sample": k, **s} for k, s in enumerate(samples)]
-        files["tolerance_samples.csv"] = atomic_write_bytes(out / "tolerance_samples.csv",
-                                                            _csv_text(cols, rows).encode())
-        if make_plots:
-            files["tolerance_hist.png"] = atomic_write_bytes(out / "tolerance_hist.png",
-                                                             _plot_hist(samples, nominal))
-            if thresholds:
-                files["tolerance_sweep.png"] = atomic_write_bytes(out / "tolerance_sweep.png",
-                                                                  _plot_sweep(thresholds))
-    return ToleranceResult(nominal=nominal, samples=tuple(samples), statistics=stats, thresholds=thresholds,
-                           files=files, notes=tuple(notes), settings=settings)
+    return cd_ok
+
+
+def _run_sweeps(model: SiteModel, settings: ToleranceSettings, sweep_plan, cd_ok: bool, n_workers: int,
+                bar) -> dict:
+    """Purity percentiles per error kind and scale (the same seeds at every scale)."""
+    sweeps = {}
+    if not sweep_plan:
+        return sweeps
+    sweep_seeds = np.random.SeedSequence([int(settings.seed), 1]).spawn(settings.sweep_samples)
+    for kind, scale in sweep_plan:
+        st = settings.only(kind, scale)
+        got = _run_samples(model, st, sweep_seeds, cd_ok, n_workers, bar)
+        pur = np.array([g["purity"] for g in got], float)
+        sweeps.setdefault(kind, []).append({"scale": scale, "magnitude": _magnitude(st, kind),
+                                           "purity_p5": float(np.percentile(pur, 5)),
+                                           "purity_median": float(np.median(pur))})
+    return sweeps
+
+
+def _threshold_crossing(thr: float, kind: str, rows: list) -> dict:
+    """Error magnitude at which the 5th percentile of purity falls below ``thr`` (linear between sweep points)."""
+    mags = [r["magnitude"] for r in rows]
+    p5 = [r["purity_p5"] for r in rows]
+    at = None
+    for k in range(1, len(rows)):
+        if p5[k] < thr <= p5[k - 1]:
+            f = (p5[k - 1] - thr) / (p5[k - 1] - p5[k])
+            at = mags[k - 1] + f * (mags[k] - mags[k - 1])
+            break
+    if at is None and p5 and p5[0] < thr:
+        at = 0.0
+    return {"threshold": thr, "unit": _KIND_UNITS[kind][1], "tolerance": at, "beyond_sweep": at is None,
+            "sweep_max": max(mags) if mags else None, "criterion": "5th percentile of purity", "sweep": rows}
+
+
+def _write_tolerance_files(out_dir, result_json: dict, samples, nominal, thresholds, make_plots: bool) -> dict:
+    """``tolerance.json``, ``tolerance_samples.csv`` and the histograms (and sweep plot) in ``out_dir``."""
+    from metalay.util.atomic import atomic_write_bytes, ensure_dir
+
+    out = ensure_dir(out_dir)
+    files = {"tolerance.json": atomic_write_bytes(out / "tolerance.json", _json_bytes(result_json))}
+    cols = ("sample", "cd_bias_nm", "detune_nm", "missing", "converted", "leakage", "designed_spot_efficiency",
+            "designed_mode_efficiency", "purity")
+    rows = [{"sample": k, **s} for k, s in enumerate(samples)]
+    files["tolerance_samples.csv"] = atomic_write_bytes(out / "tolerance_samples.csv", _csv_text(cols, rows).encode())
+    if make_plots:
+        files["tolerance_hist.png"] = atomic_write_bytes(out / "tolerance_hist.png", _plot_hist(samples, nominal))
+        if thresholds:
+            files["tolerance_sweep.png"] = atomic_write_bytes(out / "tolerance_sweep.png", _plot_sweep(thresholds))
+    return files
 
 
 # ----------------------------------------------------------------------------------------------------------------
