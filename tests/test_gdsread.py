@@ -160,7 +160,7 @@ def test_flat_file_from_independent_writer(tmp_path):
     p = tmp_path / "flat.gds"
     p.write_bytes(data)
     fp = read_mask(p)
-    assert fp.db_unit_m == pytest.approx(1e-9, rel=1e-15) and fp.user_unit_m == pytest.approx(1e-6, rel=1e-15)
+    assert fp.db_unit_nm == pytest.approx(1.0, rel=1e-15) and fp.user_unit_m == pytest.approx(1e-6, rel=1e-15)
     want = sorted([canon(1, 0, f) for f in fins] + [canon(1, 2, tri), canon(5, 0, tri)])
     assert polys_of(fp) == want
     # layer filter: by (layer, datatype) and by layer

@@ -56,7 +56,7 @@ class ShapeTable:
     is_rect: np.ndarray
 
 
-def _quads(v: np.ndarray, db_nm: float):
+def _quads(v: np.ndarray, db_unit_nm: float):
     """Centre (nm), rotation, long and short size (nm) of quadrilaterals ``v`` (K, 4, 2) integer database units.
 
     Edge differences are taken in integers (exact) and the sizes in float32; ``e0 - e2`` and ``e1 - e3`` (twice
@@ -64,8 +64,8 @@ def _quads(v: np.ndarray, db_nm: float):
     """
     x0, x1, x2, x3 = (v[:, k, 0] for k in range(4))
     y0, y1, y2, y3 = (v[:, k, 1] for k in range(4))
-    cx = (x0 + x1 + x2 + x3) * (0.25 * db_nm)
-    cy = (y0 + y1 + y2 + y3) * (0.25 * db_nm)
+    cx = (x0 + x1 + x2 + x3) * (0.25 * db_unit_nm)
+    cy = (y0 + y1 + y2 + y3) * (0.25 * db_unit_nm)
     f = np.float32
     la = np.hypot((x1 - x0).astype(f), (y1 - y0).astype(f)) + np.hypot((x3 - x2).astype(f), (y3 - y2).astype(f))
     lb = np.hypot((x2 - x1).astype(f), (y2 - y1).astype(f)) + np.hypot((x0 - x3).astype(f), (y0 - y3).astype(f))
@@ -75,7 +75,7 @@ def _quads(v: np.ndarray, db_nm: float):
     rot = np.arctan2(dy, dx)
     rot[rot < 0] += np.pi
     rot[rot >= np.pi] -= np.pi
-    scale = f(0.5 * db_nm)
+    scale = f(0.5 * db_unit_nm)
     return cx, cy, rot, np.maximum(la, lb) * scale, np.minimum(la, lb) * scale
 
 
@@ -95,7 +95,7 @@ def _ngons(v: np.ndarray):
     return c, rot, a, b
 
 
-def polygon_shapes(start: np.ndarray, xy_db: np.ndarray, db_nm: float) -> ShapeTable:
+def polygon_shapes(start: np.ndarray, xy_db: np.ndarray, db_unit_nm: float) -> ShapeTable:
     """Measure every polygon (centre, rotation, sizes) from a ``start``/``xy_db`` vertex table.
 
     Parameters
@@ -104,7 +104,7 @@ def polygon_shapes(start: np.ndarray, xy_db: np.ndarray, db_nm: float) -> ShapeT
         Polygon ``k`` has vertices ``xy_db[start[k]:start[k+1]]``.
     xy_db : ndarray (N, 2) int64
         Vertices in database units.
-    db_nm : float
+    db_unit_nm : float
         Database unit in nanometres.
 
     Returns
@@ -131,7 +131,7 @@ def polygon_shapes(start: np.ndarray, xy_db: np.ndarray, db_nm: float) -> ShapeT
         v_all = xy_db.reshape(-1, 4, 2)
         for c0 in range(0, p, _CHUNK):
             sl = slice(c0, c0 + _CHUNK)
-            x[sl], y[sl], rot[sl], a[sl], b[sl] = _quads(v_all[sl], db_nm)
+            x[sl], y[sl], rot[sl], a[sl], b[sl] = _quads(v_all[sl], db_unit_nm)
         return ShapeTable(x, y, rot, a, b, np.ones(p, bool))
     for n in np.unique(counts):  # loop over distinct vertex counts (short axis)
         idx = np.flatnonzero(counts == n)
@@ -139,9 +139,9 @@ def polygon_shapes(start: np.ndarray, xy_db: np.ndarray, db_nm: float) -> ShapeT
             sel = idx[c0:c0 + _CHUNK]
             v = xy_db[start[sel][:, None] + np.arange(n)[None, :]]
             if n == 4:
-                x[sel], y[sel], rot[sel], a[sel], b[sel] = _quads(v, db_nm)
+                x[sel], y[sel], rot[sel], a[sel], b[sel] = _quads(v, db_unit_nm)
             else:
-                c, r, aa, bb = _ngons(v.astype(np.float64) * db_nm)
+                c, r, aa, bb = _ngons(v.astype(np.float64) * db_unit_nm)
                 x[sel], y[sel], rot[sel], a[sel], b[sel] = c[:, 0], c[:, 1], r, aa, bb
     return ShapeTable(x, y, rot, a, b, counts == 4)
 
@@ -349,8 +349,7 @@ def decode_sites(flat, cells, *, period_nm: float, lattice: str = "square", laye
     if n_poly == 0:
         raise MaskReadError(f"{where}: no polygons on structure layer {layer[0]}/{layer[1]}")
     sub = flat.select(sel) if n_poly < flat.count else flat
-    db_nm = flat.db_unit_m * 1e9
-    shapes = polygon_shapes(sub.start, sub.xy_db, db_nm)
+    shapes = polygon_shapes(sub.start, sub.xy_db, flat.db_unit_nm)
     cs = cell_shape_table(cells)
     best, err = _match(shapes, cs, bias_nm)
     bad = ~(err <= size_tol_nm)

@@ -1134,7 +1134,7 @@ class _Decoded:
     t_long: np.ndarray
     t_short: np.ndarray
     period_nm: float
-    zoom: tuple            # (flat polygons near the centre or None, centre (um), half width (um), db unit (um))
+    zoom: tuple            # (flat polygons near the centre or None, centre (um), half width (um), db unit (nm))
 
 
 def _read_and_decode(mask_path: Path, lib, design, target, opt: OpticsOptions, notes: list,
@@ -1181,12 +1181,11 @@ def _read_and_decode(mask_path: Path, lib, design, target, opt: OpticsOptions, n
     # a small window of polygons for the layout figure, then free the vertex table
     zoom_c = target.center_um
     zoom_hw = max(1.5, 4 * period_nm * 1e-3)
-    db_um = flat.db_unit_m * 1e6
-    first = flat.xy_db[flat.start[:-1]] * db_um
+    first = flat.xy_db[flat.start[:-1]] * (flat.db_unit_nm / 1000.0)
     win = (np.abs(first[:, 0] - zoom_c[0]) < zoom_hw + 1) & (np.abs(first[:, 1] - zoom_c[1]) < zoom_hw + 1)
     zoom_flat = flat.select(win) if opt.make_plots else None
     return _Decoded(mask_path, lib, design, target, no_target, tuple(layer), bias_nm, decoded, t_long, t_short,
-                    period_nm, (zoom_flat, zoom_c, zoom_hw, db_um))
+                    period_nm, (zoom_flat, zoom_c, zoom_hw, flat.db_unit_nm))
 
 
 def _decimation_note(ev: Evaluation, target: OpticsTarget, m: int, side: int, max_side: int) -> str:
@@ -1357,7 +1356,7 @@ def _images(dec: _Decoded, ev: Evaluation, figures: dict, fringe_image, opt: Opt
     from metalay.checks import plots
 
     target, near, ff = dec.target, ev.near, ev.far
-    zoom_flat, zoom_c, zoom_hw, db_um = dec.zoom
+    zoom_flat, zoom_c, zoom_hw, db_unit_nm = dec.zoom
     images = {}
     sm = max(1, int(np.ceil(max(near.designed.shape) / 700)))
     xs, ys = near.x_um[::sm], near.y_um[::sm]
@@ -1371,7 +1370,7 @@ def _images(dec: _Decoded, ev: Evaluation, figures: dict, fringe_image, opt: Opt
                               plots.phase_map(np.angle(conv), xs, ys, title="mask-derived phase",
                                               valid=valid & (np.abs(conv) > 0)))
     images["3_layout_zoom"] = (f"mask polygons within {zoom_hw:g} um of ({zoom_c[0]:g}, {zoom_c[1]:g}) um",
-                               plots.layout_zoom(zoom_flat.start, zoom_flat.xy_db, db_um, center_um=zoom_c,
+                               plots.layout_zoom(zoom_flat.start, zoom_flat.xy_db, db_unit_nm, center_um=zoom_c,
                                                  half_width_um=zoom_hw))
     lam_um = target.wavelength_nm * 1e-3
     ext = min(1.0, max(3 * np.hypot(*target.direction), 40 * lam_um / ev.diameter_um,

@@ -83,15 +83,16 @@ def phase_map(phase_rad: np.ndarray, x_um: np.ndarray, y_um: np.ndarray, *, titl
 
 
 @_styled
-def layout_zoom(start: np.ndarray, xy_db: np.ndarray, db_um: float, *, center_um=(0.0, 0.0), half_width_um=2.0,
+def layout_zoom(start: np.ndarray, xy_db: np.ndarray, db_unit_nm: float, *, center_um=(0.0, 0.0), half_width_um=2.0,
                 title: str = "mask layout (zoom)", max_polygons: int = 5000) -> bytes:
     """Polygons of the mask inside a square window, drawn as outlines over a light fill."""
     counts = np.diff(start)
-    first = xy_db[start[:-1]] * db_um
+    um_per_db = db_unit_nm / 1000.0
+    first = xy_db[start[:-1]] * um_per_db
     near = (np.abs(first[:, 0] - center_um[0]) < half_width_um + 1) & \
            (np.abs(first[:, 1] - center_um[1]) < half_width_um + 1)
     idx = np.flatnonzero(near)[:max_polygons]
-    polys = [xy_db[start[k]:start[k] + counts[k]] * db_um for k in idx]  # a few hundred polygons for the figure
+    polys = [xy_db[start[k]:start[k] + counts[k]] * um_per_db for k in idx]  # a few hundred polygons for the figure
     fig = _figure(4.6, 4.6)
     ax = fig.add_subplot()
     ax.add_collection(PolyCollection(polys, facecolors="#9ec5d8", edgecolors="#1f3b4d", linewidths=0.6))

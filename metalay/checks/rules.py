@@ -362,7 +362,7 @@ class RuleReport:
 
     mask: str
     sha256: str | None
-    db_unit_m: float
+    db_unit_nm: float
     polygons: int
     rules_name: str
     results: tuple[RuleResult, ...]
@@ -378,7 +378,7 @@ class RuleReport:
 
     def to_dict(self, max_listed: int = 100) -> dict:
         return {"format": "metalay.rule-report", "format_version": 1, "mask": self.mask, "sha256": self.sha256,
-                "db_unit_m": self.db_unit_m, "polygons": self.polygons, "rules": self.rules_name,
+                "db_unit_m": self.db_unit_nm / 1e9, "polygons": self.polygons, "rules": self.rules_name,
                 "clean": self.clean, "total_violations": self.total_violations,
                 "results": [r.to_dict(max_listed) for r in self.results]}
 
@@ -1078,11 +1078,11 @@ def check_mask(mask, rules: RuleSet, *, method: str = "auto", cell: str | None =
             except OSError as exc:
                 raise MaskReadError(f"{name}: cannot read file for its checksum ({exc.strerror or exc})") from exc
         timings.append(("sha256 (after read)", time.perf_counter() - t1))
-    db_unit_nm = flat.db_unit_m * 1e9
+    db_unit_nm = flat.db_unit_nm
     results: list[RuleResult] = []
     for lr in rules.layers:
         results.extend(_check_layer(flat, lr, rules, db_unit_nm, method, timings))
-    return RuleReport(name, sha, flat.db_unit_m, flat.count, rules.name, tuple(results), tuple(timings))
+    return RuleReport(name, sha, flat.db_unit_nm, flat.count, rules.name, tuple(results), tuple(timings))
 
 
 @dataclass(eq=False)
@@ -1486,9 +1486,8 @@ def write_marker_gds(report: RuleReport, flat: FlatPolygons, path, *, marker_lay
     """
     from metalay.io.writer import GdsStream
 
-    db_nm = flat.db_unit_m * 1e9
-    db_um = flat.db_unit_m * 1e6
-    hw = max(1.0, marker_half_width_nm / db_nm)
+    db_unit_nm = flat.db_unit_nm
+    hw = max(1.0, marker_half_width_nm / db_unit_nm)
     involved = []
     per_n: dict[int, list] = {}
     n_markers = 0
@@ -1509,7 +1508,7 @@ def write_marker_gds(report: RuleReport, flat: FlatPolygons, path, *, marker_lay
                 per_n.setdefault(int(n), []).append((marker_layer, dt,
                                                      sub.xy_db[sub.start[k][:, None] + np.arange(n)]))
         else:
-            seg = v.segment_um[:m] / db_um
+            seg = v.segment_um[:m] / (db_unit_nm / 1000.0)
             p0, p1 = seg[:, :2], seg[:, 2:]
             dvec = p1 - p0
             ln = np.hypot(dvec[:, 0], dvec[:, 1])
@@ -1524,7 +1523,7 @@ def write_marker_gds(report: RuleReport, flat: FlatPolygons, path, *, marker_lay
         n_markers += m
     inv = np.unique(np.concatenate(involved)) if involved else np.zeros(0, np.int64)
     ctx = flat.select(np.isin(np.arange(flat.count), inv))
-    with GdsStream(path, "MARKERS", db_unit_nm=db_nm) as gs:
+    with GdsStream(path, "MARKERS", db_unit_nm=db_unit_nm) as gs:
         cnt = np.diff(ctx.start)
         for n in np.unique(cnt):
             k = np.flatnonzero(cnt == n)

@@ -56,12 +56,12 @@ def run(args) -> int:
     design, settings = _settings(design, args)
     out = args.output or Path("out") / f"{Path(args.design).stem}-routes"
     name = design.name
-    db = design.mask.db_unit_nm
+    db_unit_nm = design.mask.db_unit_nm
     action = args.route_action
     written = []
     if action in ("etch", "all"):
         e = R.etch_masks(design, settings, with_level_areas=settings.etch.levels <= 16)
-        written += R.write_etch(e, out, name, split=settings.etch.split, db_unit_nm=db)
+        written += R.write_etch(e, out, name, split=settings.etch.split, db_unit_nm=db_unit_nm)
         print(f"etch: {e.levels} levels = {len(e.masks)} masks, {e.material}, n = {e.index:.5f} at "
               f"{e.wavelength_nm:g} nm")
         for j, (d, (ly, dt), m, a) in enumerate(zip(e.depths_nm, e.layers, e.masks, e.mask_area_um2), start=1):
@@ -82,7 +82,7 @@ def run(args) -> int:
             print(f"  warning: {w}")
     if action in ("fork", "all"):
         f = R.fork_grating(design, settings)
-        written += R.write_fork(f, out, name, db_unit_nm=db)
+        written += R.write_fork(f, out, name, db_unit_nm=db_unit_nm)
         print(f"fork: {f.kind} grating, period {f.period_um:g} um, duty {f.duty:g}, charge {f.charge}, "
               f"{len(f.rings)} polygons on layer {f.layer[0]}/{f.layer[1]}")
         if f.etch_depth_nm:

@@ -72,8 +72,9 @@ class FlatPolygons:
         Polygon ``k`` has vertices ``xy_db[start[k]:start[k+1]]``; the closing vertex is not repeated.
     xy_db : np.ndarray, shape (N, 2), int64
         Vertex coordinates in database units.
-    db_unit_m : float
-        Size of the database unit in metres (1e-9 for a 1 nm grid).
+    db_unit_nm : float
+        Size of the database unit in nanometres (1.0 for a 1 nm grid); converted once from the file's metres when
+        the file is read.
     user_unit_m : float
         Size of the user unit in metres (1e-6 for micrometres).
     """
@@ -82,7 +83,7 @@ class FlatPolygons:
     datatype: np.ndarray
     start: np.ndarray
     xy_db: np.ndarray
-    db_unit_m: float
+    db_unit_nm: float
     user_unit_m: float
 
     @property
@@ -102,11 +103,11 @@ class FlatPolygons:
         vmask = np.repeat(mask, counts)
         start = np.zeros(int(mask.sum()) + 1, dtype=np.int64)
         np.cumsum(counts[mask], out=start[1:])
-        return FlatPolygons(self.layer[mask], self.datatype[mask], start, self.xy_db[vmask], self.db_unit_m,
+        return FlatPolygons(self.layer[mask], self.datatype[mask], start, self.xy_db[vmask], self.db_unit_nm,
                             self.user_unit_m)
 
     @staticmethod
-    def from_arrays(layer, datatype, counts, xy_db, *, db_unit_m: float = 1e-9,
+    def from_arrays(layer, datatype, counts, xy_db, *, db_unit_nm: float = 1.0,
                     user_unit_m: float = 1e-6) -> "FlatPolygons":
         """Build from per-polygon vertex ``counts`` (shape (P,)) and concatenated ``xy_db`` (shape (N, 2))."""
         counts = np.asarray(counts, dtype=np.int64)
@@ -117,7 +118,7 @@ class FlatPolygons:
             raise GeometryError(f"vertex counts sum to {start[-1]} but xy_db has {xy.shape[0]} rows")
         return FlatPolygons(np.broadcast_to(np.asarray(layer, np.int32), counts.shape).copy(),
                             np.broadcast_to(np.asarray(datatype, np.int32), counts.shape).copy(),
-                            start, xy, float(db_unit_m), float(user_unit_m))
+                            start, xy, float(db_unit_nm), float(user_unit_m))
 
 
 # ----------------------------------------------------------------------------------------------------------------
@@ -858,7 +859,12 @@ def _flatten(lib: _Library, cell: str | None, max_elements: int, max_vertices: i
     assert out.ip == total_p and out.iv == total_v
     start = np.zeros(total_p + 1, np.int64)
     np.cumsum(out.counts, out=start[1:])
-    return FlatPolygons(out.layer, out.datatype, start, out.xy, float(lib.db_unit_m), float(lib.user_unit_m))
+    return FlatPolygons(out.layer, out.datatype, start, out.xy, _nm_from_m(lib.db_unit_m), float(lib.user_unit_m))
+
+
+def _nm_from_m(db_unit_m: float) -> float:
+    """The one place where the file's database unit (metres, as GDSII and OASIS store it) becomes nanometres."""
+    return float(db_unit_m) * 1e9
 
 
 # ----------------------------------------------------------------------------------------------------------------
@@ -1014,7 +1020,7 @@ def mask_info(path, *, max_elements: int = DEFAULT_MAX_ELEMENTS, max_vertices: i
         bbox = [int(lo[0]), int(lo[1]), int(hi[0]), int(hi[1])]
     else:
         bbox = None
-    um = flat.db_unit_m / 1e-6
+    um = lib.db_unit_m / 1e-6
     cells = []
     for name in sorted(lib.cells):
         c = lib.cells[name]
@@ -1027,7 +1033,7 @@ def mask_info(path, *, max_elements: int = DEFAULT_MAX_ELEMENTS, max_vertices: i
         "format": lib.fmt,
         "size_bytes": os.path.getsize(path),
         "sha256": file_sha256(path),
-        "db_unit_m": flat.db_unit_m,
+        "db_unit_m": lib.db_unit_m,  # the file's own value (output key kept)
         "user_unit_m": flat.user_unit_m,
         "cells": cells,
         "top_cells": sorted(tops),

@@ -882,7 +882,7 @@ def _check_resources(design: Design, out: Path, outlines, *, stream_gds: bool, n
                               "folder")
 
 
-def _field_library(name, shape_list, members, lut, layer, grid, extras, db):
+def _field_library(name, shape_list, members, lut, layer, grid, extras, db_unit_nm):
     """gdstk library with one cell per write field: split every shape group by the field of its sites."""
     field_groups: dict = {}
     for (slot, shp), centres in zip(shape_list, members):  # distinct shapes (~1e3), not sites
@@ -896,7 +896,7 @@ def _field_library(name, shape_list, members, lut, layer, grid, extras, db):
             key = (int(part_f[0, 0]), int(part_f[0, 1]))
             field_groups.setdefault(key, []).append((layer, int(lut[slot]), shp, part_c))
     names = {key: field_cell_name(name, *key) for key in field_groups}
-    return build_gdstk_fields(name, field_groups, extras, db_unit_nm=db, field_names=names)
+    return build_gdstk_fields(name, field_groups, extras, db_unit_nm=db_unit_nm, field_names=names)
 
 
 def _rounded(obj):
@@ -917,7 +917,7 @@ def _estimate_sites(design: Design) -> float:
 def _extras(design: Design, library: CellLibrary, lut=None, classes=None):
     """Frame, label and alignment marks (a handful of polygons)."""
     mask = design.mask
-    db = mask.db_unit_nm
+    db_unit_nm = mask.db_unit_nm
     hw, hh = design.aperture.half_extent_um
 
     def dt(purpose):
@@ -925,13 +925,13 @@ def _extras(design: Design, library: CellLibrary, lut=None, classes=None):
 
     fl, _ = mask.layer("frame")
     polys = frame_polygons(hw, hh, margin_um=mask.frame_margin_um, width_um=mask.frame_width_um,
-                           db_unit_nm=db, layer=fl, datatype=dt("frame"))
+                           db_unit_nm=db_unit_nm, layer=fl, datatype=dt("frame"))
     if mask.label:
         ll, _ = mask.layer("label")
         text = f"{design.name} {_design_hash(design, library)[:8]}"
         x = -hw - mask.frame_margin_um - mask.frame_width_um
         y = -hh - mask.frame_margin_um - mask.frame_width_um - 1.5 * mask.label_height_um
-        polys += text_polygons(text, height_um=mask.label_height_um, x_um=x, y_um=y, db_unit_nm=db,
+        polys += text_polygons(text, height_um=mask.label_height_um, x_um=x, y_um=y, db_unit_nm=db_unit_nm,
                                layer=ll, datatype=dt("label"))
     if mask.marks is not None:
         mk = mask.marks
@@ -939,9 +939,9 @@ def _extras(design: Design, library: CellLibrary, lut=None, classes=None):
             design.aperture, frame_margin_um=mask.frame_margin_um, frame_width_um=mask.frame_width_um,
             size_um=mk.size_um, gap_um=mk.gap_um)
         marks = alignment_marks(mk.kind, positions, size_um=mk.size_um, line_width_um=mk.line_width_um,
-                                db_unit_nm=db, layer=mask.layer("marks")[0], datatype=dt("marks"))
+                                db_unit_nm=db_unit_nm, layer=mask.layer("marks")[0], datatype=dt("marks"))
         keepout = frame_region_db(design.aperture, margin_um=mask.frame_margin_um + mask.frame_width_um,
-                                  db_unit_nm=db)
+                                  db_unit_nm=db_unit_nm)
         check_marks_clear(marks, keepout, where=design.source_path)
         polys += marks
     return polys

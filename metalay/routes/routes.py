@@ -600,17 +600,17 @@ def etch_masks(design, settings: RouteSettings | None = None, *, with_level_area
     k = depths.size
     phi = _phase_func(design)
     x, y = _raster_axes(design, settings.raster_um)
-    db = design.mask.db_unit_nm
-    ap, ap_err = geo.aperture_geometry(design.aperture, tolerance_um=db * 5e-4)
+    db_unit_nm = design.mask.db_unit_nm
+    ap, ap_err = geo.aperture_geometry(design.aperture, tolerance_um=db_unit_nm * 5e-4)
     cores, charges = _cores(design.terms)
     core_r = float(np.max(_core_radii(charges, 2 ** (k - 1), settings.raster_um), initial=0.0))
     masks, areas, perims, err = [], [], [], 0.0
     for j in range(1, k + 1):  # loop over masks
         g, e = geo.contour_region(_mask_func(phi, j), x, y, exclude_xy=cores,
                                   exclude_radius_um=_core_radii(charges, 2 ** (j - 1), settings.raster_um))
-        clipped, rings = _geometry_to_rings(g, ap, db)
+        clipped, rings = _geometry_to_rings(g, ap, db_unit_nm)
         masks.append(tuple(rings))
-        areas.append(_rings_area_um2(rings, db))
+        areas.append(_rings_area_um2(rings, db_unit_nm))
         perims.append(float(clipped.boundary.difference(ap.boundary.buffer(1e-6)).length) if not clipped.is_empty
                       else 0.0)
         err = max(err, e)
@@ -629,7 +629,7 @@ def etch_masks(design, settings: RouteSettings | None = None, *, with_level_area
         efficiency_expected=multilevel_efficiency(es.levels), masks=tuple(masks),
         layers=tuple((es.layer + j, es.datatype) for j in range(k)), mask_area_um2=np.array(areas),
         level_area_um2=level_areas, aperture_area_um2=float(ap.area), boundary_error_um=err,
-        aperture_error_um=float(ap_err), snap_error_um=db * 1e-3 * math.sqrt(0.5), core_radius_um=core_r,
+        aperture_error_um=float(ap_err), snap_error_um=db_unit_nm * 1e-3 * math.sqrt(0.5), core_radius_um=core_r,
         raster_um=settings.raster_um, perimeter_um=np.array(perims), warnings=tuple(warnings))
 
 
@@ -761,12 +761,12 @@ def fork_grating(design, settings: RouteSettings | None = None) -> ForkGrating:
     phi = _phase_func(design, terms)
     h = math.cos(math.pi * fs.duty)
     x, y = _raster_axes(design, settings.raster_um)
-    db = design.mask.db_unit_nm
-    ap, _ = geo.aperture_geometry(design.aperture, tolerance_um=db * 5e-4)
+    db_unit_nm = design.mask.db_unit_nm
+    ap, _ = geo.aperture_geometry(design.aperture, tolerance_um=db_unit_nm * 5e-4)
     cores, charges = _cores(terms)
     g, err = geo.contour_region(lambda a, b: np.cos(phi(a, b)) - h, x, y, exclude_xy=cores,
                                 exclude_radius_um=_core_radii(charges, 1.0, settings.raster_um))
-    clipped, rings = _geometry_to_rings(g, ap, db)
+    clipped, rings = _geometry_to_rings(g, ap, db_unit_nm)
     gaps = geo._polygonal(ap.difference(clipped))
     rules = {"min_line_um": fs.min_line_um, "min_gap_um": fs.min_gap_um,
              "nominal_line_um": fs.duty * fs.period_um, "nominal_gap_um": (1 - fs.duty) * fs.period_um,
@@ -789,7 +789,7 @@ def fork_grating(design, settings: RouteSettings | None = None) -> ForkGrating:
         warnings.append(f"fork: nominal line {rules['nominal_line_um']:g} um / gap {rules['nominal_gap_um']:g} um "
                         f"below the minimum {fs.min_line_um:g} / {fs.min_gap_um:g} um")
     return ForkGrating(kind=fs.kind, period_um=fs.period_um, azimuth_deg=fs.azimuth_deg, duty=fs.duty, charge=charge,
-                       rings=tuple(rings), layer=(fs.layer, fs.datatype), line_area_um2=_rings_area_um2(rings, db),
+                       rings=tuple(rings), layer=(fs.layer, fs.datatype), line_area_um2=_rings_area_um2(rings, db_unit_nm),
                        aperture_area_um2=float(ap.area), boundary_error_um=err,
                        efficiency_expected=binary_grating_efficiency(fs.kind, fs.duty), etch_depth_nm=depth,
                        rules=rules, terms=terms, warnings=tuple(warnings))
