@@ -70,8 +70,8 @@ def _child(mode: str, folder: str, diameter: float, formats: str) -> None:
         import gdstk
 
         from metalay.design.lattice import Aperture, Lattice, sample_sites
-        from metalay.mask.mapping import geometric_rotation
         from metalay.design.phase import Lens, Vortex, target_phase
+        from metalay.mask.mapping import geometric_rotation
 
         sites = sample_sites(Aperture("circle", diameter_um=diameter), Lattice("square", 325.0))
         phi = target_phase((Vortex(3), Lens(5000.0)), sites.x_um, sites.y_um, wavelength_nm=532.0)

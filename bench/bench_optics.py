@@ -1,9 +1,10 @@
 """Benchmark of the optical check on a ~1e7-fin mask against a gdstk read with a per-polygon Python loop.
 
-Mask: the bundled tio2-nanofin-532 fins (270 x 70 nm) on a 325 nm square lattice inside a 1.15 mm circular aperture, rotated by
-theta = phi / 2 for a charge-3 vortex plus a 4 degree tilt at 532 nm (input spin +1), each fin its own 4-vertex
-BOUNDARY at integer nm (1 nm database unit), vertices snapped half-to-even about integer centres, written flat with
-the project's streaming GDSII writer (metalay.writer.GdsStream, the records metalay compile writes).
+Mask: the bundled tio2-nanofin-532 fins (270 x 70 nm) on a 325 nm square lattice inside a 1.15 mm circular
+aperture, rotated by theta = phi / 2 for a charge-3 vortex plus a 4 degree tilt at 532 nm (input spin +1), each fin
+its own 4-vertex BOUNDARY at integer nm (1 nm database unit), vertices snapped half-to-even about integer centres,
+written flat with the project's streaming GDSII writer (metalay.io.writer.GdsStream, the records metalay compile
+writes).
 
 ours      metalay.optics.check_optics: vectorised read (gdsread) + decode + near field at full site resolution +
           far field (FFT, pad 2) + OAM spectrum at full resolution + spots, fringe reading, figures and report.

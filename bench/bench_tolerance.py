@@ -55,11 +55,11 @@ def _library(folder: Path):
 
 
 def main() -> int:
-    from metalay.checks import optics
-    from metalay.studies import study
     from metalay.api import compile_design
     from metalay.cells.library import load_library
+    from metalay.checks import optics
     from metalay.design.spec import parse_design
+    from metalay.studies import study
 
     ap = argparse.ArgumentParser()
     ap.add_argument("--samples", type=int, default=200)

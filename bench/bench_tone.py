@@ -27,15 +27,15 @@ import numpy as np
 import shapely
 
 from metalay.cells.cellkinds import outline_nm
-from metalay.designs import __file__ as _designs_init
-from metalay.mask.layout import element_offsets, element_polygons, snap_centres
 from metalay.cells.library import load_library
 from metalay.design.lattice import Aperture, sample_sites
-from metalay.mask.mapping import assign_cells
 from metalay.design.phase import target_phase
-from metalay.mask.process import aperture_region_db, complement_bands, complement_tile, pieces_by_vertex_count
 from metalay.design.spec import load_design
+from metalay.designs import __file__ as _designs_init
 from metalay.io.writer import MAX_GDS_VERTICES, GdsStream
+from metalay.mask.layout import element_offsets, element_polygons, snap_centres
+from metalay.mask.mapping import assign_cells
+from metalay.mask.process import aperture_region_db, complement_bands, complement_tile, pieces_by_vertex_count
 
 
 def _peak_mb() -> float:
@@ -97,7 +97,7 @@ def main(argv=None) -> int:
                 tg = time.perf_counter()
                 tile = complement_tile(c, o, region, band.box_db, verify=verify)
                 t_geom += time.perf_counter() - tg
-                for v, verts in pieces_by_vertex_count(tile):
+                for _nv, verts in pieces_by_vertex_count(tile):
                     gs.boundaries(1, 0, verts)
                 n_poly += tile.count
                 n_vert += int(tile.xy_db.shape[0])

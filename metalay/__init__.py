@@ -1,24 +1,25 @@
 """metalay: geometric-phase (Pancharatnam-Berry) metasurface masks from design files.
 
-Architecture map (one module per pipeline stage, plain data between stages)::
+Architecture map (one subpackage per family of stages, plain data between stages; imports point down this list,
+never up; DEVELOPERS.md has the long map)::
 
-    spec.load_design(path)            TOML -> Design (frozen, validated; errors name file, key, range)
-    phase.target_phase(terms, x, y)   sum of phase terms (vortex, tilt, lens, axicon, qplate, multiplex, map)
-    lattice.sample_sites(ap, lat)     site centres of whole cells inside the aperture (tile = band of rows)
-    library.load_library(name)        unit-cell library (JSON + CSV): cells, rules, responses, provenance
-    mapping.assign_cells(phi, lib)    cell + rotation per site: theta = sigma*phi/2 mod pi, optional K levels
-    cellkinds.outline_nm(cell)        outline of a cell kind at rotation 0
-    layout.element_offsets(...)       rotated outlines snapped to the database grid; grouping; frame; label
-    writer.GdsStream / gdstk          flat GDSII stream writer; OASIS and hierarchical GDSII via gdstk
-    compile.compile_mask(d, out)      the pipeline, tile by tile, + manifest.json
-    gdsread.read_mask(path)           vectorised mask reader (GDSII record walk, OASIS via gdstk)
-    rules.check_mask(...)             design-rule check (shapely STRtree + lattice fast path)
-    optics.check_optics(...)          near field from the written mask -> far field, OAM spectrum, metrics
-    rcwa / materials / cellbuild      unit-cell solver, optical constants, library builder
-    cli.main                          thin command line over all of the above
+    errors.py, validate.py   one exception root with exit codes; the one TOML validation helper
+    util/                    atomic output, progress bars, allocator setting, lazy package names
+    design/                  spec.load_design (TOML -> Design), phase.target_phase, lattice.sample_sites
+    cells/                   library.load_library, cellkinds.outline_nm, rcwa.solve, materials, cellbuild
+    io/                      gdsread.read_mask (GDSII/OASIS -> FlatPolygons), writer.GdsStream (+ gdstk builders)
+    mask/                    mapping.assign_cells, layout (snapping), process (bias, tone, write fields, marks),
+                             compile.compile_mask(design, out, checks=...) with steps.MaskCheck
+    checks/                  rules.check_mask, decode, grid, oam, fringes, optics.check_optics, plots, report,
+                             steps.default_checks (the checks a compile runs)
+    routes/                  etched plates, fork gratings, SLM images, orientation maps, route comparison
+    studies/                 library comparison and fabrication-tolerance Monte Carlo
+    api.py                   compile_design = compile_mask + default checks (notebooks and the command line)
+    cli/                     thin command line over all of the above (metalay.cli:main)
 
 Conventions: exp(-i omega t); a plane wave to +z is exp(i k z); |sigma> = (x + i sigma y)/sqrt(2); a cell rotated
-by theta has Jones matrix R(-theta) diag(t_long, t_short) R(theta). Units are in names (wavelength_nm, ...).
+by theta has Jones matrix R(-theta) diag(t_long, t_short) R(theta). Units are in names (wavelength_nm,
+db_unit_nm, ...).
 """
 
 __version__ = "0.1.0"

@@ -5,11 +5,10 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from metalay.errors import CellBuildError
-from metalay.cells.cellbuild import (SweepResult, build_library, import_responses, load_build_spec,
-                               pick_propagation)
+from metalay.cells.cellbuild import SweepResult, build_library, import_responses, load_build_spec, pick_propagation
 from metalay.cells.library import load_library, save_library
 from metalay.cells.rcwa import Layer, Stack, rect_pattern, solve
+from metalay.errors import CellBuildError
 
 SPECS = Path(__file__).resolve().parent.parent / "libraries" / "specs"
 

@@ -7,13 +7,14 @@ import numpy as np
 import pytest
 import shapely
 
-from conftest import SMALL_DESIGN, write_toml
 from metalay.api import compile_design
-from metalay.io.gdsread import read_mask
-from metalay.design.lattice import Aperture
 from metalay.cells.library import load_library
-from metalay.mask.process import WriteFieldGrid, aperture_region_db, straddles_write_field
+from metalay.design.lattice import Aperture
 from metalay.design.spec import load_design
+from metalay.io.gdsread import read_mask
+from metalay.mask.process import WriteFieldGrid, aperture_region_db, straddles_write_field
+
+from conftest import SMALL_DESIGN, write_toml
 
 
 def _compile(tmp_path, data, name):

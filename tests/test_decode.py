@@ -5,10 +5,10 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
+from metalay.cells.library import CellSpec
 from metalay.checks import decode
 from metalay.errors import MaskReadError
 from metalay.io.gdsread import FlatPolygons, read_mask
-from metalay.cells.library import CellSpec
 
 FIN = CellSpec(id="fin", kind="nanofin", layer="TiO2", dims_nm=(("length_nm", 250.0), ("width_nm", 85.0)))
 SMALL = CellSpec(id="fin2", kind="nanofin", layer="TiO2", dims_nm=(("length_nm", 200.0), ("width_nm", 60.0)))

@@ -1,11 +1,13 @@
 """Bad input: every malformed design gives a one-line error naming file and key, exit code 2, and no output."""
 
 import copy
+
 import numpy as np
 import pytest
 
-from conftest import SMALL_DESIGN, write_toml
 from metalay.cli import main
+
+from conftest import SMALL_DESIGN, write_toml
 
 
 def _set(d, path, value):

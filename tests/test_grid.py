@@ -82,7 +82,7 @@ def test_vortex_ring_profile_matches_hankel_integral():
         iy = ff.v.size // 2
         rho = ff.fx_per_um[ff.fx_per_um.size // 2:][:60]
         fft_profile = ff.power[iy, ff.fx_per_um.size // 2:][:60]
-        hankel = np.array([integrate.quad(lambda r: special.jv(charge, 2 * np.pi * p * r) * r, 0, a,
+        hankel = np.array([integrate.quad(lambda r, p=p, charge=charge: special.jv(charge, 2 * np.pi * p * r) * r, 0, a,
                                           limit=200)[0] for p in rho])
         df = ff.fx_per_um[1] - ff.fx_per_um[0]
         area = inside.sum() * pitch ** 2  # sampled disk area (staircase edge)

@@ -7,8 +7,16 @@ from hypothesis import given
 from hypothesis import strategies as st
 from scipy.spatial import cKDTree
 
-from metalay.design.lattice import (Aperture, Lattice, aperture_area_um2, cell_area_um2, cell_vertices_um, row_range,
-                             sample_sites, site_count)
+from metalay.design.lattice import (
+    Aperture,
+    Lattice,
+    aperture_area_um2,
+    cell_area_um2,
+    cell_vertices_um,
+    row_range,
+    sample_sites,
+    site_count,
+)
 
 
 def test_square_aperture_exact_count():

@@ -3,8 +3,8 @@
 import numpy as np
 import pytest
 
-from metalay.errors import MaterialError
 from metalay.cells.materials import get_material, malitson_silica_index
+from metalay.errors import MaterialError
 
 
 def test_fused_silica_nd_line():
@@ -18,7 +18,7 @@ def test_fused_silica_formula_matches_database_page():
     ours = malitson_silica_index(wl)
     db = get_material("SiO2-database").index(wl).real
     assert np.max(np.abs(ours - db)) < 1e-6
-    # Source: Malitson 1965 table: n = 1.45702 at 632.8 nm (value also in /work/shared/measured-facts.md)
+    # Source: Malitson 1965, J. Opt. Soc. Am. 55, 1205 (table of measured indices): n = 1.45702 at 632.8 nm
     assert abs(malitson_silica_index(632.8) - 1.45702) < 2e-5
 
 

@@ -4,8 +4,8 @@
 import numpy as np
 import pytest
 
-from metalay.checks import optics
 from metalay.cells.library import CellLibrary, CellSpec
+from metalay.checks import optics
 from metalay.design.spec import parse_design
 
 LAM = 532.0

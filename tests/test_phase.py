@@ -5,15 +5,15 @@ import pytest
 from hypothesis import given
 from hypothesis import strategies as st
 
-from metalay.design.lattice import Aperture, Lattice, sample_sites
-from metalay.mask.mapping import assign_cells, geometric_rotation, quantise_rotation, wrap_pi
 from metalay.cells.library import load_library
+from metalay.design.lattice import Aperture, Lattice, sample_sites
 from metalay.design.phase import Axicon, Channel, Lens, Multiplex, QPlate, Tilt, Vortex, target_phase
+from metalay.mask.mapping import assign_cells, geometric_rotation, quantise_rotation, wrap_pi
 
 
 def rot(t):
     c, s = np.cos(t), np.sin(t)
-    return np.array([[c, s], [-s, c]])  # R(theta) in the design-notes convention J = R(-t) D R(t)
+    return np.array([[c, s], [-s, c]])  # R(theta) in the README's convention J = R(-t) D R(t)
 
 
 def jones_cell(theta, t_long, t_short):

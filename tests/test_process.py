@@ -10,17 +10,33 @@ import shapely
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from metalay.errors import DesignError, GeometryError, LibraryError
-from metalay.design.lattice import Aperture, Lattice, sample_sites
-from metalay.mask.layout import element_offsets, snap_centres
 from metalay.cells.library import CellLibrary, CellSpec
-from metalay.mask.process import (WriteFieldGrid, alignment_marks, aperture_region_db, babinet_slot_library,
-                             babinet_slot_response, bias_outline_nm, biased_dims_nm, check_marks_clear,
-                             complement_bands, complement_tile, default_mark_positions_um, dose_datatype_lut,
-                             field_cell_name, field_index, find_cell_at_dims, fit_write_fields,
-                             offset_convex_polygons, pieces_by_vertex_count, shift_phase_error_rad,
-                             straddles_write_field)
+from metalay.design.lattice import Aperture, Lattice, sample_sites
+from metalay.errors import DesignError, GeometryError, LibraryError
 from metalay.io.writer import MAX_GDS_VERTICES, GdsStream
+from metalay.mask.layout import element_offsets, snap_centres
+from metalay.mask.process import (
+    WriteFieldGrid,
+    alignment_marks,
+    aperture_region_db,
+    babinet_slot_library,
+    babinet_slot_response,
+    bias_outline_nm,
+    biased_dims_nm,
+    check_marks_clear,
+    complement_bands,
+    complement_tile,
+    default_mark_positions_um,
+    dose_datatype_lut,
+    field_cell_name,
+    field_index,
+    find_cell_at_dims,
+    fit_write_fields,
+    offset_convex_polygons,
+    pieces_by_vertex_count,
+    shift_phase_error_rad,
+    straddles_write_field,
+)
 
 SQ2 = math.sqrt(2.0)
 

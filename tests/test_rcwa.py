@@ -41,7 +41,8 @@ def test_multilayer_matches_tmm(theta_deg, patterned_path):
 
 
 def test_single_slab_airy():
-    # Source: Born and Wolf, Principles of Optics, sec. 1.6.4: slab transmission t = t12 t23 e^{i b}/(1 + r12 r23 e^{2ib})
+    # Source: Born and Wolf, Principles of Optics, sec. 1.6.4: slab transmission
+    # t = t12 t23 e^{i b}/(1 + r12 r23 e^{2ib})
     wl, n, d = 800.0, 2.0, 173.0
     b = 2 * np.pi * n * d / wl
     r12, r23 = (1 - n) / (1 + n), (n - 1.5) / (n + 1.5)

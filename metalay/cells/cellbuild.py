@@ -37,9 +37,9 @@ from pathlib import Path
 
 import numpy as np
 
-from metalay.errors import CellBuildError, LibraryError, MetalayError
 from metalay.cells.materials import get_material
 from metalay.cells.rcwa import Layer, Stack, ellipse_pattern, rect_pattern, solve
+from metalay.errors import CellBuildError, LibraryError, MetalayError
 from metalay.validate import TomlTable, load_toml
 
 __all__ = ["BuildSpec", "SweepResult", "load_build_spec", "sweep", "pick_geometric",

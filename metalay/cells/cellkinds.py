@@ -10,8 +10,8 @@ import math
 
 import numpy as np
 
-from metalay.errors import LibraryError
 from metalay.cells.library import CellSpec
+from metalay.errors import LibraryError
 
 __all__ = ["outline_nm", "polygon_vertex_count", "is_rotation_invariant"]
 

@@ -27,8 +27,8 @@ from pathlib import Path
 
 import numpy as np
 
-from metalay.util.atomic import atomic_write_bytes
 from metalay.errors import LibraryError
+from metalay.util.atomic import atomic_write_bytes
 
 __all__ = [
     "CELL_KINDS",

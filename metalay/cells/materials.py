@@ -22,7 +22,7 @@ from pathlib import Path
 
 import numpy as np
 
-from metalay.errors import MaterialError, MetalayError
+from metalay.errors import MaterialError
 
 __all__ = ["Material", "get_material", "material_names", "malitson_silica_index"]
 

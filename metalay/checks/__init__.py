@@ -1,3 +1,41 @@
-"""metalay.checks."""
+"""Checks of a written mask: design rules and the optical check, with their reports.
 
-__all__: list[str] = []
+==============  ==========================================================================  =======================
+module          stage                                                                       public entry
+==============  ==========================================================================  =======================
+``rules.py``    design rules on flat polygons (STRtree path + lattice fast path, equal),    ``check_mask``,
+                rules files, JSON report, marker GDSII                                      ``load_rules``
+``decode.py``   flat polygons -> lattice site, cell, rotation                               ``decode_sites``
+``grid.py``     the FFT-centred grid, far field with angular axes, angular spectrum         ``far_field``
+``oam.py``      OAM (spiral) spectrum: polar resampling + azimuthal FFT                     ``oam_spectrum``
+``fringes.py``  simulated interferogram and an independent reading of the charge            ``read_charge``
+``optics.py``   optical check: Jones algebra per site -> near field -> far field, OAM,      ``check_optics``,
+                spots, crosstalk, lens; one evaluation path shared with the studies         ``evaluate_elements``
+``plots.py``    deterministic PNG figures                                                   ``png_bytes``
+``report.py``   the single-page HTML report                                                 ``render_html``
+``steps.py``    the checks a compile runs, as ``MaskCheck`` steps                           ``default_checks``
+==============  ==========================================================================  =======================
+
+Imports: design, cells, io, mask (never :mod:`metalay.mask.compile`), util.
+"""
+
+from metalay.util._lazy import lazy_entries
+
+_ENTRIES = {
+    "check_mask": "rules",
+    "load_rules": "rules",
+    "parse_rules": "rules",
+    "RuleSet": "rules",
+    "decode_sites": "decode",
+    "far_field": "grid",
+    "oam_spectrum": "oam",
+    "read_charge": "fringes",
+    "check_optics": "optics",
+    "OpticsOptions": "optics",
+    "evaluate_elements": "optics",
+    "target_from_design": "optics",
+    "render_html": "report",
+    "default_checks": "steps",
+}
+__all__ = sorted(_ENTRIES)
+__getattr__, __dir__ = lazy_entries(__name__, _ENTRIES)

@@ -40,8 +40,8 @@ from scipy import ndimage
 
 from metalay.checks import fringes, grid, oam
 from metalay.checks.decode import DecodedSites, decode_sites
-from metalay.util._memory import keep_freed_memory
 from metalay.errors import MetalayError
+from metalay.util._memory import keep_freed_memory
 
 __all__ = [
     "SAFETY_NOTE",
@@ -1297,7 +1297,7 @@ def _channel_figures(dec: _Decoded, ev: Evaluation, opt: OpticsOptions, figures:
     """Per-channel OAM purity in the far-field spots and the crosstalk matrix of a multiplexed design."""
     target, ff, radius_u = dec.target, ev.far, ev.radius_u
     ch_oam = []
-    for k, (lc, uc, vc) in enumerate(target.channels):
+    for lc, uc, vc in target.channels:
         cols = np.flatnonzero(np.abs(ff.u - uc) <= radius_u + 3 * ff.du)
         rows = np.flatnonzero(np.abs(ff.v - vc) <= radius_u + 3 * ff.dv)
         sub = ff.field[rows[0]:rows[-1] + 1, cols[0]:cols[-1] + 1]

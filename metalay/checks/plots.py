@@ -17,7 +17,7 @@ from matplotlib.colors import LogNorm, Normalize
 from matplotlib.figure import Figure
 
 __all__ = ["png_bytes", "phase_map", "layout_zoom", "far_field_map", "oam_bars", "crosstalk_map",
-           "interferogram_map", "focal_profile", "PHASE_CMAP", "INTENSITY_CMAP"]
+           "interferogram_map", "focal_profile", "PHASE_CMAP", "INTENSITY_CMAP", "new_figure", "styled"]
 
 #: Our colour choices: a cyclic map for phase, a perceptual map for intensity.
 PHASE_CMAP = "twilight_shifted"
@@ -27,7 +27,8 @@ HIGHLIGHT_COLOUR = "#d9822b"
 _RC = {"svg.hashsalt": "metalay", "font.size": 9, "axes.titlesize": 10, "figure.dpi": 100}
 
 
-def _figure(w_in=5.0, h_in=4.0):
+def new_figure(w_in=5.0, h_in=4.0) -> Figure:
+    """A figure of ``w_in`` x ``h_in`` inches drawn by the Agg canvas (no pyplot state)."""
     fig = Figure(figsize=(w_in, h_in), dpi=100)
     FigureCanvasAgg(fig)
     return fig
@@ -40,7 +41,8 @@ def png_bytes(fig: Figure, *, dpi: int = 100) -> bytes:
     return buf.getvalue()
 
 
-def _styled(fn):
+def styled(fn):
+    """Run ``fn`` with matplotlib's defaults plus metalay's fixed style (deterministic output)."""
     def wrapper(*args, **kwargs):
         with matplotlib.rc_context(rc={**matplotlib.rcParamsDefault, **_RC}):
             return fn(*args, **kwargs)
@@ -61,7 +63,7 @@ def _shrink(a: np.ndarray, max_pixels: int, *, mean: bool):
     return a[:ny, :nx].reshape(ny // m, m, nx // m, m).mean(axis=(1, 3)), m
 
 
-@_styled
+@styled
 def phase_map(phase_rad: np.ndarray, x_um: np.ndarray, y_um: np.ndarray, *, title: str, valid=None,
               max_pixels: int = 700) -> bytes:
     """Wrapped phase (-pi..pi] as an image; ``valid`` (bool, same shape) blanks samples outside the aperture."""
@@ -69,7 +71,7 @@ def phase_map(phase_rad: np.ndarray, x_um: np.ndarray, y_um: np.ndarray, *, titl
     if valid is not None:
         ph = np.where(valid, ph, np.nan)
     ph, m = _shrink(ph, max_pixels, mean=False)
-    fig = _figure(5.2, 4.2)
+    fig = new_figure(5.2, 4.2)
     ax = fig.add_subplot()
     im = ax.imshow(ph, origin="lower", cmap=PHASE_CMAP, vmin=-np.pi, vmax=np.pi, interpolation="nearest",
                    extent=[x_um[0], x_um[-1], y_um[0], y_um[-1]])
@@ -82,7 +84,7 @@ def phase_map(phase_rad: np.ndarray, x_um: np.ndarray, y_um: np.ndarray, *, titl
     return png_bytes(fig)
 
 
-@_styled
+@styled
 def layout_zoom(start: np.ndarray, xy_db: np.ndarray, db_unit_nm: float, *, center_um=(0.0, 0.0), half_width_um=2.0,
                 title: str = "mask layout (zoom)", max_polygons: int = 5000) -> bytes:
     """Polygons of the mask inside a square window, drawn as outlines over a light fill."""
@@ -93,7 +95,7 @@ def layout_zoom(start: np.ndarray, xy_db: np.ndarray, db_unit_nm: float, *, cent
            (np.abs(first[:, 1] - center_um[1]) < half_width_um + 1)
     idx = np.flatnonzero(near)[:max_polygons]
     polys = [xy_db[start[k]:start[k] + counts[k]] * um_per_db for k in idx]  # a few hundred polygons for the figure
-    fig = _figure(4.6, 4.6)
+    fig = new_figure(4.6, 4.6)
     ax = fig.add_subplot()
     ax.add_collection(PolyCollection(polys, facecolors="#9ec5d8", edgecolors="#1f3b4d", linewidths=0.6))
     ax.set_xlim(center_um[0] - half_width_um, center_um[0] + half_width_um)
@@ -105,7 +107,7 @@ def layout_zoom(start: np.ndarray, xy_db: np.ndarray, db_unit_nm: float, *, cent
     return png_bytes(fig)
 
 
-@_styled
+@styled
 def far_field_map(power: np.ndarray, u: np.ndarray, v: np.ndarray, *, title: str = "far field", log: bool = True,
                   extent_u: float | None = None, marks=None, max_pixels: int = 700, dynamic_range_db: float = 50.0
                   ) -> bytes:
@@ -116,7 +118,7 @@ def far_field_map(power: np.ndarray, u: np.ndarray, v: np.ndarray, *, title: str
         power = power[rows[0]:rows[-1] + 1, cols[0]:cols[-1] + 1]
         u, v = u[cols[0]:cols[-1] + 1], v[rows[0]:rows[-1] + 1]
     img, m = _shrink(np.asarray(power, dtype=np.float64), max_pixels, mean=True)
-    fig = _figure(5.2, 4.2)
+    fig = new_figure(5.2, 4.2)
     ax = fig.add_subplot()
     top = float(img.max()) if img.size and img.max() > 0 else 1.0
     norm = LogNorm(vmin=top * 10 ** (-dynamic_range_db / 10), vmax=top) if log else Normalize(0, top)
@@ -134,12 +136,12 @@ def far_field_map(power: np.ndarray, u: np.ndarray, v: np.ndarray, *, title: str
     return png_bytes(fig)
 
 
-@_styled
+@styled
 def oam_bars(charges, weights, *, design_charge=None, title: str = "OAM spectrum") -> bytes:
     """Bar chart of power per topological charge (designed charge highlighted)."""
     charges = np.asarray(charges)
     weights = np.asarray(weights, dtype=np.float64)
-    fig = _figure(6.4, 3.6)
+    fig = new_figure(6.4, 3.6)
     ax, ax_log = fig.subplots(1, 2, gridspec_kw={"width_ratios": [1, 1]})
     colours = [HIGHLIGHT_COLOUR if design_charge is not None and c == design_charge else BAR_COLOUR for c in charges]
     step = 1 if charges.size <= 9 else (2 if charges.size <= 13 else 5)
@@ -157,12 +159,12 @@ def oam_bars(charges, weights, *, design_charge=None, title: str = "OAM spectrum
     return png_bytes(fig)
 
 
-@_styled
+@styled
 def crosstalk_map(matrix_db, charges, *, title: str = "channel crosstalk (dB, row-normalised)") -> bytes:
     """Heat map of the crosstalk matrix in dB with the values written in the cells."""
     m = np.asarray(matrix_db, dtype=np.float64)
     m = np.where(np.isfinite(m), m, -99.0)
-    fig = _figure(4.6, 4.0)
+    fig = new_figure(4.6, 4.0)
     ax = fig.add_subplot()
     im = ax.imshow(m, cmap="viridis", vmin=max(-60.0, float(m.min())), vmax=0.0)
     for (r, c), val in np.ndenumerate(m):
@@ -177,12 +179,12 @@ def crosstalk_map(matrix_db, charges, *, title: str = "channel crosstalk (dB, ro
     return png_bytes(fig)
 
 
-@_styled
+@styled
 def interferogram_map(intensity: np.ndarray, x_um, y_um, *, title: str = "interferogram", max_pixels: int = 700
                       ) -> bytes:
     """Grey-scale fringe pattern."""
     img, m = _shrink(np.asarray(intensity, dtype=np.float64), max_pixels, mean=False)
-    fig = _figure(4.8, 4.2)
+    fig = new_figure(4.8, 4.2)
     ax = fig.add_subplot()
     ax.imshow(img, origin="lower", cmap="gray", interpolation="nearest", extent=[x_um[0], x_um[-1], y_um[0], y_um[-1]])
     ax.set_xlabel("x (um)")
@@ -191,14 +193,14 @@ def interferogram_map(intensity: np.ndarray, x_um, y_um, *, title: str = "interf
     return png_bytes(fig)
 
 
-@_styled
+@styled
 def focal_profile(radius_um, intensity, *, airy_radius_um=None, title: str = "focal spot (azimuthal mean)"
                   ) -> bytes:
     """Radial focal-spot profile with the ideal Airy pattern ``[2 J1(v)/v]^2`` for comparison."""
     from scipy.special import j1
 
     r = np.asarray(radius_um, dtype=np.float64)
-    fig = _figure(5.0, 3.4)
+    fig = new_figure(5.0, 3.4)
     ax = fig.add_subplot()
     ax.plot(r, intensity, color=BAR_COLOUR, label="mask")
     if airy_radius_um:

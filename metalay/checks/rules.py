@@ -42,7 +42,7 @@ from pathlib import Path
 
 import numpy as np
 
-from metalay.errors import MaskReadError, MetalayError, RulesError
+from metalay.errors import MaskReadError, RulesError
 from metalay.io.gdsread import FlatPolygons, file_sha256, read_mask
 from metalay.validate import TomlTable, load_toml
 

@@ -1,7 +1,20 @@
-"""Command line: a thin layer over the Python API. Only this module (and the cli_* helpers it registers) prints.
+"""Command line: a thin layer over the Python API. Only this package prints or exits.
 
-Exit codes: 0 success; 1 design-rule violations (when asked to fail on them); 2 bad input; 3 unreadable mask;
-70 internal error; 130 interrupted.
+================  ==========================================================  =====================================
+module            commands                                                    library call
+================  ==========================================================  =====================================
+``__init__.py``   ``compile``, ``demo``; ``main`` (the ``metalay`` command)   :func:`metalay.api.compile_design`
+``cells.py``      ``cells build | show | import | complement``                :mod:`metalay.cells.cellbuild`
+``rules.py``      ``rules check``, ``info``                                   :func:`metalay.checks.rules.check_mask`
+``optics.py``     ``optics``                                                  :func:`metalay.checks.optics.check_optics`
+``routes.py``     ``routes etch | fork | slm | orient | compare | all``       :mod:`metalay.routes.routes`
+``study.py``      ``compare``, ``tolerance``                                  :mod:`metalay.studies.study`
+``__main__.py``   ``python -m metalay.cli``
+================  ==========================================================  =====================================
+
+Each command module exposes ``add_parser(subparsers)`` and ``run(args) -> int``. Exit codes: 0 success;
+1 design-rule violations (when asked to fail on them); 2 bad input; 3 unreadable mask; 70 internal error;
+130 interrupted (:mod:`metalay.errors` gives each error class its code).
 """
 
 from __future__ import annotations
@@ -127,7 +140,3 @@ def main(argv=None) -> int:
         print(f"metalay: internal error: {type(exc).__name__}: {exc} (set METALAY_DEBUG=1 for the traceback; "
               "please report it)", file=sys.stderr)
         return 70
-
-
-if __name__ == "__main__":  # pragma: no cover
-    sys.exit(main())

@@ -48,9 +48,9 @@ def _settings(design, args):
 
 def run(args) -> int:
     """Run one ``routes`` action; returns the exit code (0)."""
-    from metalay.routes import routes as R
-    from metalay.mask.compile import SAFETY_CAUTION
     from metalay.design.spec import load_design
+    from metalay.mask.compile import SAFETY_CAUTION
+    from metalay.routes import routes as R
 
     design = load_design(args.design)
     design, settings = _settings(design, args)

@@ -47,10 +47,10 @@ def run(args) -> int:
 
 
 def _run_check(args) -> int:
-    from metalay.util.atomic import atomic_write_text
+    from metalay.checks.rules import RulesError, check_mask, load_rules, write_marker_gds
     from metalay.errors import OutputError
     from metalay.io.gdsread import read_mask
-    from metalay.checks.rules import RulesError, check_mask, load_rules, write_marker_gds
+    from metalay.util.atomic import atomic_write_text
 
     if args.max_listed < 0:
         raise RulesError(f"--max-listed = {args.max_listed} is invalid; allowed: >= 0")

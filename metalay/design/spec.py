@@ -10,10 +10,20 @@ import math
 from dataclasses import dataclass, field
 from pathlib import Path
 
+from metalay.design.lattice import Aperture, Lattice
+from metalay.design.phase import (
+    PHASE_TERM_KINDS,
+    Axicon,
+    Channel,
+    Lens,
+    Multiplex,
+    QPlate,
+    Tilt,
+    Vortex,
+    load_phase_map,
+)
 from metalay.errors import DesignError
 from metalay.validate import TomlTable, load_toml
-from metalay.design.lattice import Aperture, Lattice
-from metalay.design.phase import (PHASE_TERM_KINDS, Axicon, Channel, Lens, Multiplex, QPlate, Tilt, Vortex, load_phase_map)
 
 __all__ = ["Design", "MaskSettings", "WriteFieldSettings", "MarkSettings", "CheckSettings", "load_design",
            "parse_design", "DEFAULT_LAYERS"]

@@ -29,9 +29,9 @@ from pathlib import Path
 
 import numpy as np
 
-from metalay.util.atomic import atomic_path
 from metalay.errors import OutputError
 from metalay.mask.layout import Polygon, SnappedRows
+from metalay.util.atomic import atomic_path
 
 __all__ = [
     "GdsStream",
@@ -154,9 +154,12 @@ class GdsStream:
             if exc_type is None:
                 self._write(_record(_ENDSTR) + _record(_ENDLIB))
                 self.sha256 = self._hash.hexdigest()
+        except BaseException as err:  # a failed final write: the partial file is discarded, the error propagates
             self._fh.close()
-        finally:
-            return self._ctx.__exit__(exc_type, exc, tb)
+            self._ctx.__exit__(type(err), err, err.__traceback__)
+            raise
+        self._fh.close()
+        return self._ctx.__exit__(exc_type, exc, tb)
 
 
 def boundary_records(layer: int, datatype: int, vertices_db: np.ndarray | None = None, *,

@@ -1,3 +1,38 @@
-"""metalay.mask."""
+"""Mask stage: phase -> cell and rotation -> snapped polygons -> process -> GDSII/OASIS + manifest.
 
-__all__: list[str] = []
+===============  =======================================================================  ========================
+module           stage                                                                    public entry
+===============  =======================================================================  ========================
+``mapping.py``   phase -> cell + rotation per site (theta = sigma phi / 2 mod pi)         ``assign_cells``
+``layout.py``    rotated outlines snapped to the database grid, shape grouping, frame,    ``element_offsets``,
+                 label                                                                    ``group_shapes``
+``process.py``   bias, tone inversion (band by band, hole-free pieces), write fields,     ``bias_outline_nm``,
+                 alignment marks, dose datatypes, Babinet slot estimate                   ``complement_tile``,
+                                                                                          ``fit_write_fields``
+``steps.py``     what a compile hands to its checks                                       ``MaskCheck``,
+                                                                                          ``WrittenMask``
+``compile.py``   the pipeline tile by tile in named stages (plan, tiles, gdstk formats,   ``compile_mask``
+                 checks handed in, manifest)
+===============  =======================================================================  ========================
+
+Imports: design, cells, io, util. Never the checks: :func:`compile_mask` receives them as ``MaskCheck`` steps
+(the standard set: :func:`metalay.checks.steps.default_checks`, passed by :func:`metalay.api.compile_design`).
+"""
+
+from metalay.util._lazy import lazy_entries
+
+_ENTRIES = {
+    "assign_cells": "mapping",
+    "element_offsets": "layout",
+    "group_shapes": "layout",
+    "bias_outline_nm": "process",
+    "complement_tile": "process",
+    "fit_write_fields": "process",
+    "MaskCheck": "steps",
+    "WrittenMask": "steps",
+    "compile_mask": "compile",
+    "CompileResult": "compile",
+    "SAFETY_CAUTION": "compile",
+}
+__all__ = sorted(_ENTRIES)
+__getattr__, __dir__ = lazy_entries(__name__, _ENTRIES)

@@ -37,15 +37,43 @@ from metalay.design.lattice import aperture_area_um2, cell_area_um2, row_range, 
 from metalay.design.phase import phase_gradient, target_phase
 from metalay.design.spec import Design
 from metalay.errors import DesignError, MetalayError, OutputError
-from metalay.io.writer import (GdsStream, add_polygons, boundary_records, boundary_records_rows, build_gdstk_fields,
-                               build_gdstk_flat, build_gdstk_levels, write_gdstk_library)
-from metalay.mask.layout import (element_offsets, frame_polygons, group_shapes, recovered_rotation, snap_centres,
-                                 snap_rows, text_polygons)
+from metalay.io.writer import (
+    GdsStream,
+    add_polygons,
+    boundary_records,
+    boundary_records_rows,
+    build_gdstk_fields,
+    build_gdstk_flat,
+    build_gdstk_levels,
+    write_gdstk_library,
+)
+from metalay.mask.layout import (
+    element_offsets,
+    frame_polygons,
+    group_shapes,
+    recovered_rotation,
+    snap_centres,
+    snap_rows,
+    text_polygons,
+)
 from metalay.mask.mapping import assign_cells, wrap_pi
-from metalay.mask.process import (WriteFieldGrid, alignment_marks, aperture_region_db, bias_outline_nm,
-                                  check_marks_clear, complement_bands, complement_tile, default_mark_positions_um,
-                                  dose_datatype_lut, field_cell_name, field_index, fit_write_fields,
-                                  frame_region_db, pieces_by_vertex_count, shift_phase_error_rad)
+from metalay.mask.process import (
+    WriteFieldGrid,
+    alignment_marks,
+    aperture_region_db,
+    bias_outline_nm,
+    check_marks_clear,
+    complement_bands,
+    complement_tile,
+    default_mark_positions_um,
+    dose_datatype_lut,
+    field_cell_name,
+    field_index,
+    fit_write_fields,
+    frame_region_db,
+    pieces_by_vertex_count,
+    shift_phase_error_rad,
+)
 from metalay.mask.steps import MaskCheck, WrittenMask
 from metalay.util._memory import keep_freed_memory
 from metalay.util.atomic import atomic_write_text, ensure_dir
@@ -958,7 +986,7 @@ def _summary(design: Design, library: CellLibrary, manifest: dict, files: dict) 
         f"worst phase error: snapping {e['worst_snapping_phase_error_deg']:.3f} deg, quantisation "
         f"{e['worst_quantisation_phase_error_deg']:.3f} deg",
     ]
-    for fmt, info in manifest["files"].items():
+    for info in manifest["files"].values():
         lines.append(f"wrote {info['name']} ({info['bytes'] / 1e6:.2f} MB, sha256 {info['sha256'][:12]})")
     for key, res in manifest["checks"].items():
         summary = res.get("summary", "")

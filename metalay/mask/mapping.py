@@ -13,8 +13,8 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from metalay.errors import LibraryError
 from metalay.cells.library import CellLibrary
+from metalay.errors import LibraryError
 
 __all__ = ["Assignment", "geometric_rotation", "quantise_rotation", "assign_cells", "wrap_pi"]
 

@@ -85,11 +85,11 @@ import numpy as np
 import shapely
 
 from metalay.cells.cellkinds import polygon_vertex_count
-from metalay.errors import DesignError, GeometryError, LibraryError, OutputError
-from metalay.design.lattice import Aperture, Lattice, row_range
-from metalay.mask.layout import Polygon
 from metalay.cells.library import CellLibrary, CellSpec
+from metalay.design.lattice import Aperture, Lattice, row_range
+from metalay.errors import DesignError, GeometryError, LibraryError, OutputError
 from metalay.io.writer import MAX_GDS_VERTICES
+from metalay.mask.layout import Polygon
 
 __all__ = [
     "BIAS_CORNERS", "STRADDLE_MODES", "MARK_KINDS", "BABINET_SOURCE",

@@ -55,12 +55,12 @@ from pathlib import Path
 
 import numpy as np
 
+from metalay.design.phase import Axicon, Lens, Multiplex, PhaseMap, QPlate, Tilt, Vortex, phase_gradient, target_phase
+from metalay.errors import DesignError, MetalayError
+from metalay.io.writer import MAX_GDS_VERTICES, GdsStream
 from metalay.routes import _routes_geom as geo
 from metalay.util.atomic import atomic_write_bytes, atomic_write_text, ensure_dir
-from metalay.errors import DesignError, MetalayError
-from metalay.design.phase import Axicon, Lens, Multiplex, PhaseMap, QPlate, Tilt, Vortex, phase_gradient, target_phase
 from metalay.validate import TomlTable
-from metalay.io.writer import MAX_GDS_VERTICES, GdsStream
 
 __all__ = [
     "EtchSettings", "ForkSettings", "SlmSettings", "OrientSettings", "RouteSettings", "parse_routes",
@@ -789,7 +789,8 @@ def fork_grating(design, settings: RouteSettings | None = None) -> ForkGrating:
         warnings.append(f"fork: nominal line {rules['nominal_line_um']:g} um / gap {rules['nominal_gap_um']:g} um "
                         f"below the minimum {fs.min_line_um:g} / {fs.min_gap_um:g} um")
     return ForkGrating(kind=fs.kind, period_um=fs.period_um, azimuth_deg=fs.azimuth_deg, duty=fs.duty, charge=charge,
-                       rings=tuple(rings), layer=(fs.layer, fs.datatype), line_area_um2=_rings_area_um2(rings, db_unit_nm),
+                       rings=tuple(rings), layer=(fs.layer, fs.datatype),
+                       line_area_um2=_rings_area_um2(rings, db_unit_nm),
                        aperture_area_um2=float(ap.area), boundary_error_um=err,
                        efficiency_expected=binary_grating_efficiency(fs.kind, fs.duty), etch_depth_nm=depth,
                        rules=rules, terms=terms, warnings=tuple(warnings))

@@ -1,3 +1,24 @@
-"""metalay.studies."""
+"""Studies over compiled masks: library comparison and the fabrication-tolerance Monte Carlo.
 
-__all__: list[str] = []
+=============  ==============================================================================  ====================
+module         stage                                                                           public entry
+=============  ==============================================================================  ====================
+``study.py``   compile per library and compare (rules margins, optics, band); Monte Carlo over  ``compare_libraries``,
+               CD bias, rotation error, missing elements, detuning, evaluated with             ``tolerance_study``
+               :func:`metalay.checks.optics.evaluate_elements` on the decoded mask
+=============  ==============================================================================  ====================
+
+Imports: checks, mask (``compile_mask``), design, cells, io, util.
+"""
+
+from metalay.util._lazy import lazy_entries
+
+_ENTRIES = {
+    "compare_libraries": "study",
+    "tolerance_study": "study",
+    "ToleranceSettings": "study",
+    "site_model": "study",
+    "evaluate_sites": "study",
+}
+__all__ = sorted(_ENTRIES)
+__getattr__, __dir__ = lazy_entries(__name__, _ENTRIES)

@@ -143,10 +143,10 @@ def site_model(mask_path, library, design, *, max_side: int = 1024, pad_factor: 
     -------
     SiteModel
     """
-    from metalay.io.gdsread import read_mask
-    from metalay.design.lattice import sample_sites
     from metalay.cells.library import CellLibrary, load_library
+    from metalay.design.lattice import sample_sites
     from metalay.design.phase import target_phase
+    from metalay.io.gdsread import read_mask
 
     lib = library if isinstance(library, CellLibrary) else load_library(library)
     mask_settings = design.mask
@@ -381,9 +381,9 @@ def rule_margins(mask, library, design) -> dict:
     report = R.check_mask(mask, replace(base, layers=(probe,)))
     by = {r.rule: r for r in report.results}
     out = {}
-    spec = (("width", "min_width_nm", lr.min_width_nm, min, 1), ("spacing", "min_spacing_nm", lr.min_spacing_nm, min, 1),
-            ("aspect_ratio", "max_aspect_ratio", lr.max_aspect_ratio, max, -1))
-    for rule, key, limit, pick, sign in spec:
+    spec = (("width", lr.min_width_nm, min, 1), ("spacing", lr.min_spacing_nm, min, 1),
+            ("aspect_ratio", lr.max_aspect_ratio, max, -1))
+    for rule, limit, pick, sign in spec:
         if not limit or rule not in by:
             continue
         v = by[rule].violations.value
@@ -458,9 +458,9 @@ def _band_table(model: SiteModel) -> list[dict]:
 
 def _compare_one(task) -> dict:
     """Compile, check and measure one library (runs in a worker process)."""
+    from metalay.cells.library import load_library
     from metalay.checks import rules as R
     from metalay.mask.compile import compile_mask
-    from metalay.cells.library import load_library
 
     design, lib_ref, out_dir, adapt = task
     lib = load_library(lib_ref)
@@ -569,8 +569,8 @@ def compare_libraries(design, libraries, out_dir, *, adapt: bool = True, workers
     from concurrent.futures import ProcessPoolExecutor
     from multiprocessing import get_all_start_methods, get_context
 
-    from metalay.util.atomic import atomic_write_bytes, ensure_dir
     from metalay.cells.library import load_library
+    from metalay.util.atomic import atomic_write_bytes, ensure_dir
     from metalay.util.progress import progress
 
     libs = list(libraries)
@@ -1022,9 +1022,9 @@ def _write_tolerance_files(out_dir, result_json: dict, samples, nominal, thresho
 # ----------------------------------------------------------------------------------------------------------------
 
 def _fig(w, h):
-    from metalay.checks.plots import _figure
+    from metalay.checks.plots import new_figure
 
-    return _figure(w, h)
+    return new_figure(w, h)
 
 
 def _render(fig) -> bytes:
@@ -1034,13 +1034,11 @@ def _render(fig) -> bytes:
 
 
 def _styled(fn):
+    """:func:`metalay.checks.plots.styled`, imported when a plot is drawn (workers need no matplotlib)."""
     def wrapper(*a, **k):
-        import matplotlib
+        from metalay.checks.plots import styled
 
-        from metalay.checks.plots import _RC
-
-        with matplotlib.rc_context(rc={**matplotlib.rcParamsDefault, **_RC}):
-            return fn(*a, **k)
+        return styled(fn)(*a, **k)
 
     return wrapper
 
