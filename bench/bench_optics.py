@@ -6,7 +6,7 @@ its own 4-vertex BOUNDARY at integer nm (1 nm database unit), vertices snapped h
 written flat with the project's streaming GDSII writer (metalay.io.writer.GdsStream, the records metalay compile
 writes).
 
-ours      metalay.optics.check_optics: vectorised read (gdsread) + decode + near field at full site resolution +
+ours      metalay.checks.optics.check_optics: vectorised read (gdsread) + decode + near field at full site resolution +
           far field (FFT, pad 2) + OAM spectrum at full resolution + spots, fringe reading, figures and report.
 baseline  gdstk.read_gds, then a Python loop over polygons computing each fin's centre and rotation from
           .points (the read and decode step only).

@@ -1,4 +1,4 @@
-"""Benchmark and convergence study of metalay.rcwa against grcwa (test-only reference), same cell, same run.
+"""Benchmark and convergence study of metalay.cells.rcwa against grcwa (test-only reference), same cell, same run.
 
 Cell: TiO2-like nanofin (n = 2.45), 250 x 85 nm, 600 nm tall, 325 nm square period, light from fused silica
 (n = 1.4607) into air, 532 nm, normal incidence (the bundled visible library's stack).
@@ -92,7 +92,7 @@ def main():
     t0 = time.perf_counter()
     ours(ll, ww, args.m)
     t_sweep = time.perf_counter() - t0
-    print(f"20 x 20 sweep at ({args.m},{args.m}) harmonics, one wavelength, metalay.rcwa: {t_sweep:.1f} s "
+    print(f"20 x 20 sweep at ({args.m},{args.m}) harmonics, one wavelength, metalay.cells.rcwa: {t_sweep:.1f} s "
           f"({t_sweep / ll.size * 1000:.0f} ms per geometry)")
     n = min(args.grcwa_count, ll.size)
     try:

@@ -2,7 +2,7 @@
 
 Mask: 250 x 85 nm fins rotated by a charge-3 vortex + tilt phase on a 325 nm square lattice inside a 1.15 mm
 circular aperture, each fin its own 4-vertex BOUNDARY at integer nm (1 nm database unit), written flat with the
-project's streaming GDSII writer (metalay.writer.GdsStream) - the same records metalay compile writes.
+project's streaming GDSII writer (metalay.io.writer.GdsStream) - the same records metalay compile writes.
 
 Each measurement runs in its own subprocess so the peak resident memory (ru_maxrss) is separate.
 

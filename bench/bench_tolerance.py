@@ -1,4 +1,4 @@
-"""Benchmark of the fabrication-tolerance Monte Carlo (metalay.study.tolerance_study) on a ~1e5-site design.
+"""Benchmark of the fabrication-tolerance Monte Carlo (metalay.studies.study.tolerance_study) on a ~1e5-site design.
 
 Design: charge-3 vortex plus a 4 degree tilt at 532 nm, 250 x 85 nm fins on a 325 nm square lattice in a
 116 um circular aperture (~1.0e5 sites), compiled once.  Library: an invented closed-form test library (stated in
@@ -8,7 +8,7 @@ evaluated as well.  Errors per sample: CD bias N(0, 3 nm) per edge, rotation N(0
 ours      tolerance_study: decode the mask once, then per sample perturb the element arrays and run the optical
           evaluation (site fields, near field, FFT far field, spots, OAM spectrum); threads over samples.
 serial    the same with one worker (same numbers: results do not depend on the worker count).
-baseline  metalay.optics.check_optics of the mask (read + decode + the same figures, no plots) once, times the
+baseline  metalay.checks.optics.check_optics of the mask (read + decode + the same figures, no plots) once, times the
           number of samples: what re-checking a re-written mask per sample would cost at least (the GDS writes
           themselves not counted).
 

@@ -2,7 +2,7 @@
 
 The demo: 300 um circular aperture, 325 nm square lattice (about 6.7e5 sites) of 250 x 85 nm nanofins rotated by the
 demo's vortex + tilt phase; ``--diameter-um 370`` gives about 1.0e6 sites. Bands of ``--rows`` lattice rows are
-inverted with :func:`metalay.process.complement_tile` and streamed into a flat GDSII file. Figures are printed with
+inverted with :func:`metalay.mask.process.complement_tile` and streamed into a flat GDSII file. Figures are printed with
 ratios against a baseline measured in the same run: the structures-tone layout of the same bands (sites, phase,
 rotation, snapped outlines and the flat GDSII of the structures).
 

@@ -1,4 +1,4 @@
-"""Tests of metalay.process: bias, tone inversion, write fields, marks, dose datatypes, Babinet slot estimate."""
+"""Tests of metalay.mask.process: bias, tone inversion, write fields, marks, dose datatypes, Babinet slot estimate."""
 
 from __future__ import annotations
 

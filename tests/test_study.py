@@ -1,7 +1,7 @@
-"""Library comparison and fabrication-tolerance studies (metalay.study, metalay.cli_study).
+"""Library comparison and fabrication-tolerance studies (metalay.studies.study, metalay.cli.study).
 
 The test libraries are invented for these tests, with responses from closed forms stated in ``_library``; they
-are written with metalay.library.save_library into temporary folders and never shipped.
+are written with metalay.cells.library.save_library into temporary folders and never shipped.
 """
 
 import copy
@@ -42,8 +42,8 @@ def _library(name, mode, sizes, *, amp=0.95):
         name=name, description="invented closed-form test library", mode=mode, phase_mechanism="geometric",
         design_wavelength_nm=LAM, period_nm=325.0, lattice="square", incident_medium="air", exit_medium="air",
         layers=({"name": "fins", "material": "test", "thickness_nm": 600.0, "patterned": True},),
-        # min_gap 70 nm: with 40 nm, metalay.rules currently fails on these masks (empty neighbour stencil when no
-        # pair can come within the limit; reported to its owner)
+        # min_gap 70 nm: with 40 nm, metalay.checks.rules currently fails on these masks (empty neighbour stencil
+        # when no pair can come within the limit; reported to its owner)
         rules={"min_feature_nm": 60.0, "min_gap_nm": 70.0, "max_aspect_ratio": 10.0, "grid_nm": 1.0,
                "source": "Common practice (no source)"},
         provenance={"geometry_source": "invented", "responses_source": "closed form (test)", "solver": None,
@@ -126,7 +126,7 @@ def test_rotation_error_follows_ruze_law(setup):
 def test_missing_elements_scale_coherent_power(setup):
     # Common practice (no source): random element loss with probability m keeps (1 - m) of the coherent amplitude
     # on average, so the coherent power scales as (1 - m)^2, plus the incoherent term m (1 - m) sum|c|^2 / N^2
-    # (derived in metalay.study.tolerance_study's docstring).
+    # (derived in metalay.studies.study.tolerance_study's docstring).
     model = setup["model"]
     m = 0.1
     eta0, incoh = _coherent_expectation(model, None)

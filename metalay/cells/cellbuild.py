@@ -10,8 +10,8 @@ wavelength, keeps only geometries that pass the rules, picks
   with the flattest, largest amplitude,
 
 then computes the response spectra of the chosen cells over the band and a convergence check at higher truncation,
-and returns a :class:`metalay.library.CellLibrary` with full provenance (no dates, so rebuilding gives the same
-bytes). Every number in the library comes from :func:`metalay.rcwa.solve`.
+and returns a :class:`metalay.cells.library.CellLibrary` with full provenance (no dates, so rebuilding gives the same
+bytes). Every number in the library comes from :func:`metalay.cells.rcwa.solve`.
 
 Spec keys (see ``libraries/specs/*.toml``)::
 

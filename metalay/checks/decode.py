@@ -300,7 +300,7 @@ def decode_sites(flat, cells, *, period_nm: float, lattice: str = "square", laye
     Parameters
     ----------
     flat : FlatPolygons
-        Polygons from :func:`metalay.gdsread.read_mask` (or built with ``FlatPolygons.from_arrays``).
+        Polygons from :func:`metalay.io.gdsread.read_mask` (or built with ``FlatPolygons.from_arrays``).
     cells : sequence of CellSpec
         Library cells to match against (``CellLibrary.cells``).
     period_nm : float

@@ -14,7 +14,7 @@ Model and conventions
   wavelength; the cell rotated by ``theta`` has the Jones matrix ``R(-theta) diag(t_long, t_short) R(theta)``.
   For input ``|sigma>`` the output is ``(t_long + t_short)/2 |sigma> + (t_long - t_short)/2 exp(2 i sigma theta)
   |-sigma>``.  ``|sigma> = (x + i sigma y)/sqrt(2)``; time dependence ``exp(-i omega t)``.
-* The near field is piecewise constant over each unit cell (see :mod:`metalay.grid`); powers are fractions of the
+* The near field is piecewise constant over each unit cell (see :mod:`metalay.checks.grid`); powers are fractions of the
   power incident on the illuminated cells (``|t|^2`` is the zeroth-order power ratio, exit impedance included).
 * Illuminated region: the sites of the design's aperture when a design is given, otherwise the occupied sites
   with enclosed holes filled.  Illuminated sites without an element transmit ``empty_t`` unconverted.
@@ -479,7 +479,7 @@ class OpticsTarget:
 
 
 def target_from_design(design, *, wavelength_nm: float | None = None) -> OpticsTarget:
-    """Build an :class:`OpticsTarget` from a validated design (:class:`metalay.spec.Design`)."""
+    """Build an :class:`OpticsTarget` from a validated design (:class:`metalay.design.spec.Design`)."""
     from metalay.design.phase import Axicon, Lens, Multiplex, QPlate, Tilt, Vortex
 
     charge = 0.0

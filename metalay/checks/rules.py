@@ -1030,7 +1030,7 @@ def check_mask(mask, rules: RuleSet, *, method: str = "auto", cell: str | None =
     Parameters
     ----------
     mask : str, os.PathLike or FlatPolygons
-        A GDSII/OASIS file (read with :func:`metalay.gdsread.read_mask`, only the layers the rules use) or
+        A GDSII/OASIS file (read with :func:`metalay.io.gdsread.read_mask`, only the layers the rules use) or
         polygons already read.
     rules : RuleSet
     method : {"auto", "tree", "lattice"}

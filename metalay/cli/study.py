@@ -1,7 +1,7 @@
 """``metalay compare`` and ``metalay tolerance``: library comparison and fabrication-tolerance studies.
 
 Registered by :mod:`metalay.cli` (``add_parser(subparsers)``; each subcommand sets ``func``).  Only this module
-prints; the work is done by :mod:`metalay.study`.
+prints; the work is done by :mod:`metalay.studies.study`.
 """
 
 from __future__ import annotations

@@ -185,7 +185,7 @@ def boundary_records(layer: int, datatype: int, vertices_db: np.ndarray | None =
 
 def boundary_records_rows(layer: int, datatype: int, centres_db: np.ndarray, snapped, *,
                           where: str = "GDSII") -> np.ndarray:
-    """GDSII BOUNDARY records from site centres and :class:`metalay.layout.SnappedRows` (fast path).
+    """GDSII BOUNDARY records from site centres and :class:`metalay.mask.layout.SnappedRows` (fast path).
 
     Same bytes as :func:`boundary_records`; the record words are filled as contiguous rows (one per word, over all
     elements) and transposed once, which is several times faster than strided writes per element.

@@ -135,7 +135,7 @@ def element_polygons(centres_db: np.ndarray, offsets_db: np.ndarray) -> np.ndarr
 def recovered_rotation(offsets_db: np.ndarray) -> np.ndarray:
     """Element rotation (radians, [0, pi)) read back from snapped outlines.
 
-    For 4-vertex outlines in the order of :func:`metalay.cellkinds.outline_nm` the long axis is
+    For 4-vertex outlines in the order of :func:`metalay.cells.cellkinds.outline_nm` the long axis is
     ``(v0 + v3) - (v1 + v2)``; for other outlines the principal axis of the vertex second moments.
     """
     if offsets_db.shape[1] == 4:

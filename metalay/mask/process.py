@@ -2,7 +2,7 @@
 
 Pure, vectorised functions that act on the per-tile arrays of the compile pipeline: ``centres_db`` (N, 2) int64
 site centres, ``offsets_db`` (N, V, 2) int32 snapped outlines relative to the centre (see
-:mod:`metalay.layout`), rotations in radians, plus aperture / lattice objects. Nothing here writes files.
+:mod:`metalay.mask.layout`), rotations in radians, plus aperture / lattice objects. Nothing here writes files.
 
 Bias (grow or shrink every structure by a signed distance ``b``)
     Applied to the unrotated cell outline *before* rotation and snapping (:func:`bias_outline_nm`); rotation
@@ -191,12 +191,12 @@ def offset_convex_polygons(vertices, distance, *, corner: str = "sharp") -> np.n
 def bias_outline_nm(outline_nm, bias_nm: float, *, corner: str = "sharp", where: str = "<memory>",
                     key: str = "mask.bias_nm") -> np.ndarray:
     """Bias a cell outline (rotation 0, centred, counter-clockwise) by ``bias_nm``; feed the result to
-    :func:`metalay.layout.element_offsets`.
+    :func:`metalay.mask.layout.element_offsets`.
 
     Parameters
     ----------
     outline_nm : ndarray (V, 2)
-        Outline from :func:`metalay.cellkinds.outline_nm`, nm.
+        Outline from :func:`metalay.cells.cellkinds.outline_nm`, nm.
     bias_nm : float
         Signed bias: each edge moves outwards by ``bias_nm`` (the feature grows by ``2 * bias_nm`` across).
     corner : {"sharp", "chamfer"}
@@ -266,7 +266,7 @@ def aperture_region_db(aperture: Aperture, *, db_unit_nm: float, tolerance_nm: f
     """The aperture as a shapely polygon with integer vertices in database units (origin at the centre).
 
     Circles (and the annulus' two circles) are inscribed polygons whose sagitta is at most ``tolerance_nm``
-    (vertex count from :func:`metalay.cellkinds.polygon_vertex_count`).
+    (vertex count from :func:`metalay.cells.cellkinds.polygon_vertex_count`).
     """
     s = 1000.0 / db_unit_nm
 
@@ -286,7 +286,7 @@ def aperture_region_db(aperture: Aperture, *, db_unit_nm: float, tolerance_nm: f
 
 
 def frame_region_db(aperture: Aperture, *, margin_um: float, db_unit_nm: float):
-    """The rectangle inside the frame's inner edge (same rounding as :func:`metalay.layout.frame_polygons`)."""
+    """The rectangle inside the frame's inner edge (same rounding as :func:`metalay.mask.layout.frame_polygons`)."""
     s = 1000.0 / db_unit_nm
     hx, hy = aperture.half_extent_um
     ix, iy = int(np.rint((hx + margin_um) * s)), int(np.rint((hy + margin_um) * s))
@@ -632,7 +632,7 @@ def _round_polygons(polys: np.ndarray, ids: np.ndarray, max_vertices: int) -> tu
 
 
 def pieces_by_vertex_count(tile: ComplementTile):
-    """Group a tile's polygons by vertex count for :meth:`metalay.writer.GdsStream.boundaries`.
+    """Group a tile's polygons by vertex count for :meth:`metalay.io.writer.GdsStream.boundaries`.
 
     Yields
     ------

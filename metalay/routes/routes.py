@@ -289,7 +289,7 @@ def binary_grating_efficiency(kind: str, duty: float) -> float:
 
 def substrate_index(material: str, wavelength_nm: float, *, index: float | None = None, where: str = "",
                     key: str = "routes.etch.material", base_dir=None) -> float:
-    """Real refractive index of the substrate: the explicit ``index`` if given, else from :mod:`metalay.materials`
+    """Real refractive index of the substrate: the explicit ``index`` if given, else from :mod:`metalay.cells.materials`
     (``get_material(material).index(wavelength_nm)``, dispersion included)."""
     return _substrate(material, wavelength_nm, index=index, where=where, key=key, base_dir=base_dir)[0]
 
@@ -572,7 +572,7 @@ def etch_masks(design, settings: RouteSettings | None = None, *, with_level_area
 
     Parameters
     ----------
-    design : metalay.spec.Design
+    design : metalay.design.spec.Design
     settings : RouteSettings, optional
         Default: :func:`parse_routes` of the design.
     with_level_areas : bool
@@ -1123,7 +1123,7 @@ def compare_routes(design, settings: RouteSettings | None = None, *, routes=("id
     of the nearest pixel (0 off the panel); orient ``exp(2 i sigma theta)`` of the nearest pixel; metasurface the
     geometric phase of the nearest lattice site (ideal cells, full conversion, rotation levels if set).
     Efficiency ``|sum conj(T) t|^2 / (sum |T|^2 sum 1)`` over the aperture with ``T = exp(i (phi + carrier))``.
-    Far field by :func:`metalay.grid.far_field`; purity by :func:`metalay.oam.oam_spectrum`.
+    Far field by :func:`metalay.checks.grid.far_field`; purity by :func:`metalay.checks.oam.oam_spectrum`.
 
     References
     ----------

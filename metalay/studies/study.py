@@ -1,13 +1,13 @@
 """Library comparison and fabrication-tolerance studies on top of compile, the design rules and the optical check.
 
-Two studies, each a pure library function returning data (the CLI in :mod:`metalay.cli_study` prints):
+Two studies, each a pure library function returning data (the CLI in :mod:`metalay.cli.study` prints):
 
 * :func:`compare_libraries` compiles one design with several cell libraries, runs the design rules and the
   optical check on each written mask, sweeps the zeroth-order power budget over each library's tabulated band and
   measures how far the tightest design rule is from failing.  Output: a table (CSV, JSON) and PNG plots.
 * :func:`tolerance_study` perturbs the elements decoded from a written mask (critical-dimension bias, rotation
   error, missing elements, wavelength detuning; seeded Monte Carlo) and evaluates each sample with the same
-  near-field / far-field / OAM chain as :func:`metalay.optics.check_optics`, without re-writing masks.
+  near-field / far-field / OAM chain as :func:`metalay.checks.optics.check_optics`, without re-writing masks.
 
 What "efficiency" means (the same footing for transmission and reflection libraries)
 ------------------------------------------------------------------------------------
@@ -102,7 +102,7 @@ class SiteModel:
     expected_ij : (ndarray, ndarray)
         Lattice indices of every aperture site (illuminated region).
     decimation : int
-        Near-field block size (as :func:`metalay.optics.check_optics` chooses it for ``max_side``).
+        Near-field block size (as :func:`metalay.checks.optics.check_optics` chooses it for ``max_side``).
     pad_factor : float
     charges : tuple of int
     empty_t : complex
@@ -127,7 +127,7 @@ class SiteModel:
 def site_model(mask_path, library, design, *, max_side: int = 1024, pad_factor: float = 2.0,
                charges=range(-10, 11), size_tol_nm: float = 3.0, unmatched: str = "error",
                empty_t: complex = 1.0) -> SiteModel:
-    """Read and decode a mask once (as :func:`metalay.optics.check_optics` does) for repeated evaluation.
+    """Read and decode a mask once (as :func:`metalay.checks.optics.check_optics` does) for repeated evaluation.
 
     Parameters
     ----------
@@ -137,7 +137,7 @@ def site_model(mask_path, library, design, *, max_side: int = 1024, pad_factor: 
     design : Design
         The design the mask was compiled from.
     max_side, pad_factor, charges, size_tol_nm, unmatched, empty_t
-        As in :func:`metalay.optics.check_optics` (defaults of :func:`metalay.optics.quick_check`).
+        As in :func:`metalay.checks.optics.check_optics` (defaults of :func:`metalay.checks.optics.quick_check`).
 
     Returns
     -------
@@ -213,7 +213,7 @@ def evaluate_sites(model: SiteModel, *, t_long=None, t_short=None, rotation_rad=
 
     Notes
     -----
-    Same operations, in the same order, as :func:`metalay.optics.check_optics` (site fields, rasterisation with
+    Same operations, in the same order, as :func:`metalay.checks.optics.check_optics` (site fields, rasterisation with
     the aperture as illuminated region, power budget, padded FFT far field, spot disks of radius
     ``(2.5 + l_max/2) lambda / D``, OAM spectrum of the converted field after removing tilt/lens/axicon terms), so
     unperturbed input reproduces its figures exactly.  Designed-mode efficiency::
@@ -353,7 +353,7 @@ def rule_margins(mask, library, design) -> dict:
     """How far the tightest design rules are from failing on a written mask.
 
     The library's default rules (minimum feature, minimum gap, maximum aspect ratio) are probed with limits that
-    every polygon fails, so :func:`metalay.rules.check_mask` reports the measured extreme of each quantity.
+    every polygon fails, so :func:`metalay.checks.rules.check_mask` reports the measured extreme of each quantity.
 
     Parameters
     ----------
@@ -420,7 +420,7 @@ def design_for_library(design, library, *, adapt: bool = True):
     Returns
     -------
     Design
-        Re-validated with :func:`metalay.spec.parse_design` from the design's raw table.
+        Re-validated with :func:`metalay.design.spec.parse_design` from the design's raw table.
     """
     import copy
 
