@@ -554,8 +554,9 @@ def _read_oasis(path: str, layer_filter, max_elements: int = DEFAULT_MAX_ELEMENT
     for c in layout.cells.values():
         cell = _Cell(c.name)
         cells[c.name] = cell
-        if c.n_polygons:
-            cell.explicit.append(_Explicit(c.layer, c.datatype, c.counts, c.xy))
+        for lay, dt, cnt, xy in c.chunks:  # the chunks the reader expanded, without joining them
+            cell.explicit.append(_Explicit(lay.astype(np.int32, copy=False), dt.astype(np.int32, copy=False),
+                                           cnt.astype(np.int64, copy=False), xy))
         geometry = sum(v for k, v in c.records.items() if k in ("rectangle", "polygon", "trapezoid",
                                                                   "ctrapezoid", "circle"))
         for code, n in ((_BOUNDARY, geometry), (_PATH, c.records.get("path", 0)),

@@ -40,7 +40,7 @@ __all__ = [
     "MAGIC", "RECORD_NAMES", "END_RECORD_BYTES", "COORD_LIMIT",
     "uint_bytes", "sint_bytes", "real_bytes", "string_bytes", "gdelta_bytes",
     "encode_varints", "encode_gdeltas", "sint_to_uint", "gdelta_items",
-    "Cursor", "Repetition", "REUSE",
+    "Cursor", "Repetition", "REUSE", "VarintTable",
 ]
 
 MAGIC = b"%SEMI-OASIS\r\n"
@@ -619,6 +619,129 @@ class Cursor:
             if reach > COORD_LIMIT:
                 self.fail(f"repetition of type {t} ({rep.nx} x {rep.ny}) reaches beyond 2**52 database units", at)
         return rep
+
+
+class VarintTable:
+    """Integer boundaries and values of a byte region, for decoding runs of integers without a loop per integer.
+
+    Every byte below 128 ends an unsigned integer, so a run of integers that starts right after another integer
+    (as every point list and explicit repetition does) is a run of consecutive segments of this table. g-delta
+    runs need one more fact: the integer after an even one (a form-1 g-delta, or the second half of a form-2
+    one) always begins a g-delta, and inside a run of odd integers every second one does; so the g-deltas of a
+    run follow from the region-wide parity pattern, with only the stretch before the run's first even integer
+    depending on where the run starts.
+
+    Parameters
+    ----------
+    arr : ndarray (S,) uint8
+        The whole buffer.
+    lo, hi : int
+        The region ``arr[lo:hi]``; ``lo`` must be an integer boundary.
+    """
+
+    def __init__(self, arr: np.ndarray, lo: int, hi: int):
+        reg = arr[lo:hi]
+        term = reg < 128
+        self.lo, self.hi = lo, hi
+        self.T = np.flatnonzero(term)
+        n = self.n = self.T.shape[0]
+        starts = np.zeros(n, np.int64)
+        starts[1:] = self.T[:-1] + 1
+        lens = self.T - starts + 1
+        v = (reg[starts] & 127).astype(np.uint64)
+        for j in range(1, int(min(lens.max(initial=1), 10))):  # byte j of the integers that have one
+            idx = np.flatnonzero(lens > j)
+            v[idx] |= (reg[starts[idx] + j] & 127).astype(np.uint64) << np.uint64(7 * j)
+        self.V = v
+        bad = lens > 10
+        ten = np.flatnonzero(lens == 10)
+        bad[ten] |= (reg[starts[ten] + 9] & 127) != 0  # a tenth 7-bit group would make it 2**63 or more
+        self.PB = np.concatenate([[0], np.cumsum(bad)])
+        idx = np.arange(n)
+        even = (v & np.uint64(1)) == 0
+        prev_even = np.concatenate([[-1], np.maximum.accumulate(np.where(even, idx, -1))[:-1]])
+        heads = ((idx - prev_even - 1) & 1) == 0
+        self.PH = np.concatenate([[0], np.cumsum(heads)])
+        self.GH = np.flatnonzero(heads)
+        nxt = np.where(even, idx, n)
+        self.NE = np.concatenate([np.minimum.accumulate(nxt[::-1])[::-1], [n]])
+        self.cum = np.cumsum(term, dtype=np.int64)
+
+    def index(self, pos: int) -> int:
+        """Segment number of the integer that starts at buffer position ``pos`` (an integer boundary)."""
+        q = pos - self.lo
+        return int(self.cum[q - 1]) if q > 0 else 0
+
+    def end(self, k: int) -> int:
+        """Buffer position just after segment ``k - 1``."""
+        return self.lo + int(self.T[k - 1]) + 1
+
+    def check(self, cur: "Cursor", k0: int, k1: int, what: str, at: int) -> None:
+        """Refuse the run of segments [k0, k1) when it is cut off or holds an integer of 2**63 or more."""
+        if k1 > self.n:
+            cur.fail(f"truncated {what}: the data ends inside it", at)
+        if self.PB[k1] - self.PB[k0]:
+            cur.fail(f"integer too large in {what} (allowed: below 2**63)", at)
+
+    def g_span(self, cur: "Cursor", pos: int, count: int, what: str):
+        """Locate ``count`` g-deltas starting at ``pos``: returns (k0, n_local, g0, n_global, end position).
+
+        The g-deltas begin at segments ``k0, k0 + 2, ...`` (``n_local`` of them, up to the first even integer)
+        and then at the region-wide heads ``GH[g0:g0 + n_global]``.
+        """
+        k0 = self.index(pos)
+        if k0 >= self.n:
+            cur.fail(f"truncated {what}: the data ends inside it", pos)
+        e0 = int(self.NE[k0])
+        n_local = min(count, (e0 - k0) // 2 + 1)
+        n_global = count - n_local
+        g0 = int(self.PH[min(e0 + 1, self.n)])
+        if n_global:
+            if g0 + n_global > self.GH.shape[0]:
+                cur.fail(f"truncated {what}: {count} g-deltas expected", pos)
+            last = int(self.GH[g0 + n_global - 1])
+        else:
+            last = k0 + 2 * (n_local - 1)
+        k1 = last + (2 if last < self.n and self.V[last] & np.uint64(1) else 1)
+        self.check(cur, k0, k1, what, pos)
+        return k0, n_local, g0, n_global, self.end(k1)
+
+    def u_span(self, cur: "Cursor", pos: int, count: int, what: str):
+        """Locate ``count`` integers starting at ``pos``: returns (k0, end position)."""
+        k0 = self.index(pos)
+        self.check(cur, k0, k0 + count, what, pos)
+        return k0, self.end(k0 + count)
+
+    def gdeltas(self, k0: np.ndarray, n_local: np.ndarray, g0: np.ndarray, n_global: np.ndarray) -> np.ndarray:
+        """The g-deltas of many located runs, back to back: (sum of counts, 2) int64."""
+        lens = np.stack([n_local, n_global], axis=1).ravel()
+        total = int(lens.sum())
+        piece = np.repeat(np.arange(lens.shape[0]), lens)
+        j = np.arange(total) - np.repeat(np.cumsum(lens) - lens, lens)
+        local = (piece & 1) == 0
+        run = piece >> 1
+        heads = np.where(local, k0[run] + 2 * j, self.GH[np.minimum(g0[run] + j, max(self.GH.shape[0] - 1, 0))]
+                         if self.GH.shape[0] else 0)
+        u1 = self.V[heads]
+        out = np.empty((total, 2), np.int64)
+        d = ((u1 >> np.uint64(1)) & np.uint64(7)).astype(np.int64)
+        mag = (u1 >> np.uint64(4)).astype(np.int64)
+        out[:, 0] = _DIR8_X[d] * mag
+        out[:, 1] = _DIR8_Y[d] * mag
+        f2 = np.flatnonzero(u1 & np.uint64(1))
+        if f2.size:
+            a, b = u1[f2], self.V[heads[f2] + 1]
+            mx = (a >> np.uint64(2)).astype(np.int64)
+            my = (b >> np.uint64(1)).astype(np.int64)
+            out[f2, 0] = np.where((a & np.uint64(2)) != 0, -mx, mx)
+            out[f2, 1] = np.where((b & np.uint64(1)) != 0, -my, my)
+        return out
+
+    def values(self, k0: np.ndarray, count: np.ndarray) -> np.ndarray:
+        """The integers of many located runs, back to back (uint64)."""
+        total = int(count.sum())
+        j = np.arange(total) - np.repeat(np.cumsum(count) - count, count)
+        return self.V[np.repeat(k0, count) + j]
 
 
 def _checked_cumsum(cur: Cursor, d: np.ndarray, at: int, what: str) -> np.ndarray:

@@ -111,9 +111,11 @@ class Placement:
         return out
 
 
-@dataclass
 class OasisCell:
     """A cell: its own polygons (repetitions expanded, layer filter applied) and its placements.
+
+    The polygons are kept as the chunks they were expanded in (``chunks``: a list of (layer, datatype, counts,
+    xy)); the attributes below concatenate them on first use.
 
     Attributes
     ----------
@@ -127,21 +129,36 @@ class OasisCell:
         Records of each kind in this cell (``"polygon"``, ``"rectangle"``, ..., ``"placement"``, ``"text"``).
     """
 
-    name: str
-    layer: np.ndarray
-    datatype: np.ndarray
-    counts: np.ndarray
-    xy: np.ndarray
-    placements: list
-    records: dict
+    def __init__(self, name: str, chunks: list, placements: list, records: dict):
+        self.name = name
+        self.chunks = chunks
+        self.placements = placements
+        self.records = records
+        self.n_polygons = int(sum(c[2].shape[0] for c in chunks))
+        self.n_vertices = int(sum(c[3].shape[0] for c in chunks))
+
+    def _joined(self, k: int, dtype, empty_shape):
+        if not self.chunks:
+            return np.zeros(empty_shape, dtype)
+        if len(self.chunks) > 1:  # join once; later uses see one chunk
+            self.chunks = [tuple(np.concatenate([c[j] for c in self.chunks]) for j in range(4))]
+        return self.chunks[0][k].astype(dtype, copy=False)
 
     @property
-    def n_polygons(self) -> int:
-        return int(self.counts.shape[0])
+    def layer(self) -> np.ndarray:
+        return self._joined(0, np.int32, (0,))
 
     @property
-    def n_vertices(self) -> int:
-        return int(self.xy.shape[0])
+    def datatype(self) -> np.ndarray:
+        return self._joined(1, np.int32, (0,))
+
+    @property
+    def counts(self) -> np.ndarray:
+        return self._joined(2, np.int64, (0,))
+
+    @property
+    def xy(self) -> np.ndarray:
+        return self._joined(3, np.int64, (0, 2))
 
 
 @dataclass
@@ -323,8 +340,7 @@ class _Modal:
 
 
 class _CellBuild:
-    """Own geometry of a cell as it is parsed: small polygons in compact arrays, expanded repetitions as chunks
-    (file order kept)."""
+    """A cell as it is parsed: its geometry as chunks of expanded polygons (file order kept), its placements."""
 
     def __init__(self, key, offset):
         self.key = key
@@ -332,31 +348,50 @@ class _CellBuild:
         self.placements = []
         self.records = {}
         self.chunks = []
-        self._new_small()
-
-    def _new_small(self):
-        self.s_lay, self.s_dt, self.s_cnt, self.s_xy = array("q"), array("q"), array("q"), array("q")
-
-    def flush(self):
-        if self.s_cnt:
-            self.chunks.append((np.frombuffer(self.s_lay, np.int64), np.frombuffer(self.s_dt, np.int64),
-                                np.frombuffer(self.s_cnt, np.int64),
-                                np.frombuffer(self.s_xy, np.int64).reshape(-1, 2)))
-            self._new_small()
 
     def finish(self, name):
-        self.flush()
-        if self.chunks:
-            lay = np.concatenate([c[0] for c in self.chunks]).astype(np.int32)
-            dt = np.concatenate([c[1] for c in self.chunks]).astype(np.int32)
-            cnt = np.concatenate([c[2] for c in self.chunks]).astype(np.int64)
-            xy = np.concatenate([c[3] for c in self.chunks])
-        else:
-            lay = dt = np.zeros(0, np.int32)
-            cnt = np.zeros(0, np.int64)
-            xy = np.zeros((0, 2), np.int64)
-        self.chunks = []
-        return OasisCell(name, lay, dt, cnt, xy, [], dict(sorted(self.records.items())))
+        chunks, self.chunks = self.chunks, []
+        return OasisCell(name, chunks, [], dict(sorted(self.records.items())))
+
+
+class _Pending:
+    """A point list or an explicit repetition located in a region and decoded when the region is resolved.
+
+    ``kind`` "g" (g-deltas, ``mode`` 4, or 5 for double deltas) or "u" (one integer per delta: ``mode`` 0/1
+    alternating 1-deltas starting along x/y, 2 and 3 for 2- and 3-deltas, "x"/"y" for the spaces of repetition
+    types 4-7); ``rows`` is the number of points (or positions) it gives; ``value`` is set on resolution: an
+    (rows, 2) int64 array for a point list, a :class:`Repetition` for a repetition.
+    """
+
+    __slots__ = ("kind", "mode", "k0", "count", "n_local", "g0", "n_global", "grid", "rep_type", "implied", "rows",
+                 "value", "at")
+
+    @property
+    def positions(self):
+        return self.rows
+
+
+class _Region:
+    """Point lists and explicit repetitions of one stretch of bytes (a CBLOCK, or a window of the file), located
+    as they are parsed and decoded together."""
+
+    def __init__(self, cur, pos: int, need: int):
+        hi = min(cur.end, pos + max(_WINDOW, need))
+        self.buf = cur.buf
+        self.table = oc.VarintTable(cur.arr, pos, hi)
+        self.at_end = hi == cur.end
+        self.runs = []
+        self.cur = cur
+
+    def covers(self, cur, pos: int, need: int) -> bool:
+        t = self.table
+        return cur.buf is self.buf and t.lo <= pos and (pos + need <= t.hi or (self.at_end and cur.end == t.hi))
+
+
+_WINDOW = 4 << 20
+"""Bytes decoded together: a CBLOCK up to this size is one region; larger data is taken in windows of this size."""
+_EXPAND_CHUNK = 1 << 21
+"""Vertices expanded in one vectorised step (bounds the temporary index arrays)."""
 
 
 _NAME_KINDS = {oc.CELLNAME: "CELLNAME", oc.CELLNAME_REF: "CELLNAME", oc.TEXTSTRING: "TEXTSTRING",
@@ -387,6 +422,8 @@ class _Parser:
         self.total_p = 0
         self.total_v = 0
         self.path_cache = (None, None, None)
+        self.region = None
+        self.entries = []
         self.unit = None
         self.tables = None
         self.validation = "none"
@@ -433,6 +470,7 @@ class _Parser:
             elif rid == oc.CBLOCK and top:
                 self.cblock(cur, at)
             elif rid == oc.END and top:
+                self.resolve()
                 self.end(cur, at)
                 return True
             elif rid in (oc.START, oc.END, oc.CBLOCK):
@@ -522,8 +560,10 @@ class _Parser:
             cur.fail(f"CBLOCK declares {n_out} inflated bytes but its data inflates to "
                      f"{'more' if more else len(out)}{' (incomplete deflate stream)' if not more else ''}", at)
         cur.pos += n_in
+        self.resolve()
         inner = oc.Cursor(out, self.path, where=lambda p: f"byte {p} inside the CBLOCK at byte {at}")
         self.records(inner, top=False)
+        self.resolve()
 
     # ------------------------------------------------------------------ names and cells
 
@@ -570,8 +610,6 @@ class _Parser:
         if key in self.cell_keys:
             cur.fail(f"cell {key[1]!r} defined twice", at)
         self.cell_keys.add(key)
-        if self.cell is not None:
-            self.cell.flush()
         self.cell = _CellBuild(key, at)
         self.cells.append(self.cell)
         self.m.reset()
@@ -618,11 +656,69 @@ class _Parser:
     def repetition(self, cur, at, info, rbit, rid):
         if not info & rbit:
             return None
-        rep = cur.repetition()
+        rep = self.read_repetition(cur)
         if rep is oc.REUSE:
             rep = self.need(cur, at, self.m.repetition, "repetition", rid)
         self.m.repetition = rep
         return rep
+
+    # ------------------------------------------------------------------ deferred runs of integers
+
+    def locate(self, cur, kind: str, mode, count: int, what: str, at: int) -> _Pending:
+        """Locate a run of ``count`` deltas at the cursor, move past it, and queue it for decoding."""
+        pos = cur.pos
+        if count > cur.end - pos:
+            cur.fail(f"{what}: {count} values declared, only {cur.end - pos} bytes left", at)
+        need = (20 if kind == "g" else 10) * count + 16
+        if self.region is None or not self.region.covers(cur, pos, need):
+            self.resolve()
+            self.region = _Region(cur, pos, need)
+        t = self.region.table
+        r = _Pending()
+        r.kind, r.mode, r.count, r.at, r.grid, r.rep_type, r.implied, r.value = kind, mode, count, at, 1, None, 0, None
+        if kind == "g":
+            r.k0, r.n_local, r.g0, r.n_global, cur.pos = t.g_span(cur, pos, count, what)
+        else:
+            r.k0, cur.pos = t.u_span(cur, pos, count, what)
+        self.region.runs.append(r)
+        return r
+
+    def read_point_list(self, cur, *, polygon: bool):
+        """A point list, located now and decoded with its region (or at once when it is empty)."""
+        at = cur.pos
+        t = cur.uint()
+        n = cur.uint()
+        if t > 5:
+            cur.fail(f"point list of unknown type {t} (allowed: 0-5)", at)
+        if n == 0:
+            return np.zeros((1, 2), np.int64)
+        r = self.locate(cur, "g" if t >= 4 else "u", t, n, f"point list of type {t}", at)
+        r.implied = 1 if polygon and t <= 1 else 0
+        r.rows = n + 1 + r.implied
+        return r
+
+    def read_repetition(self, cur):
+        """A repetition: lattices at once, explicit offsets located now and decoded with their region."""
+        at = cur.pos
+        t = cur.uint()
+        if t not in (4, 5, 6, 7, 10, 11):
+            cur.pos = at
+            return cur.repetition()
+        n = cur.uint() + 2
+        grid = cur.length("grid") if t in (5, 7, 11) else 1
+        r = self.locate(cur, "g" if t >= 10 else "u", "x" if t in (4, 5) else "y" if t in (6, 7) else 4, n - 1,
+                        f"repetition of type {t}", at)
+        r.grid, r.rep_type, r.rows = grid, t, n
+        return r
+
+    def resolve(self):
+        """Decode the queued runs of the current region, then expand the queued geometry into polygons."""
+        region, self.region = self.region, None
+        if region is not None and region.runs:
+            _decode_runs(region)
+        entries, self.entries = self.entries, []
+        if entries:
+            _expand(entries)
 
     def keep(self, cur, at, layer, datatype):
         key = (layer, datatype)
@@ -649,30 +745,17 @@ class _Parser:
                      f"{need / 1e6:.0f} MB, more than the memory budget of {self.max_memory / 1e6:.0f} MB", at)
 
     def add(self, cur, at, rid, pts, x, y, rep):
-        """Add one geometry record: base vertices ``pts`` (V, 2) relative to (x, y), optional repetition."""
+        """Queue one geometry record: base vertices ``pts`` ((V, 2) array or a located point list) relative to
+        (x, y), optional repetition; its polygons and vertices are counted now, made on resolution."""
         m = self.m
         lay = self.need(cur, at, m.layer, "layer", rid)
         dt = self.need(cur, at, m.datatype, "datatype", rid)
         if pts is None or not self.keep(cur, at, lay, dt):
             return
-        n = 1 if rep is None else rep.count
-        nv = pts.shape[0]
+        n = _positions(rep)
+        nv = pts.rows if isinstance(pts, _Pending) else pts.shape[0]
         self.admit(cur, at, n, n * nv, oc.RECORD_NAMES[rid])
-        c = self.cell
-        base = pts + np.array([x, y], np.int64)
-        if rep is None:
-            c.s_lay.append(lay)
-            c.s_dt.append(dt)
-            c.s_cnt.append(nv)
-            c.s_xy.extend(base.ravel().tolist())
-            return
-        offs = rep.offsets()
-        reach = float(np.abs(base).max()) + float(np.abs(offs).max())
-        if reach > _FLAT_COORD_LIMIT:
-            cur.fail(f"{oc.RECORD_NAMES[rid]} with its repetition reaches beyond +-2**53 database units", at)
-        c.flush()
-        c.chunks.append((np.full(n, lay, np.int32), np.full(n, dt, np.int32), np.full(n, nv, np.int64),
-                         (base[None, :, :] + offs[:, None, :]).reshape(-1, 2)))
+        self.entries.append((self.cell, lay, dt, pts, x, y, rep))
 
     # ------------------------------------------------------------------ element records
 
@@ -746,9 +829,9 @@ class _Parser:
         self.layer_datatype(cur, info)
         if info & 0x20:
             pat = cur.pos
-            pts = cur.point_list(polygon=True)
-            if pts.shape[0] < 3:
-                cur.fail(f"POLYGON point list gives {pts.shape[0]} vertices (allowed: at least 3)", pat)
+            pts = self.read_point_list(cur, polygon=True)
+            if (pts.rows if isinstance(pts, _Pending) else pts.shape[0]) < 3:
+                cur.fail("POLYGON point list gives fewer than 3 vertices", pat)
             m.polygon_points = pts
         pts = self.need(cur, at, m.polygon_points, "polygon-point-list", rid)
         x, y = self.position(cur, info, 0x10, 0x08, "geometry")
@@ -792,7 +875,7 @@ class _Parser:
             if not self.keep(cur, at, lay, dt):
                 return
             # an outline has at least as many vertices as the centre line: refuse before the work when over
-            if self.total_v + (1 if rep is None else rep.count) * pts.shape[0] > self.max_vertices:
+            if self.total_v + _positions(rep) * pts.shape[0] > self.max_vertices:
                 cur.fail(f"PATH record: its outline brings the vertex total over the limit max_vertices="
                          f"{self.max_vertices}", at)
             outline = _path_outline(pts, hw, e0, e1)
@@ -933,10 +1016,168 @@ class _Parser:
                 raise MaskReadError(f"{path}: OASIS byte {b.offset}: cell {name!r} defined twice")
             cell = b.finish(name)
             for child, x, y, lin, rep, off in b.placements:
+                rep = rep.value if isinstance(rep, _Pending) else rep
                 cell.placements.append(Placement(resolve(child, off), x, y, lin, rep, off))
             cells[name] = cell
         self.cells = []
         return OasisLayout(path, 1e-6 / self.unit, 1e-6, cells, self.validation)
+
+
+def _positions(rep) -> int:
+    """Number of positions of a repetition (1 without one), known before it is decoded."""
+    if rep is None:
+        return 1
+    return rep.rows if isinstance(rep, _Pending) else rep.count
+
+
+def _seg_cumsum(d: np.ndarray, counts: np.ndarray, fail) -> np.ndarray:
+    """Cumulative sums of consecutive runs of deltas (``counts`` rows each, all > 0), each run from zero.
+
+    A float pass checks first that no partial sum leaves +-COORD_LIMIT (``fail(run_index)`` otherwise), so the
+    exact int64 pass cannot overflow. Each run's start row gets the previous run's total subtracted, so one global
+    cumsum restarts at every run without ever holding a sum across runs.
+    """
+    starts = np.cumsum(counts) - counts
+    df = d.astype(np.float64)
+    tf = np.add.reduceat(df, starts, axis=0)
+    df[starts[1:]] -= tf[:-1]
+    cf = np.abs(np.cumsum(df, axis=0)).max(axis=1)
+    if cf.max(initial=0.0) > oc.COORD_LIMIT:
+        fail(int(np.searchsorted(starts, int(np.argmax(cf > oc.COORD_LIMIT)), side="right")) - 1)
+    tot = np.add.reduceat(d, starts, axis=0)
+    d2 = d.copy()
+    d2[starts[1:]] -= tot[:-1]
+    return np.cumsum(d2, axis=0)
+
+
+def _decode_runs(region: _Region) -> None:
+    """Decode every located run of a region at once and set each run's ``value``."""
+    t, runs, cur = region.table, region.runs, region.cur
+    counts = np.array([r.count for r in runs], np.int64)
+    is_g = np.array([r.kind == "g" for r in runs])
+    d = np.empty((int(counts.sum()), 2), np.int64)
+    row0 = np.cumsum(counts) - counts
+    rows_of = (lambda sel: np.repeat(row0[sel] - (np.cumsum(counts[sel]) - counts[sel]), counts[sel])
+               + np.arange(int(counts[sel].sum())))
+    if is_g.any():
+        g = [r for r in runs if r.kind == "g"]
+        d[rows_of(is_g)] = t.gdeltas(np.array([r.k0 for r in g]), np.array([r.n_local for r in g]),
+                                     np.array([r.g0 for r in g]), np.array([r.n_global for r in g]))
+    if not is_g.all():
+        u = [r for r in runs if r.kind == "u"]
+        cu = counts[~is_g]
+        v = t.values(np.array([r.k0 for r in u]), cu)
+        mode = np.repeat(np.array([{0: 0, 1: 1, 2: 2, 3: 3, "x": 4, "y": 5}[r.mode] for r in u]), cu)
+        j = np.arange(v.shape[0]) - np.repeat(np.cumsum(cu) - cu, cu)
+        du = np.zeros((v.shape[0], 2), np.int64)
+        alt = mode <= 1  # 1-deltas: a signed integer along x then y then x ... (or starting along y)
+        mag = (v >> np.uint64(1)).astype(np.int64)
+        sv = np.where((v & np.uint64(1)) != 0, -mag, mag)
+        axis = (j + mode) & 1
+        du[alt & (axis == 0), 0] = sv[alt & (axis == 0)]
+        du[alt & (axis == 1), 1] = sv[alt & (axis == 1)]
+        for m, bits in ((2, 2), (3, 3)):  # 2-deltas and 3-deltas: direction in the low bits
+            sel = mode == m
+            if sel.any():
+                w = v[sel]
+                dirn = (w & np.uint64((1 << bits) - 1)).astype(np.int64)
+                mg = (w >> np.uint64(bits)).astype(np.int64)
+                du[sel, 0], du[sel, 1] = oc._DIR8_X[dirn] * mg, oc._DIR8_Y[dirn] * mg
+        big = (v > np.uint64(oc.COORD_LIMIT)) & (mode >= 4)
+        if big.any():
+            k = int(np.searchsorted(np.cumsum(cu), int(np.argmax(big)), side="right"))
+            cur.fail(f"repetition space beyond 2**52 database units", u[k].at)
+        du[mode == 4, 0] = v[mode == 4].astype(np.int64)
+        du[mode == 5, 1] = v[mode == 5].astype(np.int64)
+        d[rows_of(~is_g)] = du
+    grid = np.array([r.grid for r in runs], np.int64)
+    if (grid != 1).any():
+        gr = np.repeat(grid, counts)
+        over = np.abs(d).max(axis=1).astype(np.float64) * gr > oc.COORD_LIMIT
+        if over.any():
+            k = int(np.searchsorted(np.cumsum(counts), int(np.argmax(over)), side="right"))
+            cur.fail("repetition reaches beyond 2**52 database units", runs[k].at)
+        d *= gr[:, None]
+
+    def fail(k):
+        cur.fail(f"{'repetition' if runs[k].rep_type else 'point list'} reaches beyond +-2**52 database units",
+                 runs[k].at)
+
+    double = np.array([r.kind == "g" and r.mode == 5 for r in runs])
+    if double.any():  # type 5: the deltas are differences of the displacements
+        dd = np.repeat(double, counts)
+        d[dd] = _seg_cumsum(d[dd], counts[double], lambda k: fail(int(np.flatnonzero(double)[k])))
+    pos = _seg_cumsum(d, counts, fail)
+    ends = np.cumsum(counts)
+    for k, r in enumerate(runs):  # one small view per run (runs are records, not sites)
+        pts = np.empty((r.count + 1 + r.implied, 2), np.int64)
+        pts[0] = 0
+        pts[1:r.count + 1] = pos[ends[k] - r.count:ends[k]]
+        if r.implied:  # the implied vertex brings the coordinate of the next (missing) delta back to zero
+            pts[-1] = pts[-2]
+            pts[-1, (r.count + r.mode) & 1] = 0
+        r.value = oc.Repetition(r.rep_type, explicit=pts) if r.rep_type else pts
+
+
+def _expand(entries) -> None:
+    """Expand queued geometry into polygons, appended to each cell's chunks in file order, vectorised over the
+    records of a batch (bounded by :data:`_EXPAND_CHUNK` vertices at a time)."""
+    batch, size = [], 0
+    for e in entries + [None]:  # records, not sites
+        if e is not None:
+            pts = e[3].value if isinstance(e[3], _Pending) else e[3]
+            rep = e[6].value if isinstance(e[6], _Pending) else e[6]
+            n = 1 if rep is None else rep.count
+            nv = n * pts.shape[0]
+        if batch and (e is None or e[0] is not batch[0][0] or size + nv > _EXPAND_CHUNK):
+            _expand_batch(batch)
+            batch, size = [], 0
+        if e is None:
+            break
+        if nv > _EXPAND_CHUNK:
+            _expand_large(e[0], e[1], e[2], pts, e[4], e[5], rep)
+            continue
+        batch.append((e[0], e[1], e[2], pts, e[4], e[5], rep, n))
+        size += nv
+
+
+def _expand_large(cell, lay, dt, pts, x, y, rep) -> None:
+    """One record with many positions, expanded in slices of positions."""
+    base = pts + np.array([x, y], np.int64)
+    offs = rep.offsets()
+    step = max(1, _EXPAND_CHUNK // base.shape[0])
+    for lo in range(0, offs.shape[0], step):
+        o = offs[lo:lo + step]
+        m = o.shape[0]
+        cell.chunks.append((np.full(m, lay, np.int32), np.full(m, dt, np.int32), np.full(m, base.shape[0], np.int64),
+                            (base[None, :, :] + o[:, None, :]).reshape(-1, 2)))
+
+
+def _expand_batch(batch) -> None:
+    """Records of one cell: vertex (e, i, v) = pts_e[v] + offset_e[i] + (x_e, y_e), gathered in one pass."""
+    cell = batch[0][0]
+    nv = np.array([b[3].shape[0] for b in batch], np.int64)
+    n = np.array([b[7] for b in batch], np.int64)
+    pool_p = np.concatenate([b[3] for b in batch])
+    zero = np.zeros((1, 2), np.int64)
+    pool_o = np.concatenate([zero if b[6] is None else b[6].offsets() for b in batch])
+    xy = np.array([(b[4], b[5]) for b in batch], np.int64)
+    ps = np.cumsum(nv) - nv
+    ent = np.repeat(np.arange(len(batch)), n)  # pool_o has one row per polygon, in order
+    vp = nv[ent]
+    lay = np.array([b[1] for b in batch], np.int32)[ent]
+    dt = np.array([b[2] for b in batch], np.int32)[ent]
+    if (nv == nv[0]).all():  # one vertex count (the common case): gather per polygon, broadcast over vertices
+        shift = pool_o + xy[ent]  # the offsets are already one row per polygon, in order
+        out = pool_p.reshape(len(batch), int(nv[0]), 2)[ent]
+        np.add(out, shift[:, None, :], out=out)
+        cell.chunks.append((lay, dt, vp, out.reshape(-1, 2)))
+        return
+    poly = np.repeat(np.arange(ent.shape[0]), vp)
+    v = np.arange(poly.shape[0]) - np.repeat(np.cumsum(vp) - vp, vp)
+    ev = ent[poly]
+    out = pool_p[ps[ev] + v] + pool_o[poly] + xy[ev]
+    cell.chunks.append((lay, dt, vp, out))
 
 
 def _dedup(pts: np.ndarray) -> np.ndarray | None:
@@ -1158,6 +1399,13 @@ def flatten_layout(layout: OasisLayout, plan: FlattenPlan):
     cells = layout.cells
     ident = np.array([[1.0, 0.0, 0.0, 1.0, 0.0, 0.0]])
     inst = {t: [ident] for t in plan.tops}
+    if len(plan.tops) == 1 and plan.sizes[plan.tops[0]][0] == cells[plan.tops[0]].n_polygons:
+        c = cells[plan.tops[0]]  # all geometry in one unplaced cell: its arrays are the result (no copy)
+        if c.n_vertices and max(-int(c.xy.min()), int(c.xy.max())) >= _FLAT_COORD_LIMIT:
+            raise MaskReadError(f"{layout.path}: OASIS: coordinates exceed +-2**53 database units")
+        start = np.zeros(c.n_polygons + 1, np.int64)
+        np.cumsum(c.counts, out=start[1:])
+        return FlatPolygons(c.layer, c.datatype, start, c.xy, float(layout.db_unit_m), float(layout.user_unit_m))
     layer = np.empty(plan.polygons, np.int32)
     datatype = np.empty(plan.polygons, np.int32)
     counts = np.empty(plan.polygons, np.int64)
@@ -1194,7 +1442,7 @@ def flatten_layout(layout: OasisLayout, plan: FlattenPlan):
             xy[iv:iv + m * nv] = out.reshape(-1, 2)
             ip += m * n
             iv += m * nv
-    if np.abs(xy).max(initial=0) >= _FLAT_COORD_LIMIT:
+    if plan.vertices and max(-int(xy.min()), int(xy.max())) >= _FLAT_COORD_LIMIT:
         raise MaskReadError(f"{layout.path}: OASIS: flattened coordinates exceed +-2**53 database units")
     start = np.zeros(plan.polygons + 1, np.int64)
     np.cumsum(counts, out=start[1:])
