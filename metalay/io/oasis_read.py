@@ -275,7 +275,9 @@ def _term(expr: str, w: int, h: int) -> int:
 
 
 def _ctrapezoid(t: int, w: int, h: int) -> np.ndarray:
-    return np.array([[_term(p.split()[0], w, h), _term(p.split()[1], w, h)] for p in _CTRAP[t]], np.int64)
+    """Vertices of a CTRAPEZOID, counter-clockwise (the table lists them clockwise) from its first vertex."""
+    pts = np.array([[_term(p.split()[0], w, h), _term(p.split()[1], w, h)] for p in _CTRAP[t]], np.int64)
+    return np.concatenate([pts[:1], pts[:0:-1]])
 
 
 def circle_vertex_count(radius_db: float, tolerance_db: float) -> int:
@@ -428,7 +430,7 @@ class _Parser:
         self.tables = None
         self.validation = "none"
         self.handlers = {
-            oc.PAD: lambda c, a, r: None, oc.XYABSOLUTE: self.xy_mode, oc.XYRELATIVE: self.xy_mode,
+            oc.XYABSOLUTE: self.xy_mode, oc.XYRELATIVE: self.xy_mode,
             oc.CELL_REF: self.cell_record, oc.CELL_NAMED: self.cell_record,
             oc.LAYERNAME_GEOMETRY: self.layername, oc.LAYERNAME_TEXT: self.layername,
             oc.PLACEMENT: self.placement, oc.PLACEMENT_MAG: self.placement, oc.TEXT: self.text,
@@ -463,6 +465,9 @@ class _Parser:
         handlers = self.handlers
         while cur.pos < cur.end:
             at = cur.pos
+            if cur.buf[at] == oc.PAD:  # PAD records: skip a run of zero bytes at once (zeros deflate best)
+                _skip_zeros(cur)
+                continue
             rid = cur.uint()
             h = handlers.get(rid)
             if h is not None:
@@ -1021,6 +1026,17 @@ class _Parser:
             cells[name] = cell
         self.cells = []
         return OasisLayout(path, 1e-6 / self.unit, 1e-6, cells, self.validation)
+
+
+def _skip_zeros(cur) -> None:
+    """Move the cursor past a run of zero bytes (PAD records), looking at 64 KB at a time."""
+    while cur.pos < cur.end:
+        chunk = cur.arr[cur.pos:min(cur.end, cur.pos + (1 << 16))]
+        nz = np.flatnonzero(chunk)
+        if nz.size:
+            cur.pos += int(nz[0])
+            return
+        cur.pos += chunk.shape[0]
 
 
 def _positions(rep) -> int:
