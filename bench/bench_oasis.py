@@ -10,8 +10,10 @@ main thread writes the bands in order, as compile does) and written by:
 * ``gdstk``  gdstk's OASIS writer (snap -> group by exact shape -> all groups held -> one polygon + explicit
   repetition per shape -> Library.write_oas, compression level 1), the route compile uses today.
 
-Each case runs in its own process (peak memory = ru_maxrss of that process); every file is fsynced. The ratios are
-what counts (the machine is shared; absolute seconds vary by +-30 %).
+Each case runs in its own process (peak memory = ru_maxrss of that process); every file is fsynced. Then each file is
+read back to flat polygon arrays (metalay's reader on the GDSII and on the OASIS; gdstk's OASIS reader with numpy
+expansion of the repetitions, the route read_mask used before). The ratios are what counts (the machine is shared;
+absolute seconds vary by +-30 %).
 
 Run:  .venv/bin/python bench/bench_oasis.py [--sites 1e6 1e7] [--threads 2]
 """
@@ -92,7 +94,36 @@ def _in_order(fn, tasks, threads: int):
             yield pending.popleft().result()
 
 
+def _read(mode: str, folder: str) -> dict:
+    """Read a written file back to flat polygon arrays: metalay's reader (OASIS or GDSII, through read_mask) or
+    gdstk's OASIS reader with the repetitions expanded by numpy (how read_mask read OASIS before)."""
+    from metalay._memory import keep_freed_memory
+
+    keep_freed_memory()  # as the command line does
+    t0 = time.perf_counter()
+    if mode == "read_gdstk":
+        import gdstk
+
+        lib = gdstk.read_oas(str(Path(folder) / "oasis.oas"))
+        xy, counts = [], []
+        for p in lib.cells[0].polygons:  # as read_mask's gdstk route did: one expansion per polygon record
+            offs = p.repetition.get_offsets() if p.repetition.size else np.zeros((1, 2))
+            pts = np.rint((p.points[None, :, :] + offs[:, None, :]) * 1000).astype(np.int64)
+            xy.append(pts.reshape(-1, 2))
+            counts.append(np.full(pts.shape[0], pts.shape[1], np.int64))
+        xy, counts = np.concatenate(xy), np.concatenate(counts)
+        n = counts.shape[0]
+    else:
+        from metalay.gdsread import read_mask
+
+        n = read_mask(Path(folder) / ("oasis.oas" if mode == "read_oasis" else "gds.gds")).count
+    return {"polygons": n, "seconds": time.perf_counter() - t0,
+            "peak_mb": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024}
+
+
 def _child(mode: str, folder: str, diameter_um: float, threads: int) -> dict:
+    if mode.startswith("read"):
+        return _read(mode, folder)
     t0 = time.perf_counter()
     path = Path(folder) / f"{mode}.{'gds' if mode == 'gds' else 'oas'}"
     ap, lat, bands = _bands(diameter_um)
@@ -160,6 +191,7 @@ def main() -> None:
         diameter = PERIOD_NM * 1e-3 * math.sqrt(4.0 * target / math.pi)
         with tempfile.TemporaryDirectory(dir=out_root) as folder:
             res = {m: _run(m, folder, diameter, a.threads) for m in ("gds", "oasis", "gdstk")}
+            reads = {m: _run(m, folder, diameter, a.threads) for m in ("read_gds", "read_oasis", "read_gdstk")}
         g = res["gds"]
         print(f"{res['oasis']['sites']:,} sites (aperture {diameter:.0f} um, {a.threads} tile thread(s)):")
         for m, label in (("gds", "metalay flat GDSII (baseline)"), ("oasis", "metalay streamed OASIS"),
@@ -171,6 +203,11 @@ def main() -> None:
         print(f"  OASIS / flat GDSII time {o['seconds'] / g['seconds']:.2f} (goal <= 1.3), GDSII / OASIS size "
               f"{g['bytes'] / o['bytes']:.1f}x (goal >= 20x), OASIS peak {o['peak_mb']:.0f} MB vs gdstk "
               f"{res['gdstk']['peak_mb']:.0f} MB")
+        for m, label in (("read_gds", "read_mask(flat GDSII)"), ("read_oasis", "read_mask(OASIS), own reader"),
+                         ("read_gdstk", "gdstk.read_oas + numpy expansion")):
+            r = reads[m]
+            print(f"  read back: {label:34s} {r['seconds']:7.2f} s  peak {r['peak_mb']:6.0f} MB  "
+                  f"{r['polygons']:,} polygons")
 
 
 if __name__ == "__main__":

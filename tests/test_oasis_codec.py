@@ -11,7 +11,6 @@ import random
 import struct
 import subprocess
 import sys
-import zlib
 from pathlib import Path
 
 import gdstk

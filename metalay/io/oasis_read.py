@@ -30,8 +30,7 @@ import mmap
 import os
 import resource
 import zlib
-from array import array
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 
 import numpy as np
 
@@ -1102,7 +1101,7 @@ def _decode_runs(region: _Region) -> None:
         big = (v > np.uint64(oc.COORD_LIMIT)) & (mode >= 4)
         if big.any():
             k = int(np.searchsorted(np.cumsum(cu), int(np.argmax(big)), side="right"))
-            cur.fail(f"repetition space beyond 2**52 database units", u[k].at)
+            cur.fail("repetition space beyond 2**52 database units", u[k].at)
         du[mode == 4, 0] = v[mode == 4].astype(np.int64)
         du[mode == 5, 1] = v[mode == 5].astype(np.int64)
         d[rows_of(~is_g)] = du
