@@ -363,9 +363,11 @@ def test_gdstk_written_files_equal_gdstk_flattening(tmp_path, level, detect):
 # The writer: read back by gdstk and by metalay
 # ------------------------------------------------------------------------------------------------------------------
 
-def test_writer_every_repetition_kind_read_back_by_gdstk(tmp_path):
-    shape = np.array([[[0, 0], [10, 0], [10, 5], [0, 5]]])
-    cases = [np.stack(np.meshgrid(np.arange(5) * 100, np.arange(3) * 70), -1).reshape(-1, 2),   # type 1
+_REP_SHAPE = np.array([[[0, 0], [10, 0], [10, 5], [0, 5]]])
+
+
+def _rep_cases():
+    return [np.stack(np.meshgrid(np.arange(5) * 100, np.arange(3) * 70), -1).reshape(-1, 2),   # type 1
              np.stack([np.arange(6) * 33, np.full(6, 5)], 1),                                   # type 2
              np.stack([np.full(4, -9), np.arange(4) * 21], 1),                                  # type 3
              np.stack([np.arange(5) * 10, np.arange(5) * -3], 1),                               # type 9
@@ -375,11 +377,19 @@ def test_writer_every_repetition_kind_read_back_by_gdstk(tmp_path):
              np.array([[5, 5]]),                                                               # none
              np.array([[0, 0], [10, 0], [20, 0], [0, 10], [10, 10], [0, 20], [10, 20], [20, 20]]),  # rows differ
              np.array([[0, 0], [0, 0], [4, 4]])]                                               # a repeated site
+
+
+def _rep_expected():
+    return sorted(p for k, c in enumerate(_rep_cases()) for p in _expected(k, 0, c, np.repeat(_REP_SHAPE, len(c), 0)))
+
+
+def test_writer_every_repetition_kind_read_back_by_gdstk(tmp_path):
+    shape, cases = _REP_SHAPE, _rep_cases()
     path = tmp_path / "r.oas"
     with OasisStream(path, "TOP", compression_level=0) as oas:
         for k, c in enumerate(cases):
             oas.add_shape_groups(k, 0, shape, np.zeros(len(c), int), c)
-    want = sorted(p for k, c in enumerate(cases) for p in _expected(k, 0, c, np.repeat(shape, len(c), 0)))
+    want = _rep_expected()
     assert _flat_set(read_oasis(path)) == want
     assert _gdstk_set(path) == want  # Reference library: gdstk reads and flattens the file
     # walk the uncompressed records: START, CELL 0, then one POLYGON per case; collect the repetition types
@@ -544,6 +554,13 @@ def test_small_windows_give_the_same_result(tmp_path, monkeypatch):
     before = [_flat_set(read_oasis(p)) for p in (path, crafted)]
     monkeypatch.setattr(oasis_read, "_WINDOW", 16)
     assert [_flat_set(read_oasis(p)) for p in (path, crafted)] == before
+    monkeypatch.setattr(oasis_read, "_BIG_RUN", 2)  # and runs of more than 2 values decoded window by window
+    assert [_flat_set(read_oasis(p)) for p in (path, crafted)] == before
+    for level in (0, 1):  # long runs inside CBLOCKs and in the file, all repetition types
+        with OasisStream(tmp_path / "r.oas", "TOP", compression_level=level) as oas:
+            for k, c in enumerate(_rep_cases()):
+                oas.add_shape_groups(k, 0, _REP_SHAPE, np.zeros(len(c), int), c)
+        assert _flat_set(read_oasis(tmp_path / "r.oas")) == _rep_expected()
     assert before[0] == sorted(_expected(1, 0, centres, offsets))
 
 

@@ -706,6 +706,20 @@ class VarintTable:
         self.check(cur, k0, k1, what, pos)
         return k0, n_local, g0, n_global, self.end(k1)
 
+    def g_complete(self, k0: int) -> int:
+        """How many whole g-deltas the region holds from segment ``k0`` on (the last may be cut by its end)."""
+        n = self.n
+        if k0 >= n:
+            return 0
+        e0 = int(self.NE[k0])
+        if e0 >= n:  # only odd integers follow: every second one begins a g-delta that needs the next one
+            return max(0, (n - 2 - k0) // 2 + 1)
+        g0 = int(self.PH[e0 + 1])
+        tail = int(self.GH.shape[0]) - g0
+        if tail and int(self.GH[-1]) == n - 1 and self.V[n - 1] & np.uint64(1):
+            tail -= 1
+        return (e0 - k0) // 2 + 1 + tail
+
     def u_span(self, cur: "Cursor", pos: int, count: int, what: str):
         """Locate ``count`` integers starting at ``pos``: returns (k0, end position)."""
         k0 = self.index(pos)

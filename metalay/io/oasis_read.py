@@ -393,6 +393,8 @@ _WINDOW = 4 << 20
 """Bytes decoded together: a CBLOCK up to this size is one region; larger data is taken in windows of this size."""
 _EXPAND_CHUNK = 1 << 21
 """Vertices expanded in one vectorised step (bounds the temporary index arrays)."""
+_BIG_RUN = _WINDOW // 20
+"""Runs longer than this (in values) are decoded at once, window by window, instead of with their region."""
 
 
 _NAME_KINDS = {oc.CELLNAME: "CELLNAME", oc.CELLNAME_REF: "CELLNAME", oc.TEXTSTRING: "TEXTSTRING",
@@ -425,6 +427,8 @@ class _Parser:
         self.path_cache = (None, None, None)
         self.region = None
         self.entries = []
+        self.big_runs = []
+        self.run_bytes = 0
         self.unit = None
         self.tables = None
         self.validation = "none"
@@ -673,19 +677,53 @@ class _Parser:
         pos = cur.pos
         if count > cur.end - pos:
             cur.fail(f"{what}: {count} values declared, only {cur.end - pos} bytes left", at)
+        self.run_bytes += 16 * (count + 2)  # the decoded points or positions stay in memory: count them
+        self.admit(cur, at, 0, 0, what)
+        r = _Pending()
+        r.kind, r.mode, r.count, r.at, r.grid, r.rep_type, r.implied, r.value = kind, mode, count, at, 1, None, 0, None
+        if count > _BIG_RUN:  # decoded now, window by window (the caller sets grid and implied before use)
+            self.big_runs.append((cur, pos, r, what))
+            cur.pos = self.skip_run(cur, pos, r, what)
+            return r
         need = (20 if kind == "g" else 10) * count + 16
         if self.region is None or not self.region.covers(cur, pos, need):
             self.resolve()
             self.region = _Region(cur, pos, need)
         t = self.region.table
-        r = _Pending()
-        r.kind, r.mode, r.count, r.at, r.grid, r.rep_type, r.implied, r.value = kind, mode, count, at, 1, None, 0, None
         if kind == "g":
             r.k0, r.n_local, r.g0, r.n_global, cur.pos = t.g_span(cur, pos, count, what)
         else:
             r.k0, cur.pos = t.u_span(cur, pos, count, what)
         self.region.runs.append(r)
         return r
+
+    def skip_run(self, cur, pos: int, r: _Pending, what: str) -> int:
+        """Decode a long run window by window (bounded memory); keep its deltas on the run; return its end."""
+        d = np.empty((r.count, 2), np.int64)
+        done = 0
+        while done < r.count:
+            t = oc.VarintTable(cur.arr, pos, min(cur.end, pos + max(_WINDOW, 64)))
+            part = _Pending()
+            part.kind, part.count, part.at = r.kind, 0, r.at
+            part.mode = (r.mode + done) & 1 if r.kind == "u" and r.mode in (0, 1) else r.mode
+            m = min(r.count - done, t.g_complete(0) if r.kind == "g" else t.n)
+            if m == 0:
+                cur.fail(f"truncated or malformed {what}: {r.count} values expected", r.at)
+            part.count = m
+            if r.kind == "g":
+                part.k0, part.n_local, part.g0, part.n_global, pos = t.g_span(cur, pos, m, what)
+            else:
+                part.k0, pos = t.u_span(cur, pos, m, what)
+            d[done:done + m] = _raw_deltas(t, [part], cur)
+            done += m
+        r.value = d  # raw deltas until the record has set grid and implied; see finish_big_runs
+        return pos
+
+    def finish_big_runs(self):
+        runs, self.big_runs = self.big_runs, []
+        for cur, _, r, _ in runs:  # long runs (each at least _BIG_RUN values): one at a time
+            d, r.value = r.value, None
+            _finish_runs([r], d, cur)
 
     def read_point_list(self, cur, *, polygon: bool):
         """A point list, located now and decoded with its region (or at once when it is empty)."""
@@ -717,6 +755,7 @@ class _Parser:
 
     def resolve(self):
         """Decode the queued runs of the current region, then expand the queued geometry into polygons."""
+        self.finish_big_runs()
         region, self.region = self.region, None
         if region is not None and region.runs:
             _decode_runs(region)
@@ -743,10 +782,11 @@ class _Parser:
         if self.total_v > self.max_vertices:
             cur.fail(f"{kind} record: {n_vert} vertices bring the total to {self.total_v}, more than the limit "
                      f"max_vertices={self.max_vertices}", at)
-        need = self.total_p * _POLY_BYTES + self.total_v * _VERTEX_BYTES
+        need = self.total_p * _POLY_BYTES + self.total_v * _VERTEX_BYTES + self.run_bytes
         if need > self.max_memory:
-            cur.fail(f"{kind} record: {self.total_p} polygons with {self.total_v} vertices need about "
-                     f"{need / 1e6:.0f} MB, more than the memory budget of {self.max_memory / 1e6:.0f} MB", at)
+            cur.fail(f"{kind}: {self.total_p} polygons with {self.total_v} vertices and {self.run_bytes // 16} "
+                     f"decoded points and positions need about {need / 1e6:.0f} MB, more than the memory budget of "
+                     f"{self.max_memory / 1e6:.0f} MB", at)
 
     def add(self, cur, at, rid, pts, x, y, rep):
         """Queue one geometry record: base vertices ``pts`` ((V, 2) array or a located point list) relative to
@@ -1067,7 +1107,11 @@ def _seg_cumsum(d: np.ndarray, counts: np.ndarray, fail) -> np.ndarray:
 
 def _decode_runs(region: _Region) -> None:
     """Decode every located run of a region at once and set each run's ``value``."""
-    t, runs, cur = region.table, region.runs, region.cur
+    _finish_runs(region.runs, _raw_deltas(region.table, region.runs, region.cur), region.cur)
+
+
+def _raw_deltas(t, runs, cur) -> np.ndarray:
+    """The deltas of located runs, back to back (before a grid factor and the sums), vectorised over runs."""
     counts = np.array([r.count for r in runs], np.int64)
     is_g = np.array([r.kind == "g" for r in runs])
     d = np.empty((int(counts.sum()), 2), np.int64)
@@ -1105,6 +1149,12 @@ def _decode_runs(region: _Region) -> None:
         du[mode == 4, 0] = v[mode == 4].astype(np.int64)
         du[mode == 5, 1] = v[mode == 5].astype(np.int64)
         d[rows_of(~is_g)] = du
+    return d
+
+
+def _finish_runs(runs, d, cur) -> None:
+    """Grid factors, double deltas and checked sums of the deltas ``d`` of ``runs``; sets each run's ``value``."""
+    counts = np.array([r.count for r in runs], np.int64)
     grid = np.array([r.grid for r in runs], np.int64)
     if (grid != 1).any():
         gr = np.repeat(grid, counts)
