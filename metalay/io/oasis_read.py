@@ -41,8 +41,10 @@ __all__ = [
     "OasisLayout",
     "OasisCell",
     "Placement",
+    "FlattenPlan",
     "parse_oasis",
     "plan_flatten",
+    "circle_vertex_count",
     "flatten_layout",
     "read_oasis",
     "default_memory_budget",
@@ -366,10 +368,6 @@ class _Pending:
 
     __slots__ = ("kind", "mode", "k0", "count", "n_local", "g0", "n_global", "grid", "rep_type", "implied", "rows",
                  "value", "at")
-
-    @property
-    def positions(self):
-        return self.rows
 
 
 class _Region:
