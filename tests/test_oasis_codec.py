@@ -459,6 +459,37 @@ def test_writer_fins_flat_levels_fields_read_back(tmp_path):
     assert info["top_cells"] == ["TOP"] and len(info["cells"]) == len(names) + 1
 
 
+def test_writer_medium_mask_read_back_by_gdstk(tmp_path):
+    # 2e5 fins of a vortex + lens phase on a 325 nm square lattice, written in 4 tiles; gdstk (reference library)
+    # and metalay read back the same 2e5 polygons, vertex for vertex (compared as sorted integer arrays)
+    n = 450
+    i, j = np.meshgrid(np.arange(n) - n // 2, np.arange(n) - n // 2)
+    keep = (i ** 2 + j ** 2) <= (n // 2) ** 2
+    x_um, y_um = i[keep] * 0.325, j[keep] * 0.325
+    phi = 3 * np.arctan2(y_um, x_um) - np.pi * (x_um ** 2 + y_um ** 2) / (0.532 * 5000.0)
+    centres = snap_centres(x_um, y_um, 1.0)
+    offsets = element_offsets(FIN, np.mod(phi / 2, np.pi), 1.0)
+    path = tmp_path / "medium.oas"
+    with OasisStream(path, "TOP") as oas:
+        for sel in np.array_split(np.arange(len(centres)), 4):
+            g = group_shapes(offsets[sel])
+            oas.add_shape_groups(1, 0, g.shapes_db, g.shape_of_site, centres[sel])
+    want = (centres[:, None, :] + offsets).reshape(len(centres), -1)
+    lib = gdstk.read_oas(str(path))
+    got = []
+    for p in lib.top_level()[0].polygons:  # records (~1e3 per tile), not sites
+        offs = p.repetition.get_offsets() if p.repetition.size else np.zeros((1, 2))
+        got.append(np.rint((p.points[None, :, :] + offs[:, None, :]) * 1000).astype(np.int64).reshape(len(offs), -1))
+    got = np.concatenate(got)
+    mine = read_oasis(path).xy_db.reshape(len(centres), -1)
+
+    def rows(a):
+        return a[np.lexsort(a.T[::-1])]
+    assert len(centres) > 150_000
+    assert np.array_equal(rows(got), rows(want))
+    assert np.array_equal(rows(mine), rows(want))
+
+
 def test_writer_equals_compile_flat_gdsii(tmp_path, small_design_dict):
     # The oracle is the flat GDSII that compile writes with its own record writer. Its fins (centrally symmetric
     # 4-vertex outlines on layer 1) give back centre = (v0 + v2) / 2 and offsets = vertices - centre exactly; the
