@@ -1062,7 +1062,8 @@ class _Parser:
                 cell.placements.append(Placement(resolve(child, off), x, y, lin, rep, off))
             cells[name] = cell
         self.cells = []
-        return OasisLayout(path, 1e-6 / self.unit, 1e-6, cells, self.validation)
+        # 1e-6 / unit to 15 significant digits: a grid of 1000 steps per micron is exactly 1e-9 m, not 9.99...e-10
+        return OasisLayout(path, float(f"{1e-6 / self.unit:.15g}"), 1e-6, cells, self.validation)
 
 
 def _skip_zeros(cur) -> None:
