@@ -7,6 +7,11 @@ module         stage                                                            
                or OASIS -> ``FlatPolygons``; the database unit becomes ``db_unit_nm`` here   ``mask_info``
 ``writer.py``  own streaming flat-GDSII writer; gdstk builders for OASIS and hierarchy      ``GdsStream``,
                                                                                             ``boundary_records``
+``oasis_read.py``  OASIS -> flat polygon arrays with an own parser (no C extension), every     ``read_oasis``,
+                   count checked before anything is expanded                                ``parse_oasis``
+``oasis_write.py`` streaming OASIS writer: tile by tile, repetitions, CBLOCK, name tables,  ``OasisStream``
+                   validation signature, byte-deterministic; pure record encoders
+``_oasis_codec.py`` OASIS primitives used by both sides (integers, reals, deltas, point lists, repetitions)
 =============  ===========================================================================  =====================
 
 Imports: :mod:`metalay.errors`, :mod:`metalay.util`, the polygon records of :mod:`metalay.mask.layout`.
@@ -22,6 +27,9 @@ _ENTRIES = {
     "GdsStream": "writer",
     "boundary_records": "writer",
     "write_gdstk_library": "writer",
+    "read_oasis": "oasis_read",
+    "parse_oasis": "oasis_read",
+    "OasisStream": "oasis_write",
 }
 __all__ = sorted(_ENTRIES)
 __getattr__, __dir__ = lazy_entries(__name__, _ENTRIES)

@@ -4,7 +4,8 @@ The GDSII path is a record walk that recognises runs of identically structured e
 with numpy views (a run of ten million 4-vertex BOUNDARY elements is one strided view of the file); only the
 first element of a run is walked record by record in Python.  References (SREF/AREF) are resolved with numpy
 affine transforms after a cycle check and a count of the flattened size, so a hostile file is rejected before
-any large array is allocated.  OASIS files are read through gdstk and their repetitions expanded with numpy.
+any large array is allocated.  OASIS files are read by :mod:`metalay.io.oasis_read` (pure Python + numpy, counts
+checked before expansion).
 
 Every failure on malformed input is a :class:`metalay.errors.MaskReadError` naming the file, the byte offset
 and what was expected.
@@ -17,8 +18,6 @@ import math
 import mmap
 import os
 import struct
-import subprocess
-import sys
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -573,82 +572,42 @@ def _from_shapely(polys, layer, datatype) -> _Explicit:
 
 
 # ----------------------------------------------------------------------------------------------------------------
-# OASIS through gdstk
+# OASIS through metalay's own reader (metalay.io.oasis_read)
 # ----------------------------------------------------------------------------------------------------------------
 
-#: Seconds allowed for the OASIS probe: a base plus a rate per MB of file.
-OASIS_PROBE_BASE_S = 60.0
-OASIS_PROBE_S_PER_MB = 0.5
+def _read_oasis(path: str, layer_filter, max_elements: int = DEFAULT_MAX_ELEMENTS,
+                max_vertices: int = DEFAULT_MAX_VERTICES, max_depth: int = DEFAULT_MAX_DEPTH) -> _Library:
+    """Read an OASIS file with :mod:`metalay.io.oasis_read` (pure Python + numpy: a hostile file raises, it
+    cannot crash the process) into the shared library model.
 
-
-def _probe_oasis(path: str) -> None:
-    """Parse the OASIS file once in a child process before parsing it here.
-
-    gdstk's OASIS reader is C++; on some malformed files it crashes the whole process (seen here on 7 of 300
-    randomly mutated small files). Reading first in a throw-away child turns a crash, an error or a hang into a
-    one-line :class:`MaskReadError` and keeps this interpreter alive; files that pass are then read normally.
+    Every repetition and the placement fan-out through the whole hierarchy are counted before anything is
+    expanded and compared with the limits and the memory budget; only then are the placements of cells that hold
+    geometry expanded into affine maps (a placement of an empty cell is kept as one map).
     """
-    size_mb = os.path.getsize(path) / 1e6
-    timeout = OASIS_PROBE_BASE_S + OASIS_PROBE_S_PER_MB * size_mb
-    code = "import sys, gdstk; gdstk.read_oas(sys.argv[1])"
-    try:
-        proc = subprocess.run([sys.executable, "-c", code, path], capture_output=True, text=True, timeout=timeout)
-    except subprocess.TimeoutExpired as exc:
-        raise _err(path, f"OASIS reader did not finish within {timeout:.0f} s") from exc
-    if proc.returncode < 0:
-        raise _err(path, f"malformed OASIS file (the reader crashed on it with signal {-proc.returncode})")
-    if proc.returncode != 0:
-        lines = [ln for ln in proc.stderr.strip().splitlines() if ln.strip()]
-        raise _err(path, f"cannot read OASIS file ({lines[-1] if lines else 'reader failed'})")
+    from metalay.io import oasis_read
 
-
-def _read_oasis(path: str, layer_filter) -> _Library:
-    import gdstk
-
-    _probe_oasis(path)
-    try:
-        lib = gdstk.read_oas(path)
-    except Exception as exc:  # gdstk raises RuntimeError/ValueError on malformed files
-        raise _err(path, f"cannot read OASIS file ({exc})") from exc
-    scale = lib.unit / lib.precision
-    db_unit_m = float(lib.precision)
+    layout = oasis_read.parse_oasis(path, layer_filter=layer_filter, max_elements=max_elements,
+                                    max_vertices=max_vertices)
+    plan = oasis_read.plan_flatten(layout, max_elements=max_elements, max_vertices=max_vertices,
+                                   max_depth=max_depth)
     cells: dict[str, _Cell] = {}
-    for c in lib.cells:
+    for c in layout.cells.values():
         cell = _Cell(c.name)
         cells[c.name] = cell
-        pl, pd, pc, pxy = [], [], [], []
-        polys = list(c.polygons)
-        for p in list(c.paths) + list(getattr(c, "robustpaths", [])):
-            polys.extend(p.to_polygons())
-        for p in polys:
-            pts = np.rint(np.asarray(p.points) * scale).astype(np.int64)
-            if not layer_filter(np.array([p.layer]), np.array([p.datatype]))[0]:
-                continue
-            offs = p.repetition.get_offsets() if p.repetition.size > 0 else np.zeros((1, 2))
-            offs = np.rint(np.asarray(offs) * scale).astype(np.int64)
-            m = offs.shape[0]
-            pxy.append((pts[None, :, :] + offs[:, None, :]).reshape(-1, 2))
-            pc.append(np.full(m, pts.shape[0], np.int64))
-            pl.append(np.full(m, p.layer, np.int32))
-            pd.append(np.full(m, p.datatype, np.int32))
-        if pc:
-            cell.explicit.append(_Explicit(np.concatenate(pl), np.concatenate(pd), np.concatenate(pc),
-                                           np.concatenate(pxy)))
-        cell.n_elements[_BOUNDARY] = len(polys)
-        for r in c.references:
-            child = r.cell if isinstance(r.cell, str) else r.cell.name
-            offs = r.repetition.get_offsets() if r.repetition.size > 0 else np.zeros((1, 2))
-            offs = np.asarray(offs, np.float64) * scale
-            ang, mag = float(r.rotation), float(r.magnification)
-            cs, sn = math.cos(ang), math.sin(ang)
-            cs, sn = (0.0 if abs(cs) < 1e-15 else cs), (0.0 if abs(sn) < 1e-15 else sn)
-            fy = -1.0 if r.x_reflection else 1.0
-            lin = np.array([cs * mag, -sn * mag * fy, sn * mag, cs * mag * fy])
-            t = np.asarray(r.origin, np.float64) * scale + offs
-            aff = np.concatenate([np.broadcast_to(lin, (t.shape[0], 4)), t], axis=1)
-            cell.refs.append(_RefGroup(child, aff, 0))
-            cell.n_elements[_SREF] = cell.n_elements.get(_SREF, 0) + 1
-    return _Library(path, "OASIS", db_unit_m, db_unit_m * scale, cells)
+        for lay, dt, cnt, xy in c.chunks:  # the chunks the reader expanded, without joining them
+            cell.explicit.append(_Explicit(lay.astype(np.int32, copy=False), dt.astype(np.int32, copy=False),
+                                           cnt.astype(np.int64, copy=False), xy))
+        geometry = sum(v for k, v in c.records.items() if k in ("rectangle", "polygon", "trapezoid",
+                                                                  "ctrapezoid", "circle"))
+        for code, n in ((_BOUNDARY, geometry), (_PATH, c.records.get("path", 0)),
+                        (_SREF, c.records.get("placement", 0)), (_TEXT, c.records.get("text", 0))):
+            if n:
+                cell.n_elements[code] = n
+        for p in c.placements:
+            size = plan.sizes.get(p.child, (0, 0))[0]
+            aff = p.affine() if size else np.array([[*p.linear, float(p.x), float(p.y)]])
+            cell.refs.append(_RefGroup(p.child, aff, p.offset))
+    return _Library(path, "OASIS", layout.db_unit_m, layout.user_unit_m, cells)
 
 
 # ----------------------------------------------------------------------------------------------------------------
@@ -905,12 +864,13 @@ def _sniff(path: str) -> str:
     raise _err(path, "not a GDSII or OASIS file (unrecognised first bytes)")
 
 
-def _parse(path, layers=None, max_elements: int = DEFAULT_MAX_ELEMENTS):
+def _parse(path, layers=None, max_elements: int = DEFAULT_MAX_ELEMENTS, max_vertices: int = DEFAULT_MAX_VERTICES,
+           max_depth: int = DEFAULT_MAX_DEPTH):
     path = os.fspath(path)
     fmt = _sniff(path)
     filt = _make_filter(layers)
     if fmt == "OASIS":
-        return _read_oasis(path, filt), None
+        return _read_oasis(path, filt, max_elements, max_vertices, max_depth), None
     size = os.path.getsize(path)
     fh = open(path, "rb")
     try:
@@ -960,7 +920,7 @@ def read_mask(path, *, layers=None, cell: str | None = None, max_elements: int =
     ----------
     Calma GDSII Stream Format Manual, Release 6.0 (1987): record layout, 8-byte real format, AREF/STRANS rules.
     """
-    lib, mm = _parse(path, layers, max_elements)
+    lib, mm = _parse(path, layers, max_elements, max_vertices, max_depth)
     try:
         return _flatten(lib, cell, max_elements, max_vertices, max_depth)
     except MemoryError as exc:
@@ -1000,7 +960,7 @@ def mask_info(path, *, max_elements: int = DEFAULT_MAX_ELEMENTS, max_vertices: i
         and ``bbox_um``.  Lists are sorted, so the dict is deterministic.
     """
     path = os.fspath(path)
-    lib, mm = _parse(path, None, max_elements)
+    lib, mm = _parse(path, None, max_elements, max_vertices, max_depth)
     try:
         tops, order = _topology(lib, None, max_depth)
         sizes = _flat_sizes(lib, order)
