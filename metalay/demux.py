@@ -268,7 +268,8 @@ def aperture_sites(aperture_diameter_um: float, period_nm: float, *, lattice: st
 
     if lattice not in ("square", "hexagonal"):
         raise MetalayError(f"aperture_sites: lattice = {lattice!r}; allowed: 'square', 'hexagonal'")
-    sites = sample_sites(Aperture("circle", diameter_um=float(aperture_diameter_um)), Lattice(lattice, float(period_nm)))
+    sites = sample_sites(Aperture("circle", diameter_um=float(aperture_diameter_um)),
+                         Lattice(lattice, float(period_nm)))
     return np.asarray(sites.x_um, dtype=np.float64), np.asarray(sites.y_um, dtype=np.float64)
 
 
