@@ -216,3 +216,17 @@ def test_a_crashing_or_hanging_decoder_cannot_take_the_caller_down(tmp_path, mon
     monkeypatch.setattr(ic, "_DECODE", "import time; time.sleep(30)")
     with pytest.raises(MetalayError, match="did not finish"):
         ic.read_image(p, timeout_s=0.5)
+
+
+@pytest.mark.parametrize("name", ["zeros", "constant", "hot_pixel", "ramp", "corner_block", "noise"])
+def test_degenerate_images_are_unreadable_not_a_charge(name):
+    # Rule: verdicts are computed, never a default; an image without a beam must not yield a charge.
+    rng = np.random.default_rng(1)
+    img = {"zeros": np.zeros((64, 64)), "constant": np.full((64, 64), 7.0),
+           "hot_pixel": np.pad(np.ones((1, 1)), ((30, 33), (40, 23))),
+           "ramp": np.add.outer(np.arange(64.0), np.arange(64.0)),
+           "corner_block": np.pad(np.full((5, 5), 100.0), ((0, 59), (0, 59))),
+           "noise": rng.uniform(0, 255, (64, 64))}[name]
+    for reader in (ic.read_fork, ic.read_spiral, ic.read_triangle):
+        r = reader(img)
+        assert r.status == "unreadable" and r.charge is None and r.reason, (reader.__name__, r)
