@@ -34,7 +34,8 @@ away, so a detector window one spacing wide collects at most ``int_{-1/2}^{1/2} 
 
 Fan-out copies (O'Sullivan, Mirhosseini, Malik & Boyd 2012): ``N`` copies of the corrected strip placed side by
 side along y make a strip ``N`` times longer, so the spots become ``N`` times narrower at the same spacing.  As in
-that paper the copier is a separate pair of elements after the sorter: element 2 also carries a lens ``f_c``;
+that paper (from memory: a copying element and a phase-correcting element after the sorter) the copier is a
+separate pair of elements: element 2 also carries a lens ``f_c``;
 element 3, a distance ``f_c`` behind it (the Fourier plane of the strip), carries a phase grating along y of period
 ``lambda f_c / (2 pi a)`` (order ``m`` is displaced by ``m 2 pi a`` one Fourier transform later) plus two lenses
 ``f_c`` (one removes the quadratic phase of the first transform, one makes the second); element 4, a further
