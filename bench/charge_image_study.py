@@ -3,9 +3,9 @@ PNG 8-bit, PNG 16-bit and TIFF 16-bit files.
 
 Run:  .venv/bin/python bench/charge_image_study.py [--draws 6] [--seed 1] [--isolate]
 
-Each draw is a randomised scene from ``metalay.camerasim.study_scene`` (noise, background, gradient, tilt,
+Each draw is a randomised scene from ``metalay.measure.camerasim.study_scene`` (noise, background, gradient, tilt,
 off-centre beam; ranges in its docstring), encoded to the file format of the draw (cycling png8, png16, tiff16),
-written to a temporary folder, read back with ``metalay.imagecharge.read_image`` and read by the method's reader.
+written to a temporary folder, read back with ``imagecharge.read_image`` and read by the method's reader.
 Prints the success rate per method and per format, the unreadable and wrong counts, and the time per reading.
 The scenes are invented; a reading that says "unreadable" counts as a failure.
 """
@@ -22,7 +22,7 @@ import numpy as np
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
-from metalay import camerasim, imagecharge  # noqa: E402
+from metalay.measure import camerasim, imagecharge  # noqa: E402
 
 READERS = {"fork": imagecharge.read_fork, "spiral": imagecharge.read_spiral, "triangle": imagecharge.read_triangle}
 

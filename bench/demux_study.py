@@ -3,9 +3,9 @@
 Run:  .venv/bin/python bench/demux_study.py [--diameter-um 150] [--evaluations 1200]
 
 Prints, for the bundled four-channel example's square layout and for ring layouts designed by
-``metalay.demux.design_ring_layout`` (4 and 5 channels, 532 nm, 325 nm square lattice as in tio2-nanofin-532):
+``metalay.measure.demux.design_ring_layout`` (4 and 5 channels, 532 nm, 325 nm square lattice as in tio2-nanofin-532):
 worst row/column isolation and channel-power spread (direct sum at the channel directions) before and after
-``optimise_multiplex``; the same element through the FFT route of ``metalay.optics.crosstalk_matrix`` at padding 2
+``optimise_multiplex``; the same element through the FFT route of ``optics.crosstalk_matrix`` at padding 2
 and 8 (bilinear look-up), with the time ratio; the effect of quantising the phase to 16 levels; and the optimised
 channels as a design-file snippet.  The layouts are invented examples of our own.
 """
@@ -21,8 +21,9 @@ import numpy as np
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
-from metalay import demux, optics  # noqa: E402
-from metalay.phase import Channel  # noqa: E402
+from metalay.checks import optics
+from metalay.design.phase import Channel  # noqa: E402
+from metalay.measure import demux  # noqa: E402
 
 LAM, PERIOD = 532.0, 325.0
 

@@ -20,7 +20,7 @@ import numpy as np
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
-from metalay import sorter  # noqa: E402
+from metalay.measure import sorter  # noqa: E402
 
 LAM = 532.0
 

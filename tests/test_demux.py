@@ -3,9 +3,10 @@
 import numpy as np
 import pytest
 
-from metalay import demux, grid, optics
+from metalay.checks import grid, optics
+from metalay.design.phase import Channel, Multiplex
 from metalay.errors import MetalayError
-from metalay.phase import Channel, Multiplex
+from metalay.measure import demux
 
 LAM = 532.0
 PERIOD = 325.0
@@ -58,7 +59,7 @@ def _near_field(chans, diameter_um):
 
 
 def test_isolation_agrees_with_optics_crosstalk_on_fft_bins():
-    # Independent calculation: metalay.optics.crosstalk_matrix (scipy FFT of the probed near field at padding 8,
+    # Independent calculation: metalay.checks.optics.crosstalk_matrix (scipy FFT of the probed near field at padding 8,
     # bilinear look-up).  The channel directions are placed exactly on FFT bins, where the look-up needs no
     # interpolation; the definitions are the same (rows = conjugate-vortex probes, on-axis value at each spot), so
     # row isolations and the matrix relative to its diagonal must agree within 1 dB (issue 11, part 4).  Off the

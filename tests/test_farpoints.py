@@ -3,7 +3,7 @@
 import numpy as np
 import pytest
 
-from metalay import farpoints, grid
+from metalay.checks import farpoints, grid
 from metalay.errors import MetalayError
 
 LAM = 532.0
@@ -54,7 +54,7 @@ def test_site_sum_equals_closed_form_dirichlet_kernel():
 
 
 def test_direct_sum_matches_padded_fft_at_bins_and_between_bins():
-    # Independent calculation: scipy FFT of the zero-padded field (metalay.grid.far_field) at padding 8.  At the
+    # Independent calculation: scipy FFT of the zero-padded field (metalay.checks.grid.far_field) at padding 8.  At the
     # FFT's own bin frequencies the two must agree to single precision (the FFT buffer is complex64); between bins
     # the FFT value comes from bilinear interpolation, which at padding 8 is within 0.2 dB near a spot peak.
     n = 128

@@ -13,9 +13,9 @@ import numpy as np
 import pytest
 from scipy import fft as sfft
 
-from metalay import camerasim as cs
-from metalay import imagecharge as ic
 from metalay.errors import MetalayError
+from metalay.measure import camerasim as cs
+from metalay.measure import imagecharge as ic
 
 FORMATS = [f[0] for f in cs.STUDY_FORMATS]
 
@@ -97,7 +97,7 @@ def _study(method):
 
 @pytest.mark.parametrize("method", ["fork", "spiral", "triangle"])
 def test_success_rate_over_charges_minus10_to_10(method):
-    # Simulated images (independent formulas in metalay.camerasim) with Poisson and Gaussian noise, background,
+    # Simulated images (independent formulas in metalay.measure.camerasim) with Poisson and Gaussian noise, background,
     # gradient, tilt and an off-centre beam, 8/16-bit PNG and 16-bit TIFF bytes.  Threshold: >= 19 of 21 read
     # right (90 %), and no reading may be a wrong number (failures must say "unreadable").
     good, wrong = _study(method)

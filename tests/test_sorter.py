@@ -4,8 +4,8 @@ import numpy as np
 import pytest
 from scipy import integrate
 
-from metalay import sorter
 from metalay.errors import MetalayError
+from metalay.measure import sorter
 
 LAM = 532.0
 
@@ -96,7 +96,7 @@ def test_optical_check_spacing_sign_and_crosstalk():
     # Source: Berkhout et al. 2010: after the two elements an OAM state l is a plane wave with phase l v / a, so a
     # lens F focuses it to t = lambda F l / (2 pi a), linear in l (the paper separates l = -5..5 this way).
     # Tolerance: slope within 0.5 % and every spot within 2 % of a spacing (exact non-paraxial propagation of a
-    # 4-wave corrector; measured 0.14 % and 0.4 %).  Sign: a phase growing along +y goes to +y (metalay.grid),
+    # 4-wave corrector; measured 0.14 % and 0.4 %).  Sign: a phase growing along +y goes to +y (metalay.checks.grid),
     # so l > 0 lands at t_y > 0.
     d = sorter.sorter_parameters(300.0, wavelength_nm=LAM, spot_spacing_um=20.0, period_nm=325.0)
     chk = sorter.sorter_check(d, charges=range(-3, 4), sample_um=1.5)

@@ -9,6 +9,8 @@ module          stage                                                           
 ``grid.py``     the FFT-centred grid, far field with angular axes, angular spectrum         ``far_field``
 ``oam.py``      OAM (spiral) spectrum: polar resampling + azimuthal FFT                     ``oam_spectrum``
 ``fringes.py``  simulated interferogram and an independent reading of the charge            ``read_charge``
+``farpoints.py`` far field evaluated exactly at chosen directions (direct sum, zoom), no     ``far_field_at_sites``
+                FFT padding involved
 ``optics.py``   optical check: Jones algebra per site -> near field -> far field, OAM,      ``check_optics``,
                 spots, crosstalk, lens; one evaluation path shared with the studies         ``evaluate_elements``
 ``plots.py``    deterministic PNG figures                                                   ``png_bytes``
@@ -28,6 +30,7 @@ _ENTRIES = {
     "RuleSet": "rules",
     "decode_sites": "decode",
     "far_field": "grid",
+    "far_field_at_sites": "farpoints",
     "oam_spectrum": "oam",
     "read_charge": "fringes",
     "check_optics": "optics",

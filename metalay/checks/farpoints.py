@@ -6,7 +6,7 @@ asked for, so the result does not depend on FFT padding or on interpolation betw
     A(u, v) = s(f) * sum_s E_s exp(-2 pi i (f_x x_s + f_y y_s)),      f = (u, v) n / wavelength,
 
 with ``s(f) = sinc(dx f_x) sinc(dy f_y)`` the cell-aperture factor of a near field that is piecewise constant
-over rectangular cells (as in :mod:`metalay.grid`; optional).  Two layouts of the near field are accepted:
+over rectangular cells (as in :mod:`metalay.checks.grid`; optional).  Two layouts of the near field are accepted:
 
 * sites given as parallel arrays ``(E, x_um, y_um)`` of any lattice: the sum runs over sites in chunks
   (memory bounded by ``chunk_elements`` complex numbers), vectorised inside a chunk;
@@ -14,7 +14,7 @@ over rectangular cells (as in :mod:`metalay.grid`; optional).  Two layouts of th
   matrix products (``ey^T E ex``), either at a list of points or on an outer-product grid of directions (a zoom
   transform around a spot, any sampling).
 
-Conventions are those of :mod:`metalay.grid`: time dependence ``exp(-i omega t)``, a near-field phase increasing
+Conventions are those of :mod:`metalay.checks.grid`: time dependence ``exp(-i omega t)``, a near-field phase increasing
 along +x sends light to +u; direction cosines ``u = wavelength f_x / n`` in the exit medium of index ``n``.
 
 Normalisation
@@ -22,7 +22,7 @@ Normalisation
 :func:`spot_strength` turns an amplitude into a dimensionless figure that does not depend on sampling:
 ``|A|^2 / (S sum_s |E_s|^2)``, with ``S`` the number of sites (grid samples) that carry the element.  It is 1 for a
 uniform plane wave over the element sent exactly towards that direction and equals the on-axis far-field intensity
-relative to that ideal (a Strehl-like ratio).  The bin power of :func:`metalay.grid.far_field` at an FFT bin
+relative to that ideal (a Strehl-like ratio).  The bin power of :func:`metalay.checks.grid.far_field` at an FFT bin
 ``f_k`` equals ``spot_strength * S / (M_x M_y)`` (``M`` the padded FFT sizes).
 
 References
@@ -36,7 +36,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from .errors import MetalayError
+from metalay.errors import MetalayError
 
 __all__ = ["far_field_at_sites", "far_field_at_grid", "far_field_zoom", "spot_strength"]
 

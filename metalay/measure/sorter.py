@@ -25,7 +25,7 @@ the paper's lens between the elements.
 
 After element 2 an input ``exp(i l theta)`` is ``exp(i l v / a)``: a plane wave tilted along +y2.  A Fourier lens
 of focal length ``F`` (ideal, paraxial: ``t = lambda F f``) focuses it to ``t_y = lambda F l / (2 pi a)``, on the +y
-side for ``l > 0`` (a phase increasing along +y sends light to +y, :mod:`metalay.grid`).  This is derived from the
+side for ``l > 0`` (a phase increasing along +y sends light to +y, ``checks.grid``).  This is derived from the
 paper's mapping (``theta = v / a``) and the lens's Fourier property; with the paper's choice ``a = d / (2 pi)``
 (the full azimuth spread over the width ``d``) the spacing is ``lambda F / d``.  A strip of length ``2 pi a``
 with uniform amplitude along ``v`` focuses to ``sinc^2`` along ``t_y`` whose first zero is exactly one spacing
@@ -65,7 +65,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from .errors import MetalayError
+from metalay.errors import MetalayError
 
 __all__ = [
     "LogPolarUnwrapper",
@@ -369,7 +369,7 @@ class SorterDesign:
         1: unwrapper + lens ``f``; 2: corrector + lens ``f`` (+ lens ``f_c``); 3: grating + 2 lenses ``f_c``;
         4: per-copy phases + lens ``f_c``.
         """
-        from .phase import Lens
+        from metalay.design.phase import Lens
 
         f_um, fc_um = self.focal_length_mm * 1e3, self.copier_focal_length_mm * 1e3
         el1 = (LogPolarUnwrapper(self.a_um, self.b_um, self.focal_length_mm), Lens(f_um))
@@ -556,7 +556,7 @@ def _input_beam(design: SorterDesign, xx, yy, charge: int, beam: str):
 
 def _element_screens(design: SorterDesign, axis: np.ndarray, sample_um: float) -> list:
     """Complex transmission of each element on the grid (phase terms times the element's aperture)."""
-    from .phase import target_phase
+    from metalay.design.phase import target_phase
 
     xx, yy = np.meshgrid(axis, axis)
     terms = design.element_terms()
@@ -573,7 +573,7 @@ def _element_screens(design: SorterDesign, axis: np.ndarray, sample_um: float) -
 
 def _detector_profile(field, axis, design: SorterDesign, tx, ty):
     """Power density along ty (integrated over tx) in the focal plane of the ideal Fourier lens ``F``."""
-    from . import farpoints
+    from metalay.checks import farpoints
 
     lam_um = design.wavelength_nm * 1e-3
     big_f = design.fourier_focal_length_mm * 1e3
@@ -616,12 +616,12 @@ def sorter_check(design: SorterDesign, charges=range(-5, 6), *, beam: str = "rin
     Notes
     -----
     Each element multiplies the field by its aperture and ``exp(i phi)``; between elements the field is
-    propagated by the band-limited angular-spectrum method (:func:`metalay.grid.angular_spectrum`, exact in the
+    propagated by the band-limited angular-spectrum method (:func:`metalay.checks.grid.angular_spectrum`, exact in the
     scalar approximation, non-paraxial) over ``f`` (and ``f_c``, ``f_c`` with copies); the detector plane of an ideal
     Fourier lens ``F`` is ``U(t) ~ A(t / F)`` with ``A`` the far field by a zoom transform
-    (:func:`metalay.farpoints.far_field_zoom`) around the expected spots, so no FFT padding enters the figures.
+    (:func:`metalay.checks.farpoints.far_field_zoom`) around the expected spots, so no FFT padding enters the figures.
     """
-    from . import grid
+    from metalay.checks import grid
 
     charges = np.asarray(list(charges), dtype=np.int64)
     if sample_um is None:

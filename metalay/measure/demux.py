@@ -2,7 +2,7 @@
 optimiser of the phase-only encoding (channel weights and phase offsets).
 
 A demultiplexer element carries several channels ``k`` (charge ``l_k``, carrier direction ``(u_k, v_k)``, weight
-``w_k``, offset ``p_k``) encoded phase-only as in the ``multiplex`` phase term (:class:`metalay.phase.Multiplex`):
+``w_k``, offset ``p_k``) encoded phase-only as in the ``multiplex`` phase term (``design.phase.Multiplex``):
 
     phi = arg( sum_k w_k exp(i (l_k atan2(y, x) + 2 pi (u_k x + v_k y) / wavelength + p_k)) ).
 
@@ -12,14 +12,14 @@ Discarding the amplitude of the sum creates mixing (intermodulation) products: `
 weights and five channels the amplitudes are about 0.40 (signal), 0.056 (``1, 1, -1``) and 0.051
 (``1, 1, 1, -1, -1``).
 
-Isolation (the definition of :func:`metalay.optics.crosstalk_matrix`, kept compatible)
+Isolation (the definition of :func:`metalay.checks.optics.crosstalk_matrix`, kept compatible)
 --------------------------------------------------------------------------------------
 Channel ``k`` is probed by illuminating the element with the conjugate vortex ``exp(-i l_k phi)`` (the input that
 channel ``k`` is built to receive); ``M[k, m]`` is the on-axis far-field intensity at channel ``m``'s direction.
 Here it is evaluated exactly at the direction by a direct sum over the element's sites
-(:mod:`metalay.farpoints`), as the dimensionless spot strength (1 = an ideal plane wave from the whole element).
+(:mod:`metalay.checks.farpoints`), as the dimensionless spot strength (1 = an ideal plane wave from the whole element).
 ``isolation_db[k] = 10 log10(M[k, k] / max_{m != k} M[k, m])`` (power of input ``k`` at its own spot against the
-strongest other spot it reaches: the row isolation of ``metalay.optics``); ``column_isolation_db[m]`` compares
+strongest other spot it reaches: the row isolation of ``metalay.checks.optics``); ``column_isolation_db[m]`` compares
 spot ``m``'s own input with the strongest other input landing there.  Channel power is ``M[k, k]``.
 
 Layouts
@@ -50,8 +50,8 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from .errors import MetalayError
-from .phase import Channel
+from metalay.design.phase import Channel
+from metalay.errors import MetalayError
 
 __all__ = [
     "channel_directions",
@@ -85,7 +85,7 @@ def ring_channels(charges, angle_deg: float, azimuths_deg, *, weights=None, offs
 
     Returns
     -------
-    tuple of :class:`metalay.phase.Channel`
+    tuple of :class:`metalay.design.phase.Channel`
     """
     charges = [int(q) for q in charges]
     az = [float(a) for a in azimuths_deg]
@@ -145,7 +145,7 @@ def layout_clearance(channels, *, wavelength_nm: float, aperture_diameter_um: fl
 
     Parameters
     ----------
-    channels : sequence of :class:`metalay.phase.Channel`
+    channels : sequence of :class:`metalay.design.phase.Channel`
     wavelength_nm : float
     aperture_diameter_um : float
         Element diameter ``D``; the spot scale is ``wavelength / D`` in direction cosines.
@@ -219,7 +219,7 @@ def design_ring_layout(charges, angle_deg: float, *, wavelength_nm: float, apert
 
     Returns
     -------
-    tuple of :class:`metalay.phase.Channel`
+    tuple of :class:`metalay.design.phase.Channel`
         Weights 1 and offsets 0 (see :func:`optimise_multiplex` for those).
 
     Notes
@@ -262,9 +262,9 @@ def design_ring_layout(charges, angle_deg: float, *, wavelength_nm: float, apert
 def aperture_sites(aperture_diameter_um: float, period_nm: float, *, lattice: str = "square"):
     """Lattice sites of a circular element as metalay's compiler places them: (x_um, y_um) arrays.
 
-    Uses :func:`metalay.lattice.sample_sites` (whole cells inside the aperture, one site at the origin).
+    Uses :func:`metalay.design.lattice.sample_sites` (whole cells inside the aperture, one site at the origin).
     """
-    from .lattice import Aperture, Lattice, sample_sites
+    from metalay.design.lattice import Aperture, Lattice, sample_sites
 
     if lattice not in ("square", "hexagonal"):
         raise MetalayError(f"aperture_sites: lattice = {lattice!r}; allowed: 'square', 'hexagonal'")
@@ -281,7 +281,7 @@ class DemuxPlan:
 
     Parameters
     ----------
-    channels : sequence of :class:`metalay.phase.Channel`
+    channels : sequence of :class:`metalay.design.phase.Channel`
         Charges and directions are used (weights and offsets are evaluation inputs).
     x_um, y_um : ndarray (S,)
         Site centres of the element.
@@ -296,7 +296,7 @@ class DemuxPlan:
     ``A[k, s] = exp(i (l_k theta_s + k0 (u_k x_s + v_k y_s)))`` (complex64), ``B[k C + m, s] =
     exp(-i l_k theta_s) exp(-i k0 (u_m x_s + v_m y_s))``; the element field is ``E = t / |t|`` with
     ``t = (w e^{i p}) @ A`` and the amplitudes at the spots are ``B @ E`` (the direct Fraunhofer sum of
-    :mod:`metalay.farpoints`, probe included).
+    :mod:`metalay.checks.farpoints`, probe included).
     """
 
     def __init__(self, channels, x_um, y_um, *, wavelength_nm: float, center_um=(0.0, 0.0),
@@ -363,7 +363,7 @@ class IsolationReport:
     matrix_db : ndarray (C, C)
         ``10 log10(M[k, m] / M[k, k])``.
     isolation_db : ndarray (C,)
-        Row isolation (the ``metalay.optics`` definition): own spot over the strongest other spot.
+        Row isolation (the ``metalay.checks.optics`` definition): own spot over the strongest other spot.
     column_isolation_db : ndarray (C,)
         Spot ``m``'s own input over the strongest other input landing there.
     channel_power : ndarray (C,)
@@ -426,7 +426,7 @@ def evaluate_multiplex(channels, *, wavelength_nm: float, aperture_diameter_um: 
 
     Parameters
     ----------
-    channels : sequence of :class:`metalay.phase.Channel`
+    channels : sequence of :class:`metalay.design.phase.Channel`
         Charges, directions, weights and offsets (as in a design file's ``multiplex`` term).
     wavelength_nm, aperture_diameter_um, period_nm : float
         Element on a circular aperture with sites as the compiler places them.
@@ -455,7 +455,7 @@ class MultiplexOptimisation:
 
     Attributes
     ----------
-    channels : tuple of :class:`metalay.phase.Channel`
+    channels : tuple of :class:`metalay.design.phase.Channel`
         Optimised channels: weights (largest 1, 4 decimals) and ``offset_deg`` (0..360, 2 decimals), exactly the
         numbers a design file's ``multiplex`` term carries; ``after`` is evaluated with these rounded numbers.
     before, after : IsolationReport
@@ -487,7 +487,7 @@ def optimise_multiplex(channels, *, wavelength_nm: float, aperture_diameter_um: 
 
     Parameters
     ----------
-    channels : sequence of :class:`metalay.phase.Channel`
+    channels : sequence of :class:`metalay.design.phase.Channel`
         Starting channels (charges and directions are kept).
     wavelength_nm, aperture_diameter_um, period_nm : float
         The element (circular aperture, sites as the compiler places them).

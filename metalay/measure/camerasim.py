@@ -1,6 +1,6 @@
 """Synthetic camera images of vortex beams, for testing charge readers and for checking a set-up on paper.
 
-Each image comes from a formula that does not share code with the readers in :mod:`metalay.imagecharge`:
+Each image comes from a formula that does not share code with the readers in :mod:`metalay.measure.imagecharge`:
 
 * fork interferogram: ``I = |E + R|^2`` with ``R`` a plane wave tilted towards a chosen azimuth;
 * spiral interferogram: ``R`` a spherical wave ``exp(i k r^2 / (2 R_c))`` (diverging for ``R_c > 0``);
@@ -25,7 +25,7 @@ from dataclasses import dataclass
 import numpy as np
 import scipy.fft as sfft
 
-from .errors import MetalayError
+from metalay.errors import MetalayError
 
 __all__ = ["pixel_coordinates", "lg_field", "fork_scene", "spiral_scene", "triangle_mask", "triangle_scene",
            "CameraModel", "expose", "encode_image", "STUDY_FORMATS", "study_scene"]

@@ -2,7 +2,7 @@
 and the triangular aperture itself as mask geometry.
 
 Image convention: row 0 is the top (+y), column 0 the left (-x), as seen looking towards the source (the beam
-travels towards the viewer) - the convention of :mod:`metalay.routes` and :mod:`metalay.camerasim`.  A camera that
+travels towards the viewer) - the convention of :mod:`metalay.routes` and ``measure.camerasim``. A camera that
 mirrors the image (a reflection in the path, a sensor read out flipped) reverses every sign below: flip the image
 first.  Charges follow the project's convention: a vortex ``exp(i l atan2(y, x))`` with time dependence
 ``exp(-i omega t)``.
@@ -18,7 +18,7 @@ Sign conventions (each pinned by a test that fails when flipped)
 * Triangle (Hickmann et al. 2010): the far field behind an equilateral triangle shows a triangular lattice of
   spots with ``|l| + 1`` spots per side; with the aperture's vertex towards ``apex_deg``, the spot triangle has a
   vertex towards ``apex_deg + 90 deg`` for ``l > 0`` and ``apex_deg - 90 deg`` for ``l < 0`` (the far field as a
-  lens's focal plane shows it, same axes as the aperture; found with the FFT model of :mod:`metalay.camerasim`).
+  lens's focal plane shows it, same axes as the aperture; found with the FFT model of :mod:`metalay.measure.camerasim`).
 
 Reading untrusted files
 -----------------------
@@ -47,7 +47,7 @@ import numpy as np
 import scipy.fft as sfft
 from scipy import ndimage
 
-from .errors import MetalayError
+from metalay.errors import MetalayError
 
 __all__ = [
     "MAX_IMAGE_PIXELS",
@@ -610,8 +610,9 @@ def read_triangle(image, *, apex_deg: float = 90.0, min_peak_fraction: float = 0
     and third moment ``arg(sum (z - c)^3) / 3`` give the spot triangle's vertex direction (the vertices, farthest
     out, dominate), hence the sign; for each vertex the outermost row of maxima on the far side is its edge, and
     the spots along it are counted on the image profile.  One bright spot (at least 12 px at half maximum, clear
-    of the image edge) with no second above 35 % reads 0.  Unreadable when no two edges agree, when an edge's length is not (count - 1) spacings within 35 %, or when
-    the orientation is within 10 degrees of the midpoint between the two expected ones.
+    of the image edge) with no second above 35 % reads 0.  Unreadable when no two edges agree, when an edge's
+    length is not (count - 1) spacings within 35 %, or when the orientation is within 10 degrees of the midpoint
+    between the two expected ones.
     """
     img = _physical(image)
     blank = _blank(img, "triangle")
@@ -681,7 +682,7 @@ def triangle_side_for_beam(ring_diameter_um: float) -> float:
     -----
     Side = ring diameter (ring radius = half the side, the triangle's centroid on the beam axis): the ring then
     crosses the three sides between the inscribed circle (0.29 side) and the vertices (0.58 side).  The ratio was
-    chosen with the FFT model of :mod:`metalay.camerasim` (``LG_0^l``, ``|l| <= 10``, noisy 8-bit frames, 42 per
+    chosen with the FFT model of :mod:`metalay.measure.camerasim` (``LG_0^l``, ``|l| <= 10``, noisy 8-bit frames, 42 per
     ratio) and :func:`read_triangle`: ring radius / side = 0.35: 23 of 42 read right, 0.40: 33, 0.45: 41,
     0.50 to 0.65: 42, 0.75: 20, 0.85: 14 (a triangle much larger than the ring barely truncates it and the spots
     smear along the edges; a much smaller one sits in the beam's dark core).  0.5 is inside the plateau.
@@ -708,7 +709,7 @@ class TriangleAperture:
         Centroid (to be placed on the beam axis).
     vertices_db : ndarray (3, 2) int64
         Counter-clockwise vertices in database units (integers of ``db_unit_nm``), ready for
-        :func:`metalay.writer.boundary_records` as ``vertices_db[None]``.
+        :func:`metalay.io.writer.boundary_records` as ``vertices_db[None]``.
     db_unit_nm : float
     snap_error_nm : float
         Largest distance a vertex moved when snapped to the database grid.
