@@ -64,3 +64,35 @@ def test_reported_isolation_equals_direct_sum_over_written_elements(tmp_path, la
     assert ct["worst_isolation_db"] == pytest.approx(want.min(), abs=1.0)
     if layout == "ring":
         assert want.min() > 25.0  # the ring's products miss the channels (measure.demux)
+
+
+def test_optimised_encoding_at_compile_time_is_recorded_deterministic_and_meets_the_goal(tmp_path):
+    # Issue 18 part 2, wired into design files: encoding = "optimise" replaces the weights and offsets by the
+    # optimiser's (deterministic), records before/after and the numbers in the manifest, and the optics check of the
+    # written mask measures >= 25 dB worst isolation with channel powers within 1 dB (a deliberately unequal start).
+    from metalay.cli import main
+    from metalay.errors import DesignError
+
+    # carriers on a regular pentagon (metalay.measure.demux: no mixing product lands on a channel)
+    chans = [{"charge": q, "angle_deg": 6.0, "azimuth_deg": 9.0 + 72.0 * k, "weight": w}
+             for k, (q, w) in enumerate(zip((-2, -1, 1, 2, 3), (1.0, 0.6, 1.0, 1.0, 0.8)))]
+    d = copy.deepcopy(SMALL_DESIGN)
+    d["phase"] = [{"kind": "multiplex", "encoding": "optimise", "encoding_evaluations": 300, "channels": chans}]
+    d["aperture"]["diameter_um"] = 40.0
+    d["checks"] = {"rules": False, "optics": True}
+    path = write_toml(tmp_path / "d.toml", d)
+    assert main(["compile", str(path), "-o", str(tmp_path / "a"), "--quiet"]) == 0
+    assert main(["compile", str(path), "-o", str(tmp_path / "b"), "--quiet"]) == 0
+    man_a = (tmp_path / "a" / "manifest.json").read_bytes()
+    assert man_a == (tmp_path / "b" / "manifest.json").read_bytes()
+    import json
+
+    man = json.loads(man_a)
+    (rec,) = man["derived"]["multiplex_encoding"]
+    assert rec["before"]["power_spread_db"] > 1.0 and rec["after"]["power_spread_db"] <= 1.0
+    assert [c["weight"] for c in rec["channels"]] != [c["weight"] for c in chans]
+    ct = man["checks"]["optics"]["figures"]["crosstalk"]
+    assert ct["worst_isolation_db"] >= 25.0 and ct["power_spread_db"] <= 1.0
+    d["phase"][0]["encoding"] = "best"
+    with pytest.raises(DesignError, match=r"phase\[0\]\.encoding.*'given', 'optimise'"):
+        load_design(write_toml(tmp_path / "bad.toml", d))

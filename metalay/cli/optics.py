@@ -64,9 +64,10 @@ def run(args) -> int:
         raise MetalayError(f"{args.mask}: mask file not found")
     design = None
     if args.design is not None:
+        from metalay.api import prepare_design
         from metalay.design.spec import load_design
 
-        design = load_design(args.design)
+        design = prepare_design(load_design(args.design))[0]  # the target as compile wrote it
     library = args.library or (design.library if design is not None else None)
     if library is None:
         raise MetalayError("command line: give --library (or --design, whose library is then used)")

@@ -39,6 +39,7 @@ __all__ = [
     "Multiplex",
     "PhaseMap",
     "PHASE_TERM_KINDS",
+    "ENCODINGS",
     "target_phase",
     "term_phase",
     "phase_gradient",
@@ -143,11 +144,26 @@ class Channel:
     offset_deg: float = 0.0
 
 
+#: Values of a multiplex term's ``encoding``: the weights and offsets as given, optimise them at compile time
+#: (:func:`metalay.api.prepare_design`), or numbers that the optimiser produced.
+ENCODINGS = ("given", "optimise", "optimised")
+
+
 @dataclass(frozen=True)
 class Multiplex:
-    """Phase-only (argument) encoding of a weighted superposition of vortex channels."""
+    """Phase-only (argument) encoding of a weighted superposition of vortex channels.
+
+    ``encoding = "optimise"`` asks :func:`metalay.api.prepare_design` (run by ``metalay compile``) to replace the
+    channel weights and offsets by those of :func:`metalay.measure.demux.optimise_multiplex` (worst isolation up,
+    channel powers equal within ``spread_db``; deterministic, at most ``max_evaluations`` encodings) before the
+    phase is written; the result carries ``encoding = "optimised"``. The phase itself always uses the channels as
+    they are.
+    """
 
     channels: tuple[Channel, ...]
+    encoding: str = "given"
+    spread_db: float = 0.5
+    max_evaluations: int = 1200
 
     def phase(self, x_um, y_um, *, wavelength_nm: float, sigma: int):
         k0_per_um = 2 * np.pi / (wavelength_nm * 1e-3)

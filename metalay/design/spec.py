@@ -13,6 +13,7 @@ from pathlib import Path
 from metalay.design.lattice import Aperture, Lattice
 from metalay.design.limits import DEFAULT_LIMITS, Limits
 from metalay.design.phase import (
+    ENCODINGS,
     PHASE_TERM_KINDS,
     Axicon,
     Channel,
@@ -274,7 +275,7 @@ def _parse_write_field(wf: TomlTable) -> WriteFieldSettings:
         wf.fail("origin_um", origin, "expected [x, y] in um")
     write_field = WriteFieldSettings(
         (float(size[0]), float(size[1])), (float(origin[0]), float(origin[1])),
-        wf.string("straddle", "shift", options=("shift", "drop", "keep")),
+        wf.string("straddle", "shift", options=("shift", "shift-or-drop", "drop", "keep")),
         float(wf.number("max_shift_nm", 50.0, lo=0.0, hi=1e4)),
         wf.boolean("cell_per_field", False))
     wf.check_unknown()
@@ -382,7 +383,9 @@ def _parse_term(r: TomlTable, base_dir: Path, wavelength_nm: float):
                                   float(cr.number("weight", 1.0, lo=0.0, lo_open=True, hi=1e6)),
                                   float(cr.number("offset_deg", 0.0, lo=-360.0, hi=360.0))))
             cr.check_unknown()
-        term = Multiplex(tuple(parsed))
+        term = Multiplex(tuple(parsed), r.string("encoding", "given", options=ENCODINGS[:2]),
+                         float(r.number("encoding_spread_db", 0.5, lo=0.05, hi=6.0)),
+                         int(r.number("encoding_evaluations", 1200, lo=50, hi=20000, integer=True)))
     else:  # map
         file = r.string("file")
         extent = r.raw("extent_um")

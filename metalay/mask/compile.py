@@ -155,6 +155,9 @@ def design_warnings(design: Design, library: CellLibrary, *, alias_fraction: flo
     if alias_fraction > 0:
         out.append(f"phase gradient exceeds pi per period at {100 * alias_fraction:.3g}% of sites (radius "
                    f"{alias_r_min_um:.3g} to {alias_r_max_um:.3g} um): the phase is aliased there")
+    if any(getattr(t, "encoding", None) == "optimise" for t in design.terms):
+        out.append("a multiplex term asks for encoding = 'optimise' but was written with its weights and offsets "
+                   "as given (metalay.api.compile_design / metalay compile optimise them)")
     if facing is not None and facing.source == "assumed":
         out.append(f"library {library.name!r} does not record the side it was computed for and the design does not "
                    "state design.lit_from: assumed light arrives through the substrate (the mask is not mirrored)")
@@ -181,7 +184,8 @@ def _sha256(path: Path) -> str:
 
 
 def compile_mask(design: Design, out_dir: str | Path, *, checks: Sequence[MaskCheck] = (),
-                 show_progress: bool | None = None, sites_per_tile: int = SITES_PER_TILE) -> CompileResult:
+                 show_progress: bool | None = None, sites_per_tile: int = SITES_PER_TILE,
+                 annotations: dict | None = None) -> CompileResult:
     """Compile ``design`` into mask files and a manifest in ``out_dir`` (all or nothing), then run ``checks``.
 
     Files are first written into a staging folder inside ``out_dir`` and moved into place only when every stage
@@ -203,6 +207,10 @@ def compile_mask(design: Design, out_dir: str | Path, *, checks: Sequence[MaskCh
         Progress bar on stderr (None: only on a terminal).
     sites_per_tile : int
         Tile size bound (memory).
+    annotations : dict, optional
+        What was worked out before the compile (e.g. ``{"multiplex_encoding": [...]}`` from
+        :func:`metalay.api.prepare_design`), recorded as ``manifest["derived"]``; an entry's records may carry a
+        ``summary`` line, printed in the compile summary.
 
     Returns
     -------
@@ -216,7 +224,7 @@ def compile_mask(design: Design, out_dir: str | Path, *, checks: Sequence[MaskCh
     try:
         try:
             result = _compile_into(design, stage, checks=checks, show_progress=show_progress,
-                                   sites_per_tile=sites_per_tile)
+                                   sites_per_tile=sites_per_tile, annotations=annotations or {})
         except OSError as exc:  # e.g. the disk filled up while writing: one line, nothing left behind
             raise OutputError(f"{out}: writing failed ({exc.strerror or exc})") from exc
         moved = {}
@@ -248,7 +256,7 @@ def _folders_to_create(path: Path) -> list[Path]:
 
 
 def _compile_into(design: Design, out: Path, *, checks: Sequence[MaskCheck], show_progress: bool | None,
-                  sites_per_tile: int) -> CompileResult:
+                  sites_per_tile: int, annotations: dict) -> CompileResult:
     """The stages of one compile into the folder ``out``: plan, tiles, gdstk formats, checks, manifest."""
     t_start = time.perf_counter()
     timings: dict[str, float] = {}
@@ -270,6 +278,8 @@ def _compile_into(design: Design, out: Path, *, checks: Sequence[MaskCheck], sho
         timings["gdstk_write_s"] = time.perf_counter() - t0
     results = _run_checks(plan, enabled, files, timings)
     manifest = _manifest(plan, gathered, files, results, known_hashes)
+    if annotations:
+        manifest["derived"] = annotations
     atomic_write_text(out / "manifest.json", json.dumps(manifest, sort_keys=True, indent=2, default=str) + "\n")
     timings["total_s"] = time.perf_counter() - t_start
     atomic_write_text(out / "timings.json", json.dumps(_rounded(timings), sort_keys=True, indent=2) + "\n")
@@ -1066,6 +1076,8 @@ def _summary(design: Design, library: CellLibrary, manifest: dict, files: dict) 
     ]
     for info in manifest["files"].values():
         lines.append(f"wrote {info['name']} ({info['bytes'] / 1e6:.2f} MB, sha256 {info['sha256'][:12]})")
+    for records in manifest.get("derived", {}).values():
+        lines.extend(r["summary"] for r in records if isinstance(r, dict) and "summary" in r)
     lines.append(f"illumination: lit from the {manifest['illumination']['lit_from']} ({library.mode}; "
                  f"{'mirrored' if manifest['illumination']['mirrored_y'] else 'not mirrored'} in the file)")
     verdicts = manifest["verdicts"]
