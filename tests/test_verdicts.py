@@ -124,3 +124,26 @@ def test_fringe_reading_whose_loops_disagree_is_unreadable():
     assert optics.optics_verdicts(figures)["verdict"] == "fail"
     figures["fringe_reading"] = {"status": "read", "charge": 3, "design_charge": 3}
     assert optics.optics_verdicts(figures)["verdict"] == "pass"
+
+
+def test_write_field_edges_are_judged(tmp_path):
+    # Elements that stay across a field boundary (stitching splits them) or are left out are judged per site:
+    # fields of 5 um from (0.1, 0.1) um cut through rows of cells, and a 1 nm shift budget moves almost none.
+    from metalay.api import compile_design
+
+    verdicts = {}
+    for mode in ("shift", "shift-or-drop"):
+        d = copy.deepcopy(SMALL_DESIGN)
+        d["design"]["name"] = f"wf-{mode}"
+        d["mask"]["write_field"] = {"size_um": 5.0, "origin_um": [0.1, 0.1], "straddle": mode, "max_shift_nm": 1.0}
+        res = compile_design(load_design(write_toml(tmp_path / f"{mode}.toml", d)), tmp_path / mode,
+                             show_progress=False)
+        items = {i["key"]: i for i in res.manifest["verdicts"]["by_check"]["writing"]["items"]}
+        counts = res.manifest["process"]["write_field"]["counts"]
+        verdicts[mode] = items
+        assert items["straddling_fraction"]["count"] == counts["kept_straddling"]
+        assert items["dropped_fraction"]["count"] == counts["dropped"]
+    assert verdicts["shift"]["straddling_fraction"]["verdict"] == "fail"
+    assert verdicts["shift"]["dropped_fraction"]["verdict"] == "pass"
+    assert verdicts["shift-or-drop"]["dropped_fraction"]["verdict"] == "fail"
+    assert verdicts["shift-or-drop"]["straddling_fraction"]["verdict"] == "pass"

@@ -1613,9 +1613,12 @@ def check_optics(mask_path, library, *, design=None, target: OpticsTarget | None
     if opt.make_plots:
         from metalay.checks.report import render_html
 
-        html_text = render_html(title=opt.title or f"Optical check of {mask_path.name}", caution=SAFETY_NOTE,
+        verdict = figures["verdicts"]
+        html_text = render_html(title=(opt.title or f"Optical check of {mask_path.name}")
+                                + f": verdict {verdict['verdict'].upper()}", caution=SAFETY_NOTE,
                                 inputs=inputs, figures={k: v for k, v in figures.items() if k != "inputs"},
-                                images=images, notes=notes)
+                                images=images, notes=[f"verdict {verdict['verdict'].upper()}: {verdict['summary']}",
+                                                      *notes])
     files = _write_outputs(Path(out_dir), figures, images, html_text) if out_dir is not None else {}
     timings["total_s"] = time.perf_counter() - t_all
     return OpticsResult(figures=figures, images=images, html=html_text, files=files, timings=timings,

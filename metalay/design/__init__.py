@@ -9,6 +9,10 @@ module         stage                                                            
                a pure vectorised function of ``(x_um, y_um)``                          ``phase_gradient``
 ``lattice.py`` sites of whole cells inside the aperture (square or hexagonal); a tile  ``sample_sites``
                is a band of rows
+``side.py``    which face the mask shows, which side the light arrives from: the      ``Facing``,
+               frame of the leaving light (mirror, rotation sign)                      ``resolve_facing``
+``limits.py``  verdict thresholds with units (pass / warn / fail), defaults and        ``judge``, ``Limits``
+               design overrides (``[checks.limits]``)
 =============  ======================================================================  ==========================
 
 Imports: :mod:`metalay.errors`, :mod:`metalay.validate` only.
@@ -26,6 +30,10 @@ _ENTRIES = {
     "sample_sites": "lattice",
     "Aperture": "lattice",
     "Lattice": "lattice",
+    "Facing": "side",
+    "resolve_facing": "side",
+    "Limits": "limits",
+    "judge": "limits",
 }
 __all__ = sorted(_ENTRIES)
 __getattr__, __dir__ = lazy_entries(__name__, _ENTRIES)

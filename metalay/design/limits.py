@@ -27,6 +27,8 @@ worst_isolation_db              dB     < 20        < 15        weakest channel's
 strehl                          1      < 0.8       < 0.5       focal peak over the aberration-free peak; 0.8 is
                                                                the Marechal criterion (Born & Wolf sec. 9.3)
 dropped_fraction                1      > 0         > 0.001     elements left out at write-field edges, of all sites
+straddling_fraction             1      > 0         > 0.001     elements written across a field boundary (stitching
+                                                               error splits them), of all sites
 shift_phase_error_deg           deg    > 10        > 30        worst phase error of an element shifted into a field
 snapping_phase_error_deg        deg    > 1         > 5         worst geometric-phase error from grid snapping
 quantisation_phase_error_deg    deg    > 25        > 50        pi/K of phase for K levels: K >= 8 passes, K = 4
@@ -93,6 +95,7 @@ DEFAULT_LIMITS = (
     Limit("worst_isolation_db", "worst channel isolation", "dB", True, 20.0, 15.0),
     Limit("strehl", "Strehl ratio of the focal spot", "1", True, 0.8, 0.5),
     Limit("dropped_fraction", "elements dropped at write-field edges / sites", "1", False, 0.0, 0.001),
+    Limit("straddling_fraction", "elements left straddling a write-field boundary / sites", "1", False, 0.0, 0.001),
     Limit("shift_phase_error_deg", "worst phase error of an element shifted into a write field", "deg", False,
           10.0, 30.0),
     Limit("snapping_phase_error_deg", "worst geometric-phase error from grid snapping", "deg", False, 1.0, 5.0),

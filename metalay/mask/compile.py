@@ -636,6 +636,9 @@ def _writing_verdict(plan: _Plan, totals: _Totals) -> dict:
         total = totals.n_sites + dropped
         items.append(judge(dropped / total if total else None, limits.get("dropped_fraction")))
         items[-1]["count"] = int(dropped)
+        kept = totals.wf_counts["kept_straddling"]
+        items.append(judge(kept / total if total else None, limits.get("straddling_fraction")))
+        items[-1]["count"] = int(kept)
         if totals.wf_counts["shifted"]:
             items.append(judge(math.degrees(totals.worst_shift_phase), limits.get("shift_phase_error_deg")))
         else:
