@@ -1274,7 +1274,7 @@ def _read_and_decode(mask_path: Path, lib, design, target, opt: OpticsOptions, n
     if bias_nm and lib.has_responses:
         t_long, t_short = _biased_responses(lib, t_long, t_short, decoded, bias_nm, notes)
     # a small window of polygons for the layout figure, then free the vertex table
-    zoom_c = target.center_um
+    zoom_c = tuple(float(v) for v in facing.beam_xy(*target.center_um))  # the axis as the file shows it
     zoom_hw = max(1.5, 4 * period_nm * 1e-3)
     first = flat.xy_db[flat.start[:-1]] * (flat.db_unit_nm / 1000.0)
     win = (np.abs(first[:, 0] - zoom_c[0]) < zoom_hw + 1) & (np.abs(first[:, 1] - zoom_c[1]) < zoom_hw + 1)
@@ -1520,10 +1520,11 @@ def _images(dec: _Decoded, ev: Evaluation, figures: dict, fringe_image, opt: Opt
                                     plots.phase_map(_target_phase(target.terms, xs[None, :], ys[:, None], target),
                                                     xs, ys, title="target phase", valid=valid))
     conv = near.converted[::sm, ::sm]
-    images["2_mask_phase"] = ("phase of the converted field decoded from the mask",
+    images["2_mask_phase"] = ("phase of the converted field decoded from the mask (frame of the leaving light)",
                               plots.phase_map(np.angle(conv), xs, ys, title="mask-derived phase",
                                               valid=valid & (np.abs(conv) > 0)))
-    images["3_layout_zoom"] = (f"mask polygons within {zoom_hw:g} um of ({zoom_c[0]:g}, {zoom_c[1]:g}) um",
+    images["3_layout_zoom"] = (f"mask polygons within {zoom_hw:g} um of ({zoom_c[0]:g}, {zoom_c[1]:g}) um, as the "
+                               "file shows them (patterned face seen from above)",
                                plots.layout_zoom(zoom_flat.start, zoom_flat.xy_db, db_unit_nm, center_um=zoom_c,
                                                  half_width_um=zoom_hw))
     lam_um = target.wavelength_nm * 1e-3
