@@ -39,7 +39,8 @@ def parse_charges(text: str) -> list[int]:
 
 
 def _check_options(p) -> None:
-    p.add_argument("--charges", default="-5..5", help="input charges: 'A..B' or a list '-2,0,3' (default -5..5)")
+    p.add_argument("--charges", default="-5..5",
+                   help="input charges: --charges=A..B or --charges=-2,0,3 (default -5..5)")
     p.add_argument("--beam", choices=("ring", "lg"), default="ring",
                    help="input beam: a Gaussian ring mid-annulus (same for every l) or LG_0^l (default ring)")
     p.add_argument("--max-slope-error-pct", type=float, default=2.0,
@@ -49,6 +50,8 @@ def _check_options(p) -> None:
     p.add_argument("--min-own-window", type=float, default=0.5,
                    help="smallest fraction of each charge's detected power in its own window (default 0.5)")
     p.add_argument("--max-side", type=int, default=4096, help="largest propagation grid side (default 4096)")
+    p.add_argument("--wave-plates", action="store_true",
+                   help="assume a half-wave plate before any element written for the spin it does not receive")
     p.add_argument("--json", action="store_true", help="print the figures as JSON instead of the text summary")
 
 
@@ -162,7 +165,8 @@ def _print_report(rep, out, quiet: bool) -> None:
     print(f"elements from: {rep.elements_from}")
     for e in f["elements"]:
         pe = e["written_phase_error_deg"]
-        print(f"  {e['mask']}: {e['sites']:,} elements, spin {e['input_spin']:+d}, converted power "
+        print(f"  {e['mask']}: {e['sites']:,} elements, written for spin {e['input_spin']:+d}, receives "
+              f"{e['arriving_spin']:+d}, converted power "
               f"{e['converted_power_per_element']:.4f}, written phase error rms {pe['rms']:.3f} deg")
     print("   l  position_um  predicted_um  error_spacings  own_window  detected")
     for k, lc in enumerate(f["charges"]):
@@ -184,7 +188,7 @@ def _run_check(args, designs, masks, out) -> int:
 
     th = _thresholds(args)
     rep = check_sorter(designs, masks, charges=parse_charges(args.charges), beam=args.beam, thresholds=th,
-                       max_side=args.max_side)
+                       max_side=args.max_side, wave_plates=args.wave_plates)
     files = write_sorter_report(rep, out)
     if args.json:
         print(json.dumps(dict(rep.figures, notes=list(rep.notes), files=sorted(files), caution=SORTER_SAFETY_NOTE),

@@ -11,19 +11,21 @@ written masks back:
 1. every structure polygon is decoded to a lattice site, cell and rotation (:func:`metalay.checks.decode.decode_sites`,
    the same decoder as ``metalay optics``);
 2. the cell responses of the library at the design wavelength give each site's converted (cross-polarised) field
-   ``((t_long - t_short) / 2) exp(2 i sigma theta)`` for input of the element's design spin
+   ``((t_long - t_short) / 2) exp(2 i s theta)`` for input of the spin ``s`` that reaches it
    (:func:`metalay.checks.optics.site_fields`); placed on the lattice grid (:func:`metalay.checks.optics.rasterize`),
    this is the element's screen, 0 outside the written elements;
 3. OAM beams are propagated through the screens and a bulk Fourier lens (:func:`metalay.measure.sorter.sorter_check`).
 
 Model and its limits (stated in every report): scalar propagation of the converted component only (the
 co-polarised leakage of each element is assumed removed by a circular analyser, as usual behind a geometric-phase
-element); each element illuminated in its design spin (elements with alternating design spins need no wave plate
-between them; otherwise a half-wave plate is assumed and the report says so); a unit cell transmits its response
-uniformly over its area (local periodic approximation); every element centred on the common axis and seen as in
-the mask's top view, light travelling along +z of that view (through the substrate first).  Mounting an element
-flipped mirrors it (y -> -y) and the sorter no longer sorts: the sorter, unlike a vortex plate, is not
-mirror-invariant.
+element); element 1 illuminated in its design spin and each later element in the spin the one before sends
+(opposite: a geometric-phase element converts ``|s>`` into ``|-s>``), so element 2 must be written for the
+opposite input spin of element 1 (or a half-wave plate put between them: ``wave_plates=True``); a unit cell
+transmits its response uniformly over its area (local periodic approximation); every element centred on the
+common axis and seen as in the mask's top view, light travelling along +z of that view (through the substrate
+first).  An element mounted the other way round (light onto the patterned face) is mirrored in its own frame,
+theta -> -theta and y -> -y, so it applies ``-phi(x, -y)``; both sorter phases are even in y, so that is ``-phi``:
+like the wrong spin, the sorter no longer sorts (unlike a vortex plate, whose charge survives the flip).
 
 References
 ----------
@@ -45,7 +47,7 @@ from metalay.design.logpolar import SorterDesign, SorterElement
 from metalay.errors import DesignError, MetalayError
 from metalay.measure.sorter import ElementScreen, SorterCheck, sorter_check, window_fraction_sinc2
 
-__all__ = ["SorterThresholds", "SorterReport", "sorter_setup", "written_element", "check_sorter",
+__all__ = ["SorterThresholds", "SorterReport", "sorter_setup", "written_element", "arriving_spins", "check_sorter",
            "write_sorter_report", "SORTER_SAFETY_NOTE"]
 
 #: The caution every sorter report and command carries.
@@ -163,7 +165,8 @@ def _phase_error_deg(field: np.ndarray, phi_t: np.ndarray) -> dict:
     return {"rms": float(np.degrees(np.sqrt(np.mean(e * e)))), "max": float(np.degrees(np.max(np.abs(e))))}
 
 
-def written_element(mask_path, design, *, library=None, size_tol_nm: float = 3.0) -> tuple[ElementScreen, dict]:
+def written_element(mask_path, design, *, library=None, size_tol_nm: float = 3.0,
+                    arriving_spin: int | None = None) -> tuple[ElementScreen, dict]:
     """Decode one written sorter element into its screen (converted field on the lattice grid).
 
     Parameters
@@ -176,12 +179,15 @@ def written_element(mask_path, design, *, library=None, size_tol_nm: float = 3.0
         Default: the design's library.
     size_tol_nm : float
         Size tolerance for matching library cells (:func:`metalay.checks.decode.decode_sites`).
+    arriving_spin : {+1, -1}, optional
+        Spin of the light that reaches the element (default: its design spin).  The screen is the converted field
+        for that input, ``conv exp(2 i s theta)``: an element written for the other spin applies ``-phi``.
 
     Returns
     -------
     (ElementScreen, dict)
         The screen and its figures: sites, decode statistics, mean converted power per element, written phase
-        error against the design phase at the decoded sites, mask name and SHA-256.
+        error against the design phase at the decoded sites (for the design spin), mask name and SHA-256.
     """
     from metalay.cells.library import CellLibrary, load_library
     from metalay.checks.decode import decode_sites
@@ -208,31 +214,51 @@ def written_element(mask_path, design, *, library=None, size_tol_nm: float = 3.0
     else:
         t_long, t_short = ideal_responses(len(lib.cells))
         responses = f"library {lib.name} has no responses: ideal half-wave cells"
-    jin = input_jones("design", design_sigma=design.sigma)
-    sf = site_fields(t_long[decoded.cell], t_short[decoded.cell], decoded.rotation_rad, jin, sigma=design.sigma)
+    spin = int(design.sigma if arriving_spin is None else arriving_spin)
+    if spin not in (1, -1):
+        raise MetalayError(f"arriving_spin = {arriving_spin!r}; allowed 1, -1")
+    tl, ts = t_long[decoded.cell], t_short[decoded.cell]
+    jin = input_jones("design", design_sigma=spin)
+    sf = site_fields(tl, ts, decoded.rotation_rad, jin, sigma=spin)
     s = sample_sites(design.aperture, design.lattice)
     near = rasterize(decoded, sf, jones_in=jin, expected_ij=(s.i, s.j))
     phi_t = target_phase(design.terms, decoded.x_um, decoded.y_um, wavelength_nm=design.wavelength_nm,
                          sigma=design.sigma)
+    as_designed = sf if spin == design.sigma else site_fields(
+        tl, ts, decoded.rotation_rad, input_jones("design", design_sigma=design.sigma), sigma=design.sigma)
     info = {"design": design.name, "mask": mask_path.name,
             "mask_sha256": hashlib.sha256(mask_path.read_bytes()).hexdigest(), "input_spin": int(design.sigma),
+            "arriving_spin": spin,
             "sites": int(len(decoded)), "aperture_sites": int(len(s)),
             "decode": {k: decoded.stats[k] for k in ("polygons", "unmatched", "off_lattice", "duplicates")},
             "converted_power_per_element": float(np.mean(np.abs(sf.converted.astype(np.complex128)) ** 2)),
-            "written_phase_error_deg": _phase_error_deg(sf.converted, phi_t), "responses": responses}
+            "written_phase_error_deg": _phase_error_deg(as_designed.converted, phi_t), "responses": responses}
     screen = ElementScreen(near.converted, near.x_um, near.y_um,
                            source=f"{mask_path.name} ({len(decoded):,} decoded elements, {responses})")
     return screen, info
 
 
-def _spin_notes(designs) -> list:
-    notes = []
+def arriving_spins(designs, *, wave_plates: bool = False) -> tuple[list, list]:
+    """Spin of the light reaching each element, and notes.
+
+    Element 1 receives its design spin; each element converts ``|s>`` into ``|-s>`` (geometric phase), so element
+    ``k + 1`` receives the opposite of what reached element ``k``.  With ``wave_plates`` a half-wave plate is
+    assumed wherever an element is written for the other spin (each element then receives its design spin).
+    """
+    spins, notes = [int(designs[0].sigma)], []
     for k in range(1, len(designs)):
-        if designs[k].sigma == designs[k - 1].sigma:
-            notes.append(f"element {k + 1} is written for spin {designs[k].sigma:+d} but receives the converted "
-                         f"light of element {k} (spin {-designs[k - 1].sigma:+d}): a half-wave plate between them "
-                         "is assumed (without it the element applies the opposite phase and the sorter fails)")
-    return notes
+        s = -spins[-1]
+        if designs[k].sigma != s:
+            if wave_plates:
+                notes.append(f"element {k + 1} is written for spin {designs[k].sigma:+d} but element {k} sends spin "
+                             f"{s:+d}: a half-wave plate between them is assumed (wave plates on)")
+                s = int(designs[k].sigma)
+            else:
+                notes.append(f"element {k + 1} is written for spin {designs[k].sigma:+d} but receives spin {s:+d} "
+                             f"from element {k}: it applies the opposite of its phase (write it for input_spin = "
+                             f"{s:+d}, or put a half-wave plate between them and check with wave plates on)")
+        spins.append(s)
+    return spins, notes
 
 
 def _setup_figures(setup: SorterDesign) -> dict:
@@ -279,7 +305,8 @@ def _verdict(chk: SorterCheck, setup: SorterDesign, th: SorterThresholds) -> tup
 
 def check_sorter(designs, masks=None, *, libraries=None, charges=range(-5, 6), beam: str = "ring",
                  thresholds: SorterThresholds = SorterThresholds(), max_side: int = 4096, pad_factor: float = 2.0,
-                 size_tol_nm: float = 3.0, workers: int = 2, make_plots: bool = True) -> SorterReport:
+                 size_tol_nm: float = 3.0, wave_plates: bool = False, workers: int = 2,
+                 make_plots: bool = True) -> SorterReport:
     """Check a sorter from its written masks (or, with ``masks=None``, from the ideal phase elements).
 
     Parameters
@@ -300,6 +327,9 @@ def check_sorter(designs, masks=None, *, libraries=None, charges=range(-5, 6), b
         Grid limit, angular-spectrum padding and FFT threads.
     size_tol_nm : float
         Cell matching tolerance of the decoder.
+    wave_plates : bool
+        Assume a half-wave plate wherever an element is written for the spin the previous one does not send
+        (:func:`arriving_spins`); default off: the light keeps the spin the elements give it.
     make_plots : bool
         Render the PNG figure.
 
@@ -316,7 +346,7 @@ def check_sorter(designs, masks=None, *, libraries=None, charges=range(-5, 6), b
              + (f" and f_c = {setup.copier_focal_length_mm:g} mm" if setup.n_copies > 1 else "")
              + f"; an ideal bulk Fourier lens F = {setup.fourier_focal_length_mm:.4g} mm after the last element",
              "every element centred on the common axis, light along +z of the mask's top view (through the "
-             "substrate first); a mirrored element (y -> -y) breaks the sorter"]
+             "substrate first); an element mounted patterned face first applies -phi and breaks the sorter"]
     elements = None
     infos = []
     if masks is None:
@@ -328,15 +358,16 @@ def check_sorter(designs, masks=None, *, libraries=None, charges=range(-5, 6), b
             raise MetalayError(f"sorter check: {len(masks)} masks for {len(designs)} element designs; give one "
                                "mask per element, in order")
         libs = list(libraries) if libraries is not None else [None] * len(designs)
+        spins, spin_notes = arriving_spins(designs, wave_plates=wave_plates)
         elements = []
-        for mask, design, lib in zip(masks, designs, libs):  # 2 or 4 elements
-            screen, info = written_element(mask, design, library=lib, size_tol_nm=size_tol_nm)
+        for mask, design, lib, spin in zip(masks, designs, libs, spins):  # 2 or 4 elements
+            screen, info = written_element(mask, design, library=lib, size_tol_nm=size_tol_nm, arriving_spin=spin)
             elements.append(screen)
             infos.append(info)
         elements_from = "written masks"
         notes.append("elements decoded from the written masks: converted (cross-polarised) field of each cell, "
                      "co-polarised leakage assumed removed by a circular analyser after each element")
-        notes.extend(_spin_notes(designs))
+        notes.extend(spin_notes)
     chk = sorter_check(setup, charges, beam=beam, pad_factor=pad_factor, max_side=max_side, workers=workers,
                        elements=elements)
     notes.extend(chk.notes)
@@ -423,7 +454,7 @@ def write_sorter_report(report: SorterReport, out_dir, *, title: str | None = No
     for name in sorted(report.images):
         put("sorter.png", report.images[name][1])
     inputs = {"elements_from": report.elements_from,
-              "elements": [{k: e[k] for k in ("design", "mask", "mask_sha256", "input_spin")}
+              "elements": [{k: e[k] for k in ("design", "mask", "mask_sha256", "input_spin", "arriving_spin")}
                            for e in report.figures["elements"]],
               "setup": report.figures["setup"], "beam": report.figures["beam"]}
     status = report.status.upper()
