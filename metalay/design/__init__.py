@@ -13,6 +13,8 @@ module         stage                                                            
                frame of the leaving light (mirror, rotation sign)                      ``resolve_facing``
 ``limits.py``  verdict thresholds with units (pass / warn / fail), defaults and        ``judge``, ``Limits``
                design overrides (``[checks.limits]``)
+``logpolar.py`` log-polar mode sorter elements as phase terms (kind ``mode_sorter``)   ``sorter_parameters``,
+               and the choice of their parameters                                      ``parse_sorter_term``
 =============  ======================================================================  ==========================
 
 Imports: :mod:`metalay.errors`, :mod:`metalay.validate` only.
@@ -34,6 +36,8 @@ _ENTRIES = {
     "resolve_facing": "side",
     "Limits": "limits",
     "judge": "limits",
+    "sorter_parameters": "logpolar",
+    "SorterElement": "logpolar",
 }
 __all__ = sorted(_ENTRIES)
 __getattr__, __dir__ = lazy_entries(__name__, _ENTRIES)

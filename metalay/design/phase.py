@@ -18,6 +18,8 @@ multiplex   several vortex channels (charge, carrier direction, weight) superpos
 map         an imported phase map (.npy or .csv) on a regular grid with a stated physical extent, sampled bilinearly
             after bringing each grid cell's four values onto one branch (so a map given wrapped to (-pi, pi] and
             the same map unwrapped give the same phase modulo 2 pi).
+mode_sorter one element of a log-polar OAM mode sorter (unwrapper, corrector, fan-out copier), with its lenses:
+            :class:`metalay.design.logpolar.SorterElement` (parameters chosen by ``sorter_parameters``).
 """
 
 from __future__ import annotations
@@ -239,7 +241,7 @@ class PhaseMap:
                 + (1 - tx) * ty * branch(v[j1, i0]) + tx * ty * branch(v[j1, i1]))
 
 
-PHASE_TERM_KINDS = ("vortex", "tilt", "lens", "axicon", "qplate", "multiplex", "map")
+PHASE_TERM_KINDS = ("vortex", "tilt", "lens", "axicon", "qplate", "multiplex", "map", "mode_sorter")
 
 
 def load_phase_map(path: str | Path, *, extent_um, where: str) -> PhaseMap:
