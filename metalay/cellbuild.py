@@ -23,7 +23,8 @@ Spec keys (see ``libraries/specs/*.toml``)::
     [sweep]    kind ("nanofin" | "slot" | "elliptic_pillar" | "round_pillar"), one {start_nm, stop_nm, step_nm} table or
                a list per dimension (length_nm/width_nm, major_nm/minor_nm, diameter_nm), optional height_nm list,
                levels (propagation only)
-    [solver]   harmonics_x, harmonics_y, n_stairs, convergence_extra (list of extra harmonics, e.g. [2, 4])
+    [solver]   tolerance_abs_t (default 2e-3), tolerance_phase_deg (default 0.5), max_harmonics (default 20),
+               optional harmonics_x, harmonics_y (sweep truncation; default: chosen from the tolerances), n_stairs
     [band]     relative_half_width, count
 """
 
@@ -40,9 +41,11 @@ import numpy as np
 
 from metalay.errors import LibraryError, MetalayError
 from metalay.materials import get_material
-from metalay.rcwa import Layer, Stack, ellipse_pattern, rect_pattern, solve
+from metalay.rcwa import (DEFAULT_TOLERANCE_ABS_T, DEFAULT_TOLERANCE_PHASE_DEG, Layer, Stack, ellipse_pattern,
+                          rect_pattern, solve)
 
-__all__ = ["CellBuildError", "BuildSpec", "SweepResult", "load_build_spec", "sweep", "pick_geometric",
+__all__ = ["CellBuildError", "BuildSpec", "SweepResult", "load_build_spec", "sweep", "converge_points",
+           "choose_sweep_harmonics", "ENERGY_TOLERANCE", "pick_geometric",
            "pick_propagation", "build_library", "import_responses", "plot_library", "library_table"]
 
 _DIMS = {"nanofin": ("length_nm", "width_nm"), "slot": ("length_nm", "width_nm"),
@@ -76,9 +79,11 @@ class BuildSpec:
     dims: dict               # name -> ndarray of candidate values
     heights_nm: tuple        # candidate heights of the patterned layer
     levels: int
-    harmonics: tuple
+    harmonics: tuple | None  # sweep truncation, or None: chosen from the convergence target
     n_stairs: int
-    convergence_extra: tuple
+    tolerance_abs_t: float
+    tolerance_phase_deg: float
+    max_harmonics: int
     band_half_width: float
     band_count: int
 
@@ -209,19 +214,25 @@ def load_build_spec(path) -> BuildSpec:
     heights = tuple(_values(sw, "height_nm", w)) if "height_nm" in sw else (patterned["thickness_nm"],)
     levels = int(_pos(sw, "levels", w, 8.0, hi=64)) if mech == "propagation" else 1
     w = f"{where} [solver]"
-    hx = int(_pos(so, "harmonics_x", w, 6.0, lo=0.5, hi=25))
-    hy = int(_pos(so, "harmonics_y", w, float(hx), lo=0.5, hi=25))
+    if "convergence_extra" in so:
+        raise _err(w, "convergence_extra", so["convergence_extra"], "no longer used: convergence is checked at "
+                   "every tabulated wavelength against tolerance_abs_t and tolerance_phase_deg")
+    harmonics = None
+    if "harmonics_x" in so or "harmonics_y" in so:
+        hx = int(_pos(so, "harmonics_x", w, lo=0.5, hi=25))
+        harmonics = (hx, int(_pos(so, "harmonics_y", w, float(hx), lo=0.5, hi=25)))
     n_stairs = int(_pos(so, "n_stairs", w, 8.0, lo=0.5, hi=64))
-    extra = so.get("convergence_extra", [2, 4])
-    if not isinstance(extra, list) or not all(isinstance(e, int) and 0 < e <= 10 for e in extra):
-        raise _err(w, "convergence_extra", extra, "list of integers 1..10")
+    tol_abs = _pos(so, "tolerance_abs_t", w, DEFAULT_TOLERANCE_ABS_T, lo=1e-5, hi=0.1)
+    tol_phase = _pos(so, "tolerance_phase_deg", w, DEFAULT_TOLERANCE_PHASE_DEG, lo=1e-3, hi=10.0)
+    max_h = int(_pos(so, "max_harmonics", w, 20.0, lo=1.5, hi=40))
     w = f"{where} [band]"
     half = _pos(bd, "relative_half_width", w, 0.15, hi=0.5)
     count = int(_pos(bd, "count", w, 11.0, lo=0.5, hi=201))
     return BuildSpec(where, name, _get(lib, "description", f"{where} [library]", str, "text", ""), mode, mech, wl,
                      period, lattice, _get(lib, "geometry_source", f"{where} [library]", str, "citation"),
                      _get(lib, "notes", f"{where} [library]", str, "text", "", required=False), inc, ext,
-                     tuple(layers), rules, kind, dims, heights, levels, (hx, hy), n_stairs, tuple(extra), half,
+                     tuple(layers), rules, kind, dims, heights, levels, harmonics, n_stairs, tol_abs, tol_phase,
+                     max_h, half,
                      count)
 
 
@@ -240,6 +251,8 @@ class SweepResult:
     power_long, power_short : ndarray (G,) float
     n_candidates : int
         Geometries in the sweep before the rules.
+    harmonics : (int, int)
+        Truncation of the sweep (chosen from the convergence target unless the spec fixes it).
     """
 
     dims: dict
@@ -248,6 +261,7 @@ class SweepResult:
     power_long: np.ndarray
     power_short: np.ndarray
     n_candidates: int
+    harmonics: tuple = (0, 0)
 
 
 def _rule_mask(spec: BuildSpec, dims: dict, height: np.ndarray) -> np.ndarray:
@@ -291,30 +305,119 @@ def _stack_for(spec: BuildSpec, dims: dict, height: np.ndarray, wavelength_nm: n
     return Stack(eps(spec.incident_medium), tuple(layers), eps(spec.exit_medium), p, p)
 
 
-def _responses(spec: BuildSpec, dims: dict, height, wavelength_nm, harmonics, *, progress=None, chunk=16):
-    """(t_long, t_short, power_long, power_short) for batched geometries, in chunks (progress callback per chunk)."""
+_STEP = 2   # orders added per axis between the two truncations compared
+
+
+def _responses(spec: BuildSpec, dims: dict, height, wavelength_nm, harmonics, *, progress=None, chunk=16,
+               other_side=False):
+    """(t_long, t_short, power_long, power_short) for batched geometries, in chunks (progress callback per chunk).
+
+    With ``other_side=True`` also the total power leaving on the other side (reflection for a transmission
+    library), ``(..., other_long, other_short)``, for the energy balance of lossless stacks.
+    """
     b = np.broadcast(*dims.values(), height, wavelength_nm).shape[0]
     full = {k: np.broadcast_to(v, (b,)).astype(float) for k, v in dims.items()}
     h = np.broadcast_to(height, (b,)).astype(float)
     wl = np.broadcast_to(wavelength_nm, (b,)).astype(float)
-    out = [np.empty(b, complex), np.empty(b, complex), np.empty(b), np.empty(b)]
+    out = [np.empty(b, complex), np.empty(b, complex), np.empty(b), np.empty(b), np.empty(b), np.empty(b)]
     for s in range(0, b, chunk):
         sl = slice(s, min(b, s + chunk))
         res = solve(_stack_for(spec, {k: v[sl] for k, v in full.items()}, h[sl], wl[sl]), wl[sl],
                     harmonics=harmonics)
         jm = res.t_jones if spec.mode == "transmission" else res.r_jones
-        pw = res.power_t if spec.mode == "transmission" else res.power_r
+        pw, po = (res.power_t, res.power_r) if spec.mode == "transmission" else (res.power_r, res.power_t)
         out[0][sl], out[1][sl] = jm[:, 0, 0], jm[:, 1, 1]
         out[2][sl], out[3][sl] = pw[:, 0], pw[:, 1]
+        out[4][sl], out[5][sl] = po[:, 0], po[:, 1]
         if spec.kind == "round_pillar":
             # a round pillar is isotropic at normal incidence; the y-sliced staircase breaks that by ~1e-3, so
             # both columns carry the polarisation average (the contract's t_long == t_short)
-            for i_l, i_s in ((0, 1), (2, 3)):
+            for i_l, i_s in ((0, 1), (2, 3), (4, 5)):
                 avg = (out[i_l][sl] + out[i_s][sl]) / 2
                 out[i_l][sl], out[i_s][sl] = avg, avg
         if progress is not None:
             progress(sl.stop - sl.start)
-    return tuple(out)
+    return tuple(out) if other_side else tuple(out[:4])
+
+
+def _change(t0l, t0s, t1l, t1s):
+    """Per point (change of |t|, change of phase in deg), the larger over the two polarisations; the phase is
+    compared only where |t| >= 0.1 (the phase of a vanishing amplitude carries no information)."""
+    d_abs = np.maximum(np.abs(np.abs(t1l) - np.abs(t0l)), np.abs(np.abs(t1s) - np.abs(t0s)))
+    ph = lambda a, b: np.where((np.abs(a) >= 0.1) & (np.abs(b) >= 0.1),  # noqa: E731
+                               np.abs(np.angle(b * np.conj(a), deg=True)), 0.0)
+    return d_abs, np.maximum(ph(t0l, t1l), ph(t0s, t1s))
+
+
+def converge_points(spec: BuildSpec, dims: dict, height, wavelength_nm, start):
+    """Responses converged point by point: the truncation of each (geometry, wavelength) point is raised by 2
+    orders per axis from ``start`` until its responses change by at most the spec's tolerances.
+
+    Parameters
+    ----------
+    spec : BuildSpec
+    dims : dict name -> ndarray (P,)
+        Geometry per point (with ``wavelength_nm`` (P,) and ``height`` scalar or (P,)).
+    start : (int, int)
+        First truncation.
+
+    Returns
+    -------
+    dict of ndarray (P,)
+        ``t_long, t_short, power_long, power_short, other_long, other_short`` at the finer truncation of the last
+        comparison, ``harmonics`` (P, 2) used, ``change_abs_t``, ``change_phase_deg`` achieved, ``converged``.
+
+    Notes
+    -----
+    The change is measured between truncations ``M`` and ``M + 2`` (both axes); the stored response is the one at
+    ``M + 2``. A point that does not reach the tolerances by ``spec.max_harmonics`` keeps its last values and is
+    flagged ``converged = False`` (the library states it).
+    """
+    p = np.broadcast(*dims.values(), height, wavelength_nm).shape[0]
+    full = {k: np.broadcast_to(v, (p,)).astype(float) for k, v in dims.items()}
+    h = np.broadcast_to(height, (p,)).astype(float)
+    wl = np.broadcast_to(wavelength_nm, (p,)).astype(float)
+    cur = (int(start[0]), int(start[1]))
+    prev = _responses(spec, full, h, wl, cur, other_side=True)
+    result = {k: np.empty(p, complex if k in ("t_long", "t_short") else float) for k in
+              ("t_long", "t_short", "power_long", "power_short", "other_long", "other_short", "change_abs_t",
+               "change_phase_deg")}
+    result["harmonics"] = np.zeros((p, 2), int)
+    result["converged"] = np.zeros(p, bool)
+    todo = np.arange(p)
+    while todo.size:
+        nxt = (cur[0] + _STEP, cur[1] + _STEP)
+        sub = {k: v[todo] for k, v in full.items()}
+        new = _responses(spec, sub, h[todo], wl[todo], nxt, other_side=True)
+        d_abs, d_ph = _change(prev[0], prev[1], new[0], new[1])
+        ok = (d_abs <= spec.tolerance_abs_t) & (d_ph <= spec.tolerance_phase_deg)
+        last = max(nxt) + _STEP > spec.max_harmonics
+        done = ok | last
+        for key, arr in zip(("t_long", "t_short", "power_long", "power_short", "other_long", "other_short"), new):
+            result[key][todo[done]] = arr[done]
+        result["change_abs_t"][todo[done]] = d_abs[done]
+        result["change_phase_deg"][todo[done]] = d_ph[done]
+        result["harmonics"][todo[done]] = nxt
+        result["converged"][todo[done]] = ok[done]
+        prev = tuple(a[~done] for a in new)
+        todo = todo[~done]
+        cur = nxt
+    return result
+
+
+def choose_sweep_harmonics(spec: BuildSpec, dims: dict, height) -> tuple:
+    """Sweep truncation from the convergence target: the truncation at which a representative geometry (the
+    median of the rule-passing sweep) converges at the design wavelength (:func:`converge_points`)."""
+    if spec.harmonics is not None:
+        return spec.harmonics
+    mid = {k: np.array([np.median(v)]) for k, v in dims.items()}
+    res = converge_points(spec, mid, float(np.median(height)), spec.design_wavelength_nm, _start(spec))
+    return tuple(int(v) for v in res["harmonics"][0])
+
+
+def _start(spec: BuildSpec) -> tuple:
+    """First truncation of the automatic choice: 4 orders per axis (the coarsest useful resolution)."""
+    return (4, 4)
 
 
 def sweep(spec: BuildSpec, *, progress=None) -> SweepResult:
@@ -334,9 +437,9 @@ def sweep(spec: BuildSpec, *, progress=None) -> SweepResult:
     if not np.any(ok):
         raise CellBuildError(f"{spec.path}: no geometry of the sweep passes the rules {spec.rules}")
     dims = {d: v[ok] for d, v in flat.items()}
-    tl, ts, pl, ps = _responses(spec, dims, height[ok], spec.design_wavelength_nm, spec.harmonics,
-                                progress=progress)
-    return SweepResult({**dims, "height_nm": height[ok]}, tl, ts, pl, ps, int(ok.size))
+    harmonics = choose_sweep_harmonics(spec, dims, height[ok])
+    tl, ts, pl, ps = _responses(spec, dims, height[ok], spec.design_wavelength_nm, harmonics, progress=progress)
+    return SweepResult({**dims, "height_nm": height[ok]}, tl, ts, pl, ps, int(ok.size), harmonics)
 
 
 def pick_geometric(sw: SweepResult) -> int:
@@ -415,21 +518,27 @@ def build_library(spec: BuildSpec, *, progress=None):
                                                  spec.band_count)
     wl = np.round(wl, 6)
     rep = {d: np.repeat(v, wl.size) for d, v in cell_dims.items()}
-    tl, ts, pl, ps = _responses(spec, rep, height, np.tile(wl, c), spec.harmonics)
-    tl, ts, pl, ps = (_q(a.reshape(c, wl.size)) for a in (tl, ts, pl, ps))
-
-    # convergence at the design wavelength for the chosen cells
-    conv = []
-    t0l, t0s, _, _ = _responses(spec, cell_dims, height, spec.design_wavelength_nm, spec.harmonics)
-    for e in spec.convergence_extra:
-        hh = (spec.harmonics[0] + e, spec.harmonics[1] + e)
-        t1l, t1s, _, _ = _responses(spec, cell_dims, height, spec.design_wavelength_nm, hh)
-        conv.append({"harmonics_x": hh[0], "harmonics_y": hh[1],
-                     "max_abs_change_t": _r(max(np.max(np.abs(t1l - t0l)), np.max(np.abs(t1s - t0s)))),
-                     "max_abs_change_abs_t": _r(max(np.max(np.abs(np.abs(t1l) - np.abs(t0l))),
-                                                    np.max(np.abs(np.abs(t1s) - np.abs(t0s))))),
-                     "max_change_phase_deg": _r(max(np.max(np.abs(np.angle(t1l / t0l, deg=True))),
-                                                    np.max(np.abs(np.angle(t1s / t0s, deg=True)))))})
+    pts = converge_points(spec, rep, height, np.tile(wl, c), sw.harmonics)
+    tl, ts, pl, ps = (_q(pts[k].reshape(c, wl.size)) for k in ("t_long", "t_short", "power_long", "power_short"))
+    lossless = _lossless(spec, wl)
+    per_point = []
+    for n, (ci, wi) in enumerate((ci, wi) for ci in range(c) for wi in range(wl.size)):
+        bal = (pts["power_long"][n] + pts["other_long"][n], pts["power_short"][n] + pts["other_short"][n])
+        if lossless[wi] and max(abs(bal[0] - 1), abs(bal[1] - 1)) > ENERGY_TOLERANCE:
+            raise CellBuildError(f"{spec.path}: cell {ids[ci]} at {wl[wi]:g} nm: R + T = {bal[0]:.9f} / {bal[1]:.9f} "
+                                 f"for a lossless stack (allowed 1 +- {ENERGY_TOLERANCE:g}); solver failure")
+        per_point.append({"cell_id": ids[ci], "wavelength_nm": float(wl[wi]),
+                          "harmonics_x": int(pts["harmonics"][n, 0]), "harmonics_y": int(pts["harmonics"][n, 1]),
+                          "change_abs_t": _r(pts["change_abs_t"][n]), "change_phase_deg": _r(pts["change_phase_deg"][n]),
+                          "converged": bool(pts["converged"][n]), "lossless": bool(lossless[wi]),
+                          "r_plus_t_long": _r(bal[0]), "r_plus_t_short": _r(bal[1])})
+    conv = {"tolerance_abs_t": spec.tolerance_abs_t, "tolerance_phase_deg": spec.tolerance_phase_deg,
+            "max_harmonics": spec.max_harmonics, "energy_tolerance": ENERGY_TOLERANCE,
+            "method": (f"per point, truncation raised by {_STEP} orders per axis from the sweep truncation until |t| "
+                       "and phase (where |t| >= 0.1) change by at most the tolerances; the finer solve is stored"),
+            "all_converged": bool(np.all(pts["converged"])),
+            "max_change_abs_t": _r(np.max(pts["change_abs_t"])),
+            "max_change_phase_deg": _r(np.max(pts["change_phase_deg"])), "points": per_point}
 
     base = Path(spec.path).parent
     mats = {}
@@ -449,11 +558,14 @@ def build_library(spec: BuildSpec, *, progress=None):
                  f"swept), |t| from {np.min(np.abs(tl[:, k])):.3f} to {np.max(np.abs(tl[:, k])):.3f}, relative "
                  f"phases {', '.join(f'{p:.0f}' for p in np.sort(ph))} deg at {wl[k]:g} nm.")
     solver = {"name": "metalay.rcwa", "method": "RCWA / Fourier modal method with scattering matrices",
-              "factorization": "Li 1997 (inverse rule along the discontinuity, Laurent along the other axis)",
+              "factorization": ("li: Li 1997 inverse rule along x and y (every edge of the cell is axis-parallel; "
+                                "chosen automatically per layer)"),
               "references": ["Moharam et al. 1995, J. Opt. Soc. Am. A 12, 1068",
                              "Li 1996, J. Opt. Soc. Am. A 13, 1870", "Li 1997, J. Opt. Soc. Am. A 14, 2758",
                              "Rumpf 2011, PIER B 35, 241"],
-              "harmonics_x": spec.harmonics[0], "harmonics_y": spec.harmonics[1], "truncation": "rectangular",
+              "sweep_harmonics_x": sw.harmonics[0], "sweep_harmonics_y": sw.harmonics[1],
+              "sweep_harmonics_source": "spec" if spec.harmonics is not None else "convergence target",
+              "truncation": "rectangular",
               "n_stairs": spec.n_stairs if spec.kind not in ("nanofin", "slot") else None,
               "incidence": "normal, from the incident medium", "convergence": conv,
               "sweep": {"kind": spec.kind, **{d: [_r(v) for v in spec.dims[d]] for d in names},
@@ -482,6 +594,22 @@ def build_library(spec: BuildSpec, *, progress=None):
                       layers=layers, rules=dict(spec.rules), provenance=provenance, cells=cells,
                       wavelengths_nm=wl, t_long=tl, t_short=ts, power_long=pl, power_short=ps)
     return lib, sw
+
+
+#: Largest |R + T - 1| accepted for a lossless stack (the S-matrix solution conserves energy to rounding for
+#: Hermitian permittivity operators, measured ~1e-13; 1e-6 leaves room for ill-conditioned evanescent modes).
+ENERGY_TOLERANCE = 1e-6
+
+
+def _lossless(spec: BuildSpec, wavelength_nm: np.ndarray) -> np.ndarray:
+    """Per wavelength: every material of the stack has Im(n) = 0 there."""
+    base = Path(spec.path).parent
+    names = {spec.incident_medium, spec.exit_medium, *[lay["material"] for lay in spec.layers],
+             *[lay["background"] for lay in spec.layers if lay["patterned"]]}
+    ok = np.ones(wavelength_nm.size, bool)
+    for nm in sorted(names):
+        ok &= np.abs(get_material(nm, base_dir=base).index(wavelength_nm).imag) == 0
+    return ok
 
 
 def _r(v: float) -> float:

@@ -73,9 +73,14 @@ def run(args) -> int:
         written = save_library(lib, args.output or _default_out(args.spec))
         if not args.quiet:
             print(lib.provenance["notes"])
-            for c in lib.provenance["solver"]["convergence"]:
-                print(f"convergence: harmonics ({c['harmonics_x']}, {c['harmonics_y']}) changes |t| by at most "
-                      f"{c['max_abs_change_abs_t']:.2e} and the phase by {c['max_change_phase_deg']:.2f} deg")
+            so = lib.provenance["solver"]
+            conv = so["convergence"]
+            hs = sorted({(p["harmonics_x"], p["harmonics_y"]) for p in conv["points"]})
+            print(f"sweep truncation ({so['sweep_harmonics_x']}, {so['sweep_harmonics_y']}) from the "
+                  f"{so['sweep_harmonics_source']}; band points converged with truncations {hs}: largest change "
+                  f"{conv['max_change_abs_t']:.1e} in |t|, {conv['max_change_phase_deg']:.2f} deg in phase "
+                  f"(targets {conv['tolerance_abs_t']:g}, {conv['tolerance_phase_deg']:g} deg; "
+                  f"{'all points converged' if conv['all_converged'] else 'NOT all points converged: see the file'})")
             for path in written:
                 print(f"wrote {path}")
         return 0
