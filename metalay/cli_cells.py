@@ -12,7 +12,7 @@ __all__ = ["add_parser", "run"]
 
 
 def add_parser(subparsers) -> None:
-    """Register ``cells build|show|import|complement``."""
+    """Register ``cells build|show|import|complement|rotation-check``."""
     p = subparsers.add_parser("cells", help="unit-cell libraries: build with the RCWA solver, show, import")
     sub = p.add_subparsers(dest="cells_command", required=True)
 
@@ -42,6 +42,18 @@ def add_parser(subparsers) -> None:
     c.add_argument("--name", help="name of the new library (default: <antenna name>-babinet-slots)")
     c.add_argument("-o", "--output", type=Path, default=Path("out") / "cells", help="output folder (default out/cells)")
     c.set_defaults(func=run)
+
+    r = sub.add_parser("rotation-check", help="solve rotated cells directly and store the rotation model's error "
+                       "in the library file")
+    r.add_argument("library", help="bundled library name or path to <name>.library.json")
+    r.add_argument("--angles", type=float, nargs="+", default=[15.0, 30.0, 45.0],
+                   help="rotations in degrees, each in (0, 90] (default 15 30 45)")
+    r.add_argument("--wavelength-nm", type=float, help="default: the library's design wavelength")
+    r.add_argument("--max-harmonics", type=int, default=12,
+                   help="largest truncation the convergence target may reach (default 12)")
+    r.add_argument("-o", "--output", type=Path,
+                   help="folder for the updated library (default: the library's own folder)")
+    r.set_defaults(func=run)
 
 
 def _default_out(spec: Path) -> Path:
@@ -123,6 +135,32 @@ def run(args) -> int:
         lib = babinet_slot_library(load_library(args.library), name=args.name)
         print(f"{lib.name}: Babinet-principle estimate, not a solver result ({lib.provenance.get('responses_source')})")
         for path in save_library(lib, args.output):
+            print(f"wrote {path}")
+        return 0
+    if cmd == "rotation-check":
+        from dataclasses import replace
+
+        from metalay.cellbuild import rotation_check
+        from metalay.library import load_library
+
+        lib = load_library(args.library)
+        if not 1 <= args.max_harmonics <= 40:
+            print(f"metalay: error: --max-harmonics = {args.max_harmonics} outside 1..40", file=sys.stderr)
+            return 2
+        rec = rotation_check(lib, args.angles, wavelength_nm=args.wavelength_nm, max_harmonics=args.max_harmonics)
+        for cell in rec["cells"]:
+            if cell["rotation_invariant"]:
+                print(f"{cell['cell_id']}: rotation invariant, nothing to check")
+                continue
+            print(f"{cell['cell_id']} at {rec['wavelength_nm']:g} nm, truncation ({cell['harmonics_x']}, "
+                  f"{cell['harmonics_y']}), last change {cell['convergence_change_abs_t']:.1e} in |t|, "
+                  f"{cell['convergence_change_phase_deg']:.2f} deg{'' if cell['converged'] else ' (NOT converged)'}")
+            for a in cell["angles"]:
+                print(f"  {a['angle_deg']:5.1f} deg: phase step spin +1 {a['phase_step_spin_plus_deg']:+7.2f} deg "
+                      f"(model {2 * a['angle_deg']:+.1f}), spin -1 {a['phase_step_spin_minus_deg']:+7.2f} deg; "
+                      f"conversion {a['conversion_direct']:.4f} direct vs {a['conversion_model']:.4f} model")
+        out = args.output or Path(lib.source_path).parent
+        for path in save_library(replace(lib, extra={**lib.extra, "rotation_check": rec}), out):
             print(f"wrote {path}")
         return 0
     print(f"metalay cells: unknown subcommand {cmd!r}", file=sys.stderr)

@@ -18,12 +18,16 @@ incident ``p`` so that at normal incidence (``phi = 0``) the basis is simply (x,
 
 Method
 ------
-Fourier expansion of the fields over harmonics ``(m, n)``, ``|m| <= Mx``, ``|n| <= My`` (rectangular truncation).
-Permittivity products use Li's factorisation rules for crossed gratings made of rectangular blocks (Li 1997):
+Fourier expansion of the fields over harmonics ``(m, n)``, ``|m| <= Mx``, ``|n| <= My`` (rectangular truncation),
+chosen by default from a convergence target (``harmonics="auto"``, see :func:`solve`).
+The permittivity rule is chosen per layer (``factorization="auto"``) and recorded in the result: for a layer whose
+edges are all axis-parallel, Li's factorisation rules for crossed gratings made of rectangular blocks (Li 1997):
 ``D_x = [[ [1/eps]_x^-1 ]]_y E_x`` (inverse rule along x, where E_x is normal to the block edges, then Laurent's rule
-along y), ``D_y`` likewise with x and y swapped, and ``E_z = [[eps]]^-1 D_z``. Curved outlines (ellipses) are
-staircased into rectangular blocks. ``factorization="laurent"`` uses Laurent's rule everywhere (the basic
-formulation, which converges slowly for high contrast; kept for comparison). Layers are combined with scattering
+along y), ``D_y`` likewise with x and y swapped, and ``E_z = [[eps]]^-1 D_z``; for a polygon layer with oblique
+edges (:class:`metalay.rcwa_nv.PolygonPattern`), the normal-vector method (Schuster et al. 2007), whose in-plane
+operator has off-diagonal blocks. Curved outlines (ellipses) given as blocks are staircased.
+``factorization="laurent"`` uses Laurent's rule everywhere (the basic formulation, which converges slowly for high
+contrast; kept for comparison). Layers are combined with scattering
 matrices referenced to a gap medium and Redheffer star products (Rumpf 2011), which are unconditionally stable
 (evanescent modes only appear as ``exp(i q d)`` with ``Im q >= 0``).
 
@@ -32,6 +36,7 @@ References
 Moharam, Grann, Pommet, Gaylord 1995, J. Opt. Soc. Am. A 12, 1068 (formulation of RCWA).
 Li 1996, J. Opt. Soc. Am. A 13, 1870 (Fourier factorisation rules).
 Li 1997, J. Opt. Soc. Am. A 14, 2758 (new formulation of the Fourier modal method for crossed gratings).
+Schuster, Ruoff, Kerwien, Rafler, Osten 2007, J. Opt. Soc. Am. A 24, 2880 (normal vector method).
 Rumpf 2011, Progress In Electromagnetics Research B 35, 241 (improved scattering matrices).
 """
 
@@ -53,6 +58,7 @@ __all__ = [
     "ellipse_pattern",
     "solve",
     "jones_circular",
+    "order_powers",
     "FACTORIZATIONS",
     "DEFAULT_TOLERANCE_ABS_T",
     "DEFAULT_TOLERANCE_PHASE_DEG",
@@ -130,6 +136,10 @@ class RcwaResult:
     harmonics : tuple (Mx, My)
     settings : dict
         Solver settings (for provenance).
+    order_fields : dict or None
+        Per-order tangential fields for :func:`order_powers` (any input polarisation by superposition):
+        ``"t"``/``"r"`` (B, 2N, 2) complex ``[E_x (N); E_y (N)]`` per input (p, s), ``"kx"``, ``"ky"`` (B, N),
+        ``"kz_t"``, ``"kz_r"`` (B, N), ``"flux_in"`` (B, 2), ``"m"``, ``"n"`` (N,) order indices.
     """
 
     t_jones: np.ndarray
@@ -140,6 +150,7 @@ class RcwaResult:
     orders_r: np.ndarray
     harmonics: tuple
     settings: dict = field(default_factory=dict)
+    order_fields: dict | None = None
 
 
 def _as_batch(a, batch: int, dtype=complex) -> np.ndarray:
@@ -543,8 +554,10 @@ def solve(stack: Stack, wavelength_nm, *, harmonics="auto", theta_deg: float = 0
                                harmonics=harmonics, theta_deg=theta_deg, phi_deg=phi_deg,
                                factorization=factorization, batch_chunk=batch_chunk))
         cat = lambda name: np.concatenate([getattr(r, name) for r in parts], axis=0)  # noqa: E731
+        fields = {k: (v if k in ("m", "n") else np.concatenate([r.order_fields[k] for r in parts], axis=0))
+                  for k, v in parts[0].order_fields.items()}
         return RcwaResult(cat("t_jones"), cat("r_jones"), cat("power_t"), cat("power_r"), cat("orders_t"),
-                          cat("orders_r"), (mx, my), parts[0].settings)
+                          cat("orders_r"), (mx, my), parts[0].settings, fields)
     return _solve_batch(stack, wavelength_nm, b, mx, my, theta_deg, phi_deg, rules)
 
 
@@ -633,7 +646,7 @@ def _solve_converged(stack, wavelength_nm, *, theta_deg, phi_deg, factorization,
                                "compared_with": [int(prev.harmonics[0]), int(prev.harmonics[1])],
                                "change_abs_t": d_abs, "change_phase_deg": d_ph, "converged": bool(done)}
     return RcwaResult(cur.t_jones, cur.r_jones, cur.power_t, cur.power_r, cur.orders_t, cur.orders_r, cur.harmonics,
-                      settings)
+                      settings, cur.order_fields)
 
 
 def _slice_b(a, sl, b, dtype):
@@ -779,8 +792,46 @@ def _solve_batch(stack, wavelength_nm, b, mx, my, theta_deg, phi_deg, rules):
                 "factorization_per_layer": list(rules),
                 "harmonics_x": mx, "harmonics_y": my, "truncation": "rectangular",
                 "theta_deg": float(theta_deg), "phi_deg": float(phi_deg)}
+    fields = {"t": c_trn, "r": c_ref, "kx": kx, "ky": ky, "kz_t": kz_trn, "kz_r": kz_ref, "flux_in": flux_in,
+              "m": m, "n": n, "prop_t": prop_t[:, :, 0], "prop_r": prop_r[:, :, 0]}
     return RcwaResult(t_j, r_j, ord_t.sum(axis=1), ord_r.sum(axis=1), np.moveaxis(ord_t, 2, 1),
-                      np.moveaxis(ord_r, 2, 1), (mx, my), settings)
+                      np.moveaxis(ord_r, 2, 1), (mx, my), settings, fields)
+
+
+def order_powers(result: RcwaResult, polarization, side: str = "t") -> np.ndarray:
+    """Power of every diffraction order for an input polarisation given as (p, s) amplitudes.
+
+    Parameters
+    ----------
+    result : RcwaResult
+    polarization : array_like (2,) complex
+        Input Jones vector in the (p, s) basis (= (x, y) at normal incidence with azimuth 0), e.g.
+        ``(1, 1j * sigma) / sqrt 2`` for spin ``sigma``; normalised here.
+    side : {"t", "r"}
+
+    Returns
+    -------
+    ndarray (B, N) float
+        Power per order divided by the incident power; orders flattened with m outer, n inner
+        (``result.order_fields["m"]``, ``["n"]`` give them).
+
+    Notes
+    -----
+    The fields of each order are linear in the input, so the order amplitudes of any polarisation are the
+    superposition of the p and s solutions; the power is the z-flux of the plane wave of that order.
+    """
+    f = result.order_fields
+    if f is None:
+        raise MetalayError("this result carries no per-order fields")
+    a = np.asarray(polarization, complex).reshape(2)
+    a = a / np.linalg.norm(a)
+    c = f[side] @ a                                                     # (B, 2N)
+    nh = f["kx"].shape[1]
+    flux_in = np.abs(a[0]) ** 2 * f["flux_in"][:, 0] + np.abs(a[1]) ** 2 * f["flux_in"][:, 1]
+    kz = f["kz_t"] if side == "t" else -f["kz_r"]
+    pw = _flux(c[:, :nh], c[:, nh:], f["kx"], f["ky"], kz) / flux_in[:, None]
+    pw = pw if side == "t" else -pw
+    return np.where(f["prop_t" if side == "t" else "prop_r"], pw, 0.0)
 
 
 def jones_circular(t_long, t_short):
