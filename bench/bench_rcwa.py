@@ -147,19 +147,22 @@ def in_fin_frame(j, angle_deg):
 
 
 def time_to_accuracy(label, runs, ref, tol_eta=0.005, tol_phase=1.0):
-    """Time of the first truncation whose (conversion, phase) is within the tolerances of the reference."""
+    """Time of the coarsest truncation from which every finer one tried stays within the tolerances of the
+    reference (a lucky crossing at a coarse truncation does not count)."""
     eta_ref, ph_ref = ref
+    rows = []
     for trunc, func in runs:
         t0 = time.perf_counter()
         eta, ph = func()
         dt = time.perf_counter() - t0
         d_eta, d_ph = eta - eta_ref, (ph - ph_ref + 180) % 360 - 180
-        ok = abs(d_eta) <= tol_eta and abs(d_ph) <= tol_phase
+        rows.append((trunc, dt, abs(d_eta) <= tol_eta and abs(d_ph) <= tol_phase))
         print(f"  {label:>8} {trunc:>22}: {dt:7.2f} s  eta {eta:.4f} ({d_eta:+.4f})  phase {ph:8.2f} deg "
-              f"({d_ph:+.2f}){'  <- reached' if ok else ''}", flush=True)
-        if ok:
-            return dt, trunc
-    return None, runs[-1][0]
+              f"({d_ph:+.2f}){'  within' if rows[-1][2] else ''}", flush=True)
+    for k in range(len(rows)):
+        if all(r[2] for r in rows[k:]):
+            return rows[k][1], rows[k][0]
+    return None, rows[-1][0]
 
 
 def accuracy_race(title, ref, ours_runs, grcwa_runs):

@@ -14,7 +14,8 @@ Architecture map (one module per pipeline stage, plain data between stages)::
     gdsread.read_mask(path)           vectorised mask reader (GDSII record walk, OASIS via gdstk)
     rules.check_mask(...)             design-rule check (shapely STRtree + lattice fast path)
     optics.check_optics(...)          near field from the written mask -> far field, OAM spectrum, metrics
-    rcwa / materials / cellbuild      unit-cell solver, optical constants, library builder
+    rcwa / rcwa_nv / materials / cellbuild   unit-cell solver (polygon layers, normal vectors), optical constants,
+                                      library builder
     cli.main                          thin command line over all of the above
 
 Conventions: exp(-i omega t); a plane wave to +z is exp(i k z); |sigma> = (x + i sigma y)/sqrt(2); a cell rotated

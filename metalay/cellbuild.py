@@ -24,7 +24,8 @@ Spec keys (see ``libraries/specs/*.toml``)::
                a list per dimension (length_nm/width_nm, major_nm/minor_nm, diameter_nm), optional height_nm list,
                levels (propagation only)
     [solver]   tolerance_abs_t (default 2e-3), tolerance_phase_deg (default 0.5), max_harmonics (default 20),
-               optional harmonics_x, harmonics_y (sweep truncation; default: chosen from the tolerances), n_stairs
+               optional harmonics_x, harmonics_y (sweep truncation; default: chosen from the tolerances on the
+               median geometry, at most sweep_max_harmonics, default 8), n_stairs
     [band]     relative_half_width, count
 """
 
@@ -84,6 +85,7 @@ class BuildSpec:
     tolerance_abs_t: float
     tolerance_phase_deg: float
     max_harmonics: int
+    sweep_max_harmonics: int  # cap of the sweep's truncation (the chosen cells are converged per point after)
     band_half_width: float
     band_count: int
 
@@ -225,6 +227,7 @@ def load_build_spec(path) -> BuildSpec:
     tol_abs = _pos(so, "tolerance_abs_t", w, DEFAULT_TOLERANCE_ABS_T, lo=1e-5, hi=0.1)
     tol_phase = _pos(so, "tolerance_phase_deg", w, DEFAULT_TOLERANCE_PHASE_DEG, lo=1e-3, hi=10.0)
     max_h = int(_pos(so, "max_harmonics", w, 20.0, lo=1.5, hi=40))
+    sweep_max = int(_pos(so, "sweep_max_harmonics", w, 8.0, lo=1.5, hi=40))
     w = f"{where} [band]"
     half = _pos(bd, "relative_half_width", w, 0.15, hi=0.5)
     count = int(_pos(bd, "count", w, 11.0, lo=0.5, hi=201))
@@ -232,7 +235,7 @@ def load_build_spec(path) -> BuildSpec:
                      period, lattice, _get(lib, "geometry_source", f"{where} [library]", str, "citation"),
                      _get(lib, "notes", f"{where} [library]", str, "text", "", required=False), inc, ext,
                      tuple(layers), rules, kind, dims, heights, levels, harmonics, n_stairs, tol_abs, tol_phase,
-                     max_h, half,
+                     max_h, sweep_max, half,
                      count)
 
 
@@ -410,8 +413,11 @@ def choose_sweep_harmonics(spec: BuildSpec, dims: dict, height) -> tuple:
     median of the rule-passing sweep) converges at the design wavelength (:func:`converge_points`)."""
     if spec.harmonics is not None:
         return spec.harmonics
+    from dataclasses import replace
+
     mid = {k: np.array([np.median(v)]) for k, v in dims.items()}
-    res = converge_points(spec, mid, float(np.median(height)), spec.design_wavelength_nm, _start(spec))
+    capped = replace(spec, max_harmonics=min(spec.max_harmonics, spec.sweep_max_harmonics))
+    res = converge_points(capped, mid, float(np.median(height)), spec.design_wavelength_nm, _start(spec))
     return tuple(int(v) for v in res["harmonics"][0])
 
 
@@ -529,7 +535,8 @@ def build_library(spec: BuildSpec, *, progress=None):
                                  f"for a lossless stack (allowed 1 +- {ENERGY_TOLERANCE:g}); solver failure")
         per_point.append({"cell_id": ids[ci], "wavelength_nm": float(wl[wi]),
                           "harmonics_x": int(pts["harmonics"][n, 0]), "harmonics_y": int(pts["harmonics"][n, 1]),
-                          "change_abs_t": _r(pts["change_abs_t"][n]), "change_phase_deg": _r(pts["change_phase_deg"][n]),
+                          "change_abs_t": _rc(pts["change_abs_t"][n]),
+                          "change_phase_deg": _rc(pts["change_phase_deg"][n]),
                           "converged": bool(pts["converged"][n]), "lossless": bool(lossless[wi]),
                           "r_plus_t_long": _r(bal[0]), "r_plus_t_short": _r(bal[1])})
     conv = {"tolerance_abs_t": spec.tolerance_abs_t, "tolerance_phase_deg": spec.tolerance_phase_deg,
@@ -537,8 +544,8 @@ def build_library(spec: BuildSpec, *, progress=None):
             "method": (f"per point, truncation raised by {_STEP} orders per axis from the sweep truncation until |t| "
                        "and phase (where |t| >= 0.1) change by at most the tolerances; the finer solve is stored"),
             "all_converged": bool(np.all(pts["converged"])),
-            "max_change_abs_t": _r(np.max(pts["change_abs_t"])),
-            "max_change_phase_deg": _r(np.max(pts["change_phase_deg"])), "points": per_point}
+            "max_change_abs_t": _rc(np.max(pts["change_abs_t"])),
+            "max_change_phase_deg": _rc(np.max(pts["change_phase_deg"])), "points": per_point}
 
     base = Path(spec.path).parent
     mats = {}
@@ -564,7 +571,8 @@ def build_library(spec: BuildSpec, *, progress=None):
                              "Li 1996, J. Opt. Soc. Am. A 13, 1870", "Li 1997, J. Opt. Soc. Am. A 14, 2758",
                              "Rumpf 2011, PIER B 35, 241"],
               "sweep_harmonics_x": sw.harmonics[0], "sweep_harmonics_y": sw.harmonics[1],
-              "sweep_harmonics_source": "spec" if spec.harmonics is not None else "convergence target",
+              "sweep_harmonics_source": "spec" if spec.harmonics is not None else
+              f"convergence target on the median geometry, capped at {spec.sweep_max_harmonics} orders",
               "truncation": "rectangular",
               "n_stairs": spec.n_stairs if spec.kind not in ("nanofin", "slot") else None,
               "incidence": "normal, from the incident medium", "convergence": conv,
@@ -615,6 +623,12 @@ def _lossless(spec: BuildSpec, wavelength_nm: np.ndarray) -> np.ndarray:
 def _r(v: float) -> float:
     """Round for the JSON metadata: 9 significant digits keep provenance byte-stable across BLAS thread counts."""
     return float(f"{float(v):.9g}")
+
+
+def _rc(v: float) -> float:
+    """Round a convergence change to 4 significant digits: it is a difference of nearly equal numbers, whose last
+    digits vary with BLAS threading, and 4 digits are all a tolerance comparison needs."""
+    return float(f"{float(v):.4g}")
 
 
 def _q(a: np.ndarray) -> np.ndarray:
@@ -839,23 +853,53 @@ def _converted(j: np.ndarray, sigma: int) -> np.ndarray:
     return np.einsum("i,...ij,j->...", np.conj(out), j, inp)
 
 
-def _library_stack(lib, cell, angle_deg: float, wavelength_nm: float):
-    """Solver stack of one library cell rotated counter-clockwise by ``angle_deg``, as a polygon layer."""
+def _library_stack(lib, cell, angle_deg: float, wavelength_nm: float, *, supercell: tuple | None = None):
+    """Solver stack of one library cell rotated counter-clockwise by ``angle_deg``, as a polygon layer.
+
+    With ``supercell = (p, q)`` the rotation ``atan2(q, p)`` is instead written exactly as the unrotated cell on
+    the square lattice rotated by ``-atan2(q, p)``: an axis-aligned square supercell of side
+    ``period sqrt(p^2 + q^2)`` holding ``p^2 + q^2`` cells (Li's rules apply; the caller rotates the Jones matrix).
+    """
     from metalay.cellkinds import outline_nm
     from metalay.rcwa_nv import polygon_pattern
 
     eps = lambda name: get_material(name).epsilon(np.array([wavelength_nm]))  # noqa: E731
-    a = np.deg2rad(angle_deg)
-    rot = np.array([[np.cos(a), -np.sin(a)], [np.sin(a), np.cos(a)]])
+    period = lib.period_nm
+    if supercell is None:
+        a = np.deg2rad(angle_deg)
+        rot = np.array([[np.cos(a), -np.sin(a)], [np.sin(a), np.cos(a)]])
+        polys = [outline_nm(cell) @ rot.T]
+    else:
+        pp, qq = supercell
+        period = lib.period_nm * float(np.hypot(pp, qq))
+        polys = [outline_nm(cell) + c for c in _rotated_lattice_sites(lib.period_nm, pp, qq)]
     layers = []
     for lay in lib.layers:
         if lay.get("patterned"):
-            pat = polygon_pattern([outline_nm(cell) @ rot.T], eps(lay["material"])[:, None],
-                                  eps(lay.get("background", "air")), lib.period_nm, lib.period_nm)
+            pat = polygon_pattern(polys, np.repeat(eps(lay["material"])[:, None], len(polys), axis=1),
+                                  eps(lay.get("background", "air")), period, period)
             layers.append(Layer(float(lay["thickness_nm"]), pat))
         else:
             layers.append(Layer(float(lay["thickness_nm"]), eps(lay["material"])))
-    return Stack(eps(lib.incident_medium), tuple(layers), eps(lib.exit_medium), lib.period_nm, lib.period_nm)
+    return Stack(eps(lib.incident_medium), tuple(layers), eps(lib.exit_medium), period, period)
+
+
+def _rotated_lattice_sites(period_nm: float, p: int, q: int) -> np.ndarray:
+    """Sites of the square lattice rotated by ``-atan2(q, p)`` inside one period of the axis-aligned supercell
+    of side ``period sqrt(p^2 + q^2)`` (there are ``p^2 + q^2`` of them), centred in ``[-S/2, S/2)``."""
+    a = -np.arctan2(q, p)
+    side = period_nm * np.hypot(p, q)
+    k = np.arange(-(p + q) - 1, p + q + 2)
+    m, n = (g.ravel() for g in np.meshgrid(k, k, indexing="ij"))
+    pts = period_nm * np.stack([m * np.cos(a) - n * np.sin(a), m * np.sin(a) + n * np.cos(a)], axis=1)
+    pts = (pts + side / 2) % side - side / 2
+    pts = np.where(np.abs(pts - side / 2) < 1e-6, pts - side, pts)
+    return np.unique(np.round(pts, 6) + 0.0, axis=0)
+
+
+#: Rotations solved exactly as an axis-aligned supercell: atan2(q, p) -> (p, q). Only 45 deg (2 cells, sqrt2 larger
+#: period, ~8x the cost); atan(1/2) would need 5 cells and ~100x the cost of the unrotated cell.
+_EXACT_ROTATIONS = {45.0: (1, 1)}
 
 
 def rotation_check(lib, angles_deg=(15.0, 30.0, 45.0), *, wavelength_nm: float | None = None,
@@ -866,10 +910,11 @@ def rotation_check(lib, angles_deg=(15.0, 30.0, 45.0), *, wavelength_nm: float |
     The rotation model (used by the mask mapping and the optical check) takes the Jones matrix of a cell rotated
     by ``theta`` as ``R(-theta) diag(t_long, t_short) R(theta)`` of the unrotated cell: the converted part of
     spin ``sigma`` gains exactly ``2 sigma theta``. In a fixed square lattice a rotated cell also changes its
-    coupling to its neighbours, so a direct solve differs. For every cell and angle this solves the rotated
-    polygon (normal-vector method, oblique edges) and the unrotated one with the same rule and truncation (so
-    truncation errors common to both cancel), and reports the phase step of each spin, its deviation from
-    ``2 sigma theta``, the conversion efficiency of both and the largest Jones-matrix difference.
+    coupling to its neighbours, so a direct solve differs. 45 deg is solved exactly: the rotated structure is the
+    unrotated cell on the lattice rotated by -45 deg, an axis-aligned square supercell of 2 cells where Li's
+    rules hold (method "supercell", compared with the unrotated cell solved with Li's rules). Other angles solve the rotated polygon with the normal-vector rule and
+    compare with the unrotated polygon solved with the same rule and truncation, so that truncation errors common
+    to both cancel (method "normal-vector"; its own convergence is recorded).
 
     Parameters
     ----------
@@ -879,12 +924,12 @@ def rotation_check(lib, angles_deg=(15.0, 30.0, 45.0), *, wavelength_nm: float |
     wavelength_nm : float, optional
         Default: the design wavelength.
     tolerance_abs_t, tolerance_phase_deg, max_harmonics
-        Convergence target of the truncation, chosen on the largest angle (:func:`metalay.rcwa.solve`).
+        Convergence target of the truncation (:func:`metalay.rcwa.solve`).
 
     Returns
     -------
     dict
-        JSON-ready record (stored under ``rotation_check`` in the library file).
+        JSON-ready record (stored under ``rotation_check`` in the library file, ``libraries/FORMAT.md``).
     """
     from metalay.cellkinds import is_rotation_invariant
 
@@ -893,41 +938,50 @@ def rotation_check(lib, angles_deg=(15.0, 30.0, 45.0), *, wavelength_nm: float |
     if not angles or any(not 0 < a <= 90 for a in angles):
         raise CellBuildError(f"rotation check: angles_deg = {angles_deg} must be in (0, 90]")
     side = "t" if lib.mode == "transmission" else "r"
+    kw = dict(tolerance_abs_t=tolerance_abs_t, tolerance_phase_deg=tolerance_phase_deg,
+              max_harmonics=max_harmonics, converge_on=(side,))
     cells = []
     for cell in lib.cells:
         if is_rotation_invariant(cell):
             cells.append({"cell_id": cell.id, "rotation_invariant": True})
             continue
-        big = solve(_library_stack(lib, cell, max(angles), wl), wl, harmonics="auto", factorization="nv",
-                    tolerance_abs_t=tolerance_abs_t, tolerance_phase_deg=tolerance_phase_deg,
-                    max_harmonics=max_harmonics, converge_on=(side,))
-        h = big.harmonics
-        jm = lambda res: (res.t_jones if side == "t" else res.r_jones)[0]  # noqa: E731
-        j0 = jm(solve(_library_stack(lib, cell, 0.0, wl), wl, harmonics=h, factorization="nv"))
-        rows = []
-        for a in angles:
-            j = jm(big) if a == max(angles) else jm(solve(_library_stack(lib, cell, a, wl), wl, harmonics=h,
-                                                           factorization="nv"))
-            r = np.deg2rad(a)
-            rot = np.array([[np.cos(r), np.sin(r)], [-np.sin(r), np.cos(r)]])
-            model = rot.T @ j0 @ rot
-            row = {"angle_deg": a, "max_abs_jones_difference": _r(np.max(np.abs(j - model))),
-                   "conversion_direct": _r(abs(_converted(j, 1)) ** 2),
-                   "conversion_model": _r(abs(_converted(j0, 1)) ** 2)}
-            for sigma, name in ((1, "plus"), (-1, "minus")):
-                step = float(np.angle(_converted(j, sigma) / _converted(j0, sigma), deg=True))
-                dev = (step - 2 * sigma * a + 180.0) % 360.0 - 180.0
-                row[f"phase_step_spin_{name}_deg"] = _r(step)
-                row[f"deviation_spin_{name}_deg"] = _r(dev)
-            rows.append(row)
-        conv = big.settings["convergence"]
-        cells.append({"cell_id": cell.id, "rotation_invariant": False, "harmonics_x": int(h[0]),
-                      "harmonics_y": int(h[1]), "convergence_change_abs_t": _r(conv["change_abs_t"]),
-                      "convergence_change_phase_deg": _r(conv["change_phase_deg"]),
-                      "converged": bool(conv["converged"]), "angles": rows})
+        rows = [_rotation_row(lib, cell, a, wl, side, kw) for a in angles]
+        cells.append({"cell_id": cell.id, "rotation_invariant": False, "angles": rows})
     return {"wavelength_nm": wl, "side": "transmission" if side == "t" else "reflection",
-            "factorization": "nv: normal-vector method (Schuster et al. 2007, JOSA A 24, 2880)",
             "model": "J(theta) = R(-theta) diag(t_long, t_short) R(theta); converted phase step 2 sigma theta",
-            "reference": "unrotated cell solved with the same rule and truncation",
+            "methods": {"supercell": "exact: the unrotated cell on the rotated lattice, an axis-aligned supercell, "
+                                     "Li 1997 rules; reference: the unrotated cell with Li's rules",
+                        "normal-vector": "rotated polygon, normal-vector rule (Schuster et al. 2007, JOSA A 24, "
+                                         "2880); reference: the unrotated polygon, same rule and truncation"},
             "tolerance_abs_t": float(tolerance_abs_t), "tolerance_phase_deg": float(tolerance_phase_deg),
             "max_harmonics": int(max_harmonics), "cells": cells}
+
+
+def _rotation_row(lib, cell, angle_deg, wl, side, kw) -> dict:
+    """One angle of :func:`rotation_check`: direct Jones matrix against the rotation model."""
+    jm = lambda res: (res.t_jones if side == "t" else res.r_jones)[0]  # noqa: E731
+    exact = _EXACT_ROTATIONS.get(round(angle_deg, 9))
+    r = np.deg2rad(angle_deg)
+    rot = np.array([[np.cos(r), np.sin(r)], [-np.sin(r), np.cos(r)]])
+    if exact is not None:
+        base = solve(_library_stack(lib, cell, 0.0, wl), wl, harmonics="auto", factorization="li", **kw)
+        scale = float(np.hypot(*exact))
+        h = tuple(int(np.ceil(v * scale)) for v in base.harmonics)
+        sup = solve(_library_stack(lib, cell, angle_deg, wl, supercell=exact), wl, harmonics=h, factorization="li")
+        j, j0, conv, method = rot.T @ jm(sup) @ rot, jm(base), base.settings["convergence"], "supercell"
+    else:
+        big = solve(_library_stack(lib, cell, angle_deg, wl), wl, harmonics="auto", factorization="nv", **kw)
+        h, conv, method = big.harmonics, big.settings["convergence"], "normal-vector"
+        j = jm(big)
+        j0 = jm(solve(_library_stack(lib, cell, 0.0, wl), wl, harmonics=h, factorization="nv"))
+    model = rot.T @ j0 @ rot
+    row = {"angle_deg": angle_deg, "method": method, "harmonics_x": int(h[0]), "harmonics_y": int(h[1]),
+           "convergence_change_abs_t": _rc(conv["change_abs_t"]),
+           "convergence_change_phase_deg": _rc(conv["change_phase_deg"]), "converged": bool(conv["converged"]),
+           "max_abs_jones_difference": _r(np.max(np.abs(j - model))),
+           "conversion_direct": _r(abs(_converted(j, 1)) ** 2), "conversion_model": _r(abs(_converted(j0, 1)) ** 2)}
+    for sigma, name in ((1, "plus"), (-1, "minus")):
+        step = float(np.angle(_converted(j, sigma) / _converted(j0, sigma), deg=True))
+        row[f"phase_step_spin_{name}_deg"] = _r(step)
+        row[f"deviation_spin_{name}_deg"] = _r((step - 2 * sigma * angle_deg + 180.0) % 360.0 - 180.0)
+    return row

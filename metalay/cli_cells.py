@@ -152,13 +152,13 @@ def run(args) -> int:
             if cell["rotation_invariant"]:
                 print(f"{cell['cell_id']}: rotation invariant, nothing to check")
                 continue
-            print(f"{cell['cell_id']} at {rec['wavelength_nm']:g} nm, truncation ({cell['harmonics_x']}, "
-                  f"{cell['harmonics_y']}), last change {cell['convergence_change_abs_t']:.1e} in |t|, "
-                  f"{cell['convergence_change_phase_deg']:.2f} deg{'' if cell['converged'] else ' (NOT converged)'}")
+            print(f"{cell['cell_id']} at {rec['wavelength_nm']:g} nm:")
             for a in cell["angles"]:
-                print(f"  {a['angle_deg']:5.1f} deg: phase step spin +1 {a['phase_step_spin_plus_deg']:+7.2f} deg "
-                      f"(model {2 * a['angle_deg']:+.1f}), spin -1 {a['phase_step_spin_minus_deg']:+7.2f} deg; "
-                      f"conversion {a['conversion_direct']:.4f} direct vs {a['conversion_model']:.4f} model")
+                print(f"  {a['angle_deg']:7.3f} deg ({a['method']}, truncation ({a['harmonics_x']}, "
+                      f"{a['harmonics_y']}){'' if a['converged'] else ', NOT converged'}): phase step spin +1 "
+                      f"{a['phase_step_spin_plus_deg']:+7.2f} deg, spin -1 {a['phase_step_spin_minus_deg']:+7.2f} deg "
+                      f"(model +-{2 * a['angle_deg']:.2f}); conversion {a['conversion_direct']:.4f} direct vs "
+                      f"{a['conversion_model']:.4f} model")
         out = args.output or Path(lib.source_path).parent
         for path in save_library(replace(lib, extra={**lib.extra, "rotation_check": rec}), out):
             print(f"wrote {path}")

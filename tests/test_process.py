@@ -421,6 +421,18 @@ def test_babinet_slot_library_keeps_converted_amplitude_and_is_labelled():
         babinet_slot_library(_library(lib.cells))
 
 
+def test_babinet_estimate_that_is_not_physical_is_refused():
+    # Source: Poynting's theorem (a passive screen): |t_slot|^2 = |1 - t_antenna|^2 must stay <= 1; invented
+    # antenna responses (demo data) whose complement would gain power are refused, naming cell and wavelength.
+    wl = np.array([800.0, 825.0, 850.0])
+    tl = np.array([[0.1 + 0.6j, 0.1 + 0.6j, 0.1 + 0.6j]])
+    ts = np.array([[0.9 + 0.0j, 0.9 + 0.0j, 0.9 + 0.0j]])
+    lib = _library([CellSpec("fin", "nanofin", "metal", (("length_nm", 200.0), ("width_nm", 50.0)))],
+                   wl=wl, tl=tl, ts=ts)
+    with pytest.raises(LibraryError, match="slot-fin.* at 800 nm: \\|t_short\\|\\^2 = 1.17"):
+        babinet_slot_library(lib)
+
+
 @pytest.mark.parametrize("material,thickness_nm,match", [
     ("TiO2", 30.0, "not a metal"),        # dielectric: Re(eps) ~ +6
     ("Au", 120.0, "not thin"),            # 120 nm > lambda/10 = 80 nm
