@@ -672,7 +672,7 @@ def import_responses(table_path, meta_path):
         ``|t|^2 > 1 + 1e-6`` or ``power < |t|^2 - 1e-6``, cells missing from the table or tabulated at different
         wavelengths.
     """
-    from metalay.library import CELL_KINDS, CellLibrary, CellSpec
+    from metalay.library import CELL_KINDS, CellLibrary, CellSpec, check_physical
 
     meta_path, table_path = Path(meta_path), Path(table_path)
     where = str(meta_path)
@@ -763,7 +763,8 @@ def import_responses(table_path, meta_path):
             "responses_source": "imported: " + _get(lib, "responses_source", f"{where} [library]", str,
                                                     "how the responses were simulated (code, settings)"),
             "solver": None, "materials": None, "notes": f"imported with metalay cells import from {table_path.name}"}
-    return CellLibrary(name=name, description=_get(lib, "description", f"{where} [library]", str, "text", ""),
+    return check_physical(CellLibrary(
+        name=name, description=_get(lib, "description", f"{where} [library]", str, "text", ""),
                        mode=mode, phase_mechanism=mech,
                        design_wavelength_nm=_pos(lib, "design_wavelength_nm", f"{where} [library]", lo=100, hi=2e4),
                        period_nm=_pos(lib, "period_nm", f"{where} [library]"), lattice="square",
@@ -772,7 +773,7 @@ def import_responses(table_path, meta_path):
                        if mode == "transmission" else inc,
                        layers=layers, rules=rules, provenance=prov, cells=tuple(cells),
                        wavelengths_nm=np.array(wls), t_long=arr[:, :, 1] + 1j * arr[:, :, 2],
-                       t_short=arr[:, :, 3] + 1j * arr[:, :, 4], power_long=arr[:, :, 5], power_short=arr[:, :, 6])
+                       t_short=arr[:, :, 3] + 1j * arr[:, :, 4], power_long=arr[:, :, 5], power_short=arr[:, :, 6]))
 
 
 # ----------------------------------------------------------------------------------------------------------------
@@ -912,9 +913,10 @@ def rotation_check(lib, angles_deg=(15.0, 30.0, 45.0), *, wavelength_nm: float |
     spin ``sigma`` gains exactly ``2 sigma theta``. In a fixed square lattice a rotated cell also changes its
     coupling to its neighbours, so a direct solve differs. 45 deg is solved exactly: the rotated structure is the
     unrotated cell on the lattice rotated by -45 deg, an axis-aligned square supercell of 2 cells where Li's
-    rules hold (method "supercell", compared with the unrotated cell solved with Li's rules). Other angles solve the rotated polygon with the normal-vector rule and
-    compare with the unrotated polygon solved with the same rule and truncation, so that truncation errors common
-    to both cancel (method "normal-vector"; its own convergence is recorded).
+    rules hold (method "supercell", compared with the unrotated cell solved with Li's rules). Other angles solve
+    the rotated polygon with the normal-vector rule and compare with the unrotated polygon solved with the same
+    rule and truncation, so that truncation errors common to both cancel (method "normal-vector"; its own
+    convergence is recorded).
 
     Parameters
     ----------
