@@ -388,7 +388,7 @@ def test_supercell_of_rotated_polygons_sends_each_spin_to_its_order():
 
 def test_patterned_gold_reflection_cell_against_grcwa():
     # Source: grcwa (Jin et al. 2020, ACS Photonics 7, 2350). A gold antenna 250 x 90 x 30 nm on 90 nm MgF2 on a
-    # 150 nm gold mirror, 300 nm period, 825 nm, light from air (the au-antenna-825-reflect library's cell; gold
+    # 150 nm gold mirror, 300 nm period, 825 nm, light from air (the au-antenna-825-reflect library's stack; gold
     # eps = -22.03 + 2.147i and MgF2 eps = 1.8902 fixed here, from Rakic et al. 1998 and Dodge 1984 at 825 nm).
     # At matched truncation with Laurent's rule both codes solve the same truncated problem; grcwa samples the
     # permittivity on a 600 x 600 grid whose pixel edges coincide with the antenna's (0.5 nm pixels), so the
