@@ -182,3 +182,35 @@ def test_library_records_its_side_and_the_design_key_is_checked(tmp_path):
     wrong["design"]["lit_from"] = "top"
     with pytest.raises(DesignError, match=r"design\.lit_from.*'top'.*substrate.*structures"):
         load_design(write_toml(tmp_path / "w.toml", wrong))
+
+
+def test_library_file_key_lit_from_is_written_read_and_checked(tmp_path):
+    # The loader's default is derived from the stack (FORMAT.md); save_library writes the side, so a library built or
+    # saved now states it; an explicit key wins and a wrong one is one clear error.
+    import json
+    from dataclasses import replace
+
+    from metalay.cells.library import save_library
+    from metalay.errors import LibraryError
+
+    lib = load_library("tio2-nanofin-532")
+    save_library(replace(lib, lit_from=None), tmp_path)
+    path = tmp_path / "tio2-nanofin-532.library.json"
+    data = json.loads(path.read_text())
+    assert data["lit_from"] == "substrate"
+    data["lit_from"] = "structures"  # stated in the file: wins over the stack
+    path.write_text(json.dumps(data))
+    assert load_library(path).side == "structures"
+    data["lit_from"] = "below"
+    path.write_text(json.dumps(data))
+    with pytest.raises(LibraryError, match=r"lit_from.*'below'.*substrate.*structures"):
+        load_library(path)
+    refl = load_library("au-antenna-825-reflect")
+    save_library(refl, tmp_path)
+    rpath = tmp_path / "au-antenna-825-reflect.library.json"
+    rdata = json.loads(rpath.read_text())
+    assert rdata["lit_from"] == "structures"
+    rdata["lit_from"] = "substrate"
+    rpath.write_text(json.dumps(rdata))
+    with pytest.raises(LibraryError, match="reflection library is lit from the structure side"):
+        load_library(rpath)
