@@ -5,6 +5,7 @@ import json
 import os
 import subprocess
 import sys
+import time
 from dataclasses import replace
 
 import gdstk
@@ -141,7 +142,7 @@ def test_failed_check_leaves_no_output(tmp_path, small_design_dict):
     with pytest.raises(RuntimeError):
         compile_mask(design, tmp_path / "o", checks=[MaskCheck("boom", boom)], show_progress=False)
     assert seen == [True]  # the check ran on a mask that had been written
-    assert list((tmp_path / "o").iterdir()) == []
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["d.toml"]  # no output folder, no stage, no lock
 
 
 def test_checks_are_steps_handed_to_compile(tmp_path, small_design_dict):
@@ -178,22 +179,24 @@ def test_too_large_for_memory_or_disk_is_refused_before_writing(tmp_path, small_
     import shutil as _shutil
     from collections import namedtuple
 
-    import metalay.mask.compile as C
     from metalay.cli import main
 
-    design = write_toml(tmp_path / "d.toml", small_design_dict)
-    monkeypatch.setattr(C, "_machine_memory_bytes", lambda: 1000)
-    assert main(["compile", str(design), "-o", str(tmp_path / "o1"), "--quiet"]) == 2
+    big = copy.deepcopy(small_design_dict)
+    big["aperture"]["diameter_um"] = 2000.0  # about 3e7 sites: 1.95 GB with OASIS, 1.35 GB with GDSII only
+    design = write_toml(tmp_path / "d.toml", big)
+    t0 = time.perf_counter()
+    assert main(["compile", str(design), "-o", str(tmp_path / "o1"), "--quiet", "--max-memory", "1.5G"]) == 2
+    assert time.perf_counter() - t0 < 5  # Common practice (no source): refused up front, not after the tiles
     err = capsys.readouterr().err.strip()
-    assert "mask.formats" in err and "formats = ['gds']" in err and "\n" not in err
-    assert list((tmp_path / "o1").iterdir()) == []
-    monkeypatch.setattr(C, "_machine_memory_bytes", lambda: 1 << 40)
+    assert "mask.formats" in err and "formats = ['gds']" in err and "--max-memory" in err and "\n" not in err
+    assert not (tmp_path / "o1").exists()
+    small = write_toml(tmp_path / "s.toml", small_design_dict)
     usage = namedtuple("usage", "total used free")
     monkeypatch.setattr(_shutil, "disk_usage", lambda p: usage(10, 10, 0))
-    assert main(["compile", str(design), "-o", str(tmp_path / "o2"), "--quiet"]) == 2
+    assert main(["compile", str(small), "-o", str(tmp_path / "o2"), "--quiet"]) == 2
     err = capsys.readouterr().err.strip()
     assert "disk has 0.0 GB free" in err and "\n" not in err
-    assert list((tmp_path / "o2").iterdir()) == []
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["d.toml", "s.toml"]  # no folder, stage or lock left
 
 
 def test_compile_with_checks_is_deterministic(tmp_path, small_design_dict):
