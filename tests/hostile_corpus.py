@@ -253,6 +253,8 @@ def build_corpus(folder: Path, *, mutations: int, seed: int = 20240613) -> dict[
     for name, data in seeds:
         (folder / f"s_{name}").write_bytes(data)
         expect[f"s_{name}"] = None
+    # the hostile cases are mutated too (a changed count or name in a bomb must be refused just as well)
+    seeds += sorted((f"h-{name}", data) for name, (data, _) in hostile_cases().items() if len(data) < 100_000)
     rng = random.Random(seed)
     for k in range(mutations):
         name, data = seeds[k % len(seeds)]

@@ -880,16 +880,20 @@ def _shapely_polygon_analysis(ring: np.ndarray, want_width: bool, want_notch: bo
         return out
     coords = ring.astype(np.float64)
     poly = shapely.Polygon(coords)
-    area_ring = abs(float(np.sum(coords[:, 0] * np.roll(coords[:, 1], -1) - np.roll(coords[:, 0], -1)
-                                 * coords[:, 1]))) / 2
+    signed_area2 = float(np.sum(coords[:, 0] * np.roll(coords[:, 1], -1) - np.roll(coords[:, 0], -1) * coords[:, 1]))
+    area_ring = abs(signed_area2) / 2
     if area_ring == 0:
         out["valid"] = False
         out["where"] = tuple(coords.mean(0))
         return out
-    if not shapely.is_valid(poly):
-        fixed = shapely.make_valid(poly, method="structure", keep_collapsed=False)
-        # a keyhole (boundary touching itself along a cut line) encodes a polygon with holes: accept it
-        if fixed.geom_type == "Polygon" and abs(fixed.area - area_ring) <= 1e-9 * area_ring:
+    poly_as_given = bool(shapely.is_valid(poly))
+    if not poly_as_given:
+        # a keyhole (boundary touching itself along a cut line) encodes a polygon with holes: accept it. Repairing
+        # costs memory in the number of self-intersections (up to n^2 / 2: 3.4e7 for 8190 vertices), so a ring
+        # that touches itself more often than a keyhole would is invalid without repair
+        many = _edge_contacts(coords, cap=max(64, 4 * n)) > max(64, 4 * n)
+        fixed = None if many else shapely.make_valid(poly, method="structure", keep_collapsed=False)
+        if fixed is not None and fixed.geom_type == "Polygon" and abs(fixed.area - area_ring) <= 1e-9 * area_ring:
             poly = fixed
         else:
             out["valid"] = False
@@ -909,21 +913,129 @@ def _shapely_polygon_analysis(ring: np.ndarray, want_width: bool, want_notch: bo
         minx, miny, maxx, maxy = poly.bounds
         regions["notch"] = shapely.box(minx - 1, miny - 1, maxx + 1, maxy + 1).difference(poly)
         shapely.prepare(regions["notch"])
-    for a, e, v, len2, dt, cr in _facing_pairs(coords, reach_db):
+    # many-vertex rings given as simple polygons: candidates whose segment clearly leaves the region at one of its
+    # ends are dropped before the (costly) inside test (:func:`_locally_outside`; ambiguous ones are kept)
+    prefilter = reach_db is not None and n > _INDEXED_PAIRS_VERTICES and poly_as_given
+    for ii, jj, a, e, v, len2, dt, cr in _facing_pairs(coords, reach_db):
         d = np.abs(cr) / np.sqrt(len2)
         foot = a + e * (dt / len2)[:, None]
-        segs = shapely.linestrings(np.stack([v, foot], 1))
-        mid = (v + foot) / 2
+        side = _locally_outside(coords, np.sign(signed_area2), ii, jj, foot, dt, len2, cr) if prefilter else None
         for key, region in regions.items():
             if region is None:
                 continue
-            # the segment must cross the region, not run along its boundary
-            inside = shapely.covers(region, segs) & shapely.contains_xy(region, mid[:, 0], mid[:, 1])
-            if inside.any():
-                k = np.flatnonzero(inside)[np.argmin(d[inside])]
-                if out[key] is None or d[k] < out[key][0]:  # blocks come in edge order: the first minimum wins
-                    out[key] = (float(d[k]), np.concatenate([v[k], foot[k]]))
+            keep = None if side is None else (side != (-1 if key == "width" else 1)) & (side != 2)
+            # blocks come in edge order, so a later block wins only with a strictly smaller distance
+            k = _first_inside(region, v, foot, d, np.inf if out[key] is None else out[key][0], keep)
+            if k is not None:
+                out[key] = (float(d[k]), np.concatenate([v[k], foot[k]]))
     return out
+
+
+def _wedge_side(coords: np.ndarray, sgn: float, at: np.ndarray, u: np.ndarray) -> np.ndarray:
+    """Where direction ``u`` (m, 2) leaves vertex ``at`` (m,) of a simple ring: +1 clearly into the interior wedge,
+    -1 clearly into the exterior, 0 along an edge or too close to tell (1e-9 rad)."""
+    n = coords.shape[0]
+    v = coords[at]
+    r1 = coords[(at + 1) % n] - v        # outgoing edge
+    r2 = coords[(at - 1) % n] - v        # incoming edge, reversed
+    if sgn < 0:  # mirror a clockwise ring so that the interior wedge turns counter-clockwise from r1 to r2
+        r1, r2, u = r1 * [-1, 1], r2 * [-1, 1], u * [-1, 1]
+
+    def turn(p, q):
+        return np.mod(np.arctan2(p[:, 0] * q[:, 1] - p[:, 1] * q[:, 0], (p * q).sum(1)), 2 * np.pi)
+
+    wedge, ang = turn(r1, r2), turn(r1, u)
+    tol = 1e-9
+    inside = (ang > tol) & (ang < wedge - tol)
+    outside = (ang > wedge + tol) & (ang < 2 * np.pi - tol)
+    return np.where(inside, 1, np.where(outside, -1, 0))
+
+
+def _locally_outside(coords, sgn, ii, jj, foot, dt, len2, cr) -> np.ndarray:
+    """For each segment vertex jj -> foot on edge ii of a simple ring: -1 when it clearly starts or ends outside the
+    polygon, +1 when it clearly starts or ends inside it (so it is not in the exterior), 2 when it lies on an edge
+    (in neither region's interior), 0 otherwise. Exact in its decisions: near a vertex the polygon is its interior
+    wedge; near a point strictly inside an edge it is the half-plane on the interior side (the sign of the integer
+    cross product ``cr``)."""
+    n = coords.shape[0]
+    at_v = _wedge_side(coords, sgn, jj, foot - coords[jj])
+    strict = (dt > 0) & (dt < len2) & (np.abs(cr) > 1e-9 * len2)
+    at_foot = np.where(strict, np.where(cr * sgn > 0, 1, -1), 0)
+    corner = ~strict & ((dt == 0) | (dt == len2))
+    along = np.zeros(jj.shape[0], bool)
+    if corner.any():
+        k = np.flatnonzero(corner)
+        vert = np.where(dt[k] == 0, ii[k], (ii[k] + 1) % n)
+        u = coords[vert] - coords[jj[k]]  # integers: the foot is a vertex
+        at_foot[k] = _wedge_side(coords, sgn, vert, -u)
+        # the segment is a piece of an edge leaving its start vertex (same direction, not longer): it lies on the
+        # boundary, so its midpoint is in neither region's interior (exact in float64 below 2**26)
+        for nb in ((jj[k] + 1) % n, (jj[k] - 1) % n):
+            r = coords[nb] - coords[jj[k]]
+            small = np.maximum(np.abs(r).max(1), np.abs(u).max(1)) < 2.0 ** 26
+            along[k] |= small & (r[:, 0] * u[:, 1] - r[:, 1] * u[:, 0] == 0) & ((r * u).sum(1) > 0) & (
+                (u * u).sum(1) <= (r * r).sum(1))
+    out = np.zeros(jj.shape[0], np.int64)
+    out[(at_v == -1) | (at_foot == -1)] = -1
+    out[(at_v == 1) | (at_foot == 1)] = 1
+    out[((at_v == -1) | (at_foot == -1)) & ((at_v == 1) | (at_foot == 1))] = 0  # both: leave it to the exact test
+    out[along] = 2
+    return out
+
+
+def _edge_contacts(coords: np.ndarray, cap: int) -> int:
+    """Pairs of non-adjacent edges of a ring that meet (touch or cross), counted up to just past ``cap``
+    (an STRtree over the edges, queried in blocks; a simple ring has none, a keyhole a few). A ring whose edges'
+    bounding boxes overlap in more than ``50 n`` pairs (long edges criss-crossing it) counts as past the cap
+    without testing them all."""
+    import shapely
+
+    n = coords.shape[0]
+    edges = shapely.linestrings(np.stack([coords, np.roll(coords, -1, axis=0)], 1))
+    tree = shapely.STRtree(edges)
+    boxes, lo, block = 0, 0, 32
+    while lo < n:
+        boxes += int(tree.query(edges[lo:lo + block]).shape[1])
+        if boxes > 50 * n + 10_000:
+            return cap + 1
+        lo += block
+        block = min(2 * block, 1024)
+    found = 0
+    for lo in range(0, n, 1024):
+        q = tree.query(edges[lo:lo + 1024], predicate="intersects")
+        i, j = q[0] + lo, q[1]
+        gap = (j - i) % n
+        found += int(((i < j) & (gap != 1) & (gap != n - 1)).sum())
+        if found > cap:
+            break
+    return found
+
+
+def _first_inside(region, v, foot, d, below: float, keep=None):
+    """Index of the shortest segment v -> foot (first in pair order among equals) shorter than ``below`` that runs
+    inside ``region`` (crosses it, not along its boundary); None if there is none.
+
+    Segments are tested shortest first in growing batches, so the search usually stops after the first batch
+    instead of testing every pair (the same answer as testing all and taking the first minimum); ``keep`` (bool,
+    optional) drops candidates known to fail.
+    """
+    import shapely
+
+    cand = np.flatnonzero((d < below) if keep is None else (d < below) & keep)
+    order = cand[np.argsort(d[cand], kind="stable")]
+    lo, batch = 0, 4
+    while lo < order.size:
+        sel = order[lo:lo + batch]
+        mid = (v[sel] + foot[sel]) / 2
+        inside = shapely.contains_xy(region, mid[:, 0], mid[:, 1])
+        if inside.any():  # covers only where the midpoint is inside (the cheaper test first; the same result)
+            segs = shapely.linestrings(np.stack([v[sel[inside]], foot[sel[inside]]], 1))
+            inside[inside] = shapely.covers(region, segs)
+        if inside.any():
+            return int(sel[np.argmax(inside)])
+        lo += batch
+        batch = min(4 * batch, 1 << 14)
+    return None
 
 
 #: Non-convex polygons with more vertices than this look for facing (edge, vertex) pairs through a spatial index
@@ -934,7 +1046,7 @@ _FACING_BLOCK_EDGES = 256
 
 def _facing_pairs(coords: np.ndarray, reach_db: float | None):
     """Blocks (in edge order, pairs sorted by (edge, vertex)) of (edge i, vertex j not on it) pairs where the foot
-    of the perpendicular from j falls inside edge i and j is off its line: (a, e, v, len2, dt, cr) per pair.
+    of the perpendicular from j falls inside edge i and j is off its line: (i, j, a, e, v, len2, dt, cr) per pair.
 
     With ``reach_db`` (and more than :data:`_INDEXED_PAIRS_VERTICES` vertices) only pairs whose point-to-segment
     distance is within ``reach_db`` are produced (found with a shapely STRtree, edges in blocks of 256): linear in
@@ -971,7 +1083,7 @@ def _facing_pairs(coords: np.ndarray, reach_db: float | None):
         cr = e[:, 0] * w[:, 1] - e[:, 1] * w[:, 0]
         ok &= cr != 0
         if ok.any():
-            yield a[ok], e[ok], v[ok], len2[ok], dt[ok], cr[ok]
+            yield ii[ok], jj[ok], a[ok], e[ok], v[ok], len2[ok], dt[ok], cr[ok]
 
 
 # ----------------------------------------------------------------------------------------------------------------
@@ -1008,7 +1120,8 @@ def _pairs_tree(flat: FlatPolygons, idx: np.ndarray, s_db: float, max_pairs: int
     """Pairs (i < j, indices into flat) at distance < s_db (or touching when s_db == 0), via STRtree.
 
     The tree is queried in chunks of polygons (in order), sized from the density of the previous chunk so that a
-    chunk returns about 1.3e5 candidates (the first chunk is one polygon); the search stops once more than
+    chunk returns about 1.3e5 candidates (the first chunk is one polygon, and a chunk is at most twice the size of
+    the previous one, so a dense region further on costs one chunk at most); the search stops once more than
     ``max_pairs`` pairs are found (every pair whose first polygon was queried is found, so the first
     ``max_pairs`` in polygon order are exact).
     Returns (a, b, d, c, capped).
@@ -1031,7 +1144,7 @@ def _pairs_tree(flat: FlatPolygons, idx: np.ndarray, s_db: float, max_pairs: int
         keep = (d < s_db) | (d == 0)
         parts.append((a[keep], b[keep], d[keep]))
         found += int(keep.sum())
-        step = int(min(4096, max(1, _TREE_RESULTS_PER_CHUNK / density)))
+        step = int(min(4096, 2 * step, max(1, _TREE_RESULTS_PER_CHUNK / density)))  # grows at most 2x a chunk
         lo = hi
     a = np.concatenate([p[0] for p in parts]) if parts else np.zeros(0, np.int64)
     b = np.concatenate([p[1] for p in parts]) if parts else np.zeros(0, np.int64)
@@ -1327,7 +1440,16 @@ def check_mask(mask, rules: RuleSet, *, method: str = "auto", cell: str | None =
     db_unit_nm = flat.db_unit_nm
     results: list[RuleResult] = []
     for lr in rules.layers:
-        results.extend(_check_layer(flat, lr, rules, db_unit_nm, method, timings, max_pairs))
+        try:
+            results.extend(_check_layer(flat, lr, rules, db_unit_nm, method, timings, max_pairs))
+        except MemoryError as exc:  # one line naming what could not be checked, never a traceback
+            raise MaskReadError(f"{name}: out of memory checking layer {lr.layer}/{lr.datatype} ({flat.count} "
+                                f"polygons, {flat.xy_db.shape[0]} vertices)") from exc
+        except Exception as exc:
+            if type(exc).__name__ != "GEOSException" or "alloc" not in str(exc):
+                raise
+            raise MaskReadError(f"{name}: geometry of layer {lr.layer}/{lr.datatype} too complex to check within "
+                                f"memory ({exc})") from exc
     return RuleReport(name, sha, flat.db_unit_nm, flat.count, rules.name, tuple(results), tuple(timings))
 
 
@@ -1435,6 +1557,65 @@ def _convex_features(flat: FlatPolygons, geom: _LayerGeometry, by_count, want_an
     return max(_map_chunks(feature_chunk, tasks), default=0.0)
 
 
+_HASH_WEIGHTS = np.random.default_rng(20240613).integers(1, 2 ** 63, size=(2, 8192), dtype=np.int64).astype(
+    np.uint64) | np.uint64(1)
+
+
+def _translation_classes(flat: FlatPolygons, polys: np.ndarray):
+    """Polygons that are translates of one another (same vertices relative to the first vertex), as
+    (representative, members, offsets): the representative is the member of smallest index, ``offsets`` (m, 2)
+    int64 the translation of each member from it. Stacked or arrayed copies of one shape (placements) are then
+    analysed once.
+
+    Shapes are grouped by a linear hash of their relative vertices (wrapping uint64 arithmetic) and every member
+    is verified against its representative exactly, so a collision only costs time.
+    """
+    if polys.size == 0:
+        return
+    counts = np.diff(flat.start)[polys]
+    for n in np.unique(counts).tolist():
+        sel = np.sort(polys[counts == n])
+        if n < 3 or n > _HASH_WEIGHTS.shape[1] or sel.size == 1:
+            for k in sel.tolist():
+                yield k, np.array([k]), np.zeros((1, 2), np.int64)
+            continue
+        h = np.zeros(sel.size, np.uint64)
+        step = max(1, (1 << 20) // n)
+        for lo in range(0, sel.size, step):  # chunks: bounded temporaries
+            X = flat.xy_db[flat.start[sel[lo:lo + step]][:, None] + np.arange(n)]
+            rel = (X - X[:, :1]).astype(np.uint64)  # two's complement wrap: a hash, exactness checked below
+            h[lo:lo + step] = (rel[:, :, 0] * _HASH_WEIGHTS[0, :n] + rel[:, :, 1] * _HASH_WEIGHTS[1, :n]).sum(1)
+        order = np.argsort(h, kind="stable")
+        cuts = np.flatnonzero(h[order][1:] != h[order][:-1]) + 1
+        for group in np.split(order, cuts):  # distinct shapes (a short axis for placed copies)
+            yield from _verified_class(flat, sel[group], n)
+
+
+def _verified_class(flat: FlatPolygons, members: np.ndarray, n: int):
+    """Split ``members`` (ascending, equal hash) into exact translation classes."""
+    while members.size:
+        rep = members[0]
+        ring = _ring(flat, rep)
+        X = flat.xy_db[flat.start[members][:, None] + np.arange(n)]
+        off = X[:, 0, :] - ring[0]
+        same = np.all(X - off[:, None, :] == ring, axis=(1, 2))
+        yield rep, members[same], off[same]
+        members = members[~same]
+
+
+def _translated(res: dict, off) -> dict:
+    """The analysis of a polygon moved by ``off`` (database units): locations moved, values kept."""
+    ox, oy = float(off[0]), float(off[1])
+    out = dict(res)
+    if res["where"] is not None:
+        out["where"] = (res["where"][0] + ox, res["where"][1] + oy)
+    for key in ("width", "notch"):
+        if res[key] is not None:
+            out[key] = (res[key][0], res[key][1] + np.array([ox, oy, ox, oy]))
+    out["holes"] = [(a, (c[0] + ox, c[1] + oy)) for a, c in res["holes"]]
+    return out
+
+
 def _facing_reach_db(lr: LayerRules, db_unit_nm: float) -> float | None:
     """Largest width or notch (database units, with slack) that a rule of ``lr`` can flag; None: unbounded."""
     limits = [v for v in (lr.min_width_nm, lr.min_notch_nm) if v is not None]
@@ -1452,9 +1633,10 @@ def _shapely_features(flat: FlatPolygons, lr: LayerRules, geom: _LayerGeometry) 
     need_shapely = np.concatenate([geom.poly[~geom.convex], geom.degenerate])
     want_width = lr.min_width_nm is not None or lr.max_aspect_ratio is not None
     reach_db = _facing_reach_db(lr, flat.db_unit_nm)
-    for k in need_shapely.tolist():
-        geom.shapely_results[k] = _shapely_polygon_analysis(_ring(flat, k), want_width, lr.min_notch_nm is not None,
-                                                            reach_db)
+    for rep, members, offsets in _translation_classes(flat, need_shapely):  # each distinct shape analysed once
+        res = _shapely_polygon_analysis(_ring(flat, rep), want_width, lr.min_notch_nm is not None, reach_db)
+        for k, off in zip(members.tolist(), offsets.tolist()):
+            geom.shapely_results[k] = res if off == [0, 0] else _translated(res, off)
     sh_width = {k: r["width"] for k, r in geom.shapely_results.items() if r["width"] is not None}
     if not sh_width:
         return
