@@ -353,5 +353,6 @@ def _check_complete(tmp: Path, fmt: str, final: Path) -> None:
     free = shutil.disk_usage(tmp.parent).free
     if free < (4 << 20):
         raise OSError(errno.ENOSPC, os.strerror(errno.ENOSPC), str(final))
-    raise OutputError(f"{final}: gdstk wrote an incomplete {fmt.upper()} file ({size} bytes, no closing record); "
+    label = "OASIS" if fmt == "oas" else "GDSII"
+    raise OutputError(f"{final}: gdstk wrote an incomplete {label} file ({size} bytes, no closing record); "
                       f"{free / 1e6:.0f} MB free on its disk")

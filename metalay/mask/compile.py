@@ -215,6 +215,10 @@ def compile_mask(design: Design, out_dir: str | Path, *, checks: Sequence[MaskCh
                                    sites_per_tile=sites_per_tile, max_memory_bytes=max_memory_bytes)
         except OSError as exc:  # e.g. the disk filled up while writing: one line, nothing left behind
             raise OutputError(_write_failure(out, exc)) from exc
+        except MetalayError as exc:  # name the output folder the user gave, not the staging folder beside it
+            if str(stage) not in str(exc):
+                raise
+            raise type(exc)(str(exc).replace(str(stage), str(out))) from exc
     moved = {key: out / Path(p).relative_to(stage) for key, p in result.files.items()}
     return replace(result, out_dir=out, files=moved)
 
@@ -957,7 +961,7 @@ def _check_resources(design: Design, out: Path, outlines, *, stream_gds: bool, n
         free = shutil.disk_usage(out).free
         if need_disk > free:
             raise OutputError(f"{out}: the flat GDSII of about {sites:.3g} sites needs about "
-                              f"{need_disk / 1e9:.1f} GB but the disk has {free / 1e9:.1f} GB free; free space or "
+                              f"{format_bytes(need_disk)} but the disk has {format_bytes(free)} free; free space or "
                               "choose another output folder")
 
 
