@@ -49,7 +49,7 @@ from metalay.validate import TomlTable, load_toml
 __all__ = [
     "LayerRules", "RuleSet", "Violations", "RuleResult", "RuleReport", "RULE_REASONS", "RULE_KEYS",
     "load_rules", "parse_rules", "rules_from_library", "check_mask", "write_marker_gds", "compile_check",
-    "polygon_distance_kernel", "MAX_PAIRS",
+    "polygon_distance_kernel", "MAX_PAIRS", "PAIRS_PER_POLYGON",
 ]
 
 
@@ -1102,9 +1102,11 @@ def _shapely_polygons(flat: FlatPolygons, idx: np.ndarray):
 
 #: Most (polygon, polygon) pairs the spacing and overlap search keeps per layer: stacked or overlapping shapes can
 #: make the pairs quadratic in the polygons (65,536 boxes on one spot are 2.1e9 overlapping pairs). Past the cap
-#: (262,144 pairs) the search stops; the first pairs in polygon order are kept and the counts are reported as lower
-#: bounds.
+#: (262,144 pairs, or 4 per polygon of the layer when that is more: a lattice of fins has at most 4 neighbours
+#: closer than a gap rule per fin, so real masks never reach it) the search stops; the first pairs in polygon order
+#: are kept and the counts are reported as lower bounds.
 MAX_PAIRS = 1 << 18
+PAIRS_PER_POLYGON = 4
 _TREE_RESULTS_PER_CHUNK = 1 << 17
 
 
@@ -1394,8 +1396,9 @@ def check_mask(mask, rules: RuleSet, *, method: str = "auto", cell: str | None =
         Limits of the read (:func:`metalay.io.gdsread.read_mask`; default budget: half of the memory this process
         may use).
     max_pairs : int
-        Most polygon pairs the spacing/overlap search keeps per layer (:data:`MAX_PAIRS`); past it the counts of
-        those two rules are lower bounds (``count_is_lower_bound`` in the report).
+        Most polygon pairs the spacing/overlap search keeps per layer (:data:`MAX_PAIRS`, or
+        :data:`PAIRS_PER_POLYGON` per polygon of the layer when that is more); past it the counts of those two
+        rules are lower bounds (``count_is_lower_bound`` in the report).
 
     Returns
     -------
@@ -1870,6 +1873,7 @@ def _spacing_pairs(c: _LayerCheck, spacing_db: float):
 def _rule_spacing(c: _LayerCheck) -> None:
     lr = c.lr
     spacing_nm = lr.min_spacing_nm if lr.min_spacing_nm is not None else 0.0
+    c = replace(c, max_pairs=max(c.max_pairs, PAIRS_PER_POLYGON * c.geom.n_polygons))
     (a, b, d, seg), name, capped = _spacing_pairs(c, spacing_nm / c.db_unit_nm)
 
     def part(m):

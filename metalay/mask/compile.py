@@ -1,6 +1,7 @@
 """The main job: a validated design -> mask files (GDSII, OASIS) + manifest.json, tile by tile.
 
-:func:`compile_mask` runs five named stages into a staging folder, then moves the files into place:
+:func:`compile_mask` runs five named stages into a staging folder beside the output folder, then switches it in
+whole (:func:`metalay.util.atomic.published_folder`):
 
 1. ``_plan``: library, cells and their biased outlines, datatypes, tiles, output formats; refuses a compile that
    cannot fit the machine's memory or disk before anything is written;
@@ -199,9 +200,9 @@ def compile_mask(design: Design, out_dir: str | Path, *, checks: Sequence[MaskCh
     sites_per_tile : int
         Tile size bound (memory).
     max_memory_bytes : int, optional
-        Memory budget of the admission check (:func:`_check_resources`); default
-        :func:`metalay.util.budget.memory_budget` (half of the least of the memory available, the free part of
-        the cgroup limit and of the address-space limit).
+        Memory budget of the admission check before anything is written (:func:`compile_memory_bytes` against
+        it); default 80 % of the least of the memory available, the free part of the cgroup limit and of the
+        address-space limit (:func:`metalay.util.budget.memory_budget`).
 
     Returns
     -------

@@ -279,6 +279,8 @@ def published_folder(out_dir: str | os.PathLike):
     """
     shown = Path(out_dir)
     final = Path(os.path.realpath(shown))
+    if final.parent == final:
+        raise OutputError(f"{shown}: the root folder cannot be an output folder (it is replaced as a whole)")
     created = _make_parents(final.parent)
     try:
         lock = _FolderLock(final)
