@@ -25,6 +25,10 @@ def _runs():
     yield "demo", ["demo"]
     for toml in sorted((ROOT / "examples").glob("*.toml")):
         yield toml.stem, ["compile", str(toml)]
+    sorter = [str(ROOT / "examples" / f"sorter-1550-{k}.toml") for k in ("unwrapper", "corrector")]
+    yield "sorter-1550-pair", ["sorter", "compile", *sorter]
+    for toml in sorted((ROOT / "examples" / "measure").glob("*.toml")):
+        yield f"measure-{toml.stem}", ["charge", "aperture", str(toml)]
 
 
 def collect() -> dict:

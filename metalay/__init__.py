@@ -7,7 +7,8 @@ never up; DEVELOPERS.md has the long map)::
     util/                    atomic output (files; whole output folders under a lock), the memory budget,
                              progress bars, allocator setting, lazy package names
     design/                  spec.load_design (TOML -> Design), phase.target_phase, lattice.sample_sites
-    cells/                   library.load_library, cellkinds.outline_nm, rcwa.solve, materials, cellbuild
+    cells/                   library.load_library, cellkinds.outline_nm, rcwa.solve (+ rcwa_nv: polygon layers,
+                             normal-vector factorisation), materials, cellbuild
     io/                      gdsread.read_mask (GDSII/OASIS -> FlatPolygons), writer.GdsStream (+ gdstk builders)
     mask/                    mapping.assign_cells, layout (snapping), process (bias, tone, write fields, marks),
                              compile.compile_mask(design, out, checks=...) with steps.MaskCheck

@@ -1,6 +1,7 @@
 """Process settings wired through compile: bias, tone, write fields, marks, dose datatypes (read back from files)."""
 
 import copy
+from dataclasses import replace
 
 import gdstk
 import numpy as np
@@ -8,7 +9,7 @@ import pytest
 import shapely
 
 from metalay.api import compile_design
-from metalay.cells.library import load_library
+from metalay.cells.library import load_library, save_library
 from metalay.design.lattice import Aperture
 from metalay.design.spec import load_design
 from metalay.io.gdsread import read_mask
@@ -206,10 +207,22 @@ def test_slot_library_mask_optics_matches_jones(tmp_path):
 def test_babinet_estimate_labelled_and_refused_for_reflection(tmp_path, capsys):
     from metalay.cli import main
 
-    # Babinet's principle (Booker 1946, J. IEE 93 (IIIA), 620): slot(E along one axis) = 1 - antenna(other axis)
-    assert main(["cells", "complement", "asi-nanofin-1550", "-o", str(tmp_path)]) == 0
-    est = load_library(tmp_path / "asi-nanofin-1550-babinet-slots.library.json")
-    ant = load_library("asi-nanofin-1550")
+    # Babinet's principle (Booker 1946, J. IEE 93 (IIIA), 620): slot(E along one axis) = 1 - antenna(other axis),
+    # valid for thin, highly conducting screens only: a dielectric fin library is refused with the reason.
+    assert main(["cells", "complement", "asi-nanofin-1550", "-o", str(tmp_path)]) == 2
+    err = capsys.readouterr().err
+    assert "not a metal" in err and "Re(eps)" in err and len(err.strip().splitlines()) == 1
+    assert not list(tmp_path.iterdir())
+    # a thin gold antenna library (responses invented, demo data) is accepted and labelled as an estimate
+    ant = replace(load_library("au-antenna-825-reflect"), mode="transmission", exit_medium="air",
+                  layers=({"name": "antennas", "material": "Au", "thickness_nm": 40.0, "patterned": True},),
+                  source_path=None)
+    ant = replace(ant, t_long=np.full(ant.t_long.shape, 0.3 + 0.4j), t_short=np.full(ant.t_long.shape, 0.9 + 0j),
+                  power_long=None, power_short=None)
+    save_library(ant, tmp_path / "ant")
+    assert main(["cells", "complement", str(tmp_path / "ant" / f"{ant.name}.library.json"), "-o",
+                 str(tmp_path / "est")]) == 0
+    est = load_library(tmp_path / "est" / f"{ant.name}-babinet-slots.library.json")
     assert "estimate" in est.provenance["responses_source"] and est.cells[0].kind == "slot"
     assert np.allclose(est.t_long, 1 - ant.t_short) and np.allclose(est.t_short, 1 - ant.t_long)
     assert main(["cells", "complement", "au-antenna-825-reflect", "-o", str(tmp_path / "r")]) == 2

@@ -419,12 +419,12 @@ def test_babinet_against_strip_grating_formulas(ratio, period_over_lambda):
 
 
 def test_babinet_slot_library_keeps_converted_amplitude_and_is_labelled():
-    # Invented antenna responses (demo data only).
-    wl = np.array([520.0, 532.0, 545.0])
-    tl = np.array([[0.2 + 0.5j, 0.1 + 0.6j, 0.0 + 0.7j]])
+    # Invented antenna responses (demo data only) of a 30 nm gold layer at 800-850 nm (a thin, opaque metal).
+    wl = np.array([800.0, 825.0, 850.0])
+    tl = np.array([[0.6 + 0.3j, 0.55 + 0.35j, 0.5 + 0.4j]])
     ts = np.array([[0.9 - 0.1j, 0.85 - 0.2j, 0.8 - 0.25j]])
-    pl = np.array([[0.3, 0.35, 0.5]])
-    ps = np.array([[0.8, 0.75, 0.7]])
+    pl = np.array([[0.5, 0.45, 0.45]])
+    ps = np.array([[0.85, 0.8, 0.75]])
     lib = _library([CellSpec("fin", "nanofin", "metal", (("length_nm", 200.0), ("width_nm", 50.0)))],
                    wl=wl, tl=tl, ts=ts, pl=pl, ps=ps)
     slot = babinet_slot_library(lib)
@@ -437,8 +437,38 @@ def test_babinet_slot_library_keeps_converted_amplitude_and_is_labelled():
         babinet_slot_library(_library(lib.cells))
 
 
-def _library(cells, wl=None, tl=None, ts=None, pl=None, ps=None):
+def test_babinet_estimate_that_is_not_physical_is_refused():
+    # Source: Poynting's theorem (a passive screen): |t_slot|^2 = |1 - t_antenna|^2 must stay <= 1; invented
+    # antenna responses (demo data) whose complement would gain power are refused, naming cell and wavelength.
+    wl = np.array([800.0, 825.0, 850.0])
+    tl = np.array([[0.1 + 0.6j, 0.1 + 0.6j, 0.1 + 0.6j]])
+    ts = np.array([[0.9 + 0.0j, 0.9 + 0.0j, 0.9 + 0.0j]])
+    lib = _library([CellSpec("fin", "nanofin", "metal", (("length_nm", 200.0), ("width_nm", 50.0)))],
+                   wl=wl, tl=tl, ts=ts)
+    with pytest.raises(LibraryError, match="slot-fin.* at 800 nm: \\|t_short\\|\\^2 = 1.17"):
+        babinet_slot_library(lib)
+
+
+@pytest.mark.parametrize("material,thickness_nm,match", [
+    ("TiO2", 30.0, "not a metal"),        # dielectric: Re(eps) ~ +6
+    ("Au", 120.0, "not thin"),            # 120 nm > lambda/10 = 80 nm
+    ("Au", 12.0, "skin depth"),           # thinner than lambda/(2 pi kappa) ~ 26 nm: the film transmits
+])
+def test_babinet_refuses_screens_that_are_not_thin_conductors(material, thickness_nm, match):
+    # Source: Booker 1946, J. IEE 93 (IIIA), 620: the principle holds for thin, perfectly conducting screens.
+    # Gold: Re(eps) ~ -25, kappa ~ 5 near 825 nm (Rakic et al. 1998, Appl. Opt. 37, 5271); TiO2 eps ~ +6.
+    wl = np.array([800.0, 825.0, 850.0])
+    t = np.full((1, 3), 0.5 + 0j)
+    lib = _library([CellSpec("fin", "nanofin", "metal", (("length_nm", 200.0), ("width_nm", 50.0)))],
+                   wl=wl, tl=t, ts=t, pl=None, ps=None, material=material, thickness_nm=thickness_nm)
+    with pytest.raises(LibraryError, match=match) as ei:
+        babinet_slot_library(lib)
+    assert "Booker 1946" in str(ei.value) and "\n" not in str(ei.value)
+
+
+def _library(cells, wl=None, tl=None, ts=None, pl=None, ps=None, material="Au", thickness_nm=30.0):
+    layers = ({"name": "metal", "material": material, "thickness_nm": thickness_nm, "patterned": True},)
     return CellLibrary(name="t", description="test", mode="transmission", phase_mechanism="geometric",
-                       design_wavelength_nm=532.0, period_nm=325.0, lattice="square", incident_medium="air",
-                       exit_medium="air", layers=(), rules={}, provenance={}, cells=tuple(cells),
+                       design_wavelength_nm=825.0, period_nm=300.0, lattice="square", incident_medium="air",
+                       exit_medium="air", layers=layers, rules={}, provenance={}, cells=tuple(cells),
                        wavelengths_nm=wl, t_long=tl, t_short=ts, power_long=pl, power_short=ps)

@@ -23,7 +23,9 @@ Spec keys (see ``libraries/specs/*.toml``)::
     [sweep]    kind ("nanofin" | "slot" | "elliptic_pillar" | "round_pillar"), one {start_nm, stop_nm, step_nm} table or
                a list per dimension (length_nm/width_nm, major_nm/minor_nm, diameter_nm), optional height_nm list,
                levels (propagation only)
-    [solver]   harmonics_x, harmonics_y, n_stairs, convergence_extra (list of extra harmonics, e.g. [2, 4])
+    [solver]   tolerance_abs_t (default 2e-3), tolerance_phase_deg (default 0.5), max_harmonics (default 20),
+               optional harmonics_x, harmonics_y (sweep truncation; default: chosen from the tolerances on the
+               median geometry, at most sweep_max_harmonics, default 8), n_stairs
     [band]     relative_half_width, count
 """
 
@@ -38,11 +40,20 @@ from pathlib import Path
 import numpy as np
 
 from metalay.cells.materials import get_material
-from metalay.cells.rcwa import Layer, Stack, ellipse_pattern, rect_pattern, solve
+from metalay.cells.rcwa import (
+    DEFAULT_TOLERANCE_ABS_T,
+    DEFAULT_TOLERANCE_PHASE_DEG,
+    Layer,
+    Stack,
+    ellipse_pattern,
+    rect_pattern,
+    solve,
+)
 from metalay.errors import CellBuildError, LibraryError, MetalayError
 from metalay.validate import TomlTable, load_toml
 
-__all__ = ["BuildSpec", "SweepResult", "load_build_spec", "sweep", "pick_geometric",
+__all__ = ["BuildSpec", "SweepResult", "load_build_spec", "sweep", "converge_points",
+           "choose_sweep_harmonics", "ENERGY_TOLERANCE", "rotation_check", "pick_geometric",
            "pick_propagation", "build_library", "import_responses", "plot_library", "library_table"]
 
 _DIMS = {"nanofin": ("length_nm", "width_nm"), "slot": ("length_nm", "width_nm"),
@@ -75,9 +86,12 @@ class BuildSpec:
     dims: dict               # name -> ndarray of candidate values
     heights_nm: tuple        # candidate heights of the patterned layer
     levels: int
-    harmonics: tuple
+    harmonics: tuple | None  # sweep truncation, or None: chosen from the convergence target
     n_stairs: int
-    convergence_extra: tuple
+    tolerance_abs_t: float
+    tolerance_phase_deg: float
+    max_harmonics: int
+    sweep_max_harmonics: int  # cap of the sweep's truncation (the chosen cells are converged per point after)
     band_half_width: float
     band_count: int
 
@@ -181,16 +195,25 @@ def load_build_spec(path) -> BuildSpec:
     patterned = next(lay for lay in layers if lay["patterned"])
     heights = tuple(_values(sw, "height_nm")) if sw.has("height_nm") else (patterned["thickness_nm"],)
     levels = int(_pos(sw, "levels", 8.0, hi=64)) if mech == "propagation" else 1
-    hx = int(_pos(so, "harmonics_x", 6.0, lo=0.5, hi=25))
-    hy = int(_pos(so, "harmonics_y", float(hx), lo=0.5, hi=25))
+    if so.has("convergence_extra"):
+        so.fail("convergence_extra", so.raw("convergence_extra"), "no longer used: convergence is checked at "
+                "every tabulated wavelength against tolerance_abs_t and tolerance_phase_deg")
+    harmonics = None
+    if so.has("harmonics_x") or so.has("harmonics_y"):
+        hx = int(_pos(so, "harmonics_x", lo=0.5, hi=25))
+        harmonics = (hx, int(_pos(so, "harmonics_y", float(hx), lo=0.5, hi=25)))
     n_stairs = int(_pos(so, "n_stairs", 8.0, lo=0.5, hi=64))
-    extra = so.numbers("convergence_extra", [2, 4], lo=1, hi=10, integer=True, allowed="a list of integers 1..10")
+    tol_abs = _pos(so, "tolerance_abs_t", DEFAULT_TOLERANCE_ABS_T, lo=1e-5, hi=0.1)
+    tol_phase = _pos(so, "tolerance_phase_deg", DEFAULT_TOLERANCE_PHASE_DEG, lo=1e-3, hi=10.0)
+    max_h = int(_pos(so, "max_harmonics", 20.0, lo=1.5, hi=40))
+    sweep_max = int(_pos(so, "sweep_max_harmonics", 8.0, lo=1.5, hi=40))
     half = _pos(bd, "relative_half_width", 0.15, hi=0.5)
     count = int(_pos(bd, "count", 11.0, lo=0.5, hi=201))
     return BuildSpec(where, name, _text(lib, "description", ""), mode, mech, wl,
                      period, lattice, _text(lib, "geometry_source"),
                      _text(lib, "notes", ""), inc, ext,
-                     tuple(layers), rules, kind, dims, heights, levels, (hx, hy), n_stairs, tuple(extra), half,
+                     tuple(layers), rules, kind, dims, heights, levels, harmonics, n_stairs, tol_abs, tol_phase,
+                     max_h, sweep_max, half,
                      count)
 
 
@@ -209,6 +232,8 @@ class SweepResult:
     power_long, power_short : ndarray (G,) float
     n_candidates : int
         Geometries in the sweep before the rules.
+    harmonics : (int, int)
+        Truncation of the sweep (chosen from the convergence target unless the spec fixes it).
     """
 
     dims: dict
@@ -217,6 +242,7 @@ class SweepResult:
     power_long: np.ndarray
     power_short: np.ndarray
     n_candidates: int
+    harmonics: tuple = (0, 0)
 
 
 def _rule_mask(spec: BuildSpec, dims: dict, height: np.ndarray) -> np.ndarray:
@@ -260,30 +286,122 @@ def _stack_for(spec: BuildSpec, dims: dict, height: np.ndarray, wavelength_nm: n
     return Stack(eps(spec.incident_medium), tuple(layers), eps(spec.exit_medium), p, p)
 
 
-def _responses(spec: BuildSpec, dims: dict, height, wavelength_nm, harmonics, *, progress=None, chunk=16):
-    """(t_long, t_short, power_long, power_short) for batched geometries, in chunks (progress callback per chunk)."""
+_STEP = 2   # orders added per axis between the two truncations compared
+
+
+def _responses(spec: BuildSpec, dims: dict, height, wavelength_nm, harmonics, *, progress=None, chunk=16,
+               other_side=False):
+    """(t_long, t_short, power_long, power_short) for batched geometries, in chunks (progress callback per chunk).
+
+    With ``other_side=True`` also the total power leaving on the other side (reflection for a transmission
+    library), ``(..., other_long, other_short)``, for the energy balance of lossless stacks.
+    """
     b = np.broadcast(*dims.values(), height, wavelength_nm).shape[0]
     full = {k: np.broadcast_to(v, (b,)).astype(float) for k, v in dims.items()}
     h = np.broadcast_to(height, (b,)).astype(float)
     wl = np.broadcast_to(wavelength_nm, (b,)).astype(float)
-    out = [np.empty(b, complex), np.empty(b, complex), np.empty(b), np.empty(b)]
+    out = [np.empty(b, complex), np.empty(b, complex), np.empty(b), np.empty(b), np.empty(b), np.empty(b)]
     for s in range(0, b, chunk):
         sl = slice(s, min(b, s + chunk))
         res = solve(_stack_for(spec, {k: v[sl] for k, v in full.items()}, h[sl], wl[sl]), wl[sl],
                     harmonics=harmonics)
         jm = res.t_jones if spec.mode == "transmission" else res.r_jones
-        pw = res.power_t if spec.mode == "transmission" else res.power_r
+        pw, po = (res.power_t, res.power_r) if spec.mode == "transmission" else (res.power_r, res.power_t)
         out[0][sl], out[1][sl] = jm[:, 0, 0], jm[:, 1, 1]
         out[2][sl], out[3][sl] = pw[:, 0], pw[:, 1]
+        out[4][sl], out[5][sl] = po[:, 0], po[:, 1]
         if spec.kind == "round_pillar":
             # a round pillar is isotropic at normal incidence; the y-sliced staircase breaks that by ~1e-3, so
             # both columns carry the polarisation average (the contract's t_long == t_short)
-            for i_l, i_s in ((0, 1), (2, 3)):
+            for i_l, i_s in ((0, 1), (2, 3), (4, 5)):
                 avg = (out[i_l][sl] + out[i_s][sl]) / 2
                 out[i_l][sl], out[i_s][sl] = avg, avg
         if progress is not None:
             progress(sl.stop - sl.start)
-    return tuple(out)
+    return tuple(out) if other_side else tuple(out[:4])
+
+
+def _change(t0l, t0s, t1l, t1s):
+    """Per point (change of |t|, change of phase in deg), the larger over the two polarisations; the phase is
+    compared only where |t| >= 0.1 (the phase of a vanishing amplitude carries no information)."""
+    d_abs = np.maximum(np.abs(np.abs(t1l) - np.abs(t0l)), np.abs(np.abs(t1s) - np.abs(t0s)))
+    ph = lambda a, b: np.where((np.abs(a) >= 0.1) & (np.abs(b) >= 0.1),  # noqa: E731
+                               np.abs(np.angle(b * np.conj(a), deg=True)), 0.0)
+    return d_abs, np.maximum(ph(t0l, t1l), ph(t0s, t1s))
+
+
+def converge_points(spec: BuildSpec, dims: dict, height, wavelength_nm, start):
+    """Responses converged point by point: the truncation of each (geometry, wavelength) point is raised by 2
+    orders per axis from ``start`` until its responses change by at most the spec's tolerances.
+
+    Parameters
+    ----------
+    spec : BuildSpec
+    dims : dict name -> ndarray (P,)
+        Geometry per point (with ``wavelength_nm`` (P,) and ``height`` scalar or (P,)).
+    start : (int, int)
+        First truncation.
+
+    Returns
+    -------
+    dict of ndarray (P,)
+        ``t_long, t_short, power_long, power_short, other_long, other_short`` at the finer truncation of the last
+        comparison, ``harmonics`` (P, 2) used, ``change_abs_t``, ``change_phase_deg`` achieved, ``converged``.
+
+    Notes
+    -----
+    The change is measured between truncations ``M`` and ``M + 2`` (both axes); the stored response is the one at
+    ``M + 2``. A point that does not reach the tolerances by ``spec.max_harmonics`` keeps its last values and is
+    flagged ``converged = False`` (the library states it).
+    """
+    p = np.broadcast(*dims.values(), height, wavelength_nm).shape[0]
+    full = {k: np.broadcast_to(v, (p,)).astype(float) for k, v in dims.items()}
+    h = np.broadcast_to(height, (p,)).astype(float)
+    wl = np.broadcast_to(wavelength_nm, (p,)).astype(float)
+    cur = (int(start[0]), int(start[1]))
+    prev = _responses(spec, full, h, wl, cur, other_side=True)
+    result = {k: np.empty(p, complex if k in ("t_long", "t_short") else float) for k in
+              ("t_long", "t_short", "power_long", "power_short", "other_long", "other_short", "change_abs_t",
+               "change_phase_deg")}
+    result["harmonics"] = np.zeros((p, 2), int)
+    result["converged"] = np.zeros(p, bool)
+    todo = np.arange(p)
+    while todo.size:
+        nxt = (cur[0] + _STEP, cur[1] + _STEP)
+        sub = {k: v[todo] for k, v in full.items()}
+        new = _responses(spec, sub, h[todo], wl[todo], nxt, other_side=True)
+        d_abs, d_ph = _change(prev[0], prev[1], new[0], new[1])
+        ok = (d_abs <= spec.tolerance_abs_t) & (d_ph <= spec.tolerance_phase_deg)
+        last = max(nxt) + _STEP > spec.max_harmonics
+        done = ok | last
+        for key, arr in zip(("t_long", "t_short", "power_long", "power_short", "other_long", "other_short"), new):
+            result[key][todo[done]] = arr[done]
+        result["change_abs_t"][todo[done]] = d_abs[done]
+        result["change_phase_deg"][todo[done]] = d_ph[done]
+        result["harmonics"][todo[done]] = nxt
+        result["converged"][todo[done]] = ok[done]
+        prev = tuple(a[~done] for a in new)
+        todo = todo[~done]
+        cur = nxt
+    return result
+
+
+def choose_sweep_harmonics(spec: BuildSpec, dims: dict, height) -> tuple:
+    """Sweep truncation from the convergence target: the truncation at which a representative geometry (the
+    median of the rule-passing sweep) converges at the design wavelength (:func:`converge_points`)."""
+    if spec.harmonics is not None:
+        return spec.harmonics
+    from dataclasses import replace
+
+    mid = {k: np.array([np.median(v)]) for k, v in dims.items()}
+    capped = replace(spec, max_harmonics=min(spec.max_harmonics, spec.sweep_max_harmonics))
+    res = converge_points(capped, mid, float(np.median(height)), spec.design_wavelength_nm, _start(spec))
+    return tuple(int(v) for v in res["harmonics"][0])
+
+
+def _start(spec: BuildSpec) -> tuple:
+    """First truncation of the automatic choice: 4 orders per axis (the coarsest useful resolution)."""
+    return (4, 4)
 
 
 def sweep(spec: BuildSpec, *, progress=None) -> SweepResult:
@@ -303,9 +421,9 @@ def sweep(spec: BuildSpec, *, progress=None) -> SweepResult:
     if not np.any(ok):
         raise CellBuildError(f"{spec.path}: no geometry of the sweep passes the rules {spec.rules}")
     dims = {d: v[ok] for d, v in flat.items()}
-    tl, ts, pl, ps = _responses(spec, dims, height[ok], spec.design_wavelength_nm, spec.harmonics,
-                                progress=progress)
-    return SweepResult({**dims, "height_nm": height[ok]}, tl, ts, pl, ps, int(ok.size))
+    harmonics = choose_sweep_harmonics(spec, dims, height[ok])
+    tl, ts, pl, ps = _responses(spec, dims, height[ok], spec.design_wavelength_nm, harmonics, progress=progress)
+    return SweepResult({**dims, "height_nm": height[ok]}, tl, ts, pl, ps, int(ok.size), harmonics)
 
 
 def pick_geometric(sw: SweepResult) -> int:
@@ -384,21 +502,28 @@ def build_library(spec: BuildSpec, *, progress=None):
                                                  spec.band_count)
     wl = np.round(wl, 6)
     rep = {d: np.repeat(v, wl.size) for d, v in cell_dims.items()}
-    tl, ts, pl, ps = _responses(spec, rep, height, np.tile(wl, c), spec.harmonics)
-    tl, ts, pl, ps = (_q(a.reshape(c, wl.size)) for a in (tl, ts, pl, ps))
-
-    # convergence at the design wavelength for the chosen cells
-    conv = []
-    t0l, t0s, _, _ = _responses(spec, cell_dims, height, spec.design_wavelength_nm, spec.harmonics)
-    for e in spec.convergence_extra:
-        hh = (spec.harmonics[0] + e, spec.harmonics[1] + e)
-        t1l, t1s, _, _ = _responses(spec, cell_dims, height, spec.design_wavelength_nm, hh)
-        conv.append({"harmonics_x": hh[0], "harmonics_y": hh[1],
-                     "max_abs_change_t": _r(max(np.max(np.abs(t1l - t0l)), np.max(np.abs(t1s - t0s)))),
-                     "max_abs_change_abs_t": _r(max(np.max(np.abs(np.abs(t1l) - np.abs(t0l))),
-                                                    np.max(np.abs(np.abs(t1s) - np.abs(t0s))))),
-                     "max_change_phase_deg": _r(max(np.max(np.abs(np.angle(t1l / t0l, deg=True))),
-                                                    np.max(np.abs(np.angle(t1s / t0s, deg=True)))))})
+    pts = converge_points(spec, rep, height, np.tile(wl, c), sw.harmonics)
+    tl, ts, pl, ps = (_q(pts[k].reshape(c, wl.size)) for k in ("t_long", "t_short", "power_long", "power_short"))
+    lossless = _lossless(spec, wl)
+    per_point = []
+    for n, (ci, wi) in enumerate((ci, wi) for ci in range(c) for wi in range(wl.size)):
+        bal = (pts["power_long"][n] + pts["other_long"][n], pts["power_short"][n] + pts["other_short"][n])
+        if lossless[wi] and max(abs(bal[0] - 1), abs(bal[1] - 1)) > ENERGY_TOLERANCE:
+            raise CellBuildError(f"{spec.path}: cell {ids[ci]} at {wl[wi]:g} nm: R + T = {bal[0]:.9f} / {bal[1]:.9f} "
+                                 f"for a lossless stack (allowed 1 +- {ENERGY_TOLERANCE:g}); solver failure")
+        per_point.append({"cell_id": ids[ci], "wavelength_nm": float(wl[wi]),
+                          "harmonics_x": int(pts["harmonics"][n, 0]), "harmonics_y": int(pts["harmonics"][n, 1]),
+                          "change_abs_t": _rc(pts["change_abs_t"][n]),
+                          "change_phase_deg": _rc(pts["change_phase_deg"][n]),
+                          "converged": bool(pts["converged"][n]), "lossless": bool(lossless[wi]),
+                          "r_plus_t_long": _r(bal[0]), "r_plus_t_short": _r(bal[1])})
+    conv = {"tolerance_abs_t": spec.tolerance_abs_t, "tolerance_phase_deg": spec.tolerance_phase_deg,
+            "max_harmonics": spec.max_harmonics, "energy_tolerance": ENERGY_TOLERANCE,
+            "method": (f"per point, truncation raised by {_STEP} orders per axis from the sweep truncation until |t| "
+                       "and phase (where |t| >= 0.1) change by at most the tolerances; the finer solve is stored"),
+            "all_converged": bool(np.all(pts["converged"])),
+            "max_change_abs_t": _rc(np.max(pts["change_abs_t"])),
+            "max_change_phase_deg": _rc(np.max(pts["change_phase_deg"])), "points": per_point}
 
     base = Path(spec.path).parent
     mats = {}
@@ -418,11 +543,15 @@ def build_library(spec: BuildSpec, *, progress=None):
                  f"swept), |t| from {np.min(np.abs(tl[:, k])):.3f} to {np.max(np.abs(tl[:, k])):.3f}, relative "
                  f"phases {', '.join(f'{p:.0f}' for p in np.sort(ph))} deg at {wl[k]:g} nm.")
     solver = {"name": "metalay.rcwa", "method": "RCWA / Fourier modal method with scattering matrices",
-              "factorization": "Li 1997 (inverse rule along the discontinuity, Laurent along the other axis)",
+              "factorization": ("li: Li 1997 inverse rule along x and y (every edge of the cell is axis-parallel; "
+                                "chosen automatically per layer)"),
               "references": ["Moharam et al. 1995, J. Opt. Soc. Am. A 12, 1068",
                              "Li 1996, J. Opt. Soc. Am. A 13, 1870", "Li 1997, J. Opt. Soc. Am. A 14, 2758",
                              "Rumpf 2011, PIER B 35, 241"],
-              "harmonics_x": spec.harmonics[0], "harmonics_y": spec.harmonics[1], "truncation": "rectangular",
+              "sweep_harmonics_x": sw.harmonics[0], "sweep_harmonics_y": sw.harmonics[1],
+              "sweep_harmonics_source": "spec" if spec.harmonics is not None else
+              f"convergence target on the median geometry, capped at {spec.sweep_max_harmonics} orders",
+              "truncation": "rectangular",
               "n_stairs": spec.n_stairs if spec.kind not in ("nanofin", "slot") else None,
               "incidence": "normal, from the incident medium", "convergence": conv,
               "sweep": {"kind": spec.kind, **{d: [_r(v) for v in spec.dims[d]] for d in names},
@@ -453,9 +582,31 @@ def build_library(spec: BuildSpec, *, progress=None):
     return lib, sw
 
 
+#: Largest |R + T - 1| accepted for a lossless stack (the S-matrix solution conserves energy to rounding for
+#: Hermitian permittivity operators, measured ~1e-13; 1e-6 leaves room for ill-conditioned evanescent modes).
+ENERGY_TOLERANCE = 1e-6
+
+
+def _lossless(spec: BuildSpec, wavelength_nm: np.ndarray) -> np.ndarray:
+    """Per wavelength: every material of the stack has Im(n) = 0 there."""
+    base = Path(spec.path).parent
+    names = {spec.incident_medium, spec.exit_medium, *[lay["material"] for lay in spec.layers],
+             *[lay["background"] for lay in spec.layers if lay["patterned"]]}
+    ok = np.ones(wavelength_nm.size, bool)
+    for nm in sorted(names):
+        ok &= np.abs(get_material(nm, base_dir=base).index(wavelength_nm).imag) == 0
+    return ok
+
+
 def _r(v: float) -> float:
     """Round for the JSON metadata: 9 significant digits keep provenance byte-stable across BLAS thread counts."""
     return float(f"{float(v):.9g}")
+
+
+def _rc(v: float) -> float:
+    """Round a convergence change to 4 significant digits: it is a difference of nearly equal numbers, whose last
+    digits vary with BLAS threading, and 4 digits are all a tolerance comparison needs."""
+    return float(f"{float(v):.4g}")
 
 
 def _q(a: np.ndarray) -> np.ndarray:
@@ -499,7 +650,7 @@ def import_responses(table_path, meta_path):
         ``|t|^2 > 1 + 1e-6`` or ``power < |t|^2 - 1e-6``, cells missing from the table or tabulated at different
         wavelengths.
     """
-    from metalay.cells.library import CELL_KINDS, CellLibrary, CellSpec
+    from metalay.cells.library import CELL_KINDS, CellLibrary, CellSpec, check_physical
 
     meta_path, table_path = Path(meta_path), Path(table_path)
     where = str(meta_path)
@@ -567,7 +718,8 @@ def import_responses(table_path, meta_path):
     prov = {"geometry_source": _text(lib, "geometry_source"),
             "responses_source": "imported: " + _text(lib, "responses_source"),
             "solver": None, "materials": None, "notes": f"imported with metalay cells import from {table_path.name}"}
-    return CellLibrary(name=name, description=_text(lib, "description", ""),
+    return check_physical(CellLibrary(
+        name=name, description=_text(lib, "description", ""),
                        mode=mode, phase_mechanism=mech,
                        design_wavelength_nm=_pos(lib, "design_wavelength_nm", lo=100, hi=2e4),
                        period_nm=_pos(lib, "period_nm"), lattice="square",
@@ -575,7 +727,7 @@ def import_responses(table_path, meta_path):
                        exit_medium=_text(st, "exit_medium") if mode == "transmission" else inc,
                        layers=layers, rules=rules, provenance=prov, cells=tuple(cells),
                        wavelengths_nm=np.array(wls), t_long=arr[:, :, 1] + 1j * arr[:, :, 2],
-                       t_short=arr[:, :, 3] + 1j * arr[:, :, 4], power_long=arr[:, :, 5], power_short=arr[:, :, 6])
+                       t_short=arr[:, :, 3] + 1j * arr[:, :, 4], power_long=arr[:, :, 5], power_short=arr[:, :, 6]))
 
 
 # ----------------------------------------------------------------------------------------------------------------
@@ -643,3 +795,149 @@ def plot_library(lib, png_path) -> Path:
     fig.savefig(buf, format="png", metadata={"Software": None})
     plt.close(fig)
     return atomic_write_bytes(Path(png_path), buf.getvalue())
+
+
+# ----------------------------------------------------------------------------------------------------------------
+# Rotation model check
+
+
+def _converted(j: np.ndarray, sigma: int) -> np.ndarray:
+    """Converted amplitude ``<-sigma| J |sigma>`` for Jones matrices ``(..., 2, 2)`` in the (x, y) basis."""
+    inp = np.array([1.0, 1j * sigma]) / np.sqrt(2)
+    out = np.array([1.0, -1j * sigma]) / np.sqrt(2)
+    return np.einsum("i,...ij,j->...", np.conj(out), j, inp)
+
+
+def _library_stack(lib, cell, angle_deg: float, wavelength_nm: float, *, supercell: tuple | None = None):
+    """Solver stack of one library cell rotated counter-clockwise by ``angle_deg``, as a polygon layer.
+
+    With ``supercell = (p, q)`` the rotation ``atan2(q, p)`` is instead written exactly as the unrotated cell on
+    the square lattice rotated by ``-atan2(q, p)``: an axis-aligned square supercell of side
+    ``period sqrt(p^2 + q^2)`` holding ``p^2 + q^2`` cells (Li's rules apply; the caller rotates the Jones matrix).
+    """
+    from metalay.cells.cellkinds import outline_nm
+    from metalay.cells.rcwa_nv import polygon_pattern
+
+    eps = lambda name: get_material(name).epsilon(np.array([wavelength_nm]))  # noqa: E731
+    period = lib.period_nm
+    if supercell is None:
+        a = np.deg2rad(angle_deg)
+        rot = np.array([[np.cos(a), -np.sin(a)], [np.sin(a), np.cos(a)]])
+        polys = [outline_nm(cell) @ rot.T]
+    else:
+        pp, qq = supercell
+        period = lib.period_nm * float(np.hypot(pp, qq))
+        polys = [outline_nm(cell) + c for c in _rotated_lattice_sites(lib.period_nm, pp, qq)]
+    layers = []
+    for lay in lib.layers:
+        if lay.get("patterned"):
+            pat = polygon_pattern(polys, np.repeat(eps(lay["material"])[:, None], len(polys), axis=1),
+                                  eps(lay.get("background", "air")), period, period)
+            layers.append(Layer(float(lay["thickness_nm"]), pat))
+        else:
+            layers.append(Layer(float(lay["thickness_nm"]), eps(lay["material"])))
+    return Stack(eps(lib.incident_medium), tuple(layers), eps(lib.exit_medium), period, period)
+
+
+def _rotated_lattice_sites(period_nm: float, p: int, q: int) -> np.ndarray:
+    """Sites of the square lattice rotated by ``-atan2(q, p)`` inside one period of the axis-aligned supercell
+    of side ``period sqrt(p^2 + q^2)`` (there are ``p^2 + q^2`` of them), centred in ``[-S/2, S/2)``."""
+    a = -np.arctan2(q, p)
+    side = period_nm * np.hypot(p, q)
+    k = np.arange(-(p + q) - 1, p + q + 2)
+    m, n = (g.ravel() for g in np.meshgrid(k, k, indexing="ij"))
+    pts = period_nm * np.stack([m * np.cos(a) - n * np.sin(a), m * np.sin(a) + n * np.cos(a)], axis=1)
+    pts = (pts + side / 2) % side - side / 2
+    pts = np.where(np.abs(pts - side / 2) < 1e-6, pts - side, pts)
+    return np.unique(np.round(pts, 6) + 0.0, axis=0)
+
+
+#: Rotations solved exactly as an axis-aligned supercell: atan2(q, p) -> (p, q). Only 45 deg (2 cells, sqrt2 larger
+#: period, ~8x the cost); atan(1/2) would need 5 cells and ~100x the cost of the unrotated cell.
+_EXACT_ROTATIONS = {45.0: (1, 1)}
+
+
+def rotation_check(lib, angles_deg=(15.0, 30.0, 45.0), *, wavelength_nm: float | None = None,
+                   tolerance_abs_t: float = DEFAULT_TOLERANCE_ABS_T,
+                   tolerance_phase_deg: float = DEFAULT_TOLERANCE_PHASE_DEG, max_harmonics: int = 12) -> dict:
+    """Solve each anisotropic cell rotated by ``angles_deg`` directly and measure the rotation model's error.
+
+    The rotation model (used by the mask mapping and the optical check) takes the Jones matrix of a cell rotated
+    by ``theta`` as ``R(-theta) diag(t_long, t_short) R(theta)`` of the unrotated cell: the converted part of
+    spin ``sigma`` gains exactly ``2 sigma theta``. In a fixed square lattice a rotated cell also changes its
+    coupling to its neighbours, so a direct solve differs. 45 deg is solved exactly: the rotated structure is the
+    unrotated cell on the lattice rotated by -45 deg, an axis-aligned square supercell of 2 cells where Li's
+    rules hold (method "supercell", compared with the unrotated cell solved with Li's rules). Other angles solve
+    the rotated polygon with the normal-vector rule and compare with the unrotated polygon solved with the same
+    rule and truncation, so that truncation errors common to both cancel (method "normal-vector"; its own
+    convergence is recorded).
+
+    Parameters
+    ----------
+    lib : CellLibrary
+    angles_deg : sequence of float
+        Rotations (counter-clockwise, degrees), each in (0, 90].
+    wavelength_nm : float, optional
+        Default: the design wavelength.
+    tolerance_abs_t, tolerance_phase_deg, max_harmonics
+        Convergence target of the truncation (:func:`metalay.cells.rcwa.solve`).
+
+    Returns
+    -------
+    dict
+        JSON-ready record (stored under ``rotation_check`` in the library file, ``libraries/FORMAT.md``).
+    """
+    from metalay.cells.cellkinds import is_rotation_invariant
+
+    wl = float(wavelength_nm or lib.design_wavelength_nm)
+    angles = [float(a) for a in angles_deg]
+    if not angles or any(not 0 < a <= 90 for a in angles):
+        raise CellBuildError(f"rotation check: angles_deg = {angles_deg} must be in (0, 90]")
+    side = "t" if lib.mode == "transmission" else "r"
+    kw = dict(tolerance_abs_t=tolerance_abs_t, tolerance_phase_deg=tolerance_phase_deg,
+              max_harmonics=max_harmonics, converge_on=(side,))
+    cells = []
+    for cell in lib.cells:
+        if is_rotation_invariant(cell):
+            cells.append({"cell_id": cell.id, "rotation_invariant": True})
+            continue
+        rows = [_rotation_row(lib, cell, a, wl, side, kw) for a in angles]
+        cells.append({"cell_id": cell.id, "rotation_invariant": False, "angles": rows})
+    return {"wavelength_nm": wl, "side": "transmission" if side == "t" else "reflection",
+            "model": "J(theta) = R(-theta) diag(t_long, t_short) R(theta); converted phase step 2 sigma theta",
+            "methods": {"supercell": "exact: the unrotated cell on the rotated lattice, an axis-aligned supercell, "
+                                     "Li 1997 rules; reference: the unrotated cell with Li's rules",
+                        "normal-vector": "rotated polygon, normal-vector rule (Schuster et al. 2007, JOSA A 24, "
+                                         "2880); reference: the unrotated polygon, same rule and truncation"},
+            "tolerance_abs_t": float(tolerance_abs_t), "tolerance_phase_deg": float(tolerance_phase_deg),
+            "max_harmonics": int(max_harmonics), "cells": cells}
+
+
+def _rotation_row(lib, cell, angle_deg, wl, side, kw) -> dict:
+    """One angle of :func:`rotation_check`: direct Jones matrix against the rotation model."""
+    jm = lambda res: (res.t_jones if side == "t" else res.r_jones)[0]  # noqa: E731
+    exact = _EXACT_ROTATIONS.get(round(angle_deg, 9))
+    r = np.deg2rad(angle_deg)
+    rot = np.array([[np.cos(r), np.sin(r)], [-np.sin(r), np.cos(r)]])
+    if exact is not None:
+        base = solve(_library_stack(lib, cell, 0.0, wl), wl, harmonics="auto", factorization="li", **kw)
+        scale = float(np.hypot(*exact))
+        h = tuple(int(np.ceil(v * scale)) for v in base.harmonics)
+        sup = solve(_library_stack(lib, cell, angle_deg, wl, supercell=exact), wl, harmonics=h, factorization="li")
+        j, j0, conv, method = rot.T @ jm(sup) @ rot, jm(base), base.settings["convergence"], "supercell"
+    else:
+        big = solve(_library_stack(lib, cell, angle_deg, wl), wl, harmonics="auto", factorization="nv", **kw)
+        h, conv, method = big.harmonics, big.settings["convergence"], "normal-vector"
+        j = jm(big)
+        j0 = jm(solve(_library_stack(lib, cell, 0.0, wl), wl, harmonics=h, factorization="nv"))
+    model = rot.T @ j0 @ rot
+    row = {"angle_deg": angle_deg, "method": method, "harmonics_x": int(h[0]), "harmonics_y": int(h[1]),
+           "convergence_change_abs_t": _rc(conv["change_abs_t"]),
+           "convergence_change_phase_deg": _rc(conv["change_phase_deg"]), "converged": bool(conv["converged"]),
+           "max_abs_jones_difference": _r(np.max(np.abs(j - model))),
+           "conversion_direct": _r(abs(_converted(j, 1)) ** 2), "conversion_model": _r(abs(_converted(j0, 1)) ** 2)}
+    for sigma, name in ((1, "plus"), (-1, "minus")):
+        step = float(np.angle(_converted(j, sigma) / _converted(j0, sigma), deg=True))
+        row[f"phase_step_spin_{name}_deg"] = _r(step)
+        row[f"deviation_spin_{name}_deg"] = _r((step - 2 * sigma * angle_deg + 180.0) % 360.0 - 180.0)
+    return row

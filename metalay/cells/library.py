@@ -39,6 +39,8 @@ __all__ = [
     "bundled_library_names",
     "library_to_json",
     "responses_to_csv",
+    "check_physical",
+    "PASSIVITY_TOLERANCE",
 ]
 
 FORMAT_NAME = "metalay.cell-library"
@@ -295,7 +297,7 @@ def load_library(name_or_path: str | Path) -> CellLibrary:
         digest.update(resp_raw)
         arrays = _parse_responses(resp_raw, str(resp_path), [c.id for c in cells])
         lib = _with(lib, **arrays)
-    return _with(lib, sha256=digest.hexdigest())
+    return check_physical(_with(lib, sha256=digest.hexdigest()))
 
 
 _KNOWN_KEYS = {"format", "format_version", "name", "description", "mode", "phase_mechanism", "design_wavelength_nm",
@@ -356,6 +358,63 @@ def _parse_responses(raw: bytes, where: str, cell_ids: list[str]) -> dict:
     )
 
 
+#: Allowance on power ratios for rounding (a passive cell cannot give out more power than it receives).
+PASSIVITY_TOLERANCE = 1e-6
+
+
+def check_physical(lib: CellLibrary) -> CellLibrary:
+    """Refuse a library whose responses are not those of a passive cell; return it unchanged otherwise.
+
+    Checked at every cell and wavelength: ``|t|^2 <= power <= 1`` for each principal polarisation (``power`` =
+    total power of all orders on the output side; only ``|t|^2 <= 1`` when it is unknown), ``conversion + leakage
+    = (|t_long|^2 + |t_short|^2)/2 <= 1``, all within :data:`PASSIVITY_TOLERANCE`; and, where the builder recorded
+    the energy balance (``provenance.solver.convergence.points``), ``R + T <= 1`` everywhere and
+    ``|R + T - 1| <= energy_tolerance`` for a lossless stack.
+
+    Raises
+    ------
+    LibraryError
+        One line naming the library, the cell, the wavelength and the value.
+
+    References
+    ----------
+    Poynting's theorem (energy conservation; passivity of a structure without gain).
+    """
+    if not lib.has_responses:
+        return lib
+    where = lib.source_path or lib.name
+    tol = PASSIVITY_TOLERANCE
+    nan = np.full(lib.t_long.shape, np.nan)
+    pl = lib.power_long if lib.power_long is not None else nan
+    ps = lib.power_short if lib.power_short is not None else nan
+    tests = []
+    for label, t, pw in (("long", lib.t_long, pl), ("short", lib.t_short, ps)):
+        t2 = np.abs(t) ** 2
+        tests.append((t2 > 1 + tol, t2, f"|t_{label}|^2 = {{v:.9g}} > 1"))
+        tests.append((np.isfinite(pw) & (pw > 1 + tol), pw, f"power_{label} = {{v:.9g}} > 1"))
+        tests.append((np.isfinite(pw) & (pw < -tol), pw, f"power_{label} = {{v:.9g}} < 0"))
+        tests.append((np.isfinite(pw) & (t2 > pw + tol), t2 - pw,
+                      f"|t_{label}|^2 exceeds power_{label} (all orders) by {{v:.3g}}"))
+    both = (np.abs(lib.t_long) ** 2 + np.abs(lib.t_short) ** 2) / 2
+    tests.append((both > 1 + tol, both, "conversion + leakage = {v:.9g} > 1"))
+    for bad, val, text in tests:
+        if np.any(bad):
+            c, k = np.argwhere(bad)[0]
+            raise LibraryError(f"{where}: cell {lib.cells[c].id!r} at {lib.wavelengths_nm[k]:g} nm: "
+                               + text.format(v=float(val[c, k])) + " (not physical for a passive cell)")
+    conv = ((lib.provenance or {}).get("solver") or {}).get("convergence")
+    if isinstance(conv, dict) and isinstance(conv.get("points"), list):
+        etol = float(conv.get("energy_tolerance", tol))
+        for pt in conv["points"]:
+            for key in ("r_plus_t_long", "r_plus_t_short"):
+                v = float(pt.get(key, 1.0))
+                if v > 1 + max(etol, tol) or (pt.get("lossless") and abs(v - 1) > etol):
+                    raise LibraryError(f"{where}: cell {pt.get('cell_id')!r} at {pt.get('wavelength_nm')} nm: "
+                                       f"R + T = {v:.9g} ({key.rsplit('_', 1)[1]} axis) breaks energy conservation "
+                                       f"(allowed {'1 +- ' if pt.get('lossless') else '<= 1 + '}{etol:g})")
+    return lib
+
+
 def library_to_json(lib: CellLibrary) -> str:
     """Deterministic JSON text of a library's metadata (sorted keys, two-space indent, trailing newline)."""
     data = {
@@ -401,8 +460,10 @@ def responses_to_csv(lib: CellLibrary) -> str:
 def save_library(lib: CellLibrary, folder: str | Path) -> list[Path]:
     """Write ``<name>.library.json`` (and ``<name>.responses.csv`` when there are responses) into ``folder``.
 
-    Files are written atomically and byte-for-byte deterministically.
+    Files are written atomically and byte-for-byte deterministically; a library that is not physical
+    (:func:`check_physical`) is refused before anything is written.
     """
+    check_physical(lib)
     folder = Path(folder)
     written = [atomic_write_bytes(folder / f"{lib.name}.library.json", library_to_json(lib).encode())]
     if lib.has_responses:

@@ -18,12 +18,16 @@ incident ``p`` so that at normal incidence (``phi = 0``) the basis is simply (x,
 
 Method
 ------
-Fourier expansion of the fields over harmonics ``(m, n)``, ``|m| <= Mx``, ``|n| <= My`` (rectangular truncation).
-Permittivity products use Li's factorisation rules for crossed gratings made of rectangular blocks (Li 1997):
+Fourier expansion of the fields over harmonics ``(m, n)``, ``|m| <= Mx``, ``|n| <= My`` (rectangular truncation),
+chosen by default from a convergence target (``harmonics="auto"``, see :func:`solve`).
+The permittivity rule is chosen per layer (``factorization="auto"``) and recorded in the result: for a layer whose
+edges are all axis-parallel, Li's factorisation rules for crossed gratings made of rectangular blocks (Li 1997):
 ``D_x = [[ [1/eps]_x^-1 ]]_y E_x`` (inverse rule along x, where E_x is normal to the block edges, then Laurent's rule
-along y), ``D_y`` likewise with x and y swapped, and ``E_z = [[eps]]^-1 D_z``. Curved outlines (ellipses) are
-staircased into rectangular blocks. ``factorization="laurent"`` uses Laurent's rule everywhere (the basic
-formulation, which converges slowly for high contrast; kept for comparison). Layers are combined with scattering
+along y), ``D_y`` likewise with x and y swapped, and ``E_z = [[eps]]^-1 D_z``; for a polygon layer with oblique
+edges (:class:`metalay.cells.rcwa_nv.PolygonPattern`), the normal-vector method (Schuster et al. 2007), whose in-plane
+operator has off-diagonal blocks. Curved outlines (ellipses) given as blocks are staircased.
+``factorization="laurent"`` uses Laurent's rule everywhere (the basic formulation, which converges slowly for high
+contrast; kept for comparison). Layers are combined with scattering
 matrices referenced to a gap medium and Redheffer star products (Rumpf 2011), which are unconditionally stable
 (evanescent modes only appear as ``exp(i q d)`` with ``Im q >= 0``).
 
@@ -32,6 +36,7 @@ References
 Moharam, Grann, Pommet, Gaylord 1995, J. Opt. Soc. Am. A 12, 1068 (formulation of RCWA).
 Li 1996, J. Opt. Soc. Am. A 13, 1870 (Fourier factorisation rules).
 Li 1997, J. Opt. Soc. Am. A 14, 2758 (new formulation of the Fourier modal method for crossed gratings).
+Schuster, Ruoff, Kerwien, Rafler, Osten 2007, J. Opt. Soc. Am. A 24, 2880 (normal vector method).
 Rumpf 2011, Progress In Electromagnetics Research B 35, 241 (improved scattering matrices).
 """
 
@@ -53,6 +58,10 @@ __all__ = [
     "ellipse_pattern",
     "solve",
     "jones_circular",
+    "order_powers",
+    "FACTORIZATIONS",
+    "DEFAULT_TOLERANCE_ABS_T",
+    "DEFAULT_TOLERANCE_PHASE_DEG",
 ]
 
 
@@ -127,6 +136,10 @@ class RcwaResult:
     harmonics : tuple (Mx, My)
     settings : dict
         Solver settings (for provenance).
+    order_fields : dict or None
+        Per-order tangential fields for :func:`order_powers` (any input polarisation by superposition):
+        ``"t"``/``"r"`` (B, 2N, 2) complex ``[E_x (N); E_y (N)]`` per input (p, s), ``"kx"``, ``"ky"`` (B, N),
+        ``"kz_t"``, ``"kz_r"`` (B, N), ``"flux_in"`` (B, 2), ``"m"``, ``"n"`` (N,) order indices.
     """
 
     t_jones: np.ndarray
@@ -137,6 +150,7 @@ class RcwaResult:
     orders_r: np.ndarray
     harmonics: tuple
     settings: dict = field(default_factory=dict)
+    order_fields: dict | None = None
 
 
 def _as_batch(a, batch: int, dtype=complex) -> np.ndarray:
@@ -292,13 +306,17 @@ def _forward_sqrt(lam2: np.ndarray) -> np.ndarray:
     return np.where(np.abs(q) < 1e-12, 1e-12 + 0j, q)
 
 
-def _q_matrix(kx, ky, e_xx, e_yy):
-    """Q of dh/dz = i Q [Ex; Ey] (normalised units): [[-KxKy, Kx^2 - Eyy], [Exx - Ky^2, KyKx]]."""
+def _q_matrix(kx, ky, e_xx, e_yy, e_xy=None, e_yx=None):
+    """Q of dh/dz = i Q [Ex; Ey] (normalised units): [[-KxKy - Eyx, Kx^2 - Eyy], [Exx - Ky^2, KyKx + Exy]].
+
+    ``E_xy``, ``E_yx`` are the off-diagonal in-plane permittivity operators (``D_x = E_xx E_x + E_xy E_y``,
+    ``D_y = E_yx E_x + E_yy E_y``); None for layers whose operator is diagonal (Li's rules, Laurent's rule).
+    """
     b, n = kx.shape
     q = np.empty((b, 2 * n, 2 * n), dtype=np.result_type(e_xx, e_yy, kx))
     d = np.arange(n)
-    q[:, :n, :n] = 0
-    q[:, n:, n:] = 0
+    q[:, :n, :n] = 0 if e_yx is None else -e_yx
+    q[:, n:, n:] = 0 if e_xy is None else e_xy
     q[:, :n, n:] = -e_yy
     q[:, n:, :n] = e_xx
     q[:, d, d] = -kx * ky
@@ -343,7 +361,7 @@ def _bdiag(x):
     return out
 
 
-def _patterned_modes(e_l, e_xx, e_yy, kx, ky):
+def _patterned_modes(e_l, e_xx, e_yy, kx, ky, e_xy=None, e_yx=None):
     """Eigenmodes of a patterned layer: W (B,2N,2N), V = Q W q^-1, q (B,2N)."""
     b, n = kx.shape
     einv = np.linalg.inv(e_l)
@@ -355,7 +373,7 @@ def _patterned_modes(e_l, e_xx, e_yy, kx, ky):
     p[:, :n, n:] = eye - kxm * einv * kx[:, None, :]
     p[:, n:, :n] = kym * einv * ky[:, None, :] - eye
     p[:, n:, n:] = -kym * einv * kx[:, None, :]
-    qm = _q_matrix(kx, ky, e_xx, e_yy)
+    qm = _q_matrix(kx, ky, e_xx, e_yy, e_xy, e_yx)
     omega2 = p @ qm
     scale = np.abs(omega2).max()
     if np.abs(omega2.imag).max() <= 1e-13 * scale:
@@ -448,24 +466,45 @@ def _flux(ex, ey, kx, ky, kz):
 # Public solver
 
 
-def solve(stack: Stack, wavelength_nm, *, harmonics=(5, 5), theta_deg: float = 0.0, phi_deg: float = 0.0,
-          factorization: str = "li", batch_chunk: int | None = None) -> RcwaResult:
+#: Default convergence target of ``harmonics="auto"`` (also the library builder's default): largest change of
+#: any zeroth-order |J| element, and of the phase of any element with |J| >= 0.1, when 2 orders per axis are added.
+DEFAULT_TOLERANCE_ABS_T = 2e-3
+DEFAULT_TOLERANCE_PHASE_DEG = 0.5
+FACTORIZATIONS = ("auto", "li", "nv", "laurent")
+
+
+def solve(stack: Stack, wavelength_nm, *, harmonics="auto", theta_deg: float = 0.0, phi_deg: float = 0.0,
+          factorization: str = "auto", batch_chunk: int | None = None,
+          tolerance_abs_t: float = DEFAULT_TOLERANCE_ABS_T, tolerance_phase_deg: float = DEFAULT_TOLERANCE_PHASE_DEG,
+          max_harmonics: int = 30, converge_on: tuple = ("t", "r")) -> RcwaResult:
     """Solve a 2D-periodic stack for plane-wave incidence, both polarisations at once.
 
     Parameters
     ----------
     stack : Stack
-        Permittivities batched over B (geometries and/or wavelengths).
+        Permittivities batched over B (geometries and/or wavelengths). Patterned layers are a rectilinear
+        :class:`Pattern` or a :class:`metalay.cells.rcwa_nv.PolygonPattern` (polygons with edges of any direction).
     wavelength_nm : float or ndarray (B,)
         Vacuum wavelength per batch item.
-    harmonics : (int, int)
-        Truncation ``(Mx, My)``: orders ``-Mx..Mx`` along x and ``-My..My`` along y.
+    harmonics : (int, int) or "auto"
+        Truncation ``(Mx, My)``: orders ``-Mx..Mx`` along x and ``-My..My`` along y. "auto" (default) chooses it
+        from the convergence target: starting at 4 orders along the shorter period (scaled by the period ratio
+        along the other axis), 2 orders per axis are added until the zeroth-order Jones matrices change by less
+        than ``tolerance_abs_t`` in every ``|J|`` and ``tolerance_phase_deg`` in the phase of every element with
+        ``|J| >= 0.1``; the finer solve is returned and ``settings["convergence"]`` records the truncation and the
+        change achieved (``converged`` False when ``max_harmonics`` stopped it first).
     theta_deg, phi_deg : float
         Polar angle of incidence in the superstrate and azimuth from +x.
-    factorization : {"li", "laurent"}
-        Permittivity factorisation (Li's rules, default; or Laurent's rule everywhere).
+    factorization : {"auto", "li", "nv", "laurent"}
+        Permittivity factorisation per patterned layer. "auto": Li's rules (inverse rule along x and y) for a
+        layer whose edges are all axis-parallel (every :class:`Pattern`, and polygon layers with axis-parallel
+        edges, converted to blocks exactly), otherwise the normal-vector method ("nv"). "li" on a polygon layer
+        with oblique edges is refused (it is not valid there); "laurent" is the basic formulation.
+        ``settings["factorization_per_layer"]`` records the rule used for each layer.
     batch_chunk : int, optional
         Solve at most this many batch items at once (bounds memory); default from the matrix size.
+    tolerance_abs_t, tolerance_phase_deg, max_harmonics, converge_on
+        Convergence target of ``harmonics="auto"`` (``converge_on``: which Jones matrices, "t" and/or "r").
 
     Returns
     -------
@@ -475,27 +514,35 @@ def solve(stack: Stack, wavelength_nm, *, harmonics=(5, 5), theta_deg: float = 0
     -----
     Normalised units ``k0 = 2 pi / lambda``, ``z' = k0 z``, ``h = eta0 H``: ``dE_t/dz' = i P h_t``,
     ``dh_t/dz' = i Q E_t`` with ``P = [[Kx E^-1 Ky, I - Kx E^-1 Kx], [Ky E^-1 Ky - I, -Ky E^-1 Kx]]`` and
-    ``Q = [[-Kx Ky, Kx^2 - E_yy], [E_xx - Ky^2, Ky Kx]]``; layer modes from the eigenproblem ``P Q W = W q^2``,
-    ``V = Q W q^-1``. Zeroth-order amplitudes are scaled by ``sqrt(flux_out/flux_in)`` so that ``|J|^2`` is a power
-    ratio.
+    ``Q = [[-Kx Ky - E_yx, Kx^2 - E_yy], [E_xx - Ky^2, Ky Kx + E_xy]]``; layer modes from the eigenproblem
+    ``P Q W = W q^2``, ``V = Q W q^-1``. Zeroth-order amplitudes are scaled by ``sqrt(flux_out/flux_in)`` so that
+    ``|J|^2`` is a power ratio.
 
     References
     ----------
-    Moharam et al. 1995, JOSA A 12, 1068; Li 1997, JOSA A 14, 2758; Rumpf 2011, PIER B 35, 241.
+    Moharam et al. 1995, JOSA A 12, 1068; Li 1997, JOSA A 14, 2758; Schuster et al. 2007, JOSA A 24, 2880;
+    Rumpf 2011, PIER B 35, 241.
     """
-    if factorization not in ("li", "laurent"):
-        raise MetalayError(f"factorization {factorization!r} not in ('li', 'laurent')")
+    if factorization not in FACTORIZATIONS:
+        raise MetalayError(f"factorization {factorization!r} not in {FACTORIZATIONS}")
+    if isinstance(harmonics, str):
+        if harmonics != "auto":
+            raise MetalayError(f"harmonics {harmonics!r} must be 'auto' or a pair of non-negative integers")
+        return _solve_converged(stack, wavelength_nm, theta_deg=theta_deg, phi_deg=phi_deg,
+                                factorization=factorization, batch_chunk=batch_chunk, tol_abs=tolerance_abs_t,
+                                tol_phase=tolerance_phase_deg, max_harmonics=max_harmonics, converge_on=converge_on)
     mx, my = (int(h) for h in harmonics)
     if mx < 0 or my < 0:
         raise MetalayError(f"harmonics {harmonics} must be non-negative integers")
     b = np.asarray(stack.eps_superstrate).reshape(-1).shape[0]
     for lay in stack.layers:
-        bb = lay.eps.batch if isinstance(lay.eps, Pattern) else np.asarray(lay.eps).reshape(-1).shape[0]
+        bb = lay.eps.batch if _is_patterned(lay.eps) else np.asarray(lay.eps).reshape(-1).shape[0]
         b = max(b, bb)
     for k, lay in enumerate(stack.layers):
         d = np.asarray(lay.thickness_nm, float)
         if not np.all(np.isfinite(d)) or np.any(d < 0):
             raise MetalayError(f"layer {k}: thickness_nm must be finite and >= 0, got {d}")
+    rules = _layer_rules(stack, factorization)
     n2 = 2 * (2 * mx + 1) * (2 * my + 1)
     if batch_chunk is None:
         batch_chunk = max(1, int(1.5e8 // (n2 * n2 * 16 * 12)))
@@ -507,9 +554,99 @@ def solve(stack: Stack, wavelength_nm, *, harmonics=(5, 5), theta_deg: float = 0
                                harmonics=harmonics, theta_deg=theta_deg, phi_deg=phi_deg,
                                factorization=factorization, batch_chunk=batch_chunk))
         cat = lambda name: np.concatenate([getattr(r, name) for r in parts], axis=0)  # noqa: E731
+        fields = {k: (v if k in ("m", "n") else np.concatenate([r.order_fields[k] for r in parts], axis=0))
+                  for k, v in parts[0].order_fields.items()}
         return RcwaResult(cat("t_jones"), cat("r_jones"), cat("power_t"), cat("power_r"), cat("orders_t"),
-                          cat("orders_r"), (mx, my), parts[0].settings)
-    return _solve_batch(stack, wavelength_nm, b, mx, my, theta_deg, phi_deg, factorization)
+                          cat("orders_r"), (mx, my), parts[0].settings, fields)
+    return _solve_batch(stack, wavelength_nm, b, mx, my, theta_deg, phi_deg, rules)
+
+
+def _is_patterned(eps) -> bool:
+    from metalay.cells.rcwa_nv import PolygonPattern
+
+    return isinstance(eps, (Pattern, PolygonPattern))
+
+
+_RULE_NAMES = {"li": "Li 1997 inverse rule along x and y (axis-parallel edges)",
+               "nv": "normal-vector method (Schuster et al. 2007)", "laurent": "Laurent's rule (basic formulation)",
+               "uniform": "uniform layer (exact)"}
+
+
+def _layer_rules(stack: Stack, factorization: str) -> tuple:
+    """Rule used per layer: "uniform", "li", "nv" or "laurent" (the automatic choice of module docstring)."""
+    from metalay.cells.rcwa_nv import PolygonPattern, axis_parallel
+
+    rules = []
+    for k, lay in enumerate(stack.layers):
+        if not _is_patterned(lay.eps):
+            rules.append("uniform")
+        elif factorization == "laurent":
+            rules.append("laurent")
+        elif isinstance(lay.eps, Pattern):
+            if factorization == "nv":
+                raise MetalayError(f"layer {k}: the normal-vector rule needs a polygon layer (PolygonPattern); "
+                                   "a rectilinear Pattern uses 'li' or 'laurent'")
+            rules.append("li")
+        else:
+            parallel = axis_parallel(lay.eps)
+            if factorization == "li" and not parallel:
+                raise MetalayError(f"layer {k}: Li's inverse rule along x and y is valid only for axis-parallel "
+                                   "edges; this polygon layer has oblique edges (use 'auto' or 'nv')")
+            rules.append("li" if parallel and factorization != "nv" else "nv")
+        if rules[-1] != "uniform" and isinstance(lay.eps, PolygonPattern) and \
+                (abs(lay.eps.period_x_nm - stack.period_x_nm) > 1e-9 or
+                 abs(lay.eps.period_y_nm - stack.period_y_nm) > 1e-9):
+            raise MetalayError(f"layer {k}: polygon pattern period ({lay.eps.period_x_nm}, {lay.eps.period_y_nm}) "
+                               f"nm differs from the stack's ({stack.period_x_nm}, {stack.period_y_nm}) nm")
+    return tuple(rules)
+
+
+def _start_harmonics(stack: Stack, base: int = 4) -> tuple:
+    """Starting truncation of the automatic choice: ``base`` orders along the shorter period, scaled by the
+    period ratio along the other axis (the same spatial resolution on both axes)."""
+    px, py = float(stack.period_x_nm), float(stack.period_y_nm)
+    short = min(px, py)
+    return max(1, int(round(base * px / short))), max(1, int(round(base * py / short)))
+
+
+def _jones_change(a: RcwaResult, b: RcwaResult, converge_on) -> tuple:
+    """(max change of |J|, max change of phase in deg over elements with |J| >= 0.1) between two results."""
+    d_abs, d_ph = 0.0, 0.0
+    for side in converge_on:
+        ja = a.t_jones if side == "t" else a.r_jones
+        jb = b.t_jones if side == "t" else b.r_jones
+        d_abs = max(d_abs, float(np.max(np.abs(np.abs(ja) - np.abs(jb)))))
+        big = (np.abs(ja) >= 0.1) & (np.abs(jb) >= 0.1)
+        if np.any(big):
+            d_ph = max(d_ph, float(np.max(np.abs(np.angle(jb[big] / ja[big], deg=True)))))
+    return d_abs, d_ph
+
+
+def _solve_converged(stack, wavelength_nm, *, theta_deg, phi_deg, factorization, batch_chunk, tol_abs, tol_phase,
+                     max_harmonics, converge_on) -> RcwaResult:
+    """Raise the truncation by 2 orders per axis (scaled by the period ratio) until the change is within the
+    tolerances (see :func:`solve`); returns the finer result with ``settings["convergence"]``."""
+    if not (tol_abs > 0 and tol_phase > 0):
+        raise MetalayError(f"tolerances must be > 0 (got {tol_abs}, {tol_phase} deg)")
+    mx0, my0 = _start_harmonics(stack)
+    sx, sy = _start_harmonics(stack, 2)
+    kw = dict(theta_deg=theta_deg, phi_deg=phi_deg, factorization=factorization, batch_chunk=batch_chunk)
+    prev = solve(stack, wavelength_nm, harmonics=(mx0, my0), **kw)
+    step = 1
+    while True:
+        h = (mx0 + step * sx, my0 + step * sy)
+        cur = solve(stack, wavelength_nm, harmonics=h, **kw)
+        d_abs, d_ph = _jones_change(prev, cur, converge_on)
+        done = d_abs <= tol_abs and d_ph <= tol_phase
+        if done or max(h) + max(sx, sy) > max_harmonics:
+            break
+        prev, step = cur, step + 1
+    settings = dict(cur.settings)
+    settings["convergence"] = {"target_abs_t": float(tol_abs), "target_phase_deg": float(tol_phase),
+                               "compared_with": [int(prev.harmonics[0]), int(prev.harmonics[1])],
+                               "change_abs_t": d_abs, "change_phase_deg": d_ph, "converged": bool(done)}
+    return RcwaResult(cur.t_jones, cur.r_jones, cur.power_t, cur.power_r, cur.orders_t, cur.orders_r, cur.harmonics,
+                      settings, cur.order_fields)
 
 
 def _slice_b(a, sl, b, dtype):
@@ -528,6 +665,8 @@ def _slice_stack(stack: Stack, sl, b) -> Stack:
                 eps = p
             else:
                 eps = Pattern(p.x_edges_nm[sl], p.y_edges_nm[sl], p.eps[sl])
+        elif _is_patterned(lay.eps):
+            eps = lay.eps.sliced(sl)
         else:
             eps = _slice_b(lay.eps, sl, b, complex)
         layers.append(Layer(_slice_b(lay.thickness_nm, sl, b, float), eps))
@@ -543,7 +682,20 @@ def _expand_pattern(p: Pattern, b: int) -> Pattern:
                    np.broadcast_to(p.eps, (b,) + p.eps.shape[1:]))
 
 
-def _solve_batch(stack, wavelength_nm, b, mx, my, theta_deg, phi_deg, factorization):
+def _layer_operators(pat, rule: str, b: int, mx: int, my: int, px: float, py: float):
+    """(E_zz Laurent, E_xx, E_xy, E_yx, E_yy) of a patterned layer under ``rule`` (off-diagonals None when 0)."""
+    from metalay.cells.rcwa_nv import nv_eps_matrices, to_blocks
+
+    if isinstance(pat, Pattern):
+        e_l, e_xx, e_yy = _eps_matrices(_expand_pattern(pat, b), mx, my, px, py, rule)
+        return e_l, e_xx, None, None, e_yy
+    if rule == "li":
+        e_l, e_xx, e_yy = _eps_matrices(_expand_pattern(to_blocks(pat), b), mx, my, px, py, "li")
+        return e_l, e_xx, None, None, e_yy
+    return nv_eps_matrices(pat.expanded(b), mx, my, rule)
+
+
+def _solve_batch(stack, wavelength_nm, b, mx, my, theta_deg, phi_deg, rules):
     px, py = float(stack.period_x_nm), float(stack.period_y_nm)
     wl = _as_batch(wavelength_nm, b, float)
     e_sup = _as_batch(stack.eps_superstrate, b)
@@ -569,13 +721,13 @@ def _solve_batch(stack, wavelength_nm, b, mx, my, theta_deg, phi_deg, factorizat
     # S-matrices of runs of uniform media are kept 2x2-block-diagonal (O(N)); only patterned layers are dense.
     pieces = [("blocks", _side_blocks(v_ref, v0b, "ref"))]
     v0 = None
-    for lay in stack.layers:
+    for lay, rule in zip(stack.layers, rules):
         d = _as_batch(lay.thickness_nm, b, float)
-        if isinstance(lay.eps, Pattern):
+        if rule != "uniform":
             if v0 is None:
                 v0 = _dense(v0b)
-            e_l, e_xx, e_yy = _eps_matrices(_expand_pattern(lay.eps, b), mx, my, px, py, factorization)
-            w, v, q = _patterned_modes(e_l, e_xx, e_yy, kx, ky)
+            e_l, e_xx, e_xy, e_yx, e_yy = _layer_operators(lay.eps, rule, b, mx, my, px, py)
+            w, v, q = _patterned_modes(e_l, e_xx, e_yy, kx, ky, e_xy, e_yx)
             pieces.append(("dense", _layer_smatrix(w, v, q, v0, k0 * d)))
         else:
             v, q = _uniform_blocks(_as_batch(lay.eps, b), kx, ky)
@@ -636,11 +788,50 @@ def _solve_batch(stack, wavelength_nm, b, mx, my, theta_deg, phi_deg, factorizat
     t_j = jones(c_trn, kz_trn, 1.0)
     r_j = jones(c_ref, kz_ref, -1.0)
     settings = {"method": "RCWA / Fourier modal method, scattering matrices (Rumpf 2011)",
-                "factorization": "Li 1997 inverse/Laurent rules" if factorization == "li" else "Laurent",
+                "factorization": "; ".join(sorted({_RULE_NAMES[r] for r in rules if r != "uniform"})) or "none",
+                "factorization_per_layer": list(rules),
                 "harmonics_x": mx, "harmonics_y": my, "truncation": "rectangular",
                 "theta_deg": float(theta_deg), "phi_deg": float(phi_deg)}
+    fields = {"t": c_trn, "r": c_ref, "kx": kx, "ky": ky, "kz_t": kz_trn, "kz_r": kz_ref, "flux_in": flux_in,
+              "m": m, "n": n, "prop_t": prop_t[:, :, 0], "prop_r": prop_r[:, :, 0]}
     return RcwaResult(t_j, r_j, ord_t.sum(axis=1), ord_r.sum(axis=1), np.moveaxis(ord_t, 2, 1),
-                      np.moveaxis(ord_r, 2, 1), (mx, my), settings)
+                      np.moveaxis(ord_r, 2, 1), (mx, my), settings, fields)
+
+
+def order_powers(result: RcwaResult, polarization, side: str = "t") -> np.ndarray:
+    """Power of every diffraction order for an input polarisation given as (p, s) amplitudes.
+
+    Parameters
+    ----------
+    result : RcwaResult
+    polarization : array_like (2,) complex
+        Input Jones vector in the (p, s) basis (= (x, y) at normal incidence with azimuth 0), e.g.
+        ``(1, 1j * sigma) / sqrt 2`` for spin ``sigma``; normalised here.
+    side : {"t", "r"}
+
+    Returns
+    -------
+    ndarray (B, N) float
+        Power per order divided by the incident power; orders flattened with m outer, n inner
+        (``result.order_fields["m"]``, ``["n"]`` give them).
+
+    Notes
+    -----
+    The fields of each order are linear in the input, so the order amplitudes of any polarisation are the
+    superposition of the p and s solutions; the power is the z-flux of the plane wave of that order.
+    """
+    f = result.order_fields
+    if f is None:
+        raise MetalayError("this result carries no per-order fields")
+    a = np.asarray(polarization, complex).reshape(2)
+    a = a / np.linalg.norm(a)
+    c = f[side] @ a                                                     # (B, 2N)
+    nh = f["kx"].shape[1]
+    flux_in = np.abs(a[0]) ** 2 * f["flux_in"][:, 0] + np.abs(a[1]) ** 2 * f["flux_in"][:, 1]
+    kz = f["kz_t"] if side == "t" else -f["kz_r"]
+    pw = _flux(c[:, :nh], c[:, nh:], f["kx"], f["ky"], kz) / flux_in[:, None]
+    pw = pw if side == "t" else -pw
+    return np.where(f["prop_t" if side == "t" else "prop_r"], pw, 0.0)
 
 
 def jones_circular(t_long, t_short):

@@ -9,6 +9,8 @@ module            commands                                                    li
 ``optics.py``     ``optics``                                                  :func:`metalay.checks.optics.check_optics`
 ``routes.py``     ``routes etch | fork | slm | orient | compare | all``       :mod:`metalay.routes.routes`
 ``study.py``      ``compare``, ``tolerance``                                  :mod:`metalay.studies.study`
+``sorter.py``     ``sorter plan | compile | check``                           :mod:`metalay.measure.sortermask`
+``charge.py``     ``charge read | aperture | simulate``                       :mod:`metalay.measure.imagecharge`
 ``__main__.py``   ``python -m metalay.cli``
 ``_options.py``   options shared by commands (``--max-memory``)
 ================  ==========================================================  =====================================
@@ -41,7 +43,7 @@ from metalay.errors import MetalayError
 __all__ = ["main"]
 
 #: Optional command modules: each exposes add_parser(subparsers) and run(args) -> int.
-_COMMAND_MODULES = ("cells", "rules", "optics", "routes", "study")
+_COMMAND_MODULES = ("cells", "rules", "optics", "routes", "study", "sorter", "charge")
 
 
 def demo_design_path() -> Path:

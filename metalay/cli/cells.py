@@ -12,7 +12,7 @@ __all__ = ["add_parser", "run"]
 
 
 def add_parser(subparsers) -> None:
-    """Register ``cells build|show|import|complement``."""
+    """Register ``cells build|show|import|complement|rotation-check``."""
     p = subparsers.add_parser("cells", help="unit-cell libraries: build with the RCWA solver, show, import")
     sub = p.add_subparsers(dest="cells_command", required=True)
 
@@ -42,6 +42,18 @@ def add_parser(subparsers) -> None:
     c.add_argument("--name", help="name of the new library (default: <antenna name>-babinet-slots)")
     c.add_argument("-o", "--output", type=Path, default=Path("out") / "cells", help="output folder (default out/cells)")
     c.set_defaults(func=run)
+
+    r = sub.add_parser("rotation-check", help="solve rotated cells directly and store the rotation model's error "
+                       "in the library file")
+    r.add_argument("library", help="bundled library name or path to <name>.library.json")
+    r.add_argument("--angles", type=float, nargs="+", default=[15.0, 30.0, 45.0],
+                   help="rotations in degrees, each in (0, 90] (default 15 30 45)")
+    r.add_argument("--wavelength-nm", type=float, help="default: the library's design wavelength")
+    r.add_argument("--max-harmonics", type=int, default=12,
+                   help="largest truncation the convergence target may reach (default 12)")
+    r.add_argument("-o", "--output", type=Path,
+                   help="folder for the updated library (default: the library's own folder)")
+    r.set_defaults(func=run)
 
 
 def _default_out(spec: Path) -> Path:
@@ -73,9 +85,14 @@ def run(args) -> int:
         written = save_library(lib, args.output or _default_out(args.spec))
         if not args.quiet:
             print(lib.provenance["notes"])
-            for c in lib.provenance["solver"]["convergence"]:
-                print(f"convergence: harmonics ({c['harmonics_x']}, {c['harmonics_y']}) changes |t| by at most "
-                      f"{c['max_abs_change_abs_t']:.2e} and the phase by {c['max_change_phase_deg']:.2f} deg")
+            so = lib.provenance["solver"]
+            conv = so["convergence"]
+            hs = sorted({(p["harmonics_x"], p["harmonics_y"]) for p in conv["points"]})
+            print(f"sweep truncation ({so['sweep_harmonics_x']}, {so['sweep_harmonics_y']}) from the "
+                  f"{so['sweep_harmonics_source']}; band points converged with truncations {hs}: largest change "
+                  f"{conv['max_change_abs_t']:.1e} in |t|, {conv['max_change_phase_deg']:.2f} deg in phase "
+                  f"(targets {conv['tolerance_abs_t']:g}, {conv['tolerance_phase_deg']:g} deg; "
+                  f"{'all points converged' if conv['all_converged'] else 'NOT all points converged: see the file'})")
             for path in written:
                 print(f"wrote {path}")
         return 0
@@ -118,6 +135,32 @@ def run(args) -> int:
         lib = babinet_slot_library(load_library(args.library), name=args.name)
         print(f"{lib.name}: Babinet-principle estimate, not a solver result ({lib.provenance.get('responses_source')})")
         for path in save_library(lib, args.output):
+            print(f"wrote {path}")
+        return 0
+    if cmd == "rotation-check":
+        from dataclasses import replace
+
+        from metalay.cells.cellbuild import rotation_check
+        from metalay.cells.library import load_library
+
+        lib = load_library(args.library)
+        if not 1 <= args.max_harmonics <= 40:
+            print(f"metalay: error: --max-harmonics = {args.max_harmonics} outside 1..40", file=sys.stderr)
+            return 2
+        rec = rotation_check(lib, args.angles, wavelength_nm=args.wavelength_nm, max_harmonics=args.max_harmonics)
+        for cell in rec["cells"]:
+            if cell["rotation_invariant"]:
+                print(f"{cell['cell_id']}: rotation invariant, nothing to check")
+                continue
+            print(f"{cell['cell_id']} at {rec['wavelength_nm']:g} nm:")
+            for a in cell["angles"]:
+                print(f"  {a['angle_deg']:7.3f} deg ({a['method']}, truncation ({a['harmonics_x']}, "
+                      f"{a['harmonics_y']}){'' if a['converged'] else ', NOT converged'}): phase step spin +1 "
+                      f"{a['phase_step_spin_plus_deg']:+7.2f} deg, spin -1 {a['phase_step_spin_minus_deg']:+7.2f} deg "
+                      f"(model +-{2 * a['angle_deg']:.2f}); conversion {a['conversion_direct']:.4f} direct vs "
+                      f"{a['conversion_model']:.4f} model")
+        out = args.output or Path(lib.source_path).parent
+        for path in save_library(replace(lib, extra={**lib.extra, "rotation_check": rec}), out):
             print(f"wrote {path}")
         return 0
     print(f"metalay cells: unknown subcommand {cmd!r}", file=sys.stderr)

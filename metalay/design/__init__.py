@@ -9,6 +9,8 @@ module         stage                                                            
                a pure vectorised function of ``(x_um, y_um)``                          ``phase_gradient``
 ``lattice.py`` sites of whole cells inside the aperture (square or hexagonal); a tile  ``sample_sites``
                is a band of rows
+``logpolar.py`` log-polar mode sorter elements as phase terms (kind ``mode_sorter``)   ``sorter_parameters``,
+               and the choice of their parameters                                      ``parse_sorter_term``
 =============  ======================================================================  ==========================
 
 Imports: :mod:`metalay.errors`, :mod:`metalay.validate` only.
@@ -26,6 +28,8 @@ _ENTRIES = {
     "sample_sites": "lattice",
     "Aperture": "lattice",
     "Lattice": "lattice",
+    "sorter_parameters": "logpolar",
+    "SorterElement": "logpolar",
 }
 __all__ = sorted(_ENTRIES)
 __getattr__, __dir__ = lazy_entries(__name__, _ENTRIES)

@@ -16,6 +16,8 @@ multiplex   several vortex channels (charge, carrier direction, weight) superpos
             ``phi = arg(sum_k w_k exp(i (l_k atan2(y, x) + k_k . r + p_k)))`` (argument encoding; the amplitude of the
             superposition is discarded, which is what a phase-only geometric-phase mask can write).
 map         an imported phase map (.npy or .csv) on a regular grid with a stated physical extent, sampled bilinearly.
+mode_sorter one element of a log-polar OAM mode sorter (unwrapper, corrector, fan-out copier), with its lenses:
+            :class:`metalay.design.logpolar.SorterElement` (parameters chosen by ``sorter_parameters``).
 """
 
 from __future__ import annotations
@@ -201,7 +203,7 @@ class PhaseMap:
                 + (1 - tx) * ty * v[j1, i0] + tx * ty * v[j1, i1])
 
 
-PHASE_TERM_KINDS = ("vortex", "tilt", "lens", "axicon", "qplate", "multiplex", "map")
+PHASE_TERM_KINDS = ("vortex", "tilt", "lens", "axicon", "qplate", "multiplex", "map", "mode_sorter")
 
 
 def load_phase_map(path: str | Path, *, extent_um, where: str) -> PhaseMap:

@@ -11,6 +11,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 
 from metalay.design.lattice import Aperture, Lattice
+from metalay.design.logpolar import parse_sorter_term
 from metalay.design.phase import (
     PHASE_TERM_KINDS,
     Axicon,
@@ -337,6 +338,8 @@ def _parse_term(r: TomlTable, base_dir: Path, wavelength_nm: float):
         if abs(2 * q - round(2 * q)) > 1e-12:
             r.fail("q", q, "must be a multiple of 1/2 (the pattern must be continuous around the centre)")
         term = QPlate(float(q), float(r.number("alpha0_deg", 0.0, lo=-360, hi=360)))
+    elif kind == "mode_sorter":
+        term = parse_sorter_term(r, wavelength_nm)
     elif kind == "multiplex":
         parsed = []
         for cr in r.tables("channels", max_count=64):

@@ -85,7 +85,7 @@ import numpy as np
 import shapely
 
 from metalay.cells.cellkinds import polygon_vertex_count
-from metalay.cells.library import CellLibrary, CellSpec
+from metalay.cells.library import CellLibrary, CellSpec, check_physical
 from metalay.design.lattice import Aperture, Lattice, row_range
 from metalay.errors import DesignError, GeometryError, LibraryError, OutputError
 from metalay.io.writer import MAX_GDS_VERTICES
@@ -100,7 +100,7 @@ __all__ = [
     "shift_phase_error_rad", "field_cell_name",
     "alignment_marks", "default_mark_positions_um", "check_marks_clear",
     "dose_datatype_lut",
-    "babinet_slot_response", "babinet_slot_library",
+    "babinet_slot_response", "babinet_slot_library", "babinet_screen_check",
 ]
 
 BIAS_CORNERS = ("sharp", "chamfer")
@@ -974,6 +974,60 @@ def babinet_slot_response(t_antenna_long, t_antenna_short):
     return 1.0 - ts, 1.0 - tl
 
 
+#: Babinet screen criterion (see :func:`babinet_screen_check`).
+BABINET_MAX_RE_EPS = -10.0
+BABINET_MAX_THICKNESS_FRACTION = 0.1
+
+
+def babinet_screen_check(antenna: CellLibrary) -> None:
+    """Refuse a library whose patterned layer is not a thin, highly conducting screen (Booker's conditions).
+
+    The criterion, at every tabulated wavelength ``lambda`` (all must hold):
+
+    * metal: ``Re(eps) <= -10`` of the patterned material (a good conductor: the surface impedance
+      ``Z0 / sqrt(eps)`` is below ~0.3 ``Z0``, so the film reflects like a conductor rather than transmitting
+      like a dielectric);
+    * thin: thickness ``<= lambda / 10`` (Booker's principle is exact only for an infinitely thin screen; thicker
+      films add waveguide resonances in the slots that the antenna does not have);
+    * opaque: thickness ``>=`` the field skin depth ``lambda / (2 pi kappa)`` (``kappa = Im n``), so that the
+      complementary film blocks light as the principle assumes (a thinner film transmits through the metal).
+
+    Raises
+    ------
+    LibraryError
+        One line naming the library, the failing condition, the value and the limit.
+
+    References
+    ----------
+    Booker 1946, J. IEE 93 (IIIA), 620 (Babinet's principle for polarised fields and perfectly conducting thin
+    screens); Zentgraf et al. 2007, Phys. Rev. B 76, 033407 (its limits for real metal films at optical
+    frequencies).
+    """
+    from metalay.cells.materials import get_material
+
+    where = antenna.source_path or antenna.name
+    pat = [lay for lay in antenna.layers if lay.get("patterned")]
+    if not pat or not antenna.has_responses:
+        raise LibraryError(f"{where}: a Babinet slot estimate needs a patterned layer and responses")
+    mat, thick = pat[0]["material"], float(pat[0]["thickness_nm"])
+    wl = np.asarray(antenna.wavelengths_nm, float)
+    n = get_material(mat).index(wl)
+    eps = n**2
+    k = int(np.argmax(eps.real))
+    head = f"{where}: Babinet's principle needs a thin, highly conducting screen (Booker 1946)"
+    if eps.real[k] > BABINET_MAX_RE_EPS:
+        raise LibraryError(f"{head}; patterned material {mat!r} has Re(eps) = {eps.real[k]:.3g} at {wl[k]:g} nm, "
+                           f"not a metal (need Re(eps) <= {BABINET_MAX_RE_EPS:g})")
+    if thick > BABINET_MAX_THICKNESS_FRACTION * wl.min():
+        raise LibraryError(f"{head}; the {thick:g} nm layer is not thin (need <= lambda/10 = "
+                           f"{BABINET_MAX_THICKNESS_FRACTION * wl.min():.1f} nm at {wl.min():g} nm)")
+    skin = wl / (2 * np.pi * n.imag)
+    k = int(np.argmax(skin))
+    if thick < skin[k]:
+        raise LibraryError(f"{head}; the {thick:g} nm {mat} film is thinner than its skin depth {skin[k]:.1f} nm "
+                           f"at {wl[k]:g} nm (not opaque)")
+
+
 def babinet_slot_library(antenna: CellLibrary, *, name: str | None = None) -> CellLibrary:
     """A slot library estimated from a nanofin (antenna) library with responses, labelled as a Babinet estimate.
 
@@ -991,6 +1045,7 @@ def babinet_slot_library(antenna: CellLibrary, *, name: str | None = None) -> Ce
     if antenna.mode != "transmission":
         raise LibraryError(f"{where}: a Babinet slot estimate needs a transmission antenna library (a thin screen); "
                            f"this one is {antenna.mode!r} (a mirror behind the antennas has no complement)")
+    babinet_screen_check(antenna)
     fins = [k for k, c in enumerate(antenna.cells) if c.kind == "nanofin"]
     if not fins:
         raise LibraryError(f"{where}: a Babinet slot estimate needs nanofin cells; found kinds "
@@ -1010,7 +1065,8 @@ def babinet_slot_library(antenna: CellLibrary, *, name: str | None = None) -> Ce
     prov = dict(antenna.provenance)
     prov.update(responses_source=BABINET_SOURCE, notes=notes,
                 geometry_source=f"complement of library {antenna.name!r} cells {[c.id for c in cells]}")
-    return replace(antenna, name=name or f"{antenna.name}-babinet-slots",
-                   description=f"Slots estimated from {antenna.name} by Babinet's principle (estimate, not solved)",
-                   cells=cells, t_long=tl, t_short=ts, power_long=pl, power_short=ps, provenance=prov,
-                   source_path=None, sha256="")
+    return check_physical(replace(
+        antenna, name=name or f"{antenna.name}-babinet-slots",
+        description=f"Slots estimated from {antenna.name} by Babinet's principle (estimate, not solved)",
+        cells=cells, t_long=tl, t_short=ts, power_long=pl, power_short=ps, provenance=prov, source_path=None,
+        sha256=""))

@@ -28,7 +28,7 @@ import scipy.fft as sfft
 from metalay.errors import MetalayError
 
 __all__ = ["pixel_coordinates", "lg_field", "fork_scene", "spiral_scene", "triangle_mask", "triangle_scene",
-           "CameraModel", "expose", "encode_image", "STUDY_FORMATS", "study_scene"]
+           "CameraModel", "expose", "encode_image", "STUDY_FORMATS", "study_scene", "simulate_image"]
 
 
 def pixel_coordinates(shape) -> tuple:
@@ -323,3 +323,53 @@ def study_scene(method: str, charge: int, rng: np.random.Generator, *, fmt: str 
                       gradient_deg=float(rng.uniform(0, 360)), photons_at_peak=float(rng.uniform(200, 2000)),
                       read_noise_fraction=float(rng.uniform(0.01, 0.03)))
     return encode_image(expose(inten, cam, rng), pil), hints
+
+
+def simulate_image(method: str, charge: int, *, setup, size_px: int = 384, bits: int = 8, fmt: str = "png",
+                   seed: int = 0) -> bytes:
+    """An invented camera image of one scene, encoded (for trying a reading set-up, not a measurement).
+
+    Parameters
+    ----------
+    method : {"fork", "spiral", "triangle"}
+    charge : int
+        ``|l| <= 15``.
+    setup : float or str
+        Reference tilt azimuth in degrees (fork), ``"diverging"`` / ``"converging"`` (spiral), or the aperture's
+        apex direction in degrees (triangle): what ``metalay charge read`` must then be told.
+    size_px : int
+        Square image side, 64..2048.
+    bits : {8, 16}
+    fmt : {"png", "tiff"}
+    seed : int
+        Noise seed (same seed, same bytes).
+
+    Notes
+    -----
+    Scenes: beam ring radius 0.18 of the side, fork fringes 7 px apart with a Gaussian reference of waist 0.6 of
+    the side, spiral with 10 reference rings out to twice the ring radius, triangle far field 7 px per
+    ``lambda F / side``; camera :class:`CameraModel` defaults (5 % background, 5 % ramp, 2000 photo-electrons at
+    the peak, 1 % read noise).
+    """
+    if method not in ("fork", "spiral", "triangle"):
+        raise MetalayError(f"simulate: method = {method!r}; allowed: 'fork', 'spiral', 'triangle'")
+    if not (isinstance(charge, (int, np.integer)) and abs(int(charge)) <= 15):
+        raise MetalayError(f"simulate: charge = {charge!r}; allowed integers -15..15")
+    if not (isinstance(size_px, (int, np.integer)) and 64 <= size_px <= 2048):
+        raise MetalayError(f"simulate: size_px = {size_px!r}; allowed 64..2048")
+    if bits not in (8, 16) or fmt not in ("png", "tiff"):
+        raise MetalayError(f"simulate: bits = {bits!r}, fmt = {fmt!r}; allowed bits 8 or 16, fmt 'png' or 'tiff'")
+    shape = (int(size_px), int(size_px))
+    ring = 0.18 * size_px
+    if method == "fork":
+        inten = fork_scene(shape, int(charge), ring_radius_px=ring, fringe_period_px=7.0, azimuth_deg=float(setup),
+                           reference_waist_px=0.6 * size_px)
+    elif method == "spiral":
+        if setup not in ("diverging", "converging"):
+            raise MetalayError(f"simulate: spiral reference = {setup!r}; allowed: 'diverging', 'converging'")
+        inten = spiral_scene(shape, int(charge), ring_radius_px=ring, rings_to_edge=10.0,
+                             diverging=setup == "diverging")
+    else:
+        inten = triangle_scene(shape, int(charge), spot_scale_px=7.0, apex_deg=float(setup))
+    img = expose(inten, CameraModel(bits=int(bits)), np.random.default_rng(int(seed)))
+    return encode_image(img, fmt)

@@ -59,6 +59,8 @@ __all__ = [
     "TriangleAperture",
     "triangle_side_for_beam",
     "triangle_aperture",
+    "READ_METHODS",
+    "read_charge_file",
 ]
 
 #: Default limit on decoded pixels (a 8k x 6k sensor has 4.9e7).
@@ -786,3 +788,67 @@ def triangle_aperture(*, side_um: float | None = None, ring_diameter_um: float |
     return TriangleAperture(side_um=side, apex_deg=float(apex_deg), center_um=(float(center_um[0]),
                             float(center_um[1])), vertices_db=snapped, db_unit_nm=float(db_unit_nm),
                             snap_error_nm=err, layer=int(layer), datatype=int(datatype))
+
+
+#: Methods of :func:`read_charge_file` and the set-up each one needs.
+READ_METHODS = {"fork": "reference_azimuth_deg", "spiral": "reference", "triangle": "apex_deg"}
+
+
+def read_charge_file(path, *, method: str, setup, mirror: str = "none", max_pixels: int = MAX_IMAGE_PIXELS,
+                     isolate: bool = True) -> tuple:
+    """Read the charge from an image file: :func:`read_image`, an optional flip, then the method's reader.
+
+    Parameters
+    ----------
+    path : str or Path
+        PNG or TIFF, 8 or 16 bit (colour is converted to luminance).
+    method : {"fork", "spiral", "triangle"}
+    setup : float or str
+        What the method needs to give the sign (:data:`READ_METHODS`): the reference tilt azimuth in degrees
+        (fork), ``"diverging"`` or ``"converging"`` (spiral), the aperture apex direction in degrees as seen on
+        the camera (triangle).
+    mirror : {"none", "x", "y"}
+        Undo one mirror reflection between beam and image: ``"x"`` flips the columns (x -> -x), ``"y"`` the rows.
+    max_pixels, isolate
+        See :func:`read_image`.
+
+    Returns
+    -------
+    (ImageChargeReading, dict)
+        The reading and the image's description (``rows``, ``cols``, ``min``, ``max``, ``sha256``).
+
+    Raises
+    ------
+    MetalayError
+        One line naming the file: unreadable image, unknown method or mirror, a set-up value out of range.
+    """
+    import hashlib
+
+    if method not in READ_METHODS:
+        raise MetalayError(f"{path}: method = {method!r}; allowed: {sorted(READ_METHODS)}")
+    if mirror not in ("none", "x", "y"):
+        raise MetalayError(f"{path}: mirror = {mirror!r}; allowed: 'none', 'x', 'y'")
+    if method == "spiral":
+        if setup not in ("diverging", "converging"):
+            raise MetalayError(f"{path}: spiral reference = {setup!r}; allowed: 'diverging', 'converging'")
+    elif not (isinstance(setup, (int, float)) and np.isfinite(setup) and -360.0 <= setup <= 360.0):
+        raise MetalayError(f"{path}: {READ_METHODS[method]} = {setup!r}; allowed -360..360 degrees")
+    img = read_image(path, max_pixels=max_pixels, isolate=isolate)
+    if mirror == "x":
+        img = img[:, ::-1]
+    elif mirror == "y":
+        img = img[::-1, :]
+    with open(path, "rb") as fh:
+        digest = hashlib.sha256(fh.read()).hexdigest()
+    info = {"rows": int(img.shape[0]), "cols": int(img.shape[1]), "min": float(img.min()), "max": float(img.max()),
+            "sha256": digest, "mirror": mirror}
+    try:
+        if method == "fork":
+            reading = read_fork(img, reference_azimuth_deg=float(setup))
+        elif method == "spiral":
+            reading = read_spiral(img, reference=str(setup))
+        else:
+            reading = read_triangle(img, apex_deg=float(setup))
+    except MetalayError as exc:
+        raise MetalayError(f"{path}: {exc}") from exc
+    return reading, info

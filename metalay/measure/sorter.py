@@ -2,7 +2,10 @@
 
 The sorter maps the azimuth of the input beam onto a straight line (Berkhout et al. 2010): a beam with charge
 ``l`` becomes a strip with a linear phase ``l v / a``, which a lens focuses to a spot whose position grows linearly
-with ``l``.
+with ``l``.  The element phase terms, the fan-out grating and :func:`sorter_parameters` live in
+:mod:`metalay.design.logpolar` (so design files can carry them: kind ``mode_sorter``) and are re-exported here;
+:func:`sorter_check` propagates through the ideal elements or through sampled ones (:class:`ElementScreen`, e.g.
+decoded from written masks by :mod:`metalay.measure.sortermask`).
 
 Elements and conventions
 ------------------------
@@ -65,6 +68,16 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from metalay.design.logpolar import (
+    TRIPLICATOR_C,
+    CopyPhaseCorrector,
+    FanOutGrating,
+    LogPolarCorrector,
+    LogPolarUnwrapper,
+    SorterDesign,
+    fanout_grating,
+    sorter_parameters,
+)
 from metalay.errors import MetalayError
 
 __all__ = [
@@ -78,203 +91,9 @@ __all__ = [
     "SorterCheck",
     "sorter_check",
     "window_fraction_sinc2",
+    "TRIPLICATOR_C",
+    "ElementScreen",
 ]
-
-#: Optimum triplicator constant (Gori et al. 1998, Opt. Commun. 157, 13).
-TRIPLICATOR_C = 2.65718
-
-
-def _k_um(wavelength_nm: float) -> float:
-    return 2 * np.pi / (wavelength_nm * 1e-3)
-
-
-@dataclass(frozen=True)
-class LogPolarUnwrapper:
-    """Element 1 of the log-polar sorter: ``phi_1 = (2 pi a / (lambda f)) [y atan2(y, x) - x ln(r / b) + x]``.
-
-    Parameters
-    ----------
-    a_um : float
-        Scale of the azimuthal mapping ``v = a theta`` (the strip is ``2 pi a`` long).
-    b_um : float
-        Radius mapped to ``u = 0`` (``u = -a ln(r / b)``; translates the strip along x2).
-    focal_length_mm : float
-        Distance ``f`` to element 2 (element 1 also carries a lens of focal length ``f``, a separate term).
-    center_x_um, center_y_um : float
-        Axis of the input beam.
-
-    Notes
-    -----
-    Vectorised over sites; radians, not wrapped.  At ``r = 0`` the value is 0 (the limit); the gradient diverges
-    logarithmically there, so the element's aperture should exclude a small central disk.
-
-    References
-    ----------
-    Berkhout et al. 2010, Phys. Rev. Lett. 105, 153601.
-    """
-
-    a_um: float
-    b_um: float
-    focal_length_mm: float
-    center_x_um: float = 0.0
-    center_y_um: float = 0.0
-
-    def phase(self, x_um, y_um, *, wavelength_nm: float, sigma: int):
-        x = np.asarray(x_um, dtype=np.float64) - self.center_x_um
-        y = np.asarray(y_um, dtype=np.float64) - self.center_y_um
-        r = np.hypot(x, y)
-        with np.errstate(divide="ignore", invalid="ignore"):
-            log_term = np.where(r > 0, x * np.log(np.where(r > 0, r, 1.0) / self.b_um), 0.0)
-        scale = _k_um(wavelength_nm) * self.a_um / (self.focal_length_mm * 1e3)
-        return scale * (y * np.arctan2(y, x) - log_term + x)
-
-
-@dataclass(frozen=True)
-class LogPolarCorrector:
-    """Element 2 of the log-polar sorter: ``phi_2 = -(2 pi a b / (lambda f)) exp(-x2 / a) cos(y2 / a)``.
-
-    Coordinates are those of element 2 (``x2 = u``, ``y2 = v``), centred on the strip's axis.
-
-    References
-    ----------
-    Berkhout et al. 2010, Phys. Rev. Lett. 105, 153601.
-    """
-
-    a_um: float
-    b_um: float
-    focal_length_mm: float
-    center_x_um: float = 0.0
-    center_y_um: float = 0.0
-
-    def phase(self, x_um, y_um, *, wavelength_nm: float, sigma: int):
-        u = np.asarray(x_um, dtype=np.float64) - self.center_x_um
-        v = np.asarray(y_um, dtype=np.float64) - self.center_y_um
-        scale = _k_um(wavelength_nm) * self.a_um * self.b_um / (self.focal_length_mm * 1e3)
-        return -scale * np.exp(-u / self.a_um) * np.cos(v / self.a_um)
-
-
-@dataclass(frozen=True)
-class FanOutGrating:
-    """Periodic phase grating along y making ``n_copies`` equal diffraction orders (orders ``-M..M``).
-
-    Attributes
-    ----------
-    period_um : float
-        Grating period along y.
-    profile_rad : tuple of float
-        Phase over one period at ``y = k period / len(profile)`` (interpolated as the complex field, so wraps
-        of the stored phase do not matter).
-    order_phases_rad : tuple of float
-        Phase ``alpha_m`` of orders ``-M..M`` (the copy corrector subtracts these).
-    efficiency : float
-        Power in the ``n_copies`` orders.
-    uniformity : float
-        ``(max - min) / (max + min)`` of the order powers.
-    """
-
-    period_um: float
-    profile_rad: tuple
-    order_phases_rad: tuple
-    efficiency: float
-    uniformity: float
-
-    @property
-    def n_copies(self) -> int:
-        return len(self.order_phases_rad)
-
-    def phase(self, x_um, y_um, *, wavelength_nm: float, sigma: int):
-        prof = np.exp(1j * np.asarray(self.profile_rad, dtype=np.float64))
-        n = prof.size
-        t = (np.asarray(y_um, dtype=np.float64) / self.period_um) % 1.0 * n
-        i0 = np.floor(t).astype(np.int64) % n
-        w = t - np.floor(t)
-        val = (1 - w) * prof[i0] + w * prof[(i0 + 1) % n]
-        return np.angle(val) + 0.0 * np.asarray(x_um, dtype=np.float64)
-
-
-@dataclass(frozen=True)
-class CopyPhaseCorrector:
-    """Element-2 phase ``-alpha_m`` on copy ``m`` (strips ``|y2 - m 2 pi a| < pi a``, ``m = -M..M``); 0 elsewhere."""
-
-    a_um: float
-    order_phases_rad: tuple
-    center_y_um: float = 0.0
-
-    def phase(self, x_um, y_um, *, wavelength_nm: float, sigma: int):
-        v = np.asarray(y_um, dtype=np.float64) - self.center_y_um
-        m_half = len(self.order_phases_rad) // 2
-        m = np.rint(v / (2 * np.pi * self.a_um)).astype(np.int64)
-        ok = np.abs(m) <= m_half
-        alpha = np.asarray(self.order_phases_rad, dtype=np.float64)
-        out = np.where(ok, -alpha[np.clip(m + m_half, 0, alpha.size - 1)], 0.0)
-        return out + 0.0 * np.asarray(x_um, dtype=np.float64)
-
-
-def _orders(profile: np.ndarray, m_half: int):
-    c = np.fft.fft(np.exp(1j * profile)) / profile.size
-    idx = np.arange(-m_half, m_half + 1)
-    return c[idx]
-
-
-def fanout_grating(n_copies: int, period_um: float, *, samples: int = 512, iterations: int = 300) -> FanOutGrating:
-    """Phase grating with ``n_copies`` (odd) equal orders.
-
-    Parameters
-    ----------
-    n_copies : int
-        1, 3, 5, ... (odd: orders ``-M..M``).  1 returns a flat profile.
-    period_um : float
-        Grating period along y.
-    samples : int
-        Samples of the stored profile per period.
-    iterations : int
-        Iterations of the equal-order design (``n_copies > 3``).
-
-    Returns
-    -------
-    FanOutGrating
-
-    Notes
-    -----
-    ``n_copies = 3``: Gori's optimum triplicator ``arctan(2.65718 cos(2 pi y / period))`` (efficiency 0.9256).
-    Otherwise an iterative Fourier design: start from the argument of an equal-amplitude multitone with Schroeder's
-    phases, then alternate between the grating plane (unit modulus) and the order plane (target orders set to
-    the mean amplitude times adaptive weights, all other orders zero), deterministic.
-
-    References
-    ----------
-    Gori et al. 1998, Opt. Commun. 157, 13; Gerchberg & Saxton 1972, Optik 35, 237; Schroeder 1970, IEEE Trans.
-    Inf. Theory 16, 85.
-    """
-    n = int(n_copies)
-    if n < 1 or n % 2 == 0 or n > 31:
-        raise MetalayError(f"fan-out: n_copies = {n_copies!r}; allowed odd 1..31")
-    if not period_um > 0:
-        raise MetalayError(f"fan-out: period_um = {period_um!r} must be > 0")
-    m_half = n // 2
-    y = np.arange(samples) / samples
-    if n == 1:
-        prof = np.zeros(samples)
-    elif n == 3:
-        prof = np.arctan(TRIPLICATOR_C * np.cos(2 * np.pi * y))
-    else:
-        orders = np.arange(-m_half, m_half + 1)
-        beta = np.pi * orders ** 2 / n
-        prof = np.angle(np.exp(1j * (2 * np.pi * np.outer(orders, y) + beta[:, None])).sum(axis=0))
-        w = np.ones(n)
-        for it in range(iterations):  # iterations of the 1-D design (short axis)
-            c = np.fft.fft(np.exp(1j * prof)) / samples
-            amp = np.abs(c[orders])
-            if it > 10:
-                w = w * np.sqrt(amp.mean() / np.maximum(amp, 1e-12))
-            target = np.zeros(samples, dtype=complex)
-            target[orders] = w * amp.mean() * np.exp(1j * np.angle(c[orders]))
-            prof = np.angle(np.fft.ifft(target))
-    c = _orders(prof, m_half)
-    p = np.abs(c) ** 2
-    return FanOutGrating(period_um=float(period_um), profile_rad=tuple(float(v) for v in prof),
-                         order_phases_rad=tuple(float(v) for v in np.angle(c)), efficiency=float(p.sum()),
-                         uniformity=float((p.max() - p.min()) / (p.max() + p.min())))
 
 
 def window_fraction_sinc2(half_width: float) -> float:
@@ -296,191 +115,6 @@ def window_fraction_sinc2(half_width: float) -> float:
     if h <= 0:
         return 0.0
     return float((2 / np.pi) * (sici(2 * np.pi * h)[0] - np.sin(np.pi * h) ** 2 / (np.pi * h)))
-
-
-@dataclass(frozen=True)
-class SorterDesign:
-    """A log-polar sorter for one wavelength: parameters with units and the phase terms of its elements.
-
-    Attributes
-    ----------
-    wavelength_nm : float
-    a_um, b_um : float
-        Mapping parameters (``u = -a ln(r / b)``, ``v = a theta``).
-    focal_length_mm : float
-        Element separation ``f`` (elements 1 and 2 each also carry a lens of focal length ``f``).
-    fourier_focal_length_mm : float
-        Focal length ``F`` of the Fourier lens in front of the detector.
-    input_outer_radius_um, input_inner_radius_um : float
-        Element 1 is the annulus between these radii (the centre is blocked).
-    n_copies : int
-        Fan-out copies (odd; 1 = no copier).
-    copier_focal_length_mm : float
-        Focal length ``f_c`` of the copier (elements 3 and 4), used when ``n_copies > 1``.
-    """
-
-    wavelength_nm: float
-    a_um: float
-    b_um: float
-    focal_length_mm: float
-    fourier_focal_length_mm: float
-    input_outer_radius_um: float
-    input_inner_radius_um: float
-    n_copies: int = 1
-    copier_focal_length_mm: float = 0.0
-
-    @property
-    def spot_spacing_um(self) -> float:
-        """Predicted spot displacement per unit charge in the Fourier plane, ``lambda F / (2 pi a)``."""
-        return self.wavelength_nm * 1e-3 * self.fourier_focal_length_mm * 1e3 / (2 * np.pi * self.a_um)
-
-    @property
-    def spot_sign(self) -> int:
-        """+1: charge ``l`` lands at ``+l`` spacings along y; -1 with the copier (its relay inverts the strip)."""
-        return 1 if self.n_copies == 1 else -1
-
-    @property
-    def strip_x2_um(self) -> tuple:
-        """Range of x2 = u covered by the input annulus at element 2."""
-        return (-self.a_um * np.log(self.input_outer_radius_um / self.b_um),
-                -self.a_um * np.log(self.input_inner_radius_um / self.b_um))
-
-    @property
-    def strip_half_length_um(self) -> float:
-        """Half length along y of the strip at element 2 (``pi a``) or of the copies at element 4
-        (``n_copies pi a``)."""
-        return self.n_copies * np.pi * self.a_um
-
-    @property
-    def corrector_waves(self) -> float:
-        """``a b / (lambda f)``: amplitude of the corrector phase in waves (the mapping needs several)."""
-        return self.a_um * self.b_um / (self.wavelength_nm * 1e-3 * self.focal_length_mm * 1e3)
-
-    def fanout(self) -> FanOutGrating | None:
-        """The copier's grating (element 3, period ``lambda f_c / (2 pi a)``), or None without copies."""
-        if self.n_copies == 1:
-            return None
-        period = self.wavelength_nm * 1e-3 * self.copier_focal_length_mm * 1e3 / (2 * np.pi * self.a_um)
-        return fanout_grating(self.n_copies, period)
-
-    def element_terms(self) -> tuple:
-        """Phase terms of each element: a tuple of 2 (no copier) or 4 tuples of terms.
-
-        1: unwrapper + lens ``f``; 2: corrector + lens ``f`` (+ lens ``f_c``); 3: grating + 2 lenses ``f_c``;
-        4: per-copy phases + lens ``f_c``.
-        """
-        from metalay.design.phase import Lens
-
-        f_um, fc_um = self.focal_length_mm * 1e3, self.copier_focal_length_mm * 1e3
-        el1 = (LogPolarUnwrapper(self.a_um, self.b_um, self.focal_length_mm), Lens(f_um))
-        el2 = (LogPolarCorrector(self.a_um, self.b_um, self.focal_length_mm), Lens(f_um))
-        g = self.fanout()
-        if g is None:
-            return (el1, el2)
-        return (el1, el2 + (Lens(fc_um),), (g, Lens(fc_um), Lens(fc_um)),
-                (CopyPhaseCorrector(self.a_um, g.order_phases_rad), Lens(fc_um)))
-
-    def max_local_frequency_per_um(self) -> float:
-        """Largest local spatial frequency (cycles/um) of any element's total phase (sampling check).
-
-        Element 1: ``|(u, v) - (x, y)| / (lambda f)`` over the annulus; element 2: corrector
-        ``b exp(-x2 / a) / (lambda f)`` plus its lenses; copier elements: grating ``M / period`` plus their
-        lenses over the copies' extent.
-        """
-        lam = self.wavelength_nm * 1e-3
-        lam_f = lam * self.focal_length_mm * 1e3
-        r = np.linspace(self.input_inner_radius_um, self.input_outer_radius_um, 64)[:, None]
-        t = np.linspace(-np.pi, np.pi, 129)[None, :]
-        u, v = -self.a_um * np.log(r / self.b_um), self.a_um * t
-        el1 = float(np.max(np.hypot(u - r * np.cos(t), v - r * np.sin(t)))) / lam_f
-        x2 = np.array(self.strip_x2_um)
-        r2 = np.hypot(np.abs(x2).max(), np.pi * self.a_um)
-        el2 = (self.b_um * np.exp(-x2.min() / self.a_um) + r2) / lam_f
-        if self.n_copies > 1:
-            lam_fc = lam * self.copier_focal_length_mm * 1e3
-            el2 += r2 / lam_fc
-            el2 = max(el2, (self.n_copies // 2) * 2 * np.pi * self.a_um / lam_fc + 2 * 0.5 * r2 / lam_fc,
-                      self.strip_half_length_um / lam_fc)
-        return float(max(el1, el2))
-
-
-def sorter_parameters(input_diameter_um: float, *, wavelength_nm: float, spot_spacing_um: float,
-                      inner_diameter_um: float | None = None, period_nm: float | None = None,
-                      focal_length_mm: float | None = None, n_copies: int = 1, min_waves: float = 4.0,
-                      max_ray_angle_deg: float = 15.0, copier_angle_deg: float = 1.7) -> SorterDesign:
-    """Choose ``a``, ``b``, the element separation and the lenses for an input aperture and a spot spacing.
-
-    Parameters
-    ----------
-    input_diameter_um : float
-        Width ``d`` of the input beam / element 1 (outer diameter).
-    wavelength_nm : float
-    spot_spacing_um : float
-        Wanted displacement per unit charge in the detector plane.
-    inner_diameter_um : float, optional
-        Blocked centre of element 1 (default ``d / 5``).
-    period_nm : float, optional
-        Metasurface lattice period: the design is refused when an element's local phase gradient would exceed half
-        the lattice's Nyquist limit, ``1 / (4 p)`` (a factor 2 of margin).
-    focal_length_mm : float, optional
-        Element separation ``f`` (default: the largest ``f`` with ``a b / (lambda f) >= min_waves``).
-    n_copies : int
-        Fan-out copies (odd; 1 = none).
-    min_waves : float
-        Smallest corrector amplitude ``a b / (lambda f)`` in waves.  The mapping is a stationary-phase (geometric)
-        one and needs many waves across the element: measured with :func:`sorter_check` (300 um element, ring
-        beam, charges -5..5, ``bench/sorter_study.py``), 2 waves gave 0.55-0.66 of the detected power in the right
-        window and a spacing 1.1 % short; 4 waves gave 0.71-0.77 and a spacing within 0.15 % (the ``sinc^2``
-        reference is 0.79).
-    max_ray_angle_deg : float
-        Largest angle of the geometric ray from ``(x, y)`` to ``(u, v)``: the mapping and the lens's Fourier
-        property are paraxial.  A design that needs more is refused (enlarge the element: at a fixed angle the
-        waves grow in proportion to the diameter).
-    copier_angle_deg : float
-        Angle ``2 pi a / f_c`` at which the side copies leave the copier's grating (sets ``f_c``).
-
-    Returns
-    -------
-    SorterDesign
-
-    Notes
-    -----
-    ``a = d / (2 pi)`` so that the full azimuth ``2 pi`` spreads over the width ``d`` (Berkhout et al. 2010);
-    ``b = sqrt(r_in r_out)`` centres the strip on ``x2 = 0`` (``b`` only translates the strip: our choice);
-    ``F = spacing 2 pi a / lambda`` from ``t = lambda F l / (2 pi a)``.
-    """
-    d = float(input_diameter_um)
-    if not (d > 0 and wavelength_nm > 0 and spot_spacing_um > 0):
-        raise MetalayError("sorter_parameters: input_diameter_um, wavelength_nm and spot_spacing_um must be > 0")
-    r_out = d / 2
-    r_in = (inner_diameter_um if inner_diameter_um is not None else d / 5) / 2
-    if not 0 < r_in < r_out:
-        raise MetalayError(f"sorter_parameters: inner_diameter_um = {2 * r_in:g} must be in (0, {d:g})")
-    n_copies = int(n_copies)
-    if n_copies < 1 or n_copies % 2 == 0:
-        raise MetalayError(f"sorter_parameters: n_copies = {n_copies}; allowed odd 1, 3, 5, ...")
-    a = d / (2 * np.pi)
-    b = float(np.sqrt(r_in * r_out))
-    lam_um = wavelength_nm * 1e-3
-    big_f = spot_spacing_um * 2 * np.pi * a / lam_um * 1e-3
-    fc = 0.0 if n_copies == 1 else float(np.ceil(2 * np.pi * a / np.tan(np.radians(copier_angle_deg))) * 1e-3)
-    if focal_length_mm is None:
-        focal_length_mm = float(np.floor(a * b / (lam_um * min_waves)) * 1e-3)
-    design = SorterDesign(float(wavelength_nm), a, b, float(focal_length_mm), big_f, r_out, r_in, n_copies, fc)
-    el1_only = SorterDesign(float(wavelength_nm), a, b, float(focal_length_mm), big_f, r_out, r_in)
-    offset_um = el1_only.max_local_frequency_per_um() * lam_um * focal_length_mm * 1e3
-    angle = float(np.degrees(np.arctan(offset_um / (focal_length_mm * 1e3))))
-    if angle > max_ray_angle_deg:
-        raise MetalayError(f"sorter_parameters: f = {focal_length_mm:g} mm needs rays at {angle:.1f} deg > "
-                           f"max_ray_angle_deg = {max_ray_angle_deg:g} (paraxial mapping); enlarge "
-                           f"input_diameter_um (now {d:g}) or lower min_waves")
-    if period_nm is not None:
-        nu = design.max_local_frequency_per_um()
-        if nu > 1 / (4 * period_nm * 1e-3):
-            raise MetalayError(f"sorter_parameters: local phase gradient {nu:.3f} cycles/um exceeds 1/(4 p) = "
-                               f"{1 / (4 * period_nm * 1e-3):.3f} for period_nm = {period_nm:g}; enlarge f or "
-                               "input_diameter_um")
-    return design
 
 
 @dataclass(frozen=True, eq=False)
@@ -508,6 +142,11 @@ class SorterCheck:
     sample_um : float
     grid_side : int
     notes : tuple of str
+    profile_ty_um : ndarray (T,), optional
+        Detector positions along y of ``profiles``.
+    profiles : ndarray (C, T), optional
+        Power density along y (integrated over the window height) per input charge, per um, as a fraction of the
+        power entering element 1.
     """
 
     charges: np.ndarray
@@ -523,6 +162,8 @@ class SorterCheck:
     sample_um: float
     grid_side: int
     notes: tuple
+    profile_ty_um: np.ndarray | None = None
+    profiles: np.ndarray | None = None
 
     @property
     def diagonal(self) -> np.ndarray:
@@ -537,6 +178,64 @@ class SorterCheck:
                 "window_power": self.window_power.tolist(), "crosstalk": self.crosstalk.tolist(),
                 "detected": self.detected.tolist(), "window_half_height_um": self.window_half_height_um,
                 "sample_um": self.sample_um, "grid_side": self.grid_side, "notes": list(self.notes)}
+
+
+@dataclass(frozen=True, eq=False)
+class ElementScreen:
+    """One element's complex transmission sampled on a regular grid (e.g. decoded from a written mask).
+
+    Attributes
+    ----------
+    field : ndarray (ny, nx) complex
+        Transmission of the sample centred at ``(x_um[c], y_um[r])`` (row = y); 0 where the element passes no light
+        into the propagated polarisation.
+    x_um, y_um : ndarray (nx,), (ny,)
+        Sample centres, evenly spaced, increasing.
+    source : str
+        Where the samples came from (stated in the check's notes).
+
+    Notes
+    -----
+    :func:`sorter_check` looks each of its grid points up in the nearest sample (a piecewise-constant screen: a
+    unit cell transmits its response over its whole area); a grid with the samples' pitch and origin takes them
+    exactly.
+    """
+
+    field: np.ndarray
+    x_um: np.ndarray
+    y_um: np.ndarray
+    source: str = ""
+
+    @property
+    def pitch_um(self) -> tuple:
+        """Sample pitch ``(dx, dy)``."""
+        dx = float(self.x_um[1] - self.x_um[0]) if self.x_um.size > 1 else np.inf
+        dy = float(self.y_um[1] - self.y_um[0]) if self.y_um.size > 1 else np.inf
+        return dx, dy
+
+    @property
+    def half_extent_um(self) -> float:
+        """Largest ``|x|`` or ``|y|`` of a sample (plus half a pitch)."""
+        dx, dy = (v if np.isfinite(v) else 0.0 for v in self.pitch_um)
+        return float(max(np.abs(self.x_um).max() + dx / 2, np.abs(self.y_um).max() + dy / 2))
+
+    def on_grid(self, axis: np.ndarray) -> np.ndarray:
+        """The screen on the square grid ``axis x axis`` (nearest sample; 0 outside the sampled region)."""
+        def index(a, centres):
+            if centres.size == 1:
+                step = 1.0
+            else:
+                step = float(centres[1] - centres[0])
+            k = np.rint((a - centres[0]) / step).astype(np.int64)
+            ok = (k >= 0) & (k < centres.size) & (np.abs(a - centres[0] - k * step) <= 0.5 * step + 1e-9)
+            return np.clip(k, 0, centres.size - 1), ok
+
+        ix, okx = index(axis, np.asarray(self.x_um, dtype=np.float64))
+        iy, oky = index(axis, np.asarray(self.y_um, dtype=np.float64))
+        out = self.field[np.ix_(iy, ix)].astype(np.complex128)
+        out[~oky, :] = 0.0
+        out[:, ~okx] = 0.0
+        return out
 
 
 def _input_beam(design: SorterDesign, xx, yy, charge: int, beam: str):
@@ -583,9 +282,38 @@ def _detector_profile(field, axis, design: SorterDesign, tx, ty):
     return dens.sum(axis=1) * float(tx[1] - tx[0])
 
 
+def _grid_and_screens(design: SorterDesign, elements, sample_um, max_side: int):
+    """The common square grid of the element planes and every element's screen on it."""
+    from metalay.checks import grid
+
+    n_el = len(design.element_terms())
+    if elements is not None:
+        elements = list(elements)
+        if len(elements) != n_el:
+            raise MetalayError(f"sorter_check: {len(elements)} element screens given; this sorter has {n_el} "
+                               f"elements (n_copies = {design.n_copies})")
+    if sample_um is None:
+        if elements is None:
+            sample_um = min(1.0 / (4 * design.max_local_frequency_per_um()), 2 * design.input_outer_radius_um / 50)
+        else:
+            sample_um = min(min(el.pitch_um) for el in elements)
+    half = 1.1 * max(design.input_outer_radius_um, np.abs(design.strip_x2_um).max(), design.strip_half_length_um)
+    if elements is not None:
+        half = max(half, max(el.half_extent_um for el in elements))
+    n = int(2 * np.ceil(half / sample_um) + 1)
+    if n > max_side:
+        raise MetalayError(f"sorter_check: grid of {n} x {n} samples at {sample_um:.3g} um exceeds max_side = "
+                           f"{max_side}; raise sample_um or max_side")
+    axis = grid.centered_axis(n, sample_um)
+    if elements is None:
+        return axis, _element_screens(design, axis, sample_um), float(sample_um), n, "ideal phase elements"
+    return axis, [el.on_grid(axis) for el in elements], float(sample_um), n, "; ".join(
+        el.source for el in elements if el.source) or "sampled element screens"
+
+
 def sorter_check(design: SorterDesign, charges=range(-5, 6), *, beam: str = "ring", sample_um: float | None = None,
                  pad_factor: float = 2.0, window_half_height_um: float | None = None, max_side: int = 2048,
-                 workers: int = 2) -> SorterCheck:
+                 workers: int = 2, elements=None) -> SorterCheck:
     """Propagate OAM beams through the elements and a Fourier lens; spot positions and crosstalk.
 
     Parameters
@@ -598,7 +326,7 @@ def sorter_check(design: SorterDesign, charges=range(-5, 6), *, beam: str = "rin
         width (the same ring for every ``l``); ``"lg"``: Laguerre-Gauss ``LG_0^l`` with its ring mid-annulus.
     sample_um : float, optional
         Sample pitch of the element planes; default a quarter period of the largest local frequency (at most a
-        fiftieth of the input diameter).
+        fiftieth of the input diameter), or with ``elements`` their finest pitch.
     pad_factor : float
         Padding of the angular-spectrum propagations.
     window_half_height_um : float, optional
@@ -608,6 +336,9 @@ def sorter_check(design: SorterDesign, charges=range(-5, 6), *, beam: str = "rin
         Largest grid side allowed (one clear error instead of a huge computation).
     workers : int
         Threads for ``scipy.fft``.
+    elements : sequence of ElementScreen, optional
+        Sampled elements to propagate through instead of the ideal phase terms (one per element, in order, each
+        centred on the common axis), e.g. decoded from the written masks.
 
     Returns
     -------
@@ -615,25 +346,18 @@ def sorter_check(design: SorterDesign, charges=range(-5, 6), *, beam: str = "rin
 
     Notes
     -----
-    Each element multiplies the field by its aperture and ``exp(i phi)``; between elements the field is
-    propagated by the band-limited angular-spectrum method (:func:`metalay.checks.grid.angular_spectrum`, exact in the
-    scalar approximation, non-paraxial) over ``f`` (and ``f_c``, ``f_c`` with copies); the detector plane of an ideal
-    Fourier lens ``F`` is ``U(t) ~ A(t / F)`` with ``A`` the far field by a zoom transform
-    (:func:`metalay.checks.farpoints.far_field_zoom`) around the expected spots, so no FFT padding enters the figures.
+    Each element multiplies the field by its aperture and ``exp(i phi)`` (or by its sampled screen); between
+    elements the field is propagated by the band-limited angular-spectrum method
+    (:func:`metalay.checks.grid.angular_spectrum`, exact in the scalar approximation, non-paraxial) over ``f`` (and
+    ``f_c``, ``f_c`` with copies); the detector plane of an ideal Fourier lens ``F`` is ``U(t) ~ A(t / F)`` with
+    ``A`` the far field by a zoom transform (:func:`metalay.checks.farpoints.far_field_zoom`) around the expected
+    spots, so no FFT padding enters the figures.
     """
     from metalay.checks import grid
 
     charges = np.asarray(list(charges), dtype=np.int64)
-    if sample_um is None:
-        sample_um = min(1.0 / (4 * design.max_local_frequency_per_um()), 2 * design.input_outer_radius_um / 50)
-    half = 1.1 * max(design.input_outer_radius_um, np.abs(design.strip_x2_um).max(), design.strip_half_length_um)
-    n = int(2 * np.ceil(half / sample_um) + 1)
-    if n > max_side:
-        raise MetalayError(f"sorter_check: grid of {n} x {n} samples at {sample_um:.3g} um exceeds max_side = "
-                           f"{max_side}; raise sample_um or max_side")
-    axis = grid.centered_axis(n, sample_um)
+    axis, screens, sample_um, n, source = _grid_and_screens(design, elements, sample_um, max_side)
     xx, yy = np.meshgrid(axis, axis)
-    screens = _element_screens(design, axis, sample_um)
     gaps_um = [design.focal_length_mm * 1e3] + [design.copier_focal_length_mm * 1e3] * (len(screens) - 2)
     s = design.spot_spacing_um
     r0 = 0.5 * (design.input_inner_radius_um + design.input_outer_radius_um)
@@ -647,6 +371,7 @@ def sorter_check(design: SorterDesign, charges=range(-5, 6), *, beam: str = "rin
     in_win = np.abs(ty[None, :] - centres[:, None]) < s / 2  # (C, nty)
     pos = np.zeros(charges.size)
     wp = np.zeros((charges.size, charges.size))
+    profiles = np.zeros((charges.size, ty.size))
     for k, lc in enumerate(charges):  # loop over input charges (short axis)
         e = _input_beam(design, xx, yy, int(lc), beam)
         p_in = float(np.sum(np.abs(e) ** 2)) * sample_um ** 2
@@ -655,15 +380,18 @@ def sorter_check(design: SorterDesign, charges=range(-5, 6), *, beam: str = "rin
             e = grid.angular_spectrum(e, sample_um, sample_um, design.wavelength_nm, gap, pad_factor=pad_factor,
                                       workers=workers) * screen
         prof = _detector_profile(e, axis, design, tx, ty)
+        profiles[k] = prof / p_in
         wp[k] = (in_win * prof[None, :]).sum(axis=1) * (ty[1] - ty[0]) / p_in
         sel = np.abs(ty - ty[int(np.argmax(prof))]) < s / 2
         pos[k] = float((prof[sel] * ty[sel]).sum() / prof[sel].sum())
     detected = wp.sum(axis=1)
     slope, icpt = np.polyfit(charges, pos, 1) if charges.size > 1 else (np.nan, np.nan)
-    notes = (f"element planes sampled at {sample_um:.3f} um on {n} x {n}, propagations padded x{pad_factor:g}",
+    notes = (f"elements: {source}",
+             f"element planes sampled at {sample_um:.3f} um on {n} x {n}, propagations padded x{pad_factor:g}",
              f"detection windows {s:.3f} um wide (one spacing) and {2 * hh:.1f} um high",
              f"beam: {beam}; corrector amplitude {design.corrector_waves:.2f} waves; {design.n_copies} copies")
     return SorterCheck(charges=charges, positions_um=pos, predicted_um=centres.astype(float), slope_um=float(slope),
                        predicted_slope_um=float(design.spot_sign * s), intercept_um=float(icpt), window_power=wp,
                        crosstalk=wp / np.maximum(detected[:, None], 1e-300), detected=detected,
-                       window_half_height_um=float(hh), sample_um=float(sample_um), grid_side=n, notes=notes)
+                       window_half_height_um=float(hh), sample_um=float(sample_um), grid_side=n, notes=notes,
+                       profile_ty_um=ty, profiles=profiles)
