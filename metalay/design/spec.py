@@ -159,8 +159,10 @@ def _parse_design_table(d: TomlTable, base_dir: Path):
     """``[design]``: name, wavelength, input spin, library (a relative library path is taken from the file's
     folder)."""
     name = d.string("name")
-    if not name or len(name) > 64 or not all(c.isalnum() or c in "-_." for c in name):
-        d.fail("name", name, "use 1 to 64 characters from letters, digits, '-', '_' and '.'")
+    if (not name or len(name) > 64 or name.startswith(".")
+            or not all(c.isascii() and (c.isalnum() or c in "-_.") for c in name)):
+        d.fail("name", name, "use 1 to 64 ASCII letters, digits, '-', '_' and '.', not starting with '.' "
+               "(the name becomes file and cell names)")
     wavelength_nm = d.number("wavelength_nm", lo=100.0, hi=20000.0)
     sigma = d.number("input_spin", integer=True)
     if sigma not in (1, -1):
