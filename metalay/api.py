@@ -16,7 +16,7 @@ from __future__ import annotations
 
 from pathlib import Path
 
-from metalay.checks.steps import default_checks
+from metalay.checks.steps import compile_report_step, default_checks
 from metalay.design.spec import Design, load_design, parse_design
 from metalay.mask.compile import SAFETY_CAUTION, SITES_PER_TILE, CompileResult, compile_mask
 
@@ -46,7 +46,8 @@ def prepare_design(design: Design) -> tuple[Design, dict]:
 
 def compile_design(design: Design, out_dir: str | Path, *, run_rules: bool | None = None,
                    run_optics: bool | None = None, show_progress: bool | None = None,
-                   sites_per_tile: int = SITES_PER_TILE, max_memory_bytes: int | None = None) -> CompileResult:
+                   sites_per_tile: int = SITES_PER_TILE, max_memory_bytes: int | None = None,
+                   report: bool = True) -> CompileResult:
     """Compile ``design`` into mask files, a manifest and the standard checks in ``out_dir`` (all or nothing).
 
     Parameters
@@ -63,6 +64,8 @@ def compile_design(design: Design, out_dir: str | Path, *, run_rules: bool | Non
         Tile size bound (memory).
     max_memory_bytes : int, optional
         Memory budget for the admission check (default: half of what this process may use).
+    report : bool
+        Write ``report.html`` (:func:`metalay.checks.steps.compile_report_step`) after the manifest.
 
     Returns
     -------
@@ -72,4 +75,4 @@ def compile_design(design: Design, out_dir: str | Path, *, run_rules: bool | Non
     design, annotations = prepare_design(design)
     return compile_mask(design, out_dir, checks=default_checks(rules=run_rules, optics=run_optics),
                         show_progress=show_progress, sites_per_tile=sites_per_tile, annotations=annotations,
-                        max_memory_bytes=max_memory_bytes)
+                        max_memory_bytes=max_memory_bytes, report=compile_report_step if report else None)

@@ -866,6 +866,13 @@ class OpticsResult:
     notes: tuple
     near: NearField | None = None
     far: grid.FarField | None = None
+    sections: tuple = ()
+
+    def __str__(self) -> str:
+        v = self.figures.get("verdicts", {})
+        b = self.figures.get("power_budget", {})
+        return (f"optical check: verdict {str(v.get('verdict', '?')).upper()}; converted "
+                f"{b.get('converted', float('nan')):.4f} of incident; {len(self.files)} files written")
 
 
 def ideal_responses(n_cells: int):
@@ -1281,10 +1288,27 @@ def _read_and_decode(mask_path: Path, lib, design, target, opt: OpticsOptions, n
     zoom_c = tuple(float(v) for v in facing.beam_xy(*target.center_um))  # the axis as the file shows it
     zoom_hw = max(1.5, 4 * period_nm * 1e-3)
     first = flat.xy_db[flat.start[:-1]] * (flat.db_unit_nm / 1000.0)
+    zoom_c = _zoom_on_structures(first, zoom_c, zoom_hw)
     win = (np.abs(first[:, 0] - zoom_c[0]) < zoom_hw + 1) & (np.abs(first[:, 1] - zoom_c[1]) < zoom_hw + 1)
     zoom_flat = flat.select(win) if opt.make_plots else None
     return _Decoded(mask_path, lib, design, target, no_target, tuple(layer), bias_nm, decoded, t_long, t_short,
                     period_nm, (zoom_flat, zoom_c, zoom_hw, flat.db_unit_nm), facing)
+
+
+def _zoom_on_structures(first_um: np.ndarray, centre, half_width_um: float) -> tuple[float, float]:
+    """The zoom centre: ``centre`` when polygons lie within the window around it, else the polygon (first vertex)
+    nearest to it (an annulus or an off-axis aperture has no structures on the axis)."""
+    if first_um.shape[0] == 0:
+        return centre
+    d = np.maximum(np.abs(first_um[:, 0] - centre[0]), np.abs(first_um[:, 1] - centre[1]))
+    if np.count_nonzero(d < half_width_um) >= 4:
+        return centre
+    k = int(np.argmin(np.hypot(first_um[:, 0] - centre[0], first_um[:, 1] - centre[1])))
+    # move the window so the nearest polygon sits half a window inside it, towards the structures
+    dx, dy = first_um[k, 0] - centre[0], first_um[k, 1] - centre[1]
+    r = float(np.hypot(dx, dy))
+    return (float(centre[0] + dx * (r + 0.5 * half_width_um) / r),
+            float(centre[1] + dy * (r + 0.5 * half_width_um) / r))
 
 
 def _decimation_note(ev: Evaluation, target: OpticsTarget, m: int, side: int, max_side: int) -> str:
@@ -1527,7 +1551,8 @@ def _images(dec: _Decoded, ev: Evaluation, figures: dict, fringe_image, opt: Opt
     images["2_mask_phase"] = ("phase of the converted field decoded from the mask (frame of the leaving light)",
                               plots.phase_map(np.angle(conv), xs, ys, title="mask-derived phase",
                                               valid=valid & (np.abs(conv) > 0)))
-    images["3_layout_zoom"] = (f"mask polygons within {zoom_hw:g} um of ({zoom_c[0]:g}, {zoom_c[1]:g}) um, as the "
+    images["3_layout_zoom"] = (f"mask polygons within {zoom_hw:g} um of ({zoom_c[0]:.4g}, {zoom_c[1]:.4g}) um, as "
+                               "the "
                                "file shows them (patterned face seen from above)",
                                plots.layout_zoom(zoom_flat.start, zoom_flat.xy_db, db_unit_nm, center_um=zoom_c,
                                                  half_width_um=zoom_hw))
@@ -1558,6 +1583,137 @@ def _images(dec: _Decoded, ev: Evaluation, figures: dict, fringe_image, opt: Opt
                                   plots.focal_profile(lm["profile"]["radius_um"], lm["profile"]["intensity"],
                                                       airy_radius_um=lm["airy_radius_um"]))
     return images
+
+
+def _site_phase_error(dec: _Decoded, ev: Evaluation):
+    """Per-site error (rad, wrapped to (-pi, pi]) of the converted phase against the target and the global offset
+    removed from it; (None, 0) without a target."""
+    if not dec.target.terms:
+        return None, 0.0
+    xs_site, ys_site = site_xy(dec.decoded)
+    phi_t = _target_phase(dec.target.terms, xs_site, ys_site, dec.target)
+    err = np.angle(ev.fields.converted.astype(np.complex128) * np.exp(-1j * phi_t))
+    ok = np.abs(ev.fields.converted) > 0
+    if not ok.any():
+        return None, 0.0
+    g = float(np.angle(np.sum(np.exp(1j * err[ok]))))
+    return np.angle(np.exp(1j * (err[ok] - g))), g
+
+
+def _phase_error_section(dec: _Decoded, ev: Evaluation, figures: dict):
+    """Report section: map and histogram of the mask-derived phase minus the target (wrapped, offset removed)."""
+    from metalay.checks import plots
+    from metalay.checks.report import Figure, Section, Table, fmt_number
+
+    e, g = _site_phase_error(dec, ev)
+    if e is None:
+        return None
+    near, target = ev.near, dec.target
+    sm = max(1, int(np.ceil(max(near.designed.shape) / 700)))
+    xs, ys = near.x_um[::sm], near.y_um[::sm]
+    conv = near.converted[::sm, ::sm]
+    phi_t = _target_phase(target.terms, xs[None, :], ys[:, None], target)
+    err_deg = np.degrees(np.angle(conv * np.exp(-1j * (phi_t + g))))
+    valid = near.illuminated[::sm, ::sm] & (np.abs(conv) > 0)
+    e_deg = np.degrees(e)
+    lim = float(max(5.0, min(180.0, np.ceil(np.percentile(np.abs(e_deg), 99.5) / 5) * 5)))
+    pe = figures.get("phase_error_deg", {})
+    rows = (("rms over sites", fmt_number(pe.get("rms")), "deg"), ("largest |error|", fmt_number(pe.get("max")), "deg"),
+            ("global offset removed", fmt_number(float(np.degrees(g))), "deg"),
+            ("sites", fmt_number(int(e.size)), "count"))
+    return Section("phase-error", "Phase error: mask-derived minus target", (
+        Table(("quantity", "value", "unit"), rows),
+        Figure("phase of the converted field decoded from the written mask minus the target phase, wrapped to "
+               "(-180, 180] deg, one global offset removed (frame of the leaving light; block-averaged where the "
+               "near field is decimated)",
+               plots.signed_map(err_deg, xs, ys, title="phase error (deg)", limit=lim, label="deg", valid=valid)),
+        Figure("histogram of the per-site phase error (every decoded site)",
+               plots.histogram(e_deg, bins=90, range_=(-lim, lim), xlabel="phase error (deg)",
+                               title="phase error per site")),
+    ), order=40)
+
+
+def _rotation_section(dec: _Decoded):
+    """Report section: histogram of the element rotation angles read back from the mask."""
+    from metalay.checks import plots
+    from metalay.checks.report import Figure, Section
+
+    rot = np.mod(np.degrees(np.asarray(dec.decoded.rotation_rad, dtype=np.float64)), 180.0)
+    if rot.size == 0:
+        return None
+    return Section("rotations", "Rotation angles", (Figure(
+        "rotation of every element read back from the mask, modulo 180 deg (a geometric-phase design spreads "
+        "them evenly; a few levels show as spikes)",
+        plots.histogram(rot, bins=90, range_=(0.0, 180.0), xlabel="rotation angle (deg, file frame)",
+                        title="element rotations")),), order=45)
+
+
+def _spot_labels(target: OpticsTarget, centres: dict) -> dict:
+    labels = {}
+    for name, uv in centres.items():
+        if name == "designed":
+            lc = "" if target.charge is None else f", l = {target.charge:+d}"
+            labels[f"designed order{lc}"] = uv
+        elif name == "zero_order":
+            labels["zero order"] = uv
+        elif name.startswith("channel_"):
+            _, k, lpart = name.split("_", 2)
+            labels[f"ch {k}: l = {lpart[1:]}"] = uv
+        else:
+            labels[name.replace("_", " ")] = uv
+    return labels
+
+
+def _far_field_section(dec: _Decoded, ev: Evaluation):
+    """Report section: the far field zoomed on the designed spot(s), orders and channels labelled."""
+    from metalay.checks import plots
+    from metalay.checks.report import Figure, Section
+
+    target, ff, r = dec.target, ev.far, ev.radius_u
+    if target.focal_length_um or dec.no_target:
+        return None
+    centres = dict(ev.centres)
+    if target.channels:
+        pts = np.asarray([(c[1], c[2]) for c in target.channels], dtype=np.float64)
+        centre = tuple(float(c) for c in (pts.min(axis=0) + pts.max(axis=0)) / 2)
+        half = float(max(np.max(np.abs(pts - centre)) + 4 * r, 6 * r))
+        shown = {k: v for k, v in centres.items() if k.startswith("channel_")}
+    else:
+        centre = tuple(float(c) for c in target.direction)
+        half = 3.5 * r
+        shown = {k: v for k, v in centres.items() if k == "designed"}
+    figs = [Figure(f"far-field power around the designed spot{'s' if len(shown) > 1 else ''} (linear scale; "
+                   f"window +-{half:.4g} in direction cosines, dashed circles: one lobe radius {r:.3g})",
+                   plots.far_field_zoom(ff.power, ff.u, ff.v, centre=centre, half_width=half,
+                                        spots=_spot_labels(target, shown), lobe_radius=r))]
+    if "zero_order" in centres or target.channels:
+        pts = np.asarray([(0.0, 0.0)] + [tuple(c) for c in centres.values()], dtype=np.float64)
+        mid = (pts.min(axis=0) + pts.max(axis=0)) / 2
+        wide = float(min(1.0, max(np.max(np.abs(pts - mid)) + 6 * r, 10 * r)))
+        figs.append(Figure("the same on a log scale over a wider window (the zero order included for a single "
+                           "deflected spot)",
+                           plots.far_field_zoom(ff.power, ff.u, ff.v, centre=tuple(float(c) for c in mid),
+                                                half_width=wide,
+                                                spots=_spot_labels(target, centres), lobe_radius=r, log=True,
+                                                title="far field (log), orders labelled")))
+    return Section("far-field", "Far field on the designed spots", tuple(figs), order=50)
+
+
+def _layout_section(images: dict):
+    from metalay.checks.report import Figure, Section
+
+    if "3_layout_zoom" not in images:
+        return None
+    cap, png = images["3_layout_zoom"]
+    return Section("layout-zoom", "Layout zoom", (Figure(cap, png),), order=35)
+
+
+def report_sections(dec: _Decoded, ev: Evaluation, figures: dict, images: dict) -> tuple:
+    """The optical check's own report sections (:class:`metalay.checks.report.Section`): layout zoom on
+    structures, phase-error map and histogram, rotation histogram, far field on the designed spots."""
+    out = [_layout_section(images), _phase_error_section(dec, ev, figures), _rotation_section(dec),
+           _far_field_section(dec, ev)]
+    return tuple(s for s in out if s is not None)
 
 
 def check_optics(mask_path, library, *, design=None, target: OpticsTarget | None = None, out_dir=None,
@@ -1601,10 +1757,11 @@ def check_optics(mask_path, library, *, design=None, target: OpticsTarget | None
     figures, fringe_image = _figures(dec, ev, opt, notes, timings)
     limits = opt.limits if opt.limits is not None else getattr(getattr(design, "checks", None), "limits", None)
     figures["verdicts"] = optics_verdicts(json_ready(figures), limits)
-    images, html_text = {}, None
+    images, html_text, sections = {}, None, ()
     if opt.make_plots:
         t0 = time.perf_counter()
         images = _images(dec, ev, figures, fringe_image, opt)
+        sections = report_sections(dec, ev, json_ready(figures), images)
         timings["plots_s"] = time.perf_counter() - t0
     figures = json_ready(figures)
     inputs = {"mask": {"path": mask_path.name, "sha256": _sha256(mask_path), "bytes": mask_path.stat().st_size},
@@ -1622,13 +1779,21 @@ def check_optics(mask_path, library, *, design=None, target: OpticsTarget | None
         html_text = render_html(title=(opt.title or f"Optical check of {mask_path.name}")
                                 + f": verdict {verdict['verdict'].upper()}", caution=SAFETY_NOTE,
                                 inputs=inputs, figures={k: v for k, v in figures.items() if k != "inputs"},
-                                images=images, notes=[f"verdict {verdict['verdict'].upper()}: {verdict['summary']}",
-                                                      *notes])
+                                images={k: v for k, v in images.items() if k != "3_layout_zoom"},
+                                notes=[f"verdict {verdict['verdict'].upper()}: {verdict['summary']}", *notes],
+                                sections=(_optics_verdict_section(verdict), *sections))
     files = _write_outputs(Path(out_dir), figures, images, html_text) if out_dir is not None else {}
     timings["total_s"] = time.perf_counter() - t_all
     return OpticsResult(figures=figures, images=images, html=html_text, files=files, timings=timings,
                         notes=tuple(notes), near=ev.near if opt.keep_arrays else None,
-                        far=ev.far if opt.keep_arrays else None)
+                        far=ev.far if opt.keep_arrays else None, sections=sections)
+
+
+def _optics_verdict_section(verdicts: dict):
+    from metalay.checks.report import verdict_section
+
+    return verdict_section({"overall": verdicts["verdict"], "by_check": {"optics": verdicts},
+                            "reasons": [i["text"] for i in verdicts["items"] if i["verdict"] != "pass"]})
 
 
 def _write_outputs(out_dir: Path, figures: dict, images: dict, html_text) -> dict:
@@ -1664,7 +1829,8 @@ def quick_check(mask_path, library, design, *, out_dir=None, workers: int = 2) -
     """
     res = check_optics(mask_path, library, design=design, out_dir=out_dir,
                        options=OpticsOptions(max_side=1024, pad_factor=2.0, workers=workers))
-    return {"figures": res.figures, "files": res.files, "notes": list(res.notes), "timings": res.timings}
+    return {"figures": res.figures, "files": res.files, "notes": list(res.notes), "timings": res.timings,
+            "sections": res.sections}
 
 
 def compile_check(path, library, design) -> dict:
@@ -1699,4 +1865,4 @@ def compile_check(path, library, design) -> dict:
     v = f["verdicts"]
     return {"status": v["verdict"], "verdict": v["verdict"], "verdict_items": v["items"],
             "verdict_summary": v["summary"], "summary": "; ".join(parts), "figures": f, "files": files,
-            "notes": q["notes"], "timings_s": q["timings"]}
+            "notes": q["notes"], "timings_s": q["timings"], "report_sections": q["sections"]}

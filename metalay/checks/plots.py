@@ -16,8 +16,9 @@ from matplotlib.collections import PolyCollection
 from matplotlib.colors import LogNorm, Normalize
 from matplotlib.figure import Figure
 
-__all__ = ["png_bytes", "phase_map", "layout_zoom", "far_field_map", "oam_bars", "crosstalk_map",
-           "interferogram_map", "focal_profile", "PHASE_CMAP", "INTENSITY_CMAP", "new_figure", "styled"]
+__all__ = ["png_bytes", "phase_map", "layout_zoom", "far_field_map", "far_field_zoom", "oam_bars", "crosstalk_map",
+           "interferogram_map", "focal_profile", "histogram", "signed_map", "mask_overview", "PHASE_CMAP",
+           "INTENSITY_CMAP", "new_figure", "styled"]
 
 #: Our colour choices: a cyclic map for phase, a perceptual map for intensity.
 PHASE_CMAP = "twilight_shifted"
@@ -213,4 +214,168 @@ def focal_profile(radius_um, intensity, *, airy_radius_um=None, title: str = "fo
     ax.set_ylabel("intensity (normalised)")
     ax.legend()
     ax.set_title(title)
+    return png_bytes(fig)
+
+
+@styled
+def histogram(values, *, bins, xlabel: str, title: str, range_=None, ylabel: str = "sites",
+              marks=None) -> bytes:
+    """Histogram of ``values`` (e.g. per-site phase errors or rotation angles); ``marks`` maps a label to an x
+    position drawn as a vertical dashed line (thresholds)."""
+    v = np.asarray(values, dtype=np.float64).ravel()
+    v = v[np.isfinite(v)]
+    counts, edges = np.histogram(v, bins=bins, range=range_)
+    fig = new_figure(5.0, 3.4)
+    ax = fig.add_subplot()
+    ax.bar(edges[:-1], counts, width=np.diff(edges), align="edge", color=BAR_COLOUR, edgecolor="none")
+    for k, (label, x) in enumerate((marks or {}).items()):
+        ax.axvline(x, color=HIGHLIGHT_COLOUR, ls="--", lw=1.0)
+        ax.annotate(label, (x, 1), xycoords=("data", "axes fraction"), xytext=(3, -12 - 11 * k),
+                    textcoords="offset points", color=HIGHLIGHT_COLOUR, fontsize=8)
+    ax.set_xlabel(xlabel)
+    ax.set_ylabel(ylabel)
+    ax.set_title(title)
+    fig.subplots_adjust(bottom=0.16, left=0.14, right=0.97)
+    return png_bytes(fig)
+
+
+@styled
+def signed_map(values: np.ndarray, x_um: np.ndarray, y_um: np.ndarray, *, title: str, limit: float,
+               label: str, valid=None, max_pixels: int = 700) -> bytes:
+    """A signed quantity (e.g. phase error in degrees) on a diverging map from ``-limit`` to ``+limit``."""
+    a = np.asarray(values, dtype=np.float64)
+    if valid is not None:
+        a = np.where(valid, a, np.nan)
+    a, _ = _shrink(a, max_pixels, mean=False)
+    fig = new_figure(5.2, 4.2)
+    ax = fig.add_subplot()
+    im = ax.imshow(a, origin="lower", cmap="RdBu_r", vmin=-limit, vmax=limit, interpolation="nearest",
+                   extent=[x_um[0], x_um[-1], y_um[0], y_um[-1]])
+    fig.colorbar(im, ax=ax).set_label(label)
+    ax.set_xlabel("x (um)")
+    ax.set_ylabel("y (um)")
+    ax.set_title(title)
+    return png_bytes(fig)
+
+
+def _label_offsets(points, centre):
+    """Offsets (points) that put each label radially outside its spot, away from the group's centre."""
+    out = []
+    for (x, y) in points:
+        dx, dy = x - centre[0], y - centre[1]
+        r = np.hypot(dx, dy)
+        if r == 0:
+            dx, dy, r = 0.0, 1.0, 1.0
+        out.append((14 * dx / r, 14 * dy / r))
+    return out
+
+
+@styled
+def far_field_zoom(power: np.ndarray, u: np.ndarray, v: np.ndarray, *, centre, half_width: float, spots,
+                   lobe_radius: float, title: str = "far field on the designed spots", log: bool = False,
+                   dynamic_range_db: float = 40.0, max_pixels: int = 600) -> bytes:
+    """Far-field power in a window of ``half_width`` (direction cosines) around ``centre``; each of ``spots``
+    (label -> (u, v)) is circled at one lobe radius and labelled radially outside the circle, so labels do not
+    cover the spots they name."""
+    cols = np.flatnonzero(np.abs(u - centre[0]) <= half_width)
+    rows = np.flatnonzero(np.abs(v - centre[1]) <= half_width)
+    if cols.size < 2 or rows.size < 2:  # window narrower than the grid: widen to a few bins
+        cols = np.flatnonzero(np.abs(u - centre[0]) <= 4 * abs(u[1] - u[0]))
+        rows = np.flatnonzero(np.abs(v - centre[1]) <= 4 * abs(v[1] - v[0]))
+    sub = np.asarray(power[rows[0]:rows[-1] + 1, cols[0]:cols[-1] + 1], dtype=np.float64)
+    uu, vv = u[cols[0]:cols[-1] + 1], v[rows[0]:rows[-1] + 1]
+    img, _ = _shrink(sub, max_pixels, mean=True)
+    fig = new_figure(5.4, 4.6)
+    ax = fig.add_subplot()
+    top = float(img.max()) if img.size and img.max() > 0 else 1.0
+    floor = top * 10 ** (-dynamic_range_db / 10)
+    norm = LogNorm(vmin=floor, vmax=top) if log else Normalize(0, top)
+    im = ax.imshow(np.maximum(img, floor) if log else img, origin="lower", cmap=INTENSITY_CMAP, norm=norm,
+                   interpolation="bilinear", extent=[uu[0], uu[-1], vv[0], vv[-1]])
+    fig.colorbar(im, ax=ax).set_label("power per bin (" + ("log" if log else "linear") + ", relative)")
+    pts = list(spots.values())
+    c = np.mean(np.asarray(pts, dtype=np.float64), axis=0) if pts else np.asarray(centre)
+    offsets = [(0.0, 16.0)] if len(pts) == 1 else _label_offsets(pts, c)
+    for k, ((mu, mv), (ox, oy)) in enumerate(zip(pts, offsets)):
+        # a label pointing out of the window near its edge goes above (or below) its spot instead
+        if (ox > 5 and mu > centre[0] + 0.3 * half_width) or (ox < -5 and mu < centre[0] - 0.3 * half_width):
+            offsets[k] = (0.0, 16.0 if mv < centre[1] + 0.6 * half_width else -16.0)
+        elif oy > 5 and mv > centre[1] + 0.6 * half_width:
+            offsets[k] = (ox, -16.0)
+    from matplotlib.patches import Circle
+    for (label, (mu, mv)), (ox, oy) in zip(spots.items(), offsets):
+        if abs(mu - centre[0]) > half_width or abs(mv - centre[1]) > half_width:
+            continue
+        ax.add_patch(Circle((mu, mv), lobe_radius, fill=False, ec=HIGHLIGHT_COLOUR, lw=1.0, ls="--"))
+        # the label starts outside the circle, pointing away from the group's centre
+        ax.annotate(label, (mu, mv), xytext=(ox, oy), textcoords="offset points", color="white",
+                    fontsize=8, ha="center" if abs(ox) < 5 else ("left" if ox > 0 else "right"),
+                    va="center" if abs(oy) < 5 else ("bottom" if oy > 0 else "top"),
+                    bbox={"boxstyle": "round,pad=0.15", "fc": "#1d2a33", "ec": "none", "alpha": 0.75},
+                    annotation_clip=False)
+    ax.set_xlim(uu[0], uu[-1])
+    ax.set_ylim(vv[0], vv[-1])
+    from matplotlib.ticker import MaxNLocator
+
+    ax.xaxis.set_major_locator(MaxNLocator(5))
+    ax.set_xlabel("u = sin(theta_x)")
+    ax.set_ylabel("v = sin(theta_y)")
+    ax.set_title(title)
+    fig.tight_layout()
+    return png_bytes(fig)
+
+
+@styled
+def mask_overview(layers, *, aperture_xy_um=(), field_lines_um=((), ()), markers=(), title: str = "whole mask",
+                  structures_label: str = "structures", max_polygons: int = 20000) -> bytes:
+    """The whole mask at a glance.
+
+    Parameters
+    ----------
+    layers : dict name -> (list of (N, 2) arrays in um, colour)
+        Polygons to draw (frame, marks, label...), at most ``max_polygons`` per entry.
+    aperture_xy_um : sequence of (M, 2) arrays
+        Outlines of the patterned region (the structures), filled lightly.
+    field_lines_um : (xs, ys)
+        Write-field boundaries: vertical lines at ``xs`` and horizontal lines at ``ys`` (um).
+    markers : sequence of (x_um, y_um, label)
+        Points marked with a red cross (e.g. design-rule violations).
+    """
+    from matplotlib.patches import Polygon as MplPolygon
+
+    fig = new_figure(7.6, 5.2)
+    ax = fig.add_axes((0.1, 0.1, 0.58, 0.82))
+    handles = []
+    for k, outline in enumerate(aperture_xy_um):
+        patch = MplPolygon(np.asarray(outline), closed=True, fc="#cfe3ee" if k == 0 else "white", ec="#3b6e8f",
+                           lw=0.8, label=structures_label if k == 0 else None)
+        ax.add_patch(patch)
+        if k == 0:
+            handles.append(patch)
+    xs, ys = field_lines_um
+    for x in xs:
+        ax.axvline(x, color="#5d6d7a", lw=0.7, ls=":")
+    for y in ys:
+        ax.axhline(y, color="#5d6d7a", lw=0.7, ls=":")
+    if len(xs) or len(ys):
+        handles.append(ax.plot([], [], color="#5d6d7a", lw=0.8, ls=":", label="write-field boundaries")[0])
+    for name, (polys, colour) in layers.items():
+        if not polys:
+            continue
+        coll = PolyCollection(polys[:max_polygons], facecolors=colour, edgecolors=colour, linewidths=0.3,
+                              label=name)
+        ax.add_collection(coll)
+        handles.append(coll)
+    if markers:
+        mx = [m[0] for m in markers]
+        my = [m[1] for m in markers]
+        handles.append(ax.plot(mx, my, "x", color="#c0392b", ms=7, mew=1.6, label="design-rule violation")[0])
+    ax.autoscale_view()
+    ax.set_aspect("equal")
+    ax.margins(0.04)
+    ax.set_xlabel("x (um)")
+    ax.set_ylabel("y (um)")
+    ax.set_title(title)
+    if handles:
+        ax.legend(handles=handles, loc="upper left", bbox_to_anchor=(1.03, 1.0), fontsize=8, frameon=False)
     return png_bytes(fig)

@@ -10,13 +10,16 @@ from __future__ import annotations
 from dataclasses import replace
 from pathlib import Path
 
+import numpy as np
+
 from metalay.checks.rules import check_mask, rules_from_library
 from metalay.design.limits import judge
 from metalay.design.spec import Design
 from metalay.mask.process import WriteFieldGrid
 from metalay.mask.steps import MaskCheck, WrittenMask
 
-__all__ = ["default_checks", "rules_step", "optics_step", "run_rules_on_written", "run_optics_on_written"]
+__all__ = ["default_checks", "rules_step", "optics_step", "run_rules_on_written", "run_optics_on_written",
+           "compile_report_step", "rule_margins_window"]
 
 #: Vertex limit of the written pieces of a tone inversion (GDSII allows 8191 points, the last repeats the first).
 _PIECE_MAX_VERTICES = 8190
@@ -135,3 +138,144 @@ def run_optics_on_written(written: WrittenMask) -> dict:
     from metalay.checks import optics  # imported when the step runs: it pulls in the FFT and plotting stack
 
     return optics.compile_check(written.path, written.library, written.design)
+
+
+# ----------------------------------------------------------------------------------------------------------------
+# The compile report (written after the manifest: it shows the verdicts)
+# ----------------------------------------------------------------------------------------------------------------
+
+#: Largest site count for which the report reads the structures again to measure rule margins on a window.
+REPORT_MARGIN_SITES = 5_000_000
+#: Polygons of the window the margins are measured on (the ones nearest the structures' middle).
+MARGIN_WINDOW_POLYGONS = 2000
+
+
+def _purpose_pairs(written: WrittenMask, manifest: dict) -> dict:
+    """(layer, datatype) of each purpose as written (dose datatypes applied)."""
+    mask = written.design.mask
+    dts = manifest.get("process", {}).get("dose_datatypes", {})
+    out = {}
+    for purpose in ("structures", "frame", "label", "marks"):
+        layer, dt = mask.layer(purpose)
+        out[purpose] = (int(layer), int(dts.get(purpose, dt)))
+    return out
+
+
+def rule_margins_window(flat, ruleset, *, period_nm: float, polygons: int = MARGIN_WINDOW_POLYGONS) -> dict:
+    """How far the width, spacing and aspect-ratio rules are from failing, measured on a window of polygons.
+
+    The rules are re-run with limits every polygon fails (width 1e7 nm, spacing one lattice period, aspect ratio
+    1e-9), so :func:`metalay.checks.rules.check_mask` reports the measured extreme of each quantity over the
+    ``polygons`` polygons nearest the middle of the layer (their neighbours included).
+
+    Returns
+    -------
+    dict
+        ``window_polygons`` and per rule ``limit``, ``measured`` (nm or ratio; None: no neighbour closer than a
+        period), ``margin`` (positive = passes, the rule's unit) and ``relative_margin`` (margin / limit).
+    """
+    lr = ruleset.layers[0]
+    on = (flat.layer == lr.layer) & (flat.datatype == lr.datatype)
+    idx = np.flatnonzero(on)
+    if idx.size == 0:
+        return {"window_polygons": 0, "rules": {}}
+    first = flat.xy_db[flat.start[:-1][idx]].astype(np.float64)
+    mid = np.median(first, axis=0)
+    keep = idx[np.argsort(np.hypot(first[:, 0] - mid[0], first[:, 1] - mid[1]), kind="stable")[:polygons]]
+    sel = np.zeros(flat.count, dtype=bool)
+    sel[keep] = True
+    probe = replace(lr, min_width_nm=1e7 if lr.min_width_nm else None,
+                    min_spacing_nm=period_nm if lr.min_spacing_nm else None, forbid_overlap=False, grid_nm=None,
+                    check_validity=False, max_aspect_ratio=1e-9 if lr.max_aspect_ratio else None,
+                    no_field_straddle=False, inside_frame=None, max_vertices=None, min_area_nm2=None,
+                    min_notch_nm=None, min_hole_area_nm2=None, min_angle_deg=None)
+    report = check_mask(flat.select(sel), replace(ruleset, layers=(probe,), write_field_um=None))
+    by = {r.rule: r for r in report.results}
+    out = {}
+    for rule, limit, pick, sign in (("width", lr.min_width_nm, np.min, 1), ("spacing", lr.min_spacing_nm, np.min, 1),
+                                    ("aspect_ratio", lr.max_aspect_ratio, np.max, -1)):
+        if not limit or rule not in by:
+            continue
+        v = by[rule].violations.value
+        measured = float(pick(v)) if v.size else None
+        margin = sign * (measured - limit) if measured is not None else period_nm - limit
+        out[rule] = {"limit": float(limit), "measured": measured, "margin": float(margin),
+                     "relative_margin": float(margin / limit), "unit": by[rule].unit}
+    return {"window_polygons": int(keep.size), "rules": out}
+
+
+def _aperture_outlines(aperture) -> list:
+    t = np.linspace(0, 2 * np.pi, 257)[:-1]
+    if aperture.shape in ("circle", "annulus"):
+        r = aperture.diameter_um / 2
+        out = [np.column_stack([r * np.cos(t), r * np.sin(t)])]
+        if aperture.shape == "annulus":
+            ri = aperture.inner_diameter_um / 2
+            out.append(np.column_stack([ri * np.cos(t), ri * np.sin(t)]))
+        return out
+    w = aperture.width_um / 2
+    h = (aperture.height_um or aperture.width_um) / 2
+    return [np.array([[-w, -h], [w, -h], [w, h], [-w, h]])]
+
+
+def _field_lines(design, bbox) -> tuple:
+    wf = design.mask.write_field
+    if wf is None or bbox is None:
+        return (), ()
+    (x0, y0), (x1, y1) = bbox
+    (w, h), (ox, oy) = wf.size_um, wf.origin_um
+    xs = ox + w * np.arange(np.floor((x0 - ox) / w), np.ceil((x1 - ox) / w) + 1)
+    ys = oy + h * np.arange(np.floor((y0 - oy) / h), np.ceil((y1 - oy) / h) + 1)
+    if xs.size > 200 or ys.size > 200:  # too many to draw: the figure says so in its caption
+        return (), ()
+    return tuple(float(x) for x in xs), tuple(float(y) for y in ys)
+
+
+def _overview(written: WrittenMask, flat, pairs: dict, manifest: dict) -> bytes:
+    from metalay.checks import plots
+
+    to_um = flat.db_unit_nm / 1000.0
+    colours = {"frame": "#1f3b4d", "label": "#6b4c9a", "marks": "#2e8b57"}
+    layers, boxes = {}, []
+    for purpose, colour in colours.items():
+        on = np.flatnonzero((flat.layer == pairs[purpose][0]) & (flat.datatype == pairs[purpose][1]))
+        polys = [flat.xy_db[flat.start[k]:flat.start[k + 1]] * to_um for k in on[:20000]]
+        layers[purpose] = (polys, colour)
+        boxes += [(p.min(axis=0), p.max(axis=0)) for p in polys]
+    apert = _aperture_outlines(written.design.aperture)
+    boxes += [(a.min(axis=0), a.max(axis=0)) for a in apert]
+    bbox = (np.min([b[0] for b in boxes], axis=0), np.max([b[1] for b in boxes], axis=0))
+    markers = []
+    for r in manifest.get("checks", {}).get("rules", {}).get("results", []):
+        markers += [(v["x_um"], v["y_um"], r["rule"]) for v in r.get("listed", [])]
+    return plots.mask_overview(layers, aperture_xy_um=apert, field_lines_um=_field_lines(written.design, bbox),
+                               markers=markers, structures_label=f"structures ({manifest['counts']['sites']:,} "
+                                                                 "elements, aperture)")
+
+
+def compile_report_step(written: WrittenMask, manifest: dict, sections: dict) -> str:
+    """The compile's ``report.html``: headline verdicts, design-rule result with margins and a map of violations,
+    whole-mask overview, the checks' own sections, the manifest's numbers grouped with units, the caution.
+
+    Reads the written mask once more: the frame, label and marks layers (and, up to
+    :data:`REPORT_MARGIN_SITES` sites, the structures for the rule margins on a window).
+    """
+    from metalay.checks.report import compile_report
+    from metalay.io.gdsread import read_mask
+
+    design = written.design
+    pairs = _purpose_pairs(written, manifest)
+    measure = (manifest["counts"]["sites"] <= REPORT_MARGIN_SITES and design.mask.tone == "structures"
+               and "rules" in manifest.get("checks", {}))
+    wanted = [pairs[p] for p in ("frame", "label", "marks")] + ([pairs["structures"]] if measure else [])
+    flat = read_mask(written.path, layers=wanted)
+    margins = None
+    if measure:
+        ruleset = _library_ruleset(written)()
+        ruleset = replace(ruleset, layers=tuple(lr for lr in ruleset.layers
+                                                if (lr.layer, lr.datatype) == pairs["structures"])[:1])
+        if ruleset.layers:
+            margins = rule_margins_window(flat, ruleset, period_nm=design.lattice.period_nm)
+    overview = _overview(written, flat, pairs, manifest)
+    extra = [s for key in sorted(sections) for s in sections[key]]
+    return compile_report(manifest, extra, overview_png=overview, margins=margins)

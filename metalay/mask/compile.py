@@ -112,6 +112,21 @@ class CompileResult:
     summary: tuple[str, ...]
     timings_s: dict = field(default_factory=dict)
 
+    def __str__(self) -> str:
+        v = self.manifest.get("verdicts", {})
+        c = self.manifest.get("counts", {})
+        lines = [f"compile of {self.manifest.get('design', {}).get('name', '?')} into {self.out_dir}: verdict "
+                 f"{str(v.get('overall', '?')).upper()}, {c.get('sites', 0):,} sites"]
+        lines += [f"  {k} check: {b['verdict'].upper()}" for k, b in v.get("by_check", {}).items()]
+        lines += [f"  {k}: {Path(p).name}" for k, p in sorted(self.files.items())]
+        lines += [f"  warning: {w}" for w in self.warnings]
+        return "\n".join(lines)
+
+    def __repr__(self) -> str:
+        v = self.manifest.get("verdicts", {})
+        return (f"CompileResult(out_dir={str(self.out_dir)!r}, verdict={v.get('overall')!r}, "
+                f"files={sorted(self.files)!r}, warnings={len(self.warnings)})")
+
 
 def medium_index(name: str, wavelength_nm: float) -> float | None:
     """Real refractive index of a named medium at ``wavelength_nm`` (None when unknown)."""
@@ -188,7 +203,8 @@ def _sha256(path: Path) -> str:
 
 def compile_mask(design: Design, out_dir: str | Path, *, checks: Sequence[MaskCheck] = (),
                  show_progress: bool | None = None, sites_per_tile: int = SITES_PER_TILE,
-                 annotations: dict | None = None, max_memory_bytes: int | None = None) -> CompileResult:
+                 annotations: dict | None = None, max_memory_bytes: int | None = None,
+                 report=None) -> CompileResult:
     """Compile ``design`` into mask files and a manifest in ``out_dir`` (all or nothing), then run ``checks``.
 
     Everything is written into a staging folder beside ``out_dir`` and switched in as a whole with one rename when
@@ -221,6 +237,9 @@ def compile_mask(design: Design, out_dir: str | Path, *, checks: Sequence[MaskCh
         Memory budget of the admission check before anything is written (:func:`compile_memory_bytes` against
         it); default 80 % of the least of the memory available, the free part of the cgroup limit and of the
         address-space limit (:func:`metalay.util.budget.memory_budget`).
+    report : callable (WrittenMask, manifest dict, sections dict) -> str, optional
+        Writes ``report.html`` after the manifest from the manifest and the report sections the checks handed
+        back (``sections[check name]``); :func:`metalay.checks.steps.compile_report_step` is the standard one.
 
     Returns
     -------
@@ -232,7 +251,7 @@ def compile_mask(design: Design, out_dir: str | Path, *, checks: Sequence[MaskCh
         try:
             result = _compile_into(design, stage, checks=checks, show_progress=show_progress,
                                    sites_per_tile=sites_per_tile, annotations=annotations or {},
-                                   max_memory_bytes=max_memory_bytes)
+                                   max_memory_bytes=max_memory_bytes, report=report)
         except OSError as exc:  # e.g. the disk filled up while writing: one line, nothing left behind
             raise OutputError(_write_failure(out, exc)) from exc
         except MetalayError as exc:  # name the output folder the user gave, not the staging folder beside it
@@ -251,7 +270,8 @@ def _write_failure(out: Path, exc: OSError) -> str:
 
 
 def _compile_into(design: Design, out: Path, *, checks: Sequence[MaskCheck], show_progress: bool | None,
-                  sites_per_tile: int, annotations: dict, max_memory_bytes: int | None = None) -> CompileResult:
+                  sites_per_tile: int, annotations: dict, max_memory_bytes: int | None = None,
+                  report=None) -> CompileResult:
     """The stages of one compile into the folder ``out``: plan, tiles, gdstk formats, checks, manifest."""
     t_start = time.perf_counter()
     timings: dict[str, float] = {}
@@ -274,12 +294,19 @@ def _compile_into(design: Design, out: Path, *, checks: Sequence[MaskCheck], sho
         files.update(_write_gdstk_formats(plan, gathered))
         timings["gdstk_write_s"] = time.perf_counter() - t0
     pause_point("written")
-    results = _run_checks(plan, enabled, files, timings)
+    results, sections = _run_checks(plan, enabled, files, timings)
     pause_point("checked")
     manifest = _manifest(plan, gathered, files, results, known_hashes)
     if annotations:
         manifest["derived"] = annotations
     atomic_write_text(out / "manifest.json", json.dumps(manifest, sort_keys=True, indent=2, default=str) + "\n")
+    if report is not None:  # after the manifest: the report shows its verdicts (it is not listed in it)
+        t0 = time.perf_counter()
+        primary = files.get("gds") or files.get("oas")
+        text = report(WrittenMask(primary, plan.library, plan.design), manifest, sections)
+        atomic_write_text(out / "report.html", text)
+        files["report"] = out / "report.html"
+        timings["report_s"] = time.perf_counter() - t0
     timings["total_s"] = time.perf_counter() - t_start
     atomic_write_text(out / "timings.json", json.dumps(_rounded(timings), sort_keys=True, indent=2) + "\n")
     files["manifest"] = out / "manifest.json"
@@ -578,12 +605,13 @@ def _write_gdstk_formats(plan: _Plan, gathered: _Gathered) -> dict[str, Path]:
 # Stage 4: the checks handed in by the caller; stage 5: the manifest
 # ----------------------------------------------------------------------------------------------------------------
 
-def _run_checks(plan: _Plan, checks: Sequence[MaskCheck], files: dict, timings: dict) -> dict:
-    """Stage 4: run each enabled check on the primary mask file; results keyed by check name."""
+def _run_checks(plan: _Plan, checks: Sequence[MaskCheck], files: dict, timings: dict) -> tuple[dict, dict]:
+    """Stage 4: run each enabled check on the primary mask file; results keyed by check name, and the report
+    sections the checks handed back (``report_sections``: kept out of the manifest) keyed the same way."""
     primary = files.get("gds") or files.get("oas")
     written = WrittenMask(primary, plan.library, plan.design,
                           structures_path=plan.holes_path if plan.ctx.encode_structures else None)
-    results = {}
+    results, sections = {}, {}
     for check in checks:
         t0 = time.perf_counter()
         results[check.name] = check.run(written if check.needs_structures else replace(written,
@@ -593,7 +621,9 @@ def _run_checks(plan: _Plan, checks: Sequence[MaskCheck], files: dict, timings: 
     for key, res in results.items():  # timings are not deterministic: they go to timings.json
         if isinstance(res, dict) and "timings_s" in res:
             timings[f"{key}_stages"] = res.pop("timings_s")
-    return results
+        if isinstance(res, dict) and "report_sections" in res:  # report material, not manifest data
+            sections[key] = res.pop("report_sections")
+    return results, sections
 
 
 def _process_block(plan: _Plan, totals: _Totals) -> dict:
