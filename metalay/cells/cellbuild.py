@@ -54,7 +54,8 @@ from metalay.validate import TomlTable, load_toml
 
 __all__ = ["BuildSpec", "SweepResult", "load_build_spec", "sweep", "converge_points",
            "choose_sweep_harmonics", "ENERGY_TOLERANCE", "rotation_check", "pick_geometric",
-           "pick_propagation", "build_library", "import_responses", "plot_library", "library_table"]
+           "pick_propagation", "build_library", "import_responses", "import_template", "IMPORT_TEMPLATE",
+           "plot_library", "library_table"]
 
 _DIMS = {"nanofin": ("length_nm", "width_nm"), "slot": ("length_nm", "width_nm"),
          "elliptic_pillar": ("major_nm", "minor_nm"),
@@ -623,6 +624,77 @@ def _q(a: np.ndarray) -> np.ndarray:
 
 _IMPORT_HEADER = ("cell_id", "wavelength_nm", "t_long_re", "t_long_im", "t_short_re", "t_short_im", "power_long",
                   "power_short")
+
+
+#: The metadata example ``metalay cells import --template`` writes (documented in libraries/FORMAT.md). The values
+#: are an invented example to replace with your own; the file imports as it stands once its responses file is filled.
+IMPORT_TEMPLATE = """# Metadata of responses simulated elsewhere, for: metalay cells import {csv} --meta {meta} -o DIR
+# Every key below is required. Units are in the key names. The values are an invented example: replace them.
+# Responses: fill {csv} (header already written), one row per cell and wavelength:
+#   cell_id,wavelength_nm,t_long_re,t_long_im,t_short_re,t_short_im,power_long,power_short
+#   t_long / t_short: zeroth-order complex amplitude for light polarised along the cell's long / short axis,
+#   normalised so that |t|^2 is the zeroth-order power ratio; power_*: total output power (all orders) or empty.
+#   Every cell needs rows at the same wavelengths (at least one).
+
+[library]
+name = "my-imported-fins"           # 1-64 letters, digits, - _ . : the file becomes <name>.library.json
+description = "TiO2 fins on glass, responses from my own simulation"
+mode = "transmission"               # transmission | reflection
+phase_mechanism = "geometric"       # geometric (rotated anisotropic cells) | propagation (cells chosen by phase)
+design_wavelength_nm = 532.0        # 100..20000
+period_nm = 325.0                   # lattice period the responses were computed at
+geometry_source = "my design notes" # where the geometry comes from (a citation, or your own)
+responses_source = "my FDTD run"    # the simulation that produced the responses (recorded as 'imported: ...')
+
+[stack]                             # from the side the light arrives on to the side it leaves on
+incident_medium = "fused_silica"    # a material name (metalay cells: fused_silica, air, TiO2, ...) or air/vacuum
+exit_medium = "air"                 # ignored for reflection (= incident_medium)
+
+[[stack.layers]]                    # one table per layer, incident side first
+name = "fins"
+material = "TiO2"
+thickness_nm = 600.0
+patterned = true                    # the layer the cells are cut from
+
+[rules]                             # default process rules of the cells (used by the compile's design-rule check)
+min_feature_nm = 60.0
+min_gap_nm = 40.0
+max_aspect_ratio = 10.0
+grid_nm = 1.0
+source = "Common practice (no source)"  # or the citation of your process
+
+[[cells]]                           # one table per cell; its id is the cell_id of the responses file
+id = "fin-270x70"
+kind = "nanofin"                    # nanofin (length_nm, width_nm) | slot (length_nm, width_nm) |
+layer = "fins"                      # elliptic_pillar (major_nm, minor_nm) | round_pillar (diameter_nm)
+length_nm = 270.0
+width_nm = 70.0
+"""
+
+
+def import_template(folder) -> tuple[Path, Path]:
+    """Write ``meta.toml`` (:data:`IMPORT_TEMPLATE`, a filled-in metadata example) and ``responses.csv`` (the header
+    only) into ``folder`` for :func:`import_responses`; existing files are not overwritten.
+
+    Returns
+    -------
+    (meta_path, csv_path)
+
+    Raises
+    ------
+    CellBuildError
+        ``folder`` already holds one of the two files.
+    """
+    from metalay.util.atomic import atomic_write_text, ensure_dir
+
+    out = ensure_dir(folder)
+    meta, table = out / "meta.toml", out / "responses.csv"
+    for p in (meta, table):
+        if p.exists():
+            raise CellBuildError(f"{p}: already exists; choose an empty folder for --template")
+    atomic_write_text(meta, IMPORT_TEMPLATE.format(csv=table.as_posix(), meta=meta.as_posix()))
+    atomic_write_text(table, ",".join(_IMPORT_HEADER) + "\n")
+    return meta, table
 
 
 def import_responses(table_path, meta_path):

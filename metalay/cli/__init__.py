@@ -31,6 +31,7 @@ import os
 os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
 
 import argparse
+import contextlib
 import importlib
 import sys
 from importlib import resources
@@ -38,6 +39,7 @@ from pathlib import Path
 
 from metalay import __version__
 from metalay.cli._options import add_max_memory
+from metalay.cli._output import SHORT_CAUTION, add_to_every_command, detail, json_result, say, tell
 from metalay.errors import MetalayError
 
 __all__ = ["main"]
@@ -52,17 +54,27 @@ def demo_design_path() -> Path:
 
 
 def _compile(design_path, out_dir, args) -> int:
-    from metalay.api import SAFETY_CAUTION, compile_design, load_design
+    from metalay.api import compile_design, load_design
 
     design = load_design(design_path)
-    result = compile_design(design, out_dir, show_progress=False if args.quiet else None,
+    result = compile_design(design, out_dir, show_progress=False if args.quiet or args.json else None,
                             run_rules=False if args.no_checks else None,
                             run_optics=False if args.no_checks else None, max_memory_bytes=args.max_memory)
-    if not args.quiet:
-        for line in result.summary:
-            print(line)
-        print(f"output folder: {result.out_dir}")
-        print(SAFETY_CAUTION)
+    args.result = _compile_result(result)
+    for line in result.summary:
+        if line.startswith("warning: "):
+            tell(args, f"metalay: {line}")
+        else:
+            say(args, line)
+    if "report" in result.files:
+        say(args, f"report: {result.files['report']}")
+    say(args, f"output folder: {result.out_dir}")
+    for key, notes in sorted((k, c.get("notes", [])) for k, c in result.manifest["checks"].items()):
+        for note in notes:
+            detail(args, f"note ({key}): {note}")
+    for key, secs in sorted(result.timings_s.items()):
+        if isinstance(secs, (int, float)):
+            detail(args, f"time {key}: {secs:.2f}")
     rules = result.manifest["checks"].get("rules", {})
     fail = args.fail_on_violations or design.checks.fail_on_violations
     if fail and rules.get("violations", 0):
@@ -70,6 +82,17 @@ def _compile(design_path, out_dir, args) -> int:
               file=sys.stderr)
         return 1
     return _verdict_exit(result.manifest["verdicts"], args.fail_at or design.checks.fail_at, result.out_dir)
+
+
+def _compile_result(result) -> dict:
+    """The JSON result of ``compile``/``demo``: verdicts, counts, errors, warnings, files (paths), checks' summaries."""
+    m = result.manifest
+    checks = {k: {"verdict": c.get("verdict"), "status": c.get("status"), "summary": c.get("summary")}
+              for k, c in m["checks"].items()}
+    return {"design": m["design"]["name"], "out_dir": str(result.out_dir), "verdicts": m["verdicts"],
+            "counts": m["counts"], "errors": m["errors"], "warnings": m["warnings"], "checks": checks,
+            "illumination": m["illumination"], "library": m["library"]["name"],
+            "files": {k: str(p) for k, p in sorted(result.files.items())}, "caution": m["caution"]}
 
 
 def _verdict_exit(verdicts: dict, level: str, out_dir) -> int:
@@ -104,7 +127,6 @@ def _build_parser(modules) -> argparse.ArgumentParser:
     sub = parser.add_subparsers(dest="command", required=True)
 
     def compile_options(p):
-        p.add_argument("--quiet", action="store_true", help="no progress bar and no summary")
         p.add_argument("--fail-on-violations", action="store_true",
                        help="exit 1 when the written mask breaks a design rule")
         p.add_argument("--no-checks", action="store_true", help="skip the design-rule and optics checks")
@@ -128,6 +150,7 @@ def _build_parser(modules) -> argparse.ArgumentParser:
         if hasattr(mod, "add_info_parser"):
             mod.add_info_parser(sub)
         mod.add_parser(sub)
+    add_to_every_command(parser)
     return parser
 
 
@@ -154,24 +177,50 @@ def _stdout_closed() -> int:
     return 141
 
 
-def main(argv=None) -> int:
-    """Entry point of the ``metalay`` command."""
-    modules = _load_modules()
-    parser = _build_parser(modules)
-    args = parser.parse_args(argv)
+def _run(args) -> tuple[int, str | None]:
+    """Run the command; returns its exit code and the error line (None when it did not fail with one)."""
     try:
-        return int(args.func(args) or 0)
-    except BrokenPipeError:
-        return _stdout_closed()
+        return int(args.func(args) or 0), None
     except MetalayError as exc:
-        print(f"metalay: error: {exc}", file=sys.stderr)
-        return exc.exit_code
+        msg = f"metalay: error: {exc}"
+        print(msg, file=sys.stderr)
+        return exc.exit_code, str(exc)
     except KeyboardInterrupt:
         print("metalay: interrupted (no partial output was left)", file=sys.stderr)
-        return 130
+        return 130, "interrupted"
+    except BrokenPipeError:
+        raise
     except Exception as exc:  # an internal fault, not bad input: one line, details on request
         if os.environ.get("METALAY_DEBUG"):
             raise
-        print(f"metalay: internal error: {type(exc).__name__}: {exc} (set METALAY_DEBUG=1 for the traceback; "
-              "please report it)", file=sys.stderr)
-        return 70
+        msg = (f"internal error: {type(exc).__name__}: {exc} (set METALAY_DEBUG=1 for the traceback; please "
+               "report it)")
+        print(f"metalay: {msg}", file=sys.stderr)
+        return 70, msg
+
+
+def main(argv=None) -> int:
+    """Entry point of the ``metalay`` command.
+
+    Standard output carries the result only (text, or one JSON object with ``--json``); messages, warnings,
+    progress and one short caution line go to standard error (:mod:`metalay.cli._output`).
+    """
+    modules = _load_modules()
+    parser = _build_parser(modules)
+    args = parser.parse_args(argv)
+    json_mode = bool(getattr(args, "json", False))
+    real_stdout = sys.stdout
+    try:
+        if json_mode:  # whatever the command prints goes to standard error; standard output gets the JSON only
+            with contextlib.redirect_stdout(sys.stderr):
+                code, error = _run(args)
+        else:
+            code, error = _run(args)
+        if not getattr(args, "quiet", False) or json_mode:
+            print(SHORT_CAUTION, file=sys.stderr)
+        if json_mode:
+            print(json_result(args, code, error), file=real_stdout)
+            real_stdout.flush()
+    except BrokenPipeError:
+        return _stdout_closed()
+    return code

@@ -29,10 +29,14 @@ def add_parser(subparsers) -> None:
     s.add_argument("--no-plot", action="store_true", help="print only")
     s.set_defaults(func=run)
 
-    i = sub.add_parser("import", help="turn responses simulated elsewhere (CSV) into a library")
-    i.add_argument("table", type=Path, help="CSV: cell_id,wavelength_nm,t_long_re,t_long_im,t_short_re,t_short_im,"
-                   "power_long,power_short")
-    i.add_argument("--meta", type=Path, required=True, help="TOML with [library], [stack], [rules], [[cells]]")
+    i = sub.add_parser("import", help="turn responses simulated elsewhere (CSV) into a library; --template DIR "
+                                      "writes a filled-in metadata example and the responses file to fill")
+    i.add_argument("table", type=Path, nargs="?", help="CSV: cell_id,wavelength_nm,t_long_re,t_long_im,t_short_re,"
+                   "t_short_im,power_long,power_short (libraries/FORMAT.md)")
+    i.add_argument("--meta", type=Path, help="TOML with [library], [stack], [rules], [[cells]] "
+                                             "(libraries/FORMAT.md; --template writes an example)")
+    i.add_argument("--template", type=Path, metavar="DIR",
+                   help="write DIR/meta.toml (a filled-in example) and DIR/responses.csv (header) and stop")
     i.add_argument("-o", "--output", type=Path, default=Path("."), help="output folder (default: current folder)")
     i.set_defaults(func=run)
 
@@ -83,7 +87,10 @@ def run(args) -> int:
         for bar in bars:
             bar.close()
         written = save_library(lib, args.output or _default_out(args.spec))
-        if not args.quiet:
+        args.result = {"library": lib.name, "files": [str(p) for p in written],
+                       "convergence": {k: v for k, v in lib.provenance["solver"]["convergence"].items()
+                                       if k != "points"}}
+        if not args.quiet and not args.json:
             print(lib.provenance["notes"])
             so = lib.provenance["solver"]
             conv = so["convergence"]
@@ -101,6 +108,10 @@ def run(args) -> int:
         from metalay.cells.library import load_library
 
         lib = load_library(args.library)
+        args.result = {"library": lib.name, "mode": lib.mode, "phase_mechanism": lib.phase_mechanism,
+                       "design_wavelength_nm": lib.design_wavelength_nm, "period_nm": lib.period_nm,
+                       "cells": [{"id": c.id, "kind": c.kind, **dict(c.dims_nm)} for c in lib.cells],
+                       "responses": library_table(lib) if lib.has_responses else []}
         print(f"{lib.name}: {lib.mode}, {lib.phase_mechanism} phase, design {lib.design_wavelength_nm:g} nm, "
               f"period {lib.period_nm:g} nm, {len(lib.cells)} cell(s)")
         print(f"responses: {lib.provenance.get('responses_source')}")
@@ -119,13 +130,30 @@ def run(args) -> int:
                   f"{row['leakage']:8.4f}")
         if not args.no_plot:
             png = args.png or Path("out") / "cells" / f"{lib.name}.png"
-            print(f"wrote {plot_library(lib, png)}")
+            written = plot_library(lib, png)
+            args.result["files"] = [str(written)]
+            print(f"wrote {written}")
         return 0
     if cmd == "import":
-        from metalay.cells.cellbuild import import_responses
+        from metalay.cells.cellbuild import import_responses, import_template
+        from metalay.errors import CellBuildError
 
+        if args.template is not None:
+            if args.table is not None or args.meta is not None:
+                raise CellBuildError("command line: --template writes the example files; give it alone (no table, "
+                                     "no --meta)")
+            meta, table = import_template(args.template)
+            args.result = {"meta": str(meta), "responses": str(table)}
+            print(f"wrote {meta} (a filled-in example: replace the values) and {table} (header only: add your rows)")
+            print(f"then: metalay cells import {table} --meta {meta} -o DIR")
+            return 0
+        if args.table is None or args.meta is None:
+            raise CellBuildError("command line: give the responses table and --meta (or --template DIR for an "
+                                 "example of both)")
         lib = import_responses(args.table, args.meta)
-        for path in save_library(lib, args.output):
+        written = save_library(lib, args.output)
+        args.result = {"library": lib.name, "files": [str(p) for p in written]}
+        for path in written:
             print(f"wrote {path}")
         return 0
     if cmd == "complement":
@@ -134,7 +162,9 @@ def run(args) -> int:
 
         lib = babinet_slot_library(load_library(args.library), name=args.name)
         print(f"{lib.name}: Babinet-principle estimate, not a solver result ({lib.provenance.get('responses_source')})")
-        for path in save_library(lib, args.output):
+        written = save_library(lib, args.output)
+        args.result = {"library": lib.name, "files": [str(p) for p in written]}
+        for path in written:
             print(f"wrote {path}")
         return 0
     if cmd == "rotation-check":
@@ -160,8 +190,10 @@ def run(args) -> int:
                       f"(model +-{2 * a['angle_deg']:.2f}); conversion {a['conversion_direct']:.4f} direct vs "
                       f"{a['conversion_model']:.4f} model")
         out = args.output or Path(lib.source_path).parent
-        for path in save_library(replace(lib, extra={**lib.extra, "rotation_check": rec}), out):
+        written = save_library(replace(lib, extra={**lib.extra, "rotation_check": rec}), out)
+        args.result = {"library": lib.name, "rotation_check": rec, "files": [str(p) for p in written]}
+        for path in written:
             print(f"wrote {path}")
         return 0
     print(f"metalay cells: unknown subcommand {cmd!r}", file=sys.stderr)
-    return 2
+    return 2  # unreachable: argparse allows only the subcommands above

@@ -13,7 +13,6 @@ aperture mask, and invented test images (registered by :mod:`metalay.cli`).
 from __future__ import annotations
 
 import argparse
-import json
 import re
 from pathlib import Path
 
@@ -108,7 +107,7 @@ def _run_read(args) -> int:
                "status": reading.status, "reason": reading.reason, "center_px": list(reading.center_px),
                "setup": {_SETUP_OPTIONS[args.method]: setup}, "evidence": reading.evidence,
                "exit_code": 0 if reading.status == "ok" else 1, "caution": APERTURE_SAFETY_NOTE}
-        print(json.dumps(json_ready(out), indent=2, sort_keys=True, allow_nan=False))
+        args.result = json_ready(out)
     else:
         charge = "none" if reading.charge is None else f"{reading.charge:+d}"
         print(f"charge: {charge}")
@@ -117,7 +116,6 @@ def _run_read(args) -> int:
         print(f"reason: {reading.reason or '-'}")
         print(f"centre: column {reading.center_px[0]:.1f}, row {reading.center_px[1]:.1f} (image pixels, row 0 = "
               f"top); image {info['cols']} x {info['rows']}, counts {info['min']:g}..{info['max']:g}")
-        print(APERTURE_SAFETY_NOTE)
     return 0 if reading.status == "ok" else 1
 
 
@@ -138,7 +136,6 @@ def _aperture_table(args) -> dict:
 
 def _run_aperture(args) -> int:
     from metalay.measure.aperture import (
-        APERTURE_SAFETY_NOTE,
         load_triangle_spec,
         parse_triangle_spec,
         write_triangle_aperture,
@@ -159,6 +156,7 @@ def _run_aperture(args) -> int:
             raise MetalayError(msg.replace("key --", "option --")) from exc
     out = args.output or Path("out") / spec.name
     m = write_triangle_aperture(spec, out)
+    args.result = dict(m, out_dir=str(out))
     if not args.quiet:
         a = m["aperture"]
         print(f"triangular aperture {spec.name}: side {a['side_um']:.4f} um, apex {a['apex_deg']:g} deg, centroid "
@@ -169,7 +167,6 @@ def _run_aperture(args) -> int:
                   f"{'identical' if m['readback'][name]['vertices_equal'] else 'DIFFERENT'}")
         print(f"read the far field with: {m['reading']['command']}")
         print(f"output folder: {out}")
-        print(APERTURE_SAFETY_NOTE)
     return 0
 
 

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import argparse
+import sys
 from pathlib import Path
 
 from metalay.cli._options import add_max_memory
@@ -40,7 +41,8 @@ def add_parser(subparsers) -> argparse.ArgumentParser:
                    help="largest near-field grid side; larger masks are block-averaged (default 4096)")
     p.add_argument("--linear-scale", action="store_true", help="far-field image on a linear scale (default log)")
     p.add_argument("--no-plots", action="store_true", help="numbers only (no PNG figures, no HTML report)")
-    p.add_argument("--quiet", action="store_true", help="print nothing but errors")
+    p.add_argument("--fail-at", choices=("fail", "warn", "never"), default="fail",
+                   help="exit 1 when the verdict is this or worse (default fail; never: always exit 0)")
     add_max_memory(p)
     p.set_defaults(func=run)
     return p
@@ -57,6 +59,8 @@ def _check_range(name, value, lo, hi=None):
 def run(args) -> int:
     """Run the optical check; print a summary (the only printing happens here)."""
     from metalay.checks.optics import SAFETY_NOTE, OpticsOptions, check_optics
+    from metalay.cli._output import detail
+    from metalay.design.limits import verdict_at_least
 
     _check_range("pad-factor", args.pad_factor, 1.0, 8.0)
     _check_range("max-side", args.max_side, 64, 16384)
@@ -80,7 +84,10 @@ def run(args) -> int:
                             log_far_field=not args.linear_scale, lit_from=args.lit_from,
                             max_memory_bytes=args.max_memory)
     res = check_optics(args.mask, library, design=design, out_dir=out, options=options)
-    if not args.quiet:
+    verdict = res.figures["verdicts"]["verdict"]
+    args.result = {"out_dir": str(out), "figures": res.figures, "notes": list(res.notes),
+                   "files": {k: v["path"] for k, v in sorted(res.files.items())}, "caution": SAFETY_NOTE}
+    if not args.quiet and not args.json:
         f = res.figures
         b = f["power_budget"]
         print(f"illumination: {f['illumination']['in_words']} ({f['illumination']['chosen_by']})")
@@ -110,10 +117,14 @@ def run(args) -> int:
                   f"Strehl {strehl}, focusing efficiency {lm['focusing_efficiency']:.4f}")
         v = f["verdicts"]
         print(f"verdict: {v['verdict'].upper()} ({v['summary']})")
-        for note in res.notes:
-            print(f"note: {note}")
-        t = res.timings
-        print("time: " + ", ".join(f"{k[:-2]} {v:.2f} s" for k, v in t.items()))
+        if "optics_report.html" in res.files:
+            print(f"report: {res.files['optics_report.html']['path']}")
         print(f"output folder: {out}")
-        print(SAFETY_NOTE)
+    for note in res.notes:
+        detail(args, f"note: {note}")
+    detail(args, "time: " + ", ".join(f"{k[:-2]} {v:.2f} s" for k, v in res.timings.items()))
+    if verdict_at_least(verdict, args.fail_at):
+        print(f"metalay: optics verdict {verdict} (exit 1 at --fail-at {args.fail_at}): "
+              f"{res.figures['verdicts']['summary']}", file=sys.stderr)
+        return 1
     return 0

@@ -27,6 +27,14 @@ def add_parser(subparsers) -> None:
         q.add_argument("-o", "--output", type=Path, help="output folder (default: out/<design stem>-routes)")
         if action in ("etch", "all", "compare"):
             q.add_argument("--levels", type=int, help="override routes.etch.levels (power of two, 2..256)")
+        if action in ("slm", "all", "compare"):
+            g = q.add_mutually_exclusive_group()
+            g.add_argument("--magnification", type=float,
+                           help="override routes.slm.magnification: panel size of the beam / design size (relay "
+                                "optics between the panel and the design plane)")
+            g.add_argument("--beam-diameter-px", type=float,
+                           help="override routes.slm.beam_diameter_px: pixels the aperture's larger extent spans "
+                                "on the panel (sets the magnification)")
         q.set_defaults(func=run)
 
 
@@ -35,6 +43,15 @@ def _settings(design, args):
 
     from metalay.routes.routes import parse_routes
 
+    slm = {k: getattr(args, k) for k in ("magnification", "beam_diameter_px") if getattr(args, k, None) is not None}
+    if slm:
+        raw = dict(design.raw)
+        routes = dict(raw.get("routes", {}) or {})
+        table = {k: v for k, v in dict(routes.get("slm", {}) or {}).items()
+                 if k not in ("magnification", "beam_diameter_px")}
+        routes["slm"] = {**table, **slm}
+        raw["routes"] = routes
+        design = replace(design, raw=raw)
     if getattr(args, "levels", None) is not None:
         raw = dict(design.raw)
         routes = dict(raw.get("routes", {}) or {})
@@ -49,6 +66,7 @@ def _settings(design, args):
 def run(args) -> int:
     """Run one ``routes`` action; returns the exit code (0)."""
     from metalay.api import prepare_design
+    from metalay.cli._output import tell
     from metalay.design.spec import load_design
     from metalay.mask.compile import SAFETY_CAUTION
     from metalay.routes import routes as R
@@ -59,7 +77,7 @@ def run(args) -> int:
     name = design.name
     db_unit_nm = design.mask.db_unit_nm
     action = args.route_action
-    written = []
+    written, compare_rows = [], []
     if action in ("etch", "all"):
         e = R.etch_masks(design, settings, with_level_areas=settings.etch.levels <= 16)
         written += R.write_etch(e, out, name, split=settings.etch.split, db_unit_nm=db_unit_nm)
@@ -80,7 +98,7 @@ def run(args) -> int:
               f"cores), aperture outline {e.aperture_error_um * 1e3:.2f} nm, snapping "
               f"{e.snap_error_um * 1e3:.2f} nm")
         for w in e.warnings:
-            print(f"  warning: {w}")
+            tell(args, f"metalay: warning: {w}")
     if action in ("fork", "all"):
         f = R.fork_grating(design, settings)
         written += R.write_fork(f, out, name, db_unit_nm=db_unit_nm)
@@ -94,22 +112,22 @@ def run(args) -> int:
         print(f"  expected first-order efficiency {f.efficiency_expected:.4f}; boundary error "
               f"{f.boundary_error_um * 1e3:.2f} nm")
         for w in f.warnings:
-            print(f"  warning: {w}")
+            tell(args, f"metalay: warning: {w}")
     if action in ("slm", "all"):
         s = R.slm_image(design, settings)
         written += R.write_slm(s, out, name)
         h, w = s.gray.shape
-        print(f"slm: {w} x {h} px, pitch {s.pitch_um:g} um, {s.bit_depth}-bit, {int(s.inside.sum())} px inside the "
-              f"aperture, largest encoding error {s.max_error_rad:.4f} rad")
+        print(f"slm: {w} x {h} px, pitch {s.pitch_um:g} um, {s.bit_depth}-bit, magnification {s.magnification:.4g}, "
+              f"{int(s.inside.sum())} px inside the aperture, largest encoding error {s.max_error_rad:.4f} rad")
         for wn in s.warnings:
-            print(f"  warning: {wn}")
+            tell(args, f"metalay: warning: {wn}")
     if action in ("orient", "all"):
         o = R.orientation_map(design, settings)
         written += R.write_orientation(o, out, name)
         h, w = o.code.shape
         print(f"orient: {w} x {h} px, pitch {o.pitch_um:g} um, fast-axis angle theta = sigma phi / 2 mod pi")
     if action in ("compare", "all"):
-        rows = R.compare_routes(design, settings)
+        rows = compare_rows = R.compare_routes(design, settings)
         from metalay.util.atomic import atomic_write_text
 
         lines = R.format_table(rows)
@@ -118,6 +136,7 @@ def run(args) -> int:
         print(f"compare (grid {settings.compare_samples} samples across the aperture):")
         for line in lines:
             print("  " + line)
+    args.result = {"out_dir": str(out), "files": [str(p) for p in written], "caution": SAFETY_CAUTION,
+                   "compare": [r.__dict__ for r in compare_rows]}
     print(f"output folder: {out}  ({len(written)} files)")
-    print(SAFETY_CAUTION)
     return 0

@@ -7,12 +7,11 @@ Only this module prints.  Exit codes: 0 clean, 1 rule violations, 2 bad input (r
 from __future__ import annotations
 
 import json
-import sys
 import time
 from pathlib import Path
 
 from metalay.cli._options import add_max_memory
-from metalay.errors import MetalayError
+from metalay.cli._output import detail
 
 __all__ = ["add_parser", "run", "add_info_parser", "run_info"]
 
@@ -34,18 +33,14 @@ def add_parser(subparsers) -> None:
     c.add_argument("--marker-layer", type=int, default=1000,
                    help="GDSII layer of the violation markers; datatype = rule number (default 1000)")
     c.add_argument("--no-markers", action="store_true", help="do not write the marker GDSII")
-    c.add_argument("--quiet", action="store_true", help="print only the verdict line")
+    c.add_argument("--quiet", action="store_true", help="print only the verdict line (standard output)")
     add_max_memory(c)
     c.set_defaults(func=run)
 
 
 def run(args) -> int:
-    """Run ``metalay rules check``; return the exit code."""
-    try:
-        return _run_check(args)
-    except MetalayError as exc:
-        print(f"metalay: error: {exc}", file=sys.stderr)
-        return exc.exit_code
+    """Run ``metalay rules check``; return the exit code (errors propagate to :func:`metalay.cli.main`)."""
+    return _run_check(args)
 
 
 def _run_check(args) -> int:
@@ -82,20 +77,44 @@ def _run_check(args) -> int:
             write_marker_gds(report, flat, marker_path, marker_layer=args.marker_layer)
     except OSError as exc:
         raise OutputError(f"{out}: cannot write report ({exc})") from exc
-    if not args.quiet:
-        print(f"mask {mask} ({report.polygons} polygons on checked layers), rules {rules.name}")
-        for line in report.summary_lines():
-            print("  " + line)
-        times = [("read", t_read)] + list(report.timings_s)
-        print("time: " + ", ".join(f"{k} {v:.2f}s" for k, v in times))
+    args.result = dict(data, report=str(json_path), markers=None if marker_path is None else str(marker_path))
+    if not args.quiet and not getattr(args, "json", False):
+        for line in rules_table(data):
+            print(line)
         print(f"report: {json_path}")
         if marker_path is not None:
             print(f"markers: {marker_path} (layer {args.marker_layer}, datatype = rule number)")
+    times = [("read", t_read)] + list(report.timings_s)
+    detail(args, "time: " + ", ".join(f"{k} {v:.2f} s" for k, v in times))
     if report.clean:
-        print("clean: no design-rule violations")
+        say_verdict(args, "clean: no design-rule violations")
         return 0
-    print(f"{report.total_violations} design-rule violations")
+    say_verdict(args, f"{report.total_violations} design-rule violations")
     return 1
+
+
+def say_verdict(args, line: str) -> None:
+    """The verdict line: printed even with ``--quiet`` (it is the result), not with ``--json``."""
+    if not getattr(args, "json", False):
+        print(line)
+
+
+def rules_table(data: dict) -> list[str]:
+    """The rule report as an aligned table: layer, rule, limit with unit, checked, violations, worst and where."""
+    head = ("layer", "rule", "limit", "unit", "checked", "violations", "worst", "worst at x, y (um)")
+    rows = []
+    for r in data["results"]:
+        worst = "-" if r["worst_value"] is None else f"{r['worst_value']:.4g}"
+        where = "-" if not r["worst_xy_um"] else f"{r['worst_xy_um'][0]:.3f}, {r['worst_xy_um'][1]:.3f}"
+        count = f"{r['count']:,}" + ("+" if r.get("count_is_lower_bound") else "")
+        rows.append((f"{r['layer']}/{r['datatype']}", r["rule"], f"{r['limit']:g}", r["unit"], f"{r['checked']:,}",
+                     count, worst, where))
+    widths = [max(len(h), *(len(row[k]) for row in rows)) if rows else len(h) for k, h in enumerate(head)]
+    lines = [f"mask {data['mask']} ({data['polygons']:,} polygons on the checked layers), rules {data['rules']}",
+             "  ".join(h.ljust(w) for h, w in zip(head, widths))]
+    lines += ["  ".join(c.rjust(w) if k >= 4 or k == 2 else c.ljust(w) for k, (c, w) in enumerate(zip(row, widths)))
+              for row in rows]
+    return lines
 
 
 def add_info_parser(subparsers) -> None:
@@ -111,13 +130,9 @@ def run_info(args) -> int:
     """Run ``metalay info``; return the exit code."""
     from metalay.io.gdsread import mask_info
 
-    try:
-        info = mask_info(args.mask, max_memory_bytes=getattr(args, "max_memory", None))
-    except MetalayError as exc:
-        print(f"metalay: error: {exc}", file=sys.stderr)
-        return exc.exit_code
+    info = mask_info(args.mask, max_memory_bytes=getattr(args, "max_memory", None))
+    args.result = info
     if getattr(args, "json", False):
-        print(json.dumps(info, sort_keys=True, indent=2))
         return 0
     print(f"file        {info['path']} ({info['format']}, {info['size_bytes']} bytes)")
     print(f"sha256      {info['sha256']}")

@@ -14,7 +14,6 @@ Exit codes: 0 done (check within its thresholds); 1 the check failed a threshold
 
 from __future__ import annotations
 
-import json
 import sys
 from pathlib import Path
 
@@ -132,8 +131,8 @@ def _run_plan(args) -> int:
         written = write_element_designs(plan, args.write, name=args.name, library=args.library, period_nm=period,
                                         lattice=args.lattice, input_spin=args.input_spin)
     summary = plan.summary()
+    args.result = dict(summary, written=[str(p) for p in written])
     if args.json:
-        print(json.dumps(dict(summary, written=[str(p) for p in written]), indent=2, sort_keys=True))
         return 0
     print(f"sorter for {summary['wavelength_nm']:g} nm: a = {summary['a_um']:.4f} um, b = {summary['b_um']:.4f} um, "
           f"element spacing f = {summary['element_spacing_f_mm']:g} mm, Fourier lens F = "
@@ -153,8 +152,6 @@ def _run_plan(args) -> int:
 
 
 def _print_report(rep, out, quiet: bool) -> None:
-    from metalay.measure.sortermask import SORTER_SAFETY_NOTE
-
     if quiet:
         return
     f = rep.figures
@@ -180,7 +177,6 @@ def _print_report(rep, out, quiet: bool) -> None:
     for note in rep.notes:
         print(f"note: {note}")
     print(f"output folder: {out}")
-    print(SORTER_SAFETY_NOTE)
 
 
 def _run_check(args, designs, masks, out) -> int:
@@ -190,10 +186,9 @@ def _run_check(args, designs, masks, out) -> int:
     rep = check_sorter(designs, masks, charges=parse_charges(args.charges), beam=args.beam, thresholds=th,
                        max_side=args.max_side, wave_plates=args.wave_plates)
     files = write_sorter_report(rep, out)
-    if args.json:
-        print(json.dumps(dict(rep.figures, notes=list(rep.notes), files=sorted(files), caution=SORTER_SAFETY_NOTE),
-                         indent=2, sort_keys=True))
-    else:
+    args.result = dict(rep.figures, notes=list(rep.notes), files=sorted(files), caution=SORTER_SAFETY_NOTE,
+                       out_dir=str(out))
+    if not args.json:
         _print_report(rep, out, args.quiet)
     return 0 if rep.status == "ok" else 1
 

@@ -74,9 +74,29 @@ def _positive_int(name, v, lo=1, hi=None):
         raise MetalayError(f"command line: --{name} = {v!r}; allowed {lo}..{hi if hi else 'any'}")
 
 
+def _table(head, rows, right) -> list[str]:
+    """Aligned text table; columns in ``right`` are right-aligned (numbers)."""
+    widths = [max(len(h), *(len(r[k]) for r in rows)) if rows else len(h) for k, h in enumerate(head)]
+    out = ["  ".join(h.rjust(w) if k in right else h.ljust(w) for k, (h, w) in enumerate(zip(head, widths)))]
+    out += ["  ".join(c.rjust(w) if k in right else c.ljust(w) for k, (c, w) in enumerate(zip(r, widths)))
+            for r in rows]
+    return out
+
+
+#: compare columns: key, header (with unit), format; grouped: what, optics, design rules, files.
+_COMPARE_COLUMNS = (("library", "library", "s"), ("mode", "mode", "s"), ("wavelength_nm", "lambda (nm)", ".1f"),
+                    ("converted", "converted (1)", ".4f"), ("leakage", "leakage (1)", ".4f"),
+                    ("designed_spot_efficiency", "spot eff. (1)", ".4f"),
+                    ("designed_mode_efficiency", "mode eff. (1)", ".4f"), ("purity", "purity (1)", ".4f"),
+                    ("rule_violations", "violations", "d"), ("worst_rule", "tightest rule", "s"),
+                    ("worst_rule_relative_margin", "margin (%)", "pct"), ("elements", "elements", ",d"),
+                    ("gds_bytes", "GDS (MB)", ".2f"), ("oas_bytes", "OAS (MB)", ".2f"))
+
+
 def _run_compare(args) -> int:
     from metalay.api import prepare_design
     from metalay.checks.optics import SAFETY_NOTE
+    from metalay.cli._output import detail, tell
     from metalay.design.spec import load_design
     from metalay.studies.study import compare_libraries
 
@@ -84,37 +104,62 @@ def _run_compare(args) -> int:
     design = prepare_design(load_design(args.design))[0]  # optimised multiplex encodings, as compile writes them
     out = args.output or Path("out") / f"{args.design.stem}-compare"
     res = compare_libraries(design, args.library, out, adapt=not args.keep_design, workers=args.workers,
-                            show_progress=False if args.quiet else None)
-    if args.quiet:
+                            show_progress=False if args.quiet or args.json else None)
+    args.result = {"out_dir": str(out), "rows": list(res.rows), "notes": list(res.notes), "caution": SAFETY_NOTE}
+    for note in res.notes:
+        tell(args, f"note: {note}")
+    if args.quiet or args.json:
         return 0
-    cols = [("library", "library", "s"), ("mode", "mode", "s"), ("wavelength_nm", "lambda nm", ".1f"),
-            ("converted", "converted", ".4f"), ("leakage", "leakage", ".4f"),
-            ("designed_spot_efficiency", "spot eff", ".4f"), ("designed_mode_efficiency", "mode eff", ".4f"),
-            ("purity", "purity", ".4f"), ("rule_violations", "violations", "d"),
-            ("worst_rule", "tightest rule", "s"), ("worst_rule_relative_margin", "margin", ".3f"),
-            ("elements", "elements", ",d"), ("gds_bytes", "GDS MB", ".2f"), ("oas_bytes", "OAS MB", ".2f")]
     table = []
     for r in res.rows:
         cells = []
-        for key, _, spec in cols:
+        for key, _, spec in _COMPARE_COLUMNS:
             v = r.get(key)
             if key.endswith("bytes") and v is not None:
                 v = v / 1e6
-            cells.append("-" if v is None else (format(v, spec) if spec != "s" else str(v)))
+            if v is None:
+                cells.append("-")
+            elif spec == "pct":
+                cells.append(f"{100 * v:.1f}")
+            else:
+                cells.append(format(v, spec) if spec != "s" else str(v))
         table.append(cells)
-    widths = [max(len(h), *(len(t[k]) for t in table)) for k, (_, h, _) in enumerate(cols)]
-    print("  ".join(h.rjust(w) for (_, h, _), w in zip(cols, widths)))
-    for t in table:
-        print("  ".join(c.rjust(w) for c, w in zip(t, widths)))
-    for note in res.notes:
-        print(f"note: {note}")
+    right = {k for k, (_, _, spec) in enumerate(_COMPARE_COLUMNS) if spec != "s"}
+    for line in _table([h for _, h, _ in _COMPARE_COLUMNS], table, right):
+        print(line)
+    print("converted, leakage, efficiencies: fractions of the incident power; margin: of the tightest rule's limit")
     print(f"output folder: {out}")
-    print(SAFETY_NOTE)
+    detail(args, f"details: {sorted(res.details)}")
     return 0
+
+
+def _tolerance_lines(settings, res) -> list[str]:
+    """The tolerance result as grouped tables: the figures (nominal, median, percentiles) and the thresholds."""
+    rows = []
+    for key, st in res.statistics.items():
+        if st is None:
+            continue
+        unit = "dB" if key.endswith("_db") else "1"
+        rows.append((key, unit, _fmt(res.nominal.get(key)), f"{st['median']:.4f}", f"{st['p5']:.4f}",
+                     f"{st['p95']:.4f}"))
+    lines = [f"{settings.samples} samples, seed {settings.seed} (fractions of the incident power unless a unit says "
+             "otherwise)"]
+    lines += ["  " + t for t in _table(("figure", "unit", "nominal", "median", "5th pct", "95th pct"), rows,
+                                       {2, 3, 4, 5})]
+    if res.thresholds:
+        trows = []
+        for kind, t in res.thresholds.items():
+            at = f">= {t['sweep_max']:.4g} (largest swept)" if t["tolerance"] is None else f"{t['tolerance']:.4g}"
+            trows.append((kind, at, t["unit"], f"{t['threshold']:g}", t["criterion"]))
+        lines.append("purity threshold crossings:")
+        lines += ["  " + t for t in _table(("error kind", "purity falls below at", "unit", "threshold", "criterion"),
+                                           trows, {1, 3})]
+    return lines
 
 
 def _run_tolerance(args) -> int:
     from metalay.checks.optics import SAFETY_NOTE
+    from metalay.cli._output import tell
     from metalay.design.spec import load_design
     from metalay.studies.study import ToleranceSettings, tolerance_study
 
@@ -136,26 +181,18 @@ def _run_tolerance(args) -> int:
     design = prepare_design(load_design(args.design))[0]  # optimised multiplex encodings, as compile writes them
     out = args.output or Path("out") / f"{args.design.stem}-tolerance"
     res = tolerance_study(design, out, settings=settings, mask=args.mask, max_side=args.max_side,
-                          workers=args.workers, show_progress=False if args.quiet else None,
+                          workers=args.workers, show_progress=False if args.quiet or args.json else None,
                           make_plots=not args.no_plots)
-    if args.quiet:
-        return 0
-    print(f"{settings.samples} samples, seed {settings.seed}: figure  nominal  median  [5th, 95th percentile]")
-    for key, st in res.statistics.items():
-        if st is None:
-            continue
-        print(f"  {key:<26} {_fmt(res.nominal.get(key))}  {st['median']:.4f}  [{st['p5']:.4f}, {st['p95']:.4f}]")
-    for kind, t in res.thresholds.items():
-        if t["tolerance"] is None:
-            print(f"purity stays >= {t['threshold']:g} ({t['criterion']}) for {kind} up to {t['sweep_max']:.4g} "
-                  f"{t['unit']} (the largest swept)")
-        else:
-            print(f"purity drops below {t['threshold']:g} ({t['criterion']}) at {kind} = {t['tolerance']:.4g} "
-                  f"{t['unit']}")
+    args.result = {"out_dir": str(out), "settings": dict(settings.__dict__), "nominal": res.nominal,
+                   "statistics": res.statistics, "thresholds": res.thresholds, "notes": list(res.notes),
+                   "files": {k: str(v) for k, v in sorted(res.files.items())}, "caution": SAFETY_NOTE}
     for note in res.notes:
-        print(f"note: {note}")
+        tell(args, f"note: {note}")
+    if args.quiet or args.json:
+        return 0
+    for line in _tolerance_lines(settings, res):
+        print(line)
     print(f"output folder: {out}")
-    print(SAFETY_NOTE)
     return 0
 
 

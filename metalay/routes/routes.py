@@ -128,6 +128,16 @@ class SlmSettings:
     carrier_azimuth_deg: float = 0.0
     lut: str | None = None
     mask_outside: bool = True
+    magnification: float = 1.0
+    beam_diameter_px: float | None = None
+
+    def scale(self, aperture) -> float:
+        """Panel coordinate per design coordinate: ``magnification``, or the beam (the aperture's larger extent)
+        spread over ``beam_diameter_px`` pixels: ``M = beam_diameter_px * pitch_um / aperture extent``."""
+        if self.beam_diameter_px is None:
+            return float(self.magnification)
+        ax, ay = aperture.half_extent_um
+        return float(self.beam_diameter_px * self.pitch_um / (2 * max(ax, ay)))
 
 
 @dataclass(frozen=True)
@@ -205,7 +215,11 @@ def parse_routes(design) -> RouteSettings:
                       bit_depth=s.number("bit_depth", 8, integer=True),
                       carrier_period_px=float(s.number("carrier_period_px", 0.0, lo=0.0, hi=1e6)),
                       carrier_azimuth_deg=float(s.number("carrier_azimuth_deg", 0.0, lo=-360, hi=360)),
-                      lut=s.string("lut", None), mask_outside=s.boolean("mask_outside", True))
+                      lut=s.string("lut", None), mask_outside=s.boolean("mask_outside", True),
+                      magnification=float(s.number("magnification", 1.0, lo=1e-3, hi=1e4)),
+                      beam_diameter_px=_opt_float(s.number("beam_diameter_px", None, lo=2.0, hi=32768.0)))
+    if slm.beam_diameter_px is not None and "magnification" in s.data:
+        s.fail("beam_diameter_px", slm.beam_diameter_px, "give magnification or beam_diameter_px, not both")
     if slm.bit_depth not in (8, 16):
         s.fail("bit_depth", slm.bit_depth, "allowed values are 8 and 16")
     if 0 < slm.carrier_period_px < 2:
@@ -882,10 +896,12 @@ class SlmImage:
     max_error_rad: float
     lut_source: str | None = None
     warnings: tuple = ()
+    magnification: float = 1.0
 
     def summary(self) -> dict:
         h, w = self.gray.shape
         return {"route": "slm", "width_px": w, "height_px": h, "pitch_um": self.pitch_um, "bit_depth": self.bit_depth,
+                "magnification": self.magnification,
                 "carrier_f_per_um": [float(v) for v in self.carrier_f_per_um], "lut": self.lut_source,
                 "max_error_rad": self.max_error_rad, "gray_to_phase": "lut" if self.lut_source else
                 "phase = 2 pi gray / 2^bit_depth", "orientation": "row 0 = top (+y), column 0 = left (-x)",
@@ -961,15 +977,16 @@ def slm_image(design, settings: RouteSettings | None = None) -> SlmImage:
     settings = settings or parse_routes(design)
     ss = settings.slm
     w, h, p = ss.width_px, ss.height_px, ss.pitch_um
+    mag = ss.scale(design.aperture)
     x = (np.arange(w) - (w - 1) / 2) * p
     y = ((h - 1) / 2 - np.arange(h)) * p
-    xx, yy = x[None, :], y[:, None]
+    xx, yy = x[None, :] / mag, y[:, None] / mag  # design coordinates of the pixel centres
     psi = _phase_func(design)(xx, yy)
     f = np.zeros(2)
     if ss.carrier_period_px > 0:
         az = math.radians(ss.carrier_azimuth_deg)
         f = np.array([math.cos(az), math.sin(az)]) / (ss.carrier_period_px * p)
-        psi = psi + 2 * np.pi * (xx * f[0] + yy * f[1])
+        psi = psi + 2 * np.pi * mag * (xx * f[0] + yy * f[1])  # the carrier is set in panel pixels
     psi = np.mod(psi, 2 * np.pi)
     inside = _inside(design.aperture, xx + 0 * yy, yy + 0 * xx)
     levels = 2 ** ss.bit_depth
@@ -991,11 +1008,11 @@ def slm_image(design, settings: RouteSettings | None = None) -> SlmImage:
     warnings = []
     if inside.any():
         gm = phase_gradient(design.terms, xx + 0 * yy, yy + 0 * xx, wavelength_nm=design.wavelength_nm,
-                            sigma=design.sigma, step_um=p / 4)
+                            sigma=design.sigma, step_um=p / (4 * mag)) / mag  # per um of the panel
         gm = gm + 2 * np.pi * float(np.hypot(*f))
         away = inside.copy()
         cores, charges = _cores(design.terms)
-        for (cx, cy), rad in zip(cores, _core_radii(charges, 1.0, p)):  # a few vortex cores
+        for (cx, cy), rad in zip(cores, _core_radii(charges, 1.0, p / mag)):  # a few vortex cores
             away &= np.hypot(xx - cx, yy - cy) > rad
         worst = float(np.max(gm[away]) * p) if away.any() else 0.0
         if worst > np.pi:
@@ -1005,12 +1022,17 @@ def slm_image(design, settings: RouteSettings | None = None) -> SlmImage:
         warnings.append("slm: no pixel lies inside the design aperture")
     hw = (w * p / 2, h * p / 2)
     ax, ay = design.aperture.half_extent_um
+    ax, ay = ax * mag, ay * mag  # the beam on the panel
     if hw[0] < ax or hw[1] < ay:
-        warnings.append(f"slm: the panel ({w * p:g} x {h * p:g} um) is smaller than the aperture "
-                        f"({2 * ax:g} x {2 * ay:g} um); the image is cropped")
+        warnings.append(f"slm: the panel ({w * p:g} x {h * p:g} um) is smaller than the beam on it "
+                        f"({2 * ax:g} x {2 * ay:g} um at magnification {mag:.4g}); the image is cropped")
+    elif max(2 * ax / (w * p), 2 * ay / (h * p)) < 0.25:
+        warnings.append(f"slm: the beam covers {2 * ax / p:.0f} x {2 * ay / p:.0f} of the {w} x {h} pixels "
+                        f"(magnification {mag:.4g}); scale it with routes.slm.magnification or beam_diameter_px "
+                        "(option --beam-diameter-px) to use the panel's resolution")
     return SlmImage(gray=gray, phase_rad=shown, target_rad=psi, inside=inside, lut_rad=lut, x_um=x, y_um=y,
                     pitch_um=p, bit_depth=ss.bit_depth, carrier_f_per_um=f, max_error_rad=max_err, lut_source=lut_src,
-                    warnings=tuple(warnings))
+                    warnings=tuple(warnings), magnification=mag)
 
 
 def _png_bytes(arr: np.ndarray) -> bytes:
@@ -1315,13 +1337,15 @@ def _route_fork(g: _CompareGrid) -> RouteFigures:
 def _route_slm(g: _CompareGrid) -> RouteFigures:
     im = slm_image(g.design, g.settings)
     h, w = im.gray.shape
-    c = np.rint(g.xx / im.pitch_um + (w - 1) / 2).astype(np.int64)
-    rr = np.rint((h - 1) / 2 - g.yy / im.pitch_um).astype(np.int64)
+    m = im.magnification  # the panel is imaged onto the design plane at 1 / m
+    c = np.rint(m * g.xx / im.pitch_um + (w - 1) / 2).astype(np.int64)
+    rr = np.rint((h - 1) / 2 - m * g.yy / im.pitch_um).astype(np.int64)
     on = (c >= 0) & (c < w) & (rr >= 0) & (rr < h)
     t = np.where(on, np.exp(1j * im.phase_rad[np.clip(rr, 0, h - 1), np.clip(c, 0, w - 1)]), 0)
     exp_slm = None if im.lut_source else multilevel_efficiency(2 ** im.bit_depth)
-    return _route_figures(g, "slm", t, im.carrier_f_per_um, exp_slm,
-                          f"{im.bit_depth}-bit, pitch {im.pitch_um:g} um" + (", LUT" if im.lut_source else ""))
+    return _route_figures(g, "slm", t, im.carrier_f_per_um * m, exp_slm,
+                          f"{im.bit_depth}-bit, pitch {im.pitch_um:g} um, magnification {m:.4g}"
+                          + (", LUT" if im.lut_source else ""))
 
 
 def _route_orient(g: _CompareGrid) -> RouteFigures:

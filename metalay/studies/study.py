@@ -903,8 +903,9 @@ def tolerance_study(design, out_dir=None, *, settings: ToleranceSettings = Toler
     settings.validate()
     n_workers = max(1, int(workers or os.cpu_count() or 1))
     notes = [EFFICIENCY_NOTE]
-    mask = _mask_for_study(design, out_dir, mask)
     lib = load_library(design.library)
+    refuse_unevaluable(design, lib, settings)  # before the compile and the site model: minutes saved
+    mask = _mask_for_study(design, out_dir, mask)
     model = site_model(mask, lib, design, max_side=max_side, pad_factor=pad_factor)
     cd_ok = _check_tolerance_inputs(design, lib, model, settings, notes)
     nominal = evaluate_sites(model, workers=n_workers)
@@ -936,6 +937,37 @@ def tolerance_study(design, out_dir=None, *, settings: ToleranceSettings = Toler
         files = _write_tolerance_files(out_dir, result_json, samples, nominal, thresholds, make_plots)
     return ToleranceResult(nominal=nominal, samples=tuple(samples), statistics=stats, thresholds=thresholds,
                            files=files, notes=tuple(notes), settings=settings)
+
+
+def refuse_unevaluable(design, library, settings: ToleranceSettings) -> None:
+    """Refuse, before anything is computed, an error kind the study cannot evaluate for this design and library.
+
+    CD bias needs responses and, for each cell the design uses, other cells of its kind on the uniform-bias line
+    (:func:`biased_responses`); detuning needs responses; a purity threshold needs one topological charge.
+
+    Raises
+    ------
+    StudyError
+        One line naming the setting (option ``--cd-bias-nm`` / key ``cd_bias_mean_nm``, ``cd_bias_sd_nm``,
+        ``detune_sd_nm``, ``purity_threshold``) and why it cannot be evaluated.
+    """
+    if settings.cd_bias_mean_nm or settings.cd_bias_sd_nm:
+        if library.phase_mechanism == "geometric":
+            used = [library.cell_index(design.mask.cell or library.cells[0].id)]
+        else:
+            used = list(range(len(library.cells)))
+        ok, why = _cd_available(library, used) if library.has_responses else (False, "the library has no responses")
+        if not ok:
+            raise StudyError(f"tolerance: cd_bias (--cd-bias-nm {settings.cd_bias_mean_nm:g} "
+                             f"{settings.cd_bias_sd_nm:g}) cannot be evaluated for library {library.name!r}: "
+                             f"{why.split(': ', 1)[-1]}; leave it at 0 0 or use a library with cells of several sizes")
+    if settings.detune_sd_nm and not library.has_responses:
+        raise StudyError(f"tolerance: detune_sd_nm (--detune-nm {settings.detune_sd_nm:g}) needs a library with "
+                         f"responses; {library.name} has none")
+    if settings.purity_threshold is not None:
+        if optics.target_from_design(design).charge is None:
+            raise StudyError(f"{design.source_path}: purity_threshold (--purity-threshold) needs a design with one "
+                             "topological charge about the beam axis")
 
 
 def _mask_for_study(design, out_dir, mask):
