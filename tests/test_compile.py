@@ -116,7 +116,7 @@ def test_demo_runs_from_any_directory(tmp_path):
                           cwd=tmp_path, capture_output=True, text=True, env=env, timeout=300)
     assert proc.returncode == 0, proc.stderr
     names = sorted(p.name for p in out.iterdir())
-    assert names == ["demo-vortex-532.gds", "demo-vortex-532.oas", "manifest.json", "timings.json"]
+    assert names == ["demo-vortex-532.gds", "demo-vortex-532.oas", "manifest.json", "report.html", "timings.json"]
     man = json.loads((out / "manifest.json").read_text())
     assert man["counts"]["sites"] > 600_000
     assert man["design"]["echo"]["phase"][0] == {"kind": "vortex", "charge": 3}

@@ -307,8 +307,10 @@ def far_field_zoom(power: np.ndarray, u: np.ndarray, v: np.ndarray, *, centre, h
         if abs(mu - centre[0]) > half_width or abs(mv - centre[1]) > half_width:
             continue
         ax.add_patch(Circle((mu, mv), lobe_radius, fill=False, ec=HIGHLIGHT_COLOUR, lw=1.0, ls="--"))
-        # the label starts outside the circle, pointing away from the group's centre
-        ax.annotate(label, (mu, mv), xytext=(ox, oy), textcoords="offset points", color="white",
+        # the label starts outside the circle (1.3 lobe radii out), pointing away from the group's centre
+        n = float(np.hypot(ox, oy)) or 1.0
+        ax.annotate(label, (mu, mv), xytext=(mu + 1.3 * lobe_radius * ox / n, mv + 1.3 * lobe_radius * oy / n),
+                    textcoords="data", color="white",
                     fontsize=8, ha="center" if abs(ox) < 5 else ("left" if ox > 0 else "right"),
                     va="center" if abs(oy) < 5 else ("bottom" if oy > 0 else "top"),
                     bbox={"boxstyle": "round,pad=0.15", "fc": "#1d2a33", "ec": "none", "alpha": 0.75},

@@ -355,7 +355,7 @@ def _rules_section(rules: dict | None, margins: dict | None, overview_png: bytes
         mr = m.get(r["rule"]) if r.get("layer") is not None else None
         worst = "-" if r.get("worst_value") is None else fmt_number(float(r["worst_value"]))
         where = "-" if not r.get("worst_xy_um") else ", ".join(fmt_number(float(c)) for c in r["worst_xy_um"])
-        rows.append((f"{r['layer']}/{r['datatype']}", r["rule"], fmt_number(r["limit"]), r["unit"],
+        rows.append((f"{r['layer']}/{r['datatype']}", r["rule"], f"{float(r['limit']):g}", r["unit"],
                      fmt_number(int(r["checked"])), fmt_number(int(r["count"])), worst, where,
                      "-" if mr is None or mr["measured"] is None else fmt_number(mr["measured"]),
                      "-" if mr is None else fmt_number(mr["margin"]),

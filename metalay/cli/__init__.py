@@ -216,7 +216,7 @@ def main(argv=None) -> int:
                 code, error = _run(args)
         else:
             code, error = _run(args)
-        if not getattr(args, "quiet", False) or json_mode:
+        if error is None and (not getattr(args, "quiet", False) or json_mode):  # an error stays one line
             print(SHORT_CAUTION, file=sys.stderr)
         if json_mode:
             print(json_result(args, code, error), file=real_stdout)

@@ -175,7 +175,7 @@ def _print_report(rep, out, quiet: bool) -> None:
     v = f["verdict"]
     print(f"verdict: {v['status']}" + "".join(f"\n  failed: {line}" for line in v["failed"]))
     for note in rep.notes:
-        print(f"note: {note}")
+        print(f"note: {note}", file=sys.stderr)
     print(f"output folder: {out}")
 
 

@@ -115,9 +115,13 @@ class CompileResult:
     def __str__(self) -> str:
         v = self.manifest.get("verdicts", {})
         c = self.manifest.get("counts", {})
-        lines = [f"compile of {self.manifest.get('design', {}).get('name', '?')} into {self.out_dir}: verdict "
-                 f"{str(v.get('overall', '?')).upper()}, {c.get('sites', 0):,} sites"]
-        lines += [f"  {k} check: {b['verdict'].upper()}" for k, b in v.get("by_check", {}).items()]
+        checks = self.manifest.get("checks", {})
+        lines = [f"compile of {self.manifest.get('design', {}).get('name', '?')} into {self.out_dir}: "
+                 f"{c.get('sites', 0):,} sites", f"verdict: {str(v.get('overall', '?')).upper()}"]
+        for k, b in v.get("by_check", {}).items():
+            status = checks.get(k, {}).get("status") if isinstance(checks.get(k), dict) else None
+            extra = f" ({status})" if status and status != b["verdict"] else ""
+            lines.append(f"  {k} check: {b['verdict'].upper()}{extra}")
         lines += [f"  {k}: {Path(p).name}" for k, p in sorted(self.files.items())]
         lines += [f"  warning: {w}" for w in self.warnings]
         return "\n".join(lines)
