@@ -39,7 +39,8 @@ import numpy as np
 from scipy import ndimage
 
 from metalay.checks import fringes, grid, oam
-from metalay.checks.decode import DecodedSites, decode_sites
+from metalay.checks.decode import DecodedSites
+from metalay.checks.openings import decode_written, tone_of, written_layer
 from metalay.errors import MetalayError
 from metalay.util._memory import keep_freed_memory
 
@@ -1149,11 +1150,8 @@ def _read_and_decode(mask_path: Path, lib, design, target, opt: OpticsOptions, n
     bias_nm = opt.bias_nm
     if bias_nm is None:
         bias_nm = float(getattr(mask_settings, "bias_nm", 0.0) or 0.0)
-    if getattr(mask_settings, "tone", "structures") != "structures":
-        raise MetalayError(f"{mask_path}: mask.tone = {mask_settings.tone!r}; the optical check reads structure "
-                           "polygons and supports tone 'structures' only")
     t0 = time.perf_counter()
-    flat = read_mask(mask_path, layers=[tuple(layer)])
+    flat = read_mask(mask_path, layers=[written_layer(design, layer)])  # structures, or the film pieces
     timings["read_s"] = time.perf_counter() - t0
     no_target = target is None and design is None
     if target is None:
@@ -1172,10 +1170,14 @@ def _read_and_decode(mask_path: Path, lib, design, target, opt: OpticsOptions, n
     period_nm = design.lattice.period_nm if design is not None else lib.period_nm
     lattice = design.lattice.kind if design is not None else lib.lattice
     t0 = time.perf_counter()
-    decoded = decode_sites(flat, lib.cells, period_nm=period_nm, lattice=lattice, layer=tuple(layer),
-                           size_tol_nm=opt.size_tol_nm, bias_nm=bias_nm, unmatched=opt.unmatched,
-                           where=str(mask_path))
+    decoded = decode_written(flat, lib.cells, design, period_nm=period_nm, lattice=lattice, layer=tuple(layer),
+                             size_tol_nm=opt.size_tol_nm, bias_nm=bias_nm, unmatched=opt.unmatched,
+                             where=str(mask_path))
     timings["decode_s"] = time.perf_counter() - t0
+    if tone_of(design) == "complement":
+        notes.append(f"tone 'complement': {decoded.stats['pieces']} written film pieces read; the openings are the "
+                     f"region minus the pieces on the writer's {decoded.stats['bands']} bands, measured by their area "
+                     "moments")
     if bias_nm and lib.has_responses:
         t_long, t_short = _biased_responses(lib, t_long, t_short, decoded, bias_nm, notes)
     # a small window of polygons for the layout figure, then free the vertex table
@@ -1183,6 +1185,11 @@ def _read_and_decode(mask_path: Path, lib, design, target, opt: OpticsOptions, n
     zoom_hw = max(1.5, 4 * period_nm * 1e-3)
     first = flat.xy_db[flat.start[:-1]] * (flat.db_unit_nm / 1000.0)
     win = (np.abs(first[:, 0] - zoom_c[0]) < zoom_hw + 1) & (np.abs(first[:, 1] - zoom_c[1]) < zoom_hw + 1)
+    if tone_of(design) == "complement" and flat.count:  # film pieces are long: select them by their extent
+        lo = np.minimum.reduceat(flat.xy_db, flat.start[:-1], axis=0) * (flat.db_unit_nm / 1000.0)
+        hi = np.maximum.reduceat(flat.xy_db, flat.start[:-1], axis=0) * (flat.db_unit_nm / 1000.0)
+        c = np.asarray(zoom_c)
+        win = np.all((hi > c - zoom_hw - 1) & (lo < c + zoom_hw + 1), axis=1)
     zoom_flat = flat.select(win) if opt.make_plots else None
     return _Decoded(mask_path, lib, design, target, no_target, tuple(layer), bias_nm, decoded, t_long, t_short,
                     period_nm, (zoom_flat, zoom_c, zoom_hw, flat.db_unit_nm))
@@ -1371,7 +1378,8 @@ def _images(dec: _Decoded, ev: Evaluation, figures: dict, fringe_image, opt: Opt
                                               valid=valid & (np.abs(conv) > 0)))
     images["3_layout_zoom"] = (f"mask polygons within {zoom_hw:g} um of ({zoom_c[0]:g}, {zoom_c[1]:g}) um",
                                plots.layout_zoom(zoom_flat.start, zoom_flat.xy_db, db_unit_nm, center_um=zoom_c,
-                                                 half_width_um=zoom_hw))
+                                                 half_width_um=zoom_hw,
+                                                 by_extent=tone_of(dec.design) == "complement"))
     lam_um = target.wavelength_nm * 1e-3
     ext = min(1.0, max(3 * np.hypot(*target.direction), 40 * lam_um / ev.diameter_um,
                        *[1.5 * np.hypot(c[1], c[2]) for c in target.channels] or [0]))
