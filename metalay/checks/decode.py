@@ -126,7 +126,8 @@ def polygon_shapes(start: np.ndarray, xy_db: np.ndarray, db_unit_nm: float) -> S
     b = np.empty(p, dtype=np.float32)
     if p and counts.min() < 4:
         k = int(np.argmin(counts))
-        raise MetalayError(f"polygon {k} has {int(counts[k])} vertices; structure polygons need at least 4")
+        raise MetalayError(f"polygon {k} has {int(counts[k])} vertices; structure polygons need at least 4 (a "
+                           f"complement-tone mask holds film pieces: decode it with its design)")
     if p and counts.min() == counts.max() == 4:
         # every polygon a quadrilateral stored back to back: a free (P, 4, 2) view, processed in chunks
         v_all = xy_db.reshape(-1, 4, 2)
@@ -394,7 +395,8 @@ def sites_from_shapes(shapes: ShapeTable, cs: CellShapes, *, period_nm: float, l
             f"{where}: {n_bad} {what} match no library cell within {size_tol_nm:g} nm, e.g. one at "
             f"({shapes.x_nm[k] / 1000:.3f}, {shapes.y_nm[k] / 1000:.3f}) um measuring {shapes.a_nm[k]:.1f} x "
             f"{shapes.b_nm[k]:.1f} nm (bias_nm = {bias_nm:g}); pass the mask's bias, a larger tolerance, or "
-            "unmatched='nearest'")
+            "unmatched='nearest'" + ("; a complement-tone mask holds film pieces: decode it with its design"
+                                     if what == "structure polygons" else ""))
     keep = np.ones(n_poly, bool) if unmatched != "drop" else ~bad
     ii, jj, offset = _lattice_indices(shapes, period_nm, lattice, origin_um)
     off = offset > period_nm / 4
