@@ -163,3 +163,40 @@ def test_bias_errors_are_one_line(tiny):
         BiasedCells(bare)
     with pytest.raises(LibraryError, match="bias_step_nm"):
         BiasedCells(lib, bias_step_nm=-1.0)
+
+
+def test_optics_of_a_biased_mask_uses_the_solved_cell_unless_told_otherwise(tmp_path, capsys):
+    # The converted power of a fully populated aperture is |(t_long - t_short)/2|^2 of its cell (circular input,
+    # Jones algebra of metalay.checks.optics): with a bias it must be the solved biased cell's, and the nominal
+    # cell's only with --bias-response nominal.
+    import json
+
+    from metalay.api import compile_design
+    from metalay.cli import main as cli_main
+    from metalay.design.spec import parse_design
+
+    from conftest import write_toml
+
+    raw = {"design": {"name": "t-bias", "wavelength_nm": 633.0, "input_spin": 1, "library": "tio2-nanofin-633"},
+           "phase": [{"kind": "vortex", "charge": 1}], "aperture": {"shape": "circle", "diameter_um": 12.0},
+           "lattice": {"kind": "square", "period_nm": 430.0}, "mask": {"formats": ["gds"], "bias_nm": 4.0},
+           "checks": {"rules": False, "optics": False}}
+    path = write_toml(tmp_path / "d.toml", raw)
+    res = compile_design(parse_design(raw, where=str(path)), tmp_path / "m", show_progress=False)
+    lib = load_library("tio2-nanofin-633")
+    tl, ts = BiasedCells(lib, harmonics=(3, 3)).responses_at([0], 4.0, 633.0)
+    tl0, ts0 = lib.response_at(633.0)
+    common = ["optics", str(res.files["gds"]), "--design", str(path), "--no-plots", "--quiet",
+              "--bias-harmonics", "3"]
+    assert cli_main(common + ["-o", str(tmp_path / "a")]) == 0
+    fig = json.loads((tmp_path / "a" / "optics.json").read_text())
+    assert fig["power_budget"]["converted"] == pytest.approx(abs((tl[0] - ts[0]) / 2) ** 2, rel=1e-6)
+    assert fig["bias"]["cells"]["fin-330x120"] == "solved at the size as written"
+    assert fig["bias"]["solver"]["truncation"] == {"harmonics_x": 3, "harmonics_y": 3}
+    assert cli_main(common + ["--bias-response", "nominal", "-o", str(tmp_path / "b")]) == 0
+    fig = json.loads((tmp_path / "b" / "optics.json").read_text())
+    assert fig["power_budget"]["converted"] == pytest.approx(abs((tl0[0] - ts0[0]) / 2) ** 2, rel=1e-6)
+    assert "nominal" in fig["bias"]["cells"]["fin-330x120"]
+    assert abs(abs((tl[0] - ts[0]) / 2) ** 2 - abs((tl0[0] - ts0[0]) / 2) ** 2) > 1e-3  # the two differ
+    rc = cli_main(common[:-1] + ["99", "-o", str(tmp_path / "c")])
+    assert rc == 2 and capsys.readouterr().err.count("\n") == 1

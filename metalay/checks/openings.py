@@ -494,7 +494,5 @@ def decode_written(flat, cells, design, *, period_nm: float, lattice: str, layer
         return decode_openings(flat, cells, complement_layout(design), period_nm=period_nm, lattice=lattice,
                                layer=layer, size_tol_nm=size_tol_nm, bias_nm=bias_nm,
                                bias_corners=design.mask.bias_corners, unmatched=unmatched, where=where)
-    decoded = decode_sites(flat, cells, period_nm=period_nm, lattice=lattice, layer=tuple(layer),
-                           size_tol_nm=size_tol_nm, bias_nm=bias_nm, unmatched=unmatched, where=where)
-    decoded.stats.setdefault("tone", "structures")
-    return decoded
+    return decode_sites(flat, cells, period_nm=period_nm, lattice=lattice, layer=tuple(layer),
+                        size_tol_nm=size_tol_nm, bias_nm=bias_nm, unmatched=unmatched, where=where)

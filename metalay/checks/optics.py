@@ -877,30 +877,59 @@ def json_ready(obj):
     return obj
 
 
-def _biased_responses(lib, t_long, t_short, decoded, bias_nm: float, notes: list):
+#: Values of :attr:`OpticsOptions.bias_response`.
+BIAS_RESPONSES = ("as-written", "nominal")
 
-    """Responses for a biased mask: the library cell at the biased size where the library has one.
+
+def _biased_responses(lib, t_long, t_short, decoded, bias_nm: float, notes: list, *, wavelength_nm: float,
+                      opt: "OpticsOptions"):
+    """Responses for a biased mask: each cell at the size written into the mask (nominal + 2 x bias).
 
     A bias pre-compensates the process; the mask as written carries cells grown by ``2 * bias_nm``. Where the
-    library has a cell of the same kind at exactly that size, its response is the one of the mask as written (no
-    process shift); otherwise the nominal response is kept, which assumes the process removes the bias exactly,
-    and a note says so.
+    library has a cell of the same kind at exactly that size, its response is used; otherwise the biased cell is
+    solved with metalay's RCWA (:class:`metalay.cells.biascells.BiasedCells`, with the library's recorded
+    truncation unless ``opt.bias_harmonics`` says otherwise). Only with ``opt.bias_response = "nominal"`` is
+    the nominal response kept (the process is assumed to remove the bias exactly), and the notes say so.
+
+    Returns
+    -------
+    (t_long, t_short, record) : responses per library cell and a JSON-ready record of what was used.
     """
     from metalay.mask.process import biased_dims_nm, find_cell_at_dims
 
+    if opt.bias_response not in BIAS_RESPONSES:
+        raise MetalayError(f"bias_response = {opt.bias_response!r}; allowed: {', '.join(BIAS_RESPONSES)}")
     t_long, t_short = t_long.copy(), t_short.copy()
-    used = np.unique(decoded.cell)
-    for k in used:  # cells in use (a short axis)
+    record = {"bias_nm": float(bias_nm), "response": opt.bias_response, "cells": {}}
+    to_solve = []
+    for k in np.unique(decoded.cell):  # cells in use (a short axis)
         cell = lib.cells[int(k)]
         j = find_cell_at_dims(lib, cell.kind, biased_dims_nm(cell, bias_nm))
-        if j is None:
-            notes.append(f"bias {bias_nm:+g} nm: the library has no {cell.kind} at the biased size of cell "
-                         f"{cell.id}; its nominal response is used (assumes the process removes the bias exactly)")
-        else:
+        if j is not None:
             t_long[k], t_short[k] = t_long[j], t_short[j]
+            record["cells"][cell.id] = f"library cell {lib.cells[j].id} (the size as written)"
             notes.append(f"bias {bias_nm:+g} nm: cell {cell.id} as written has the size of library cell "
                          f"{lib.cells[j].id}, whose response is used (the mask as written, before the process)")
-    return t_long, t_short
+        elif opt.bias_response == "nominal":
+            record["cells"][cell.id] = "nominal response (chosen: the process removes the bias)"
+            notes.append(f"bias {bias_nm:+g} nm: nominal response of cell {cell.id} used as asked (bias response "
+                         "'nominal': assumes the process removes the bias exactly)")
+        else:
+            to_solve.append(int(k))
+    if to_solve:
+        from metalay.cells.biascells import BiasedCells
+
+        solver = BiasedCells(lib, harmonics=opt.bias_harmonics, cache_dir=opt.cell_cache)
+        tl_b, ts_b = solver.responses_at(to_solve, bias_nm, wavelength_nm)
+        for k in to_solve:
+            t_long[k], t_short[k] = tl_b[k], ts_b[k]
+            record["cells"][lib.cells[k].id] = "solved at the size as written"
+        record["solver"] = solver.record()
+        trunc = solver.record()["truncation"]
+        notes.append(f"bias {bias_nm:+g} nm: cell(s) {', '.join(lib.cells[k].id for k in to_solve)} solved at the "
+                     f"size as written (nominal + {2 * bias_nm:+g} nm) with metalay's RCWA, truncation: "
+                     f"{trunc if isinstance(trunc, str) else trunc['harmonics_x']}")
+    return t_long, t_short, record
 
 
 # ----------------------------------------------------------------------------------------------------------------
@@ -1101,6 +1130,14 @@ class OpticsOptions:
         FFT threads.
     title : str, optional
         Report title.
+    bias_response : {"as-written", "nominal"}
+        Responses of a biased mask: "as-written" (default) uses each cell at the size written into the mask (a
+        library cell of that size, else solved on demand by metalay's RCWA); "nominal" keeps the nominal
+        response (assumes the process removes the bias exactly; stated in the notes).
+    bias_harmonics : (int, int), optional
+        Truncation of those solves (default: the library's recorded truncation at each wavelength).
+    cell_cache : str, optional
+        Folder that keeps solved biased cells between runs.
     """
 
     wavelength_nm: float | None = None
@@ -1118,6 +1155,9 @@ class OpticsOptions:
     keep_arrays: bool = False
     workers: int = 2
     title: str | None = None
+    bias_response: str = "as-written"
+    bias_harmonics: tuple | None = None
+    cell_cache: str | None = None
 
 
 @dataclass(frozen=True, eq=False)
@@ -1136,6 +1176,7 @@ class _Decoded:
     t_short: np.ndarray
     period_nm: float
     zoom: tuple            # (flat polygons near the centre or None, centre (um), half width (um), db unit (nm))
+    bias: dict | None = None  # how the responses of a biased mask were obtained (_biased_responses)
 
 
 def _read_and_decode(mask_path: Path, lib, design, target, opt: OpticsOptions, notes: list,
@@ -1178,8 +1219,12 @@ def _read_and_decode(mask_path: Path, lib, design, target, opt: OpticsOptions, n
         notes.append(f"tone 'complement': {decoded.stats['pieces']} written film pieces read; the openings are the "
                      f"region minus the pieces on the writer's {decoded.stats['bands']} bands, measured by their area "
                      "moments")
+    bias_record = None
     if bias_nm and lib.has_responses:
-        t_long, t_short = _biased_responses(lib, t_long, t_short, decoded, bias_nm, notes)
+        t0 = time.perf_counter()
+        t_long, t_short, bias_record = _biased_responses(lib, t_long, t_short, decoded, bias_nm, notes,
+                                                         wavelength_nm=wl, opt=opt)
+        timings["bias_s"] = time.perf_counter() - t0
     # a small window of polygons for the layout figure, then free the vertex table
     zoom_c = target.center_um
     zoom_hw = max(1.5, 4 * period_nm * 1e-3)
@@ -1192,7 +1237,7 @@ def _read_and_decode(mask_path: Path, lib, design, target, opt: OpticsOptions, n
         win = np.all((hi > c - zoom_hw - 1) & (lo < c + zoom_hw + 1), axis=1)
     zoom_flat = flat.select(win) if opt.make_plots else None
     return _Decoded(mask_path, lib, design, target, no_target, tuple(layer), bias_nm, decoded, t_long, t_short,
-                    period_nm, (zoom_flat, zoom_c, zoom_hw, flat.db_unit_nm))
+                    period_nm, (zoom_flat, zoom_c, zoom_hw, flat.db_unit_nm), bias=bias_record)
 
 
 def _decimation_note(ev: Evaluation, target: OpticsTarget, m: int, side: int, max_side: int) -> str:
@@ -1339,6 +1384,7 @@ def _figures(dec: _Decoded, ev: Evaluation, opt: OpticsOptions, notes: list, tim
     near, ff = ev.near, ev.far
     figures = {"wavelength_nm": dec.target.wavelength_nm, "input_polarization": opt.polarization,
                "design_spin": dec.target.sigma, "power_budget": ev.budget, "decode": dec.decoded.stats,
+               **({"bias": dec.bias} if dec.bias is not None else {}),
                "grid": {"nx": int(near.designed.shape[1]), "ny": int(near.designed.shape[0]),
                         "dx_um": near.dx_um, "dy_um": near.dy_um, "decimation": near.decimation,
                         "fft_side": [int(ff.u.size), int(ff.v.size)], "pad_factor": opt.pad_factor},
@@ -1457,7 +1503,7 @@ def check_optics(mask_path, library, *, design=None, target: OpticsTarget | None
               "design": getattr(design, "name", None), "wavelength_nm": dec.target.wavelength_nm,
               "polarization": opt.polarization, "layer": list(dec.layer), "bias_nm": dec.bias_nm,
               "size_tol_nm": opt.size_tol_nm, "empty_t": str(opt.empty_t), "pad_factor": opt.pad_factor,
-              "max_side": opt.max_side}
+              "max_side": opt.max_side, **({"bias_response": opt.bias_response} if dec.bias_nm else {})}
     figures["inputs"] = json_ready(inputs)
     if opt.make_plots:
         from metalay.checks.report import render_html
