@@ -111,12 +111,19 @@ def test_bundled_fin_biased_matches_a_sweep_of_its_spec_and_grows_its_phase():
     lib = load_library("tio2-nanofin-633")
     spec = load_build_spec(SPECS / "tio2-nanofin-633.toml")
     h = (3, 3)
-    bc = BiasedCells(lib, harmonics=h)
+    bc = BiasedCells(lib, harmonics=h, anchor=False)
     bc.prepare([0], [-3.0, 0.0, 3.0], [633.0])  # one batched solve
     got = {b: bc.responses_at([0], b, 633.0) for b in (-3.0, 0.0, 3.0)}
     for b in (-3.0, 3.0):
         sw = sweep(replace(_spec_at(spec, lib.cells[0], b), harmonics=h))
         assert abs(got[b][0][0] - sw.t_long[0]) < 1e-9 and abs(got[b][1][0] - sw.t_short[0]) < 1e-9
+    # anchored (the default): the library's response times the solved change, exact at bias 0
+    anchored = BiasedCells(lib, harmonics=h)
+    tl0, ts0 = lib.response_at(633.0)
+    assert anchored.responses_at([0], 0.0, 633.0)[0][0] == pytest.approx(tl0[0], abs=1e-12)
+    a3 = anchored.responses_at([0], 3.0, 633.0)
+    assert a3[0][0] == pytest.approx(tl0[0] * got[3.0][0][0] / got[0.0][0][0], abs=1e-12)
+    assert a3[1][0] == pytest.approx(ts0[0] * got[3.0][1][0] / got[0.0][1][0], abs=1e-12)
     # Sign convention of the bias: a positive bias grows the fin, more high-index material along the polarisation
     # raises the effective index, so the phase of t_long (exp(-i omega t), field exp(i n_eff k h)) increases.
     # Source: Yariv & Yeh 2007, Photonics, 6th ed., ch. 3 (effective index of a dielectric guide grows with its
@@ -129,11 +136,11 @@ def test_bundled_fin_biased_matches_a_sweep_of_its_spec_and_grows_its_phase():
 
 def test_bias_grid_interpolates_and_the_cache_folder_is_reused(tiny, tmp_path):
     _, lib = tiny
-    grid = BiasedCells(lib, harmonics=(2, 2), bias_step_nm=1.0, cache_dir=tmp_path / "cache")
+    grid = BiasedCells(lib, harmonics=(2, 2), bias_step_nm=1.0, cache_dir=tmp_path / "cache", anchor=False)
     mid = grid.responses_at([0], 2.5, 532.0)
-    n2 = BiasedCells(lib, harmonics=(2, 2)).responses_at([0], 2.0, 532.0)
-    n3 = BiasedCells(lib, harmonics=(2, 2)).responses_at([0], 3.0, 532.0)
-    exact = BiasedCells(lib, harmonics=(2, 2)).responses_at([0], 2.5, 532.0)
+    n2 = BiasedCells(lib, harmonics=(2, 2), anchor=False).responses_at([0], 2.0, 532.0)
+    n3 = BiasedCells(lib, harmonics=(2, 2), anchor=False).responses_at([0], 3.0, 532.0)
+    exact = BiasedCells(lib, harmonics=(2, 2), anchor=False).responses_at([0], 2.5, 532.0)
     # halfway in amplitude and phase between the two grid nodes
     r = n3[0][0] / n2[0][0]
     assert mid[0][0] == pytest.approx(n2[0][0] * abs(r) ** 0.5 * np.exp(0.5j * np.angle(r)), abs=1e-12)
@@ -142,11 +149,11 @@ def test_bias_grid_interpolates_and_the_cache_folder_is_reused(tiny, tmp_path):
     assert abs(mid[0][0] - exact[0][0]) < 1e-3 and abs(mid[1][0] - exact[1][0]) < 1e-3
     files = sorted((tmp_path / "cache").iterdir())
     assert len(files) == 2 and grid.record()["points_solved"] == 2
-    again = BiasedCells(lib, harmonics=(2, 2), bias_step_nm=1.0, cache_dir=tmp_path / "cache")
+    again = BiasedCells(lib, harmonics=(2, 2), bias_step_nm=1.0, cache_dir=tmp_path / "cache", anchor=False)
     assert again.responses_at([0], 2.5, 532.0)[0][0] == mid[0][0]
     assert again.record()["points_solved"] == 0 and again.record()["points_loaded_from_cache"] == 2
     files[0].write_bytes(b"\x00garbage{")  # a broken cache file is ignored and solved again
-    third = BiasedCells(lib, harmonics=(2, 2), bias_step_nm=1.0, cache_dir=tmp_path / "cache")
+    third = BiasedCells(lib, harmonics=(2, 2), bias_step_nm=1.0, cache_dir=tmp_path / "cache", anchor=False)
     assert third.responses_at([0], 2.5, 532.0)[0][0] == pytest.approx(mid[0][0], abs=1e-12)
     assert third.record()["points_solved"] == 1
 

@@ -85,6 +85,11 @@ class BiasedCells:
         None: solve each bias exactly; > 0: solve on a grid of this step and interpolate linearly.
     cache_dir : str or Path, optional
         Folder that keeps solved points between runs.
+    anchor : bool
+        Anchor to the library (default): at each tabulated wavelength the response is
+        ``t_library * t(bias) / t(0)`` with both solves at the same truncation, so truncation errors common to the
+        biased and the nominal cell cancel and bias 0 gives the library's response exactly (at the library's own
+        truncation the factor ``t_library / t(0)`` is 1 to its 1e-10 quantisation). False: the raw solve.
 
     Raises
     ------
@@ -92,7 +97,8 @@ class BiasedCells:
         The library cannot be solved (no stack, unsupported cell kind, no recorded truncation and none given).
     """
 
-    def __init__(self, library, *, harmonics=None, bias_step_nm: float | None = None, cache_dir=None):
+    def __init__(self, library, *, harmonics=None, bias_step_nm: float | None = None, cache_dir=None,
+                 anchor: bool = True):
         self.library = library
         where = library.source_path or library.name
         if harmonics is not None:
@@ -102,6 +108,7 @@ class BiasedCells:
         if bias_step_nm is not None and not (math.isfinite(bias_step_nm) and 0 < bias_step_nm <= 50):
             raise LibraryError(f"{where}: bias_step_nm = {bias_step_nm!r}; allowed 0 < step <= 50 nm or None")
         self.harmonics = harmonics
+        self.anchor = bool(anchor)
         self.bias_step_nm = None if bias_step_nm is None else float(bias_step_nm)
         self.cache_dir = None if cache_dir is None else Path(cache_dir)
         self._cache: dict = {}
@@ -141,10 +148,20 @@ class BiasedCells:
         for c in cells:  # cells in use (a short axis)
             at_b = []
             for b in (b0, b1):  # wavelength: linear in real and imaginary parts (as the library interpolates)
-                lo, hi = self._cache[self._key(c, b, w0)], self._cache[self._key(c, b, w1)]
+                lo, hi = self._node(c, b, w0), self._node(c, b, w1)
                 at_b.append([(1 - fw) * lo[k] + fw * hi[k] for k in (0, 1)])
             tl[c], ts[c] = (_polar(at_b[0][k], at_b[1][k], fb) for k in (0, 1))
         return tl, ts
+
+    def _node(self, cell: int, bias_nm: float, wavelength_nm: float) -> tuple:
+        """Response of one solved node, anchored to the library when :attr:`anchor` (see the class notes)."""
+        tl, ts = self._cache[self._key(cell, bias_nm, wavelength_nm)]
+        if not self.anchor:
+            return tl, ts
+        k = int(np.argmin(np.abs(np.asarray(self.library.wavelengths_nm) - wavelength_nm)))
+        zl, zs = self._cache[self._key(cell, 0.0, wavelength_nm)]
+        lib_l, lib_s = self.library.t_long[cell, k], self.library.t_short[cell, k]
+        return (complex(lib_l * tl / zl) if zl != 0 else tl), (complex(lib_s * ts / zs) if zs != 0 else ts)
 
     def prepare(self, cells, biases_nm, wavelengths_nm) -> None:
         """Solve (or load) every missing ``(cell, bias, wavelength)`` point, batched per truncation.
@@ -153,6 +170,7 @@ class BiasedCells:
         Call it before forking workers so that they find every point they need in the cache.
         """
         todo = []
+        biases_nm = list(biases_nm) + ([0.0] if self.anchor else [])  # the anchor: bias 0 at the same truncation
         for c in sorted({int(v) for v in cells}):
             for b in sorted({float(v) for v in biases_nm}):
                 for w in sorted({float(v) for v in wavelengths_nm}):
@@ -187,6 +205,7 @@ class BiasedCells:
                 "truncation": ("the library's recorded truncation at each tabulated wavelength"
                                if self.harmonics is None else {"harmonics_x": self.harmonics[0],
                                                               "harmonics_y": self.harmonics[1]}),
+                "anchored_to_library": self.anchor,
                 "factorization": "as the library build: Li 1997 rules (rectangles and staircased ellipses)",
                 "geometry": "every size grown by 2 x bias (sharp corners); wavelengths interpolated linearly "
                             "between tabulated ones; biases between grid nodes in amplitude and phase",
