@@ -26,7 +26,11 @@ from scipy import ndimage
 from metalay.errors import MetalayError
 
 __all__ = ["interferogram", "default_tilt_deg", "carrier_per_um", "ChargeReading", "read_charge",
-           "winding_number", "ChannelReading", "read_channel_charges"]
+           "winding_number", "LOOP_TOLERANCE_TURNS", "ChannelReading", "read_channel_charges"]
+
+#: Largest distance (turns) of a loop's winding from its nearest integer for the reading to count: further off,
+#: the loop crosses a phase defect or noise and the reading is "unreadable".
+LOOP_TOLERANCE_TURNS = 0.25
 
 
 def default_tilt_deg(pitch_um: float, wavelength_nm: float, *, samples_per_fringe: float = 6.0) -> float:
@@ -124,6 +128,11 @@ class ChargeReading:
         Carrier used for demodulation.
     agreement : float
         Fraction of loops that agree with ``charge``.
+
+    Notes
+    -----
+    :attr:`readable` is false when the loops disagree (any loop rounds to another integer) or any loop's winding
+    is further than :data:`LOOP_TOLERANCE_TURNS` from an integer; such a reading is "unreadable", not a number.
     """
 
     charge: int
@@ -133,6 +142,18 @@ class ChargeReading:
     center_y_um: float
     carrier_per_um: tuple
     agreement: float
+
+    @property
+    def readable(self) -> bool:
+        """All loops agree on one integer, each within :data:`LOOP_TOLERANCE_TURNS` of it."""
+        w = np.asarray(self.windings, dtype=np.float64)
+        return bool(w.size and self.agreement == 1.0 and np.all(np.isfinite(w))
+                    and np.max(np.abs(w - np.rint(w))) <= LOOP_TOLERANCE_TURNS)
+
+    @property
+    def status(self) -> str:
+        """``"read"`` or ``"unreadable"``."""
+        return "read" if self.readable else "unreadable"
 
 
 def read_charge(intensity: np.ndarray, x_um: np.ndarray, y_um: np.ndarray, *, carrier=None,
@@ -231,7 +252,7 @@ class ChannelReading:
     reading : ChargeReading or None
         The reading (None when no reference could separate the channel).
     readable : bool
-        All loops agree on one integer within a quarter turn.
+        All loops agree on one integer within :data:`LOOP_TOLERANCE_TURNS` (:attr:`ChargeReading.readable`).
     reference_direction : (float, float)
         Direction cosines ``(u, v)`` of the reference plane wave: the channel's direction plus a small offset.
     fringe_carrier_per_um : (float, float)
@@ -256,12 +277,6 @@ class ChannelReading:
 #: spread over its dark core (measured: a charge-4 channel of five reads 1, 2, 3 on loops at 0.3-0.5 of the
 #: radius and 4 from 0.6 out); the total charge is what a loop around the whole core encloses.
 LOOP_RADII_FRACTION = (0.6, 0.67, 0.74, 0.81)
-
-
-def _reading_readable(reading: ChargeReading) -> bool:
-    w = np.asarray(reading.windings, dtype=np.float64)
-    return bool(w.size and reading.agreement == 1.0 and np.all(np.isfinite(w))
-                and np.max(np.abs(w - np.rint(w))) <= 0.25)
 
 
 def _fringe_offset(k: int, f: np.ndarray, nyquist: float, limit: float):
@@ -348,7 +363,7 @@ def read_channel_charges(field: np.ndarray, x_um: np.ndarray, y_um: np.ndarray, 
         ref = a * np.exp(2j * np.pi * delta[1] * y_um)[:, None] * np.exp(2j * np.pi * delta[0] * x_um)[None, :]
         reading = read_charge(np.abs(base + ref) ** 2, x_um, y_um, carrier=tuple(delta), center=center,
                               radii_um=radii, workers=workers)
-        ok = _reading_readable(reading)
+        ok = reading.readable
         out.append(ChannelReading(reading, ok, ref_dir, tuple(map(float, delta)), sep,
                                   "" if ok else "the loops around the axis disagree"))
     return out

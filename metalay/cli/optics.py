@@ -26,17 +26,21 @@ def add_parser(subparsers) -> argparse.ArgumentParser:
     p.add_argument("--wavelength-nm", type=float, help="check wavelength (default: design, else library)")
     p.add_argument("--polarization", default="design",
                    help="input: design, spin+1, spin-1, linear-x, linear-y or linear:<angle_deg> (default design)")
+    p.add_argument("--lit-from", choices=("substrate", "structures"), default=None,
+                   help="side the light arrives from: through the substrate or onto the structures (default: the "
+                        "design's design.lit_from, else the side the library was computed for)")
     p.add_argument("--bias-nm", type=float, default=None,
                    help="process bias per edge written into the mask (default: the design's, else 0)")
-    p.add_argument("--bias-response", choices=("as-written", "nominal"), default="as-written",
+    p.add_argument("--bias-response", choices=("as-written", "nominal"), default=None,
                    help="responses of a biased mask: each cell at the size as written, solved by metalay's RCWA "
-                        "when the library has no such cell (default), or 'nominal' (assume the process removes "
-                        "the bias exactly)")
+                        "when the library has no such cell ('as-written'), or 'nominal' (assume the process "
+                        "removes the bias exactly); default: the design's checks.bias_response, else as-written")
     p.add_argument("--bias-harmonics", type=int, default=None, metavar="N",
-                   help="truncation (orders per axis) of the biased-cell solves (default: the library's recorded "
-                        "truncation at each wavelength)")
+                   help="truncation (orders per axis) of the biased-cell solves (default: the design's "
+                        "checks.bias_harmonics, else the library's recorded truncation at each wavelength)")
     p.add_argument("--cell-cache", type=Path, default=None, metavar="DIR",
-                   help="folder that keeps solved biased cells between runs (default: none)")
+                   help="folder that keeps solved biased cells between runs (default: the design's "
+                        "checks.cell_cache, else none)")
     p.add_argument("--size-tol-nm", type=float, default=3.0, help="size tolerance for matching library cells")
     p.add_argument("--unmatched", choices=("error", "nearest", "drop"), default="error",
                    help="elements matching no cell: stop, use the nearest cell, or leave the site empty")
@@ -71,9 +75,10 @@ def run(args) -> int:
         raise MetalayError(f"{args.mask}: mask file not found")
     design = None
     if args.design is not None:
+        from metalay.api import prepare_design
         from metalay.design.spec import load_design
 
-        design = load_design(args.design)
+        design = prepare_design(load_design(args.design))[0]  # the target as compile wrote it
     library = args.library or (design.library if design is not None else None)
     if library is None:
         raise MetalayError("command line: give --library (or --design, whose library is then used)")
@@ -81,13 +86,15 @@ def run(args) -> int:
     options = OpticsOptions(wavelength_nm=args.wavelength_nm, polarization=args.polarization, bias_nm=args.bias_nm,
                             size_tol_nm=args.size_tol_nm, unmatched=args.unmatched, pad_factor=args.pad_factor,
                             max_side=args.max_side, make_plots=not args.no_plots,
-                            log_far_field=not args.linear_scale, bias_response=args.bias_response,
+                            log_far_field=not args.linear_scale, lit_from=args.lit_from,
+                            bias_response=args.bias_response,
                             bias_harmonics=None if args.bias_harmonics is None else (args.bias_harmonics,) * 2,
                             cell_cache=None if args.cell_cache is None else str(args.cell_cache))
     res = check_optics(args.mask, library, design=design, out_dir=out, options=options)
     if not args.quiet:
         f = res.figures
         b = f["power_budget"]
+        print(f"illumination: {f['illumination']['in_words']} ({f['illumination']['chosen_by']})")
         print(f"sites decoded: {f['decode']['sites']:,} (unmatched {f['decode']['unmatched']}, off-lattice "
               f"{f['decode']['off_lattice']}, duplicates {f['decode']['duplicates']})")
         print(f"power: converted {b['converted']:.4f}, leakage {b['leakage']:.4f}, not in zeroth order "
@@ -101,14 +108,19 @@ def run(args) -> int:
             print(f"OAM purity of l = {f['oam']['design_charge']}: {f['oam']['purity']:.5f}")
         if "fringe_reading" in f:
             r = f["fringe_reading"]
-            print(f"charge read from the interferogram: {r['charge']} (design {r['design_charge']})")
+            read = r["charge"] if r["status"] == "read" else "unreadable (the loops disagree)"
+            print(f"charge read from the interferogram: {read} (design {r['design_charge']})")
         if "crosstalk" in f:
-            print(f"worst channel isolation: {f['crosstalk']['worst_isolation_db']:.2f} dB")
+            ct = f["crosstalk"]
+            print(f"worst channel isolation: {ct['worst_isolation_db']:.2f} dB, channel powers within "
+                  f"{ct['power_spread_db']:.2f} dB ({ct['method']})")
         if "lens" in f:
             lm = f["lens"]
             strehl = "n/a" if lm["strehl"] is None else f"{lm['strehl']:.4f}"
             print(f"focal spot FWHM {lm['fwhm_x_um']:.3f} x {lm['fwhm_y_um']:.3f} um (Airy {lm['fwhm_airy_um']:.3f}), "
                   f"Strehl {strehl}, focusing efficiency {lm['focusing_efficiency']:.4f}")
+        v = f["verdicts"]
+        print(f"verdict: {v['verdict'].upper()} ({v['summary']})")
         for note in res.notes:
             print(f"note: {note}")
         t = res.timings
