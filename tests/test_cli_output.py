@@ -165,16 +165,30 @@ def test_format_md_documents_the_template():
 
 
 def test_tolerance_refuses_cd_bias_up_front(tmp_path):
-    """The bundled 532 nm fin library holds one fin size: a CD-bias study cannot interpolate responses. The refusal
-    comes before the compile (no mask folder is made) and names the option and why."""
-    path = _design(tmp_path, "t-tol")
+    """A library imported from elsewhere with one fin size and no recorded solver truncation: CD bias can neither be
+    interpolated between sizes nor re-solved. The refusal comes before the compile (no output folder is made) and
+    names the option and why, in one line."""
+    from metalay.cells.cellbuild import import_responses, import_template
+    from metalay.cells.library import save_library
+
+    meta, csv = import_template(tmp_path / "tpl")
+    with csv.open("a") as fh:  # invented passive responses of the template's one cell
+        fh.write("fin-270x70,520,0.6,0.5,-0.6,0.4,0.95,0.95\nfin-270x70,540,0.6,0.45,-0.62,0.4,0.95,0.95\n")
+    lib_json = [p for p in save_library(import_responses(csv, meta), tmp_path / "lib")
+                if p.name.endswith(".library.json")][0]
+    path = _design(tmp_path, "t-tol", **{"design.library": str(lib_json)})
     t0 = time.perf_counter()
     proc = _run("tolerance", path, "--cd-bias-nm", "0", "2", "--samples", "4", "-o", tmp_path / "tol")
     assert time.perf_counter() - t0 < 60
-    assert proc.returncode == 2
-    err = [line for line in proc.stderr.splitlines() if line.startswith("metalay: error:")]
-    assert len(err) == 1 and "cd_bias" in err[0] and "--cd-bias-nm" in err[0] and "several sizes" in err[0]
+    assert proc.returncode == 2, proc.stderr
+    err = [line for line in proc.stderr.splitlines() if line.strip()]
+    assert len(err) == 1 and err[0].startswith("metalay: error:")
+    assert "cd_bias" in err[0] and "--cd-bias-nm" in err[0] and "truncation" in err[0]
     assert not (tmp_path / "tol").exists()
+    ok = _run("tolerance", path, "--cd-bias-nm", "0", "2", "--cd-response", "nominal", "--samples", "2",
+              "--no-plots", "-o", tmp_path / "tol2", "--json")
+    assert ok.returncode == 0, ok.stderr
+    assert any("CD bias not evaluated" in n for n in json.loads(ok.stdout)["notes"])
 
 
 def test_slm_beam_scaling_raises_efficiency_on_a_15_mm_panel(tmp_path):
