@@ -248,3 +248,11 @@ def test_compare_bundled_libraries(tmp_path):
         assert row["converted"] == ref["power_budget"]["converted"]
         assert row["designed_spot_efficiency"] == ref["designed_spot_efficiency"]
         assert row["purity"] == ref["oam"]["purity"]
+
+
+def test_tolerance_result_prints_readably(setup):
+    st = study.ToleranceSettings(samples=3, rotation_sd_deg=2.0, seed=3)
+    res = study.tolerance_study(setup["design"], settings=st, mask=setup["mask"], workers=1)
+    text = str(res)
+    assert text.startswith("tolerance study: 3 samples, seed 3") and "purity" in text
+    assert repr(res).startswith("ToleranceResult(samples=3") and len(repr(res)) < 400

@@ -530,6 +530,17 @@ class CompareResult:
     files: dict
     notes: tuple
 
+    def __str__(self) -> str:
+        lines = [f"library comparison of {len(self.rows)} libraries (fractions of the incident power):"]
+        for r in self.rows:
+            conv, pur = r.get("converted"), r.get("purity")
+            lines.append(f"  {r.get('library')}: converted {'-' if conv is None else f'{conv:.4f}'}, purity "
+                         f"{'-' if pur is None else f'{pur:.4f}'}, rule violations {r.get('rule_violations')}")
+        return "\n".join(lines)
+
+    def __repr__(self) -> str:
+        return f"CompareResult(libraries={[r.get('library') for r in self.rows]}, files={sorted(self.files)})"
+
 
 COMPARE_COLUMNS = ("library", "mode", "phase_mechanism", "wavelength_nm", "period_nm", "converted", "leakage",
                    "not_in_zeroth_order", "designed_spot_efficiency", "designed_mode_efficiency", "purity",
@@ -888,6 +899,21 @@ class ToleranceResult:
     files: dict
     notes: tuple
     settings: ToleranceSettings
+
+    def __str__(self) -> str:
+        lines = [f"tolerance study: {len(self.samples)} samples, seed {self.settings.seed}; figure: nominal, median "
+                 "[5th, 95th percentile]"]
+        for key, st in self.statistics.items():
+            if st is not None:
+                nom = self.nominal.get(key)
+                nom = f"{nom:.4f}" if isinstance(nom, float) else str(nom)
+                lines.append(f"  {key}: {nom}, {st['median']:.4f} [{st['p5']:.4f}, {st['p95']:.4f}]")
+        lines += [f"  note: {n}" for n in self.notes]
+        return "\n".join(lines)
+
+    def __repr__(self) -> str:
+        figures = sorted(k for k, v in self.statistics.items() if v)
+        return f"ToleranceResult(samples={len(self.samples)}, figures={figures}, files={sorted(self.files)})"
 
 
 _KIND_UNITS = {"cd_bias": ("cd_bias_sd_nm", "nm (sd of CD bias per edge)"),
