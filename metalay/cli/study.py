@@ -156,6 +156,10 @@ def _run_tolerance(args) -> int:
     for key, st in res.statistics.items():
         if st is None:
             continue
+        if "counts" in st:
+            counts = ", ".join(f"{k}: {n}" for k, n in st["counts"].items())
+            print(f"  {key:<26} {_fmt(res.nominal.get(key))}  samples by value: {counts}")
+            continue
         print(f"  {key:<26} {_fmt(res.nominal.get(key))}  {st['median']:.4f}  [{st['p5']:.4f}, {st['p95']:.4f}]")
     for kind, t in res.thresholds.items():
         if t["tolerance"] is None:
