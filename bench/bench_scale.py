@@ -74,11 +74,12 @@ def _child(design_path: str, out: str, workers: int) -> dict:
     except MetalayError as exc:
         return {"refused": str(exc).split(": ", 1)[-1][:160]}
     seconds = time.perf_counter() - t0
-    self_kb = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
-    child_kb = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss
+    own, kids = resource.getrusage(resource.RUSAGE_SELF), resource.getrusage(resource.RUSAGE_CHILDREN)
+    self_kb, child_kb = own.ru_maxrss, kids.ru_maxrss
+    cpu_s = own.ru_utime + own.ru_stime + kids.ru_utime + kids.ru_stime  # includes imports (~1 s)
     files = {k: v["bytes"] for k, v in res.manifest["files"].items()}
     timings = json.loads((Path(out) / "timings.json").read_text())
-    return {"sites": res.manifest["counts"]["sites"], "seconds": seconds, "peak_mb": self_kb / 1024,
+    return {"sites": res.manifest["counts"]["sites"], "seconds": seconds, "cpu_s": cpu_s, "peak_mb": self_kb / 1024,
             "worker_peak_mb": child_kb / 1024 if workers else None, "files": files,
             "write_s": timings.get("layout_and_write_s"), "verdict": res.manifest["verdicts"]["overall"]}
 
@@ -128,7 +129,8 @@ def main() -> int:
         return 0
     cases = [c for c in (args.cases or CASES) if c != "oas workers" or args.workers]
     results = []
-    print(f"{'sites':>9} {'case':<12} {'s':>8} {'peak MB':>8} {'GDSII MB':>9} {'OASIS MB':>9} {'B/site':>7}  note")
+    print(f"{'sites':>9} {'case':<12} {'s':>8} {'cpu s':>8} {'peak MB':>8} {'GDSII MB':>9} {'OASIS MB':>9} "
+          f"{'B/site':>7}  note")
     with tempfile.TemporaryDirectory(dir=ROOT / "out" if (ROOT / "out").is_dir() else None) as tmp:
         for n in args.sites:
             for case in cases:
@@ -142,7 +144,8 @@ def main() -> int:
                 note = r.get("refused") or r.get("error") or (
                     f"workers peak {r['worker_peak_mb']:.0f} MB" if r.get("worker_peak_mb") else "")
                 print(f"{r.get('sites', n):>9.3g} {case:<12} {r.get('seconds', float('nan')):>8.2f} "
-                      f"{r.get('peak_mb', float('nan')):>8.0f} {f.get('gds', 0) / 1e6:>9.1f} "
+                      f"{r.get('cpu_s', float('nan')):>8.1f} {r.get('peak_mb', float('nan')):>8.0f} "
+                      f"{f.get('gds', 0) / 1e6:>9.1f} "
                       f"{f.get('oas', 0) / 1e6:>9.2f} {per:>7.2f}  {note}", flush=True)
     print("\nratios (same size, same run): OASIS / GDSII")
     for n in args.sites:

@@ -43,6 +43,7 @@ from pathlib import Path
 
 import numpy as np
 
+from metalay.errors import OutputError
 from metalay.io.oasis_write import (
     EncodedRecords,
     OasisStream,
@@ -289,7 +290,9 @@ class MaskSink:
                     OasisStream(self.paths["oas"], name, db_unit_nm=db, compression_level=self.plan.oas_level))
                 if self.plan.mode == "levels":
                     for v in range(self.rotation_levels):  # fixed reference numbers: 1 + level
-                        assert oas.refnum(master_name(name, v)) == 1 + v
+                        if oas.refnum(master_name(name, v)) != 1 + v:
+                            raise OutputError(f"{self.paths['oas']}: cell name {master_name(name, v)!r} is "
+                                              "taken (rotation-level masters need their own names)")
         except BaseException:
             self._stack.close()
             raise

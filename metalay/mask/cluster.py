@@ -62,7 +62,11 @@ class _ComplementSummary:
 
 
 def _write_part(path: Path, parts: list[Part]) -> list[tuple]:
-    """Write the parts of one tile to ``path`` (temporary name, fsync, rename); return their index."""
+    """Write the parts of one tile to ``path`` (temporary name, then rename); return their index.
+
+    No fsync: a part lives only until the merge reads it in the same run (a crash loses the whole unpublished
+    staging folder anyway); the rename is what keeps a retried task from leaving half a part.
+    """
     index = []
     tmp = path.with_name(f"{path.name}.{uuid.uuid4().hex}.tmp")
     try:
@@ -73,8 +77,6 @@ def _write_part(path: Path, parts: list[Part]) -> list[tuple]:
                 fh.write(view)
                 index.append((p.target, p.cell, off, view.nbytes, p.elements, p.placements, p.placed))
                 off += view.nbytes
-            fh.flush()
-            os.fsync(fh.fileno())
         os.replace(tmp, path)
     finally:
         tmp.unlink(missing_ok=True)

@@ -889,6 +889,11 @@ def _run_tiles(tiles, ctx: _TileContext, fn=_tile):
 #: Every output (flat or hierarchical GDSII, OASIS) is streamed tile by tile (measured 20.5 virtual, 27.0
 #: resident for flat GDSII; the OASIS and hierarchical outputs keep nothing per site past their tile):
 LAYOUT_BYTES_PER_SITE = 30
+#: ... up to this many sites: past it the layout's peak stops growing (nothing is held per site past its tile; the
+#: slope above is tiles coming into flight and the allocator's arenas filling). ``bench/bench_scale.py`` measured
+#: the peak resident memory of a flat-GDSII compile at 176 MB (1e6 sites), 239 MB (1e7) and 275 MB (1e8), and of
+#: an OASIS compile at 168, 179 and 186 MB: below 460 MB + 30 B x 1e7 = 760 MB at every size.
+LAYOUT_PLATEAU_SITES = 10_000_000
 #: What a compile needs whatever its size: interpreter and libraries loaded later (plots), tiles in flight (about
 #: 3 x 250,000 sites), thread stacks and allocator arenas (largest intercept measured: 452 MB).
 COMPILE_FIXED_BYTES = 460_000_000
@@ -904,16 +909,18 @@ def compile_memory_bytes(sites: float, *, check_bytes_per_site: float = 0.0) -> 
     """Estimated peak memory of a compile of ``sites`` lattice sites, per stage and in total (bytes).
 
     The stages run one after another and freed memory is reused, so the peak is the largest of them:
-    ``fixed + sites x max(layout, checks)`` with layout 30 B (every output format streamed tile by tile) and checks
-    the largest :attr:`~metalay.mask.steps.MaskCheck.bytes_per_site` of the enabled checks (design rules 300 B,
-    optics 220 B). Constants measured by ``bench/bench_admission.py``.
+    ``fixed + max(layout, checks)`` with layout 30 B per site up to 1e7 sites and constant beyond (every output
+    format is streamed tile by tile; :data:`LAYOUT_PLATEAU_SITES`) and checks the largest
+    :attr:`~metalay.mask.steps.MaskCheck.bytes_per_site` of the enabled checks times the sites (design rules
+    300 B, optics 220 B). Constants measured by ``bench/bench_admission.py`` and ``bench/bench_scale.py``.
 
     Returns
     -------
     dict
         ``layout``, ``checks``, ``fixed`` and ``total`` in bytes.
     """
-    parts = {"layout": LAYOUT_BYTES_PER_SITE * sites, "checks": float(check_bytes_per_site) * sites,
+    parts = {"layout": LAYOUT_BYTES_PER_SITE * min(sites, LAYOUT_PLATEAU_SITES),
+             "checks": float(check_bytes_per_site) * sites,
              "fixed": float(COMPILE_FIXED_BYTES)}
     parts["total"] = parts["fixed"] + max(parts["layout"], parts["checks"])
     return {k: int(v) for k, v in parts.items()}
