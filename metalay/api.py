@@ -46,7 +46,8 @@ def prepare_design(design: Design) -> tuple[Design, dict]:
 
 def compile_design(design: Design, out_dir: str | Path, *, run_rules: bool | None = None,
                    run_optics: bool | None = None, show_progress: bool | None = None,
-                   sites_per_tile: int = SITES_PER_TILE, max_memory_bytes: int | None = None) -> CompileResult:
+                   sites_per_tile: int = SITES_PER_TILE, max_memory_bytes: int | None = None,
+                   workers: int | None = None, scheduler: str | None = None) -> CompileResult:
     """Compile ``design`` into mask files, a manifest and the standard checks in ``out_dir`` (all or nothing).
 
     Parameters
@@ -63,6 +64,10 @@ def compile_design(design: Design, out_dir: str | Path, *, run_rules: bool | Non
         Tile size bound (memory).
     max_memory_bytes : int, optional
         Memory budget for the admission check (default: half of what this process may use).
+    workers : int, optional
+        Run the tiles on a local Dask cluster of this many worker processes (byte-identical output).
+    scheduler : str, optional
+        Run the tiles on the existing Dask cluster at this address (its workers must see ``out_dir``).
 
     Returns
     -------
@@ -72,4 +77,4 @@ def compile_design(design: Design, out_dir: str | Path, *, run_rules: bool | Non
     design, annotations = prepare_design(design)
     return compile_mask(design, out_dir, checks=default_checks(rules=run_rules, optics=run_optics),
                         show_progress=show_progress, sites_per_tile=sites_per_tile, annotations=annotations,
-                        max_memory_bytes=max_memory_bytes)
+                        max_memory_bytes=max_memory_bytes, workers=workers, scheduler=scheduler)

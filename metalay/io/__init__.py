@@ -1,11 +1,11 @@
-"""Mask files in and out: reading any GDSII/OASIS into flat arrays, writing GDSII (and OASIS through gdstk).
+"""Mask files in and out: reading any GDSII/OASIS into flat arrays, writing GDSII and OASIS as streams.
 
 =============  ===========================================================================  =====================
 module         stage                                                                        public entry
 =============  ===========================================================================  =====================
 ``gdsread.py`` GDSII (vectorised record walk, references resolved, hostile input bounded)   ``read_mask``,
                or OASIS -> ``FlatPolygons``; the database unit becomes ``db_unit_nm`` here   ``mask_info``
-``writer.py``  own streaming flat-GDSII writer; gdstk builders for OASIS and hierarchy      ``GdsStream``,
+``writer.py``  own streaming GDSII writer (cells spooled); gdstk builders (bench baseline)  ``GdsStream``,
                                                                                             ``boundary_records``
 ``oasis_read.py``  OASIS -> flat polygon arrays with an own parser (no C extension), every     ``read_oasis``,
                    count checked before anything is expanded                                ``parse_oasis``

@@ -11,8 +11,11 @@ module           stage                                                          
                                                                                           ``fit_write_fields``
 ``steps.py``     what a compile hands to its checks                                       ``MaskCheck``,
                                                                                           ``WrittenMask``
-``compile.py``   the pipeline tile by tile in named stages (plan, tiles, gdstk formats,   ``compile_mask``
-                 checks handed in, manifest)
+``compile.py``   the pipeline tile by tile in named stages (plan, tiles written as they    ``compile_mask``
+                 come, checks handed in, manifest)
+``_emit.py``     one tile -> encoded GDSII/OASIS parts (flat, levels, fields, tone);      (internal)
+                 the sink that writes them in tile order
+``cluster.py``   the tiles as tasks on a Dask cluster, parts merged in order              ``tile_runner``
 ===============  =======================================================================  ========================
 
 Imports: design, cells, io, util. Never the checks: :func:`compile_mask` receives them as ``MaskCheck`` steps
