@@ -37,7 +37,7 @@ from pathlib import Path
 
 import numpy as np
 
-from metalay.checks.rules import (_KIND, MAX_PAIRS, RuleReport, RuleResult, RuleSet, Violations, _check_layer)
+from metalay.checks.rules import _KIND, MAX_PAIRS, RuleReport, RuleResult, RuleSet, Violations, _check_layer
 from metalay.errors import MaskReadError, RulesError
 from metalay.io.gdsread import DEFAULT_MAX_ELEMENTS, FlatPolygons, file_sha256
 from metalay.util.budget import memory_budget

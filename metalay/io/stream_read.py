@@ -22,11 +22,22 @@ from collections.abc import Iterator
 import numpy as np
 
 from metalay.errors import MaskReadError
-from metalay.io.gdsread import (DEFAULT_MAX_DEPTH, DEFAULT_MAX_ELEMENTS, DEFAULT_MAX_VERTICES, FlatPolygons,
-                                _cell_geometry, _decode_run, _err, _flat_sizes, _nm_from_m, _parse, _placements,
-                                _topology)
+from metalay.io.gdsread import (
+    DEFAULT_MAX_DEPTH,
+    DEFAULT_MAX_ELEMENTS,
+    DEFAULT_MAX_VERTICES,
+    FlatPolygons,
+    _cell_geometry,
+    _decode_run,
+    _err,
+    _flat_sizes,
+    _nm_from_m,
+    _parse,
+    _placements,
+    _topology,
+)
 
-__all__ = ["iter_mask_chunks", "DEFAULT_CHUNK_POLYGONS"]
+__all__ = ["iter_mask_chunks", "count_polygons", "DEFAULT_CHUNK_POLYGONS"]
 
 DEFAULT_CHUNK_POLYGONS = 1 << 18
 """Polygons per yielded chunk (about 20 MB of 4-vertex polygons with their int64 vertices)."""
@@ -120,3 +131,23 @@ def iter_mask_chunks(path, *, layers=None, cell: str | None = None, max_elements
                 mm.close()
             except BufferError:
                 pass  # a chunk still views the mapping; it closes when collected
+
+
+def count_polygons(path, *, layers=None, cell: str | None = None, max_elements: int = DEFAULT_MAX_ELEMENTS,
+                   max_vertices: int = DEFAULT_MAX_VERTICES, max_depth: int = DEFAULT_MAX_DEPTH) -> tuple[int, int]:
+    """Flattened (polygons, vertices) of a mask on ``layers``, counted without flattening (the walk only).
+
+    Lets a check choose between the whole-mask and the streamed method before reading any geometry.
+    """
+    lib, mm = _parse(path, layers, max_elements, max_vertices, None)
+    try:
+        tops, order = _topology(lib, cell, max_depth)
+        sizes = _flat_sizes(lib, order)
+        return sum(sizes[t][0] for t in tops), sum(sizes[t][1] for t in tops)
+    finally:
+        lib.buf = None
+        if mm is not None:
+            try:
+                mm.close()
+            except BufferError:
+                pass
