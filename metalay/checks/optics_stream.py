@@ -17,8 +17,9 @@ evaluated by FFT of the zero-padded block grid at ``u = wavelength m / (N B)`` (
 
 Error bound (derived here). Each site's term differs by ``f_s exp(-i k X_b.u) (exp(-i phi_s) - 1 [+ i phi_s])``
 with ``phi_s = k (dx_s u + dy_s v)``, ``|dx_s| <= dx, |dy_s| <= dy`` (the largest offsets met, at most ``B/2``),
-so ``|phi_s| <= phi(u, v) = k (dx |u| + dy |v|) <= pi B (|u| + |v|) / wavelength``. With ``|exp(-i phi) - 1| <= min(|phi|, 2)`` and ``|exp(-i phi) - 1 + i phi| <= phi^2 / 2`` (Taylor
-remainder of the exponential)::
+so ``|phi_s| <= phi(u, v) = k (dx |u| + dy |v|) <= pi B (|u| + |v|) / wavelength``. With
+``|exp(-i phi) - 1| <= min(|phi|, 2)`` and ``|exp(-i phi) - 1 + i phi| <= phi^2 / 2`` (Taylor remainder of the
+exponential)::
 
     |E_B(u, v) - E(u, v)| <= A * min(phi, 2)    (order 0)        A = sum_s |f_s|
     |E_B(u, v) - E(u, v)| <= A * phi^2 / 2      (order 1)
