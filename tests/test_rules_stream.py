@@ -170,11 +170,12 @@ def test_compile_steps_stream_when_the_whole_check_does_not_fit(tmp_path):
     import json
     from dataclasses import replace
 
-    from conftest import SMALL_DESIGN, write_toml
     from metalay.api import compile_design
     from metalay.checks.steps import run_optics_on_written, run_rules_on_written
     from metalay.design.spec import load_design
     from metalay.mask.steps import WrittenMask
+
+    from conftest import SMALL_DESIGN, write_toml
 
     data = dict(SMALL_DESIGN, mask={"formats": ["gds"]})
     design = load_design(write_toml(tmp_path / "d.toml", data))

@@ -12,8 +12,10 @@ Far field (Fraunhofer; time dependence ``exp(-i omega t)``), in direction cosine
     E(u, v)     = sum_s f_s exp(-i k (x_s u + y_s v)),                 k = 2 pi / wavelength   (the site sum)
     E_B(u, v)   = sum_b exp(-i k X_b . u) [S_b - i k (u Mx_b + v My_b)]                     (order 1; order 0: S_b)
 
-evaluated by FFT of the zero-padded block grid at ``u = wavelength m / (N B)`` (exact samples of ``E_B``; valid for
-``|u|, |v| < wavelength / (2 B)``).
+evaluated by a matrix DFT of the block grid on a small window of directions about each measured spot (steps
+``wavelength / (pad x grid extent)``, as a padded FFT would sample). Each spot has its own accumulator whose sites
+are demodulated by the spot's direction ``(u_c, v_c)`` (``f_s exp(-i k (u_c x_s + v_c y_s))``), so ``u`` below is
+measured from the spot and the block side is limited by the lobe's width, not by the deflection angle.
 
 Error bound (derived here). Each site's term differs by ``f_s exp(-i k X_b.u) (exp(-i phi_s) - 1 [+ i phi_s])``
 with ``phi_s = k (dx_s u + dy_s v)``, ``|dx_s| <= dx, |dy_s| <= dy`` (the largest offsets met, at most ``B/2``),
@@ -44,7 +46,6 @@ import time
 from dataclasses import dataclass, field
 
 import numpy as np
-import scipy.fft
 
 from metalay.checks.optics import (
     SAFETY_NOTE,
@@ -74,12 +75,12 @@ _FP_ALLOWANCE = 1e-12
 
 @dataclass(frozen=True, eq=False)
 class BlockFarField:
-    """Far field of block sums with its error bound against the exact site sum.
+    """Far field of block sums on a window of directions, with its error bound against the exact site sum.
 
     Attributes
     ----------
     u, v : ndarray (nu,), (nv,)
-        Direction cosines of the samples (ascending; zero at ``[nv // 2, nu // 2]``).
+        Direction cosines of the samples (ascending, the window's centre in the middle).
     field : ndarray (nv, nu) complex128
         ``E_B(u, v)`` in units of one cell's field amplitude.
     bound : ndarray (nv, nu) float64
@@ -93,6 +94,8 @@ class BlockFarField:
     wavelength_nm : float
     reach_um : (float, float)
         Largest offsets ``(dx, dy)`` of a site from its block centre (``<= B/2``), used by the bound.
+    carrier : (float, float)
+        Direction the sites were demodulated by; the bound grows with the distance from it.
     """
 
     u: np.ndarray
@@ -104,6 +107,7 @@ class BlockFarField:
     order: int
     wavelength_nm: float
     reach_um: tuple = (0.0, 0.0)
+    carrier: tuple = (0.0, 0.0)
 
     @property
     def du(self) -> float:
@@ -145,6 +149,7 @@ class FarFieldAccumulator:
     sites: int = 0
     reach_x_um: float = 0.0  # largest |x_s - X_b| seen (<= B/2)
     reach_y_um: float = 0.0
+    carrier: tuple = (0.0, 0.0)  # (u_c, v_c): sites are demodulated by exp(-i k (u_c x + v_c y))
 
     def __post_init__(self):
         if self.order not in (0, 1):
@@ -177,6 +182,9 @@ class FarFieldAccumulator:
         ny, nx = self.grids[0].shape
         idx = (by - self.iy0) * nx + (bx - self.ix0)
         f = np.asarray(f, np.complex128)
+        if self.carrier != (0.0, 0.0):
+            k = 2 * np.pi / (self.wavelength_nm * 1e-3)
+            f = f * np.exp(-1j * k * (self.carrier[0] * x_um + self.carrier[1] * y_um))
         weights = [f]
         dx, dy = x_um - bx * b, y_um - by * b
         self.reach_x_um = max(self.reach_x_um, float(np.abs(dx).max()))
@@ -190,8 +198,16 @@ class FarFieldAccumulator:
         self.amplitude_sum += float(np.abs(f).sum())
         self.sites += int(f.size)
 
-    def far_field(self, *, pad_factor: float = 2.0, cell_um: tuple | None = None, workers: int = 2) -> BlockFarField:
-        """``E_B`` at the FFT samples of the zero-padded grid, with the per-sample bound.
+    @property
+    def extent_um(self) -> tuple[float, float]:
+        """Width and height of the block grid (``nx B``, ``ny B``)."""
+        ny, nx = self.grids[0].shape
+        return nx * self.block_um, ny * self.block_um
+
+    def window(self, u0: float, v0: float, du: float, dv: float, half: int, *,
+               cell_um: tuple | None = None) -> BlockFarField:
+        """``E_B`` on a ``(2 half + 1)^2`` window of directions about ``(u0, v0)`` (steps ``du``, ``dv``), by a
+        matrix DFT of the block grid (no FFT padding), with the per-sample bound.
 
         ``cell_um = (wx, wy)``: multiply field and bound by the cell-aperture factor ``sinc(wx u / wavelength)
         sinc(wy v / wavelength)`` of a uniformly filled ``wx x wy`` cell (as the whole-mask check does; ``|factor|
@@ -201,29 +217,27 @@ class FarFieldAccumulator:
             raise MetalayError("optics: the mask has no decoded structures to illuminate")
         ny, nx = self.grids[0].shape
         b, lam_um = self.block_um, self.wavelength_nm * 1e-3
-        n_x = scipy.fft.next_fast_len(max(2, int(math.ceil(nx * pad_factor))))
-        n_y = scipy.fft.next_fast_len(max(2, int(math.ceil(ny * pad_factor))))
-        u = lam_um * (np.arange(n_x) - n_x // 2) / (n_x * b)
-        v = lam_um * (np.arange(n_y) - n_y // 2) / (n_y * b)
-        # first block centre X0 = ix0 B: phase exp(-i k X0 u) of the grid origin
-        sx = np.exp(-2j * np.pi * self.ix0 * b * u / lam_um)
-        sy = np.exp(-2j * np.pi * self.iy0 * b * v / lam_um)
+        k = 2 * np.pi / lam_um
+        u = u0 + du * np.arange(-half, half + 1)
+        v = v0 + dv * np.arange(-half, half + 1)
+        up, vp = u - self.carrier[0], v - self.carrier[1]  # directions relative to the carrier
+        ax = np.exp(-1j * k * np.outer((self.ix0 + np.arange(nx)) * b, up))  # (nx, nu)
+        ay = np.exp(-1j * k * np.outer(vp, (self.iy0 + np.arange(ny)) * b))  # (nv, ny)
 
-        def ft(g):
-            return scipy.fft.fftshift(scipy.fft.fft2(g, s=(n_y, n_x), workers=workers)) * sy[:, None] * sx[None, :]
+        def dft(g):
+            return ay @ g @ ax
 
-        e = ft(self.grids[0])
+        e = dft(self.grids[0])
         if self.order == 1:
-            k = 2 * np.pi / lam_um
-            e -= 1j * k * (u[None, :] * ft(self.grids[1]) + v[:, None] * ft(self.grids[2]))
-        bound = phase_bound(u[None, :], v[:, None], self.reach_x_um, self.reach_y_um, self.wavelength_nm,
+            e -= 1j * k * (up[None, :] * dft(self.grids[1]) + vp[:, None] * dft(self.grids[2]))
+        bound = phase_bound(up[None, :], vp[:, None], self.reach_x_um, self.reach_y_um, self.wavelength_nm,
                             self.order, self.amplitude_sum)
         if cell_um is not None:
-            factor = np.abs(np.outer(np.sinc(cell_um[1] * v / lam_um), np.sinc(cell_um[0] * u / lam_um)))
-            e *= np.outer(np.sinc(cell_um[1] * v / lam_um), np.sinc(cell_um[0] * u / lam_um))
-            bound = bound * factor
+            factor = np.outer(np.sinc(cell_um[1] * v / lam_um), np.sinc(cell_um[0] * u / lam_um))
+            e *= factor
+            bound = bound * np.abs(factor)
         return BlockFarField(u, v, e, bound, self.amplitude_sum, b, self.order, self.wavelength_nm,
-                             (self.reach_x_um, self.reach_y_um))
+                             (self.reach_x_um, self.reach_y_um), tuple(self.carrier))
 
 
 def disk_power(ff: BlockFarField, u0: float, v0: float, radius_u: float, norm: float) -> tuple[float, float]:
@@ -239,21 +253,22 @@ def block_size_for(period_nm: float, wavelength_nm: float, u_max: float, side_si
     """Block side (um, a whole number of periods) for a far field needed up to ``|u| + |v| <= u_max``.
 
     The largest block with ``phi(u_max) <= max_phase_rad`` (so the order-1 bound is at most
-    ``max_phase_rad^2 / 2`` of ``A``) and at least ``side_sites / max_side`` periods (a bounded grid).
+    ``max_phase_rad^2 / 2`` of ``A``), at most an eighth of the aperture, and at least ``side_sites / max_side``
+    periods (a grid of at most ``max_side`` blocks per side).
     """
     p_um = period_nm * 1e-3
     by_phase = max_phase_rad * wavelength_nm * 1e-3 / (math.pi * u_max) if u_max > 0 else math.inf
-    m = max(1, int(by_phase // p_um), int(math.ceil(side_sites / max_side)))
+    m = max(1, min(int(min(by_phase, 1e9) // p_um), int(side_sites // 8)), int(math.ceil(side_sites / max_side)))
     return m * p_um
 
 
 @dataclass(frozen=True, eq=False)
 class StreamedOptics:
-    """Result of :func:`check_optics_streamed`: JSON-ready figures (with the bound and the method), the far
-    field, notes and timings."""
+    """Result of :func:`check_optics_streamed`: JSON-ready figures (with the bound and the method), the far-field
+    window of each measured spot (name -> :class:`BlockFarField`), notes and timings."""
 
     figures: dict
-    far: BlockFarField
+    far: dict
     notes: tuple
     timings: dict
 
@@ -273,29 +288,27 @@ def _responses(lib, wl: float, bias_nm: float, notes: list):
     return np.asarray(t_long), np.asarray(t_short)
 
 
-def _stream_sites(chunks, lib, design, target, layer, bias_nm, facing, opt, acc: FarFieldAccumulator, where):
-    """Decode each chunk and add its sites; returns the exact power sums and the decode statistics."""
+def _stream_sites(chunks, lib, setup: dict, accs: dict, notes: list):
+    """Decode each chunk and add its sites to every accumulator; the exact power sums and decode statistics."""
     from metalay.checks.decode import decode_sites
 
-    notes: list = []
-    t_long, t_short = _responses(lib, target.wavelength_nm, bias_nm, notes)
-    period_nm = design.lattice.period_nm if design is not None else lib.period_nm
-    lattice = design.lattice.kind if design is not None else lib.lattice
-    jin = input_jones(opt.get("polarization", "design"), design_sigma=target.sigma)
+    target = setup["target"]
+    t_long, t_short = _responses(lib, target.wavelength_nm, setup["bias_nm"], notes)
+    jin = input_jones(setup["polarization"], design_sigma=target.sigma)
     sums = dict.fromkeys(("designed", "other", "converted", "leaked"), 0.0)
     stats = {"polygons": 0, "sites": 0, "unmatched": 0, "off_lattice": 0, "duplicates_within_chunks": 0,
              "max_size_error_nm": 0.0}
+    layer = tuple(setup["layer"])
     for ch in chunks:
-        on = (ch.layer == layer[0]) & (ch.datatype == layer[1])
-        if not on.any():
+        if not np.any((ch.layer == layer[0]) & (ch.datatype == layer[1])):
             continue
-        dec = decode_sites(ch, lib.cells, period_nm=period_nm, lattice=lattice, layer=tuple(layer),
-                           size_tol_nm=opt.get("size_tol_nm", 3.0), bias_nm=bias_nm,
-                           unmatched=opt.get("unmatched", "error"), where=where)
-        dec = beam_frame_sites(dec, facing)
+        dec = decode_sites(ch, lib.cells, period_nm=setup["period_nm"], lattice=setup["lattice"], layer=layer,
+                           bias_nm=setup["bias_nm"], where=setup["where"])
+        dec = beam_frame_sites(dec, setup["facing"])
         sf = site_fields(t_long[dec.cell], t_short[dec.cell], dec.rotation_rad, jin, sigma=target.sigma)
         x, y = site_xy(dec)
-        acc.add(x, y, sf.designed)
+        for acc in accs.values():
+            acc.add(x, y, sf.designed)
         for key, arr in (("designed", sf.designed), ("other", sf.other), ("converted", sf.converted)):
             sums[key] += float(np.sum(np.abs(arr.astype(np.complex128)) ** 2))
         sums["leaked"] += float(np.sum(sf.leaked_power, dtype=np.float64))
@@ -304,7 +317,7 @@ def _stream_sites(chunks, lib, design, target, layer, bias_nm, facing, opt, acc:
             stats[key] += int(st.get(key, 0))
         stats["duplicates_within_chunks"] += int(st.get("duplicates", 0))
         stats["max_size_error_nm"] = max(stats["max_size_error_nm"], float(st.get("max_size_error_nm", 0.0)))
-    return sums, stats, notes, period_nm, lattice
+    return sums, stats
 
 
 def _budget(sums: dict, n: int) -> dict:
@@ -316,13 +329,11 @@ def _budget(sums: dict, n: int) -> dict:
             "not_in_zeroth_order": max(0.0, 1.0 - (d + o) / n), "empty_cells": 0.0, "illuminated_cells": float(n)}
 
 
-def _u_max(target: OpticsTarget, radius_u: float) -> float:
-    """Largest ``|u| + |v|`` the figures need: the designed spot or channels, plus a lobe's reach."""
-    dirs = [target.direction] + [(c[1], c[2]) for c in target.channels]
-    reach = max(abs(u) + abs(v) for u, v in dirs)
-    if target.focal_length_um and target.aperture_diameter_um:
-        reach = max(reach, math.sin(math.atan(target.aperture_diameter_um / (2 * target.focal_length_um))))
-    return reach + 4 * radius_u
+def _lobe_radius(target: OpticsTarget, n: int, cell_area_um2: float) -> tuple[float, float]:
+    """Aperture-equivalent diameter (um) and lobe radius (direction cosines), as the whole-mask check takes them."""
+    diameter = 2 * math.sqrt(max(n, 1) * cell_area_um2 / math.pi)
+    lmax = max([abs(target.charge or 0)] + [abs(c[0]) for c in target.channels])
+    return diameter, (2.5 + 0.5 * lmax) * target.wavelength_nm * 1e-3 / diameter
 
 
 def _not_computed(target: OpticsTarget) -> list:
@@ -339,30 +350,48 @@ def _not_computed(target: OpticsTarget) -> list:
     return items
 
 
-def _spots(ff: BlockFarField, target: OpticsTarget, n: int, cell_area_um2: float, no_target: bool):
-    """Spot fractions of the incident power with their bounds; the lobe radius."""
-    lam_um = target.wavelength_nm * 1e-3
-    diameter = 2 * math.sqrt(n * cell_area_um2 / math.pi)
-    lmax = max([abs(target.charge or 0)] + [abs(c[0]) for c in target.channels])
-    radius_u = (2.5 + 0.5 * lmax) * lam_um / diameter
-    norm = ff.du * ff.dv * cell_area_um2 / (lam_um * lam_um * n)
-    centres = {} if no_target else spot_centres(target, radius_u)[0]
-    valid_u = lam_um / (2 * ff.block_um)
-    fractions, bounds = {}, {}
+def _spots(accs: dict, centres: dict, n: int, cell: tuple, radius_u: float, pad_factor: float):
+    """Each spot's window, its power as a fraction of the incident power, and the bound of that fraction."""
+    windows, fractions, bounds = {}, {}, {}
     for name, (u0, v0) in centres.items():
-        if max(abs(u0), abs(v0)) + radius_u >= valid_u:
-            raise MetalayError(f"optics (streamed): spot {name} at ({u0:.4f}, {v0:.4f}) lies beyond the block far "
-                               f"field's range |u| < {valid_u:.4f}; allowed: a block side below "
-                               f"{lam_um / (2 * (max(abs(u0), abs(v0)) + radius_u)):.3f} um")
+        acc = accs[name]
+        lam_um = acc.wavelength_nm * 1e-3
+        wx, wy = acc.extent_um
+        du, dv = lam_um / (pad_factor * wx), lam_um / (pad_factor * wy)
+        half = int(math.ceil(radius_u / min(du, dv))) + 2
+        ff = acc.window(u0, v0, du, dv, half, cell_um=cell)
+        norm = du * dv * cell[0] * cell[1] / (lam_um * lam_um * n)
+        windows[name] = ff
         fractions[name], bounds[name] = disk_power(ff, u0, v0, radius_u, norm)
-    total = float((np.abs(ff.field) ** 2).sum() * norm)
-    return fractions, bounds, total, radius_u, float(diameter)
+    return windows, fractions, bounds
+
+
+def _setup(mask_path, lib, design, target, layer, polarization):
+    """Layer, bias, target, side, lattice: everything the stream needs, from the design or the library."""
+    mask_settings = getattr(design, "mask", None)
+    if layer is None:
+        layer = mask_settings.layer("structures") if mask_settings is not None else (1, 0)
+    if getattr(mask_settings, "tone", "structures") != "structures":
+        raise MetalayError(f"{mask_path}: mask.tone = {mask_settings.tone!r}; the optical check reads structure "
+                           "polygons and supports tone 'structures' only")
+    no_target = target is None and design is None
+    if target is None:
+        target = (target_from_design(design) if design is not None
+                  else OpticsTarget(wavelength_nm=float(lib.design_wavelength_nm), charge=None))
+    period_nm = design.lattice.period_nm if design is not None else lib.period_nm
+    lattice = design.lattice.kind if design is not None else lib.lattice
+    p_um = period_nm * 1e-3
+    return {"layer": tuple(layer), "bias_nm": float(getattr(mask_settings, "bias_nm", 0.0) or 0.0),
+            "target": target, "no_target": no_target, "period_nm": period_nm, "lattice": lattice,
+            "facing": facing_of(design, lib, where=str(mask_path)), "polarization": polarization,
+            "where": str(mask_path),
+            "cell": (p_um, p_um) if lattice == "square" else (p_um, p_um * math.sqrt(3) / 2)}  # hexagonal: brick
 
 
 def check_optics_streamed(mask_path, library, *, design=None, target: OpticsTarget | None = None,
                           block_um: float | None = None, order: int = 1, pad_factor: float = 2.0,
                           polarization: str = "design", layer=None, chunk_polygons: int = 1 << 18,
-                          max_side: int = 4096, limits=None, workers: int = 2) -> StreamedOptics:
+                          max_side: int = 2048, limits=None) -> StreamedOptics:
     """Optical check of a mask of any size: far field accumulated tile by tile from block sums, bound stated.
 
     Parameters
@@ -376,104 +405,101 @@ def check_optics_streamed(mask_path, library, *, design=None, target: OpticsTarg
     target : OpticsTarget, optional
         Overrides what is derived from ``design``.
     block_um : float, optional
-        Block side ``B``; default :func:`block_size_for` (phase error at most 0.25 rad where the figures look,
-        grid side at most ``max_side`` blocks).
+        Block side ``B``; default :func:`block_size_for` (phase error at most 0.25 rad within four lobe radii of
+        each spot, at most ``max_side`` blocks per side).
     order : {0, 1}
         Block sums only, or with first moments (error second order in ``B``).
     pad_factor : float
-        Zero padding of the block grid before the FFT.
+        Far-field sampling: steps ``wavelength / (pad_factor x grid extent)`` (as zero padding by that factor).
     polarization : str
         Input polarisation (:func:`metalay.checks.optics.input_jones`).
     layer : (int, int), optional
         Structure layer/datatype (default the design's, else (1, 0)).
-    chunk_polygons, max_side, limits, workers
-        Chunk size of the read; largest block-grid side; verdict thresholds; FFT threads.
+    chunk_polygons, max_side, limits
+        Chunk size of the read; largest block-grid side; verdict thresholds.
 
     Returns
     -------
     StreamedOptics
-        ``figures`` carry ``method`` ("streamed block far field"), ``block`` (size, order, grid, valid range) and
+        ``figures`` carry ``method`` ("streamed block far field"), ``block`` (size, order, grid) and
         ``error_bound`` (formula and values), ``power_budget`` (exact sums), ``far_field`` spot fractions of the
         incident power with bounds, ``designed_spot_efficiency`` (and ``_bound``) and ``verdicts``; what the
         streamed check does not compute (OAM spectrum, fringes, crosstalk, lens) is an "unmeasured" verdict item.
+
+    Notes
+    -----
+    One accumulator per measured spot, its sites demodulated by the spot's direction ``(u_c, v_c)`` (multiplied
+    by ``exp(-i k (u_c x + v_c y))``), so the phase error that the bound grows with is measured from the spot,
+    not from the axis: a spot far off axis costs no finer blocks.
     """
     from metalay.cells.library import CellLibrary, load_library
-    from metalay.design.limits import worst_verdict
     from metalay.io.stream_read import count_polygons, iter_mask_chunks
 
     t_all = time.perf_counter()
     lib = library if isinstance(library, CellLibrary) else load_library(library)
-    mask_settings = getattr(design, "mask", None)
-    if layer is None:
-        layer = mask_settings.layer("structures") if mask_settings is not None else (1, 0)
-    if getattr(mask_settings, "tone", "structures") != "structures":
-        raise MetalayError(f"{mask_path}: mask.tone = {mask_settings.tone!r}; the optical check reads structure "
-                           "polygons and supports tone 'structures' only")
-    bias_nm = float(getattr(mask_settings, "bias_nm", 0.0) or 0.0)
-    no_target = target is None and design is None
-    if target is None:
-        target = (target_from_design(design) if design is not None
-                  else OpticsTarget(wavelength_nm=float(lib.design_wavelength_nm), charge=None))
-    facing = facing_of(design, lib, where=str(mask_path))
-    period_nm = design.lattice.period_nm if design is not None else lib.period_nm
-    n_poly, _ = count_polygons(mask_path, layers=[tuple(layer)])
+    st = _setup(mask_path, lib, design, target, layer, polarization)
+    target, cell = st["target"], st["cell"]
+    n_poly, _ = count_polygons(mask_path, layers=[st["layer"]])
+    _, radius0 = _lobe_radius(target, n_poly, cell[0] * cell[1])
+    centres = {} if st["no_target"] else spot_centres(target, radius0)[0]
     if block_um is None:
-        side = 2 * math.sqrt(max(n_poly, 1) / math.pi)
-        rough_radius = 3.0 * target.wavelength_nm * 1e-3 / max(side * period_nm * 1e-3, 1e-9)
-        block_um = block_size_for(period_nm, target.wavelength_nm, _u_max(target, rough_radius), side,
-                                  max_side=max_side)
-    acc = FarFieldAccumulator(float(block_um), target.wavelength_nm, order)
-    chunks = iter_mask_chunks(mask_path, layers=[tuple(layer)], chunk_polygons=chunk_polygons)
-    sums, stats, notes, period_nm, lattice = _stream_sites(
-        chunks, lib, design, target, layer, bias_nm, facing, {"polarization": polarization}, acc, str(mask_path))
+        block_um = block_size_for(st["period_nm"], target.wavelength_nm, 4 * radius0,
+                                  2 * math.sqrt(max(n_poly, 1) / math.pi), max_side=max_side)
+    accs = {name: FarFieldAccumulator(float(block_um), target.wavelength_nm, order, carrier=(float(u), float(v)))
+            for name, (u, v) in centres.items()}
+    notes: list = []
+    sums, stats = _stream_sites(iter_mask_chunks(mask_path, layers=[st["layer"]], chunk_polygons=chunk_polygons),
+                                lib, st, accs, notes)
     t_sites = time.perf_counter() - t_all
-    p_um = period_nm * 1e-3
-    cell = (p_um, p_um) if lattice == "square" else (p_um, p_um * math.sqrt(3) / 2)  # hexagonal: the brick
-    ff = acc.far_field(pad_factor=pad_factor, cell_um=cell, workers=workers)
     n = stats["sites"]
-    cell_area = cell[0] * cell[1]
-    fractions, bounds, total, radius_u, diameter = _spots(ff, target, n, cell_area, no_target)
-    figures = _streamed_figures(ff, target, sums, stats, n, fractions, bounds, total, radius_u, diameter,
-                                pad_factor, facing, polarization)
+    diameter, radius_u = _lobe_radius(target, n, cell[0] * cell[1])
+    windows, fractions, bounds = _spots(accs, centres, n, cell, radius_u, pad_factor)
+    figures = _streamed_figures(windows, target, sums, stats, n, fractions, bounds, radius_u, diameter,
+                                float(block_um), order, pad_factor, st)
     verdicts = optics_verdicts(json_ready(figures), limits if limits is not None else
                                getattr(getattr(design, "checks", None), "limits", None))
     extra = _not_computed(target)
     if extra:
+        from metalay.design.limits import worst_verdict
+
         verdicts["items"] += extra
         verdicts["verdict"] = worst_verdict(i["verdict"] for i in verdicts["items"])
         verdicts["summary"] = "; ".join(i["text"] for i in verdicts["items"])
     figures["verdicts"] = verdicts
-    notes += [f"illumination: {facing.describe()}",
-              f"streamed: {n:,} sites in chunks of {chunk_polygons:,} polygons; far field from {ff.block_um:.4g} um "
-              f"block sums (order {order}); empty illuminated cells are not counted (elements only); duplicates "
-              "across chunks are not detected", SAFETY_NOTE]
+    notes += [f"illumination: {st['facing'].describe()}",
+              f"streamed: {n:,} sites in chunks of {chunk_polygons:,} polygons; far field of each spot from "
+              f"{block_um:.4g} um block sums (order {order}) demodulated by the spot's direction; empty illuminated "
+              "cells are not counted (elements only); duplicates across chunks are not detected", SAFETY_NOTE]
+    if st["no_target"]:
+        notes.append("no design given: no spots measured (power budget only)")
     timings = {"sites_s": t_sites, "total_s": time.perf_counter() - t_all}
-    return StreamedOptics(json_ready(figures), ff, tuple(notes), timings)
+    return StreamedOptics(json_ready(figures), windows, tuple(notes), timings)
 
 
-def _streamed_figures(ff, target, sums, stats, n, fractions, bounds, total, radius_u, diameter, pad_factor,
-                      facing, polarization) -> dict:
-    lam_um = target.wavelength_nm * 1e-3
+def _streamed_figures(windows, target, sums, stats, n, fractions, bounds, radius_u, diameter, block_um, order,
+                      pad_factor, st) -> dict:
+    grid = next(iter(windows.values())) if windows else None
+    in_disk = {}
+    for name, ff in windows.items():
+        u0, v0 = ff.carrier
+        inside = (ff.u[None, :] - u0) ** 2 + (ff.v[:, None] - v0) ** 2 < radius_u ** 2
+        in_disk[name] = float(ff.bound[inside].max() / ff.amplitude_sum) if inside.any() else None
     figures = {
         "method": "streamed block far field",
-        "illumination": facing.as_dict(), "wavelength_nm": target.wavelength_nm,
-        "input_polarization": polarization, "design_spin": target.sigma,
+        "illumination": st["facing"].as_dict(), "wavelength_nm": target.wavelength_nm,
+        "input_polarization": st["polarization"], "design_spin": target.sigma,
         "power_budget": _budget(sums, n), "decode": stats,
-        "block": {"block_um": ff.block_um, "order": ff.order, "grid": [int(ff.u.size), int(ff.v.size)],
-                  "pad_factor": pad_factor, "valid_u": lam_um / (2 * ff.block_um)},
+        "block": {"block_um": block_um, "order": order, "pad_factor": pad_factor,
+                  "site_offset_um": list(grid.reach_um) if grid is not None else None},
         "error_bound": {
-            "field": ("|E_B - E| <= A phi^2 / 2" if ff.order == 1 else "|E_B - E| <= A min(phi, 2)")
-            + " + 1e-12 A, phi = 2 pi (dx |u| + dy |v|) / wavelength <= pi B (|u| + |v|) / wavelength, "
-            "A = sum |f_s|, (dx, dy) the largest site offsets from their block centres",
-            "site_offset_um": list(ff.reach_um),
+            "field": ("|E_B - E| <= A phi^2 / 2" if order == 1 else "|E_B - E| <= A min(phi, 2)")
+            + " + 1e-12 A, phi = 2 pi (dx |u - u_c| + dy |v - v_c|) / wavelength <= pi B (|u - u_c| + "
+            "|v - v_c|) / wavelength; A = sum |f_s|; (dx, dy) the largest site offsets from their block centres; "
+            "(u_c, v_c) the spot's direction (sites demodulated by it); times the cell-aperture factor",
             "power": "sum over the disk of eps (2 |E_B| + eps) du dv, as a fraction of the incident power",
-            "amplitude_sum": ff.amplitude_sum,
-            "relative_field_bound_at_spots": {
-                k: float(phase_bound(u, v, *ff.reach_um, target.wavelength_nm, ff.order, 1.0))
-                for k, (u, v) in spot_centres(target, radius_u)[0].items() if k in fractions}},
+            "max_relative_field_bound_in_disk": in_disk},
         "aperture_equivalent_diameter_um": diameter, "lobe_radius_u": radius_u,
-        "far_field": {"fractions_of_incident": fractions, "bounds_of_fractions": bounds,
-                      "within_block_range": total},
+        "far_field": {"fractions_of_incident": fractions, "bounds_of_fractions": bounds},
     }
     if "designed" in fractions:
         figures["designed_spot_efficiency"] = fractions["designed"]
