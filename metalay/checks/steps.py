@@ -26,9 +26,10 @@ _PIECE_MAX_VERTICES = 8190
 #: the larger of the virtual and resident slope between 1e6 and 4e6 sites, measured 288 and 214, rounded up).
 RULES_BYTES_PER_SITE = 300
 OPTICS_BYTES_PER_SITE = 220
-#: Peak memory per site of the streamed checks (the file walk's table; bands and blocks are bounded by the budget;
-#: ``bench/bench_stream_checks.py``), used for the compile's admission: a check streams when its whole-mask
-#: method would not fit the budget.
+#: Peak memory per site of the streamed checks beyond one band or block grid (the file walk's table;
+#: ``bench/bench_stream_checks.py``). Not yet the compile's admission constant: the compile still admits with the
+#: whole-mask figures above, because the streamed reader maps the mask file, which counts against an address-space
+#: limit (``ulimit -v``); a check streams when, at the time it runs, its whole-mask method does not fit the budget.
 STREAMED_BYTES_PER_SITE = 16
 #: Smallest bytes per polygon of a GDSII/OASIS file (an upper bound on the polygon count from the file size).
 _MIN_FILE_BYTES_PER_POLYGON = 8
@@ -69,13 +70,12 @@ def _switch(setting: str, forced: bool | None):
 def rules_step(*, force: bool | None = None) -> MaskCheck:
     """The design-rule check step (:func:`run_rules_on_written`); on when ``[checks] rules`` is (or ``force``)."""
     return MaskCheck("rules", run_rules_on_written, _switch("rules", force), needs_structures=True,
-                     bytes_per_site=STREAMED_BYTES_PER_SITE)
+                     bytes_per_site=RULES_BYTES_PER_SITE)
 
 
 def optics_step(*, force: bool | None = None) -> MaskCheck:
     """The quick optical check step (:func:`run_optics_on_written`); on when ``[checks] optics`` is (or ``force``)."""
-    return MaskCheck("optics", run_optics_on_written, _switch("optics", force),
-                     bytes_per_site=STREAMED_BYTES_PER_SITE)
+    return MaskCheck("optics", run_optics_on_written, _switch("optics", force), bytes_per_site=OPTICS_BYTES_PER_SITE)
 
 
 def default_checks(*, rules: bool | None = None, optics: bool | None = None) -> tuple[MaskCheck, ...]:
