@@ -200,3 +200,33 @@ def test_compile_steps_stream_when_the_whole_check_does_not_fit(tmp_path):
     saved = json.loads((gds.parent / "optics" / "optics.json").read_text())
     assert saved["method"] == "streamed block far field" and "design aid" in saved["caution"]
     assert "error_bound" in saved and saved["block"]["block_um"] > 0
+
+
+def test_cli_bands_give_the_same_report_and_markers(tmp_path, capsys):
+    # Equivalence check through the command line: --bands 6 against the whole-mask run (JSON and marker GDSII)
+    import json
+
+    from metalay.cli import main
+
+    p = lattice_mask(tmp_path)
+    rules_file = tmp_path / "r.toml"
+    rules_file.write_text('format = "metalay.rules"\nformat_version = 1\nname = "t"\n[[layers]]\nlayer = 1\n'
+                          'datatype = 0\nname = "fins"\nmin_spacing_nm = 70\nforbid_overlap = true\n'
+                          'min_width_nm = 84.5\n[layers.sources]\nmin_spacing_nm = "Common practice (no source)"\n'
+                          'min_width_nm = "Common practice (no source)"\n')
+    outs = {}
+    for name, extra in (("whole", []), ("bands", ["--bands", "6"])):
+        code = main(["rules", "check", str(p), "--rules", str(rules_file), "-o", str(tmp_path / name), *extra])
+        assert code == 1  # violations
+        outs[name] = (json.loads((tmp_path / name / "lattice.rules.json").read_text()),
+                      (tmp_path / name / "lattice.markers.gds").read_bytes())
+    text = capsys.readouterr().out
+    assert "checked in 6 bands" in text
+    (jw, mw), (jb, mb) = outs["whole"], outs["bands"]
+    assert jw.pop("method") == {"method": "whole-mask"} and jb.pop("method")["bands"] == 6
+    for d in (jw, jb):
+        for r in d["results"]:
+            r.pop("method")
+    assert jw == jb
+    assert mw == mb  # the same markers and involved polygons, byte for byte
+    assert main(["rules", "check", str(p), "--rules", str(rules_file), "--bands", "-1"]) == 2

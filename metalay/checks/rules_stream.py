@@ -42,7 +42,7 @@ from metalay.errors import MaskReadError, RulesError
 from metalay.io.gdsread import DEFAULT_MAX_ELEMENTS, FlatPolygons, file_sha256
 from metalay.util.budget import memory_budget
 
-__all__ = ["TilePlan", "check_mask_tiled", "BAND_BYTES_PER_POLYGON", "chunks_of"]
+__all__ = ["TilePlan", "check_mask_tiled", "involved_polygons", "BAND_BYTES_PER_POLYGON", "chunks_of"]
 
 BAND_BYTES_PER_POLYGON = 300
 """Peak bytes per polygon of checking one band (the whole-mask check's measured ~300 B per site, which includes
@@ -324,3 +324,42 @@ def check_mask_tiled(mask, rules: RuleSet, *, method: str = "auto", cell: str | 
                     int(spill.loaded.max(initial=0)))
     report = RuleReport(name, sha, db, plan.polygons, rules.name, results, tuple(timings.items()))
     return report, plan
+
+
+def involved_polygons(mask, report: RuleReport, *, rules: RuleSet, cell: str | None = None,
+                      chunk_polygons: int = 1 << 18) -> tuple[FlatPolygons, RuleReport]:
+    """The polygons a report names (one more streamed pass), and the report re-indexed to them.
+
+    For :func:`metalay.checks.rules.write_marker_gds` after a tiled check: it needs only these polygons.
+    """
+    from dataclasses import replace
+
+    from metalay.io.stream_read import iter_mask_chunks
+
+    named = [r.violations.polygon for r in report.results] + [r.violations.other[r.violations.other >= 0]
+                                                              for r in report.results]
+    wanted = np.unique(np.concatenate(named)) if named else np.zeros(0, np.int64)
+    chunks = (chunks_of(mask, chunk_polygons)() if isinstance(mask, FlatPolygons) else
+              iter_mask_chunks(mask, layers=rules.layer_pairs(), cell=cell, chunk_polygons=chunk_polygons))
+    parts, offset, db, uu = [], 0, report.db_unit_nm, 1e-6
+    for ch in chunks:
+        uu = ch.user_unit_m
+        keep = np.isin(np.arange(offset, offset + ch.count), wanted)
+        if keep.any():
+            parts.append(ch.select(keep))
+        offset += ch.count
+    if parts:
+        sub = FlatPolygons.from_arrays(np.concatenate([p.layer for p in parts]),
+                                       np.concatenate([p.datatype for p in parts]),
+                                       np.concatenate([np.diff(p.start) for p in parts]),
+                                       np.concatenate([p.xy_db for p in parts]), db_unit_nm=db, user_unit_m=uu)
+    else:
+        z = np.zeros(0, np.int64)
+        sub = FlatPolygons.from_arrays(z, z, z, np.zeros((0, 2), np.int64), db_unit_nm=db, user_unit_m=uu)
+
+    def local(ix):
+        return np.where(ix >= 0, np.searchsorted(wanted, np.maximum(ix, 0)), -1)
+
+    results = tuple(replace(r, violations=replace(r.violations, polygon=local(r.violations.polygon),
+                                                  other=local(r.violations.other))) for r in report.results)
+    return sub, replace(report, results=results)
