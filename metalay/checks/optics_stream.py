@@ -64,7 +64,7 @@ from metalay.checks.optics import (
 from metalay.errors import MetalayError
 
 __all__ = ["BlockFarField", "FarFieldAccumulator", "StreamedOptics", "check_optics_streamed", "block_size_for",
-           "compile_check_streamed", "phase_bound", "disk_power",
+           "compile_check_streamed", "write_streamed_outputs", "phase_bound", "disk_power",
            "OPTICS_STREAM_BYTES_PER_SITE"]
 
 OPTICS_STREAM_BYTES_PER_SITE = 12
@@ -303,7 +303,8 @@ def _stream_sites(chunks, lib, setup: dict, accs: dict, notes: list):
         if not np.any((ch.layer == layer[0]) & (ch.datatype == layer[1])):
             continue
         dec = decode_sites(ch, lib.cells, period_nm=setup["period_nm"], lattice=setup["lattice"], layer=layer,
-                           bias_nm=setup["bias_nm"], where=setup["where"])
+                           bias_nm=setup["bias_nm"], size_tol_nm=setup["size_tol_nm"],
+                           unmatched=setup["unmatched"], where=setup["where"])
         dec = beam_frame_sites(dec, setup["facing"])
         sf = site_fields(t_long[dec.cell], t_short[dec.cell], dec.rotation_rad, jin, sigma=target.sigma)
         x, y = site_xy(dec)
@@ -366,7 +367,7 @@ def _spots(accs: dict, centres: dict, n: int, cell: tuple, radius_u: float, pad_
     return windows, fractions, bounds
 
 
-def _setup(mask_path, lib, design, target, layer, polarization):
+def _setup(mask_path, lib, design, target, layer, polarization, opts: dict):
     """Layer, bias, target, side, lattice: everything the stream needs, from the design or the library."""
     mask_settings = getattr(design, "mask", None)
     if layer is None:
@@ -375,23 +376,28 @@ def _setup(mask_path, lib, design, target, layer, polarization):
         raise MetalayError(f"{mask_path}: mask.tone = {mask_settings.tone!r}; the optical check reads structure "
                            "polygons and supports tone 'structures' only")
     no_target = target is None and design is None
+    wl = opts.get("wavelength_nm")
     if target is None:
-        target = (target_from_design(design) if design is not None
-                  else OpticsTarget(wavelength_nm=float(lib.design_wavelength_nm), charge=None))
+        target = (target_from_design(design, wavelength_nm=wl) if design is not None
+                  else OpticsTarget(wavelength_nm=float(wl or lib.design_wavelength_nm), charge=None))
     period_nm = design.lattice.period_nm if design is not None else lib.period_nm
     lattice = design.lattice.kind if design is not None else lib.lattice
     p_um = period_nm * 1e-3
-    return {"layer": tuple(layer), "bias_nm": float(getattr(mask_settings, "bias_nm", 0.0) or 0.0),
-            "target": target, "no_target": no_target, "period_nm": period_nm, "lattice": lattice,
-            "facing": facing_of(design, lib, where=str(mask_path)), "polarization": polarization,
-            "where": str(mask_path),
+    bias = opts.get("bias_nm")
+    return {"layer": tuple(layer), "target": target, "no_target": no_target, "period_nm": period_nm,
+            "bias_nm": float(bias if bias is not None else (getattr(mask_settings, "bias_nm", 0.0) or 0.0)),
+            "lattice": lattice, "facing": facing_of(design, lib, lit_from=opts.get("lit_from"), where=str(mask_path)),
+            "polarization": polarization, "where": str(mask_path), "size_tol_nm": opts.get("size_tol_nm", 3.0),
+            "unmatched": opts.get("unmatched", "error"),
             "cell": (p_um, p_um) if lattice == "square" else (p_um, p_um * math.sqrt(3) / 2)}  # hexagonal: brick
 
 
 def check_optics_streamed(mask_path, library, *, design=None, target: OpticsTarget | None = None,
                           block_um: float | None = None, order: int = 1, pad_factor: float = 2.0,
                           polarization: str = "design", layer=None, chunk_polygons: int = 1 << 18,
-                          max_side: int = 2048, limits=None) -> StreamedOptics:
+                          max_side: int = 2048, limits=None, wavelength_nm: float | None = None,
+                          lit_from: str | None = None, bias_nm: float | None = None, size_tol_nm: float = 3.0,
+                          unmatched: str = "error") -> StreamedOptics:
     """Optical check of a mask of any size: far field accumulated tile by tile from block sums, bound stated.
 
     Parameters
@@ -417,6 +423,8 @@ def check_optics_streamed(mask_path, library, *, design=None, target: OpticsTarg
         Structure layer/datatype (default the design's, else (1, 0)).
     chunk_polygons, max_side, limits
         Chunk size of the read; largest block-grid side; verdict thresholds.
+    wavelength_nm, lit_from, bias_nm, size_tol_nm, unmatched
+        As :class:`metalay.checks.optics.OpticsOptions` (defaults: the design's, else the library's).
 
     Returns
     -------
@@ -437,7 +445,9 @@ def check_optics_streamed(mask_path, library, *, design=None, target: OpticsTarg
 
     t_all = time.perf_counter()
     lib = library if isinstance(library, CellLibrary) else load_library(library)
-    st = _setup(mask_path, lib, design, target, layer, polarization)
+    st = _setup(mask_path, lib, design, target, layer, polarization,
+                {"wavelength_nm": wavelength_nm, "lit_from": lit_from, "bias_nm": bias_nm,
+                 "size_tol_nm": size_tol_nm, "unmatched": unmatched})
     target, cell = st["target"], st["cell"]
     n_poly, _ = count_polygons(mask_path, layers=[st["layer"]])
     _, radius0 = _lobe_radius(target, n_poly, cell[0] * cell[1])
@@ -507,18 +517,15 @@ def _streamed_figures(windows, target, sums, stats, n, fractions, bounds, radius
     return figures
 
 
-def compile_check_streamed(path, library, design) -> dict:
-    """Hook for ``metalay compile`` on a mask too large for the whole-mask check: the streamed check, written to
-    ``<mask folder>/optics`` (``optics.json`` and ``optics_report.html``); a manifest-ready dict shaped like
-    :func:`metalay.checks.optics.compile_check`'s, with ``method``."""
-    import os
+def write_streamed_outputs(res: StreamedOptics, path, library, design, out_dir) -> tuple[dict, dict]:
+    """Write ``optics.json`` (figures, inputs, the caution) and ``optics_report.html`` to ``out_dir``
+    (atomically); return the figures as written and the files (name -> path, sha256, bytes)."""
     from pathlib import Path
 
     from metalay.checks.optics import _sha256, _write_outputs
     from metalay.checks.report import render_html
 
     path = Path(path)
-    res = check_optics_streamed(path, library, design=design)
     f = dict(res.figures)
     inputs = {"mask": {"path": path.name, "sha256": _sha256(path), "bytes": path.stat().st_size},
               "library": {"name": getattr(library, "name", str(library))}, "design": getattr(design, "name", None),
@@ -529,9 +536,22 @@ def compile_check_streamed(path, library, design) -> dict:
     html = render_html(title=f"Optical check (streamed) of {path.name}: verdict {v['verdict'].upper()}",
                        caution=SAFETY_NOTE, inputs=inputs, figures={k: x for k, x in f.items() if k != "inputs"},
                        images={}, notes=[f"verdict {v['verdict'].upper()}: {v['summary']}", *res.notes])
-    written = _write_outputs(path.parent / "optics", f, {}, html)
+    return f, _write_outputs(Path(out_dir), f, {}, html)
+
+
+def compile_check_streamed(path, library, design) -> dict:
+    """Hook for ``metalay compile`` on a mask too large for the whole-mask check: the streamed check, written to
+    ``<mask folder>/optics`` (``optics.json`` and ``optics_report.html``); a manifest-ready dict shaped like
+    :func:`metalay.checks.optics.compile_check`'s, with ``method``."""
+    import os
+    from pathlib import Path
+
+    path = Path(path)
+    res = check_optics_streamed(path, library, design=design)
+    f, written = write_streamed_outputs(res, path, library, design, path.parent / "optics")
     files = {k: {"path": os.path.relpath(x["path"], path.parent), "sha256": x["sha256"], "bytes": x["bytes"]}
              for k, x in written.items()}
+    v = f["verdicts"]
     pb = f["power_budget"]
     parts = [f"converted {pb['converted']:.3f}", f"leakage {pb['leakage']:.3f}"]
     if "designed_spot_efficiency" in f:
