@@ -5,8 +5,9 @@
 record walk, hierarchy checks and count limits as the whole read, but never allocates the flattened output:
 
 * GDSII runs of identical BOUNDARY elements (the flat masks metalay writes) are decoded a chunk at a time from the
-  memory-mapped file; what stays in memory is the walk's per-element table (layer, datatype and two flags: about
-  10 bytes per element);
+  memory-mapped file, whose pages are released from the resident set once decoded (``madvise(MADV_DONTNEED)``:
+  they stay in the page cache); what stays in memory is the walk's per-element table (layer, datatype and two
+  flags: about 10 bytes per element);
 * placed cells are expanded a block of placements at a time (the placements' affine maps are held: 48 bytes each);
 * OASIS files are parsed by :mod:`metalay.io.oasis_read`, which expands each cell's own geometry while parsing,
   so for OASIS only the output chunks are bounded, not the parse.
@@ -17,6 +18,7 @@ element, vertex and depth limits do.
 
 from __future__ import annotations
 
+import mmap
 from collections.abc import Iterator
 
 import numpy as np
@@ -50,12 +52,30 @@ def _chunk(lay, dt, cnt, xy, db_unit_nm: float, user_unit_m: float) -> FlatPolyg
                         np.asarray(xy, np.int64).reshape(-1, 2), db_unit_nm, user_unit_m)
 
 
-def _cell_chunks(lib, c, aff: np.ndarray, chunk_polygons: int) -> Iterator[tuple]:
+def _release(mm, start: int, stop: int) -> None:
+    """Drop the pages of ``mm[start:stop]`` from this process's resident set (they stay in the page cache: the
+    file is only read, so they are clean); a no-op where ``madvise`` is missing."""
+    if mm is None or not hasattr(mm, "madvise") or not hasattr(mmap, "MADV_DONTNEED"):
+        return
+    page = mmap.PAGESIZE
+    lo = (start // page) * page
+    hi = min(len(mm), -(-stop // page) * page)
+    if hi > lo:
+        try:
+            mm.madvise(mmap.MADV_DONTNEED, lo, hi - lo)
+        except (OSError, ValueError):  # pragma: no cover - best effort
+            pass
+
+
+def _cell_chunks(lib, c, aff: np.ndarray, chunk_polygons: int, mm=None) -> Iterator[tuple]:
     """(layer, datatype, counts, xy) blocks of one cell at its placements, in the order :func:`read_mask` uses."""
     if aff.shape[0] == 1 and np.array_equal(aff[0], [1.0, 0.0, 0.0, 1.0, 0.0, 0.0]):
         for r in c.runs:
             for lo in range(0, r.k, chunk_polygons):
-                yield _decode_run(lib.buf, r, lo, min(r.k, lo + chunk_polygons))
+                hi = min(r.k, lo + chunk_polygons)
+                out = _decode_run(lib.buf, r, lo, hi)  # copies: the file pages can go
+                _release(mm, r.pos + lo * r.size, r.pos + hi * r.size)
+                yield out
         for e in c.explicit:
             for lo in range(0, e.counts.shape[0], chunk_polygons):
                 hi = min(e.counts.shape[0], lo + chunk_polygons)
@@ -118,10 +138,12 @@ def iter_mask_chunks(path, *, layers=None, cell: str | None = None, max_elements
                                  f"{max_vertices}")
         inst = _placements(lib, tops, order, sizes)
         db_nm, uu = _nm_from_m(lib.db_unit_m), float(lib.user_unit_m)
+        if mm is not None:
+            _release(mm, 0, len(mm))  # the walk touched every element: keep only what the chunks read
         for name in order:
             if name not in inst or lib.cells[name].own_counts()[0] == 0:
                 continue
-            for lay, dt, cnt, xy in _cell_chunks(lib, lib.cells[name], inst[name][0], int(chunk_polygons)):
+            for lay, dt, cnt, xy in _cell_chunks(lib, lib.cells[name], inst[name][0], int(chunk_polygons), mm):
                 if cnt.shape[0]:
                     yield _chunk(lay, dt, cnt.astype(np.int64, copy=False), xy, db_nm, uu)
     finally:
