@@ -124,7 +124,7 @@ def iter_mask_chunks(path, *, layers=None, cell: str | None = None, max_elements
     """
     if int(chunk_polygons) < 1:
         raise MaskReadError(f"{path}: chunk_polygons = {chunk_polygons!r}; allowed: an integer >= 1")
-    lib, mm = _parse(path, layers, max_elements, max_vertices, None)
+    lib, mm = _parse(path, layers, max_elements, max_vertices, None, release=_release)
     try:
         tops, order = _topology(lib, cell, max_depth)
         sizes = _flat_sizes(lib, order)
@@ -138,8 +138,6 @@ def iter_mask_chunks(path, *, layers=None, cell: str | None = None, max_elements
                                  f"{max_vertices}")
         inst = _placements(lib, tops, order, sizes)
         db_nm, uu = _nm_from_m(lib.db_unit_m), float(lib.user_unit_m)
-        if mm is not None:
-            _release(mm, 0, len(mm))  # the walk touched every element: keep only what the chunks read
         for name in order:
             if name not in inst or lib.cells[name].own_counts()[0] == 0:
                 continue
@@ -161,7 +159,7 @@ def count_polygons(path, *, layers=None, cell: str | None = None, max_elements: 
 
     Lets a check choose between the whole-mask and the streamed method before reading any geometry.
     """
-    lib, mm = _parse(path, layers, max_elements, max_vertices, None)
+    lib, mm = _parse(path, layers, max_elements, max_vertices, None, release=_release)
     try:
         tops, order = _topology(lib, cell, max_depth)
         sizes = _flat_sizes(lib, order)
