@@ -12,6 +12,7 @@ from metalay.api import compile_design
 from metalay.cells.library import load_library, save_library
 from metalay.design.lattice import Aperture
 from metalay.design.spec import load_design
+from metalay.errors import MetalayError
 from metalay.io.gdsread import read_mask
 from metalay.mask.process import WriteFieldGrid, aperture_region_db, straddles_write_field
 
@@ -178,7 +179,7 @@ def test_optics_uses_response_at_biased_size(tmp_path, with_biased):
     d = copy.deepcopy(SMALL_DESIGN)
     d["design"]["library"] = _two_size_library(tmp_path, with_biased)
     d["mask"].update({"bias_nm": 10.0, "cell": "fin-a", "formats": ["gds"]})
-    d["checks"] = {"rules": False, "optics": True}
+    d["checks"] = {"rules": False, "optics": True, **({} if with_biased else {"bias_response": "nominal"})}
     res = _compile(tmp_path, d, "o")
     opt = res.manifest["checks"]["optics"]
     text = " ".join(opt["notes"])
@@ -187,9 +188,19 @@ def test_optics_uses_response_at_biased_size(tmp_path, with_biased):
         assert "fin-b" in text
         expected = abs((0.9 - (-0.5)) / 2) ** 2
     else:
-        assert "no nanofin at the biased size" in text
+        assert "nominal response of cell fin-a used as asked" in text
         expected = 1.0
     assert conv == pytest.approx(expected, rel=1e-6)
+
+
+def test_biased_mask_without_solver_record_needs_an_explicit_nominal_choice(tmp_path):
+    # no cell of the biased size and no recorded solver truncation: the check does not fall back silently
+    d = copy.deepcopy(SMALL_DESIGN)
+    d["design"]["library"] = _two_size_library(tmp_path, False)
+    d["mask"].update({"bias_nm": 10.0, "cell": "fin-a", "formats": ["gds"]})
+    d["checks"] = {"rules": False, "optics": True}
+    with pytest.raises(MetalayError, match="bias_response = \"nominal\""):
+        _compile(tmp_path, d, "o")
 
 
 def test_slot_library_mask_optics_matches_jones(tmp_path):

@@ -10,6 +10,7 @@ module            stage                                                         
 ``materials.py``  optical constants (pinned database, Malitson formula, user tables)    ``get_material``
 ``cellbuild.py``  library builder (sweep, rule filter, pick, spectra, convergence);     ``build_library``,
                   import of responses simulated elsewhere                               ``import_responses``
+``biascells.py``  responses of cells grown by a CD bias, solved on demand and cached    ``BiasedCells``
 ================  ====================================================================  ===========================
 
 Imports: :mod:`metalay.errors`, :mod:`metalay.validate`, :mod:`metalay.util`.
@@ -29,6 +30,7 @@ _ENTRIES = {
     "load_build_spec": "cellbuild",
     "build_library": "cellbuild",
     "import_responses": "cellbuild",
+    "BiasedCells": "biascells",
 }
 __all__ = sorted(_ENTRIES)
 __getattr__, __dir__ = lazy_entries(__name__, _ENTRIES)

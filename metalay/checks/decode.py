@@ -24,7 +24,8 @@ import numpy as np
 
 from metalay.errors import MaskReadError, MetalayError
 
-__all__ = ["DecodedSites", "decode_sites", "polygon_shapes", "ShapeTable", "cell_shape_table"]
+__all__ = ["DecodedSites", "decode_sites", "sites_from_shapes", "polygon_shapes", "ShapeTable", "CellShapes",
+           "cell_shape_table"]
 
 _RECT_KINDS = ("nanofin", "slot")
 _ROUND_KINDS = ("elliptic_pillar", "round_pillar")
@@ -125,7 +126,8 @@ def polygon_shapes(start: np.ndarray, xy_db: np.ndarray, db_unit_nm: float) -> S
     b = np.empty(p, dtype=np.float32)
     if p and counts.min() < 4:
         k = int(np.argmin(counts))
-        raise MetalayError(f"polygon {k} has {int(counts[k])} vertices; structure polygons need at least 4")
+        raise MetalayError(f"polygon {k} has {int(counts[k])} vertices; structure polygons need at least 4 (a "
+                           f"complement-tone mask holds film pieces: decode it with its design)")
     if p and counts.min() == counts.max() == 4:
         # every polygon a quadrilateral stored back to back: a free (P, 4, 2) view, processed in chunks
         v_all = xy_db.reshape(-1, 4, 2)
@@ -350,17 +352,51 @@ def decode_sites(flat, cells, *, period_nm: float, lattice: str = "square", laye
         raise MaskReadError(f"{where}: no polygons on structure layer {layer[0]}/{layer[1]}")
     sub = flat.select(sel) if n_poly < flat.count else flat
     shapes = polygon_shapes(sub.start, sub.xy_db, flat.db_unit_nm)
-    cs = cell_shape_table(cells)
+    return sites_from_shapes(shapes, cell_shape_table(cells), period_nm=period_nm, lattice=lattice,
+                             origin_um=origin_um, size_tol_nm=size_tol_nm, bias_nm=bias_nm, unmatched=unmatched,
+                             where=where)
+
+
+def sites_from_shapes(shapes: ShapeTable, cs: CellShapes, *, period_nm: float, lattice: str = "square",
+                      origin_um=(0.0, 0.0), size_tol_nm: float = 3.0, bias_nm: float = 0.0,
+                      unmatched: str = "error", where: str = "mask", what: str = "structure polygons"
+                      ) -> DecodedSites:
+    """Match measured element shapes to library cells and place them on the lattice (the second half of
+    :func:`decode_sites`, shared with the decoder of complement-tone masks, :mod:`metalay.checks.openings`).
+
+    Parameters
+    ----------
+    shapes : ShapeTable
+        One measured element per entry (centre, rotation, long and short size).
+    cs : CellShapes
+        Library cells in the same size measure as ``shapes`` (:func:`cell_shape_table`).
+    period_nm, lattice, origin_um, size_tol_nm, bias_nm, unmatched, where
+        As in :func:`decode_sites`.
+    what : str
+        What the elements are, for messages.
+
+    Returns
+    -------
+    DecodedSites
+    """
+    if lattice not in ("square", "hexagonal"):
+        raise MetalayError(f"{where}: lattice = {lattice!r}; allowed: 'square', 'hexagonal'")
+    if unmatched not in ("error", "nearest", "drop"):
+        raise MetalayError(f"{where}: unmatched = {unmatched!r}; allowed: 'error', 'nearest', 'drop'")
+    n_poly = int(shapes.a_nm.size)
+    if n_poly == 0:
+        raise MaskReadError(f"{where}: no {what} to decode")
     best, err = _match(shapes, cs, bias_nm)
     bad = ~(err <= size_tol_nm)
     n_bad = int(bad.sum())
     if n_bad and unmatched == "error":
         k = int(np.flatnonzero(bad)[0])
         raise MaskReadError(
-            f"{where}: {n_bad} structure polygons match no library cell within {size_tol_nm:g} nm, e.g. one at "
+            f"{where}: {n_bad} {what} match no library cell within {size_tol_nm:g} nm, e.g. one at "
             f"({shapes.x_nm[k] / 1000:.3f}, {shapes.y_nm[k] / 1000:.3f}) um measuring {shapes.a_nm[k]:.1f} x "
             f"{shapes.b_nm[k]:.1f} nm (bias_nm = {bias_nm:g}); pass the mask's bias, a larger tolerance, or "
-            "unmatched='nearest'")
+            "unmatched='nearest'" + ("; a complement-tone mask holds film pieces: decode it with its design"
+                                     if what == "structure polygons" else ""))
     keep = np.ones(n_poly, bool) if unmatched != "drop" else ~bad
     ii, jj, offset = _lattice_indices(shapes, period_nm, lattice, origin_um)
     off = offset > period_nm / 4

@@ -39,8 +39,9 @@ import numpy as np
 from scipy import ndimage
 
 from metalay.checks import farpoints, fringes, grid, oam
-from metalay.checks.decode import DecodedSites, decode_sites
-from metalay.errors import MetalayError
+from metalay.checks.decode import DecodedSites
+from metalay.checks.openings import decode_written, tone_of, written_layer
+from metalay.errors import LibraryError, MetalayError
 from metalay.util._memory import keep_freed_memory
 
 __all__ = [
@@ -920,30 +921,75 @@ def json_ready(obj):
     return obj
 
 
-def _biased_responses(lib, t_long, t_short, decoded, bias_nm: float, notes: list):
+#: Values of :attr:`OpticsOptions.bias_response`.
+BIAS_RESPONSES = ("as-written", "nominal")
 
-    """Responses for a biased mask: the library cell at the biased size where the library has one.
+
+def _bias_settings(opt: "OpticsOptions", design) -> tuple:
+    """Bias response, truncation and cache folder: the options, else the design's ``[checks]``, else defaults."""
+    checks = getattr(design, "checks", None)
+    response = opt.bias_response or getattr(checks, "bias_response", None) or "as-written"
+    if response not in BIAS_RESPONSES:
+        raise MetalayError(f"bias_response = {response!r}; allowed: {', '.join(BIAS_RESPONSES)}")
+    harmonics = opt.bias_harmonics
+    if harmonics is None and getattr(checks, "bias_harmonics", None) is not None:
+        harmonics = (int(checks.bias_harmonics),) * 2
+    return response, harmonics, opt.cell_cache or getattr(checks, "cell_cache", None)
+
+
+def _biased_responses(lib, t_long, t_short, decoded, bias_nm: float, notes: list, *, wavelength_nm: float,
+                      opt: "OpticsOptions", design=None):
+    """Responses for a biased mask: each cell at the size written into the mask (nominal + 2 x bias).
 
     A bias pre-compensates the process; the mask as written carries cells grown by ``2 * bias_nm``. Where the
-    library has a cell of the same kind at exactly that size, its response is the one of the mask as written (no
-    process shift); otherwise the nominal response is kept, which assumes the process removes the bias exactly,
-    and a note says so.
+    library has a cell of the same kind at exactly that size, its response is used; otherwise the biased cell is
+    solved with metalay's RCWA (:class:`metalay.cells.biascells.BiasedCells`, with the library's recorded
+    truncation unless ``opt.bias_harmonics`` says otherwise). Only with ``opt.bias_response = "nominal"`` is
+    the nominal response kept (the process is assumed to remove the bias exactly), and the notes say so.
+
+    Returns
+    -------
+    (t_long, t_short, record) : responses per library cell and a JSON-ready record of what was used.
     """
     from metalay.mask.process import biased_dims_nm, find_cell_at_dims
 
+    response, harmonics, cache = _bias_settings(opt, design)
     t_long, t_short = t_long.copy(), t_short.copy()
-    used = np.unique(decoded.cell)
-    for k in used:  # cells in use (a short axis)
+    record = {"bias_nm": float(bias_nm), "response": response, "cells": {}}
+    to_solve = []
+    for k in np.unique(decoded.cell):  # cells in use (a short axis)
         cell = lib.cells[int(k)]
         j = find_cell_at_dims(lib, cell.kind, biased_dims_nm(cell, bias_nm))
-        if j is None:
-            notes.append(f"bias {bias_nm:+g} nm: the library has no {cell.kind} at the biased size of cell "
-                         f"{cell.id}; its nominal response is used (assumes the process removes the bias exactly)")
-        else:
+        if j is not None:
             t_long[k], t_short[k] = t_long[j], t_short[j]
+            record["cells"][cell.id] = f"library cell {lib.cells[j].id} (the size as written)"
             notes.append(f"bias {bias_nm:+g} nm: cell {cell.id} as written has the size of library cell "
                          f"{lib.cells[j].id}, whose response is used (the mask as written, before the process)")
-    return t_long, t_short
+        elif response == "nominal":
+            record["cells"][cell.id] = "nominal response (chosen: the process removes the bias)"
+            notes.append(f"bias {bias_nm:+g} nm: nominal response of cell {cell.id} used as asked (bias response "
+                         "'nominal': assumes the process removes the bias exactly)")
+        else:
+            to_solve.append(int(k))
+    if to_solve:
+        from metalay.cells.biascells import BiasedCells
+
+        try:
+            solver = BiasedCells(lib, harmonics=harmonics, cache_dir=cache)
+            tl_b, ts_b = solver.responses_at(to_solve, bias_nm, wavelength_nm)
+        except LibraryError as exc:
+            raise LibraryError(f"{exc} (to keep the nominal response instead, say so: metalay optics "
+                               "--bias-response nominal, or checks.bias_response = \"nominal\" in the design "
+                               "file)") from exc
+        for k in to_solve:
+            t_long[k], t_short[k] = tl_b[k], ts_b[k]
+            record["cells"][lib.cells[k].id] = "solved at the size as written"
+        record["solver"] = solver.record()
+        trunc = solver.record()["truncation"]
+        notes.append(f"bias {bias_nm:+g} nm: cell(s) {', '.join(lib.cells[k].id for k in to_solve)} solved at the "
+                     f"size as written (nominal + {2 * bias_nm:+g} nm) with metalay's RCWA, truncation: "
+                     f"{trunc if isinstance(trunc, str) else trunc['harmonics_x']}")
+    return t_long, t_short, record
 
 
 def facing_of(design, library, *, lit_from: str | None = None, where: str = ""):
@@ -1192,6 +1238,16 @@ class OpticsOptions:
     max_memory_bytes : int, optional
         Memory budget of reading the mask (:func:`metalay.io.gdsread.read_mask`; default half of what the process
         may use).
+    bias_response : {"as-written", "nominal"}, optional
+        Responses of a biased mask: "as-written" uses each cell at the size written into the mask (a library
+        cell of that size, else solved on demand by metalay's RCWA); "nominal" keeps the nominal response
+        (assumes the process removes the bias exactly; stated in the notes). Default: the design's
+        ``checks.bias_response``, else "as-written".
+    bias_harmonics : (int, int), optional
+        Truncation of those solves (default: the design's ``checks.bias_harmonics``, else the library's recorded
+        truncation at each wavelength).
+    cell_cache : str, optional
+        Folder that keeps solved biased cells between runs (default: the design's ``checks.cell_cache``).
     """
 
     wavelength_nm: float | None = None
@@ -1212,6 +1268,9 @@ class OpticsOptions:
     lit_from: str | None = None
     limits: object = None
     max_memory_bytes: int | None = None
+    bias_response: str | None = None
+    bias_harmonics: tuple | None = None
+    cell_cache: str | None = None
 
 
 @dataclass(frozen=True, eq=False)
@@ -1231,6 +1290,7 @@ class _Decoded:
     period_nm: float
     zoom: tuple            # (flat polygons near the centre or None, centre (um), half width (um), db unit (nm))
     facing: object = None  # metalay.design.side.Facing: the decoded sites are in the leaving light's frame
+    bias: dict | None = None  # how the responses of a biased mask were obtained (_biased_responses)
 
 
 def _read_and_decode(mask_path: Path, lib, design, target, opt: OpticsOptions, notes: list,
@@ -1245,11 +1305,9 @@ def _read_and_decode(mask_path: Path, lib, design, target, opt: OpticsOptions, n
     bias_nm = opt.bias_nm
     if bias_nm is None:
         bias_nm = float(getattr(mask_settings, "bias_nm", 0.0) or 0.0)
-    if getattr(mask_settings, "tone", "structures") != "structures":
-        raise MetalayError(f"{mask_path}: mask.tone = {mask_settings.tone!r}; the optical check reads structure "
-                           "polygons and supports tone 'structures' only")
     t0 = time.perf_counter()
-    flat = read_mask(mask_path, layers=[tuple(layer)], max_memory_bytes=opt.max_memory_bytes)
+    flat = read_mask(mask_path, layers=[written_layer(design, layer)],  # structures, or the film pieces
+                     max_memory_bytes=opt.max_memory_bytes)
     timings["read_s"] = time.perf_counter() - t0
     no_target = target is None and design is None
     if target is None:
@@ -1268,23 +1326,36 @@ def _read_and_decode(mask_path: Path, lib, design, target, opt: OpticsOptions, n
     period_nm = design.lattice.period_nm if design is not None else lib.period_nm
     lattice = design.lattice.kind if design is not None else lib.lattice
     t0 = time.perf_counter()
-    decoded = decode_sites(flat, lib.cells, period_nm=period_nm, lattice=lattice, layer=tuple(layer),
-                           size_tol_nm=opt.size_tol_nm, bias_nm=bias_nm, unmatched=opt.unmatched,
-                           where=str(mask_path))
+    decoded = decode_written(flat, lib.cells, design, period_nm=period_nm, lattice=lattice, layer=tuple(layer),
+                             size_tol_nm=opt.size_tol_nm, bias_nm=bias_nm, unmatched=opt.unmatched,
+                             where=str(mask_path))
     timings["decode_s"] = time.perf_counter() - t0
+    if tone_of(design) == "complement":
+        notes.append(f"tone 'complement': {decoded.stats['pieces']} written film pieces read; the openings are the "
+                     f"region minus the pieces on the writer's {decoded.stats['bands']} bands, measured by their area "
+                     "moments")
     facing = facing_of(design, lib, lit_from=opt.lit_from, where=str(mask_path))
     decoded = beam_frame_sites(decoded, facing)
     notes.append(f"illumination: {facing.describe()}")
+    bias_record = None
     if bias_nm and lib.has_responses:
-        t_long, t_short = _biased_responses(lib, t_long, t_short, decoded, bias_nm, notes)
+        t0 = time.perf_counter()
+        t_long, t_short, bias_record = _biased_responses(lib, t_long, t_short, decoded, bias_nm, notes,
+                                                         wavelength_nm=wl, opt=opt, design=design)
+        timings["bias_s"] = time.perf_counter() - t0
     # a small window of polygons for the layout figure, then free the vertex table
     zoom_c = tuple(float(v) for v in facing.beam_xy(*target.center_um))  # the axis as the file shows it
     zoom_hw = max(1.5, 4 * period_nm * 1e-3)
     first = flat.xy_db[flat.start[:-1]] * (flat.db_unit_nm / 1000.0)
     win = (np.abs(first[:, 0] - zoom_c[0]) < zoom_hw + 1) & (np.abs(first[:, 1] - zoom_c[1]) < zoom_hw + 1)
+    if tone_of(design) == "complement" and flat.count:  # film pieces are long: select them by their extent
+        lo = np.minimum.reduceat(flat.xy_db, flat.start[:-1], axis=0) * (flat.db_unit_nm / 1000.0)
+        hi = np.maximum.reduceat(flat.xy_db, flat.start[:-1], axis=0) * (flat.db_unit_nm / 1000.0)
+        c = np.asarray(zoom_c)
+        win = np.all((hi > c - zoom_hw - 1) & (lo < c + zoom_hw + 1), axis=1)
     zoom_flat = flat.select(win) if opt.make_plots else None
     return _Decoded(mask_path, lib, design, target, no_target, tuple(layer), bias_nm, decoded, t_long, t_short,
-                    period_nm, (zoom_flat, zoom_c, zoom_hw, flat.db_unit_nm), facing)
+                    period_nm, (zoom_flat, zoom_c, zoom_hw, flat.db_unit_nm), facing, bias=bias_record)
 
 
 def _decimation_note(ev: Evaluation, target: OpticsTarget, m: int, side: int, max_side: int) -> str:
@@ -1437,6 +1508,7 @@ def _figures(dec: _Decoded, ev: Evaluation, opt: OpticsOptions, notes: list, tim
     figures = {"illumination": dec.facing.as_dict(),
                "wavelength_nm": dec.target.wavelength_nm, "input_polarization": opt.polarization,
                "design_spin": dec.target.sigma, "power_budget": ev.budget, "decode": dec.decoded.stats,
+               **({"bias": dec.bias} if dec.bias is not None else {}),
                "grid": {"nx": int(near.designed.shape[1]), "ny": int(near.designed.shape[0]),
                         "dx_um": near.dx_um, "dy_um": near.dy_um, "decimation": near.decimation,
                         "fft_side": [int(ff.u.size), int(ff.v.size)], "pad_factor": opt.pad_factor},
@@ -1530,7 +1602,8 @@ def _images(dec: _Decoded, ev: Evaluation, figures: dict, fringe_image, opt: Opt
     images["3_layout_zoom"] = (f"mask polygons within {zoom_hw:g} um of ({zoom_c[0]:g}, {zoom_c[1]:g}) um, as the "
                                "file shows them (patterned face seen from above)",
                                plots.layout_zoom(zoom_flat.start, zoom_flat.xy_db, db_unit_nm, center_um=zoom_c,
-                                                 half_width_um=zoom_hw))
+                                                 half_width_um=zoom_hw,
+                                                 by_extent=tone_of(dec.design) == "complement"))
     lam_um = target.wavelength_nm * 1e-3
     ext = min(1.0, max(3 * np.hypot(*target.direction), 40 * lam_um / ev.diameter_um,
                        *[1.5 * np.hypot(c[1], c[2]) for c in target.channels] or [0]))
@@ -1613,7 +1686,8 @@ def check_optics(mask_path, library, *, design=None, target: OpticsTarget | None
               "polarization": opt.polarization, "layer": list(dec.layer), "bias_nm": dec.bias_nm,
               "size_tol_nm": opt.size_tol_nm, "empty_t": str(opt.empty_t), "pad_factor": opt.pad_factor,
               "max_side": opt.max_side, "lit_from": dec.facing.lit_from,
-              "illumination": dec.facing.describe(), "verdict": figures["verdicts"]["verdict"]}
+              "illumination": dec.facing.describe(), "verdict": figures["verdicts"]["verdict"],
+              **({"bias_response": dec.bias["response"]} if dec.bias is not None else {})}
     figures["inputs"] = json_ready(inputs)
     if opt.make_plots:
         from metalay.checks.report import render_html

@@ -86,13 +86,23 @@ def phase_map(phase_rad: np.ndarray, x_um: np.ndarray, y_um: np.ndarray, *, titl
 
 @styled
 def layout_zoom(start: np.ndarray, xy_db: np.ndarray, db_unit_nm: float, *, center_um=(0.0, 0.0), half_width_um=2.0,
-                title: str = "mask layout (zoom)", max_polygons: int = 5000) -> bytes:
-    """Polygons of the mask inside a square window, drawn as outlines over a light fill."""
+                title: str = "mask layout (zoom)", max_polygons: int = 5000, by_extent: bool = False) -> bytes:
+    """Polygons of the mask inside a square window, drawn as outlines over a light fill.
+
+    Polygons are chosen by their first vertex (small elements), or with ``by_extent`` by their bounding box (the
+    long film pieces of a complement-tone mask).
+    """
     counts = np.diff(start)
     um_per_db = db_unit_nm / 1000.0
-    first = xy_db[start[:-1]] * um_per_db
-    near = (np.abs(first[:, 0] - center_um[0]) < half_width_um + 1) & \
-           (np.abs(first[:, 1] - center_um[1]) < half_width_um + 1)
+    if by_extent and counts.size:
+        lo = np.minimum.reduceat(xy_db, start[:-1], axis=0) * um_per_db
+        hi = np.maximum.reduceat(xy_db, start[:-1], axis=0) * um_per_db
+        c = np.asarray(center_um, dtype=np.float64)
+        near = np.all((hi > c - half_width_um) & (lo < c + half_width_um), axis=1)
+    else:
+        first = xy_db[start[:-1]] * um_per_db
+        near = (np.abs(first[:, 0] - center_um[0]) < half_width_um + 1) & \
+               (np.abs(first[:, 1] - center_um[1]) < half_width_um + 1)
     idx = np.flatnonzero(near)[:max_polygons]
     polys = [xy_db[start[k]:start[k] + counts[k]] * um_per_db for k in idx]  # a few hundred polygons for the figure
     fig = new_figure(4.6, 4.6)

@@ -32,6 +32,16 @@ def add_parser(subparsers) -> argparse.ArgumentParser:
                         "design's design.lit_from, else the side the library was computed for)")
     p.add_argument("--bias-nm", type=float, default=None,
                    help="process bias per edge written into the mask (default: the design's, else 0)")
+    p.add_argument("--bias-response", choices=("as-written", "nominal"), default=None,
+                   help="responses of a biased mask: each cell at the size as written, solved by metalay's RCWA "
+                        "when the library has no such cell ('as-written'), or 'nominal' (assume the process "
+                        "removes the bias exactly); default: the design's checks.bias_response, else as-written")
+    p.add_argument("--bias-harmonics", type=int, default=None, metavar="N",
+                   help="truncation (orders per axis) of the biased-cell solves (default: the design's "
+                        "checks.bias_harmonics, else the library's recorded truncation at each wavelength)")
+    p.add_argument("--cell-cache", type=Path, default=None, metavar="DIR",
+                   help="folder that keeps solved biased cells between runs (default: the design's "
+                        "checks.cell_cache, else none)")
     p.add_argument("--size-tol-nm", type=float, default=3.0, help="size tolerance for matching library cells")
     p.add_argument("--unmatched", choices=("error", "nearest", "drop"), default="error",
                    help="elements matching no cell: stop, use the nearest cell, or leave the site empty")
@@ -66,6 +76,7 @@ def run(args) -> int:
     _check_range("max-side", args.max_side, 64, 16384)
     _check_range("size-tol-nm", args.size_tol_nm, 0.0)
     _check_range("wavelength-nm", args.wavelength_nm, 100.0, 20000.0)
+    _check_range("bias-harmonics", args.bias_harmonics, 0, 40)
     if not args.mask.is_file():
         raise MetalayError(f"{args.mask}: mask file not found")
     design = None
@@ -87,7 +98,9 @@ def run(args) -> int:
                             size_tol_nm=args.size_tol_nm, unmatched=args.unmatched, pad_factor=args.pad_factor,
                             max_side=args.max_side, make_plots=not args.no_plots,
                             log_far_field=not args.linear_scale, lit_from=args.lit_from,
-                            max_memory_bytes=args.max_memory)
+                            max_memory_bytes=args.max_memory, bias_response=args.bias_response,
+                            bias_harmonics=None if args.bias_harmonics is None else (args.bias_harmonics,) * 2,
+                            cell_cache=None if args.cell_cache is None else str(args.cell_cache))
     res = check_optics(args.mask, library, design=design, out_dir=out, options=options)
     if not args.quiet:
         f = res.figures

@@ -47,6 +47,16 @@ def add_parser(subparsers) -> None:
     p.add_argument("--missing-fraction", type=float, default=0.0, help="probability that an element is missing")
     p.add_argument("--detune-nm", type=float, default=0.0,
                    help="standard deviation of the illumination wavelength offset (nm, one draw per sample)")
+    p.add_argument("--cd-response", choices=("solved", "nominal"), default="solved",
+                   help="CD bias of a library with one size per cell: solve the biased cells with metalay's RCWA "
+                        "(default) or keep the nominal responses ('nominal': CD bias is then not evaluated)")
+    p.add_argument("--bias-harmonics", type=int, default=None, metavar="N",
+                   help="truncation (orders per axis) of the biased-cell solves (default: the library's recorded "
+                        "truncation at each wavelength)")
+    p.add_argument("--bias-step-nm", type=float, default=0.5,
+                   help="bias grid of the solved cells, interpolated between nodes (default 0.5 nm)")
+    p.add_argument("--cell-cache", type=Path, default=None, metavar="DIR",
+                   help="folder that keeps solved biased cells between runs (default: none)")
     p.add_argument("--seed", type=int, default=0, help="random seed (default 0)")
     p.add_argument("--purity-threshold", type=float, default=None,
                    help="sweep each error kind and report the magnitude at which the 5th percentile of purity "
@@ -122,14 +132,16 @@ def _run_tolerance(args) -> int:
     _positive_int("max-side", args.max_side, 64, 16384)
     for name, v in (("cd-bias-nm", args.cd_bias_nm[0]), ("cd-bias-nm", args.cd_bias_nm[1]),
                     ("rotation-jitter-deg", args.rotation_jitter_deg), ("missing-fraction", args.missing_fraction),
-                    ("detune-nm", args.detune_nm)):
+                    ("detune-nm", args.detune_nm), ("bias-step-nm", args.bias_step_nm)):
         if not math.isfinite(v):
             raise MetalayError(f"command line: --{name} = {v!r}; allowed: a finite number")
     settings = ToleranceSettings(samples=args.samples, cd_bias_mean_nm=args.cd_bias_nm[0],
                                  cd_bias_sd_nm=args.cd_bias_nm[1], rotation_sd_deg=args.rotation_jitter_deg,
                                  missing_fraction=args.missing_fraction, detune_sd_nm=args.detune_nm,
                                  seed=args.seed, purity_threshold=args.purity_threshold,
-                                 sweep_samples=args.sweep_samples)
+                                 sweep_samples=args.sweep_samples, cd_response=args.cd_response,
+                                 bias_harmonics=None if args.bias_harmonics is None else (args.bias_harmonics,) * 2,
+                                 bias_step_nm=args.bias_step_nm)
     settings.validate(where="command line")
     from metalay.api import prepare_design
 
@@ -137,7 +149,7 @@ def _run_tolerance(args) -> int:
     out = args.output or Path("out") / f"{args.design.stem}-tolerance"
     res = tolerance_study(design, out, settings=settings, mask=args.mask, max_side=args.max_side,
                           workers=args.workers, show_progress=False if args.quiet else None,
-                          make_plots=not args.no_plots)
+                          make_plots=not args.no_plots, cell_cache=args.cell_cache)
     if args.quiet:
         return 0
     print(f"{settings.samples} samples, seed {settings.seed}: figure  nominal  median  [5th, 95th percentile]")

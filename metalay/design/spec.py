@@ -99,6 +99,14 @@ class CheckSettings:
     optics: bool = True
     fail_at: str = "fail"
     limits: Limits = Limits()
+    bias_response: str = "as-written"
+    bias_harmonics: int | None = None
+    cell_cache: str | None = None
+
+
+#: Values of ``checks.bias_response``: the optical check of a biased mask uses each cell at the size as written
+#: (a library cell of that size, else solved on demand), or its nominal response (the process removes the bias).
+BIAS_RESPONSES = ("as-written", "nominal")
 
 
 @dataclass(frozen=True)
@@ -147,7 +155,7 @@ def parse_design(data: dict, *, where: str = "<memory>", base_dir: str | Path = 
     aperture = _parse_aperture(top.table("aperture"))
     lattice = _parse_lattice(top.table("lattice"), aperture)
     mask = _parse_mask(top.table("mask", {}))
-    checks = _parse_checks(top.table("checks", {}))
+    checks = _parse_checks(top.table("checks", {}), base_dir)
     top.raw("routes", {})  # fabrication-route settings, validated by metalay.routes
     top.check_unknown()
     return Design(name=name, wavelength_nm=float(wavelength_nm), sigma=int(sigma), terms=terms, aperture=aperture,
@@ -181,11 +189,16 @@ def _parse_design_table(d: TomlTable, base_dir: Path):
 FAIL_AT = ("fail", "warn", "never")
 
 
-def _parse_checks(c: TomlTable) -> CheckSettings:
-    """``[checks]``: which checks run, the exit-code level and the verdict thresholds (``[checks.limits]``)."""
+def _parse_checks(c: TomlTable, base_dir: Path) -> CheckSettings:
+    """``[checks]``: which checks run, the exit-code level, the verdict thresholds (``[checks.limits]``) and how
+    the optical check treats a biased mask (``bias_response``, ``bias_harmonics``, ``cell_cache``)."""
+    cache = c.string("cell_cache", None)
     checks = CheckSettings(rules=c.boolean("rules", True), fail_on_violations=c.boolean("fail_on_violations", False),
                            optics=c.boolean("optics", True), fail_at=c.string("fail_at", "fail", options=FAIL_AT),
-                           limits=_parse_limits(c.table("limits")) if c.has("limits") else Limits())
+                           limits=_parse_limits(c.table("limits")) if c.has("limits") else Limits(),
+                           bias_response=c.string("bias_response", "as-written", options=BIAS_RESPONSES),
+                           bias_harmonics=c.number("bias_harmonics", None, lo=0, hi=40, integer=True),
+                           cell_cache=None if cache is None else str(base_dir / cache))
     c.check_unknown()
     return checks
 

@@ -63,10 +63,9 @@ from metalay.mask.mapping import assign_cells, wrap_pi
 from metalay.mask.process import (
     WriteFieldGrid,
     alignment_marks,
-    aperture_region_db,
     bias_outline_nm,
     check_marks_clear,
-    complement_bands,
+    complement_layout,
     complement_tile,
     default_mark_positions_um,
     dose_datatype_lut,
@@ -407,16 +406,13 @@ def _plan(design: Design, out: Path, *, sites_per_tile: int, structures_for_chec
 def _complement_plan(design: Design, ctx: "_TileContext", outlines, grid, *, encode_structures: bool):
     """Tone inversion: the region to invert and its bands (every ``COMPLEMENT_VERIFY_EVERY``-th XOR-verified)."""
     mask = design.mask
-    db_unit_nm = mask.db_unit_nm
-    region = (aperture_region_db(design.aperture, db_unit_nm=db_unit_nm) if mask.complement_region == "aperture"
-              else frame_region_db(design.aperture, margin_um=mask.frame_margin_um, db_unit_nm=db_unit_nm))
-    reach_nm = max(float(np.hypot(*o.T).max()) for o in outlines) + 2 * db_unit_nm
+    reach_nm = max(float(np.hypot(*o.T).max()) for o in outlines) + 2 * mask.db_unit_nm
     if grid is not None:
         reach_nm += mask.write_field.max_shift_nm
-    bands = complement_bands(region, design.lattice, design.aperture, db_unit_nm=db_unit_nm, reach_nm=reach_nm,
-                             rows_per_band=mask.complement_band_rows, field=grid)
-    ctx = replace(ctx, region=region, encode_structures=bool(encode_structures))
-    return ctx, [(b.rows, b.box_db, k % COMPLEMENT_VERIFY_EVERY == 0) for k, b in enumerate(bands)]
+    # the same region and bands the decoder of the written pieces uses (metalay.checks.openings)
+    layout = complement_layout(design, reach_nm=reach_nm)
+    ctx = replace(ctx, region=layout.region, encode_structures=bool(encode_structures))
+    return ctx, [(b.rows, b.box_db, k % COMPLEMENT_VERIFY_EVERY == 0) for k, b in enumerate(layout.bands)]
 
 
 # ----------------------------------------------------------------------------------------------------------------

@@ -96,8 +96,8 @@ from metalay.mask.layout import Polygon
 __all__ = [
     "BIAS_CORNERS", "STRADDLE_MODES", "MARK_KINDS", "BABINET_SOURCE",
     "offset_convex_polygons", "bias_outline_nm", "biased_dims_nm", "find_cell_at_dims",
-    "aperture_region_db", "frame_region_db", "ComplementBand", "complement_bands", "ComplementTile",
-    "complement_tile", "pieces_by_vertex_count",
+    "aperture_region_db", "frame_region_db", "ComplementBand", "complement_bands", "ComplementLayout",
+    "complement_layout", "ComplementTile", "complement_tile", "strip_unions", "pieces_by_vertex_count",
     "WriteFieldGrid", "FieldFit", "field_index", "straddles_write_field", "fit_write_fields",
     "shift_phase_error_rad", "field_cell_name",
     "alignment_marks", "default_mark_positions_um", "check_marks_clear",
@@ -356,6 +356,69 @@ def complement_bands(region, lattice: Lattice, aperture: Aperture, *, db_unit_nm
 
 
 @dataclass(frozen=True)
+class ComplementLayout:
+    """Where a tone inversion works: the region, its bands and its vertical cut lines (database units).
+
+    Shared by the writer (:mod:`metalay.mask.compile`) and the decoder of written pieces
+    (:mod:`metalay.checks.openings`), so both see the same region and the same band boxes.
+
+    Attributes
+    ----------
+    region : shapely geometry
+        Region inverted (:func:`aperture_region_db` or :func:`frame_region_db`).
+    bands : tuple of ComplementBand
+        Bands in y order (:func:`complement_bands`).
+    field : WriteFieldGrid or None
+        Write-field grid whose boundaries are extra cut lines.
+    datatype : int
+        GDSII datatype of the written pieces (the design's ``complement`` dose datatype, else the structures one).
+    """
+
+    region: object
+    bands: tuple
+    field: "WriteFieldGrid | None"
+    datatype: int
+
+    def field_cuts_db(self, x0: int, x1: int) -> np.ndarray | None:
+        """Write-field boundaries ``x0 <= x <= x1`` (the writer's extra vertical cut lines), or None."""
+        grid = self.field
+        if grid is None:
+            return None
+        k0 = math.floor((x0 - grid.origin_db[0]) / grid.size_db[0])
+        k1 = math.ceil((x1 - grid.origin_db[0]) / grid.size_db[0])
+        return grid.origin_db[0] + grid.size_db[0] * np.arange(k0, k1 + 1)
+
+
+def complement_layout(design, *, reach_nm: float = 0.0) -> ComplementLayout:
+    """Region, bands, write-field cut lines and datatype of a design's tone inversion.
+
+    Parameters
+    ----------
+    design : metalay.design.spec.Design
+        Uses ``mask.complement_region``, ``mask.complement_band_rows``, ``mask.frame_margin_um``,
+        ``mask.db_unit_nm``, ``mask.write_field``, ``mask.dose_datatypes``, the aperture and the lattice.
+    reach_nm : float
+        Largest distance from a site centre to a vertex of its element (sets the halo rows of each band; the band
+        boxes do not depend on it).
+
+    Returns
+    -------
+    ComplementLayout
+    """
+    mask = design.mask
+    db_unit_nm = mask.db_unit_nm
+    region = (aperture_region_db(design.aperture, db_unit_nm=db_unit_nm) if mask.complement_region == "aperture"
+              else frame_region_db(design.aperture, margin_um=mask.frame_margin_um, db_unit_nm=db_unit_nm))
+    grid = None
+    if mask.write_field is not None:
+        grid = WriteFieldGrid.from_um(mask.write_field.size_um, mask.write_field.origin_um, db_unit_nm=db_unit_nm)
+    bands = complement_bands(region, design.lattice, design.aperture, db_unit_nm=db_unit_nm, reach_nm=reach_nm,
+                             rows_per_band=mask.complement_band_rows, field=grid)
+    datatype = int(dict(mask.dose_datatypes).get("complement", mask.layer("structures")[1]))
+    return ComplementLayout(region, tuple(bands), grid, datatype)
+
+
+@dataclass(frozen=True)
 class ComplementTile:
     """Hole-free polygons of one tile of the complement (integer database units).
 
@@ -466,7 +529,7 @@ def complement_tile(centres_db, offsets_db, region, box_db, *, max_vertices: int
         strips = shapely.box(xs[s0:s1], y0, xs[s0 + 1:s1 + 1], y1)
         if not rect:
             strips = shapely.intersection(strips, region_box)
-        diff = shapely.difference(strips, _strip_holes(elem_polys, a, b, s0, s1))
+        diff = shapely.difference(strips, strip_unions(elem_polys, a, b, s0, s1))
         parts, pid = shapely.get_parts(diff, return_index=True)
         nz = shapely.area(parts) > 0
         polys, ids = _hole_free(parts[nz], pid[nz], max_vertices)
@@ -499,9 +562,13 @@ def _elements_in_box(centres_db, offsets_db, box_db):
     return absv[sel], lo[sel], hi[sel], centres[sel, 0]
 
 
-def _strip_holes(elem_polys, a, b, s0: int, s1: int) -> np.ndarray:
-    """Per strip ``s0 <= s < s1``: the elements overlapping it (strips ``[a, b)`` per element) as one multipolygon,
-    a true union where elements overlap or touch; empty where there are none."""
+def strip_unions(elem_polys, a, b, s0: int, s1: int) -> np.ndarray:
+    """Per strip ``s0 <= s < s1``: the polygons overlapping it (strips ``[a, b)`` per polygon) as one multipolygon,
+    a true union where polygons overlap or touch; empty where there are none.
+
+    Used by :func:`complement_tile` (elements per strip) and by the decoder of written pieces
+    (:mod:`metalay.checks.openings`, pieces per strip).
+    """
     ea = np.maximum(a, s0)
     eb = np.minimum(b, s1)
     cnt = np.maximum(eb - ea, 0)

@@ -26,7 +26,10 @@ Perturbation model
 * Critical-dimension (CD) bias ``b`` (nm per edge, one value per sample drawn from ``N(mean, sd)``): every size
   of every element grows by ``2 b``; its response is interpolated linearly (real and imaginary parts) between
   library cells of the same kind that lie on the uniform-bias line through the nominal cell
-  (:func:`biased_responses`).  A library with one size per kind cannot give CD bias (stated in the result).
+  (:func:`biased_responses`).  A library with one size per cell (every bundled geometric-phase library) has its
+  biased cells solved by metalay's RCWA on a bias grid before the samples run
+  (:class:`metalay.cells.biascells.BiasedCells`, solver settings recorded in the result); only with
+  ``cd_response = "nominal"`` is CD bias left out (stated in the notes).
 * Rotation error: each element's angle gets an independent ``N(0, s)`` error; its converted field is multiplied
   by ``exp(2 i sigma d_theta)``.
 * Missing elements: each element is absent with probability ``m``; its cell then transmits ``empty_t``
@@ -57,7 +60,8 @@ from pathlib import Path
 import numpy as np
 
 from metalay.checks import optics
-from metalay.checks.decode import DecodedSites, cell_shape_table, decode_sites
+from metalay.checks.decode import DecodedSites, cell_shape_table
+from metalay.checks.openings import decode_written, written_layer
 from metalay.errors import MetalayError, StudyError
 
 __all__ = [
@@ -108,6 +112,8 @@ class SiteModel:
     empty_t : complex
     phi_site : ndarray (S,) float64 or None
         Target phase at the decoded sites' lattice positions (design wavelength).
+    biased : BiasedCells or None
+        Solver (and cache) of the cells grown by a CD bias, for libraries with one size per cell.
     """
 
     decoded: DecodedSites
@@ -122,6 +128,7 @@ class SiteModel:
     phi_site: np.ndarray | None
     mask_path: str = ""
     _cache: dict = field(default_factory=dict, repr=False)
+    biased: object = None  # metalay.cells.biascells.BiasedCells for CD bias of single-size libraries
 
 
 def site_model(mask_path, library, design, *, max_side: int = 1024, pad_factor: float = 2.0,
@@ -150,14 +157,11 @@ def site_model(mask_path, library, design, *, max_side: int = 1024, pad_factor: 
 
     lib = library if isinstance(library, CellLibrary) else load_library(library)
     mask_settings = design.mask
-    if mask_settings.tone != "structures":
-        raise StudyError(f"{mask_path}: mask.tone = {mask_settings.tone!r}; studies read structure polygons and "
-                         "support tone 'structures' only")
     layer = mask_settings.layer("structures")
-    flat = read_mask(mask_path, layers=[tuple(layer)])
-    decoded = decode_sites(flat, lib.cells, period_nm=design.lattice.period_nm, lattice=design.lattice.kind,
-                           layer=tuple(layer), size_tol_nm=size_tol_nm, bias_nm=float(mask_settings.bias_nm or 0.0),
-                           unmatched=unmatched, where=str(mask_path))
+    flat = read_mask(mask_path, layers=[written_layer(design, layer)])  # structures, or the film pieces
+    decoded = decode_written(flat, lib.cells, design, period_nm=design.lattice.period_nm,
+                             lattice=design.lattice.kind, layer=tuple(layer), size_tol_nm=size_tol_nm,
+                             bias_nm=float(mask_settings.bias_nm or 0.0), unmatched=unmatched, where=str(mask_path))
     del flat
     facing = optics.facing_of(design, lib, where=str(mask_path))
     decoded = optics.beam_frame_sites(decoded, facing)  # the frame of the light leaving the element
@@ -661,6 +665,14 @@ class ToleranceSettings:
         Multiples of each requested magnitude swept for the threshold.
     sweep_samples : int
         Samples per sweep level.
+    cd_response : {"solved", "nominal"}
+        CD bias of a library with one size per cell: "solved" (default) computes the biased cells with metalay's
+        RCWA (:class:`metalay.cells.biascells.BiasedCells`); "nominal" keeps the nominal responses, so CD bias is
+        not evaluated (stated in the notes). Libraries with several sizes interpolate between their cells.
+    bias_harmonics : (int, int) or None
+        Truncation of those solves (default: the library's recorded truncation at each wavelength).
+    bias_step_nm : float
+        Bias grid of the solved cells (biases between nodes are interpolated in amplitude and phase).
     """
 
     samples: int = 200
@@ -673,6 +685,9 @@ class ToleranceSettings:
     purity_threshold: float | None = None
     sweep_levels: tuple = (0.0, 0.5, 1.0, 1.5, 2.0, 3.0, 4.0)
     sweep_samples: int = 24
+    cd_response: str = "solved"
+    bias_harmonics: tuple | None = None
+    bias_step_nm: float = 0.5
 
     def validate(self, where: str = "tolerance") -> None:
         """Raise :class:`StudyError` naming the first value outside its range."""
@@ -697,6 +712,13 @@ class ToleranceSettings:
             bad("sweep_samples", self.sweep_samples, "1..100000")
         if not isinstance(self.seed, (int, np.integer)) or self.seed < 0:
             bad("seed", self.seed, "an integer >= 0")
+        if self.cd_response not in CD_RESPONSES:
+            bad("cd_response", self.cd_response, ", ".join(CD_RESPONSES))
+        if not (math.isfinite(self.bias_step_nm) and 0.01 <= self.bias_step_nm <= 10):
+            bad("bias_step_nm", self.bias_step_nm, "0.01..10 nm")
+        if self.bias_harmonics is not None and not (len(self.bias_harmonics) == 2 and all(
+                isinstance(h, (int, np.integer)) and 0 <= h <= 40 for h in self.bias_harmonics)):
+            bad("bias_harmonics", self.bias_harmonics, "two integers 0..40")
 
     def kinds(self) -> list[str]:
         """Error kinds switched on."""
@@ -728,13 +750,31 @@ class ToleranceSettings:
 
 _START_METHOD = "fork"
 _KIND_STREAM = {"cd_bias": 0, "detune": 1, "rotation": 2, "missing": 3}
+#: Values of :attr:`ToleranceSettings.cd_response`.
+CD_RESPONSES = ("solved", "nominal")
+
+
+def _streams(seed_seq) -> list:
+    """The four child streams of a sample (what ``seed_seq.spawn(4)`` gives a fresh sequence), without changing
+    ``seed_seq`` (so the draws can be repeated, e.g. to solve the needed biased cells before the samples run)."""
+    return [np.random.SeedSequence(seed_seq.entropy, spawn_key=tuple(seed_seq.spawn_key) + (k,),
+                                   pool_size=seed_seq.pool_size) for k in range(4)]
+
+
+def _drawn_bias_and_wavelength(model: SiteModel, st: "ToleranceSettings", seed_seq) -> tuple[float, float]:
+    """The CD bias (nm) and wavelength (nm) that :func:`_sample` draws for ``seed_seq`` (same streams, same order)."""
+    rng = [np.random.default_rng(q) for q in _streams(seed_seq)]
+    wl = model.target.wavelength_nm
+    if st.detune_sd_nm:
+        wl += float(rng[_KIND_STREAM["detune"]].normal(0.0, st.detune_sd_nm))
+    b = float(st.cd_bias_mean_nm + st.cd_bias_sd_nm * rng[_KIND_STREAM["cd_bias"]].standard_normal())
+    return b, wl
 
 
 def _sample(model: SiteModel, st: ToleranceSettings, seed_seq, cd_ok: bool, budget_only: bool = False) -> dict:
     """One Monte Carlo sample: draw the errors from ``seed_seq`` and evaluate."""
     d = model.decoded
-    streams = seed_seq.spawn(4)
-    rng = [np.random.default_rng(s) for s in streams]
+    rng = [np.random.default_rng(s) for s in _streams(seed_seq)]
     wl = model.target.wavelength_nm
     info = {"cd_bias_nm": 0.0, "detune_nm": 0.0, "missing": 0, "clipped": False}
     if st.detune_sd_nm:
@@ -744,7 +784,10 @@ def _sample(model: SiteModel, st: ToleranceSettings, seed_seq, cd_ok: bool, budg
     if cd_ok and (st.cd_bias_mean_nm or st.cd_bias_sd_nm):
         b = float(st.cd_bias_mean_nm + st.cd_bias_sd_nm * rng[_KIND_STREAM["cd_bias"]].standard_normal())
         info["cd_bias_nm"] = b
-        tl_c, ts_c, info["clipped"] = biased_responses(model.library, np.unique(d.cell), b, wl_s)
+        if model.biased is not None:  # one size per cell: the biased cells solved (prepared before the samples)
+            tl_c, ts_c = model.biased.responses_at(np.unique(d.cell), b, wl_s)
+        else:
+            tl_c, ts_c, info["clipped"] = biased_responses(model.library, np.unique(d.cell), b, wl_s)
         t_long, t_short = tl_c[d.cell], ts_c[d.cell]
     rot = None
     if st.rotation_sd_deg:
@@ -861,7 +904,8 @@ def _magnitude(st: ToleranceSettings, kind: str) -> float:
 
 def tolerance_study(design, out_dir=None, *, settings: ToleranceSettings = ToleranceSettings(), mask=None,
                     max_side: int = 1024, pad_factor: float = 2.0, workers: int | None = None,
-                    show_progress: bool | None = None, make_plots: bool = True) -> ToleranceResult:
+                    show_progress: bool | None = None, make_plots: bool = True,
+                    cell_cache=None) -> ToleranceResult:
     """Monte Carlo over fabrication errors of a compiled design, evaluated by the optical check.
 
     Parameters
@@ -879,6 +923,8 @@ def tolerance_study(design, out_dir=None, *, settings: ToleranceSettings = Toler
         Processes over samples (default: the number of cores).  Results do not depend on it.
     show_progress : bool or None
     make_plots : bool
+    cell_cache : str or Path, optional
+        Folder that keeps solved biased cells between runs (CD bias of single-size libraries).
 
     Returns
     -------
@@ -906,7 +952,8 @@ def tolerance_study(design, out_dir=None, *, settings: ToleranceSettings = Toler
     mask = _mask_for_study(design, out_dir, mask)
     lib = load_library(design.library)
     model = site_model(mask, lib, design, max_side=max_side, pad_factor=pad_factor)
-    cd_ok = _check_tolerance_inputs(design, lib, model, settings, notes)
+    cd_mode = _check_tolerance_inputs(design, lib, model, settings, notes)
+    cd_ok = bool(cd_mode)
     nominal = evaluate_sites(model, workers=n_workers)
     nominal.pop("oam_weights", None)
     seeds = np.random.SeedSequence(int(settings.seed)).spawn(settings.samples)
@@ -914,6 +961,8 @@ def tolerance_study(design, out_dir=None, *, settings: ToleranceSettings = Toler
     sweep_plan = []
     if settings.purity_threshold is not None:
         sweep_plan = [(k, float(s)) for k in kinds for s in settings.sweep_levels]
+    if cd_mode == "solved":
+        model = _with_biased_cells(model, settings, seeds, sweep_plan, cell_cache, notes)
     total = settings.samples + len(sweep_plan) * settings.sweep_samples
     bar = progress(total=total, desc="tolerance: samples", enabled=show_progress, unit="sample")
     try:
@@ -927,10 +976,15 @@ def tolerance_study(design, out_dir=None, *, settings: ToleranceSettings = Toler
                      "(their spread is understated)")
     thresholds = {kind: _threshold_crossing(settings.purity_threshold, kind, rows) for kind, rows in sweeps.items()}
     stats = _stats(samples)
+    cd_record = {"evaluated": cd_ok, "method": {"library": "interpolated between library cells of several sizes",
+                                                "solved": "biased cells solved by metalay's RCWA",
+                                                "": "not evaluated (see notes)"}[cd_mode]}
+    if model.biased is not None:
+        cd_record["solver"] = model.biased.record()
     result_json = {"format": "metalay.tolerance-study", "format_version": 1, "design": design.name,
                    "library": lib.name, "mask": Path(mask).name, "settings": settings.__dict__,
                    "nominal": nominal, "statistics": stats, "thresholds": thresholds, "notes": notes,
-                   "elements": len(model.decoded), "caution": optics.SAFETY_NOTE}
+                   "cd_bias": cd_record, "elements": len(model.decoded), "caution": optics.SAFETY_NOTE}
     files = {}
     if out_dir is not None:
         files = _write_tolerance_files(out_dir, result_json, samples, nominal, thresholds, make_plots)
@@ -953,21 +1007,59 @@ def _mask_for_study(design, out_dir, mask):
 
 
 def _check_tolerance_inputs(design, lib, model: SiteModel, settings: ToleranceSettings, notes: list) -> bool:
-    """Refuse what cannot be evaluated; note what is skipped. Returns whether CD bias can be evaluated."""
+    """Refuse what cannot be evaluated; note what is skipped.
+
+    Returns how CD bias is evaluated: "library" (interpolated between library cells of several sizes), "solved"
+    (biased cells solved by the RCWA) or "" (not evaluated, noted).
+    """
     if not lib.has_responses:
         notes.append(f"library {lib.name} has no optical responses: ideal half-wave cells (t_long = 1, t_short = "
                      "-1) assumed; CD bias and detuning cannot be evaluated")
     cells_used = np.unique(model.decoded.cell)
     cd_ok, cd_msg = (_cd_available(lib, cells_used) if lib.has_responses else (False, "no responses"))
-    if (settings.cd_bias_mean_nm or settings.cd_bias_sd_nm) and not cd_ok:
-        notes.append(f"CD bias not evaluated: {cd_msg}")
+    wants_cd = bool(settings.cd_bias_mean_nm or settings.cd_bias_sd_nm)
+    if wants_cd and not cd_ok and lib.has_responses and settings.cd_response == "solved":
+        return "solved"  # one size per cell: the biased cells are solved (_with_biased_cells)
+    if wants_cd and not cd_ok:
+        why = ("nominal responses kept as asked (cd_response 'nominal')" if settings.cd_response == "nominal"
+               and lib.has_responses else cd_msg)
+        notes.append(f"CD bias not evaluated: {why}")
     if settings.detune_sd_nm and not lib.has_responses:
         raise StudyError(f"tolerance: detune_sd_nm = {settings.detune_sd_nm:g} needs a library with responses; "
                          f"{lib.name} has none")
     if settings.purity_threshold is not None and model.target.charge is None:
         raise StudyError(f"{design.source_path}: purity_threshold needs a design with one topological charge about "
                          "the beam axis")
-    return cd_ok
+    return "library" if cd_ok else ""
+
+
+def _with_biased_cells(model: SiteModel, settings: ToleranceSettings, seeds, sweep_plan, cell_cache,
+                       notes: list) -> SiteModel:
+    """The model with a :class:`~metalay.cells.biascells.BiasedCells` holding every biased cell the samples draw.
+
+    The draws are repeated here (same streams as :func:`_sample`) and the needed bias-grid nodes and tabulated
+    wavelengths are solved in batches before any sample runs, so forked workers find them in the cache and the
+    results do not depend on the worker count.
+    """
+    from metalay.cells.biascells import BiasedCells
+
+    solver = BiasedCells(model.library, harmonics=settings.bias_harmonics, bias_step_nm=settings.bias_step_nm,
+                         cache_dir=cell_cache)
+    draws = [_drawn_bias_and_wavelength(model, settings, q) for q in seeds]
+    sweep_seeds = np.random.SeedSequence([int(settings.seed), 1]).spawn(settings.sweep_samples)
+    for kind, scale in sweep_plan:
+        if kind == "cd_bias":
+            st = settings.only(kind, scale)
+            draws += [_drawn_bias_and_wavelength(model, st, q) for q in sweep_seeds]
+    biases, wavelengths = solver.nodes_for([d[0] for d in draws], [d[1] for d in draws])
+    solver.prepare(np.unique(model.decoded.cell), biases, wavelengths)
+    rec = solver.record()
+    trunc = rec["truncation"]
+    notes.append(f"CD bias: the library has one size per cell, so the biased cells were solved with metalay's RCWA "
+                 f"on a {settings.bias_step_nm:g} nm bias grid ({len(biases)} biases x {len(wavelengths)} "
+                 f"wavelengths; truncation: {trunc if isinstance(trunc, str) else trunc}); "
+                 f"{rec['points_loaded_from_cache']} points from the cache folder")
+    return replace(model, biased=solver)
 
 
 def _run_sweeps(model: SiteModel, settings: ToleranceSettings, sweep_plan, cd_ok: bool, n_workers: int,
