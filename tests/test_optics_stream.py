@@ -165,10 +165,11 @@ def test_bound_formula_and_bad_settings():
 def test_cli_streamed_optics_writes_figures_bound_and_caution(tmp_path, capsys):
     import json
 
-    from conftest import SMALL_DESIGN, write_toml
     from metalay.api import compile_design
     from metalay.cli import main
     from metalay.design.spec import load_design
+
+    from conftest import SMALL_DESIGN, write_toml
 
     toml = write_toml(tmp_path / "d.toml", dict(SMALL_DESIGN, mask={"formats": ["gds"]}))
     gds = compile_design(load_design(toml), tmp_path / "c", show_progress=False).files["gds"]

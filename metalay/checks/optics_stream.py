@@ -273,15 +273,18 @@ class StreamedOptics:
     timings: dict
 
 
-def _responses(lib, wl: float, bias_nm: float, notes: list):
-    from metalay.checks.optics import _biased_responses
+def _responses(lib, wl: float, bias_nm: float, notes: list, design=None):
+    """Responses per library cell at ``wl``; a biased mask's cells at their size as written (as the whole-mask
+    check does, for every cell of the library: which cells the mask uses is known only after the stream)."""
+    from metalay.checks.optics import OpticsOptions, _biased_responses
 
     if lib.has_responses:
         t_long, t_short = lib.response_at(wl)
         notes.append(f"cell responses from library {lib.name} at {wl:g} nm")
         if bias_nm:
             every = type("AllCells", (), {"cell": np.arange(len(lib.cells))})()
-            t_long, t_short = _biased_responses(lib, t_long, t_short, every, bias_nm, notes)
+            t_long, t_short, _ = _biased_responses(lib, t_long, t_short, every, bias_nm, notes, wavelength_nm=wl,
+                                                   opt=OpticsOptions(), design=design)
     else:
         t_long, t_short = ideal_responses(len(lib.cells))
         notes.append(f"library {lib.name} has no optical responses: ideal half-wave cells assumed")
@@ -293,7 +296,7 @@ def _stream_sites(chunks, lib, setup: dict, accs: dict, notes: list):
     from metalay.checks.decode import decode_sites
 
     target = setup["target"]
-    t_long, t_short = _responses(lib, target.wavelength_nm, setup["bias_nm"], notes)
+    t_long, t_short = _responses(lib, target.wavelength_nm, setup["bias_nm"], notes, setup.get("design"))
     jin = input_jones(setup["polarization"], design_sigma=target.sigma)
     sums = dict.fromkeys(("designed", "other", "converted", "leaked"), 0.0)
     stats = {"polygons": 0, "sites": 0, "unmatched": 0, "off_lattice": 0, "duplicates_within_chunks": 0,
@@ -388,7 +391,7 @@ def _setup(mask_path, lib, design, target, layer, polarization, opts: dict):
             "bias_nm": float(bias if bias is not None else (getattr(mask_settings, "bias_nm", 0.0) or 0.0)),
             "lattice": lattice, "facing": facing_of(design, lib, lit_from=opts.get("lit_from"), where=str(mask_path)),
             "polarization": polarization, "where": str(mask_path), "size_tol_nm": opts.get("size_tol_nm", 3.0),
-            "unmatched": opts.get("unmatched", "error"),
+            "unmatched": opts.get("unmatched", "error"), "design": design,
             "cell": (p_um, p_um) if lattice == "square" else (p_um, p_um * math.sqrt(3) / 2)}  # hexagonal: brick
 
 
