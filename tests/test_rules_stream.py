@@ -230,3 +230,15 @@ def test_cli_bands_give_the_same_report_and_markers(tmp_path, capsys):
     assert jw == jb
     assert mw == mb  # the same markers and involved polygons, byte for byte
     assert main(["rules", "check", str(p), "--rules", str(rules_file), "--bands", "-1"]) == 2
+
+
+def test_cli_bands_on_missing_or_garbage_file_is_one_line(tmp_path, capsys):
+    from metalay.cli import main
+
+    bad = tmp_path / "bad.gds"
+    bad.write_bytes(b"garbage")
+    for path in (bad, tmp_path / "missing.gds"):
+        for extra in ([], ["--bands", "3"]):
+            assert main(["rules", "check", str(path), "--rules", "tio2-ebl-example", *extra]) == 3
+            err = capsys.readouterr().err.strip()
+            assert "\n" not in err and str(path) in err

@@ -43,7 +43,11 @@ def whole_mask_fits(path, layers, bytes_per_site: float, max_memory_bytes: int |
     from metalay.io.stream_read import count_polygons
 
     budget = memory_budget(max_memory_bytes)
-    if Path(path).stat().st_size / _MIN_FILE_BYTES_PER_POLYGON * bytes_per_site <= budget:
+    try:
+        size = Path(path).stat().st_size
+    except OSError:
+        return True  # missing or unreadable: the whole-mask read reports it in one line
+    if size / _MIN_FILE_BYTES_PER_POLYGON * bytes_per_site <= budget:
         return True
     return count_polygons(path, layers=layers)[0] * bytes_per_site <= budget
 
