@@ -294,8 +294,12 @@ def check_mask_tiled(mask, rules: RuleSet, *, method: str = "auto", cell: str | 
         def source():
             return iter_mask_chunks(name, layers=layers, cell=cell, chunk_polygons=chunk_polygons,
                                     max_elements=max_elements or DEFAULT_MAX_ELEMENTS)
-        sha = file_sha256(name)
-    plan, context_keys, db, uu = _plan(source, rules, max_memory_bytes, bands)
+    plan, context_keys, db, uu = _plan(source, rules, max_memory_bytes, bands)  # a bad file fails here, one line
+    if name != "<memory>":
+        try:
+            sha = file_sha256(name)
+        except OSError as exc:
+            raise MaskReadError(f"{name}: cannot read file for its checksum ({exc.strerror or exc})") from exc
     timings["survey"] = time.perf_counter() - t0
     per_rule: dict[tuple, list] = {}
     gidx_of: dict[tuple, list] = {}
