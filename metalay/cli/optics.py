@@ -51,6 +51,10 @@ def add_parser(subparsers) -> argparse.ArgumentParser:
     p.add_argument("--linear-scale", action="store_true", help="far-field image on a linear scale (default log)")
     p.add_argument("--no-plots", action="store_true", help="numbers only (no PNG figures, no HTML report)")
     p.add_argument("--quiet", action="store_true", help="print nothing but errors")
+    p.add_argument("--streamed", action="store_true",
+                   help="streamed check (tile by tile, spot far fields from block sums with a stated error bound; "
+                        "no OAM, fringes, crosstalk or lens figures); automatic when the whole-mask check does not "
+                        "fit --max-memory")
     add_max_memory(p)
     p.set_defaults(func=run)
     return p
@@ -85,6 +89,11 @@ def run(args) -> int:
     if library is None:
         raise MetalayError("command line: give --library (or --design, whose library is then used)")
     out = args.output or Path("out") / f"{args.mask.stem}-optics"
+    from metalay.checks.steps import OPTICS_BYTES_PER_SITE, whole_mask_fits
+
+    layer = design.mask.layer("structures") if design is not None else (1, 0)
+    if args.streamed or not whole_mask_fits(args.mask, [layer], OPTICS_BYTES_PER_SITE, args.max_memory):
+        return _run_streamed(args, library, design, out)
     options = OpticsOptions(wavelength_nm=args.wavelength_nm, polarization=args.polarization, bias_nm=args.bias_nm,
                             size_tol_nm=args.size_tol_nm, unmatched=args.unmatched, pad_factor=args.pad_factor,
                             max_side=args.max_side, make_plots=not args.no_plots,
@@ -127,6 +136,33 @@ def run(args) -> int:
             print(f"note: {note}")
         t = res.timings
         print("time: " + ", ".join(f"{k[:-2]} {v:.2f} s" for k, v in t.items()))
+        print(f"output folder: {out}")
+        print(SAFETY_NOTE)
+    return 0
+
+
+def _run_streamed(args, library, design, out: Path) -> int:
+    """The streamed optical check (``--streamed``, or a mask beyond the memory budget): figures and the bound."""
+    from metalay.checks.optics import SAFETY_NOTE
+    from metalay.checks.optics_stream import check_optics_streamed, write_streamed_outputs
+
+    res = check_optics_streamed(args.mask, library, design=design, polarization=args.polarization,
+                                pad_factor=args.pad_factor, wavelength_nm=args.wavelength_nm, lit_from=args.lit_from,
+                                bias_nm=args.bias_nm, size_tol_nm=args.size_tol_nm, unmatched=args.unmatched)
+    f, _ = write_streamed_outputs(res, args.mask, library, design, out)
+    if not args.quiet:
+        b = f["power_budget"]
+        print(f"method: {f['method']} (block {f['block']['block_um']:.4g} um, order {f['block']['order']})")
+        print(f"sites decoded: {f['decode']['sites']:,} (unmatched {f['decode']['unmatched']}, off-lattice "
+              f"{f['decode']['off_lattice']})")
+        print(f"power: converted {b['converted']:.4f}, leakage {b['leakage']:.4f} (fractions of incident)")
+        if "designed_spot_efficiency" in f:
+            print(f"designed spot: {f['designed_spot_efficiency']:.4f} of incident, +- "
+                  f"{f['designed_spot_efficiency_bound']:.2g} (block-sum error bound)")
+        v = f["verdicts"]
+        print(f"verdict: {v['verdict'].upper()} ({v['summary']})")
+        for note in res.notes:
+            print(f"note: {note}")
         print(f"output folder: {out}")
         print(SAFETY_NOTE)
     return 0

@@ -268,7 +268,7 @@ def _compile_into(design: Design, out: Path, *, checks: Sequence[MaskCheck], sho
     timings["layout_and_write_s"] = time.perf_counter() - t0
     files = {fmt: plan.paths[fmt] for fmt in ("gds", "oas") if fmt in design.mask.formats}
     pause_point("written")
-    results = _run_checks(plan, enabled, files, timings)
+    results = _run_checks(plan, enabled, files, timings, max_memory_bytes)
     pause_point("checked")
     manifest = _manifest(plan, gathered, files, results, known_hashes)
     if annotations:
@@ -503,11 +503,13 @@ def _write_tiles(plan: _Plan, *, show_progress: bool | None, runner=None) -> tup
 # Stage 4: the checks handed in by the caller; stage 5: the manifest
 # ----------------------------------------------------------------------------------------------------------------
 
-def _run_checks(plan: _Plan, checks: Sequence[MaskCheck], files: dict, timings: dict) -> dict:
+def _run_checks(plan: _Plan, checks: Sequence[MaskCheck], files: dict, timings: dict,
+                max_memory_bytes: int | None = None) -> dict:
     """Stage 4: run each enabled check on the primary mask file; results keyed by check name."""
     primary = files.get("gds") or files.get("oas")
     written = WrittenMask(primary, plan.library, plan.design,
-                          structures_path=plan.holes_path if plan.ctx.encode_structures else None)
+                          structures_path=plan.holes_path if plan.ctx.encode_structures else None,
+                          max_memory_bytes=max_memory_bytes)
     results = {}
     for check in checks:
         t0 = time.perf_counter()
