@@ -13,6 +13,8 @@ module          stage                                                           
                 FFT padding involved
 ``optics.py``   optical check: Jones algebra per site -> near field -> far field, OAM,      ``check_optics``,
                 spots, crosstalk, lens; one evaluation path shared with the studies         ``evaluate_elements``
+``spinoptics.py`` optical check of a spin-decoupled mask: each input spin against its own  ``check_spin_optics``
+                target, crosstalk between the two targets, figures for both
 ``plots.py``    deterministic PNG figures                                                   ``png_bytes``
 ``report.py``   the single-page HTML report                                                 ``render_html``
 ``steps.py``    the checks a compile runs, as ``MaskCheck`` steps                           ``default_checks``
@@ -37,6 +39,7 @@ _ENTRIES = {
     "OpticsOptions": "optics",
     "evaluate_elements": "optics",
     "target_from_design": "optics",
+    "check_spin_optics": "spinoptics",
     "render_html": "report",
     "default_checks": "steps",
 }
