@@ -6,9 +6,10 @@ Example
 >>> result = compile_design(load_design("my_design.toml"), "out/my_design")   # doctest: +SKIP
 >>> print("\\n".join(result.summary))                                        # doctest: +SKIP
 
-:func:`compile_design` is :func:`metalay.mask.compile.compile_mask` with the standard checks
-(:func:`metalay.checks.steps.default_checks`: design rules, then the quick optical check); call ``compile_mask``
-with your own :class:`~metalay.mask.steps.MaskCheck` steps to run others.
+:func:`compile_design` is :func:`prepare_design` (optimised multiplex encodings) then
+:func:`metalay.mask.compile.compile_mask` with the standard checks (:func:`metalay.checks.steps.default_checks`:
+design rules, then the quick optical check); call ``compile_mask`` with your own
+:class:`~metalay.mask.steps.MaskCheck` steps to run others.
 """
 
 from __future__ import annotations
@@ -19,7 +20,28 @@ from metalay.checks.steps import default_checks
 from metalay.design.spec import Design, load_design, parse_design
 from metalay.mask.compile import SAFETY_CAUTION, SITES_PER_TILE, CompileResult, compile_mask
 
-__all__ = ["compile_design", "load_design", "parse_design", "CompileResult", "SAFETY_CAUTION"]
+__all__ = ["compile_design", "prepare_design", "load_design", "parse_design", "CompileResult", "SAFETY_CAUTION"]
+
+
+def prepare_design(design: Design) -> tuple[Design, dict]:
+    """What a design asks to be worked out before it is written: ``multiplex`` terms with ``encoding =
+    "optimise"`` get their optimised weights and offsets (:func:`metalay.measure.demux.optimise_design_encodings`).
+
+    Returns
+    -------
+    design : Design
+        The design to write (the same object when nothing is asked).
+    annotations : dict
+        For the manifest: ``{"multiplex_encoding": [records]}`` when an encoding was optimised, else empty.
+    """
+    from metalay.design.phase import Multiplex
+
+    if not any(isinstance(t, Multiplex) and t.encoding == "optimise" for t in design.terms):
+        return design, {}
+    from metalay.measure.demux import optimise_design_encodings
+
+    design, records = optimise_design_encodings(design)
+    return design, {"multiplex_encoding": records}
 
 
 def compile_design(design: Design, out_dir: str | Path, *, run_rules: bool | None = None,
@@ -45,5 +67,6 @@ def compile_design(design: Design, out_dir: str | Path, *, run_rules: bool | Non
     CompileResult
         Files, manifest, warnings and summary lines.
     """
+    design, annotations = prepare_design(design)
     return compile_mask(design, out_dir, checks=default_checks(rules=run_rules, optics=run_optics),
-                        show_progress=show_progress, sites_per_tile=sites_per_tile)
+                        show_progress=show_progress, sites_per_tile=sites_per_tile, annotations=annotations)

@@ -3,7 +3,11 @@
 import copy
 import os
 
-import pytest
+# One BLAS thread, as the command line runs (metalay/cli/__init__.py): the unit-cell and supercell solves use small
+# dense matrices that run several times slower with threaded BLAS on a shared 2-core machine. Set before numpy loads.
+os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
+
+import pytest  # noqa: E402
 from hypothesis import HealthCheck, settings
 
 settings.register_profile("metalay", deadline=None, derandomize=True, max_examples=60,

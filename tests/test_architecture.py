@@ -171,5 +171,5 @@ def test_readme_python_snippet_runs(tmp_path, monkeypatch):
     proc = subprocess.run([sys.executable, "-c", snippet], cwd=tmp_path, capture_output=True, text=True, env=env,
                           timeout=300)
     assert proc.returncode == 0, proc.stderr
-    assert "rules check: clean" in proc.stdout
+    assert "rules check: PASS (clean)" in proc.stdout and "verdict: PASS" in proc.stdout
     assert (tmp_path / "out" / "my_design" / "manifest.json").is_file()

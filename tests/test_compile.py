@@ -141,7 +141,21 @@ def test_failed_check_leaves_no_output(tmp_path, small_design_dict):
     with pytest.raises(RuntimeError):
         compile_mask(design, tmp_path / "o", checks=[MaskCheck("boom", boom)], show_progress=False)
     assert seen == [True]  # the check ran on a mask that had been written
-    assert list((tmp_path / "o").iterdir()) == []
+    # a failed compile leaves no empty output folder behind (issue 11 part 6), nor the missing parents it made
+    assert not (tmp_path / "o").exists()
+    with pytest.raises(RuntimeError):
+        compile_mask(design, tmp_path / "p" / "q", checks=[MaskCheck("boom", boom)], show_progress=False)
+    assert not (tmp_path / "p").exists()
+    # a folder that existed before is left as it was (with what it held)
+    (tmp_path / "kept").mkdir()
+    (tmp_path / "kept" / "notes.txt").write_text("mine")
+    with pytest.raises(RuntimeError):
+        compile_mask(design, tmp_path / "kept", checks=[MaskCheck("boom", boom)], show_progress=False)
+    assert [p.name for p in (tmp_path / "kept").iterdir()] == ["notes.txt"]
+    (tmp_path / "empty").mkdir()
+    with pytest.raises(RuntimeError):
+        compile_mask(design, tmp_path / "empty", checks=[MaskCheck("boom", boom)], show_progress=False)
+    assert (tmp_path / "empty").is_dir()
 
 
 def test_checks_are_steps_handed_to_compile(tmp_path, small_design_dict):
@@ -186,14 +200,14 @@ def test_too_large_for_memory_or_disk_is_refused_before_writing(tmp_path, small_
     assert main(["compile", str(design), "-o", str(tmp_path / "o1"), "--quiet"]) == 2
     err = capsys.readouterr().err.strip()
     assert "mask.formats" in err and "formats = ['gds']" in err and "\n" not in err
-    assert list((tmp_path / "o1").iterdir()) == []
+    assert not (tmp_path / "o1").exists()  # refused before writing: not even an empty folder
     monkeypatch.setattr(C, "_machine_memory_bytes", lambda: 1 << 40)
     usage = namedtuple("usage", "total used free")
     monkeypatch.setattr(_shutil, "disk_usage", lambda p: usage(10, 10, 0))
     assert main(["compile", str(design), "-o", str(tmp_path / "o2"), "--quiet"]) == 2
     err = capsys.readouterr().err.strip()
     assert "disk has 0.0 GB free" in err and "\n" not in err
-    assert list((tmp_path / "o2").iterdir()) == []
+    assert not (tmp_path / "o2").exists()
 
 
 def test_compile_with_checks_is_deterministic(tmp_path, small_design_dict):

@@ -102,12 +102,19 @@ def test_write_field_shift_no_straddle_and_counts(tmp_path):
     res = _compile(tmp_path, d2, "w")
     counts = res.manifest["process"]["write_field"]["counts"]
     assert counts["straddling"] == brute > 0
-    assert counts["shifted"] + counts["dropped"] == brute
+    # "shift" leaves nothing out: what cannot be shifted stays in place and is counted
+    assert counts["shifted"] + counts["kept_straddling"] == brute and counts["dropped"] == 0
     fins2, _ = _polys(res.files["gds"], 1, 0)
     arr2 = np.stack(fins2).astype(np.int64)
     c2 = np.rint(arr2.mean(axis=1)).astype(np.int64)
-    assert not straddles_write_field(c2, arr2 - c2[:, None, :], grid).any()
-    assert len(fins2) == len(fins) - counts["dropped"]
+    assert int(straddles_write_field(c2, arr2 - c2[:, None, :], grid).sum()) == counts["kept_straddling"]
+    assert len(fins2) == len(fins)
+    d4 = copy.deepcopy(d2)
+    d4["mask"]["write_field"]["straddle"] = "shift-or-drop"
+    res4 = _compile(tmp_path, d4, "w4")
+    c4 = res4.manifest["process"]["write_field"]["counts"]
+    assert c4["shifted"] + c4["dropped"] == brute and c4["shifted"] == counts["shifted"]
+    assert res4.manifest["counts"]["sites"] == len(fins) - c4["dropped"]
     d3 = copy.deepcopy(d2)
     d3["mask"]["write_field"]["straddle"] = "drop"
     res3 = _compile(tmp_path, d3, "w3")
@@ -231,7 +238,8 @@ def test_babinet_estimate_labelled_and_refused_for_reflection(tmp_path, capsys):
 
 def test_one_cell_per_write_field(tmp_path):
     d = copy.deepcopy(SMALL_DESIGN)
-    d["mask"]["write_field"] = {"size_um": 6.0, "origin_um": [0.05, 0.05], "straddle": "shift",
+    # "shift-or-drop": every element written lies inside one field ("shift" would keep unshiftable ones in place)
+    d["mask"]["write_field"] = {"size_um": 6.0, "origin_um": [0.05, 0.05], "straddle": "shift-or-drop",
                                 "max_shift_nm": 200.0, "cell_per_field": True}
     res = _compile(tmp_path, d, "f")
     grid = WriteFieldGrid.from_um(6.0, (0.05, 0.05), db_unit_nm=1.0)

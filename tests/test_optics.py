@@ -233,5 +233,5 @@ def test_cli_and_compile_hook(tmp_path):
     assert not (tmp_path / "never").exists()
     assert main(["optics", str(tmp_path / "missing.gds"), "--library", "tio2-nanofin-532"]) == 2
     hook = optics.compile_check(path, make_library(), design)
-    assert hook["status"] == "ok" and "OAM purity" in hook["summary"]
+    assert hook["verdict"] == "pass" and hook["status"] == "pass" and "OAM purity" in hook["summary"]
     assert all(not v["path"].startswith("/") for v in hook["files"].values())

@@ -299,7 +299,7 @@ def _brute_straddles(centres, offsets, grid, extent):
     return np.array(out)
 
 
-@pytest.mark.parametrize("mode", ["shift", "drop", "keep"])
+@pytest.mark.parametrize("mode", ["shift", "shift-or-drop", "drop", "keep"])
 def test_write_fields_counts_and_no_straddle(mode):
     aperture = Aperture("square", width_um=12.0)
     lattice = Lattice("square", 325.0)
@@ -314,9 +314,15 @@ def test_write_fields_counts_and_no_straddle(mode):
     if mode == "keep":
         assert fit.n_kept_straddling == fit.n_straddling and fit.keep.all()
         return
-    assert not np.any(after & fit.keep)  # no kept element straddles
-    assert fit.n_shifted + fit.n_dropped == fit.n_straddling
-    assert int((~fit.keep).sum()) == fit.n_dropped
+    if mode == "shift":  # nothing is left out: an element that cannot be shifted stays where it is, counted
+        assert fit.keep.all() and fit.n_dropped == 0
+        assert fit.n_shifted + fit.n_kept_straddling == fit.n_straddling and fit.n_kept_straddling > 0
+        assert int(after.sum()) == fit.n_kept_straddling
+        assert not np.any(after & np.any(fit.shift_db != 0, axis=1))  # every shifted element fits one field
+    else:
+        assert not np.any(after & fit.keep)  # no kept element straddles
+        assert fit.n_shifted + fit.n_dropped == fit.n_straddling
+        assert int((~fit.keep).sum()) == fit.n_dropped
     if mode == "drop":
         assert fit.n_dropped == fit.n_straddling and not fit.shift_db.any()
         return

@@ -37,6 +37,7 @@ __all__ = [
     "load_library",
     "save_library",
     "bundled_library_names",
+    "stack_side",
     "library_to_json",
     "responses_to_csv",
     "check_physical",
@@ -57,6 +58,9 @@ CELL_KINDS: dict[str, tuple[str, ...]] = {
 }
 
 _MODES = ("transmission", "reflection")
+#: Values of a library's ``lit_from`` (the same as the design key ``design.lit_from``).
+LIT_FROM = ("substrate", "structures")
+_OPEN_MEDIA = ("air", "vacuum")
 _MECHANISMS = ("geometric", "propagation", "spin_decoupled")
 #: Cell kinds a spin-decoupled library may hold (anisotropic: a half-wave cell needs two principal axes).
 _DECOUPLED_KINDS = ("nanofin", "elliptic_pillar")
@@ -131,6 +135,18 @@ class CellLibrary:
     source_path: str | None = None
     sha256: str = ""
     extra: dict = field(default_factory=dict)
+    lit_from: str | None = None
+
+    @property
+    def side(self) -> str | None:
+        """The side the responses were computed for: ``"substrate"`` (light arrives through the substrate) or
+        ``"structures"`` (light arrives onto the patterned face); None when the library cannot tell.
+
+        The file's ``lit_from`` key when present; otherwise derived from the stack (:func:`stack_side`).
+        """
+        if self.lit_from is not None:
+            return self.lit_from
+        return stack_side(self.mode, self.incident_medium, self.exit_medium)
 
     @property
     def has_responses(self) -> bool:
@@ -177,6 +193,26 @@ class CellLibrary:
         tl = (1 - f) * self.t_long[:, k] + f * self.t_long[:, k + 1]
         ts = (1 - f) * self.t_short[:, k] + f * self.t_short[:, k + 1]
         return tl, ts
+
+
+def stack_side(mode: str, incident_medium: str, exit_medium: str) -> str | None:
+    """The side a library's responses were computed for, derived from its stack (the loader's default).
+
+    The solver lights a cell from its incident medium. Reflection: always ``"structures"`` (a mirror below the
+    cells). Transmission: ``"structures"`` when the incident medium is open (air or vacuum) and the exit medium is
+    not (light arrives onto the patterned face of a substrate), ``"substrate"`` in the opposite case (it arrives
+    through the substrate and leaves into the open medium around the structures); None when both or neither are
+    open (the stack alone cannot tell; a design must then state ``design.lit_from``).
+    """
+    if mode == "reflection":
+        return "structures"
+    inc_open = incident_medium.strip().lower() in _OPEN_MEDIA
+    exit_open = exit_medium.strip().lower() in _OPEN_MEDIA
+    if inc_open and not exit_open:
+        return "structures"
+    if exit_open and not inc_open:
+        return "substrate"
+    return None
 
 
 def bundled_library_names() -> list[str]:
@@ -288,6 +324,7 @@ def load_library(name_or_path: str | Path) -> CellLibrary:
         cells=tuple(cells),
         source_path=where,
         extra={k: v for k, v in data.items() if k not in _KNOWN_KEYS},
+        lit_from=_lit_from(data, where),
     )
     digest = hashlib.sha256(raw)
     resp_name = data.get("responses_file")
@@ -318,7 +355,20 @@ def _check_decoupled(lib: CellLibrary, where: str) -> None:
 
 _KNOWN_KEYS = {"format", "format_version", "name", "description", "mode", "phase_mechanism", "design_wavelength_nm",
                "period_nm", "lattice", "incident_medium", "exit_medium", "layers", "rules", "provenance", "cells",
-               "responses_file"}
+               "responses_file", "lit_from"}
+
+
+def _lit_from(data: dict, where: str) -> str | None:
+    """The optional ``lit_from`` key (None when absent or null: :attr:`CellLibrary.side` derives it)."""
+    value = data.get("lit_from")
+    if value is None:
+        return None
+    if value not in LIT_FROM:
+        raise LibraryError(f"{where}: key 'lit_from' = {value!r} is not one of {list(LIT_FROM)}")
+    if data.get("mode") == "reflection" and value != "structures":
+        raise LibraryError(f"{where}: key 'lit_from' = {value!r}: a reflection library is lit from the structure "
+                           "side (allowed: 'structures')")
+    return value
 
 
 def _with(lib: CellLibrary, **changes) -> CellLibrary:
@@ -451,6 +501,7 @@ def library_to_json(lib: CellLibrary) -> str:
         "cells": [{"id": c.id, "kind": c.kind, "layer": c.layer, **{k: float(v) for k, v in c.dims_nm}}
                   for c in lib.cells],
         "responses_file": f"{lib.name}.responses.csv" if lib.has_responses else None,
+        "lit_from": lib.side,
         **lib.extra,
     }
     return json.dumps(data, sort_keys=True, indent=2) + "\n"

@@ -26,7 +26,11 @@ from scipy import ndimage
 from metalay.errors import MetalayError
 
 __all__ = ["interferogram", "default_tilt_deg", "carrier_per_um", "ChargeReading", "read_charge",
-           "winding_number"]
+           "winding_number", "LOOP_TOLERANCE_TURNS"]
+
+#: Largest distance (turns) of a loop's winding from its nearest integer for the reading to count: further off,
+#: the loop crosses a phase defect or noise and the reading is "unreadable".
+LOOP_TOLERANCE_TURNS = 0.25
 
 
 def default_tilt_deg(pitch_um: float, wavelength_nm: float, *, samples_per_fringe: float = 6.0) -> float:
@@ -124,6 +128,11 @@ class ChargeReading:
         Carrier used for demodulation.
     agreement : float
         Fraction of loops that agree with ``charge``.
+
+    Notes
+    -----
+    :attr:`readable` is false when the loops disagree (any loop rounds to another integer) or any loop's winding
+    is further than :data:`LOOP_TOLERANCE_TURNS` from an integer; such a reading is "unreadable", not a number.
     """
 
     charge: int
@@ -133,6 +142,18 @@ class ChargeReading:
     center_y_um: float
     carrier_per_um: tuple
     agreement: float
+
+    @property
+    def readable(self) -> bool:
+        """All loops agree on one integer, each within :data:`LOOP_TOLERANCE_TURNS` of it."""
+        w = np.asarray(self.windings, dtype=np.float64)
+        return bool(w.size and self.agreement == 1.0 and np.all(np.isfinite(w))
+                    and np.max(np.abs(w - np.rint(w))) <= LOOP_TOLERANCE_TURNS)
+
+    @property
+    def status(self) -> str:
+        """``"read"`` or ``"unreadable"``."""
+        return "read" if self.readable else "unreadable"
 
 
 def read_charge(intensity: np.ndarray, x_um: np.ndarray, y_um: np.ndarray, *, carrier=None,

@@ -38,7 +38,7 @@ from pathlib import Path
 import numpy as np
 from scipy import ndimage
 
-from metalay.checks import fringes, grid, oam
+from metalay.checks import farpoints, fringes, grid, oam
 from metalay.checks.decode import DecodedSites, decode_sites
 from metalay.errors import MetalayError
 from metalay.util._memory import keep_freed_memory
@@ -59,6 +59,9 @@ __all__ = [
     "target_from_design",
     "ideal_responses",
     "site_xy",
+    "facing_of",
+    "beam_frame_sites",
+    "optics_verdicts",
     "near_field_decimation",
     "json_ready",
     "spot_centres",
@@ -589,12 +592,6 @@ def spot_fractions(ff: grid.FarField, centres, radius_u: float) -> dict:
     return out
 
 
-def _bilinear(ff: grid.FarField, u0: float, v0: float) -> float:
-    cu = (u0 - ff.u[0]) / ff.du
-    cv = (v0 - ff.v[0]) / ff.dv
-    return float(ndimage.map_coordinates(ff.power, [[cv], [cu]], order=1, mode="constant")[0])
-
-
 def _peak_near(ff: grid.FarField, u0: float, v0: float, radius_u: float):
     """Brightest bin within ``radius_u`` of (u0, v0), refined by a 3-point parabola per axis."""
     cols = np.flatnonzero(np.abs(ff.u - u0) <= radius_u)
@@ -626,13 +623,41 @@ def _centroid_near(ff: grid.FarField, u0: float, v0: float, radius_u: float):
     return float((w.sum(axis=0) * uu).sum() / tot), float((w.sum(axis=1) * vv).sum() / tot)
 
 
+CROSSTALK_METHOD = ("spot values: direct Fraunhofer sum over the {over} at each channel direction (no FFT, no "
+                    "padding, no interpolation); spot positions: FFT peak (padding {pad:g}) refined by a parabola")
+
+
+def _spot_matrix(channels, wavelength_nm: float, field, x_um, y_um, *, grid_axes: bool) -> np.ndarray:
+    """``M[k, m]``: spot strength at channel ``m``'s direction with the conjugate probe of channel ``k``."""
+    u = np.array([ch[1] for ch in channels], dtype=np.float64)
+    v = np.array([ch[2] for ch in channels], dtype=np.float64)
+    c = len(channels)
+    mat = np.zeros((c, c))
+    if grid_axes:
+        phi = np.arctan2(y_um[:, None], x_um[None, :])
+    else:
+        phi = np.arctan2(y_um, x_um)
+    n_sites = max(1, int(np.count_nonzero(field)))
+    for k, (lk, _, _) in enumerate(channels):  # loop over channels (short axis)
+        probe = field * np.exp(-1j * lk * phi)
+        if grid_axes:
+            amp = farpoints.far_field_at_grid(probe, x_um, y_um, u, v, wavelength_nm)
+        else:
+            amp = farpoints.far_field_at_sites(probe, x_um, y_um, u, v, wavelength_nm)
+        mat[k] = farpoints.spot_strength(amp, probe, n_sites=n_sites)
+    return mat
+
+
 def crosstalk_matrix(near: NearField, channels, wavelength_nm: float, *, radius_u: float,
-                     pad_factor: float = 2.0, workers: int = 2) -> dict:
+                     pad_factor: float = 2.0, workers: int = 2, sites=None) -> dict:
     """Channel crosstalk of a multiplexed (demultiplexing) mask.
 
     Each channel ``k`` (charge ``l_k``, direction ``(u_k, v_k)``) is probed by illuminating the mask with the
     conjugate vortex ``exp(-i l_k phi)``: channel ``k`` then forms a bright, solid spot at its direction while the
-    other channels keep a vortex (dark centre) at theirs.
+    other channels keep a vortex (dark centre) at theirs. The value at each channel direction is computed by the
+    Fraunhofer sum itself at exactly that direction (:mod:`metalay.checks.farpoints`), so it does not depend on
+    FFT padding or on interpolation between FFT bins (which fills the on-axis null of a mismatched vortex and
+    understated isolation by 10-20 dB).
 
     Parameters
     ----------
@@ -642,31 +667,43 @@ def crosstalk_matrix(near: NearField, channels, wavelength_nm: float, *, radius_
     radius_u : float
         Search radius for each spot's measured position.
     pad_factor : float
+        FFT padding used for the spot positions only.
     workers : int
+    sites : (field, x_um, y_um), optional
+        The designed output of every element (S,) at its lattice site: the spot values are then a direct sum over
+        the elements (exact for any lattice and for a decimated ``near``); default the samples of ``near``.
 
     Returns
     -------
     dict
-        ``matrix`` (C x C list: on-axis far-field power per bin at spot ``j`` when probing channel ``i``),
-        ``matrix_db`` (relative to each row's diagonal), ``isolation_db`` per channel (diagonal over the largest
-        off-diagonal entry of its row), ``worst_isolation_db``, ``positions`` (measured (u, v) of each probed
-        spot), ``position_error`` (distance to the design in direction cosines) and ``position_error_deg``.
+        ``matrix`` (C x C list: on-axis spot strength ``|A|^2 / (S sum |E|^2)`` at spot ``m`` when probing
+        channel ``k``; 1 = an ideal plane wave from the whole element), ``matrix_db`` (relative to each row's
+        diagonal), ``isolation_db`` per channel (diagonal over the largest off-diagonal entry of its row),
+        ``worst_isolation_db``, ``column_isolation_db`` (spot ``m``'s own probe over the strongest other probe
+        landing there), ``channel_power`` (the diagonal) and ``power_spread_db`` (max over min), ``positions``
+        (measured (u, v) of each probed spot), ``position_error`` (distance to the design in direction cosines),
+        ``position_error_deg`` and ``method``.
 
     References
     ----------
     Mair et al. 2001, Nature 412, 313 (conjugate-vortex detection of OAM states: only the matching charge gives
-    an on-axis spot).
+    an on-axis spot). Goodman 2005, Introduction to Fourier Optics, sec. 4.2 (Fraunhofer sum).
     """
+    if sites is not None:
+        field, xs, ys = (np.asarray(a) for a in sites)
+        mat = _spot_matrix(channels, wavelength_nm, field.astype(np.complex128), xs, ys, grid_axes=False)
+        over = "elements (one term per written element at its lattice site)"
+    else:
+        mat = _spot_matrix(channels, wavelength_nm, near.designed.astype(np.complex128), near.x_um, near.y_um,
+                           grid_axes=True)
+        over = "near-field samples"
     phi = np.arctan2(near.y_um[:, None], near.x_um[None, :])
     c = len(channels)
-    mat = np.zeros((c, c))
     pos = np.zeros((c, 2))
     for k, (lk, uk, vk) in enumerate(channels):  # loop over channels (short axis)
         probe = near.designed * np.exp(-1j * lk * phi).astype(np.complex64)
         ff = grid.far_field(probe, near.dx_um, near.dy_um, wavelength_nm, x0_um=float(near.x_um[0]),
                             y0_um=float(near.y_um[0]), pad_factor=pad_factor, workers=workers)
-        for m, (_, um, vm) in enumerate(channels):
-            mat[k, m] = _bilinear(ff, um, vm)
         pu, pv, _ = _peak_near(ff, uk, vk, radius_u)
         pos[k] = (pu, pv)
         del ff, probe
@@ -675,14 +712,21 @@ def crosstalk_matrix(near: NearField, channels, wavelength_nm: float, *, radius_
     diag = np.diag(mat).copy()
     with np.errstate(divide="ignore"):
         rel_db = 10 * np.log10(np.maximum(mat, 1e-300) / np.maximum(diag[:, None], 1e-300))
-        off = np.where(np.eye(c, dtype=bool), -np.inf, mat).max(axis=1) if c > 1 else np.zeros(c)
-        iso = 10 * np.log10(np.maximum(diag, 1e-300) / np.maximum(off, 1e-300)) if c > 1 else np.full(c, np.inf)
+        off = np.where(np.eye(c, dtype=bool), -np.inf, mat)
+        iso = (10 * np.log10(np.maximum(diag, 1e-300) / np.maximum(off.max(axis=1), 1e-300)) if c > 1
+               else np.full(c, np.inf))
+        col = (10 * np.log10(np.maximum(diag, 1e-300) / np.maximum(off.max(axis=0), 1e-300)) if c > 1
+               else np.full(c, np.inf))
+    spread = float(10 * np.log10(max(diag.max(), 1e-300) / max(diag.min(), 1e-300))) if c else None
     ang_meas = np.degrees(np.arcsin(np.clip(np.hypot(*pos.T), 0, 1)))
     ang_design = np.degrees(np.arcsin(np.clip(np.hypot(*design.T), 0, 1)))
     return {"matrix": mat.tolist(), "matrix_db": rel_db.tolist(), "isolation_db": iso.tolist(),
-            "worst_isolation_db": float(iso.min()) if c else None, "positions": pos.tolist(),
+            "worst_isolation_db": float(iso.min()) if c else None, "column_isolation_db": col.tolist(),
+            "worst_column_isolation_db": float(col.min()) if c else None, "channel_power": diag.tolist(),
+            "power_spread_db": spread, "positions": pos.tolist(),
             "design_positions": design.tolist(), "position_error": err.tolist(),
-            "position_error_deg": np.abs(ang_meas - ang_design).tolist(), "charges": [int(ch[0]) for ch in channels]}
+            "position_error_deg": np.abs(ang_meas - ang_design).tolist(), "charges": [int(ch[0]) for ch in channels],
+            "method": CROSSTALK_METHOD.format(over=over, pad=pad_factor)}
 
 
 def lens_metrics(near: NearField, wavelength_nm: float, focal_length_um: float, *, ideal: np.ndarray | None = None,
@@ -902,6 +946,46 @@ def _biased_responses(lib, t_long, t_short, decoded, bias_nm: float, notes: list
     return t_long, t_short
 
 
+def facing_of(design, library, *, lit_from: str | None = None, where: str = ""):
+    """The side the light arrives from for a check: ``lit_from``, else the design's, else the library's side.
+
+    Returns
+    -------
+    metalay.design.side.Facing
+    """
+    from metalay.design.side import resolve_facing
+
+    chosen = lit_from if lit_from is not None else getattr(design, "lit_from", None)
+    where = getattr(design, "source_path", None) or where or library.name
+    return resolve_facing(chosen, mode=library.mode, library_lit_from=library.side, library_name=library.name,
+                          where=where)
+
+
+def beam_frame_sites(decoded: DecodedSites, facing) -> DecodedSites:
+    """The decoded elements as the light leaving the element sees them (:mod:`metalay.design.side`).
+
+    Transmission lit from the structures: positions mirrored (``y -> -y``, row ``j -> -j``) and rotations
+    negated; reflection: rotations negated (the arriving spin is seen from the other face); lit through the
+    substrate: unchanged. Everything downstream (Jones algebra with the design spin, far field, OAM, lens) then
+    works in that one frame.
+    """
+    if facing.rotation_sign == 1 and not facing.mirror_y:
+        return decoded
+    from dataclasses import replace
+
+    rot = decoded.rotation_rad
+    if facing.rotation_sign == -1:
+        rot = np.mod(-rot, np.pi)
+        rot[rot >= np.pi] = 0.0
+    i, j, y, origin = decoded.i, decoded.j, decoded.y_um, decoded.origin_um
+    if facing.mirror_y:
+        j, y, origin = -j, -y, (origin[0], -origin[1])
+    order = np.lexsort((i, j))  # rows j, then i (the decoder's order)
+    return replace(decoded, i=i[order], j=j[order], x_um=decoded.x_um[order], y_um=y[order],
+                   cell=decoded.cell[order], rotation_rad=rot[order], size_error_nm=decoded.size_error_nm[order],
+                   origin_um=origin)
+
+
 # ----------------------------------------------------------------------------------------------------------------
 # Evaluation of decoded elements (shared by the optical check and the tolerance / comparison studies)
 # ----------------------------------------------------------------------------------------------------------------
@@ -1100,6 +1184,11 @@ class OpticsOptions:
         FFT threads.
     title : str, optional
         Report title.
+    lit_from : {"substrate", "structures"}, optional
+        Side the light arrives from (default: the design's ``design.lit_from``, else the library's side); see
+        :mod:`metalay.design.side`.
+    limits : metalay.design.limits.Limits, optional
+        Verdict thresholds (default: the design's ``[checks.limits]``, else the defaults).
     """
 
     wavelength_nm: float | None = None
@@ -1117,6 +1206,8 @@ class OpticsOptions:
     keep_arrays: bool = False
     workers: int = 2
     title: str | None = None
+    lit_from: str | None = None
+    limits: object = None
 
 
 @dataclass(frozen=True, eq=False)
@@ -1135,6 +1226,7 @@ class _Decoded:
     t_short: np.ndarray
     period_nm: float
     zoom: tuple            # (flat polygons near the centre or None, centre (um), half width (um), db unit (nm))
+    facing: object = None  # metalay.design.side.Facing: the decoded sites are in the leaving light's frame
 
 
 def _read_and_decode(mask_path: Path, lib, design, target, opt: OpticsOptions, notes: list,
@@ -1176,16 +1268,19 @@ def _read_and_decode(mask_path: Path, lib, design, target, opt: OpticsOptions, n
                            size_tol_nm=opt.size_tol_nm, bias_nm=bias_nm, unmatched=opt.unmatched,
                            where=str(mask_path))
     timings["decode_s"] = time.perf_counter() - t0
+    facing = facing_of(design, lib, lit_from=opt.lit_from, where=str(mask_path))
+    decoded = beam_frame_sites(decoded, facing)
+    notes.append(f"illumination: {facing.describe()}")
     if bias_nm and lib.has_responses:
         t_long, t_short = _biased_responses(lib, t_long, t_short, decoded, bias_nm, notes)
     # a small window of polygons for the layout figure, then free the vertex table
-    zoom_c = target.center_um
+    zoom_c = tuple(float(v) for v in facing.beam_xy(*target.center_um))  # the axis as the file shows it
     zoom_hw = max(1.5, 4 * period_nm * 1e-3)
     first = flat.xy_db[flat.start[:-1]] * (flat.db_unit_nm / 1000.0)
     win = (np.abs(first[:, 0] - zoom_c[0]) < zoom_hw + 1) & (np.abs(first[:, 1] - zoom_c[1]) < zoom_hw + 1)
     zoom_flat = flat.select(win) if opt.make_plots else None
     return _Decoded(mask_path, lib, design, target, no_target, tuple(layer), bias_nm, decoded, t_long, t_short,
-                    period_nm, (zoom_flat, zoom_c, zoom_hw, flat.db_unit_nm))
+                    period_nm, (zoom_flat, zoom_c, zoom_hw, flat.db_unit_nm), facing)
 
 
 def _decimation_note(ev: Evaluation, target: OpticsTarget, m: int, side: int, max_side: int) -> str:
@@ -1215,7 +1310,7 @@ def _evaluate(dec: _Decoded, opt: OpticsOptions, notes: list, timings: dict) -> 
         from metalay.design.lattice import sample_sites
 
         s = sample_sites(dec.design.aperture, dec.design.lattice)
-        expected = (s.i, s.j)
+        expected = (s.i, -s.j if dec.facing.mirror_y else s.j)
         notes.append(f"illuminated region: the {len(s):,} sites of the design aperture")
     else:
         notes.append("illuminated region: occupied sites with enclosed holes filled (no design given)")
@@ -1286,10 +1381,13 @@ def _oam_figures(dec: _Decoded, ev: Evaluation, opt: OpticsOptions, figures: dic
     fy_ = near.y_um[0] + (np.arange(fld.shape[0]) * mf + (mf - 1) / 2) * near.dy_um
     inten = fringes.interferogram(fld, fx_, fy_, wavelength_nm=target.wavelength_nm)
     reading = fringes.read_charge(inten, fx_, fy_, center=target.center_um, workers=opt.workers)
-    figures["fringe_reading"] = {"charge": reading.charge, "design_charge": target.charge,
-                                 "agrees": reading.charge == target.charge,
+    readable = reading.readable
+    figures["fringe_reading"] = {"status": reading.status, "charge": reading.charge if readable else None,
+                                 "design_charge": target.charge,
+                                 "agrees": bool(readable and reading.charge == target.charge),
                                  "windings": reading.windings.tolist(), "loop_radii_um": reading.radii_um.tolist(),
-                                 "loop_agreement": reading.agreement}
+                                 "loop_agreement": reading.agreement,
+                                 "loop_tolerance_turns": fringes.LOOP_TOLERANCE_TURNS}
     return inten, fx_, fy_
 
 
@@ -1306,8 +1404,10 @@ def _channel_figures(dec: _Decoded, ev: Evaluation, opt: OpticsOptions, figures:
         ch_oam.append({"charge": lc, "purity": sp.purity(lc), "weights": sp.weights.tolist()})
     figures["oam_channels"] = {"about": "far-field spot of each channel", "charges": list(opt.charges),
                                "channels": ch_oam}
+    xs, ys = site_xy(dec.decoded)
     figures["crosstalk"] = crosstalk_matrix(ev.near, target.channels, target.wavelength_nm, radius_u=radius_u,
-                                            pad_factor=opt.pad_factor, workers=opt.workers)
+                                            pad_factor=opt.pad_factor, workers=opt.workers,
+                                            sites=(ev.fields.designed, xs, ys))
 
 
 def _lens_figures(dec: _Decoded, ev: Evaluation, opt: OpticsOptions, figures: dict) -> None:
@@ -1330,7 +1430,8 @@ def _figures(dec: _Decoded, ev: Evaluation, opt: OpticsOptions, notes: list, tim
     """Stage 3: every figure of merit (JSON-ready numbers); returns them and the interferogram for the plots."""
     t0 = time.perf_counter()
     near, ff = ev.near, ev.far
-    figures = {"wavelength_nm": dec.target.wavelength_nm, "input_polarization": opt.polarization,
+    figures = {"illumination": dec.facing.as_dict(),
+               "wavelength_nm": dec.target.wavelength_nm, "input_polarization": opt.polarization,
                "design_spin": dec.target.sigma, "power_budget": ev.budget, "decode": dec.decoded.stats,
                "grid": {"nx": int(near.designed.shape[1]), "ny": int(near.designed.shape[0]),
                         "dx_um": near.dx_um, "dy_um": near.dy_um, "decimation": near.decimation,
@@ -1351,6 +1452,59 @@ def _figures(dec: _Decoded, ev: Evaluation, opt: OpticsOptions, notes: list, tim
     return figures, fringe_image
 
 
+def optics_verdicts(figures: dict, limits=None) -> dict:
+    """Verdicts (pass / warn / fail) of the optical figures against thresholds with units.
+
+    Parameters
+    ----------
+    figures : dict
+        The figures of :func:`check_optics` (power budget, OAM, fringe reading, crosstalk, lens).
+    limits : metalay.design.limits.Limits, optional
+        Thresholds (default :data:`metalay.design.limits.DEFAULT_LIMITS`).
+
+    Returns
+    -------
+    dict
+        ``verdict`` (the worst item), ``items`` (one per figure judged: key, value, unit, thresholds, verdict,
+        text) and ``summary`` (the items' texts).
+
+    Notes
+    -----
+    Judged: converted efficiency (always), OAM purity of the designed charge (single-axis designs), the charge read
+    from the simulated fork interferogram (pass when it equals the design's charge, fail when it differs, warn
+    when the loops disagree: "unreadable"), worst channel isolation (multiplexed designs) and the Strehl ratio
+    (lenses).
+    """
+    from metalay.design.limits import Limits, judge, unmeasured, worst_verdict
+
+    limits = limits or Limits()
+    items = [judge(figures["power_budget"]["converted"], limits.get("converted_efficiency"))]
+    if "oam" in figures:
+        items.append(judge(figures["oam"]["purity"], limits.get("oam_purity")))
+    fr = figures.get("fringe_reading")
+    if fr is not None:
+        if fr["status"] != "read":
+            items.append(unmeasured("fringe_charge", "unreadable: the loops around the core disagree"))
+        else:
+            ok = fr["charge"] == fr["design_charge"]
+            items.append({"key": "fringe_charge", "what": "charge read from a simulated fork interferogram",
+                          "unit": "count", "value": fr["charge"], "design": fr["design_charge"],
+                          "verdict": "pass" if ok else "fail",
+                          "text": f"fringe_charge {fr['charge']} {'==' if ok else '!='} design "
+                                  f"{fr['design_charge']} ({'pass' if ok else 'fail'})"})
+    ct = figures.get("crosstalk")
+    if ct is not None and len(ct.get("charges", [])) > 1:
+        items.append(judge(ct["worst_isolation_db"], limits.get("worst_isolation_db")))
+    lens = figures.get("lens")
+    if lens is not None:
+        if lens.get("strehl") is None:
+            items.append(unmeasured("strehl", "no aberration-free reference for this design"))
+        else:
+            items.append(judge(lens["strehl"], limits.get("strehl")))
+    return {"verdict": worst_verdict(i["verdict"] for i in items), "items": items,
+            "summary": "; ".join(i["text"] for i in items)}
+
+
 def _images(dec: _Decoded, ev: Evaluation, figures: dict, fringe_image, opt: OpticsOptions) -> dict:
     """Stage 4: the PNG figures of the report, name -> (caption, PNG bytes)."""
     from metalay.checks import plots
@@ -1366,10 +1520,11 @@ def _images(dec: _Decoded, ev: Evaluation, figures: dict, fringe_image, opt: Opt
                                     plots.phase_map(_target_phase(target.terms, xs[None, :], ys[:, None], target),
                                                     xs, ys, title="target phase", valid=valid))
     conv = near.converted[::sm, ::sm]
-    images["2_mask_phase"] = ("phase of the converted field decoded from the mask",
+    images["2_mask_phase"] = ("phase of the converted field decoded from the mask (frame of the leaving light)",
                               plots.phase_map(np.angle(conv), xs, ys, title="mask-derived phase",
                                               valid=valid & (np.abs(conv) > 0)))
-    images["3_layout_zoom"] = (f"mask polygons within {zoom_hw:g} um of ({zoom_c[0]:g}, {zoom_c[1]:g}) um",
+    images["3_layout_zoom"] = (f"mask polygons within {zoom_hw:g} um of ({zoom_c[0]:g}, {zoom_c[1]:g}) um, as the "
+                               "file shows them (patterned face seen from above)",
                                plots.layout_zoom(zoom_flat.start, zoom_flat.xy_db, db_unit_nm, center_um=zoom_c,
                                                  half_width_um=zoom_hw))
     lam_um = target.wavelength_nm * 1e-3
@@ -1385,8 +1540,10 @@ def _images(dec: _Decoded, ev: Evaluation, figures: dict, fringe_image, opt: Opt
         o = figures["oam"]
         images["5_oam_spectrum"] = ("OAM spectrum of the converted beam about its axis",
                                     plots.oam_bars(o["charges"], o["weights"], design_charge=target.charge))
-        images["7_interferogram"] = (f"converted beam with a tilted plane reference; charge read: "
-                                     f"{figures['fringe_reading']['charge']}", plots.interferogram_map(*fringe_image))
+        fr = figures["fringe_reading"]
+        read = fr["charge"] if fr["status"] == "read" else "unreadable (the loops disagree)"
+        images["7_interferogram"] = (f"converted beam with a tilted plane reference; charge read: {read}",
+                                     plots.interferogram_map(*fringe_image))
     if "crosstalk" in figures:
         c = figures["crosstalk"]
         images["6_crosstalk"] = ("crosstalk: on-axis power at each channel spot, probing with each channel's "
@@ -1438,6 +1595,8 @@ def check_optics(mask_path, library, *, design=None, target: OpticsTarget | None
     dec = _read_and_decode(mask_path, lib, design, target, opt, notes, timings)
     ev = _evaluate(dec, opt, notes, timings)
     figures, fringe_image = _figures(dec, ev, opt, notes, timings)
+    limits = opt.limits if opt.limits is not None else getattr(getattr(design, "checks", None), "limits", None)
+    figures["verdicts"] = optics_verdicts(json_ready(figures), limits)
     images, html_text = {}, None
     if opt.make_plots:
         t0 = time.perf_counter()
@@ -1449,14 +1608,18 @@ def check_optics(mask_path, library, *, design=None, target: OpticsTarget | None
               "design": getattr(design, "name", None), "wavelength_nm": dec.target.wavelength_nm,
               "polarization": opt.polarization, "layer": list(dec.layer), "bias_nm": dec.bias_nm,
               "size_tol_nm": opt.size_tol_nm, "empty_t": str(opt.empty_t), "pad_factor": opt.pad_factor,
-              "max_side": opt.max_side}
+              "max_side": opt.max_side, "lit_from": dec.facing.lit_from,
+              "illumination": dec.facing.describe(), "verdict": figures["verdicts"]["verdict"]}
     figures["inputs"] = json_ready(inputs)
     if opt.make_plots:
         from metalay.checks.report import render_html
 
-        html_text = render_html(title=opt.title or f"Optical check of {mask_path.name}", caution=SAFETY_NOTE,
+        verdict = figures["verdicts"]
+        html_text = render_html(title=(opt.title or f"Optical check of {mask_path.name}")
+                                + f": verdict {verdict['verdict'].upper()}", caution=SAFETY_NOTE,
                                 inputs=inputs, figures={k: v for k, v in figures.items() if k != "inputs"},
-                                images=images, notes=notes)
+                                images=images, notes=[f"verdict {verdict['verdict'].upper()}: {verdict['summary']}",
+                                                      *notes])
     files = _write_outputs(Path(out_dir), figures, images, html_text) if out_dir is not None else {}
     timings["total_s"] = time.perf_counter() - t_all
     return OpticsResult(figures=figures, images=images, html=html_text, files=files, timings=timings,
@@ -1506,7 +1669,9 @@ def compile_check(path, library, design) -> dict:
     Returns
     -------
     dict
-        ``status`` ("ok"), ``summary`` (one line), ``figures``, ``files`` (relative to the mask folder), ``notes``.
+        ``status`` and ``verdict`` (the worst verdict of :func:`optics_verdicts`), ``verdict_items``,
+        ``verdict_summary``, ``summary`` (one line), ``figures``, ``files`` (relative to the mask folder),
+        ``notes``.
     """
     out_dir = Path(path).parent / "optics"
     q = quick_check(path, library, design, out_dir=out_dir)
@@ -1517,12 +1682,17 @@ def compile_check(path, library, design) -> dict:
     if "oam" in f:
         parts.append(f"OAM purity l={f['oam']['design_charge']}: {f['oam']['purity']:.4f}")
     if "fringe_reading" in f:
-        parts.append(f"fringe charge {f['fringe_reading']['charge']}")
+        fr = f["fringe_reading"]
+        parts.append(f"fringe charge {fr['charge'] if fr['status'] == 'read' else 'unreadable'}")
     if "crosstalk" in f and f["crosstalk"]["worst_isolation_db"] is not None:
-        parts.append(f"worst isolation {f['crosstalk']['worst_isolation_db']:.1f} dB")
+        ct = f["crosstalk"]
+        parts.append(f"worst isolation {ct['worst_isolation_db']:.1f} dB (direct sum at the channel directions), "
+                     f"channel powers within {ct['power_spread_db']:.2f} dB")
     if "lens" in f and f["lens"]["strehl"] is not None:
         parts.append(f"Strehl {f['lens']['strehl']:.3f}")
     files = {k: {"path": os.path.relpath(v["path"], Path(path).parent), "sha256": v["sha256"], "bytes": v["bytes"]}
              for k, v in q["files"].items()}
-    return {"status": "ok", "summary": "; ".join(parts), "figures": f, "files": files, "notes": q["notes"],
-            "timings_s": q["timings"]}
+    v = f["verdicts"]
+    return {"status": v["verdict"], "verdict": v["verdict"], "verdict_items": v["items"],
+            "verdict_summary": v["summary"], "summary": "; ".join(parts), "figures": f, "files": files,
+            "notes": q["notes"], "timings_s": q["timings"]}

@@ -11,6 +11,7 @@ from dataclasses import replace
 from pathlib import Path
 
 from metalay.checks.rules import check_mask, rules_from_library
+from metalay.design.limits import judge
 from metalay.design.spec import Design
 from metalay.mask.process import WriteFieldGrid
 from metalay.mask.steps import MaskCheck, WrittenMask
@@ -119,6 +120,8 @@ def run_rules_on_written(written: WrittenMask) -> dict:
     d["summary"] = report.summary_lines() + [f"pieces: {line}" for line in
                                              out.get("complement_pieces", {}).get("summary", [])]
     d["timings_s"] = {k: round(v, 3) for k, v in report.timings_s}
+    item = judge(total, written.design.checks.limits.get("rule_violations"))
+    d["verdict"], d["verdict_items"], d["verdict_summary"] = item["verdict"], [item], item["text"]
     return d
 
 

@@ -15,8 +15,9 @@ module            commands                                                    li
 ================  ==========================================================  =====================================
 
 Each command module exposes ``add_parser(subparsers)`` and ``run(args) -> int``. Exit codes: 0 success;
-1 design-rule violations (when asked to fail on them); 2 bad input; 3 unreadable mask; 70 internal error;
-130 interrupted (:mod:`metalay.errors` gives each error class its code).
+1 a compile's overall verdict reached ``--fail-at`` (default: fail), or design-rule violations when asked to fail on
+them; 2 bad input; 3 unreadable mask; 70 internal error; 130 interrupted (:mod:`metalay.errors` gives each error
+class its code).
 """
 
 from __future__ import annotations
@@ -65,6 +66,17 @@ def _compile(design_path, out_dir, args) -> int:
         print(f"metalay: {rules['violations']} design-rule violations (see {result.out_dir / 'manifest.json'})",
               file=sys.stderr)
         return 1
+    return _verdict_exit(result.manifest["verdicts"], args.fail_at or design.checks.fail_at, result.out_dir)
+
+
+def _verdict_exit(verdicts: dict, level: str, out_dir) -> int:
+    """Exit code of a compile from its overall verdict: 1 when it reaches ``level`` (fail, warn; never: 0)."""
+    from metalay.design.limits import verdict_at_least
+
+    if verdict_at_least(verdicts["overall"], level):
+        print(f"metalay: verdict {verdicts['overall']} (exit 1 at --fail-at {level}): "
+              f"{'; '.join(verdicts['reasons'])} (see {out_dir / 'manifest.json'})", file=sys.stderr)
+        return 1
     return 0
 
 
@@ -93,6 +105,9 @@ def _build_parser(modules) -> argparse.ArgumentParser:
         p.add_argument("--fail-on-violations", action="store_true",
                        help="exit 1 when the written mask breaks a design rule")
         p.add_argument("--no-checks", action="store_true", help="skip the design-rule and optics checks")
+        p.add_argument("--fail-at", choices=("fail", "warn", "never"), default=None,
+                       help="exit 1 when the overall verdict is this or worse (default: the design's "
+                            "checks.fail_at, which defaults to fail; never: always exit 0 after writing)")
 
     p = sub.add_parser("compile", help="compile a design file (TOML) into mask files and a manifest")
     p.add_argument("design", help="design file (.toml)")

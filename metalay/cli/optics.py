@@ -26,6 +26,9 @@ def add_parser(subparsers) -> argparse.ArgumentParser:
     p.add_argument("--wavelength-nm", type=float, help="check wavelength (default: design, else library)")
     p.add_argument("--polarization", default="design",
                    help="input: design, spin+1, spin-1, linear-x, linear-y or linear:<angle_deg> (default design)")
+    p.add_argument("--lit-from", choices=("substrate", "structures"), default=None,
+                   help="side the light arrives from: through the substrate or onto the structures (default: the "
+                        "design's design.lit_from, else the side the library was computed for)")
     p.add_argument("--bias-nm", type=float, default=None,
                    help="process bias per edge written into the mask (default: the design's, else 0)")
     p.add_argument("--size-tol-nm", type=float, default=3.0, help="size tolerance for matching library cells")
@@ -61,9 +64,10 @@ def run(args) -> int:
         raise MetalayError(f"{args.mask}: mask file not found")
     design = None
     if args.design is not None:
+        from metalay.api import prepare_design
         from metalay.design.spec import load_design
 
-        design = load_design(args.design)
+        design = prepare_design(load_design(args.design))[0]  # the target as compile wrote it
     library = args.library or (design.library if design is not None else None)
     if library is None:
         raise MetalayError("command line: give --library (or --design, whose library is then used)")
@@ -71,11 +75,12 @@ def run(args) -> int:
     options = OpticsOptions(wavelength_nm=args.wavelength_nm, polarization=args.polarization, bias_nm=args.bias_nm,
                             size_tol_nm=args.size_tol_nm, unmatched=args.unmatched, pad_factor=args.pad_factor,
                             max_side=args.max_side, make_plots=not args.no_plots,
-                            log_far_field=not args.linear_scale)
+                            log_far_field=not args.linear_scale, lit_from=args.lit_from)
     res = check_optics(args.mask, library, design=design, out_dir=out, options=options)
     if not args.quiet:
         f = res.figures
         b = f["power_budget"]
+        print(f"illumination: {f['illumination']['in_words']} ({f['illumination']['chosen_by']})")
         print(f"sites decoded: {f['decode']['sites']:,} (unmatched {f['decode']['unmatched']}, off-lattice "
               f"{f['decode']['off_lattice']}, duplicates {f['decode']['duplicates']})")
         print(f"power: converted {b['converted']:.4f}, leakage {b['leakage']:.4f}, not in zeroth order "
@@ -89,14 +94,19 @@ def run(args) -> int:
             print(f"OAM purity of l = {f['oam']['design_charge']}: {f['oam']['purity']:.5f}")
         if "fringe_reading" in f:
             r = f["fringe_reading"]
-            print(f"charge read from the interferogram: {r['charge']} (design {r['design_charge']})")
+            read = r["charge"] if r["status"] == "read" else "unreadable (the loops disagree)"
+            print(f"charge read from the interferogram: {read} (design {r['design_charge']})")
         if "crosstalk" in f:
-            print(f"worst channel isolation: {f['crosstalk']['worst_isolation_db']:.2f} dB")
+            ct = f["crosstalk"]
+            print(f"worst channel isolation: {ct['worst_isolation_db']:.2f} dB, channel powers within "
+                  f"{ct['power_spread_db']:.2f} dB ({ct['method']})")
         if "lens" in f:
             lm = f["lens"]
             strehl = "n/a" if lm["strehl"] is None else f"{lm['strehl']:.4f}"
             print(f"focal spot FWHM {lm['fwhm_x_um']:.3f} x {lm['fwhm_y_um']:.3f} um (Airy {lm['fwhm_airy_um']:.3f}), "
                   f"Strehl {strehl}, focusing efficiency {lm['focusing_efficiency']:.4f}")
+        v = f["verdicts"]
+        print(f"verdict: {v['verdict'].upper()} ({v['summary']})")
         for note in res.notes:
             print(f"note: {note}")
         t = res.timings

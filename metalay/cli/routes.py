@@ -48,11 +48,12 @@ def _settings(design, args):
 
 def run(args) -> int:
     """Run one ``routes`` action; returns the exit code (0)."""
+    from metalay.api import prepare_design
     from metalay.design.spec import load_design
     from metalay.mask.compile import SAFETY_CAUTION
     from metalay.routes import routes as R
 
-    design = load_design(args.design)
+    design = prepare_design(load_design(args.design))[0]  # optimised multiplex encodings, as compile writes them
     design, settings = _settings(design, args)
     out = args.output or Path("out") / f"{Path(args.design).stem}-routes"
     name = design.name

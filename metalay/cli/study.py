@@ -75,12 +75,13 @@ def _positive_int(name, v, lo=1, hi=None):
 
 
 def _run_compare(args) -> int:
+    from metalay.api import prepare_design
     from metalay.checks.optics import SAFETY_NOTE
     from metalay.design.spec import load_design
     from metalay.studies.study import compare_libraries
 
     _positive_int("workers", args.workers, 1, 256)
-    design = load_design(args.design)
+    design = prepare_design(load_design(args.design))[0]  # optimised multiplex encodings, as compile writes them
     out = args.output or Path("out") / f"{args.design.stem}-compare"
     res = compare_libraries(design, args.library, out, adapt=not args.keep_design, workers=args.workers,
                             show_progress=False if args.quiet else None)
@@ -130,7 +131,9 @@ def _run_tolerance(args) -> int:
                                  seed=args.seed, purity_threshold=args.purity_threshold,
                                  sweep_samples=args.sweep_samples)
     settings.validate(where="command line")
-    design = load_design(args.design)
+    from metalay.api import prepare_design
+
+    design = prepare_design(load_design(args.design))[0]  # optimised multiplex encodings, as compile writes them
     out = args.output or Path("out") / f"{args.design.stem}-tolerance"
     res = tolerance_study(design, out, settings=settings, mask=args.mask, max_side=args.max_side,
                           workers=args.workers, show_progress=False if args.quiet else None,

@@ -9,6 +9,10 @@ module         stage                                                            
                a pure vectorised function of ``(x_um, y_um)``                          ``phase_gradient``
 ``lattice.py`` sites of whole cells inside the aperture (square or hexagonal); a tile  ``sample_sites``
                is a band of rows
+``side.py``    which face the mask shows, which side the light arrives from: the      ``Facing``,
+               frame of the leaving light (mirror, rotation sign)                      ``resolve_facing``
+``limits.py``  verdict thresholds with units (pass / warn / fail), defaults and        ``judge``, ``Limits``
+               design overrides (``[checks.limits]``)
 ``logpolar.py`` log-polar mode sorter elements as phase terms (kind ``mode_sorter``)   ``sorter_parameters``,
                and the choice of their parameters                                      ``parse_sorter_term``
 =============  ======================================================================  ==========================
@@ -28,6 +32,10 @@ _ENTRIES = {
     "sample_sites": "lattice",
     "Aperture": "lattice",
     "Lattice": "lattice",
+    "Facing": "side",
+    "resolve_facing": "side",
+    "Limits": "limits",
+    "judge": "limits",
     "sorter_parameters": "logpolar",
     "SorterElement": "logpolar",
 }

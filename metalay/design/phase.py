@@ -15,7 +15,9 @@ qplate      orientation pattern ``theta = q * atan2(y, x) + alpha0``; as a phase
 multiplex   several vortex channels (charge, carrier direction, weight) superposed and encoded phase-only:
             ``phi = arg(sum_k w_k exp(i (l_k atan2(y, x) + k_k . r + p_k)))`` (argument encoding; the amplitude of the
             superposition is discarded, which is what a phase-only geometric-phase mask can write).
-map         an imported phase map (.npy or .csv) on a regular grid with a stated physical extent, sampled bilinearly.
+map         an imported phase map (.npy or .csv) on a regular grid with a stated physical extent, sampled bilinearly
+            after bringing each grid cell's four values onto one branch (so a map given wrapped to (-pi, pi] and
+            the same map unwrapped give the same phase modulo 2 pi).
 mode_sorter one element of a log-polar OAM mode sorter (unwrapper, corrector, fan-out copier), with its lenses:
             :class:`metalay.design.logpolar.SorterElement` (parameters chosen by ``sorter_parameters``).
 """
@@ -39,6 +41,7 @@ __all__ = [
     "Multiplex",
     "PhaseMap",
     "PHASE_TERM_KINDS",
+    "ENCODINGS",
     "target_phase",
     "term_phase",
     "phase_gradient",
@@ -143,11 +146,26 @@ class Channel:
     offset_deg: float = 0.0
 
 
+#: Values of a multiplex term's ``encoding``: the weights and offsets as given, optimise them at compile time
+#: (:func:`metalay.api.prepare_design`), or numbers that the optimiser produced.
+ENCODINGS = ("given", "optimise", "optimised")
+
+
 @dataclass(frozen=True)
 class Multiplex:
-    """Phase-only (argument) encoding of a weighted superposition of vortex channels."""
+    """Phase-only (argument) encoding of a weighted superposition of vortex channels.
+
+    ``encoding = "optimise"`` asks :func:`metalay.api.prepare_design` (run by ``metalay compile``) to replace the
+    channel weights and offsets by those of :func:`metalay.measure.demux.optimise_multiplex` (worst isolation up,
+    channel powers equal within ``spread_db``; deterministic, at most ``max_evaluations`` encodings) before the
+    phase is written; the result carries ``encoding = "optimised"``. The phase itself always uses the channels as
+    they are.
+    """
 
     channels: tuple[Channel, ...]
+    encoding: str = "given"
+    spread_db: float = 0.5
+    max_evaluations: int = 1200
 
     def phase(self, x_um, y_um, *, wavelength_nm: float, sigma: int):
         k0_per_um = 2 * np.pi / (wavelength_nm * 1e-3)
@@ -167,7 +185,21 @@ class PhaseMap:
     """An imported phase map ``values_rad[row, col]`` on a regular grid covering the given extent.
 
     Row 0 is at ``y_min_um`` and column 0 at ``x_min_um`` (grid points at the edges of the extent).
-    Sampling is bilinear; sites outside the extent raise :class:`DesignError`.
+    Sites outside the extent raise :class:`DesignError`.
+
+    Notes
+    -----
+    Branch-aligned bilinear sampling: for the grid cell holding a site, the values at its other three corners are
+    moved by whole turns onto the branch nearest the lower-left corner's value, ``v_k - 2 pi rint((v_k - v_00) /
+    2 pi)``, and then interpolated bilinearly. A map given wrapped to ``(-pi, pi]`` and the same map unwrapped
+    therefore give the same phase modulo ``2 pi`` wherever neighbouring grid values differ by less than ``pi``
+    (Itoh's condition for unwrapping), and a smooth unwrapped map is sampled exactly as plain bilinear
+    interpolation does (nothing is shifted). A real discontinuity keeps its values: a step or a vortex core
+    affects only the grid cells that contain it (inside them the phase passes the short way round).
+
+    References
+    ----------
+    Itoh 1982, Appl. Opt. 21, 2470 (phase unwrapping: differences of a sampled phase below pi).
     """
 
     values_rad: np.ndarray
@@ -199,8 +231,14 @@ class PhaseMap:
         v = self.values_rad
         i1 = np.minimum(i0 + 1, nx - 1)
         j1 = np.minimum(j0 + 1, ny - 1)
-        return ((1 - tx) * (1 - ty) * v[j0, i0] + tx * (1 - ty) * v[j0, i1]
-                + (1 - tx) * ty * v[j1, i0] + tx * ty * v[j1, i1])
+        v00 = v[j0, i0]
+        two_pi = 2 * np.pi
+
+        def branch(a):  # the corner value on the branch nearest v00 (unchanged for differences below pi)
+            return a - two_pi * np.rint((a - v00) / two_pi)
+
+        return ((1 - tx) * (1 - ty) * v00 + tx * (1 - ty) * branch(v[j0, i1])
+                + (1 - tx) * ty * branch(v[j1, i0]) + tx * ty * branch(v[j1, i1]))
 
 
 PHASE_TERM_KINDS = ("vortex", "tilt", "lens", "axicon", "qplate", "multiplex", "map", "mode_sorter")

@@ -7,12 +7,14 @@ The full key reference is in the README ("Design file reference").
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from pathlib import Path
 
 from metalay.design.lattice import Aperture, Lattice
+from metalay.design.limits import DEFAULT_LIMITS, Limits
 from metalay.design.logpolar import parse_sorter_term
 from metalay.design.phase import (
+    ENCODINGS,
     PHASE_TERM_KINDS,
     Axicon,
     Channel,
@@ -23,11 +25,12 @@ from metalay.design.phase import (
     Vortex,
     load_phase_map,
 )
+from metalay.design.side import LIT_FROM
 from metalay.errors import DesignError
 from metalay.validate import TomlTable, load_toml
 
 __all__ = ["Design", "MaskSettings", "WriteFieldSettings", "MarkSettings", "CheckSettings", "load_design",
-           "parse_design", "DEFAULT_LAYERS", "SPIN_TABLES"]
+           "parse_design", "DEFAULT_LAYERS", "FAIL_AT", "SPIN_TABLES"]
 
 #: Default (layer, datatype) per purpose.
 DEFAULT_LAYERS = {"structures": (1, 0), "frame": (2, 0), "label": (3, 0), "marks": (4, 0)}
@@ -89,11 +92,13 @@ class MaskSettings:
 
 @dataclass(frozen=True)
 class CheckSettings:
-    """Which checks ``compile`` runs on the written mask."""
+    """Which checks ``compile`` runs on the written mask, their verdict thresholds and the exit-code level."""
 
     rules: bool = True
     fail_on_violations: bool = False
     optics: bool = True
+    fail_at: str = "fail"
+    limits: Limits = Limits()
 
 
 @dataclass(frozen=True)
@@ -111,6 +116,7 @@ class Design:
     checks: CheckSettings
     source_path: str = "<memory>"
     raw: dict = field(default_factory=dict, compare=False, repr=False)
+    lit_from: str | None = None
     spin_terms: tuple = ()  # spin-decoupled designs: ((+1, terms for spin +1), (-1, terms for spin -1)); else ()
 
     @property
@@ -151,22 +157,19 @@ def parse_design(data: dict, *, where: str = "<memory>", base_dir: str | Path = 
     base_dir = Path(base_dir)
     top = TomlTable(data, where)
     decoupled = top.has(SPIN_TABLES[0]) or top.has(SPIN_TABLES[1])
-    name, wavelength_nm, sigma, library = _parse_design_table(top.table("design"), base_dir,
-                                                              spin_required=not decoupled)
+    name, wavelength_nm, sigma, library, lit_from = _parse_design_table(top.table("design"), base_dir,
+                                                                        spin_required=not decoupled)
     spin_terms = _parse_spin_terms(top, base_dir, wavelength_nm) if decoupled else ()
     terms = () if decoupled else tuple(_parse_term(t, base_dir, wavelength_nm) for t in top.tables("phase"))
     aperture = _parse_aperture(top.table("aperture"))
     lattice = _parse_lattice(top.table("lattice"), aperture)
     mask = _parse_mask(top.table("mask", {}))
-    c = top.table("checks", {})
-    checks = CheckSettings(rules=c.boolean("rules", True), fail_on_violations=c.boolean("fail_on_violations", False),
-                           optics=c.boolean("optics", True))
-    c.check_unknown()
+    checks = _parse_checks(top.table("checks", {}))
     top.raw("routes", {})  # fabrication-route settings, validated by metalay.routes
     top.check_unknown()
     return Design(name=name, wavelength_nm=float(wavelength_nm), sigma=int(sigma), terms=terms, aperture=aperture,
                   lattice=lattice, library=library, mask=mask, checks=checks, source_path=where, raw=data,
-                  spin_terms=spin_terms)
+                  lit_from=lit_from, spin_terms=spin_terms)
 
 
 def _parse_design_table(d: TomlTable, base_dir: Path, *, spin_required: bool = True):
@@ -190,8 +193,43 @@ def _parse_design_table(d: TomlTable, base_dir: Path, *, spin_required: bool = T
         d.fail("library", library, "give a bundled library name or a path to a *.library.json file")
     if library.endswith(".json") and not Path(library).is_absolute():
         library = str((base_dir / library))
+    lit_from = d.string("lit_from", None, options=LIT_FROM)
     d.check_unknown()
-    return name, wavelength_nm, sigma, library
+    return name, wavelength_nm, sigma, library, lit_from
+
+
+#: Values of ``checks.fail_at``: the verdict level from which ``metalay compile`` exits 1.
+FAIL_AT = ("fail", "warn", "never")
+
+
+def _parse_checks(c: TomlTable) -> CheckSettings:
+    """``[checks]``: which checks run, the exit-code level and the verdict thresholds (``[checks.limits]``)."""
+    checks = CheckSettings(rules=c.boolean("rules", True), fail_on_violations=c.boolean("fail_on_violations", False),
+                           optics=c.boolean("optics", True), fail_at=c.string("fail_at", "fail", options=FAIL_AT),
+                           limits=_parse_limits(c.table("limits")) if c.has("limits") else Limits())
+    c.check_unknown()
+    return checks
+
+
+def _parse_limits(lt: TomlTable) -> Limits:
+    """``[checks.limits]``: per figure ``{warn_below, fail_below}`` (or ``_above``), overriding the defaults."""
+    items = []
+    for lim in DEFAULT_LIMITS:  # a handful of figures (short axis)
+        if not lt.has(lim.key):
+            items.append(lim)
+            continue
+        t = lt.table(lim.key)
+        w_name, f_name = lim.words
+        hi = 1e6 if lim.unit in ("dB", "deg", "count") else 1.0
+        warn = float(t.number(w_name, lim.warn, lo=0.0, hi=hi))
+        fail = float(t.number(f_name, lim.fail, lo=0.0, hi=hi))
+        if (fail > warn) if lim.higher_is_better else (fail < warn):
+            t.fail(f_name, fail, f"must be {'<=' if lim.higher_is_better else '>='} {w_name} = {warn:g} "
+                   f"(unit {lim.unit})")
+        t.check_unknown()
+        items.append(replace(lim, warn=warn, fail=fail))
+    lt.check_unknown()
+    return Limits(tuple(items))
 
 
 #: The tables of a spin-decoupled design: the phase terms written onto input spin +1 and onto input spin -1.
@@ -279,7 +317,7 @@ def _parse_write_field(wf: TomlTable) -> WriteFieldSettings:
         wf.fail("origin_um", origin, "expected [x, y] in um")
     write_field = WriteFieldSettings(
         (float(size[0]), float(size[1])), (float(origin[0]), float(origin[1])),
-        wf.string("straddle", "shift", options=("shift", "drop", "keep")),
+        wf.string("straddle", "shift", options=("shift", "shift-or-drop", "drop", "keep")),
         float(wf.number("max_shift_nm", 50.0, lo=0.0, hi=1e4)),
         wf.boolean("cell_per_field", False))
     wf.check_unknown()
@@ -389,7 +427,9 @@ def _parse_term(r: TomlTable, base_dir: Path, wavelength_nm: float):
                                   float(cr.number("weight", 1.0, lo=0.0, lo_open=True, hi=1e6)),
                                   float(cr.number("offset_deg", 0.0, lo=-360.0, hi=360.0))))
             cr.check_unknown()
-        term = Multiplex(tuple(parsed))
+        term = Multiplex(tuple(parsed), r.string("encoding", "given", options=ENCODINGS[:2]),
+                         float(r.number("encoding_spread_db", 0.5, lo=0.05, hi=6.0)),
+                         int(r.number("encoding_evaluations", 1200, lo=50, hi=20000, integer=True)))
     else:  # map
         file = r.string("file")
         extent = r.raw("extent_um")

@@ -34,7 +34,9 @@ import numpy as np
 from metalay.cells.cellkinds import is_rotation_invariant, outline_nm
 from metalay.cells.library import CellLibrary, load_library
 from metalay.design.lattice import aperture_area_um2, cell_area_um2, row_range, sample_sites
+from metalay.design.limits import judge, unmeasured, worst_verdict
 from metalay.design.phase import phase_gradient, target_phase
+from metalay.design.side import Facing, resolve_facing
 from metalay.design.spec import Design
 from metalay.errors import DesignError, MetalayError, OutputError
 from metalay.io.writer import (
@@ -124,7 +126,7 @@ def medium_index(name: str, wavelength_nm: float) -> float | None:
 
 
 def design_warnings(design: Design, library: CellLibrary, *, alias_fraction: float, alias_r_max_um: float,
-                    alias_r_min_um: float) -> list[str]:
+                    alias_r_min_um: float, facing: Facing | None = None) -> list[str]:
     """Warnings that do not stop the compile.
 
     Sub-wavelength period: only the zeroth order propagates in a medium of index n at normal incidence when
@@ -153,6 +155,18 @@ def design_warnings(design: Design, library: CellLibrary, *, alias_fraction: flo
     if alias_fraction > 0:
         out.append(f"phase gradient exceeds pi per period at {100 * alias_fraction:.3g}% of sites (radius "
                    f"{alias_r_min_um:.3g} to {alias_r_max_um:.3g} um): the phase is aliased there")
+    if any(getattr(t, "encoding", None) == "optimise" for t in design.terms):
+        out.append("a multiplex term asks for encoding = 'optimise' but was written with its weights and offsets "
+                   "as given (metalay.api.compile_design / metalay compile optimise them)")
+    if facing is not None and facing.source == "assumed":
+        out.append(f"library {library.name!r} does not record the side it was computed for and the design does not "
+                   "state design.lit_from: assumed light arrives through the substrate (the mask is not mirrored)")
+    if facing is not None and library.side is not None and facing.lit_from != library.side:
+        # From memory: Potton 2004, Rep. Prog. Phys. 67, 717 (reciprocity: the zeroth-order transmission of a
+        # mirror-symmetric cell is the same from either side; reflection, absorption and other orders are not)
+        out.append(f"the design is lit from the {facing.lit_from} but library {library.name!r} was computed for "
+                   f"light arriving from the {library.side}: the zeroth-order responses are used as computed "
+                   "(equal by reciprocity for mirror-symmetric cells), other orders and losses may differ")
     return out
 
 
@@ -170,7 +184,8 @@ def _sha256(path: Path) -> str:
 
 
 def compile_mask(design: Design, out_dir: str | Path, *, checks: Sequence[MaskCheck] = (),
-                 show_progress: bool | None = None, sites_per_tile: int = SITES_PER_TILE) -> CompileResult:
+                 show_progress: bool | None = None, sites_per_tile: int = SITES_PER_TILE,
+                 annotations: dict | None = None) -> CompileResult:
     """Compile ``design`` into mask files and a manifest in ``out_dir`` (all or nothing), then run ``checks``.
 
     Files are first written into a staging folder inside ``out_dir`` and moved into place only when every stage
@@ -192,18 +207,24 @@ def compile_mask(design: Design, out_dir: str | Path, *, checks: Sequence[MaskCh
         Progress bar on stderr (None: only on a terminal).
     sites_per_tile : int
         Tile size bound (memory).
+    annotations : dict, optional
+        What was worked out before the compile (e.g. ``{"multiplex_encoding": [...]}`` from
+        :func:`metalay.api.prepare_design`), recorded as ``manifest["derived"]``; an entry's records may carry a
+        ``summary`` line, printed in the compile summary.
 
     Returns
     -------
     CompileResult
     """
+    created = _folders_to_create(Path(out_dir))
     out = ensure_dir(out_dir)
     keep_freed_memory()
     stage = Path(tempfile.mkdtemp(prefix=".metalay-stage-", dir=out))
+    done = False
     try:
         try:
             result = _compile_into(design, stage, checks=checks, show_progress=show_progress,
-                                   sites_per_tile=sites_per_tile)
+                                   sites_per_tile=sites_per_tile, annotations=annotations or {})
         except OSError as exc:  # e.g. the disk filled up while writing: one line, nothing left behind
             raise OutputError(f"{out}: writing failed ({exc.strerror or exc})") from exc
         moved = {}
@@ -214,13 +235,28 @@ def compile_mask(design: Design, out_dir: str | Path, *, checks: Sequence[MaskCh
                 os.replace(entry, final)
         for key, p in result.files.items():
             moved[key] = out / Path(p).relative_to(stage)
+        done = True
         return replace(result, out_dir=out, files=moved)
     finally:
         shutil.rmtree(stage, ignore_errors=True)
+        if not done:  # a failed compile leaves no empty folder it created behind
+            for folder in created:  # deepest first; a folder that holds anything stays
+                with contextlib.suppress(OSError):
+                    folder.rmdir()
+
+
+def _folders_to_create(path: Path) -> list[Path]:
+    """The folders ``ensure_dir(path)`` will create (missing ``path`` and missing parents), deepest first."""
+    missing = []
+    p = path.absolute()
+    while not p.exists() and p != p.parent:
+        missing.append(p)
+        p = p.parent
+    return missing
 
 
 def _compile_into(design: Design, out: Path, *, checks: Sequence[MaskCheck], show_progress: bool | None,
-                  sites_per_tile: int) -> CompileResult:
+                  sites_per_tile: int, annotations: dict) -> CompileResult:
     """The stages of one compile into the folder ``out``: plan, tiles, gdstk formats, checks, manifest."""
     t_start = time.perf_counter()
     timings: dict[str, float] = {}
@@ -242,6 +278,8 @@ def _compile_into(design: Design, out: Path, *, checks: Sequence[MaskCheck], sho
         timings["gdstk_write_s"] = time.perf_counter() - t0
     results = _run_checks(plan, enabled, files, timings)
     manifest = _manifest(plan, gathered, files, results, known_hashes)
+    if annotations:
+        manifest["derived"] = annotations
     atomic_write_text(out / "manifest.json", json.dumps(manifest, sort_keys=True, indent=2, default=str) + "\n")
     timings["total_s"] = time.perf_counter() - t_start
     atomic_write_text(out / "timings.json", json.dumps(_rounded(timings), sort_keys=True, indent=2) + "\n")
@@ -271,6 +309,7 @@ class _Plan:
     stream_gds: bool         # flat GDSII streamed tile by tile by our own writer
     need_groups: bool        # OASIS or hierarchical GDSII: gather shape groups for gdstk
     per_field: bool          # one GDSII/OASIS cell per write field
+    facing: Facing = Facing()  # the side the light arrives from (mapping frame)
 
     @property
     def complement(self) -> bool:
@@ -327,6 +366,8 @@ def _datatype_table(design: Design, cell_ids: list) -> tuple[list, np.ndarray]:
 def _plan(design: Design, out: Path, *, sites_per_tile: int, structures_for_checks: bool) -> _Plan:
     """Stage 1: load the library, choose cells, datatypes, output paths and tiles; refuse what cannot fit."""
     library = load_library(design.library)
+    facing = resolve_facing(design.lit_from, mode=library.mode, library_lit_from=library.side,
+                            library_name=library.name, where=design.source_path)
     mask = design.mask
     db_unit_nm = mask.db_unit_nm
     cell_ids, outlines = _cells_and_outlines(design, library)
@@ -354,11 +395,12 @@ def _plan(design: Design, out: Path, *, sites_per_tile: int, structures_for_chec
                        datatypes=tuple(int(v) for v in lut), encode_gds=stream_gds and not complement,
                        need_groups=need_groups and not complement,
                        alias_stride=max(1, int(math.ceil(_estimate_sites(design) / ALIAS_SAMPLES))),
-                       grid=grid, min_gap_db=float(library.rules.get("min_gap_nm", 0.0)) / db_unit_nm)
+                       grid=grid, min_gap_db=float(library.rules.get("min_gap_nm", 0.0)) / db_unit_nm,
+                       facing=facing)
     if complement:
         ctx, tiles = _complement_plan(design, ctx, outlines, grid, encode_structures=structures_for_checks)
     return _Plan(design, library, out, cell_ids, outlines, classes, lut, grid, tiles, ctx, stream_gds,
-                 need_groups, per_field)
+                 need_groups, per_field, facing)
 
 
 def _complement_plan(design: Design, ctx: "_TileContext", outlines, grid, *, encode_structures: bool):
@@ -581,13 +623,55 @@ def _process_block(plan: _Plan, totals: _Totals) -> dict:
     return process
 
 
+def _writing_verdict(plan: _Plan, totals: _Totals) -> dict:
+    """Verdicts of the writing itself: snapping and quantisation errors, elements dropped or shifted at write-field
+    edges (thresholds from the design's ``[checks.limits]``, :mod:`metalay.design.limits`)."""
+    limits = plan.design.checks.limits
+    items = [judge(math.degrees(totals.worst_snap), limits.get("snapping_phase_error_deg")),
+             judge(math.degrees(totals.quant_err), limits.get("quantisation_phase_error_deg"))]
+    if plan.facing.source == "assumed":
+        items.append(unmeasured("lit_from", "assumed 'substrate': neither design.lit_from nor the library says"))
+    if plan.design.mask.write_field is not None:
+        dropped = totals.wf_counts["dropped"]
+        total = totals.n_sites + dropped
+        items.append(judge(dropped / total if total else None, limits.get("dropped_fraction")))
+        items[-1]["count"] = int(dropped)
+        kept = totals.wf_counts["kept_straddling"]
+        items.append(judge(kept / total if total else None, limits.get("straddling_fraction")))
+        items[-1]["count"] = int(kept)
+        if totals.wf_counts["shifted"]:
+            items.append(judge(math.degrees(totals.worst_shift_phase), limits.get("shift_phase_error_deg")))
+        else:
+            items.append(judge(0.0, limits.get("shift_phase_error_deg")))
+        items[-1]["count"] = int(totals.wf_counts["shifted"])
+    verdict = worst_verdict(i["verdict"] for i in items)
+    return {"verdict": verdict, "items": items, "summary": "; ".join(i["text"] for i in items)}
+
+
+def _verdicts(plan: _Plan, totals: _Totals, checks: dict) -> dict:
+    """Per check and overall verdict (the worst); a check that gives no verdict counts as "warn" (never "pass")."""
+    by = {"writing": _writing_verdict(plan, totals)}
+    for key, res in checks.items():
+        v = res.get("verdict") if isinstance(res, dict) else None
+        if v is None:
+            by[key] = {"verdict": "warn", "items": [unmeasured(key, "the check gave no verdict")],
+                       "summary": "the check gave no verdict"}
+        else:
+            by[key] = {"verdict": v, "items": res.get("verdict_items", []), "summary": res.get("verdict_summary", "")}
+    overall = worst_verdict(b["verdict"] for b in by.values())
+    reasons = [f"{key}: {i['text']}" for key, b in by.items() for i in b["items"] if i["verdict"] == overall
+               and overall != "pass"]
+    return {"overall": overall, "reasons": reasons, "by_check": by, "fail_at": plan.design.checks.fail_at,
+            "limits": plan.design.checks.limits.as_dict()}
+
+
 def _manifest(plan: _Plan, gathered: _Gathered, files: dict, checks: dict, known_hashes: dict) -> dict:
     """Stage 5: the manifest (deterministic: no timings, no dates, file names relative)."""
     design, library, mask = plan.design, plan.library, plan.design.mask
     totals = gathered.totals
     alias_fraction = totals.alias_hits / max(totals.alias_total, 1)
     warnings = design_warnings(design, library, alias_fraction=alias_fraction, alias_r_min_um=totals.alias_r[0],
-                               alias_r_max_um=totals.alias_r[1])
+                               alias_r_max_um=totals.alias_r[1], facing=plan.facing)
     fill = totals.n_sites * cell_area_um2(design.lattice) / aperture_area_um2(design.aperture)
     counts = {
         "sites": int(totals.n_sites),
@@ -614,7 +698,9 @@ def _manifest(plan: _Plan, gathered: _Gathered, files: dict, checks: dict, known
         "counts": counts,
         "errors": errors,
         "warnings": warnings,
+        "illumination": plan.facing.as_dict(),
         "checks": checks,
+        "verdicts": _verdicts(plan, totals, checks),
         "files": {fmt: {"name": p.name, "bytes": p.stat().st_size, "sha256": known_hashes.get(p.name) or _sha256(p)}
                   for fmt, p in sorted(files.items())},
         "timings_file": "timings.json",
@@ -642,6 +728,7 @@ class _TileContext:
     min_gap_db: float = 0.0
     region: object = None
     encode_structures: bool = False
+    facing: Facing = Facing()
 
 
 @dataclass
@@ -680,9 +767,13 @@ def _elements(rows, ctx: _TileContext, out: _TileOut, *, active_rows=None) -> _E
     sites = sample_sites(design.aperture, design.lattice, rows=rows)
     if len(sites) == 0:
         return None
-    phi = target_phase(design.terms, sites.x_um, sites.y_um, wavelength_nm=design.wavelength_nm, sigma=design.sigma)
+    # the target phase is that of the light leaving the element, in its own frame (mirrored when it is lit from the
+    # structures in transmission); the rotation sign follows the side (metalay.design.side)
+    bx, by = ctx.facing.beam_xy(sites.x_um, sites.y_um)
+    phi = target_phase(design.terms, bx, by, wavelength_nm=design.wavelength_nm, sigma=design.sigma)
     ncell = len(ctx.cell_ids)
-    a = assign_cells(phi, library, sigma=design.sigma, cell_id=ctx.cell_ids[0] if ncell == 1 else None,
+    a = assign_cells(phi, library, sigma=ctx.facing.rotation_sign * design.sigma,
+                     cell_id=ctx.cell_ids[0] if ncell == 1 else None,
                      rotation_levels=design.mask.rotation_levels, wavelength_nm=design.wavelength_nm)
     centres = snap_centres(sites.x_um, sites.y_um, db_unit_nm)
     active = None if active_rows is None else (sites.j >= active_rows[0]) & (sites.j < active_rows[1])
@@ -713,7 +804,7 @@ def _alias_estimate(sites, active, ctx: _TileContext, out: _TileOut) -> None:
     """Count sites where the phase changes by more than pi per period, on a deterministic sub-sample."""
     design = ctx.design
     own = slice(None) if active is None else active
-    xs, ys = sites.x_um[own][::ctx.alias_stride], sites.y_um[own][::ctx.alias_stride]
+    xs, ys = ctx.facing.beam_xy(sites.x_um[own][::ctx.alias_stride], sites.y_um[own][::ctx.alias_stride])
     g = phase_gradient(design.terms, xs, ys, wavelength_nm=design.wavelength_nm, sigma=design.sigma,
                        step_um=design.lattice.period_um * 1e-3)
     hit = g * design.lattice.period_um > np.pi
@@ -776,7 +867,7 @@ def _fit_fields(sites, centres, offsets, slot, active, keep, ctx: _TileContext, 
     if moved.size:
         shift_nm = np.hypot(*fit.shift_db[moved].T.astype(np.float64)) * db_unit_nm
         out.worst_shift_nm = max(out.worst_shift_nm, float(shift_nm.max()))
-        gm = phase_gradient(design.terms, sites.x_um[moved], sites.y_um[moved],
+        gm = phase_gradient(design.terms, *ctx.facing.beam_xy(sites.x_um[moved], sites.y_um[moved]),
                             wavelength_nm=design.wavelength_nm, sigma=design.sigma,
                             step_um=design.lattice.period_um * 1e-3)
         err = shift_phase_error_rad(fit.shift_db[moved], gm, db_unit_nm=db_unit_nm)
@@ -988,13 +1079,27 @@ def _summary(design: Design, library: CellLibrary, manifest: dict, files: dict) 
     ]
     for info in manifest["files"].values():
         lines.append(f"wrote {info['name']} ({info['bytes'] / 1e6:.2f} MB, sha256 {info['sha256'][:12]})")
+    for records in manifest.get("derived", {}).values():
+        lines.extend(r["summary"] for r in records if isinstance(r, dict) and "summary" in r)
+    lines.append(f"illumination: lit from the {manifest['illumination']['lit_from']} ({library.mode}; "
+                 f"{'mirrored' if manifest['illumination']['mirrored_y'] else 'not mirrored'} in the file)")
+    verdicts = manifest["verdicts"]
+    wv = verdicts["by_check"]["writing"]
+    lines.append(f"writing: {wv['verdict'].upper()}")
+    lines.extend(f"  {i['text']}" for i in wv["items"])
     for key, res in manifest["checks"].items():
         summary = res.get("summary", "")
+        verdict = verdicts["by_check"][key]["verdict"]
+        status = res.get("status", "?")
+        head = f"{key} check: {verdict.upper()}" + ("" if status == verdict else f" ({status})")
         if isinstance(summary, (list, tuple)):
-            lines.append(f"{key} check: {res.get('status', '?')}")
+            lines.append(head)
             lines.extend(f"  {line}" for line in summary)
         else:
-            lines.append(f"{key} check: {res.get('status', '?')} {summary}".rstrip())
+            lines.append(f"{head} {summary}".rstrip())
+        lines.extend(f"  {i['text']}" for i in verdicts["by_check"][key]["items"] if i["verdict"] != "pass")
     for w in manifest["warnings"]:
         lines.append(f"warning: {w}")
+    why = f": {'; '.join(verdicts['reasons'])}" if verdicts["reasons"] else ""
+    lines.append(f"verdict: {verdicts['overall'].upper()}{why}")
     return lines

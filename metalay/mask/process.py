@@ -45,11 +45,13 @@ Write fields (e-beam fields of size W x H from an origin)
     and move only each straddling element perpendicular to the boundary by the smallest whole-unit amount that
     puts its bounding box entirely in one field (towards the nearer side). A move is accepted only if it is at
     most ``max_shift_nm`` and does not bring the element closer to any neighbour than the min-gap rule allows
-    (or than it already was); otherwise the element is tried the other way and, failing that, left out. The
+    (or than it already was); otherwise the element is tried the other way and, failing that, kept where it is
+    (still straddling, counted as ``kept_straddling``): no element is left out unless the design says so. The
     geometric phase is set by the element's rotation, which is unchanged: the error is that the element now
     samples the target phase at a displaced point, ``|grad phi| * |shift|`` to first order
-    (:func:`shift_phase_error_rad`). Mode ``"drop"`` leaves every straddling element out, ``"keep"`` writes them as
-    they are; all modes report the counts. Choosing the field origin so boundaries fall between cells (e.g. on the
+    (:func:`shift_phase_error_rad`). Mode ``"shift-or-drop"`` leaves out the elements that cannot be shifted,
+    ``"drop"`` leaves every straddling element out, ``"keep"`` writes them as they are; all modes report the
+    counts. Choosing the field origin so boundaries fall between cells (e.g. on the
     cell edges, when the field size is a multiple of the period) avoids straddling entirely and is the best
     setting where the tool allows it.
 
@@ -104,7 +106,7 @@ __all__ = [
 ]
 
 BIAS_CORNERS = ("sharp", "chamfer")
-STRADDLE_MODES = ("shift", "drop", "keep")
+STRADDLE_MODES = ("shift", "shift-or-drop", "drop", "keep")
 MARK_KINDS = ("cross", "square")
 BABINET_SOURCE = (
     "Babinet-principle estimate, not a solver result: t_slot(E along an axis) = 1 - t_antenna(E along the other "
@@ -732,7 +734,9 @@ def fit_write_fields(centres_db, offsets_db, grid: WriteFieldGrid, *, mode: str 
     centres_db : ndarray (N, 2) int64
     offsets_db : ndarray (N, V, 2) int32
     grid : WriteFieldGrid
-    mode : {"shift", "drop", "keep"}
+    mode : {"shift", "shift-or-drop", "drop", "keep"}
+        What to do with straddling elements (module docstring); ``"shift"`` keeps an element it cannot shift in
+        place, ``"shift-or-drop"`` leaves it out.
     max_shift_db : float
         Largest accepted shift length (database units).
     min_gap_db : float
@@ -779,8 +783,10 @@ def fit_write_fields(centres_db, offsets_db, grid: WriteFieldGrid, *, mode: str 
         keep &= ~straddle
         return FieldFit(c.copy(), keep, np.zeros((n, 2), np.int64), straddle, int(straddle.sum()), 0,
                         int(straddle.sum()), 0, 0.0)
+    drop_failed = mode == "shift-or-drop"
     moving = straddle & ~impossible
-    keep &= ~impossible
+    if drop_failed:
+        keep &= ~impossible
     # first try the smaller shift; failures try the other direction; failures again are left out
     trial = np.where(moving[:, None], shift, 0)
     too_far = np.hypot(trial[:, 0], trial[:, 1]) > max_shift_db
@@ -797,14 +803,16 @@ def fit_write_fields(centres_db, offsets_db, grid: WriteFieldGrid, *, mode: str 
     new_c[ok2] += trial2[ok2]
     bad2 = _gap_violations(new_c, o, np.flatnonzero(ok2), keep, min_gap_db, c)
     new_c[bad2] = c[bad2]
-    dropped = impossible | (second & far2) | np.isin(np.arange(n), bad2)
-    keep &= ~dropped
-    new_c[dropped] = c[dropped]
+    failed = impossible | (second & far2) | np.isin(np.arange(n), bad2)
+    if drop_failed:
+        keep &= ~failed
+    new_c[failed] = c[failed]
     applied = new_c - c
     moved = np.any(applied != 0, axis=1)
     lengths = np.hypot(applied[:, 0], applied[:, 1])
+    n_failed = int(failed.sum())
     return FieldFit(new_c, keep, applied, straddle, int(straddle.sum()), int((moved & keep).sum()),
-                    int(dropped.sum()), 0, float(lengths.max(initial=0.0)))
+                    n_failed if drop_failed else 0, 0 if drop_failed else n_failed, float(lengths.max(initial=0.0)))
 
 
 def _gap_violations(centres, offsets, moved_idx, keep, min_gap_db, centres_before) -> np.ndarray:

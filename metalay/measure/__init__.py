@@ -36,6 +36,7 @@ _ENTRIES = {
     "design_ring_layout": "demux",
     "evaluate_multiplex": "demux",
     "optimise_multiplex": "demux",
+    "optimise_design_encodings": "demux",
     "read_image": "imagecharge",
     "read_fork": "imagecharge",
     "read_spiral": "imagecharge",

@@ -191,7 +191,7 @@ def written_element(mask_path, design, *, library=None, size_tol_nm: float = 3.0
     """
     from metalay.cells.library import CellLibrary, load_library
     from metalay.checks.decode import decode_sites
-    from metalay.checks.optics import ideal_responses, input_jones, rasterize, site_fields
+    from metalay.checks.optics import beam_frame_sites, facing_of, ideal_responses, input_jones, rasterize, site_fields
     from metalay.design.lattice import sample_sites
     from metalay.design.phase import target_phase
     from metalay.io.gdsread import read_mask
@@ -208,6 +208,8 @@ def written_element(mask_path, design, *, library=None, size_tol_nm: float = 3.0
     decoded = decode_sites(flat, lib.cells, period_nm=design.lattice.period_nm, lattice=design.lattice.kind,
                            layer=tuple(layer), size_tol_nm=size_tol_nm, bias_nm=design.mask.bias_nm,
                            unmatched="error", where=str(mask_path))
+    facing = facing_of(design, lib, where=str(mask_path))
+    decoded = beam_frame_sites(decoded, facing)  # the frame of the light leaving the element (design.side)
     if lib.has_responses:
         t_long, t_short = lib.response_at(design.wavelength_nm)
         responses = f"library {lib.name} at {design.wavelength_nm:g} nm"
@@ -221,14 +223,14 @@ def written_element(mask_path, design, *, library=None, size_tol_nm: float = 3.0
     jin = input_jones("design", design_sigma=spin)
     sf = site_fields(tl, ts, decoded.rotation_rad, jin, sigma=spin)
     s = sample_sites(design.aperture, design.lattice)
-    near = rasterize(decoded, sf, jones_in=jin, expected_ij=(s.i, s.j))
+    near = rasterize(decoded, sf, jones_in=jin, expected_ij=(s.i, -s.j if facing.mirror_y else s.j))
     phi_t = target_phase(design.terms, decoded.x_um, decoded.y_um, wavelength_nm=design.wavelength_nm,
                          sigma=design.sigma)
     as_designed = sf if spin == design.sigma else site_fields(
         tl, ts, decoded.rotation_rad, input_jones("design", design_sigma=design.sigma), sigma=design.sigma)
     info = {"design": design.name, "mask": mask_path.name,
             "mask_sha256": hashlib.sha256(mask_path.read_bytes()).hexdigest(), "input_spin": int(design.sigma),
-            "arriving_spin": spin,
+            "arriving_spin": spin, "illumination": facing.as_dict(),
             "sites": int(len(decoded)), "aperture_sites": int(len(s)),
             "decode": {k: decoded.stats[k] for k in ("polygons", "unmatched", "off_lattice", "duplicates")},
             "converted_power_per_element": float(np.mean(np.abs(sf.converted.astype(np.complex128)) ** 2)),

@@ -25,6 +25,12 @@ compare
     (mode overlap with the ideal first-order beam, incident-power normalised), the far-field power inside the
     first-order window when the beam has a carrier, and the mode purity (OAM weight of the target charge).
 
+Which side: the phase is computed in the frame of the light leaving the element (:mod:`metalay.design.side`). The
+etch, fork and orient files show the patterned face seen from above, so when ``design.lit_from = "structures"``
+(light onto the etched or patterned face) they hold the mirror image (``y -> -y``; orientation angles negated);
+without ``design.lit_from`` the route elements are taken as lit through the substrate and their summaries say so.
+The SLM image is the panel as the arriving light faces it and does not depend on ``lit_from``.
+
 Conventions: time dependence ``exp(-i omega t)``; a phase element multiplies the field by ``exp(i phi)``; a
 thickness ``h`` of index ``n`` adds phase ``2 pi (n - 1) h / lambda`` relative to air. Images: row 0 is the top
 (largest ``y``), column 0 the left (smallest ``x``), seen with +x to the right and +y up.
@@ -56,6 +62,7 @@ from pathlib import Path
 import numpy as np
 
 from metalay.design.phase import Axicon, Lens, Multiplex, PhaseMap, QPlate, Tilt, Vortex, phase_gradient, target_phase
+from metalay.design.side import Facing
 from metalay.errors import DesignError, MetalayError
 from metalay.io.writer import MAX_GDS_VERTICES, GdsStream
 from metalay.routes import _routes_geom as geo
@@ -70,7 +77,7 @@ __all__ = [
     "ForkGrating", "fork_grating", "write_fork",
     "SlmImage", "slm_image", "gray_to_phase", "read_lut", "write_slm",
     "OrientationMap", "orientation_map", "write_orientation",
-    "RouteFigures", "compare_routes", "format_table", "ROUTE_NAMES",
+    "RouteFigures", "compare_routes", "format_table", "ROUTE_NAMES", "route_facing", "route_illumination",
 ]
 
 ROUTE_NAMES = ("etch", "fork", "slm", "orient", "compare")
@@ -445,6 +452,30 @@ def _geometry_to_rings(geom, aperture_geom, db_unit_nm):
     return clipped, geo.snap_rings(pieces, db_unit_nm)
 
 
+def route_facing(design) -> Facing:
+    """The side the light arrives from for the route elements (all transmission elements): ``design.lit_from``,
+    else assumed through the substrate (the file's summary says so)."""
+    lit_from = getattr(design, "lit_from", None)
+    return Facing(lit_from or "substrate", "transmission", "design" if lit_from else "assumed")
+
+
+def route_illumination(facing: Facing) -> dict:
+    """The side in words for a route's JSON summary."""
+    d = facing.as_dict()
+    if facing.source == "assumed":
+        d["chosen_by"] = "assumed: light through the substrate (design.lit_from not given)"
+    return d
+
+
+def _mask_frame_rings(rings, facing: Facing) -> list:
+    """Polygons as the file shows them: mirrored ``y -> -y`` (order reversed to keep the winding) when the light
+    arrives onto the patterned face; computed in the frame of the light leaving the element."""
+    if not facing.mirror_y:
+        return list(rings)
+    return [np.ascontiguousarray((np.asarray(r) * np.array([1, -1], dtype=np.asarray(r).dtype))[::-1])
+            for r in rings]
+
+
 def _json(obj) -> str:
     return json.dumps(obj, sort_keys=True, indent=2, allow_nan=False) + "\n"
 
@@ -517,10 +548,12 @@ class EtchMasks:
     raster_um: float
     perimeter_um: np.ndarray
     warnings: tuple = ()
+    facing: Facing = Facing(source="assumed")
 
     def summary(self) -> dict:
         """JSON-ready figures (no polygons)."""
         return {
+            "illumination": route_illumination(self.facing),
             "route": "etch", "levels": self.levels, "masks": len(self.masks), "wavelength_nm": self.wavelength_nm,
             "material": self.material, "index": self.index,
             "depths_nm": [float(d) for d in self.depths_nm], "level_step_nm": self.step_nm,
@@ -634,7 +667,8 @@ def etch_masks(design, settings: RouteSettings | None = None, *, with_level_area
         layers=tuple((es.layer + j, es.datatype) for j in range(k)), mask_area_um2=np.array(areas),
         level_area_um2=level_areas, aperture_area_um2=float(ap.area), boundary_error_um=err,
         aperture_error_um=float(ap_err), snap_error_um=db_unit_nm * 1e-3 * math.sqrt(0.5), core_radius_um=core_r,
-        raster_um=settings.raster_um, perimeter_um=np.array(perims), warnings=tuple(warnings))
+        raster_um=settings.raster_um, perimeter_um=np.array(perims), warnings=tuple(warnings),
+        facing=route_facing(design))
 
 
 def write_etch(result: EtchMasks, out_dir, name: str, *, split: str = "layers", db_unit_nm: float = 1.0) -> list[Path]:
@@ -642,12 +676,13 @@ def write_etch(result: EtchMasks, out_dir, name: str, *, split: str = "layers", 
     (``"files"``), plus ``<name>_etch.json``; atomic, deterministic. Returns the written paths."""
     out = ensure_dir(out_dir)
     paths = []
+    masks = [_mask_frame_rings(m, result.facing) for m in result.masks]
     if split == "layers":
         paths.append(_write_gds(out / f"{name}_etch.gds", f"{name}_ETCH",
-                                [(ly, dt, list(m)) for (ly, dt), m in zip(result.layers, result.masks)], db_unit_nm))
+                                [(ly, dt, m) for (ly, dt), m in zip(result.layers, masks)], db_unit_nm))
     else:
-        for j, ((ly, dt), m) in enumerate(zip(result.layers, result.masks), start=1):
-            paths.append(_write_gds(out / f"{name}_etch_mask{j}.gds", f"{name}_MASK{j}", [(ly, dt, list(m))],
+        for j, ((ly, dt), m) in enumerate(zip(result.layers, masks), start=1):
+            paths.append(_write_gds(out / f"{name}_etch_mask{j}.gds", f"{name}_MASK{j}", [(ly, dt, m)],
                                     db_unit_nm))
     paths.append(atomic_write_text(out / f"{name}_etch.json", _json(result.summary())))
     return paths
@@ -695,9 +730,11 @@ class ForkGrating:
     rules: dict
     terms: tuple
     warnings: tuple = ()
+    facing: Facing = Facing(source="assumed")
 
     def summary(self) -> dict:
-        return {"route": "fork", "kind": self.kind, "period_um": self.period_um, "azimuth_deg": self.azimuth_deg,
+        return {"illumination": route_illumination(self.facing),
+                "route": "fork", "kind": self.kind, "period_um": self.period_um, "azimuth_deg": self.azimuth_deg,
                 "duty": self.duty, "charge": self.charge, "polygons": len(self.rings), "layer": list(self.layer),
                 "line_area_um2": self.line_area_um2, "aperture_area_um2": self.aperture_area_um2,
                 "boundary_error_um": self.boundary_error_um, "efficiency_expected": self.efficiency_expected,
@@ -797,13 +834,14 @@ def fork_grating(design, settings: RouteSettings | None = None) -> ForkGrating:
                        line_area_um2=_rings_area_um2(rings, db_unit_nm),
                        aperture_area_um2=float(ap.area), boundary_error_um=err,
                        efficiency_expected=binary_grating_efficiency(fs.kind, fs.duty), etch_depth_nm=depth,
-                       rules=rules, terms=terms, warnings=tuple(warnings))
+                       rules=rules, terms=terms, warnings=tuple(warnings), facing=route_facing(design))
 
 
 def write_fork(result: ForkGrating, out_dir, name: str, *, db_unit_nm: float = 1.0) -> list[Path]:
     """Write ``<name>_fork.gds`` and ``<name>_fork.json`` (atomic, deterministic)."""
     out = ensure_dir(out_dir)
-    p = _write_gds(out / f"{name}_fork.gds", f"{name}_FORK", [(result.layer[0], result.layer[1], list(result.rings))],
+    p = _write_gds(out / f"{name}_fork.gds", f"{name}_FORK", [(result.layer[0], result.layer[1],
+                                                               _mask_frame_rings(result.rings, result.facing))],
                    db_unit_nm)
     return [p, atomic_write_text(out / f"{name}_fork.json", _json(result.summary()))]
 
@@ -1023,10 +1061,12 @@ class OrientationMap:
     y_um: np.ndarray
     pitch_um: float
     sigma: int
+    facing: Facing = Facing(source="assumed")
 
     def summary(self) -> dict:
         h, w = self.code.shape
-        return {"route": "orient", "width_px": w, "height_px": h, "pitch_um": self.pitch_um, "input_spin": self.sigma,
+        return {"illumination": route_illumination(self.facing),
+                "route": "orient", "width_px": w, "height_px": h, "pitch_um": self.pitch_um, "input_spin": self.sigma,
                 "angle": "fast axis, counter-clockwise from +x; theta = sigma * phi / 2 mod pi",
                 "png_code": "angle_rad = code * pi / 65536", "csv": "angle_deg per pixel, nan outside the aperture",
                 "orientation": "row 0 = top (+y), column 0 = left (-x)",
@@ -1060,16 +1100,21 @@ def orientation_map(design, settings: RouteSettings | None = None) -> Orientatio
     inside = _inside(design.aperture, xx, yy)
     code = np.mod(np.rint(theta * 65536 / np.pi).astype(np.int64), 65536)
     code = np.where(inside, code, 0).astype(np.uint16)
-    return OrientationMap(angle_rad=theta, code=code, inside=inside, x_um=x, y_um=y, pitch_um=p, sigma=design.sigma)
+    return OrientationMap(angle_rad=theta, code=code, inside=inside, x_um=x, y_um=y, pitch_um=p, sigma=design.sigma,
+                          facing=route_facing(design))
 
 
 def write_orientation(result: OrientationMap, out_dir, name: str) -> list[Path]:
     """Write ``<name>_orient.png`` (16-bit), ``<name>_orient.csv`` (degrees, 4 decimals) and a JSON summary."""
     out = ensure_dir(out_dir)
-    deg = np.where(result.inside, result.code.astype(np.float64) * 180.0 / 65536, np.nan)
+    code, inside = result.code, result.inside
+    if result.facing.mirror_y:  # the retarder as the file shows it: mirrored rows, negated angles
+        code = np.where(inside, np.mod(65536 - code.astype(np.int64), 65536), 0)[::-1].astype(np.uint16)
+        inside = inside[::-1]
+    deg = np.where(inside, code.astype(np.float64) * 180.0 / 65536, np.nan)
     buf = io.StringIO()
     np.savetxt(buf, deg, fmt="%.4f", delimiter=",")
-    return [atomic_write_bytes(out / f"{name}_orient.png", _png_bytes(result.code)),
+    return [atomic_write_bytes(out / f"{name}_orient.png", _png_bytes(code)),
             atomic_write_text(out / f"{name}_orient.csv", buf.getvalue()),
             atomic_write_text(out / f"{name}_orient.json", _json(result.summary()))]
 

@@ -6,6 +6,8 @@ module         stage                                                            
 ``study.py``   compile per library and compare (rules margins, optics, band); Monte Carlo over  ``compare_libraries``,
                CD bias, rotation error, missing elements, detuning, evaluated with             ``tolerance_study``
                :func:`metalay.checks.optics.evaluate_elements` on the decoded mask
+``supercell.py`` the side convention proved by the solver: a written blazed grating solved whole    ``supercell_rows``
+               (RCWA supercell) per side and spin, against the optical check's prediction
 =============  ==============================================================================  ====================
 
 Imports: checks, mask (``compile_mask``), design, cells, io, util.
@@ -19,6 +21,7 @@ _ENTRIES = {
     "ToleranceSettings": "study",
     "site_model": "study",
     "evaluate_sites": "study",
+    "supercell_rows": "supercell",
 }
 __all__ = sorted(_ENTRIES)
 __getattr__, __dir__ = lazy_entries(__name__, _ENTRIES)

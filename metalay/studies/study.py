@@ -159,6 +159,8 @@ def site_model(mask_path, library, design, *, max_side: int = 1024, pad_factor: 
                            layer=tuple(layer), size_tol_nm=size_tol_nm, bias_nm=float(mask_settings.bias_nm or 0.0),
                            unmatched=unmatched, where=str(mask_path))
     del flat
+    facing = optics.facing_of(design, lib, where=str(mask_path))
+    decoded = optics.beam_frame_sites(decoded, facing)  # the frame of the light leaving the element
     target = optics.target_from_design(design)
     s = sample_sites(design.aperture, design.lattice)
     m = optics.near_field_decimation(decoded, max_side)[0]
@@ -166,7 +168,8 @@ def site_model(mask_path, library, design, *, max_side: int = 1024, pad_factor: 
     if target.terms:
         xs, ys = optics.site_xy(decoded)
         phi = target_phase(target.terms, xs, ys, wavelength_nm=target.wavelength_nm, sigma=target.sigma)
-    return SiteModel(decoded=decoded, library=lib, design=design, target=target, expected_ij=(s.i, s.j),
+    return SiteModel(decoded=decoded, library=lib, design=design, target=target,
+                     expected_ij=(s.i, -s.j if facing.mirror_y else s.j),
                      decimation=m, pad_factor=float(pad_factor), charges=tuple(charges), empty_t=complex(empty_t),
                      phi_site=phi, mask_path=str(mask_path))
 
