@@ -197,7 +197,8 @@ def load_build_spec(path) -> BuildSpec:
     patterned = next(lay for lay in layers if lay["patterned"])
     heights = tuple(_values(sw, "height_nm")) if sw.has("height_nm") else (patterned["thickness_nm"],)
     if mech == "spin_decoupled" and len(heights) != 1:
-        sw.fail("height_nm", list(heights), "a spin_decoupled set needs one height (all its cells share the film)")
+        sw.fail("height_nm", [float(h) for h in heights], "a spin_decoupled set needs one height (all its cells share "
+                "the film)")
     levels = int(_pos(sw, "levels", 8.0, hi=64)) if mech == "propagation" else 1
     if mech == "spin_decoupled":
         levels = int(sw.number("levels", 8, lo=2, hi=64, integer=True))

@@ -34,7 +34,7 @@ import numpy as np
 from metalay.checks import optics
 from metalay.errors import MetalayError
 
-__all__ = ["spin_view", "target_overlaps", "check_spin_optics", "compile_spin_check", "SPIN_LABELS"]
+__all__ = ["spin_view", "target_overlaps", "spin_verdicts", "check_spin_optics", "compile_spin_check", "SPIN_LABELS"]
 
 #: Label of each input spin in file names, figure keys and the report.
 SPIN_LABELS = {1: "spin_plus", -1: "spin_minus"}
@@ -219,24 +219,55 @@ def check_spin_optics(mask_path, library, design, *, out_dir=None,
     return _finish(mask_path, lib, design, dec0, opt, figures, images, notes, timings, t_all, out_dir)
 
 
+def spin_verdicts(figures: dict, limits=None) -> dict:
+    """Verdicts of both spins: each spin's figures judged as a single-spin check would judge them
+    (:func:`metalay.checks.optics.optics_verdicts`: converted efficiency, OAM purity, fringe charge, Strehl ratio)
+    plus each spin's isolation from the other spin's target against ``worst_isolation_db``.
+
+    Returns
+    -------
+    dict
+        ``verdict`` (the worst item), ``items`` (each with ``spin``), ``summary``, ``by_spin`` (verdict per spin).
+    """
+    from metalay.design.limits import Limits, judge, worst_verdict
+
+    limits = limits or Limits()
+    items, by_spin = [], {}
+    for key, figs in figures["spins"].items():  # the two input spins
+        own = optics.optics_verdicts(figs, limits)["items"]
+        iso = judge(figures["target_crosstalk"]["isolation_db"][key], limits.get("worst_isolation_db"))
+        iso = {**iso, "what": "isolation of this spin's converted light from the other spin's target"}
+        spin_items = [{**i, "spin": int(key), "text": f"spin {key}: {i['text']}"} for i in own + [iso]]
+        by_spin[key] = worst_verdict(i["verdict"] for i in spin_items)
+        items.extend(spin_items)
+    return {"verdict": worst_verdict(i["verdict"] for i in items), "items": items, "by_spin": by_spin,
+            "summary": "; ".join(i["text"] for i in items)}
+
+
 def _finish(mask_path, lib, design, dec0, opt, figures, images, notes, timings, t_all, out_dir):
     """Inputs, report, files (the single-spin check's writer) and the result."""
     figures = optics.json_ready(figures)
+    limits = opt.limits if opt.limits is not None else getattr(getattr(design, "checks", None), "limits", None)
+    figures["verdicts"] = spin_verdicts(figures, limits)
     inputs = {"mask": {"path": mask_path.name, "sha256": optics._sha256(mask_path),
                        "bytes": mask_path.stat().st_size},
               "library": {"name": lib.name, "sha256": lib.sha256}, "design": design.name,
               "wavelength_nm": dec0.target.wavelength_nm, "polarization": "spin +1 and spin -1 in turn",
               "layer": list(dec0.layer), "bias_nm": dec0.bias_nm, "size_tol_nm": opt.size_tol_nm,
-              "empty_t": str(opt.empty_t), "pad_factor": opt.pad_factor, "max_side": opt.max_side}
+              "empty_t": str(opt.empty_t), "pad_factor": opt.pad_factor, "max_side": opt.max_side,
+              "lit_from": dec0.facing.lit_from, "illumination": dec0.facing.describe(),
+              "verdict": figures["verdicts"]["verdict"]}
     figures["inputs"] = optics.json_ready(inputs)
     html_text = None
     if opt.make_plots:
         from metalay.checks.report import render_html
 
-        html_text = render_html(title=opt.title or f"Optical check of {mask_path.name} (both input spins)",
-                                caution=optics.SAFETY_NOTE, inputs=inputs,
-                                figures={k: v for k, v in figures.items() if k != "inputs"}, images=images,
-                                notes=notes)
+        verdict = figures["verdicts"]
+        html_text = render_html(title=(opt.title or f"Optical check of {mask_path.name} (both input spins)")
+                                + f": verdict {verdict['verdict'].upper()}", caution=optics.SAFETY_NOTE,
+                                inputs=inputs, figures={k: v for k, v in figures.items() if k != "inputs"},
+                                images=images, notes=[f"verdict {verdict['verdict'].upper()}: {verdict['summary']}",
+                                                      *notes])
     files = optics._write_outputs(Path(out_dir), figures, images, html_text) if out_dir is not None else {}
     timings["total_s"] = time.perf_counter() - t_all
     return optics.OpticsResult(figures=figures, images=images, html=html_text, files=files, timings=timings,
@@ -249,7 +280,8 @@ def compile_spin_check(path, library, design) -> dict:
     Returns
     -------
     dict
-        ``status``, ``summary`` (one line per spin), ``figures``, ``files`` (relative to the mask folder),
+        ``status`` and ``verdict`` (the worst verdict of :func:`spin_verdicts`), ``verdict_items``,
+        ``verdict_summary``, ``summary`` (one part per spin), ``figures``, ``files`` (relative to the mask folder),
         ``notes``, ``timings_s``.
     """
     import os
@@ -271,5 +303,7 @@ def compile_spin_check(path, library, design) -> dict:
         parts.append(f"spin {key}: " + ", ".join(bits))
     files = {k: {"path": os.path.relpath(v["path"], Path(path).parent), "sha256": v["sha256"], "bytes": v["bytes"]}
              for k, v in res.files.items()}
-    return {"status": "ok", "summary": "; ".join(parts), "figures": f, "files": files, "notes": list(res.notes),
-            "timings_s": res.timings}
+    v = f["verdicts"]
+    return {"status": v["verdict"], "verdict": v["verdict"], "verdict_items": v["items"],
+            "verdict_summary": v["summary"], "summary": "; ".join(parts), "figures": f, "files": files,
+            "notes": list(res.notes), "timings_s": res.timings}
