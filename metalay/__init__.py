@@ -4,7 +4,8 @@ Architecture map (one subpackage per family of stages, plain data between stages
 never up; DEVELOPERS.md has the long map)::
 
     errors.py, validate.py   one exception root with exit codes; the one TOML validation helper
-    util/                    atomic output, progress bars, allocator setting, lazy package names
+    util/                    atomic output (files; whole output folders under a lock), the memory budget,
+                             progress bars, allocator setting, lazy package names
     design/                  spec.load_design (TOML -> Design), phase.target_phase, lattice.sample_sites
     cells/                   library.load_library, cellkinds.outline_nm, rcwa.solve (+ rcwa_nv: polygon layers,
                              normal-vector factorisation), materials, cellbuild

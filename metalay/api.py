@@ -46,7 +46,7 @@ def prepare_design(design: Design) -> tuple[Design, dict]:
 
 def compile_design(design: Design, out_dir: str | Path, *, run_rules: bool | None = None,
                    run_optics: bool | None = None, show_progress: bool | None = None,
-                   sites_per_tile: int = SITES_PER_TILE) -> CompileResult:
+                   sites_per_tile: int = SITES_PER_TILE, max_memory_bytes: int | None = None) -> CompileResult:
     """Compile ``design`` into mask files, a manifest and the standard checks in ``out_dir`` (all or nothing).
 
     Parameters
@@ -54,13 +54,15 @@ def compile_design(design: Design, out_dir: str | Path, *, run_rules: bool | Non
     design : Design
         A validated design (:func:`load_design` or :func:`parse_design`).
     out_dir : str or Path
-        Output folder (created).
+        Output folder, replaced as a whole when the compile succeeds (new, empty, or an earlier metalay output).
     run_rules, run_optics : bool or None
         Override the design's ``[checks]`` settings (None: as the design says).
     show_progress : bool or None
         Progress bar on stderr (None: only on a terminal).
     sites_per_tile : int
         Tile size bound (memory).
+    max_memory_bytes : int, optional
+        Memory budget for the admission check (default: half of what this process may use).
 
     Returns
     -------
@@ -69,4 +71,5 @@ def compile_design(design: Design, out_dir: str | Path, *, run_rules: bool | Non
     """
     design, annotations = prepare_design(design)
     return compile_mask(design, out_dir, checks=default_checks(rules=run_rules, optics=run_optics),
-                        show_progress=show_progress, sites_per_tile=sites_per_tile, annotations=annotations)
+                        show_progress=show_progress, sites_per_tile=sites_per_tile, annotations=annotations,
+                        max_memory_bytes=max_memory_bytes)

@@ -16,12 +16,13 @@ class                exit code  raised for
 ``GeometryError``    2          polygons handed to a geometry stage are invalid (not convex, an edge collapses)
 ``StudyError``       2          bad input to a library comparison or a tolerance study
 ``OutputError``      2          an output path cannot be written
-``MaskReadError``    3          a GDSII/OASIS file cannot be read (truncated, malformed, hostile)
+``MaskReadError``    3          a GDSII/OASIS file cannot be read (truncated, malformed, hostile, over a limit)
+``OutputBusyError``  75         another metalay process is writing the same output folder (try again later)
 ===================  =========  ===========================================================================
 """
 
 __all__ = ["MetalayError", "DesignError", "LibraryError", "CellBuildError", "MaterialError", "RulesError",
-           "GeometryError", "StudyError", "OutputError", "MaskReadError"]
+           "GeometryError", "StudyError", "OutputError", "MaskReadError", "OutputBusyError"]
 
 
 class MetalayError(Exception):
@@ -66,3 +67,10 @@ class MaskReadError(MetalayError):
 
 class OutputError(MetalayError):
     """An output path cannot be written."""
+
+
+class OutputBusyError(OutputError):
+    """Another metalay process holds the lock of the output folder (exit code 75, EX_TEMPFAIL of sysexits.h:
+    a temporary condition, the same command can succeed later)."""
+
+    exit_code = 75

@@ -5,6 +5,7 @@ import json
 import os
 import subprocess
 import sys
+import time
 from dataclasses import replace
 
 import gdstk
@@ -141,21 +142,14 @@ def test_failed_check_leaves_no_output(tmp_path, small_design_dict):
     with pytest.raises(RuntimeError):
         compile_mask(design, tmp_path / "o", checks=[MaskCheck("boom", boom)], show_progress=False)
     assert seen == [True]  # the check ran on a mask that had been written
-    # a failed compile leaves no empty output folder behind (issue 11 part 6), nor the missing parents it made
-    assert not (tmp_path / "o").exists()
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["d.toml"]  # no output folder, no stage, no lock
     with pytest.raises(RuntimeError):
         compile_mask(design, tmp_path / "p" / "q", checks=[MaskCheck("boom", boom)], show_progress=False)
-    assert not (tmp_path / "p").exists()
-    # a folder that existed before is left as it was (with what it held)
-    (tmp_path / "kept").mkdir()
-    (tmp_path / "kept" / "notes.txt").write_text("mine")
-    with pytest.raises(RuntimeError):
-        compile_mask(design, tmp_path / "kept", checks=[MaskCheck("boom", boom)], show_progress=False)
-    assert [p.name for p in (tmp_path / "kept").iterdir()] == ["notes.txt"]
+    assert not (tmp_path / "p").exists()  # nor the missing parents it made (issue 11 part 6)
     (tmp_path / "empty").mkdir()
     with pytest.raises(RuntimeError):
         compile_mask(design, tmp_path / "empty", checks=[MaskCheck("boom", boom)], show_progress=False)
-    assert (tmp_path / "empty").is_dir()
+    assert (tmp_path / "empty").is_dir() and not any((tmp_path / "empty").iterdir())  # a folder that existed stays
 
 
 def test_checks_are_steps_handed_to_compile(tmp_path, small_design_dict):
@@ -192,22 +186,24 @@ def test_too_large_for_memory_or_disk_is_refused_before_writing(tmp_path, small_
     import shutil as _shutil
     from collections import namedtuple
 
-    import metalay.mask.compile as C
     from metalay.cli import main
 
-    design = write_toml(tmp_path / "d.toml", small_design_dict)
-    monkeypatch.setattr(C, "_machine_memory_bytes", lambda: 1000)
-    assert main(["compile", str(design), "-o", str(tmp_path / "o1"), "--quiet"]) == 2
+    big = copy.deepcopy(small_design_dict)
+    big["aperture"]["diameter_um"] = 2000.0  # about 3e7 sites: 1.95 GB with OASIS, 1.35 GB with GDSII only
+    design = write_toml(tmp_path / "d.toml", big)
+    t0 = time.perf_counter()
+    assert main(["compile", str(design), "-o", str(tmp_path / "o1"), "--quiet", "--max-memory", "1.5G"]) == 2
+    assert time.perf_counter() - t0 < 5  # Common practice (no source): refused up front, not after the tiles
     err = capsys.readouterr().err.strip()
-    assert "mask.formats" in err and "formats = ['gds']" in err and "\n" not in err
-    assert not (tmp_path / "o1").exists()  # refused before writing: not even an empty folder
-    monkeypatch.setattr(C, "_machine_memory_bytes", lambda: 1 << 40)
+    assert "mask.formats" in err and "formats = ['gds']" in err and "--max-memory" in err and "\n" not in err
+    assert not (tmp_path / "o1").exists()
+    small = write_toml(tmp_path / "s.toml", small_design_dict)
     usage = namedtuple("usage", "total used free")
     monkeypatch.setattr(_shutil, "disk_usage", lambda p: usage(10, 10, 0))
-    assert main(["compile", str(design), "-o", str(tmp_path / "o2"), "--quiet"]) == 2
+    assert main(["compile", str(small), "-o", str(tmp_path / "o2"), "--quiet"]) == 2
     err = capsys.readouterr().err.strip()
-    assert "disk has 0.0 GB free" in err and "\n" not in err
-    assert not (tmp_path / "o2").exists()
+    assert "disk has 0 B free" in err and "\n" not in err
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["d.toml", "s.toml"]  # no folder, stage or lock left
 
 
 def test_compile_with_checks_is_deterministic(tmp_path, small_design_dict):

@@ -1189,6 +1189,9 @@ class OpticsOptions:
         :mod:`metalay.design.side`.
     limits : metalay.design.limits.Limits, optional
         Verdict thresholds (default: the design's ``[checks.limits]``, else the defaults).
+    max_memory_bytes : int, optional
+        Memory budget of reading the mask (:func:`metalay.io.gdsread.read_mask`; default half of what the process
+        may use).
     """
 
     wavelength_nm: float | None = None
@@ -1208,6 +1211,7 @@ class OpticsOptions:
     title: str | None = None
     lit_from: str | None = None
     limits: object = None
+    max_memory_bytes: int | None = None
 
 
 @dataclass(frozen=True, eq=False)
@@ -1245,7 +1249,7 @@ def _read_and_decode(mask_path: Path, lib, design, target, opt: OpticsOptions, n
         raise MetalayError(f"{mask_path}: mask.tone = {mask_settings.tone!r}; the optical check reads structure "
                            "polygons and supports tone 'structures' only")
     t0 = time.perf_counter()
-    flat = read_mask(mask_path, layers=[tuple(layer)])
+    flat = read_mask(mask_path, layers=[tuple(layer)], max_memory_bytes=opt.max_memory_bytes)
     timings["read_s"] = time.perf_counter() - t0
     no_target = target is None and design is None
     if target is None:

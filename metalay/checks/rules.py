@@ -49,7 +49,7 @@ from metalay.validate import TomlTable, load_toml
 __all__ = [
     "LayerRules", "RuleSet", "Violations", "RuleResult", "RuleReport", "RULE_REASONS", "RULE_KEYS",
     "load_rules", "parse_rules", "rules_from_library", "check_mask", "write_marker_gds", "compile_check",
-    "polygon_distance_kernel",
+    "polygon_distance_kernel", "MAX_PAIRS", "PAIRS_PER_POLYGON",
 ]
 
 
@@ -323,10 +323,16 @@ class RuleResult:
     checked: int
     method: str
     violations: Violations
+    pair_cap: int | None = None
 
     @property
     def count(self) -> int:
         return self.violations.count
+
+    @property
+    def count_is_lower_bound(self) -> bool:
+        """True when the pair search stopped at :data:`MAX_PAIRS` (``pair_cap``): more violations may exist."""
+        return self.pair_cap is not None
 
     @property
     def worst_value(self) -> float | None:
@@ -347,7 +353,8 @@ class RuleResult:
                 "checked": self.checked, "method": self.method, "count": self.count,
                 "worst_value": None if self.worst_value is None else _r(self.worst_value),
                 "worst_xy_um": None if self.worst_xy_um is None else [_r(c) for c in self.worst_xy_um],
-                "listed": listed, "listed_truncated": self.count > n}
+                "listed": listed, "listed_truncated": self.count > n,
+                **({"count_is_lower_bound": True, "pair_cap": self.pair_cap} if self.count_is_lower_bound else {})}
 
 
 def _r(x) -> float:
@@ -391,7 +398,9 @@ class RuleReport:
                 lines.append(f"{head}: clean ({r.checked} checked, {r.method})")
             else:
                 x, y = r.worst_xy_um
-                lines.append(f"{head}: {r.count} violations, worst {r.worst_value:.6g} {r.unit} "
+                count = (f"at least {r.count} violations (pair search stopped at {r.pair_cap} pairs: stacked or "
+                         "overlapping shapes)" if r.count_is_lower_bound else f"{r.count} violations")
+                lines.append(f"{head}: {count}, worst {r.worst_value:.6g} {r.unit} "
                              f"at ({x:.4f}, {y:.4f}) um ({r.method})")
         return lines
 
@@ -592,6 +601,8 @@ def _group_features(X: np.ndarray, want_angle: bool = True):
     Width segments: :func:`_width_segments`.
     """
     m, n, _ = X.shape
+    if n > _WIDE_VERTICES:
+        return _group_features_wide(X, want_angle)
     ox, oy = X[:, 0, 0], X[:, 0, 1]
     xi = [X[:, k, 0] - ox for k in range(n)]
     yi = [X[:, k, 1] - oy for k in range(n)]
@@ -676,6 +687,8 @@ def _width_segments(X: np.ndarray) -> np.ndarray:
     The first smallest (edge i, vertex j) pair in loop order, as in :func:`_group_features`.
     """
     m, n, _ = X.shape
+    if n > _WIDE_VERTICES:
+        return _width_segments_wide(X)
     ox, oy = X[:, 0, 0], X[:, 0, 1]
     xs = [(X[:, k, 0] - ox).astype(np.float64) for k in range(n)]
     ys = [(X[:, k, 1] - oy).astype(np.float64) for k in range(n)]
@@ -693,15 +706,168 @@ def _width_segments(X: np.ndarray) -> np.ndarray:
     return (wseg + np.stack([ox, oy, ox, oy]).astype(np.float64)).T
 
 
+#: Polygons with more vertices than this are measured by :func:`_group_features_wide` (arrays along the vertices,
+#: width from a few candidate vertices per edge, O(n log n)) instead of the loop over vertex pairs (O(n^2)).
+_WIDE_VERTICES = 32
+#: Polygon vertices per feature chunk of wide polygons (bounds the (m, n) temporaries).
+_WIDE_CHUNK_VERTICES = 1 << 16
+
+
+def _chunk_polygons(n: int) -> int:
+    """Polygons of ``n`` vertices per feature chunk: :data:`_GEOM_CHUNK`, fewer for many-vertex polygons."""
+    return _GEOM_CHUNK if n <= _WIDE_VERTICES else max(1, min(_GEOM_CHUNK, _WIDE_CHUNK_VERTICES // n))
+
+
+def _edge_arrays(X: np.ndarray):
+    """Relative coordinates and edge vectors of X (m, n, 2), each (m, n) float64 (exact integers)."""
+    ox, oy = X[:, 0, 0], X[:, 0, 1]
+    xs = (X[:, :, 0] - ox[:, None]).astype(np.float64)
+    ys = (X[:, :, 1] - oy[:, None]).astype(np.float64)
+    ex = np.roll(xs, -1, axis=1) - xs
+    ey = np.roll(ys, -1, axis=1) - ys
+    return xs, ys, ex, ey
+
+
+def _convex_width_wide(xs, ys, ex, ey, ccw):
+    """Local width of strictly convex polygons (m, n) with O(n log n) work: (width (m,), edge i (m,), vertex j (m,)).
+
+    Equals the loop of :func:`_vertex_edge_distances` (the minimum over edge i and vertex j not on it of
+    ``|e_i x (v_j - a_i)| / |e_i|`` where the foot of the perpendicular falls on the edge; ties resolved to the first
+    (i, j) in loop order), but evaluates only a few candidates per edge. For a convex polygon the vertices whose
+    foot falls on edge i form one arc (their projection on e_i decreases monotonically between the vertex farthest
+    along e_i and the one farthest against it), and the distance to the edge's line is unimodal along that arc, so
+    its minimum lies at an end of the arc; the ends are found by bisection, and two neighbours on each side of
+    each end are evaluated with the loop's exact expressions.
+
+    ``ccw`` (m,) bool tells the orientation; clockwise polygons are mirrored (x -> -x) for the search only.
+    """
+    m, n = xs.shape
+    sx = np.where(ccw, 1.0, -1.0)[:, None]
+    mex = ex * sx
+    # turning angle at each vertex k (between edges k-1 and k), in (0, pi) for a strictly convex CCW polygon
+    exm, eym = np.roll(mex, 1, axis=1), np.roll(ey, 1, axis=1)
+    turn = np.arctan2(exm * ey - eym * mex, exm * mex + eym * ey)
+    psi = np.zeros((m, 2 * n))
+    psi[:, 1:n] = np.cumsum(turn[:, 1:], axis=1)  # direction of edge k relative to edge 0
+    total = psi[:, n - 1] + turn[:, 0]
+    psi[:, n:] = psi[:, :n] + total[:, None]
+    # row offsets make one sorted array, so that one searchsorted serves every polygon
+    span = 4.0 * np.pi + 1.0
+    flat_psi = (psi + span * np.arange(m)[:, None]).ravel()
+    base = (span * np.arange(m))[:, None]
+    i = np.arange(n)[None, :]
+    row = np.arange(m)[:, None]
+    far_along = np.searchsorted(flat_psi, (psi[:, :n] + np.pi / 2 + base).ravel()).reshape(m, n) - row * 2 * n
+    far_against = np.searchsorted(flat_psi, (psi[:, :n] + 1.5 * np.pi + base).ravel(),
+                                  side="right").reshape(m, n) - row * 2 * n
+    lo_idx = np.clip(far_along, i + 1, i + n)
+    hi_idx = np.clip(far_against, lo_idx, i + n)
+    l2 = ex * ex + ey * ey
+
+    def proj(j):  # projection of vertex j (ext index) on edge i, from a_i
+        jj = j % n
+        return (np.take_along_axis(xs, jj, 1) - xs) * ex + (np.take_along_axis(ys, jj, 1) - ys) * ey
+
+    def first_where(pred):  # first ext index in [lo_idx, hi_idx] where pred(proj) holds (monotone), else hi + 1
+        lo, hi = lo_idx.copy(), hi_idx + 1
+        while True:
+            active = lo < hi
+            if not active.any():
+                return lo
+            mid = (lo + hi) // 2
+            ok = pred(proj(np.minimum(mid, i + n)))
+            hi = np.where(active & ok, mid, hi)
+            lo = np.where(active & ~ok, mid + 1, lo)
+
+    p = first_where(lambda t: t <= l2)           # arc start: first vertex whose foot is not past the edge's end
+    q = first_where(lambda t: t < 0) - 1         # arc end: last vertex whose foot is not before its start
+    cand = np.concatenate([p[:, :, None] + np.arange(-2, 3), q[:, :, None] + np.arange(-2, 3)], axis=2) % n
+    ii = np.broadcast_to(i[:, :, None], cand.shape)
+    rr = np.broadcast_to(row[:, :, None], cand.shape)
+    wx, wy = xs[rr, cand] - xs[rr, ii], ys[rr, cand] - ys[rr, ii]
+    exi, eyi, l2i = ex[rr, ii], ey[rr, ii], l2[rr, ii]
+    dt = wx * exi + wy * eyi
+    cr = exi * wy - eyi * wx
+    ok = (dt >= 0) & (dt <= l2i) & (l2i > 0) & (cand != ii) & (cand != (ii + 1) % n)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        d = np.where(ok, np.abs(cr) / np.sqrt(l2i), np.inf)
+    d = d.reshape(m, -1)
+    width = d.min(axis=1)
+    # the first (i, j) in loop order among the minimisers
+    key = np.where(d == width[:, None], ii.reshape(m, -1) * n + cand.reshape(m, -1), n * n)
+    k = key.min(axis=1)
+    return width, k // n, k % n
+
+
+def _group_features_wide(X: np.ndarray, want_angle: bool = True):
+    """:func:`_group_features` for many-vertex polygons: the same features with arrays along the vertices.
+
+    Identical results (integer area, the same per-vertex expressions, the turning sum accumulated in vertex
+    order by ``cumsum``, the first smallest angle by ``argmin``), with the width from :func:`_convex_width_wide`.
+    """
+    m, n, _ = X.shape
+    xi = X[:, :, 0] - X[:, :1, 0]
+    yi = X[:, :, 1] - X[:, :1, 1]
+    area2 = (xi * np.roll(yi, -1, axis=1) - np.roll(xi, -1, axis=1) * yi).sum(axis=1)
+    xs, ys, ex, ey = _edge_arrays(X)
+    sgn = np.sign(area2).astype(np.float64)
+    exm, eym = np.roll(ex, 1, axis=1), np.roll(ey, 1, axis=1)
+    cr = exm * ey - eym * ex
+    convex = (area2 != 0) & (cr * sgn[:, None] > 0).all(axis=1)
+    dt = exm * ex + eym * ey
+    turn = np.arctan2(cr, dt)
+    total = np.cumsum(turn, axis=1)[:, -1]
+    convex &= np.abs(np.abs(total) - 2 * np.pi) < 1e-6
+    amin = None
+    kmin = np.zeros(m, np.int8 if n < 128 else np.int64)
+    if want_angle:
+        ang = np.degrees(np.pi - sgn[:, None] * turn)
+        zero = ((exm == 0) & (eym == 0)) | ((ex == 0) & (ey == 0))
+        ang = np.where(zero, 180.0, ang)
+        kmin = np.argmin(ang, axis=1).astype(kmin.dtype)
+        amin = ang[np.arange(m), kmin]
+    bbox = np.stack([X[:, :, 0].min(1), X[:, :, 1].min(1), X[:, :, 0].max(1), X[:, :, 1].max(1)], 1)
+    width = np.full(m, np.inf)
+    if convex.any():
+        keep = np.flatnonzero(convex)
+        width[keep] = _convex_width_wide(xs[keep], ys[keep], ex[keep], ey[keep], area2[keep] > 0)[0]
+    r2max = 0.0
+    if m:
+        cx = (bbox[:, 0] + bbox[:, 2]) / 2.0
+        cy = (bbox[:, 1] + bbox[:, 3]) / 2.0
+        Xf = X.astype(np.float64)
+        r2max = float(((Xf[..., 0] - cx[:, None]) ** 2 + (Xf[..., 1] - cy[:, None]) ** 2).max())
+    return {"area2": area2, "convex": convex, "angle": amin, "kmin": kmin, "width": width, "bbox": bbox,
+            "r2max": r2max}
+
+
+def _width_segments_wide(X: np.ndarray) -> np.ndarray:
+    """:func:`_width_segments` for many-vertex convex polygons (the same (i, j) and the same expressions)."""
+    m, n, _ = X.shape
+    xs, ys, ex, ey = _edge_arrays(X)
+    area2 = (xs * np.roll(ys, -1, axis=1) - np.roll(xs, -1, axis=1) * ys).sum(axis=1)
+    _, bi, bj = _convex_width_wide(xs, ys, ex, ey, area2 > 0)
+    r = np.arange(m)
+    l2 = ex[r, bi] * ex[r, bi] + ey[r, bi] * ey[r, bi]
+    dt = (xs[r, bj] - xs[r, bi]) * ex[r, bi] + (ys[r, bj] - ys[r, bi]) * ey[r, bi]
+    with np.errstate(divide="ignore", invalid="ignore"):  # rows that are not convex are replaced by the caller
+        t = dt / l2
+    wseg = np.stack([xs[r, bj], ys[r, bj], xs[r, bi] + t * ex[r, bi], ys[r, bi] + t * ey[r, bi]])
+    o = X[:, 0, :].astype(np.float64)
+    return (wseg + np.stack([o[:, 0], o[:, 1], o[:, 0], o[:, 1]])).T
+
+
 def _ring(flat: FlatPolygons, k: int) -> np.ndarray:
     return flat.xy_db[flat.start[k]:flat.start[k + 1]]
 
 
-def _shapely_polygon_analysis(ring: np.ndarray, want_width: bool, want_notch: bool):
+def _shapely_polygon_analysis(ring: np.ndarray, want_width: bool, want_notch: bool,
+                               reach_db: float | None = None):
     """Exact analysis of a non-convex (or non-strict) polygon with shapely.
 
     Returns dict: valid (bool), where (x, y) of invalidity, width (d, seg) and notch (d, seg) or None,
-    holes [(area, (x, y))].
+    holes [(area, (x, y))]. With ``reach_db`` the width and notch are exact where they are below ``reach_db``
+    (database units; the largest limit a rule compares them with) and may be missing (None) above it.
     """
     import shapely
 
@@ -714,16 +880,20 @@ def _shapely_polygon_analysis(ring: np.ndarray, want_width: bool, want_notch: bo
         return out
     coords = ring.astype(np.float64)
     poly = shapely.Polygon(coords)
-    area_ring = abs(float(np.sum(coords[:, 0] * np.roll(coords[:, 1], -1) - np.roll(coords[:, 0], -1)
-                                 * coords[:, 1]))) / 2
+    signed_area2 = float(np.sum(coords[:, 0] * np.roll(coords[:, 1], -1) - np.roll(coords[:, 0], -1) * coords[:, 1]))
+    area_ring = abs(signed_area2) / 2
     if area_ring == 0:
         out["valid"] = False
         out["where"] = tuple(coords.mean(0))
         return out
-    if not shapely.is_valid(poly):
-        fixed = shapely.make_valid(poly, method="structure", keep_collapsed=False)
-        # a keyhole (boundary touching itself along a cut line) encodes a polygon with holes: accept it
-        if fixed.geom_type == "Polygon" and abs(fixed.area - area_ring) <= 1e-9 * area_ring:
+    poly_as_given = bool(shapely.is_valid(poly))
+    if not poly_as_given:
+        # a keyhole (boundary touching itself along a cut line) encodes a polygon with holes: accept it. Repairing
+        # costs memory in the number of self-intersections (up to n^2 / 2: 3.4e7 for 8190 vertices), so a ring
+        # that touches itself more often than a keyhole would is invalid without repair
+        many = _edge_contacts(coords, cap=max(64, 4 * n)) > max(64, 4 * n)
+        fixed = None if many else shapely.make_valid(poly, method="structure", keep_collapsed=False)
+        if fixed is not None and fixed.geom_type == "Polygon" and abs(fixed.area - area_ring) <= 1e-9 * area_ring:
             poly = fixed
         else:
             out["valid"] = False
@@ -737,40 +907,183 @@ def _shapely_polygon_analysis(ring: np.ndarray, want_width: bool, want_notch: bo
         out["holes"].append((hp.area, (c.x, c.y)))
     if not (want_width or want_notch):
         return out
-    ii = np.repeat(np.arange(n), n)
-    jj = np.tile(np.arange(n), n)
-    sel = (jj != ii) & (jj != (ii + 1) % n)
-    ii, jj = ii[sel], jj[sel]
-    a = coords[ii]
-    e = coords[(ii + 1) % n] - a
-    v = coords[jj]
-    w = v - a
-    len2 = (e * e).sum(1)
-    dt = (w * e).sum(1)
-    ok = (len2 > 0) & (dt >= 0) & (dt <= len2)
-    cr = e[:, 0] * w[:, 1] - e[:, 1] * w[:, 0]
-    ok &= cr != 0
-    if not ok.any():
-        return out
-    a, e, v, len2, dt, cr = a[ok], e[ok], v[ok], len2[ok], dt[ok], cr[ok]
-    d = np.abs(cr) / np.sqrt(len2)
-    foot = a + e * (dt / len2)[:, None]
-    segs = shapely.linestrings(np.stack([v, foot], 1))
     shapely.prepare(poly)
-    for key, want, region in (("width", want_width, poly), ("notch", want_notch, None)):
-        if not want:
-            continue
-        if region is None:
-            minx, miny, maxx, maxy = poly.bounds
-            region = shapely.box(minx - 1, miny - 1, maxx + 1, maxy + 1).difference(poly)
-            shapely.prepare(region)
-        mid = (v + foot) / 2
-        # the segment must cross the region, not run along its boundary
-        inside = shapely.covers(region, segs) & shapely.contains_xy(region, mid[:, 0], mid[:, 1])
-        if inside.any():
-            k = np.flatnonzero(inside)[np.argmin(d[inside])]
-            out[key] = (float(d[k]), np.concatenate([v[k], foot[k]]))
+    regions = {"width": poly if want_width else None, "notch": None}
+    if want_notch:
+        minx, miny, maxx, maxy = poly.bounds
+        regions["notch"] = shapely.box(minx - 1, miny - 1, maxx + 1, maxy + 1).difference(poly)
+        shapely.prepare(regions["notch"])
+    # many-vertex rings given as simple polygons: candidates whose segment clearly leaves the region at one of its
+    # ends are dropped before the (costly) inside test (:func:`_locally_outside`; ambiguous ones are kept)
+    prefilter = reach_db is not None and n > _INDEXED_PAIRS_VERTICES and poly_as_given
+    for ii, jj, a, e, v, len2, dt, cr in _facing_pairs(coords, reach_db):
+        d = np.abs(cr) / np.sqrt(len2)
+        foot = a + e * (dt / len2)[:, None]
+        side = _locally_outside(coords, np.sign(signed_area2), ii, jj, foot, dt, len2, cr) if prefilter else None
+        for key, region in regions.items():
+            if region is None:
+                continue
+            keep = None if side is None else (side != (-1 if key == "width" else 1)) & (side != 2)
+            # blocks come in edge order, so a later block wins only with a strictly smaller distance
+            k = _first_inside(region, v, foot, d, np.inf if out[key] is None else out[key][0], keep)
+            if k is not None:
+                out[key] = (float(d[k]), np.concatenate([v[k], foot[k]]))
     return out
+
+
+def _wedge_side(coords: np.ndarray, sgn: float, at: np.ndarray, u: np.ndarray) -> np.ndarray:
+    """Where direction ``u`` (m, 2) leaves vertex ``at`` (m,) of a simple ring: +1 clearly into the interior wedge,
+    -1 clearly into the exterior, 0 along an edge or too close to tell (1e-9 rad)."""
+    n = coords.shape[0]
+    v = coords[at]
+    r1 = coords[(at + 1) % n] - v        # outgoing edge
+    r2 = coords[(at - 1) % n] - v        # incoming edge, reversed
+    if sgn < 0:  # mirror a clockwise ring so that the interior wedge turns counter-clockwise from r1 to r2
+        r1, r2, u = r1 * [-1, 1], r2 * [-1, 1], u * [-1, 1]
+
+    def turn(p, q):
+        return np.mod(np.arctan2(p[:, 0] * q[:, 1] - p[:, 1] * q[:, 0], (p * q).sum(1)), 2 * np.pi)
+
+    wedge, ang = turn(r1, r2), turn(r1, u)
+    tol = 1e-9
+    inside = (ang > tol) & (ang < wedge - tol)
+    outside = (ang > wedge + tol) & (ang < 2 * np.pi - tol)
+    return np.where(inside, 1, np.where(outside, -1, 0))
+
+
+def _locally_outside(coords, sgn, ii, jj, foot, dt, len2, cr) -> np.ndarray:
+    """For each segment vertex jj -> foot on edge ii of a simple ring: -1 when it clearly starts or ends outside the
+    polygon, +1 when it clearly starts or ends inside it (so it is not in the exterior), 2 when it lies on an edge
+    (in neither region's interior), 0 otherwise. Exact in its decisions: near a vertex the polygon is its interior
+    wedge; near a point strictly inside an edge it is the half-plane on the interior side (the sign of the integer
+    cross product ``cr``)."""
+    n = coords.shape[0]
+    at_v = _wedge_side(coords, sgn, jj, foot - coords[jj])
+    strict = (dt > 0) & (dt < len2) & (np.abs(cr) > 1e-9 * len2)
+    at_foot = np.where(strict, np.where(cr * sgn > 0, 1, -1), 0)
+    corner = ~strict & ((dt == 0) | (dt == len2))
+    along = np.zeros(jj.shape[0], bool)
+    if corner.any():
+        k = np.flatnonzero(corner)
+        vert = np.where(dt[k] == 0, ii[k], (ii[k] + 1) % n)
+        u = coords[vert] - coords[jj[k]]  # integers: the foot is a vertex
+        at_foot[k] = _wedge_side(coords, sgn, vert, -u)
+        # the segment is a piece of an edge leaving its start vertex (same direction, not longer): it lies on the
+        # boundary, so its midpoint is in neither region's interior (exact in float64 below 2**26)
+        for nb in ((jj[k] + 1) % n, (jj[k] - 1) % n):
+            r = coords[nb] - coords[jj[k]]
+            small = np.maximum(np.abs(r).max(1), np.abs(u).max(1)) < 2.0 ** 26
+            along[k] |= small & (r[:, 0] * u[:, 1] - r[:, 1] * u[:, 0] == 0) & ((r * u).sum(1) > 0) & (
+                (u * u).sum(1) <= (r * r).sum(1))
+    out = np.zeros(jj.shape[0], np.int64)
+    out[(at_v == -1) | (at_foot == -1)] = -1
+    out[(at_v == 1) | (at_foot == 1)] = 1
+    out[((at_v == -1) | (at_foot == -1)) & ((at_v == 1) | (at_foot == 1))] = 0  # both: leave it to the exact test
+    out[along] = 2
+    return out
+
+
+def _edge_contacts(coords: np.ndarray, cap: int) -> int:
+    """Pairs of non-adjacent edges of a ring that meet (touch or cross), counted up to just past ``cap``
+    (an STRtree over the edges, queried in blocks; a simple ring has none, a keyhole a few). A ring whose edges'
+    bounding boxes overlap in more than ``50 n`` pairs (long edges criss-crossing it) counts as past the cap
+    without testing them all."""
+    import shapely
+
+    n = coords.shape[0]
+    edges = shapely.linestrings(np.stack([coords, np.roll(coords, -1, axis=0)], 1))
+    tree = shapely.STRtree(edges)
+    boxes, lo, block = 0, 0, 32
+    while lo < n:
+        boxes += int(tree.query(edges[lo:lo + block]).shape[1])
+        if boxes > 50 * n + 10_000:
+            return cap + 1
+        lo += block
+        block = min(2 * block, 1024)
+    found = 0
+    for lo in range(0, n, 1024):
+        q = tree.query(edges[lo:lo + 1024], predicate="intersects")
+        i, j = q[0] + lo, q[1]
+        gap = (j - i) % n
+        found += int(((i < j) & (gap != 1) & (gap != n - 1)).sum())
+        if found > cap:
+            break
+    return found
+
+
+def _first_inside(region, v, foot, d, below: float, keep=None):
+    """Index of the shortest segment v -> foot (first in pair order among equals) shorter than ``below`` that runs
+    inside ``region`` (crosses it, not along its boundary); None if there is none.
+
+    Segments are tested shortest first in growing batches, so the search usually stops after the first batch
+    instead of testing every pair (the same answer as testing all and taking the first minimum); ``keep`` (bool,
+    optional) drops candidates known to fail.
+    """
+    import shapely
+
+    cand = np.flatnonzero((d < below) if keep is None else (d < below) & keep)
+    order = cand[np.argsort(d[cand], kind="stable")]
+    lo, batch = 0, 4
+    while lo < order.size:
+        sel = order[lo:lo + batch]
+        mid = (v[sel] + foot[sel]) / 2
+        inside = shapely.contains_xy(region, mid[:, 0], mid[:, 1])
+        if inside.any():  # covers only where the midpoint is inside (the cheaper test first; the same result)
+            segs = shapely.linestrings(np.stack([v[sel[inside]], foot[sel[inside]]], 1))
+            inside[inside] = shapely.covers(region, segs)
+        if inside.any():
+            return int(sel[np.argmax(inside)])
+        lo += batch
+        batch = min(4 * batch, 1 << 14)
+    return None
+
+
+#: Non-convex polygons with more vertices than this look for facing (edge, vertex) pairs through a spatial index
+#: within the reach of the rules instead of trying all n^2 pairs.
+_INDEXED_PAIRS_VERTICES = 64
+_FACING_BLOCK_EDGES = 256
+
+
+def _facing_pairs(coords: np.ndarray, reach_db: float | None):
+    """Blocks (in edge order, pairs sorted by (edge, vertex)) of (edge i, vertex j not on it) pairs where the foot
+    of the perpendicular from j falls inside edge i and j is off its line: (i, j, a, e, v, len2, dt, cr) per pair.
+
+    With ``reach_db`` (and more than :data:`_INDEXED_PAIRS_VERTICES` vertices) only pairs whose point-to-segment
+    distance is within ``reach_db`` are produced (found with a shapely STRtree, edges in blocks of 256): linear in
+    the vertices for a reach small against the polygon, and never more than 256 n pairs in memory.
+    """
+    import shapely
+
+    n = coords.shape[0]
+    if reach_db is None or n <= _INDEXED_PAIRS_VERTICES:
+        ii = np.repeat(np.arange(n), n)
+        jj = np.tile(np.arange(n), n)
+        blocks = [(ii, jj)]
+    else:
+        tree = shapely.STRtree(shapely.points(coords))
+        ends = np.stack([coords, np.roll(coords, -1, axis=0)], 1)
+
+        def block(lo):
+            hi = min(n, lo + _FACING_BLOCK_EDGES)
+            q = tree.query(shapely.linestrings(ends[lo:hi]), predicate="dwithin", distance=reach_db)
+            order = np.lexsort((q[1], q[0]))
+            return q[0][order] + lo, q[1][order]
+
+        blocks = (block(lo) for lo in range(0, n, _FACING_BLOCK_EDGES))
+    for ii, jj in blocks:
+        sel = (jj != ii) & (jj != (ii + 1) % n)
+        ii, jj = ii[sel], jj[sel]
+        a = coords[ii]
+        e = coords[(ii + 1) % n] - a
+        v = coords[jj]
+        w = v - a
+        len2 = (e * e).sum(1)
+        dt = (w * e).sum(1)
+        ok = (len2 > 0) & (dt >= 0) & (dt <= len2)
+        cr = e[:, 0] * w[:, 1] - e[:, 1] * w[:, 0]
+        ok &= cr != 0
+        if ok.any():
+            yield ii[ok], jj[ok], a[ok], e[ok], v[ok], len2[ok], dt[ok], cr[ok]
 
 
 # ----------------------------------------------------------------------------------------------------------------
@@ -787,27 +1100,64 @@ def _shapely_polygons(flat: FlatPolygons, idx: np.ndarray):
     return shapely.polygons(rings)
 
 
-def _pairs_tree(flat: FlatPolygons, idx: np.ndarray, s_db: float):
-    """All pairs (i < j, indices into flat) at distance < s_db (or touching when s_db == 0), via STRtree."""
+#: Most (polygon, polygon) pairs the spacing and overlap search keeps per layer: stacked or overlapping shapes can
+#: make the pairs quadratic in the polygons (65,536 boxes on one spot are 2.1e9 overlapping pairs). Past the cap
+#: (262,144 pairs, or 4 per polygon of the layer when that is more: a lattice of fins has at most 4 neighbours
+#: closer than a gap rule per fin, so real masks never reach it) the search stops; the first pairs in polygon order
+#: are kept and the counts are reported as lower bounds.
+MAX_PAIRS = 1 << 18
+PAIRS_PER_POLYGON = 4
+_TREE_RESULTS_PER_CHUNK = 1 << 17
+
+
+def _cap_pairs(a, b, d, c, max_pairs: int):
+    """Keep the first ``max_pairs`` pairs in (a, b) order; returns the arrays and whether any were dropped."""
+    if a.size <= max_pairs:
+        return a, b, d, c, False
+    keep = np.lexsort((b, a))[:max_pairs]
+    return a[keep], b[keep], d[keep], c[keep], True
+
+
+def _pairs_tree(flat: FlatPolygons, idx: np.ndarray, s_db: float, max_pairs: int = MAX_PAIRS):
+    """Pairs (i < j, indices into flat) at distance < s_db (or touching when s_db == 0), via STRtree.
+
+    The tree is queried in chunks of polygons (in order), sized from the density of the previous chunk so that a
+    chunk returns about 1.3e5 candidates (the first chunk is one polygon, and a chunk is at most twice the size of
+    the previous one, so a dense region further on costs one chunk at most); the search stops once more than
+    ``max_pairs`` pairs are found (every pair whose first polygon was queried is found, so the first
+    ``max_pairs`` in polygon order are exact).
+    Returns (a, b, d, c, capped).
+    """
     import shapely
 
     polys = _shapely_polygons(flat, idx)
     tree = shapely.STRtree(polys)
-    if s_db > 0:
-        q = tree.query(polys, predicate="dwithin", distance=s_db)
-    else:
-        q = tree.query(polys, predicate="intersects")
-    q = q[:, q[0] < q[1]]
-    a, b = q[0], q[1]
-    d = shapely.distance(polys[a], polys[b])
-    keep = (d < s_db) | (d == 0)
-    a, b, d = a[keep], b[keep], d[keep]
+    parts, found, lo, step = [], 0, 0, 1
+    while lo < idx.size and found <= max_pairs:
+        hi = min(idx.size, lo + step)
+        if s_db > 0:
+            q = tree.query(polys[lo:hi], predicate="dwithin", distance=s_db)
+        else:
+            q = tree.query(polys[lo:hi], predicate="intersects")
+        density = max(1.0, q.shape[1] / (hi - lo))
+        a, b = q[0] + lo, q[1]
+        a, b = a[a < b], b[a < b]
+        d = shapely.distance(polys[a], polys[b])
+        keep = (d < s_db) | (d == 0)
+        parts.append((a[keep], b[keep], d[keep]))
+        found += int(keep.sum())
+        step = int(min(4096, 2 * step, max(1, _TREE_RESULTS_PER_CHUNK / density)))  # grows at most 2x a chunk
+        lo = hi
+    a = np.concatenate([p[0] for p in parts]) if parts else np.zeros(0, np.int64)
+    b = np.concatenate([p[1] for p in parts]) if parts else np.zeros(0, np.int64)
+    d = np.concatenate([p[2] for p in parts]) if parts else np.zeros(0)
+    a, b, d, _, capped = _cap_pairs(a, b, d, d, max_pairs)
     if a.size:
         lines = shapely.shortest_line(polys[a], polys[b])
         c = shapely.get_coordinates(lines).reshape(-1, 4)
     else:
         c = np.zeros((0, 4))
-    return idx[a], idx[b], d, c
+    return idx[a], idx[b], d, c, capped
 
 
 def _lattice_plan(bbox: np.ndarray, rmax: float, reach_db: float, max_stencil: int = 400):
@@ -932,11 +1282,12 @@ def _lattice_chunk(X, bbox, plan, lo: int, hi: int, s_db: float):
 
 
 def _pairs_lattice(flat: FlatPolygons, idx: np.ndarray, n: int, bbox: np.ndarray, s_db: float, rmax: float,
-                   threads: int = 2):
+                   threads: int = 2, max_pairs: int = MAX_PAIRS):
     """Lattice fast path over polygons ``idx`` (all strictly convex with ``n`` vertices); None if not a lattice.
 
     Pairs are produced polygon chunk by polygon chunk (cache-sized, optionally on ``threads`` threads; the
-    result is the same as serial, chunks are concatenated in order).
+    result is the same as serial, chunks are concatenated in order). The stencil bounds the pairs per polygon;
+    the same cap as the tree path (:func:`_cap_pairs`) keeps both paths equal.
     """
     plan = _lattice_plan(bbox, rmax, s_db)
     if plan is None:
@@ -959,7 +1310,8 @@ def _pairs_lattice(flat: FlatPolygons, idx: np.ndarray, n: int, bbox: np.ndarray
     swap = a > b
     lo_, hi_ = np.where(swap, b, a), np.where(swap, a, b)
     c[swap] = c[swap][:, [2, 3, 0, 1]]
-    return idx[lo_], idx[hi_], d, c, n_off
+    lo_, hi_, d, c, capped = _cap_pairs(lo_, hi_, d, c, max_pairs)
+    return idx[lo_], idx[hi_], d, c, n_off, capped
 
 
 def _threads() -> int:
@@ -1024,7 +1376,8 @@ def _frame_region(flat: FlatPolygons, frame: tuple[int, int]):
 
 
 def check_mask(mask, rules: RuleSet, *, method: str = "auto", cell: str | None = None,
-               max_elements: int | None = None) -> RuleReport:
+               max_elements: int | None = None, max_memory_bytes: int | None = None,
+               max_pairs: int = MAX_PAIRS) -> RuleReport:
     """Check a mask against a rule set.
 
     Parameters
@@ -1039,6 +1392,13 @@ def check_mask(mask, rules: RuleSet, *, method: str = "auto", cell: str | None =
         "tree" always uses the STRtree; "lattice" is "auto" (the tree remains the fallback).
     cell : str, optional
         Structure to check (default: every top structure).
+    max_elements, max_memory_bytes : int, optional
+        Limits of the read (:func:`metalay.io.gdsread.read_mask`; default budget: half of the memory this process
+        may use).
+    max_pairs : int
+        Most polygon pairs the spacing/overlap search keeps per layer (:data:`MAX_PAIRS`, or
+        :data:`PAIRS_PER_POLYGON` per polygon of the layer when that is more); past it the counts of those two
+        rules are lower bounds (``count_is_lower_bound`` in the report).
 
     Returns
     -------
@@ -1064,7 +1424,9 @@ def check_mask(mask, rules: RuleSet, *, method: str = "auto", cell: str | None =
         flat, name = mask, "<memory>"
     else:
         name = os.fspath(mask)
-        kw = {} if max_elements is None else {"max_elements": max_elements}
+        kw = {"max_memory_bytes": max_memory_bytes}
+        if max_elements is not None:
+            kw["max_elements"] = max_elements
         from concurrent.futures import ThreadPoolExecutor
 
         # the file hash runs beside the read (hashlib releases the GIL); "sha256" is the wait after the read
@@ -1081,7 +1443,16 @@ def check_mask(mask, rules: RuleSet, *, method: str = "auto", cell: str | None =
     db_unit_nm = flat.db_unit_nm
     results: list[RuleResult] = []
     for lr in rules.layers:
-        results.extend(_check_layer(flat, lr, rules, db_unit_nm, method, timings))
+        try:
+            results.extend(_check_layer(flat, lr, rules, db_unit_nm, method, timings, max_pairs))
+        except MemoryError as exc:  # one line naming what could not be checked, never a traceback
+            raise MaskReadError(f"{name}: out of memory checking layer {lr.layer}/{lr.datatype} ({flat.count} "
+                                f"polygons, {flat.xy_db.shape[0]} vertices)") from exc
+        except Exception as exc:
+            if type(exc).__name__ != "GEOSException" or "alloc" not in str(exc):
+                raise
+            raise MaskReadError(f"{name}: geometry of layer {lr.layer}/{lr.datatype} too complex to check within "
+                                f"memory ({exc})") from exc
     return RuleReport(name, sha, flat.db_unit_nm, flat.count, rules.name, tuple(results), tuple(timings))
 
 
@@ -1166,13 +1537,14 @@ def _convex_features(flat: FlatPolygons, geom: _LayerGeometry, by_count, want_an
     pos = 0
     for n, members in by_count:
         whole = members.size == flat.count and flat.xy_db.shape[0] == flat.count * n
-        tasks += [(n, members, whole, pos, lo) for lo in range(0, members.size, _GEOM_CHUNK)]
+        tasks += [(n, members, whole, pos, lo) for lo in range(0, members.size, _chunk_polygons(n))]
         pos += members.size
 
     def feature_chunk(task):
         n, members, whole, pos, lo = task
-        sub = members[lo:lo + _GEOM_CHUNK]
-        vertices = flat.xy_db.reshape(-1, n, 2)[lo:lo + _GEOM_CHUNK] if whole else \
+        step = _chunk_polygons(n)
+        sub = members[lo:lo + step]
+        vertices = flat.xy_db.reshape(-1, n, 2)[lo:lo + step] if whole else \
             flat.xy_db[flat.start[sub][:, None] + np.arange(n)]
         f = _group_features(vertices, want_angle)
         rows = slice(pos + lo, pos + lo + sub.size)
@@ -1188,12 +1560,86 @@ def _convex_features(flat: FlatPolygons, geom: _LayerGeometry, by_count, want_an
     return max(_map_chunks(feature_chunk, tasks), default=0.0)
 
 
+_HASH_WEIGHTS = np.random.default_rng(20240613).integers(1, 2 ** 63, size=(2, 8192), dtype=np.int64).astype(
+    np.uint64) | np.uint64(1)
+
+
+def _translation_classes(flat: FlatPolygons, polys: np.ndarray):
+    """Polygons that are translates of one another (same vertices relative to the first vertex), as
+    (representative, members, offsets): the representative is the member of smallest index, ``offsets`` (m, 2)
+    int64 the translation of each member from it. Stacked or arrayed copies of one shape (placements) are then
+    analysed once.
+
+    Shapes are grouped by a linear hash of their relative vertices (wrapping uint64 arithmetic) and every member
+    is verified against its representative exactly, so a collision only costs time.
+    """
+    if polys.size == 0:
+        return
+    counts = np.diff(flat.start)[polys]
+    for n in np.unique(counts).tolist():
+        sel = np.sort(polys[counts == n])
+        if n < 3 or n > _HASH_WEIGHTS.shape[1] or sel.size == 1:
+            for k in sel.tolist():
+                yield k, np.array([k]), np.zeros((1, 2), np.int64)
+            continue
+        h = np.zeros(sel.size, np.uint64)
+        step = max(1, (1 << 20) // n)
+        for lo in range(0, sel.size, step):  # chunks: bounded temporaries
+            X = flat.xy_db[flat.start[sel[lo:lo + step]][:, None] + np.arange(n)]
+            rel = (X - X[:, :1]).astype(np.uint64)  # two's complement wrap: a hash, exactness checked below
+            h[lo:lo + step] = (rel[:, :, 0] * _HASH_WEIGHTS[0, :n] + rel[:, :, 1] * _HASH_WEIGHTS[1, :n]).sum(1)
+        order = np.argsort(h, kind="stable")
+        cuts = np.flatnonzero(h[order][1:] != h[order][:-1]) + 1
+        for group in np.split(order, cuts):  # distinct shapes (a short axis for placed copies)
+            yield from _verified_class(flat, sel[group], n)
+
+
+def _verified_class(flat: FlatPolygons, members: np.ndarray, n: int):
+    """Split ``members`` (ascending, equal hash) into exact translation classes."""
+    while members.size:
+        rep = members[0]
+        ring = _ring(flat, rep)
+        X = flat.xy_db[flat.start[members][:, None] + np.arange(n)]
+        off = X[:, 0, :] - ring[0]
+        same = np.all(X - off[:, None, :] == ring, axis=(1, 2))
+        yield rep, members[same], off[same]
+        members = members[~same]
+
+
+def _translated(res: dict, off) -> dict:
+    """The analysis of a polygon moved by ``off`` (database units): locations moved, values kept."""
+    ox, oy = float(off[0]), float(off[1])
+    out = dict(res)
+    if res["where"] is not None:
+        out["where"] = (res["where"][0] + ox, res["where"][1] + oy)
+    for key in ("width", "notch"):
+        if res[key] is not None:
+            out[key] = (res[key][0], res[key][1] + np.array([ox, oy, ox, oy]))
+    out["holes"] = [(a, (c[0] + ox, c[1] + oy)) for a, c in res["holes"]]
+    return out
+
+
+def _facing_reach_db(lr: LayerRules, db_unit_nm: float) -> float | None:
+    """Largest width or notch (database units, with slack) that a rule of ``lr`` can flag; None: unbounded."""
+    limits = [v for v in (lr.min_width_nm, lr.min_notch_nm) if v is not None]
+    if lr.max_aspect_ratio is not None:
+        if lr.max_aspect_ratio <= 0:
+            return None
+        limits.append(lr.film_height_nm / lr.max_aspect_ratio)
+    if not limits or not math.isfinite(max(limits)):
+        return None
+    return max(limits) / db_unit_nm * (1.0 + 1e-9) + 1.0
+
+
 def _shapely_features(flat: FlatPolygons, lr: LayerRules, geom: _LayerGeometry) -> None:
     """Exact analysis of the polygons that are not strictly convex or have fewer than 3 vertices."""
     need_shapely = np.concatenate([geom.poly[~geom.convex], geom.degenerate])
     want_width = lr.min_width_nm is not None or lr.max_aspect_ratio is not None
-    for k in need_shapely.tolist():
-        geom.shapely_results[k] = _shapely_polygon_analysis(_ring(flat, k), want_width, lr.min_notch_nm is not None)
+    reach_db = _facing_reach_db(lr, flat.db_unit_nm)
+    for rep, members, offsets in _translation_classes(flat, need_shapely):  # each distinct shape analysed once
+        res = _shapely_polygon_analysis(_ring(flat, rep), want_width, lr.min_notch_nm is not None, reach_db)
+        for k, off in zip(members.tolist(), offsets.tolist()):
+            geom.shapely_results[k] = res if off == [0, 0] else _translated(res, off)
     sh_width = {k: r["width"] for k, r in geom.shapely_results.items() if r["width"] is not None}
     if not sh_width:
         return
@@ -1217,23 +1663,25 @@ class _LayerCheck:
     geom: _LayerGeometry
     db_unit_nm: float
     method: str
+    max_pairs: int = MAX_PAIRS
     results: list = field(default_factory=list)
 
     @property
     def tag(self) -> str:
         return f"{self.lr.layer}/{self.lr.datatype}"
 
-    def record(self, rule, limit, vio: Violations, checked, method_name="vector", source_key=None):
+    def record(self, rule, limit, vio: Violations, checked, method_name="vector", source_key=None, pair_cap=None):
         """Record the result of ``rule`` with its limit, unit, reason and source."""
         src = self.lr.source(source_key) if source_key else ""
         self.results.append(RuleResult(rule, self.lr.layer, self.lr.datatype, float(limit), _UNIT[rule],
-                                       _KIND[rule], RULE_REASONS[rule], src, int(checked), method_name, vio))
+                                       _KIND[rule], RULE_REASONS[rule], src, int(checked), method_name, vio,
+                                       pair_cap))
 
     def emit(self, rule, limit, polygon, other, value, seg_db, checked, method_name="vector", source_key=None,
-             kind=None):
+             kind=None, pair_cap=None):
         """Record the violations of ``rule``, sorted worst first (``kind`` "min", "max" or "flag" orders them)."""
         vio = _violations(kind or _KIND[rule], polygon, other, value, seg_db, self.db_unit_nm)
-        self.record(rule, limit, vio, checked, method_name, source_key)
+        self.record(rule, limit, vio, checked, method_name, source_key, pair_cap)
 
     def bbox_seg(self, rows) -> np.ndarray:
         """Marker segments (degenerate, at the bounding-box centre) of feature rows."""
@@ -1250,8 +1698,8 @@ class _LayerCheck:
         for nn in np.unique(cnt):
             s = np.flatnonzero(cnt == nn)
             if nn >= 3:
-                for lo in range(0, s.size, _GEOM_CHUNK):
-                    ss = s[lo:lo + _GEOM_CHUNK]
+                for lo in range(0, s.size, _chunk_polygons(int(nn))):
+                    ss = s[lo:lo + _chunk_polygons(int(nn))]
                     seg[ss] = _width_segments(flat.xy_db[flat.start[ks[ss]][:, None] + np.arange(nn)])
         for p, r in enumerate(rows.tolist()):
             if r in geom.shapely_width_seg:
@@ -1400,42 +1848,46 @@ def _rule_frame(c: _LayerCheck) -> None:
 
 
 def _spacing_pairs(c: _LayerCheck, spacing_db: float):
-    """Pairs closer than ``spacing_db``: lattice-neighbour stencil when it applies, else the STRtree path."""
+    """Pairs closer than ``spacing_db``: lattice-neighbour stencil when it applies, else the STRtree path.
+
+    Returns ((a, b, d, seg), method name, capped)."""
     g, flat = c.geom, c.flat
     if (c.method != "tree" and g.degenerate.size == 0 and g.count_values.size == 1 and g.n_polygons >= 2
             and g.convex.all()):
         n = int(g.count_values[0])
         if np.all(g.poly[1:] > g.poly[:-1]):
             got = _pairs_lattice(flat, g.poly, n, g.bbox_db, spacing_db, math.sqrt(g.r2max_db2),
-                                 threads=_threads())
+                                 threads=_threads(), max_pairs=c.max_pairs)
         else:
             order = np.argsort(g.poly, kind="stable")
             got = _pairs_lattice(flat, g.poly[order], n, g.bbox_db[order], spacing_db, math.sqrt(g.r2max_db2),
-                                 threads=_threads())
+                                 threads=_threads(), max_pairs=c.max_pairs)
         if got is not None:
-            return got[:4], f"lattice ({got[4]} neighbour offsets)"
+            return got[:4], f"lattice ({got[4]} neighbour offsets)", got[5]
     valid_idx = g.layer_polys[g.vertex_counts >= 3]
-    got = _pairs_tree(flat, valid_idx, spacing_db) if valid_idx.size >= 2 else (
-        np.zeros(0, np.int64), np.zeros(0, np.int64), np.zeros(0), np.zeros((0, 4)))
-    return got, "strtree"
+    got = _pairs_tree(flat, valid_idx, spacing_db, c.max_pairs) if valid_idx.size >= 2 else (
+        np.zeros(0, np.int64), np.zeros(0, np.int64), np.zeros(0), np.zeros((0, 4)), False)
+    return got[:4], "strtree", got[4]
 
 
 def _rule_spacing(c: _LayerCheck) -> None:
     lr = c.lr
     spacing_nm = lr.min_spacing_nm if lr.min_spacing_nm is not None else 0.0
-    (a, b, d, seg), name = _spacing_pairs(c, spacing_nm / c.db_unit_nm)
+    c = replace(c, max_pairs=max(c.max_pairs, PAIRS_PER_POLYGON * c.geom.n_polygons))
+    (a, b, d, seg), name, capped = _spacing_pairs(c, spacing_nm / c.db_unit_nm)
 
     def part(m):
         return (a, b, d, seg) if m.all() else (a[m], b[m], d[m], seg[m])
 
+    bound = c.max_pairs if capped else None
     if lr.min_spacing_nm is not None:
         pa, pb, pd, pc = part(d > 0)
         c.emit("spacing", lr.min_spacing_nm, pa, pb, pd * c.db_unit_nm, pc, c.geom.n_polygons, name,
-               "min_spacing_nm")
+               "min_spacing_nm", pair_cap=bound)
         del pa, pb, pd, pc
     if lr.forbid_overlap:
         pa, pb, pd, pc = part(d == 0)
-        c.emit("overlap", 0, pa, pb, pd, pc, c.geom.n_polygons, name)
+        c.emit("overlap", 0, pa, pb, pd, pc, c.geom.n_polygons, name, pair_cap=bound)
 
 
 #: The rules of a layer: name, whether ``LayerRules`` switches it on, and the function computing it.
@@ -1456,11 +1908,11 @@ _RULE_STEPS = (
 
 
 def _check_layer(flat: FlatPolygons, lr: LayerRules, rules: RuleSet, db_unit_nm: float, method: str,
-                 timings: list) -> list:
+                 timings: list, max_pairs: int = MAX_PAIRS) -> list:
     """All rules of one layer/datatype: polygon features once, then each switched-on rule (in report order)."""
     tag = f"{lr.layer}/{lr.datatype}"
     t0 = time.perf_counter()
-    check = _LayerCheck(flat, lr, rules, _layer_geometry(flat, lr), db_unit_nm, method)
+    check = _LayerCheck(flat, lr, rules, _layer_geometry(flat, lr), db_unit_nm, method, max_pairs)
     timings.append((f"geometry {tag}", time.perf_counter() - t0))
     for name, switched_on, rule in _RULE_STEPS:  # loop over rules (a short axis)
         if switched_on(lr):

@@ -20,6 +20,10 @@ __all__ = ["default_checks", "rules_step", "optics_step", "run_rules_on_written"
 
 #: Vertex limit of the written pieces of a tone inversion (GDSII allows 8191 points, the last repeats the first).
 _PIECE_MAX_VERTICES = 8190
+#: Peak memory per lattice site of each check run by a compile, for its memory admission (``bench/bench_admission.py``:
+#: the larger of the virtual and resident slope between 1e6 and 4e6 sites, measured 288 and 214, rounded up).
+RULES_BYTES_PER_SITE = 300
+OPTICS_BYTES_PER_SITE = 220
 
 
 def _switch(setting: str, forced: bool | None):
@@ -34,12 +38,13 @@ def _switch(setting: str, forced: bool | None):
 
 def rules_step(*, force: bool | None = None) -> MaskCheck:
     """The design-rule check step (:func:`run_rules_on_written`); on when ``[checks] rules`` is (or ``force``)."""
-    return MaskCheck("rules", run_rules_on_written, _switch("rules", force), needs_structures=True)
+    return MaskCheck("rules", run_rules_on_written, _switch("rules", force), needs_structures=True,
+                     bytes_per_site=RULES_BYTES_PER_SITE)
 
 
 def optics_step(*, force: bool | None = None) -> MaskCheck:
     """The quick optical check step (:func:`run_optics_on_written`); on when ``[checks] optics`` is (or ``force``)."""
-    return MaskCheck("optics", run_optics_on_written, _switch("optics", force))
+    return MaskCheck("optics", run_optics_on_written, _switch("optics", force), bytes_per_site=OPTICS_BYTES_PER_SITE)
 
 
 def default_checks(*, rules: bool | None = None, optics: bool | None = None) -> tuple[MaskCheck, ...]:

@@ -12,12 +12,14 @@ module            commands                                                    li
 ``sorter.py``     ``sorter plan | compile | check``                           :mod:`metalay.measure.sortermask`
 ``charge.py``     ``charge read | aperture | simulate``                       :mod:`metalay.measure.imagecharge`
 ``__main__.py``   ``python -m metalay.cli``
+``_options.py``   options shared by commands (``--max-memory``)
 ================  ==========================================================  =====================================
 
 Each command module exposes ``add_parser(subparsers)`` and ``run(args) -> int``. Exit codes: 0 success;
 1 a compile's overall verdict reached ``--fail-at`` (default: fail), or design-rule violations when asked to fail on
-them; 2 bad input; 3 unreadable mask; 70 internal error; 130 interrupted (:mod:`metalay.errors` gives each error
-class its code).
+them; 2 bad input; 3 unreadable mask; 70 internal error; 75 output folder busy (another metalay process writes it);
+130 interrupted; 141 standard output closed early (e.g. ``metalay info mask.gds | head -1``: quiet, as a shell
+reports a pipe closed under a process) (:mod:`metalay.errors` gives each error class its code).
 """
 
 from __future__ import annotations
@@ -35,6 +37,7 @@ from importlib import resources
 from pathlib import Path
 
 from metalay import __version__
+from metalay.cli._options import add_max_memory
 from metalay.errors import MetalayError
 
 __all__ = ["main"]
@@ -54,7 +57,7 @@ def _compile(design_path, out_dir, args) -> int:
     design = load_design(design_path)
     result = compile_design(design, out_dir, show_progress=False if args.quiet else None,
                             run_rules=False if args.no_checks else None,
-                            run_optics=False if args.no_checks else None)
+                            run_optics=False if args.no_checks else None, max_memory_bytes=args.max_memory)
     if not args.quiet:
         for line in result.summary:
             print(line)
@@ -108,6 +111,7 @@ def _build_parser(modules) -> argparse.ArgumentParser:
         p.add_argument("--fail-at", choices=("fail", "warn", "never"), default=None,
                        help="exit 1 when the overall verdict is this or worse (default: the design's "
                             "checks.fail_at, which defaults to fail; never: always exit 0 after writing)")
+        add_max_memory(p)
 
     p = sub.add_parser("compile", help="compile a design file (TOML) into mask files and a manifest")
     p.add_argument("design", help="design file (.toml)")
@@ -138,6 +142,18 @@ def _load_modules():
     return mods
 
 
+def _stdout_closed() -> int:
+    """The reader of standard output went away (``| head``): stop quietly; point standard output at /dev/null so
+    the interpreter's final flush does not complain."""
+    try:
+        devnull = os.open(os.devnull, os.O_WRONLY)
+        os.dup2(devnull, sys.stdout.fileno())
+        os.close(devnull)
+    except (OSError, ValueError):
+        pass
+    return 141
+
+
 def main(argv=None) -> int:
     """Entry point of the ``metalay`` command."""
     modules = _load_modules()
@@ -145,6 +161,8 @@ def main(argv=None) -> int:
     args = parser.parse_args(argv)
     try:
         return int(args.func(args) or 0)
+    except BrokenPipeError:
+        return _stdout_closed()
     except MetalayError as exc:
         print(f"metalay: error: {exc}", file=sys.stderr)
         return exc.exit_code

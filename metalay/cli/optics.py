@@ -5,6 +5,7 @@ from __future__ import annotations
 import argparse
 from pathlib import Path
 
+from metalay.cli._options import add_max_memory
 from metalay.errors import MetalayError
 
 __all__ = ["add_parser", "run"]
@@ -40,6 +41,7 @@ def add_parser(subparsers) -> argparse.ArgumentParser:
     p.add_argument("--linear-scale", action="store_true", help="far-field image on a linear scale (default log)")
     p.add_argument("--no-plots", action="store_true", help="numbers only (no PNG figures, no HTML report)")
     p.add_argument("--quiet", action="store_true", help="print nothing but errors")
+    add_max_memory(p)
     p.set_defaults(func=run)
     return p
 
@@ -75,7 +77,8 @@ def run(args) -> int:
     options = OpticsOptions(wavelength_nm=args.wavelength_nm, polarization=args.polarization, bias_nm=args.bias_nm,
                             size_tol_nm=args.size_tol_nm, unmatched=args.unmatched, pad_factor=args.pad_factor,
                             max_side=args.max_side, make_plots=not args.no_plots,
-                            log_far_field=not args.linear_scale, lit_from=args.lit_from)
+                            log_far_field=not args.linear_scale, lit_from=args.lit_from,
+                            max_memory_bytes=args.max_memory)
     res = check_optics(args.mask, library, design=design, out_dir=out, options=options)
     if not args.quiet:
         f = res.figures

@@ -11,6 +11,7 @@ import sys
 import time
 from pathlib import Path
 
+from metalay.cli._options import add_max_memory
 from metalay.errors import MetalayError
 
 __all__ = ["add_parser", "run", "add_info_parser", "run_info"]
@@ -34,6 +35,7 @@ def add_parser(subparsers) -> None:
                    help="GDSII layer of the violation markers; datatype = rule number (default 1000)")
     c.add_argument("--no-markers", action="store_true", help="do not write the marker GDSII")
     c.add_argument("--quiet", action="store_true", help="print only the verdict line")
+    add_max_memory(c)
     c.set_defaults(func=run)
 
 
@@ -48,7 +50,7 @@ def run(args) -> int:
 
 def _run_check(args) -> int:
     from metalay.checks.rules import RulesError, check_mask, load_rules, write_marker_gds
-    from metalay.errors import OutputError
+    from metalay.errors import MaskReadError, OutputError
     from metalay.io.gdsread import read_mask
     from metalay.util.atomic import atomic_write_text
 
@@ -59,14 +61,17 @@ def _run_check(args) -> int:
     rules = load_rules(args.rules)
     mask = Path(args.mask)
     t0 = time.perf_counter()
-    flat = read_mask(mask, layers=rules.layer_pairs(), cell=args.cell)
+    flat = read_mask(mask, layers=rules.layer_pairs(), cell=args.cell, max_memory_bytes=args.max_memory)
     t_read = time.perf_counter() - t0
     report = check_mask(flat, rules, method=args.method)
     out = args.output or Path("out") / f"{mask.stem}-rules"
     data = report.to_dict(max_listed=args.max_listed)
     from metalay.io.gdsread import file_sha256
     data["mask"] = str(mask)
-    data["sha256"] = file_sha256(mask)
+    try:
+        data["sha256"] = file_sha256(mask)
+    except OSError as exc:
+        raise MaskReadError(f"{mask}: cannot read ({exc.strerror or exc})") from exc
     data["rules_file"] = rules.source_path
     json_path = out / f"{mask.stem}.rules.json"
     try:
@@ -98,6 +103,7 @@ def add_info_parser(subparsers) -> None:
     p = subparsers.add_parser("info", help="summarise a GDSII/OASIS mask (cells, layers, counts, bbox, units, sha256)")
     p.add_argument("mask", help="mask file (.gds or .oas)")
     p.add_argument("--json", action="store_true", help="print the summary as JSON")
+    add_max_memory(p)
     p.set_defaults(func=run_info)
 
 
@@ -106,7 +112,7 @@ def run_info(args) -> int:
     from metalay.io.gdsread import mask_info
 
     try:
-        info = mask_info(args.mask)
+        info = mask_info(args.mask, max_memory_bytes=getattr(args, "max_memory", None))
     except MetalayError as exc:
         print(f"metalay: error: {exc}", file=sys.stderr)
         return exc.exit_code

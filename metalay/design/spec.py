@@ -176,8 +176,10 @@ def _parse_design_table(d: TomlTable, base_dir: Path, *, spin_required: bool = T
     """``[design]``: name, wavelength, input spin, library (a relative library path is taken from the file's
     folder). A spin-decoupled design (``spin_required=False``) writes both spins and has no ``input_spin``."""
     name = d.string("name")
-    if not name or len(name) > 64 or not all(c.isalnum() or c in "-_." for c in name):
-        d.fail("name", name, "use 1 to 64 characters from letters, digits, '-', '_' and '.'")
+    if (not name or len(name) > 64 or name.startswith(".")
+            or not all(c.isascii() and (c.isalnum() or c in "-_.") for c in name)):
+        d.fail("name", name, "use 1 to 64 ASCII letters, digits, '-', '_' and '.', not starting with '.' "
+               "(the name becomes file and cell names)")
     wavelength_nm = d.number("wavelength_nm", lo=100.0, hi=20000.0)
     if not spin_required:
         if d.has("input_spin"):

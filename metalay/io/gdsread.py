@@ -18,12 +18,15 @@ import math
 import mmap
 import os
 import struct
+from collections.abc import Callable
 from dataclasses import dataclass, field
+from functools import partial
 from pathlib import Path
 
 import numpy as np
 
 from metalay.errors import GeometryError, MaskReadError
+from metalay.util.budget import format_bytes, memory_budget
 
 __all__ = [
     "FlatPolygons",
@@ -33,6 +36,7 @@ __all__ = [
     "DEFAULT_MAX_ELEMENTS",
     "DEFAULT_MAX_VERTICES",
     "DEFAULT_MAX_DEPTH",
+    "flatten_bytes",
 ]
 
 DEFAULT_MAX_ELEMENTS = 100_000_000
@@ -159,11 +163,21 @@ class _Explicit:
 
 @dataclass
 class _RefGroup:
-    """Placements of one child cell: affine maps x -> A x + t, A = [[a, b], [c, d]] (shape (m, 6) float64)."""
+    """Placements of one child cell, counted but not expanded.
+
+    ``count`` (an exact int) placements; ``expand()`` builds their affine maps x -> A x + t, A = [[a, b], [c, d]]
+    as an array of shape (count, 6) float64, and is called only after the whole hierarchy has been counted and
+    found within the limits and the memory budget (an AREF of 32767 x 32767 is 1e9 placements in 60 bytes).
+    """
 
     child: str
-    affine: np.ndarray
+    count: int
+    expand: Callable[[], np.ndarray]
     offset: int  # byte offset for messages
+
+    def affine(self) -> np.ndarray:
+        """The placements' affine maps, shape (count, 6) float64."""
+        return self.expand()
 
 
 @dataclass
@@ -310,7 +324,6 @@ class _WalkState:
 
     layer_filter: object
     max_elements: int
-    n_placements: int = 0
     db_unit_m: float | None = None
     user_unit_m: float | None = None
 
@@ -480,48 +493,56 @@ def _ref_linear(rd: _Records, pos, block, byt) -> np.ndarray:
     return np.stack([c * mag, -s * mag * fy, s * mag, c * mag * fy], axis=1)
 
 
-def _aref_affine(rd: _Records, pos, block, byt, xy, lin, state: _WalkState):
-    """Every placement of an AREF run (counted against ``max_elements`` first); affine maps and counts."""
+def _aref_counts(rd: _Records, pos, block, byt) -> tuple[np.ndarray, np.ndarray]:
+    """Columns and rows of each AREF of a run (int64, each >= 1); nothing is expanded here."""
     co, _ = rd.need(pos, byt, _COLROW, "COLROW", 4)
     colrow = _int16(block[:, co:co + 4])
     cols, rows = colrow[:, 0].astype(np.int64), colrow[:, 1].astype(np.int64)
     if (cols < 1).any() or (rows < 1).any():
         raise _err(rd.path, f"AREF at byte {pos}: COLROW must be >= 1 (got {cols.min()}, {rows.min()})")
+    return cols, rows
+
+
+def _expand_refs(lin: np.ndarray, xy: np.ndarray, cols: np.ndarray | None, rows: np.ndarray | None) -> np.ndarray:
+    """Affine maps (m, 6) of SREFs (``cols`` None: one per element at XY) or of every element of AREFs.
+
+    AREF element (i, j) sits at origin + i * (P2 - origin) / cols + j * (P3 - origin) / rows (Calma GDSII Stream
+    Format Manual, Release 6.0, AREF: XY holds the origin and the displaced column and row corners).
+    """
+    if cols is None:
+        return np.concatenate([lin, xy[:, 0, :]], axis=1)
     tot = cols * rows
-    state.n_placements += int(tot.sum())
-    if state.n_placements > state.max_elements:
-        raise _err(rd.path, f"AREF at byte {pos}: {state.n_placements} array placements exceed the "
-                            f"limit max_elements={state.max_elements}")
-    eidx = np.repeat(np.arange(block.shape[0]), tot)
+    eidx = np.repeat(np.arange(cols.shape[0]), tot)
     local = np.arange(int(tot.sum())) - np.repeat(np.cumsum(tot) - tot, tot)
     ci = local % cols[eidx]
     ri = local // cols[eidx]
     o, pc, pr = xy[eidx, 0], xy[eidx, 1], xy[eidx, 2]
     t = (o + (pc - o) * (ci / cols[eidx])[:, None] + (pr - o) * (ri / rows[eidx])[:, None])
-    return np.concatenate([lin[eidx], t], axis=1), tot
+    return np.concatenate([lin[eidx], t], axis=1)
 
 
 def _decode_ref(rd: _Records, pos, block, byt, kind, cell: _Cell, state: _WalkState) -> None:
-    """SREF/AREF runs: affine placements grouped by the referenced cell's name."""
+    """SREF/AREF runs: placements grouped by the referenced cell's name, counted, kept unexpanded."""
     so, sl = rd.need(pos, byt, _SNAME, "SNAME")
     xo, xl = rd.need(pos, byt, _XY, "XY", 8 if kind == _SREF else 24)
     k = block.shape[0]
     lin = _ref_linear(rd, pos, block, byt)
     xy = np.ascontiguousarray(block[:, xo:xo + xl]).view(">i4").astype(np.float64).reshape(k, -1, 2)
-    if kind == _SREF:
-        aff = np.concatenate([lin, xy[:, 0, :]], axis=1)
-        rep = np.ones(k, np.int64)
-    else:
-        aff, rep = _aref_affine(rd, pos, block, byt, xy, lin, state)
+    cols = rows = None
+    rep = np.ones(k, np.int64)
+    if kind == _AREF:
+        cols, rows = _aref_counts(rd, pos, block, byt)
+        rep = cols * rows
     names_raw = np.ascontiguousarray(block[:, so:so + sl])
     if k == 1:
-        groups = [(bytes(names_raw[0]), np.ones(aff.shape[0], bool))]
+        groups = [(bytes(names_raw[0]), np.ones(1, bool))]
     else:
         u, inv = np.unique(names_raw.view(f"V{sl}")[:, 0], return_inverse=True)
-        inv_rep = np.repeat(inv.ravel(), rep)
-        groups = [(bytes(u[g]), inv_rep == g) for g in range(u.shape[0])]
+        groups = [(bytes(u[g]), inv.ravel() == g) for g in range(u.shape[0])]
     for nm, sel in groups:
-        cell.refs.append(_RefGroup(_ascii(nm), aff[sel], pos))
+        expand = partial(_expand_refs, lin[sel], xy[sel], None if cols is None else cols[sel],
+                         None if rows is None else rows[sel])
+        cell.refs.append(_RefGroup(_ascii(nm), int(rep[sel].sum()), expand, pos))
 
 
 def _paths_to_polygons(xy, width, ptype, bext, eext, layer, datatype) -> _Explicit:
@@ -576,20 +597,18 @@ def _from_shapely(polys, layer, datatype) -> _Explicit:
 # ----------------------------------------------------------------------------------------------------------------
 
 def _read_oasis(path: str, layer_filter, max_elements: int = DEFAULT_MAX_ELEMENTS,
-                max_vertices: int = DEFAULT_MAX_VERTICES, max_depth: int = DEFAULT_MAX_DEPTH) -> _Library:
+                max_vertices: int = DEFAULT_MAX_VERTICES, max_memory_bytes: int | None = None) -> _Library:
     """Read an OASIS file with :mod:`metalay.io.oasis_read` (pure Python + numpy: a hostile file raises, it
     cannot crash the process) into the shared library model.
 
-    Every repetition and the placement fan-out through the whole hierarchy are counted before anything is
-    expanded and compared with the limits and the memory budget; only then are the placements of cells that hold
-    geometry expanded into affine maps (a placement of an empty cell is kept as one map).
+    The reader counts every repetition and admits each cell's own geometry against the limits and the memory
+    budget while parsing; placements stay unexpanded (:class:`_RefGroup`) until :func:`_flatten` has counted the
+    fan-out through the whole hierarchy.
     """
     from metalay.io import oasis_read
 
     layout = oasis_read.parse_oasis(path, layer_filter=layer_filter, max_elements=max_elements,
-                                    max_vertices=max_vertices)
-    plan = oasis_read.plan_flatten(layout, max_elements=max_elements, max_vertices=max_vertices,
-                                   max_depth=max_depth)
+                                    max_vertices=max_vertices, max_memory_bytes=max_memory_bytes)
     cells: dict[str, _Cell] = {}
     for c in layout.cells.values():
         cell = _Cell(c.name)
@@ -604,9 +623,7 @@ def _read_oasis(path: str, layer_filter, max_elements: int = DEFAULT_MAX_ELEMENT
             if n:
                 cell.n_elements[code] = n
         for p in c.placements:
-            size = plan.sizes.get(p.child, (0, 0))[0]
-            aff = p.affine() if size else np.array([[*p.linear, float(p.x), float(p.y)]])
-            cell.refs.append(_RefGroup(p.child, aff, p.offset))
+            cell.refs.append(_RefGroup(p.child, int(p.count), p.affine, p.offset))
     return _Library(path, "OASIS", layout.db_unit_m, layout.user_unit_m, cells)
 
 
@@ -668,10 +685,42 @@ def _flat_sizes(lib: _Library, order: list[str]) -> dict[str, tuple[int, int]]:
         p, v = c.own_counts()
         for r in c.refs:
             cp, cv = sizes[r.child]
-            p += r.affine.shape[0] * cp
-            v += r.affine.shape[0] * cv
+            p += r.count * cp
+            v += r.count * cv
         sizes[name] = (p, v)
     return sizes
+
+
+def _instance_counts(lib: _Library, tops: list, order: list, sizes: dict) -> dict[str, int]:
+    """How many times each reachable cell with polygons below it is placed in the flattened result (exact ints,
+    parents before children). Placements of cells without polygons are never expanded, so they are not counted."""
+    inst = {t: 1 for t in tops}
+    for name in order:
+        if name not in inst:
+            continue
+        for r in lib.cells[name].refs:
+            if sizes[r.child][0]:
+                inst[r.child] = inst.get(r.child, 0) + inst[name] * r.count
+    return inst
+
+
+#: Bytes the flattening holds per polygon of the result: layer and datatype (int32), vertex count and start (int64).
+FLAT_BYTES_PER_POLYGON = 24
+#: Bytes per vertex of the result: x and y as int64.
+FLAT_BYTES_PER_VERTEX = 16
+#: Bytes per expanded placement: its affine map (6 float64) in the per-cell list, the concatenated copy, and the
+#: temporaries of composing it with the child's placements (measured with ``bench/bench_read_budget.py``).
+FLAT_BYTES_PER_PLACEMENT = 160
+
+
+def flatten_bytes(polygons: int, vertices: int, placements: int) -> int:
+    """Estimated peak bytes of flattening ``polygons`` / ``vertices`` through ``placements`` expanded placements.
+
+    ``24 P + 16 V + 160 I`` (see :data:`FLAT_BYTES_PER_POLYGON`, :data:`FLAT_BYTES_PER_VERTEX`,
+    :data:`FLAT_BYTES_PER_PLACEMENT`); decoding temporaries are chunked (a few tens of MB whatever the size).
+    """
+    return (FLAT_BYTES_PER_POLYGON * int(polygons) + FLAT_BYTES_PER_VERTEX * int(vertices)
+            + FLAT_BYTES_PER_PLACEMENT * int(placements))
 
 
 def _compose(parent: np.ndarray, child: np.ndarray) -> np.ndarray:
@@ -736,14 +785,9 @@ class _FlatOut:
         self.ip, self.iv = self.ip + n, self.iv + m
 
 
-def _placements(lib: _Library, tops: list, order: list, sizes: dict, max_elements: int) -> dict:
-    """Affine placements of every cell that holds polygons (parents first), counted against ``max_elements``.
-
-    Instance counts are bounded by the polygon count check only when cells hold polygons, so instances of cells
-    with polygons are counted here as they are composed.
-    """
+def _placements(lib: _Library, tops: list, order: list, sizes: dict) -> dict:
+    """Affine placements of every cell that holds polygons (parents first); call only after the counts passed."""
     inst: dict[str, list] = {t: [np.array([[1.0, 0.0, 0.0, 1.0, 0.0, 0.0]])] for t in tops}
-    n_inst_total = 0
     for name in order:
         if name not in inst:
             continue
@@ -752,10 +796,7 @@ def _placements(lib: _Library, tops: list, order: list, sizes: dict, max_element
         for r in lib.cells[name].refs:
             if sizes[r.child][0] == 0:
                 continue
-            n_inst_total += parent.shape[0] * r.affine.shape[0]
-            if n_inst_total > max_elements:
-                raise _err(lib.path, f"more than {max_elements} reference placements (limit max_elements)")
-            inst.setdefault(r.child, []).append(_compose(parent, r.affine))
+            inst.setdefault(r.child, []).append(_compose(parent, r.affine()))
     return inst
 
 
@@ -789,11 +830,9 @@ def _put_placed(lib: _Library, c: _Cell, aff: np.ndarray, out: _FlatOut) -> None
         out.put(np.tile(lay, m), np.tile(dt, m), np.tile(cnt, m), placed.reshape(-1, 2))
 
 
-def _flatten(lib: _Library, cell: str | None, max_elements: int, max_vertices: int, max_depth: int,
-             ) -> FlatPolygons:
-    """Stage 3 of reading: every polygon of the top cell(s) in place, sizes counted before anything is allocated."""
-    tops, order = _topology(lib, cell, max_depth)
-    sizes = _flat_sizes(lib, order)
+def _admit(lib: _Library, tops: list, order: list, sizes: dict, *, max_elements: int, max_vertices: int,
+           max_memory_bytes: int | None) -> None:
+    """Refuse, naming the count, a flattening over the element, vertex or placement limit or the memory budget."""
     total_p = sum(sizes[t][0] for t in tops)
     total_v = sum(sizes[t][1] for t in tops)
     if total_p > max_elements:
@@ -802,7 +841,28 @@ def _flatten(lib: _Library, cell: str | None, max_elements: int, max_vertices: i
     if total_v > max_vertices:
         raise _err(lib.path, f"{total_v} vertices after resolving references exceed the limit max_vertices="
                              f"{max_vertices}")
-    inst = _placements(lib, tops, order, sizes, max_elements)
+    n_inst = sum(_instance_counts(lib, tops, order, sizes).values())
+    need = flatten_bytes(total_p, total_v, n_inst)
+    budget = memory_budget(max_memory_bytes)
+    if need > budget:
+        raise _err(lib.path, f"flattening {total_p} polygons ({total_v} vertices, {n_inst} placements) needs about "
+                             f"{format_bytes(need)}, more than the memory budget of {format_bytes(budget)} "
+                             "(--max-memory; default half of the memory this process may use)")
+    if n_inst > max_elements:
+        raise _err(lib.path, f"{n_inst} reference placements to expand exceed the limit max_elements="
+                             f"{max_elements}")
+
+
+def _flatten(lib: _Library, cell: str | None, max_elements: int, max_vertices: int, max_depth: int,
+             max_memory_bytes: int | None = None) -> FlatPolygons:
+    """Stage 3 of reading: every polygon of the top cell(s) in place, sizes counted before anything is allocated."""
+    tops, order = _topology(lib, cell, max_depth)
+    sizes = _flat_sizes(lib, order)
+    _admit(lib, tops, order, sizes, max_elements=max_elements, max_vertices=max_vertices,
+           max_memory_bytes=max_memory_bytes)
+    total_p = sum(sizes[t][0] for t in tops)
+    total_v = sum(sizes[t][1] for t in tops)
+    inst = _placements(lib, tops, order, sizes)
     out = _FlatOut(total_p, total_v)
     for name in order:
         if name not in inst:
@@ -851,12 +911,15 @@ def _make_filter(layers):
 
 def _sniff(path: str) -> str:
     p = Path(path)
-    if not p.exists():
-        raise _err(path, "file not found")
-    if not p.is_file():
-        raise _err(path, "not a regular file")
-    with open(p, "rb") as fh:
-        head = fh.read(16)
+    try:
+        if not p.exists():
+            raise _err(path, "file not found")
+        if not p.is_file():
+            raise _err(path, "not a regular file")
+        with open(p, "rb") as fh:
+            head = fh.read(16)
+    except OSError as exc:  # permission denied, I/O error: unreadable, like a malformed file
+        raise _err(path, f"cannot read ({exc.strerror or exc})") from exc
     if head.startswith(b"%SEMI-OASIS"):
         return "OASIS"
     if len(head) >= 4 and head[2:4] == b"\x00\x02":
@@ -865,26 +928,30 @@ def _sniff(path: str) -> str:
 
 
 def _parse(path, layers=None, max_elements: int = DEFAULT_MAX_ELEMENTS, max_vertices: int = DEFAULT_MAX_VERTICES,
-           max_depth: int = DEFAULT_MAX_DEPTH):
+           max_memory_bytes: int | None = None):
     path = os.fspath(path)
     fmt = _sniff(path)
     filt = _make_filter(layers)
     if fmt == "OASIS":
-        return _read_oasis(path, filt, max_elements, max_vertices, max_depth), None
-    size = os.path.getsize(path)
-    fh = open(path, "rb")
+        return _read_oasis(path, filt, max_elements, max_vertices, max_memory_bytes), None
     try:
+        fh = open(path, "rb")
+    except OSError as exc:
+        raise _err(path, f"cannot read ({exc.strerror or exc})") from exc
+    try:
+        size = os.fstat(fh.fileno()).st_size
         mm = mmap.mmap(fh.fileno(), 0, access=mmap.ACCESS_READ)
     except (ValueError, OSError) as exc:
-        fh.close()
         raise _err(path, f"cannot map file ({exc})") from exc
-    fh.close()
+    finally:
+        fh.close()
     buf = np.frombuffer(mm, dtype=np.uint8, count=size)
     return _walk_gdsii(_Records(path, mm, buf), filt, max_elements), mm
 
 
 def read_mask(path, *, layers=None, cell: str | None = None, max_elements: int = DEFAULT_MAX_ELEMENTS,
-              max_vertices: int = DEFAULT_MAX_VERTICES, max_depth: int = DEFAULT_MAX_DEPTH) -> FlatPolygons:
+              max_vertices: int = DEFAULT_MAX_VERTICES, max_depth: int = DEFAULT_MAX_DEPTH,
+              max_memory_bytes: int | None = None) -> FlatPolygons:
     """Read a GDSII or OASIS mask and return every polygon flattened to database-unit integers.
 
     Parameters
@@ -896,8 +963,12 @@ def read_mask(path, *, layers=None, cell: str | None = None, max_elements: int =
     cell : str, optional
         Flatten this structure. Default: every top structure (one not referenced by another).
     max_elements, max_vertices, max_depth : int
-        Limits on flattened polygons (and reference placements), flattened vertices and nesting depth; checked
-        before the output is allocated.
+        Limits on flattened polygons (and on expanded reference placements), flattened vertices and nesting
+        depth; checked before the output is allocated.
+    max_memory_bytes : int, optional
+        Memory budget of the read; default :func:`metalay.util.budget.memory_budget` (half of the least of the
+        memory available, the free part of the cgroup limit and of the address-space limit). The flattened size
+        (:func:`flatten_bytes`) is compared with it before anything is expanded.
 
     Returns
     -------
@@ -906,10 +977,13 @@ def read_mask(path, *, layers=None, cell: str | None = None, max_elements: int =
     Raises
     ------
     MaskReadError
-        Unreadable, truncated or malformed file; undefined or cyclic references; limits exceeded.
+        Unreadable, truncated or malformed file; undefined or cyclic references; limits or the memory budget
+        exceeded (the message names the count).
 
     Notes
     -----
+    Every SREF/AREF is kept as a count (an AREF is cols x rows placements, exact integers) until the fan-out of
+    the whole hierarchy is known; placements of cells without polygons are never expanded.
     BOUNDARY and BOX elements become polygons (a repeated closing point is dropped); PATH elements are outlined
     (width from WIDTH, ends from PATHTYPE 0/1/2/4, mitred joins) and rounded to the database grid; TEXT and NODE
     carry no area and are skipped.  A placement maps x -> R(angle) * mag * F x + origin with F = diag(1, -1)
@@ -920,9 +994,9 @@ def read_mask(path, *, layers=None, cell: str | None = None, max_elements: int =
     ----------
     Calma GDSII Stream Format Manual, Release 6.0 (1987): record layout, 8-byte real format, AREF/STRANS rules.
     """
-    lib, mm = _parse(path, layers, max_elements, max_vertices, max_depth)
+    lib, mm = _parse(path, layers, max_elements, max_vertices, max_memory_bytes)
     try:
-        return _flatten(lib, cell, max_elements, max_vertices, max_depth)
+        return _flatten(lib, cell, max_elements, max_vertices, max_depth, max_memory_bytes)
     except MemoryError as exc:
         raise _err(lib.path, "out of memory while flattening (lower the input size or max_elements)") from exc
     finally:
@@ -943,12 +1017,19 @@ def file_sha256(path) -> str:
     return h.hexdigest()
 
 
+def _sha256_of_input(path: str) -> str:
+    try:
+        return file_sha256(path)
+    except OSError as exc:
+        raise _err(path, f"cannot read ({exc.strerror or exc})") from exc
+
+
 _KIND_NAMES = {_BOUNDARY: "boundary", _PATH: "path", _SREF: "sref", _AREF: "aref", _TEXT: "text", _NODE: "node",
                _BOX: "box"}
 
 
 def mask_info(path, *, max_elements: int = DEFAULT_MAX_ELEMENTS, max_vertices: int = DEFAULT_MAX_VERTICES,
-              max_depth: int = DEFAULT_MAX_DEPTH) -> dict:
+              max_depth: int = DEFAULT_MAX_DEPTH, max_memory_bytes: int | None = None) -> dict:
     """Summarise a mask: format, units, structures, layers with flattened polygon counts, bbox, SHA-256.
 
     Returns
@@ -960,11 +1041,13 @@ def mask_info(path, *, max_elements: int = DEFAULT_MAX_ELEMENTS, max_vertices: i
         and ``bbox_um``.  Lists are sorted, so the dict is deterministic.
     """
     path = os.fspath(path)
-    lib, mm = _parse(path, None, max_elements, max_vertices, max_depth)
+    lib, mm = _parse(path, None, max_elements, max_vertices, max_memory_bytes)
     try:
         tops, order = _topology(lib, None, max_depth)
         sizes = _flat_sizes(lib, order)
-        flat = _flatten(lib, None, max_elements, max_vertices, max_depth)
+        flat = _flatten(lib, None, max_elements, max_vertices, max_depth, max_memory_bytes)
+    except MemoryError as exc:
+        raise _err(lib.path, "out of memory while flattening (lower the input size or max_elements)") from exc
     finally:
         lib.buf = None
         if mm is not None:
@@ -992,7 +1075,7 @@ def mask_info(path, *, max_elements: int = DEFAULT_MAX_ELEMENTS, max_vertices: i
         "path": path,
         "format": lib.fmt,
         "size_bytes": os.path.getsize(path),
-        "sha256": file_sha256(path),
+        "sha256": _sha256_of_input(path),
         "db_unit_m": lib.db_unit_m,  # the file's own value (output key kept)
         "user_unit_m": flat.user_unit_m,
         "cells": cells,

@@ -28,7 +28,6 @@ from __future__ import annotations
 import math
 import mmap
 import os
-import resource
 import zlib
 from dataclasses import dataclass
 
@@ -36,6 +35,7 @@ import numpy as np
 
 from metalay.errors import MaskReadError
 from metalay.io import _oasis_codec as oc
+from metalay.util.budget import memory_budget
 
 __all__ = [
     "OasisLayout",
@@ -47,7 +47,6 @@ __all__ = [
     "circle_vertex_count",
     "flatten_layout",
     "read_oasis",
-    "default_memory_budget",
     "DEFAULT_CIRCLE_TOLERANCE_DB",
     "MAX_CIRCLE_VERTICES",
 ]
@@ -183,56 +182,6 @@ class OasisLayout:
     user_unit_m: float
     cells: dict
     validation: str
-
-
-# ----------------------------------------------------------------------------------------------------------------
-# Memory budget
-# ----------------------------------------------------------------------------------------------------------------
-
-def _read_int(path: str) -> int | None:
-    try:
-        with open(path) as fh:
-            text = fh.read().strip()
-    except OSError:
-        return None
-    return int(text) if text.isdigit() else None
-
-
-def default_memory_budget(fraction: float = 0.5) -> int:
-    """Bytes a read may allocate: ``fraction`` of the least of what the process can really use.
-
-    The candidates are the memory the kernel reports available (``MemAvailable``), the free part of the cgroup
-    limit (v2 ``memory.max - memory.current`` or v1 ``limit_in_bytes - usage_in_bytes``) and the free part of the
-    address-space limit (``RLIMIT_AS`` minus the current virtual size).
-    """
-    cands = []
-    try:
-        with open("/proc/meminfo") as fh:
-            for line in fh:
-                if line.startswith("MemAvailable:"):
-                    cands.append(int(line.split()[1]) * 1024)
-    except (OSError, ValueError, IndexError):
-        pass
-    if not cands:
-        try:
-            cands.append(os.sysconf("SC_PAGE_SIZE") * os.sysconf("SC_AVPHYS_PAGES"))
-        except (ValueError, OSError, AttributeError):
-            cands.append(1 << 34)
-    for lim, cur in (("/sys/fs/cgroup/memory.max", "/sys/fs/cgroup/memory.current"),
-                     ("/sys/fs/cgroup/memory/memory.limit_in_bytes", "/sys/fs/cgroup/memory/memory.usage_in_bytes")):
-        a, b = _read_int(lim), _read_int(cur)
-        if a is not None and a < (1 << 60):
-            cands.append(a - (b or 0))
-    soft, _ = resource.getrlimit(resource.RLIMIT_AS)
-    if soft != resource.RLIM_INFINITY:
-        vsize = 0
-        try:
-            with open("/proc/self/statm") as fh:
-                vsize = int(fh.read().split()[0]) * os.sysconf("SC_PAGE_SIZE")
-        except (OSError, ValueError, IndexError):
-            pass
-        cands.append(soft - vsize)
-    return max(0, int(fraction * min(cands)))
 
 
 # ----------------------------------------------------------------------------------------------------------------
@@ -1290,7 +1239,8 @@ def parse_oasis(path, *, layers=None, layer_filter=None, max_elements: int = _DE
         Limits on the own polygons and vertices of all cells together (every cell appears at least once in the
         flattened mask, so a file over these limits cannot flatten within them).
     max_memory_bytes : int, optional
-        Memory budget; default :func:`default_memory_budget`.
+        Memory budget in bytes; default :func:`metalay.util.budget.memory_budget` (half of the least of the
+        memory available, the free part of the cgroup limit and of the address-space limit).
     circle_tolerance_db : float
         Largest gap between a CIRCLE and its polygon, database units.
 
@@ -1304,7 +1254,7 @@ def parse_oasis(path, *, layers=None, layer_filter=None, max_elements: int = _DE
         Malformed, truncated or corrupt file (CRC or checksum mismatch); a count over a limit.
     """
     path = os.fspath(path)
-    budget = default_memory_budget() if max_memory_bytes is None else int(max_memory_bytes)
+    budget = memory_budget(max_memory_bytes)
     keep = layer_filter or _layer_filter(layers)
     try:
         fh = open(path, "rb")
@@ -1403,7 +1353,7 @@ def plan_flatten(layout: OasisLayout, *, cell: str | None = None, max_elements: 
     total_v = sum(sizes[t][1] for t in tops)
     n_inst = sum(inst.values())
     need = 2 * (total_p * _POLY_BYTES + total_v * _VERTEX_BYTES) + _INSTANCE_BYTES * n_inst
-    budget = default_memory_budget() if max_memory_bytes is None else int(max_memory_bytes)
+    budget = memory_budget(max_memory_bytes)
     if total_p > max_elements:
         raise MaskReadError(f"{path}: OASIS: {total_p} polygons after expanding placements exceed the limit "
                             f"max_elements={max_elements}")
@@ -1533,7 +1483,7 @@ def read_oasis(path, *, layers=None, cell: str | None = None, max_elements: int 
     >>> flat = read_oasis("mask.oas", layers=[1])          # doctest: +SKIP
     >>> flat.count, flat.xy_db.shape                         # doctest: +SKIP
     """
-    budget = default_memory_budget() if max_memory_bytes is None else int(max_memory_bytes)
+    budget = memory_budget(max_memory_bytes)
     layout = parse_oasis(path, layers=layers, max_elements=max_elements, max_vertices=max_vertices,
                          max_memory_bytes=budget, circle_tolerance_db=circle_tolerance_db)
     plan = plan_flatten(layout, cell=cell, max_elements=max_elements, max_vertices=max_vertices,

@@ -23,7 +23,10 @@ Calma Company, GDSII Stream Format Manual, Release 6.0 (1987): record layout, 8-
 from __future__ import annotations
 
 import datetime
+import errno
 import hashlib
+import os
+import shutil
 import struct
 from pathlib import Path
 
@@ -319,11 +322,37 @@ def add_polygons(lib, cell_name: str, layer: int, datatype: int, vertex_arrays, 
 
 
 def write_gdstk_library(lib, path, fmt: str) -> Path:
-    """Write a gdstk library as ``fmt`` ("gds" or "oas") atomically with fixed timestamps."""
+    """Write a gdstk library as ``fmt`` ("gds" or "oas") atomically with fixed timestamps.
+
+    gdstk does not report failed writes (a full disk leaves a short file and no error), so the file must end the
+    way its format ends (OASIS: the 256-byte END record, record id 2; GDSII: the ENDLIB record ``00 04 04 00``) or
+    the write is refused: ``OSError(ENOSPC)`` when the disk is (nearly) full, else :class:`OutputError`.
+    """
     with atomic_path(path) as tmp:
         if fmt == "gds":
             lib.write_gds(str(tmp), max_points=MAX_GDS_VERTICES + 1, timestamp=FIXED_TIMESTAMP)
         else:
             lib.write_oas(str(tmp), compression_level=1, detect_rectangles=False, detect_trapezoids=False,
                           standard_properties=False)
+        _check_complete(tmp, fmt, Path(path))
     return Path(path)
+
+
+def _check_complete(tmp: Path, fmt: str, final: Path) -> None:
+    """Raise unless the file gdstk wrote at ``tmp`` ends with its format's closing record."""
+    size = tmp.stat().st_size
+    with open(tmp, "rb") as fh:
+        if fmt == "oas":
+            fh.seek(max(0, size - 256))
+            ok = size >= 256 + 13 and fh.read(1) == b"\x02"
+        else:
+            fh.seek(max(0, size - 4))
+            ok = fh.read(4) == b"\x00\x04\x04\x00"
+    if ok:
+        return
+    free = shutil.disk_usage(tmp.parent).free
+    if free < (4 << 20):
+        raise OSError(errno.ENOSPC, os.strerror(errno.ENOSPC), str(final))
+    label = "OASIS" if fmt == "oas" else "GDSII"
+    raise OutputError(f"{final}: gdstk wrote an incomplete {label} file ({size} bytes, no closing record); "
+                      f"{free / 1e6:.0f} MB free on its disk")

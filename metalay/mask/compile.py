@@ -1,6 +1,7 @@
 """The main job: a validated design -> mask files (GDSII, OASIS) + manifest.json, tile by tile.
 
-:func:`compile_mask` runs five named stages into a staging folder, then moves the files into place:
+:func:`compile_mask` runs five named stages into a staging folder beside the output folder, then switches it in
+whole (:func:`metalay.util.atomic.published_folder`):
 
 1. ``_plan``: library, cells and their biased outlines, datatypes, tiles, output formats; refuses a compile that
    cannot fit the machine's memory or disk before anything is written;
@@ -17,12 +18,12 @@ from __future__ import annotations
 
 import collections
 import contextlib
+import errno
 import hashlib
 import json
 import math
 import os
 import shutil
-import tempfile
 import time
 from collections.abc import Sequence
 from concurrent.futures import ThreadPoolExecutor
@@ -79,10 +80,12 @@ from metalay.mask.process import (
 from metalay.mask.spinmap import assign_spin_cells
 from metalay.mask.steps import MaskCheck, WrittenMask
 from metalay.util._memory import keep_freed_memory
-from metalay.util.atomic import atomic_write_text, ensure_dir
+from metalay.util.atomic import atomic_write_text, pause_point, published_folder
+from metalay.util.budget import format_bytes, memory_budget, memory_limits
 from metalay.util.progress import progress
 
-__all__ = ["CompileResult", "compile_mask", "SAFETY_CAUTION", "SITES_PER_TILE", "design_warnings", "medium_index"]
+__all__ = ["CompileResult", "compile_mask", "SAFETY_CAUTION", "SITES_PER_TILE", "design_warnings", "medium_index",
+           "compile_memory_bytes"]
 
 SAFETY_CAUTION = (
     "Caution: metalay is a design aid. Verify every mask with full-wave simulation and against your facility's "
@@ -186,20 +189,23 @@ def _sha256(path: Path) -> str:
 
 def compile_mask(design: Design, out_dir: str | Path, *, checks: Sequence[MaskCheck] = (),
                  show_progress: bool | None = None, sites_per_tile: int = SITES_PER_TILE,
-                 annotations: dict | None = None) -> CompileResult:
+                 annotations: dict | None = None, max_memory_bytes: int | None = None) -> CompileResult:
     """Compile ``design`` into mask files and a manifest in ``out_dir`` (all or nothing), then run ``checks``.
 
-    Files are first written into a staging folder inside ``out_dir`` and moved into place only when every stage
-    (writing and every check) has succeeded; on any error the staging folder is removed, so a failed run leaves no
-    mask and no manifest behind.
+    Everything is written into a staging folder beside ``out_dir`` and switched in as a whole with one rename when
+    every stage (writing and every check) has succeeded (:func:`metalay.util.atomic.published_folder`): the
+    folder holds the previous complete set or the new one, never a mix; a failed run leaves the previous set (or
+    no folder). A second compile into the same folder while this one runs stops at once with
+    :class:`~metalay.errors.OutputBusyError` (exit code 75).
 
     Parameters
     ----------
     design : Design
         A validated design (:func:`metalay.design.spec.load_design`).
     out_dir : str or Path
-        Output folder (created). Files: ``<name>.gds``, ``<name>.oas`` (as requested), ``manifest.json``,
-        ``timings.json`` and whatever the checks write (e.g. ``optics/``).
+        Output folder, replaced as a whole (it must be new, empty or an earlier metalay output folder). Files:
+        ``<name>.gds``, ``<name>.oas`` (as requested), ``manifest.json``, ``timings.json`` and whatever the checks
+        write (e.g. ``optics/``).
     checks : sequence of MaskCheck
         Checks run on the written mask, in order, when enabled for this design; their results go to
         ``manifest["checks"]``. The standard set is :func:`metalay.checks.steps.default_checks`
@@ -212,58 +218,49 @@ def compile_mask(design: Design, out_dir: str | Path, *, checks: Sequence[MaskCh
         What was worked out before the compile (e.g. ``{"multiplex_encoding": [...]}`` from
         :func:`metalay.api.prepare_design`), recorded as ``manifest["derived"]``; an entry's records may carry a
         ``summary`` line, printed in the compile summary.
+    max_memory_bytes : int, optional
+        Memory budget of the admission check before anything is written (:func:`compile_memory_bytes` against
+        it); default 80 % of the least of the memory available, the free part of the cgroup limit and of the
+        address-space limit (:func:`metalay.util.budget.memory_budget`).
 
     Returns
     -------
     CompileResult
     """
-    created = _folders_to_create(Path(out_dir))
-    out = ensure_dir(out_dir)
     keep_freed_memory()
-    stage = Path(tempfile.mkdtemp(prefix=".metalay-stage-", dir=out))
-    done = False
-    try:
+    out = Path(out_dir)
+    with published_folder(out) as stage:
         try:
             result = _compile_into(design, stage, checks=checks, show_progress=show_progress,
-                                   sites_per_tile=sites_per_tile, annotations=annotations or {})
+                                   sites_per_tile=sites_per_tile, annotations=annotations or {},
+                                   max_memory_bytes=max_memory_bytes)
         except OSError as exc:  # e.g. the disk filled up while writing: one line, nothing left behind
-            raise OutputError(f"{out}: writing failed ({exc.strerror or exc})") from exc
-        moved = {}
-        for entry in sorted(stage.rglob("*")):
-            if entry.is_file():
-                final = out / entry.relative_to(stage)
-                final.parent.mkdir(parents=True, exist_ok=True)
-                os.replace(entry, final)
-        for key, p in result.files.items():
-            moved[key] = out / Path(p).relative_to(stage)
-        done = True
-        return replace(result, out_dir=out, files=moved)
-    finally:
-        shutil.rmtree(stage, ignore_errors=True)
-        if not done:  # a failed compile leaves no empty folder it created behind
-            for folder in created:  # deepest first; a folder that holds anything stays
-                with contextlib.suppress(OSError):
-                    folder.rmdir()
+            raise OutputError(_write_failure(out, exc)) from exc
+        except MetalayError as exc:  # name the output folder the user gave, not the staging folder beside it
+            if str(stage) not in str(exc):
+                raise
+            raise type(exc)(str(exc).replace(str(stage), str(out))) from exc
+    moved = {key: out / Path(p).relative_to(stage) for key, p in result.files.items()}
+    return replace(result, out_dir=out, files=moved)
 
 
-def _folders_to_create(path: Path) -> list[Path]:
-    """The folders ``ensure_dir(path)`` will create (missing ``path`` and missing parents), deepest first."""
-    missing = []
-    p = path.absolute()
-    while not p.exists() and p != p.parent:
-        missing.append(p)
-        p = p.parent
-    return missing
+def _write_failure(out: Path, exc: OSError) -> str:
+    """One line for an operating-system error while writing; a full disk is named as such."""
+    if exc.errno in (errno.ENOSPC, errno.EDQUOT):
+        return f"{out}: the disk is full ({exc.strerror}); nothing was published, free space and run again"
+    return f"{out}: writing failed ({exc.strerror or exc})"
 
 
 def _compile_into(design: Design, out: Path, *, checks: Sequence[MaskCheck], show_progress: bool | None,
-                  sites_per_tile: int, annotations: dict) -> CompileResult:
+                  sites_per_tile: int, annotations: dict, max_memory_bytes: int | None = None) -> CompileResult:
     """The stages of one compile into the folder ``out``: plan, tiles, gdstk formats, checks, manifest."""
     t_start = time.perf_counter()
     timings: dict[str, float] = {}
     enabled = [c for c in checks if c.enabled(design)]
     plan = _plan(design, out, sites_per_tile=sites_per_tile,
-                 structures_for_checks=any(c.needs_structures for c in enabled))
+                 structures_for_checks=any(c.needs_structures for c in enabled),
+                 check_bytes_per_site=max([c.bytes_per_site for c in enabled], default=0.0),
+                 max_memory_bytes=max_memory_bytes)
     t0 = time.perf_counter()
     gathered, known_hashes = _write_tiles(plan, show_progress=show_progress)
     timings["layout_and_flat_gds_s"] = time.perf_counter() - t0
@@ -277,7 +274,9 @@ def _compile_into(design: Design, out: Path, *, checks: Sequence[MaskCheck], sho
         t0 = time.perf_counter()
         files.update(_write_gdstk_formats(plan, gathered))
         timings["gdstk_write_s"] = time.perf_counter() - t0
+    pause_point("written")
     results = _run_checks(plan, enabled, files, timings)
+    pause_point("checked")
     manifest = _manifest(plan, gathered, files, results, known_hashes)
     if annotations:
         manifest["derived"] = annotations
@@ -379,7 +378,8 @@ def _datatype_table(design: Design, cell_ids: list) -> tuple[list, np.ndarray]:
     return classes, lut
 
 
-def _plan(design: Design, out: Path, *, sites_per_tile: int, structures_for_checks: bool) -> _Plan:
+def _plan(design: Design, out: Path, *, sites_per_tile: int, structures_for_checks: bool,
+          check_bytes_per_site: float = 0.0, max_memory_bytes: int | None = None) -> _Plan:
     """Stage 1: load the library, choose cells, datatypes, output paths and tiles; refuse what cannot fit."""
     library = load_library(design.library)
     facing = resolve_facing(design.lit_from, mode=library.mode, library_lit_from=library.side,
@@ -401,7 +401,8 @@ def _plan(design: Design, out: Path, *, sites_per_tile: int, structures_for_chec
     per_field = mask.write_field is not None and mask.write_field.cell_per_field
     stream_gds = want_gds and mask.hierarchy == "flat" and not per_field
     need_groups = "oas" in mask.formats or (want_gds and not stream_gds)
-    _check_resources(design, out, outlines, stream_gds=stream_gds, need_groups=need_groups)
+    _check_resources(design, out, outlines, stream_gds=stream_gds, need_groups=need_groups,
+                     check_bytes_per_site=check_bytes_per_site, max_memory_bytes=max_memory_bytes)
     level_offsets = None
     if mask.rotation_levels:
         thetas = np.arange(mask.rotation_levels) * np.pi / mask.rotation_levels
@@ -1027,39 +1028,77 @@ def _run_tiles(tiles, ctx: _TileContext, fn=_tile):
             yield pending.popleft().result()
 
 
-#: Memory per site held until the end when OASIS or hierarchical output is built with gdstk (measured ~40 bytes:
-#: our shape ids and centres, the sort, and gdstk's float64 repetition offsets).
-GROUPED_BYTES_PER_SITE = 40
+#: Measured peak memory per site of the compile's own stages (``bench/bench_admission.py``: the larger of the
+#: virtual-size and the resident-size slope between 1e6 and 4e6 sites, rounded up; figures in DEVELOPERS.md).
+#: Flat GDSII streamed tile by tile (measured 20.5 virtual, 27.0 resident):
+LAYOUT_BYTES_PER_SITE = 30
+#: Added when OASIS or hierarchical output is built with gdstk: shape ids and centres of every site held until
+#: the end, the sort, gdstk's float64 repetition offsets (measured 42-43 in total with the layout):
+GROUPED_BYTES_PER_SITE = 20
+#: What a compile needs whatever its size: interpreter and libraries loaded later (plots), tiles in flight (about
+#: 3 x 250,000 sites), thread stacks and allocator arenas (largest intercept measured: 452 MB).
+COMPILE_FIXED_BYTES = 460_000_000
+#: Share of the least memory limit a compile may plan to use: its constants are measured peaks (temporaries
+#: included), so the slack is smaller than the readers' default of one half.
+COMPILE_BUDGET_FRACTION = 0.8
 
 
-def _machine_memory_bytes() -> int:
-    try:
-        return int(os.sysconf("SC_PAGE_SIZE") * os.sysconf("SC_PHYS_PAGES"))
-    except (ValueError, OSError, AttributeError):  # pragma: no cover - non-POSIX
-        return 1 << 62
+def compile_memory_bytes(sites: float, *, need_groups: bool, check_bytes_per_site: float = 0.0) -> dict:
+    """Estimated peak memory of a compile of ``sites`` lattice sites, per stage and in total (bytes).
+
+    The stages run one after another and freed memory is reused, so the peak is the largest of them:
+    ``fixed + sites x max(layout + grouped, checks)`` with layout 30 B, grouped 20 B (OASIS or hierarchy only)
+    and checks the largest :attr:`~metalay.mask.steps.MaskCheck.bytes_per_site` of the enabled checks (design
+    rules 300 B, optics 220 B). Constants measured by ``bench/bench_admission.py``.
+
+    Returns
+    -------
+    dict
+        ``layout``, ``grouped``, ``checks``, ``fixed`` and ``total`` in bytes.
+    """
+    parts = {"layout": LAYOUT_BYTES_PER_SITE * sites,
+             "grouped": GROUPED_BYTES_PER_SITE * sites if need_groups else 0.0,
+             "checks": float(check_bytes_per_site) * sites, "fixed": float(COMPILE_FIXED_BYTES)}
+    parts["total"] = parts["fixed"] + max(parts["layout"] + parts["grouped"], parts["checks"])
+    return {k: int(v) for k, v in parts.items()}
 
 
-def _check_resources(design: Design, out: Path, outlines, *, stream_gds: bool, need_groups: bool) -> None:
-    """Refuse, before writing anything, a compile that cannot fit this machine's memory or the output disk."""
+def _check_resources(design: Design, out: Path, outlines, *, stream_gds: bool, need_groups: bool,
+                     check_bytes_per_site: float = 0.0, max_memory_bytes: int | None = None) -> None:
+    """Refuse, before writing anything, a compile that cannot fit the memory this process may use or the disk."""
     sites = _estimate_sites(design)
     where = design.source_path
-    if need_groups:
-        need = sites * GROUPED_BYTES_PER_SITE
-        have = _machine_memory_bytes()
-        if need > 0.6 * have:
-            raise DesignError(
-                f"{where}: key 'mask.formats' = {list(design.mask.formats)} (hierarchy "
-                f"'{design.mask.hierarchy}'): OASIS or hierarchical output of about {sites:.3g} sites needs about "
-                f"{need / 1e9:.1f} GB of memory, more than 60% of this machine's {have / 1e9:.1f} GB; allowed here: "
-                "formats = ['gds'] with hierarchy = 'flat' (streamed tile by tile with bounded memory)")
+    need = compile_memory_bytes(sites, need_groups=need_groups, check_bytes_per_site=check_bytes_per_site)
+    budget = memory_budget(max_memory_bytes, fraction=COMPILE_BUDGET_FRACTION)
+    if need["total"] > budget:
+        if max_memory_bytes is not None:
+            why = "--max-memory"
+        else:
+            limits = memory_limits()
+            why = (f"{COMPILE_BUDGET_FRACTION:.0%} of the {limits.binding}, "
+                   f"{format_bytes(limits.least_bytes)} free")
+        hints = []
+        if need_groups and compile_memory_bytes(sites, need_groups=False, check_bytes_per_site=check_bytes_per_site
+                                                )["total"] <= budget:
+            hints.append(f"key 'mask.formats' = {list(design.mask.formats)} (hierarchy "
+                         f"'{design.mask.hierarchy}') -> formats = ['gds'] with hierarchy = 'flat' (streamed tile by "
+                         "tile with bounded memory)")
+        if check_bytes_per_site and compile_memory_bytes(sites, need_groups=need_groups)["total"] <= budget:
+            hints.append("--no-checks (or [checks] rules/optics = false), then check the mask on its own")
+        hints.append("a smaller aperture or a larger --max-memory")
+        raise DesignError(
+            f"{where}: about {sites:.3g} sites need about {format_bytes(need['total'])} of memory (fixed "
+            f"{format_bytes(need['fixed'])}, layout {format_bytes(need['layout'])}, OASIS/hierarchy "
+            f"{format_bytes(need['grouped'])}, checks {format_bytes(need['checks'])}), more than the budget of "
+            f"{format_bytes(budget)} ({why}); allowed here: {'; or '.join(hints)}")
     if stream_gds:
         vertices = max(len(o) for o in outlines)
-        need = sites * (4 * (1 + 3 + 1 + 2 * (vertices + 1) + 1))
+        need_disk = sites * (4 * (1 + 3 + 1 + 2 * (vertices + 1) + 1))
         free = shutil.disk_usage(out).free
-        if need > free:
-            raise OutputError(f"{out}: the flat GDSII of about {sites:.3g} sites needs about {need / 1e9:.1f} GB "
-                              f"but the disk has {free / 1e9:.1f} GB free; free space or choose another output "
-                              "folder")
+        if need_disk > free:
+            raise OutputError(f"{out}: the flat GDSII of about {sites:.3g} sites needs about "
+                              f"{format_bytes(need_disk)} but the disk has {format_bytes(free)} free; free space or "
+                              "choose another output folder")
 
 
 def _field_library(name, shape_list, members, lut, layer, grid, extras, db_unit_nm):

@@ -60,9 +60,13 @@ class MaskCheck:
         Whether this design asks for the check (e.g. its ``[checks]`` setting).
     needs_structures : bool
         The step wants :attr:`WrittenMask.structures_path` for tone ``"complement"`` masks.
+    bytes_per_site : float
+        Peak memory of the step per lattice site (measured), for the compile's memory admission before anything
+        is written (:func:`metalay.mask.compile.compile_memory_bytes`); 0 for a step of negligible size.
     """
 
     name: str
     run: Callable[[WrittenMask], dict]
     enabled: Callable[[Design], bool] = _always
     needs_structures: bool = False
+    bytes_per_site: float = 0.0

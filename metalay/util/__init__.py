@@ -1,10 +1,13 @@
-"""Shared helpers of every stage: atomic output, progress bars, the allocator setting for tiles.
+"""Shared helpers of every stage: atomic output, the memory budget, progress bars, the allocator setting for tiles.
 
 ======================  =================================================  ===========================================
 module                  what                                               public entry
 ======================  =================================================  ===========================================
-``atomic.py``           temporary file + fsync + rename (all or nothing)   ``atomic_path``, ``atomic_write_bytes``,
-                                                                           ``atomic_write_text``, ``ensure_dir``
+``atomic.py``           temporary file + fsync + rename (all or nothing);  ``atomic_path``, ``atomic_write_bytes``,
+                        a whole output folder built beside its place and   ``atomic_write_text``, ``ensure_dir``,
+                        switched in by one rename, under a lock            ``published_folder``
+``budget.py``           the memory a run may use: least of available       ``memory_budget``, ``memory_limits``,
+                        memory, cgroup limit and ``RLIMIT_AS``             ``parse_memory_size``
 ``progress.py``         tqdm wrapper, quiet off a terminal                 ``progress``
 ``_memory.py``          glibc allocator setting so tiles reuse freed       ``keep_freed_memory`` (used by the compile
                         memory                                             and the optical check)
@@ -19,6 +22,10 @@ _ENTRIES = {
     "atomic_write_bytes": "atomic",
     "atomic_write_text": "atomic",
     "ensure_dir": "atomic",
+    "published_folder": "atomic",
+    "memory_budget": "budget",
+    "memory_limits": "budget",
+    "parse_memory_size": "budget",
     "progress": "progress",
 }
 __all__ = sorted(_ENTRIES)

@@ -1,0 +1,94 @@
+"""The memory budget (one helper for the readers and the compile) and the compile's admission under a real
+address-space limit (``ulimit -v``): refused up front in one line, never a MemoryError after writing.
+"""
+
+import copy
+import json
+import subprocess
+import sys
+from pathlib import Path
+
+import pytest
+
+from metalay.errors import MetalayError
+from metalay.mask.compile import COMPILE_FIXED_BYTES, compile_memory_bytes
+from metalay.util.budget import memory_budget, memory_limits, parse_memory_size
+
+from conftest import SMALL_DESIGN, write_toml
+
+ROOT = Path(__file__).resolve().parent.parent
+
+
+@pytest.mark.parametrize("text, value", [("4G", 4 * 10 ** 9), ("4GB", 4 * 10 ** 9), ("4GiB", 4 << 30),
+                                         ("512M", 512 * 10 ** 6), ("1.5g", 1_500_000_000), ("1e9", 10 ** 9),
+                                         ("123", 123), ("64KiB", 65536)])
+def test_sizes(text, value):
+    # Source: IEC 80000-13 (binary prefixes Ki, Mi, Gi = 2^10, 2^20, 2^30; SI prefixes k, M, G = 10^3, 10^6, 10^9)
+    assert parse_memory_size(text) == value
+
+
+@pytest.mark.parametrize("text", ["", "lots", "-1G", "0", "4 XB", "G"])
+def test_bad_sizes_name_the_allowed_forms(text):
+    with pytest.raises(MetalayError, match="allowed: a positive size"):
+        parse_memory_size(text)
+
+
+_CHILD = r"""
+import json, resource, sys
+cap = int(sys.argv[1])
+resource.setrlimit(resource.RLIMIT_AS, (cap, cap))
+from metalay.util.budget import memory_budget, memory_limits
+lim = memory_limits()
+print(json.dumps({"as": lim.address_space_bytes, "binding": lim.binding, "budget": memory_budget(),
+                  "explicit": memory_budget(12345)}))
+"""
+
+
+def test_address_space_limit_is_seen_and_binds():
+    cap = 3 << 30
+    out = subprocess.run([sys.executable, "-c", _CHILD, str(cap)], capture_output=True, text=True, check=True)
+    got = json.loads(out.stdout)
+    assert 0 < got["as"] < cap and got["binding"].startswith("address-space limit")
+    assert got["budget"] == got["as"] // 2 and got["explicit"] == 12345
+    here = memory_limits()
+    assert here.least_bytes > 0 and memory_budget() <= here.least_bytes
+
+
+def test_admission_estimate_is_the_largest_stage():
+    n = 1e7
+    plain = compile_memory_bytes(n, need_groups=False)
+    grouped = compile_memory_bytes(n, need_groups=True)
+    checked = compile_memory_bytes(n, need_groups=True, check_bytes_per_site=300.0)
+    assert plain["total"] == COMPILE_FIXED_BYTES + plain["layout"]
+    assert grouped["total"] == COMPILE_FIXED_BYTES + grouped["layout"] + grouped["grouped"] > plain["total"]
+    assert checked["total"] == COMPILE_FIXED_BYTES + 300 * 10 ** 7  # checks dominate: not added to the layout
+
+
+_CAPPED = r"""
+import resource, sys
+cap = int(sys.argv[1])
+resource.setrlimit(resource.RLIMIT_AS, (cap, cap))
+from metalay.cli import main
+sys.exit(main(sys.argv[2:]))
+"""
+
+
+def test_capped_compile_is_refused_up_front_or_runs_to_the_end(tmp_path):
+    cap = 2 << 30  # ulimit -v 2097152
+    big = copy.deepcopy(SMALL_DESIGN)
+    big["aperture"]["diameter_um"] = 1500.0  # 1.7e7 sites: several GB with the checks
+    big["checks"] = {"rules": True, "optics": True}
+    small = copy.deepcopy(big)
+    small["aperture"]["diameter_um"] = 30.0
+    for name, data, code in (("big", big, 2), ("small", small, 0)):
+        design = write_toml(tmp_path / f"{name}.toml", data)
+        proc = subprocess.run([sys.executable, "-c", _CAPPED, str(cap), "compile", str(design), "-o",
+                               str(tmp_path / name), "--quiet"], capture_output=True, text=True, timeout=600,
+                              cwd=ROOT)
+        assert proc.returncode == code, proc.stderr[-3000:]
+        if code:
+            err = proc.stderr.strip()
+            assert "\n" not in err and "address-space limit" in err and "--no-checks" in err, err
+            assert not (tmp_path / name).exists()
+        else:
+            assert (tmp_path / name / "manifest.json").is_file()
