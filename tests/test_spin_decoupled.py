@@ -354,12 +354,12 @@ def test_chosen_cells_against_grcwa(name):
     #     pixel edges fall on the fin edges).
     # (2) The library's values (Li's rules, converged per point) are the limit grcwa moves towards: grcwa's
     #     phases converge slowly for fields across a narrow high-index fin (docs/rcwa.md; measured-facts.md).
-    #     Measured (retardance, grcwa at 7x7 / 11x11 / 15x15 harmonics against the library): TiO2 fins at 532 nm
-    #     10.0 / 4.5 / 4.6 deg and 8.8 / 7.7 / 3.2 deg; a-Si fins at 1550 nm 12.8 / 9.3 / 6.3 deg and 0.3 / 3.1 /
-    #     1.7 deg (grcwa wobbles by up to 3 deg per step). So at 11x11: retardance within 12 deg, and closer than at
-    #     7x7 wherever it was more than 4 deg away; the conversion-phase difference between the two cells (what
-    #     sets the written phase) within 3 deg (measured 0.7 and 0.4 deg) and the amplitude ratio within 0.02
-    #     (measured 1.4e-3 and 3e-4).
+    #     Measured (retardance error against the library, grcwa at 7x7 / 11x11 harmonics): TiO2 fin-220x100 and
+    #     fin-290x120 at 532 nm 10.0 / 4.5 and 8.8 / 7.7 deg; a-Si fin-400x220 and fin-560x120 at 1550 nm 13.5 / 8.5
+    #     and 0.3 / 3.7 deg (grcwa wobbles by up to 3 deg per step). So at 11x11: retardance within 12 deg, and closer
+    #     than at 7x7 wherever it was more than 4 deg away; the conversion-phase difference between the two cells
+    #     (what sets the written phase) within 3 deg (measured 0.7 and 1.0 deg) and the amplitude ratio within 0.02
+    #     (measured 1.3e-3 and 7e-4).
     lib = load_library(name)
     cells = [lib.cells[0], lib.cells[-1]]
     tl, ts = lib.response_at(lib.design_wavelength_nm)

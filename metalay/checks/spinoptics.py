@@ -209,6 +209,7 @@ def check_spin_optics(mask_path, library, design, *, out_dir=None,
         images.update(_spin_images(imgs, sigma))
         notes.extend(f"input spin {sigma:+d}: {n}" for n in spin_notes)
         converted[sigma] = ev.fields.converted
+        del ev  # one spin's near and far fields at a time (the memory admission counts one evaluation)
     figures = {"spin_decoupled": True, "spins": spins,
                "target_crosstalk": target_overlaps(converted, xs, ys, targets, dec0.target.wavelength_nm)}
     _oam_cross(figures)
