@@ -17,6 +17,8 @@ module          stage                                                           
                 spots, crosstalk, lens; one evaluation path shared with the studies         ``evaluate_elements``
 ``optics_stream.py`` optical check of a mask too large to hold: spot far fields from block    ``check_optics_streamed``
                 sums accumulated tile by tile, with a derived error bound
+``spinoptics.py`` optical check of a spin-decoupled mask: each input spin against its own  ``check_spin_optics``
+                target, crosstalk between the two targets, figures for both
 ``plots.py``    deterministic PNG figures                                                   ``png_bytes``
 ``report.py``   the single-page HTML report                                                 ``render_html``
 ``steps.py``    the checks a compile runs, as ``MaskCheck`` steps                           ``default_checks``
@@ -43,6 +45,7 @@ _ENTRIES = {
     "OpticsOptions": "optics",
     "evaluate_elements": "optics",
     "target_from_design": "optics",
+    "check_spin_optics": "spinoptics",
     "render_html": "report",
     "default_checks": "steps",
 }

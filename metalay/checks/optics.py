@@ -1692,6 +1692,10 @@ def check_optics(mask_path, library, *, design=None, target: OpticsTarget | None
     """
     from metalay.cells.library import CellLibrary, load_library
 
+    if getattr(design, "spin_decoupled", False):  # a phase per input spin: both spins, each against its target
+        from metalay.checks.spinoptics import check_spin_optics
+
+        return check_spin_optics(mask_path, library, design, out_dir=out_dir, options=options)
     opt = options
     t_all = time.perf_counter()
     keep_freed_memory()

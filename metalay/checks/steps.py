@@ -171,6 +171,10 @@ def run_optics_on_written(written: WrittenMask) -> dict:
     """The quick optical check of the mask just written (:func:`metalay.checks.optics.compile_check`)."""
     from metalay.checks import optics  # imported when the step runs: it pulls in the FFT and plotting stack
 
+    if getattr(written.design, "spin_decoupled", False):  # a phase per input spin: both spins are checked
+        from metalay.checks.spinoptics import compile_spin_check
+
+        return compile_spin_check(written.path, written.library, written.design)
     layer = written.design.mask.layer("structures")
     if whole_mask_fits(written.path, [layer], OPTICS_BYTES_PER_SITE, written.max_memory_bytes):
         d = optics.compile_check(written.path, written.library, written.design)

@@ -104,32 +104,16 @@ def run(args) -> int:
     res = check_optics(args.mask, library, design=design, out_dir=out, options=options)
     if not args.quiet:
         f = res.figures
-        b = f["power_budget"]
-        print(f"illumination: {f['illumination']['in_words']} ({f['illumination']['chosen_by']})")
-        print(f"sites decoded: {f['decode']['sites']:,} (unmatched {f['decode']['unmatched']}, off-lattice "
-              f"{f['decode']['off_lattice']}, duplicates {f['decode']['duplicates']})")
-        print(f"power: converted {b['converted']:.4f}, leakage {b['leakage']:.4f}, not in zeroth order "
-              f"{b['not_in_zeroth_order']:.4f} (fractions of incident)")
-        if "designed_spot_efficiency" in f:
-            pos = f["designed_spot_position"]
-            print(f"designed spot: {f['designed_spot_efficiency']:.4f} of incident at {pos['deflection_deg']:.3f} deg")
-        if "brightest_direction" in f:
-            print(f"brightest far-field direction: {f['brightest_direction']['angle_deg']:.3f} deg")
-        if "oam" in f:
-            print(f"OAM purity of l = {f['oam']['design_charge']}: {f['oam']['purity']:.5f}")
-        if "fringe_reading" in f:
-            r = f["fringe_reading"]
-            read = r["charge"] if r["status"] == "read" else "unreadable (the loops disagree)"
-            print(f"charge read from the interferogram: {read} (design {r['design_charge']})")
-        if "crosstalk" in f:
-            ct = f["crosstalk"]
-            print(f"worst channel isolation: {ct['worst_isolation_db']:.2f} dB, channel powers within "
-                  f"{ct['power_spread_db']:.2f} dB ({ct['method']})")
-        if "lens" in f:
-            lm = f["lens"]
-            strehl = "n/a" if lm["strehl"] is None else f"{lm['strehl']:.4f}"
-            print(f"focal spot FWHM {lm['fwhm_x_um']:.3f} x {lm['fwhm_y_um']:.3f} um (Airy {lm['fwhm_airy_um']:.3f}), "
-                  f"Strehl {strehl}, focusing efficiency {lm['focusing_efficiency']:.4f}")
+        if "spins" in f:  # a design with a phase per input spin: each spin against its own target
+            for key, figs in f["spins"].items():
+                print(f"input spin {key}:")
+                _print_figures(figs, indent="  ")
+            ct = f["target_crosstalk"]
+            print("isolation from the other spin's target: " + ", ".join(
+                f"spin {k} {ct['isolation_db'][k]:.2f} dB (ideal targets {ct['ideal_isolation_db'][k]:.2f} dB)"
+                for k in ct["isolation_db"]))
+        else:
+            _print_figures(f)
         v = f["verdicts"]
         print(f"verdict: {v['verdict'].upper()} ({v['summary']})")
         for note in res.notes:
@@ -166,3 +150,34 @@ def _run_streamed(args, library, design, out: Path) -> int:
         print(f"output folder: {out}")
         print(SAFETY_NOTE)
     return 0
+
+
+def _print_figures(f: dict, *, indent: str = "") -> None:
+    """The figures of one input polarisation, one line each."""
+    b = f["power_budget"]
+    print(f"{indent}illumination: {f['illumination']['in_words']} ({f['illumination']['chosen_by']})")
+    print(f"{indent}sites decoded: {f['decode']['sites']:,} (unmatched {f['decode']['unmatched']}, off-lattice "
+          f"{f['decode']['off_lattice']}, duplicates {f['decode']['duplicates']})")
+    print(f"{indent}power: converted {b['converted']:.4f}, leakage {b['leakage']:.4f}, not in zeroth order "
+          f"{b['not_in_zeroth_order']:.4f} (fractions of incident)")
+    if "designed_spot_efficiency" in f:
+        pos = f["designed_spot_position"]
+        print(f"{indent}designed spot: {f['designed_spot_efficiency']:.4f} of incident at "
+              f"{pos['deflection_deg']:.3f} deg")
+    if "brightest_direction" in f:
+        print(f"{indent}brightest far-field direction: {f['brightest_direction']['angle_deg']:.3f} deg")
+    if "oam" in f:
+        print(f"{indent}OAM purity of l = {f['oam']['design_charge']}: {f['oam']['purity']:.5f}")
+    if "fringe_reading" in f:
+        r = f["fringe_reading"]
+        read = r["charge"] if r["status"] == "read" else "unreadable (the loops disagree)"
+        print(f"{indent}charge read from the interferogram: {read} (design {r['design_charge']})")
+    if "crosstalk" in f:
+        ct = f["crosstalk"]
+        print(f"{indent}worst channel isolation: {ct['worst_isolation_db']:.2f} dB, channel powers within "
+              f"{ct['power_spread_db']:.2f} dB ({ct['method']})")
+    if "lens" in f:
+        lm = f["lens"]
+        strehl = "n/a" if lm["strehl"] is None else f"{lm['strehl']:.4f}"
+        print(f"{indent}focal spot FWHM {lm['fwhm_x_um']:.3f} x {lm['fwhm_y_um']:.3f} um (Airy "
+              f"{lm['fwhm_airy_um']:.3f}), Strehl {strehl}, focusing efficiency {lm['focusing_efficiency']:.4f}")

@@ -4,6 +4,8 @@
 module           stage                                                                    public entry
 ===============  =======================================================================  ========================
 ``mapping.py``   phase -> cell + rotation per site (theta = sigma phi / 2 mod pi)         ``assign_cells``
+``spinmap.py``   two target phases (one per input spin) -> cell + rotation per site          ``assign_spin_cells``
+                 (spin-decoupled libraries)
 ``layout.py``    rotated outlines snapped to the database grid, shape grouping, frame,    ``element_offsets``,
                  label                                                                    ``group_shapes``
 ``process.py``   bias, tone inversion (band by band, hole-free pieces), write fields,     ``bias_outline_nm``,
@@ -26,6 +28,7 @@ from metalay.util._lazy import lazy_entries
 
 _ENTRIES = {
     "assign_cells": "mapping",
+    "assign_spin_cells": "spinmap",
     "element_offsets": "layout",
     "group_shapes": "layout",
     "bias_outline_nm": "process",

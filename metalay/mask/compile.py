@@ -66,6 +66,7 @@ from metalay.mask.process import (
     frame_region_db,
     shift_phase_error_rad,
 )
+from metalay.mask.spinmap import assign_spin_cells
 from metalay.mask.steps import MaskCheck, WrittenMask
 from metalay.util._memory import keep_freed_memory
 from metalay.util.atomic import atomic_write_text, pause_point, published_folder
@@ -330,14 +331,16 @@ class _Plan:
 def _cells_and_outlines(design: Design, library: CellLibrary) -> tuple[list, list]:
     """Cell ids the design uses and their biased outlines (nm, rotation 0)."""
     mask = design.mask
+    _check_spin_library(design, library)
     if library.phase_mechanism == "geometric":
         cell_ids = [mask.cell or library.cells[0].id]
         library.cell_index(cell_ids[0])
     else:
         cell_ids = [c.id for c in library.cells]
+        kind = "propagation-phase" if library.phase_mechanism == "propagation" else "spin-decoupled"
         if mask.cell is not None:
             raise DesignError(f"{design.source_path}: key 'mask.cell' = {mask.cell!r}: not allowed with the "
-                              f"propagation-phase library {library.name!r} (it chooses cells by phase)")
+                              f"{kind} library {library.name!r} (it chooses cells by phase)")
         if mask.hierarchy == "levels":
             raise DesignError(f"{design.source_path}: key 'mask.hierarchy' = 'levels': only for geometric-phase "
                               "libraries (allowed here: 'flat')")
@@ -345,6 +348,19 @@ def _cells_and_outlines(design: Design, library: CellLibrary) -> tuple[list, lis
                                 corner=mask.bias_corners, where=design.source_path)
                 for c in cell_ids]
     return cell_ids, outlines
+
+
+def _check_spin_library(design: Design, library: CellLibrary) -> None:
+    """A design with a phase per input spin needs a spin_decoupled library, and such a library needs one."""
+    spin_lib = library.phase_mechanism == "spin_decoupled"
+    if design.spin_decoupled and not spin_lib:
+        raise DesignError(f"{design.source_path}: key 'design.library' = {design.library!r}: a design with "
+                          "[[phase_spin_plus]] and [[phase_spin_minus]] needs a spin_decoupled library (bundled: "
+                          f"tio2-decoupled-532, asi-decoupled-1550); {library.name!r} is {library.phase_mechanism}")
+    if spin_lib and not design.spin_decoupled:
+        raise DesignError(f"{design.source_path}: key 'design.library' = {design.library!r}: a spin_decoupled "
+                          "library gives each input spin its own phase; give [[phase_spin_plus]] and "
+                          "[[phase_spin_minus]] instead of [[phase]] and design.input_spin")
 
 
 def _datatype_table(design: Design, cell_ids: list) -> tuple[list, np.ndarray]:
@@ -435,6 +451,8 @@ class _Totals:
                                                      "kept_straddling": 0})
     worst_shift_nm: float = 0.0
     worst_shift_phase: float = 0.0
+    spin_quant: dict = field(default_factory=lambda: {1: 0.0, -1: 0.0})  # spin-decoupled: worst error per spin
+    cell_phase_err: float = 0.0                                          # spin-decoupled: common cell-set error
     comp: dict = field(default_factory=lambda: {"polygons": 0, "max_vertices": 0, "area_db2": 0.0,
                                                 "target_area_db2": 0.0, "xor_db2": 0.0, "xor_bound_db2": 0.0,
                                                 "bands_verified": 0})
@@ -444,6 +462,8 @@ class _Totals:
         self.per_cell += tile.per_cell
         self.worst_snap = max(self.worst_snap, tile.worst_snap)
         self.quant_err = max(self.quant_err, tile.quant_err)
+        self.spin_quant = {k: max(v, tile.spin_quant[k]) for k, v in self.spin_quant.items()}
+        self.cell_phase_err = max(self.cell_phase_err, tile.cell_phase_err)
         self.alias_hits += tile.alias_hits
         self.alias_total += tile.alias_total
         self.alias_r = [min(self.alias_r[0], tile.alias_r[0]), max(self.alias_r[1], tile.alias_r[1])]
@@ -555,8 +575,13 @@ def _writing_verdict(plan: _Plan, totals: _Totals) -> dict:
     """Verdicts of the writing itself: snapping and quantisation errors, elements dropped or shifted at write-field
     edges (thresholds from the design's ``[checks.limits]``, :mod:`metalay.design.limits`)."""
     limits = plan.design.checks.limits
-    items = [judge(math.degrees(totals.worst_snap), limits.get("snapping_phase_error_deg")),
-             judge(math.degrees(totals.quant_err), limits.get("quantisation_phase_error_deg"))]
+    items = [judge(math.degrees(totals.worst_snap), limits.get("snapping_phase_error_deg"))]
+    if plan.design.spin_decoupled:  # each input spin judged on its own phase error (cell set + rotation levels)
+        for sigma in (1, -1):
+            item = judge(math.degrees(totals.spin_quant[sigma]), limits.get("quantisation_phase_error_deg"))
+            items.append({**item, "spin": sigma, "text": f"spin {sigma:+d}: {item['text']}"})
+    else:
+        items.append(judge(math.degrees(totals.quant_err), limits.get("quantisation_phase_error_deg")))
     if plan.facing.source == "assumed":
         items.append(unmeasured("lit_from", "assumed 'substrate': neither design.lit_from nor the library says"))
     if plan.design.mask.write_field is not None:
@@ -593,6 +618,18 @@ def _verdicts(plan: _Plan, totals: _Totals, checks: dict) -> dict:
             "limits": plan.design.checks.limits.as_dict()}
 
 
+def _per_spin_errors(totals: _Totals) -> dict:
+    """Spin-decoupled designs: the worst phase error of each input spin (cell set and rotation levels, exact per
+    site; snapping, a bound the same for both spins since it is a rotation error) and the common cell-set error."""
+    snap = round(math.degrees(totals.worst_snap), 6)
+    out = {f"{s:+d}": {"worst_quantisation_phase_error_deg": round(math.degrees(totals.spin_quant[s]), 6),
+                       "worst_snapping_phase_error_deg": snap,
+                       "worst_phase_error_bound_deg": round(math.degrees(totals.spin_quant[s]) + snap, 6)}
+           for s in (1, -1)}
+    out["cell_phase_error_deg"] = round(math.degrees(totals.cell_phase_err), 6)
+    return out
+
+
 def _manifest(plan: _Plan, gathered: _Gathered, files: dict, checks: dict, known_hashes: dict) -> dict:
     """Stage 5: the manifest (deterministic: no timings, no dates, file names relative)."""
     design, library, mask = plan.design, plan.library, plan.design.mask
@@ -613,6 +650,8 @@ def _manifest(plan: _Plan, gathered: _Gathered, files: dict, checks: dict, known
         "worst_quantisation_phase_error_deg": round(math.degrees(totals.quant_err), 6),
         "aliased_site_fraction": round(alias_fraction, 6),
     }
+    if design.spin_decoupled:
+        errors["per_spin"] = _per_spin_errors(totals)
     return {
         "metalay_manifest_version": 1,
         "process": _process_block(plan, totals),
@@ -674,6 +713,8 @@ class _TileOut:
     worst_shift_nm: float = 0.0
     worst_shift_phase: float = 0.0
     complement: object = None
+    spin_quant: dict = field(default_factory=lambda: {1: 0.0, -1: 0.0})
+    cell_phase_err: float = 0.0
 
 
 @dataclass
@@ -698,11 +739,14 @@ def _elements(rows, ctx: _TileContext, out: _TileOut, *, active_rows=None) -> _E
     # the target phase is that of the light leaving the element, in its own frame (mirrored when it is lit from the
     # structures in transmission); the rotation sign follows the side (metalay.design.side)
     bx, by = ctx.facing.beam_xy(sites.x_um, sites.y_um)
-    phi = target_phase(design.terms, bx, by, wavelength_nm=design.wavelength_nm, sigma=design.sigma)
     ncell = len(ctx.cell_ids)
-    a = assign_cells(phi, library, sigma=ctx.facing.rotation_sign * design.sigma,
-                     cell_id=ctx.cell_ids[0] if ncell == 1 else None,
-                     rotation_levels=design.mask.rotation_levels, wavelength_nm=design.wavelength_nm)
+    if design.spin_decoupled:
+        a = _assign_spins(bx, by, ctx, out)
+    else:
+        phi = target_phase(design.terms, bx, by, wavelength_nm=design.wavelength_nm, sigma=design.sigma)
+        a = assign_cells(phi, library, sigma=ctx.facing.rotation_sign * design.sigma,
+                         cell_id=ctx.cell_ids[0] if ncell == 1 else None,
+                         rotation_levels=design.mask.rotation_levels, wavelength_nm=design.wavelength_nm)
     centres = snap_centres(sites.x_um, sites.y_um, db_unit_nm)
     active = None if active_rows is None else (sites.j >= active_rows[0]) & (sites.j < active_rows[1])
     out.quant_err = max(out.quant_err, a.quantisation_error_rad)
@@ -728,14 +772,30 @@ def _elements(rows, ctx: _TileContext, out: _TileOut, *, active_rows=None) -> _E
     return _Elements(slot, theta, level, centres, offsets, snapped)
 
 
+def _assign_spins(bx, by, ctx: _TileContext, out: _TileOut):
+    """Spin-decoupled mapping of one tile (:func:`metalay.mask.spinmap.assign_spin_cells`) at the leaving light's
+    coordinates ``(bx, by)``; records the worst error of each spin and the common cell-set error."""
+    design = ctx.design
+    (_, terms_plus), (_, terms_minus) = design.spin_targets()
+    phi_plus = target_phase(terms_plus, bx, by, wavelength_nm=design.wavelength_nm, sigma=1)
+    phi_minus = target_phase(terms_minus, bx, by, wavelength_nm=design.wavelength_nm, sigma=-1)
+    a = assign_spin_cells(phi_plus, phi_minus, ctx.library, wavelength_nm=design.wavelength_nm,
+                          rotation_levels=design.mask.rotation_levels, rotation_sign=ctx.facing.rotation_sign)
+    out.spin_quant = {k: max(v, a.spin_error_rad[k]) for k, v in out.spin_quant.items()}
+    out.cell_phase_err = max(out.cell_phase_err, a.cell_phase_error_rad)
+    return a
+
+
 def _alias_estimate(sites, active, ctx: _TileContext, out: _TileOut) -> None:
     """Count sites where the phase changes by more than pi per period, on a deterministic sub-sample."""
     design = ctx.design
     own = slice(None) if active is None else active
     xs, ys = ctx.facing.beam_xy(sites.x_um[own][::ctx.alias_stride], sites.y_um[own][::ctx.alias_stride])
-    g = phase_gradient(design.terms, xs, ys, wavelength_nm=design.wavelength_nm, sigma=design.sigma,
-                       step_um=design.lattice.period_um * 1e-3)
-    hit = g * design.lattice.period_um > np.pi
+    hit = np.zeros(xs.shape, bool)
+    for sigma, terms in design.spin_targets():  # one phase per input spin the design writes (1 or 2)
+        g = phase_gradient(terms, xs, ys, wavelength_nm=design.wavelength_nm, sigma=sigma,
+                           step_um=design.lattice.period_um * 1e-3)
+        hit |= g * design.lattice.period_um > np.pi
     out.alias_total += int(hit.size)
     if hit.any():
         out.alias_hits += int(hit.sum())
@@ -795,11 +855,12 @@ def _fit_fields(sites, centres, offsets, slot, active, keep, ctx: _TileContext, 
     if moved.size:
         shift_nm = np.hypot(*fit.shift_db[moved].T.astype(np.float64)) * db_unit_nm
         out.worst_shift_nm = max(out.worst_shift_nm, float(shift_nm.max()))
-        gm = phase_gradient(design.terms, *ctx.facing.beam_xy(sites.x_um[moved], sites.y_um[moved]),
-                            wavelength_nm=design.wavelength_nm, sigma=design.sigma,
-                            step_um=design.lattice.period_um * 1e-3)
-        err = shift_phase_error_rad(fit.shift_db[moved], gm, db_unit_nm=db_unit_nm)
-        out.worst_shift_phase = max(out.worst_shift_phase, float(np.max(err, initial=0.0)))
+        for sigma, terms in design.spin_targets():  # one phase per input spin the design writes (1 or 2)
+            gm = phase_gradient(terms, *ctx.facing.beam_xy(sites.x_um[moved], sites.y_um[moved]),
+                                wavelength_nm=design.wavelength_nm, sigma=sigma,
+                                step_um=design.lattice.period_um * 1e-3)
+            err = shift_phase_error_rad(fit.shift_db[moved], gm, db_unit_nm=db_unit_nm)
+            out.worst_shift_phase = max(out.worst_shift_phase, float(np.max(err, initial=0.0)))
     return fit.centres_db, fit.keep
 
 
@@ -1024,6 +1085,12 @@ def _summary(design: Design, library: CellLibrary, manifest: dict, files: dict) 
         f"worst phase error: snapping {e['worst_snapping_phase_error_deg']:.3f} deg, quantisation "
         f"{e['worst_quantisation_phase_error_deg']:.3f} deg",
     ]
+    if "per_spin" in e:
+        ps = e["per_spin"]
+        per = ", ".join(f"spin {k} {ps[k]['worst_quantisation_phase_error_deg']:.3f} + "
+                        f"{ps[k]['worst_snapping_phase_error_deg']:.3f} deg" for k in ("+1", "-1"))
+        lines.append(f"per input spin (cell set + rotation levels, snapping): {per}; common cell-set error "
+                     f"{ps['cell_phase_error_deg']:.3f} deg")
     for info in manifest["files"].values():
         lines.append(f"wrote {info['name']} ({info['bytes'] / 1e6:.2f} MB, sha256 {info['sha256'][:12]})")
     for records in manifest.get("derived", {}).values():

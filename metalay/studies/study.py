@@ -585,6 +585,13 @@ def _json_bytes(obj) -> bytes:
     return (json.dumps(optics.json_ready(obj), sort_keys=True, indent=2, allow_nan=False) + "\n").encode()
 
 
+def _refuse_spin_decoupled(design, study: str) -> None:
+    """The studies evaluate one input spin: a spin-decoupled design (a phase per spin) is refused in one line."""
+    if getattr(design, "spin_decoupled", False):
+        raise StudyError(f"{design.source_path}: key 'phase_spin_plus': the {study} study evaluates one input spin; "
+                         "a spin-decoupled design is checked for both spins by metalay compile / metalay optics")
+
+
 def compare_libraries(design, libraries, out_dir, *, adapt: bool = True, workers: int | None = None,
                       show_progress: bool | None = None) -> CompareResult:
     """Compile ``design`` with each library, check rules and optics on each mask, tabulate and plot.
@@ -614,6 +621,7 @@ def compare_libraries(design, libraries, out_dir, *, adapt: bool = True, workers
     from metalay.util.atomic import atomic_write_bytes, ensure_dir
     from metalay.util.progress import progress
 
+    _refuse_spin_decoupled(design, "compare")
     libs = list(libraries)
     if not libs:
         raise StudyError("compare: give at least one library (--library NAME_OR_PATH)")
@@ -993,6 +1001,7 @@ def tolerance_study(design, out_dir=None, *, settings: ToleranceSettings = Toler
     from metalay.cells.library import load_library
     from metalay.util.progress import progress
 
+    _refuse_spin_decoupled(design, "tolerance")
     settings.validate()
     n_workers = max(1, int(workers or os.cpu_count() or 1))
     notes = [EFFICIENCY_NOTE]
