@@ -8,10 +8,11 @@ bytes per site, the rest its fixed part:
     .venv/bin/python bench/bench_admission.py                  # 1e6 and 4e6 sites (a few minutes)
     .venv/bin/python bench/bench_admission.py --sites 2e5 1.2e6  # quicker (tiles not yet saturated: larger slopes)
 
-Configurations: ``layout`` (flat GDSII only, no checks: streamed tile by tile), ``grouped`` (GDSII + OASIS through
-gdstk: every site held until the end), ``levels`` (hierarchy with one master cell per rotation level), ``rules``
-(flat GDSII + the design-rule check) and ``optics`` (flat GDSII + the optical check). The constants in
-``metalay/mask/compile.py`` (``LAYOUT_BYTES_PER_SITE``, ``GROUPED_BYTES_PER_SITE``, ``COMPILE_FIXED_BYTES``) and
+Configurations: ``layout`` (flat GDSII only, no checks: streamed tile by tile), ``grouped`` (GDSII + OASIS, both
+streamed since issue 15; before, gdstk held every site until the end), ``levels`` (hierarchy with one master cell
+per rotation level), ``rules`` (flat GDSII + the design-rule check) and ``optics`` (flat GDSII + the optical check).
+The constants in ``metalay/mask/compile.py`` (``LAYOUT_BYTES_PER_SITE``, ``COMPILE_FIXED_BYTES``; the plateau
+``LAYOUT_PLATEAU_SITES`` comes from ``bench/bench_scale.py``) and
 ``metalay/checks/steps.py`` (``RULES_BYTES_PER_SITE``, ``OPTICS_BYTES_PER_SITE``) come from this script; the
 figures last measured are in DEVELOPERS.md.
 """

@@ -47,7 +47,8 @@ def prepare_design(design: Design) -> tuple[Design, dict]:
 def compile_design(design: Design, out_dir: str | Path, *, run_rules: bool | None = None,
                    run_optics: bool | None = None, show_progress: bool | None = None,
                    sites_per_tile: int = SITES_PER_TILE, max_memory_bytes: int | None = None,
-                   report: bool = True) -> CompileResult:
+                   report: bool = True, workers: int | None = None,
+                   scheduler: str | None = None) -> CompileResult:
     """Compile ``design`` into mask files, a manifest and the standard checks in ``out_dir`` (all or nothing).
 
     Parameters
@@ -66,6 +67,10 @@ def compile_design(design: Design, out_dir: str | Path, *, run_rules: bool | Non
         Memory budget for the admission check (default: half of what this process may use).
     report : bool
         Write ``report.html`` (:func:`metalay.checks.steps.compile_report_step`) after the manifest.
+    workers : int, optional
+        Run the tiles on a local Dask cluster of this many worker processes (byte-identical output).
+    scheduler : str, optional
+        Run the tiles on the existing Dask cluster at this address (its workers must see ``out_dir``).
 
     Returns
     -------
@@ -75,4 +80,5 @@ def compile_design(design: Design, out_dir: str | Path, *, run_rules: bool | Non
     design, annotations = prepare_design(design)
     return compile_mask(design, out_dir, checks=default_checks(rules=run_rules, optics=run_optics),
                         show_progress=show_progress, sites_per_tile=sites_per_tile, annotations=annotations,
-                        max_memory_bytes=max_memory_bytes, report=compile_report_step if report else None)
+                        max_memory_bytes=max_memory_bytes, report=compile_report_step if report else None,
+                        workers=workers, scheduler=scheduler)

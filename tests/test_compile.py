@@ -189,13 +189,19 @@ def test_too_large_for_memory_or_disk_is_refused_before_writing(tmp_path, small_
     from metalay.cli import main
 
     big = copy.deepcopy(small_design_dict)
-    big["aperture"]["diameter_um"] = 2000.0  # about 3e7 sites: 1.95 GB with OASIS, 1.35 GB with GDSII only
+    big["aperture"]["diameter_um"] = 2000.0  # about 3e7 sites: 0.46 GB + 30 B x 1e7 (plateau) = 0.76 GB
     design = write_toml(tmp_path / "d.toml", big)
     t0 = time.perf_counter()
-    assert main(["compile", str(design), "-o", str(tmp_path / "o1"), "--quiet", "--max-memory", "1.5G"]) == 2
+    assert main(["compile", str(design), "-o", str(tmp_path / "o1"), "--quiet", "--max-memory", "700M"]) == 2
     assert time.perf_counter() - t0 < 5  # Common practice (no source): refused up front, not after the tiles
     err = capsys.readouterr().err.strip()
-    assert "mask.formats" in err and "formats = ['gds']" in err and "--max-memory" in err and "\n" not in err
+    assert "700 MB" in err and "760 MB" in err and "--max-memory" in err and "\n" not in err
+    # with the checks on, the hint names turning them off (the layout alone fits 2 GB)
+    big["checks"] = {"rules": True, "optics": False}
+    design = write_toml(tmp_path / "d.toml", big)
+    assert main(["compile", str(design), "-o", str(tmp_path / "o1"), "--quiet", "--max-memory", "2G"]) == 2
+    err = capsys.readouterr().err.strip()
+    assert "--no-checks" in err and "\n" not in err
     assert not (tmp_path / "o1").exists()
     small = write_toml(tmp_path / "s.toml", small_design_dict)
     usage = namedtuple("usage", "total used free")

@@ -256,3 +256,68 @@ def test_tolerance_result_prints_readably(setup):
     text = str(res)
     assert text.startswith("tolerance study: 3 samples, seed 3") and "purity" in text
     assert repr(res).startswith("ToleranceResult(samples=3") and len(repr(res)) < 400
+
+
+# ---------------------------------------------------------------------------------------------------------------
+# Every sample carries the nominal check's full metric set and verdict
+# ---------------------------------------------------------------------------------------------------------------
+
+def _study_model(setup, raw_changes, name):
+    raw = copy.deepcopy(setup["raw"])
+    raw.update(raw_changes)
+    design = parse_design(raw, where=str(setup["root"] / f"{name}.toml"))
+    res = compile_design(design, setup["root"] / name, show_progress=False, run_rules=False, run_optics=False)
+    return design, res.files["gds"]
+
+
+def test_zero_perturbation_sample_has_the_checks_fringe_reading_and_verdict(setup):
+    # equivalence check: a sample without errors is judged exactly as the nominal optical check of the mask
+    design, mask = setup["design"], setup["mask"]
+    chk = optics.check_optics(mask, load_library(setup["pa"]), design=design,
+                              options=optics.OpticsOptions(max_side=1024, pad_factor=2.0, make_plots=False))
+    res = study.tolerance_study(design, settings=study.ToleranceSettings(samples=2, seed=3), mask=mask, workers=1)
+    fr = chk.figures["fringe_reading"]
+    assert fr["status"] == "read" and fr["charge"] == 3  # the design's charge (vortex of charge 3)
+    for s in (res.nominal, *res.samples):
+        assert s["fringe_charge"] == fr["charge"]
+        assert s["verdict"] == chk.figures["verdicts"]["verdict"]
+    assert res.statistics["fringe_charge"]["counts"] == {"3": 2}
+    assert res.statistics["verdict"]["counts"] == {chk.figures["verdicts"]["verdict"]: 2}
+
+
+def test_multiplexed_samples_carry_isolation_and_channel_purity(setup):
+    # equivalence check against the nominal optical check of a two-channel mask
+    design, mask = _study_model(setup, {"phase": [{"kind": "multiplex", "channels": [
+        {"charge": -1, "angle_deg": 4.0, "azimuth_deg": 0.0}, {"charge": 2, "angle_deg": 4.0, "azimuth_deg": 180.0}]}]},
+        "mux")
+    chk = optics.check_optics(mask, load_library(setup["pa"]), design=design,
+                              options=optics.OpticsOptions(max_side=1024, pad_factor=2.0, make_plots=False))
+    ref_iso = chk.figures["crosstalk"]["worst_isolation_db"]
+    ref_pur = min(c["purity"] for c in chk.figures["oam_channels"]["channels"])
+    res = study.tolerance_study(design, settings=study.ToleranceSettings(samples=4, seed=5, rotation_sd_deg=8.0),
+                                mask=mask, workers=1)
+    assert res.nominal["worst_isolation_db"] == pytest.approx(ref_iso, rel=1e-9)
+    assert res.nominal["worst_channel_purity"] == pytest.approx(ref_pur, rel=1e-9)
+    assert res.nominal["verdict"] == chk.figures["verdicts"]["verdict"]
+    iso = [s["worst_isolation_db"] for s in res.samples]
+    assert all(v is not None for v in iso) and len(set(iso)) == len(iso)  # each sample measured, not copied
+    st = res.statistics["worst_isolation_db"]
+    assert st["p5"] <= st["median"] <= st["p95"]
+
+
+def test_lens_samples_carry_strehl_and_spot_size_and_fail_when_errors_are_large(setup):
+    design, mask = _study_model(setup, {"phase": [{"kind": "lens", "focal_length_um": 150.0}]}, "lens")
+    chk = optics.check_optics(mask, load_library(setup["pa"]), design=design,
+                              options=optics.OpticsOptions(max_side=1024, pad_factor=2.0, make_plots=False))
+    lens = chk.figures["lens"]
+    res = study.tolerance_study(design, settings=study.ToleranceSettings(samples=3, seed=11, rotation_sd_deg=40.0),
+                                mask=mask, workers=1)
+    assert res.nominal["strehl"] == pytest.approx(lens["strehl"], rel=1e-9)
+    assert res.nominal["spot_fwhm_um"] == pytest.approx(0.5 * (lens["fwhm_x_um"] + lens["fwhm_y_um"]), rel=1e-9)
+    # Source: Ruze 1966, Proc. IEEE 54, 633 - random phase errors of s = 2 x 40 deg = 1.40 rad keep
+    # exp(-s^2) = 0.14 of the coherent power, so the Strehl ratio falls far below the default fail threshold 0.5
+    assert res.nominal["verdict_items"]["strehl"] == "pass"
+    for s in res.samples:
+        assert s["strehl"] < 0.5 * lens["strehl"]
+        assert s["verdict_items"]["strehl"] == "fail" and s["verdict"] == "fail"
+    assert res.statistics["verdict"]["fail_fraction"] == 1.0

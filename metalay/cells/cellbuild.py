@@ -39,6 +39,7 @@ from pathlib import Path
 
 import numpy as np
 
+from metalay.cells.decoupled import level_report
 from metalay.cells.materials import get_material
 from metalay.cells.rcwa import (
     DEFAULT_TOLERANCE_ABS_T,
@@ -54,8 +55,8 @@ from metalay.validate import TomlTable, load_toml
 
 __all__ = ["BuildSpec", "SweepResult", "load_build_spec", "sweep", "converge_points",
            "choose_sweep_harmonics", "ENERGY_TOLERANCE", "rotation_check", "pick_geometric",
-           "pick_propagation", "build_library", "import_responses", "import_template", "IMPORT_TEMPLATE",
-           "plot_library", "library_table"]
+           "pick_propagation", "pick_decoupled", "build_library", "import_responses", "import_template",
+           "IMPORT_TEMPLATE", "plot_library", "library_table"]
 
 _DIMS = {"nanofin": ("length_nm", "width_nm"), "slot": ("length_nm", "width_nm"),
          "elliptic_pillar": ("major_nm", "minor_nm"),
@@ -95,6 +96,7 @@ class BuildSpec:
     sweep_max_harmonics: int  # cap of the sweep's truncation (the chosen cells are converged per point after)
     band_half_width: float
     band_count: int
+    retardance_tolerance_deg: float = 10.0  # spin_decoupled: largest |arg(t_long / t_short) - pi| of a chosen cell
 
 
 def _text(t: TomlTable, key: str, default=_REQUIRED) -> str:
@@ -170,7 +172,7 @@ def load_build_spec(path) -> BuildSpec:
     if not name or any(c in name for c in "/\\ ") or name.startswith("."):
         lib.fail("name", name, "expected non-empty text, no spaces or slashes")
     mode = lib.string("mode", options=("transmission", "reflection"))
-    mech = lib.string("phase_mechanism", options=("geometric", "propagation"))
+    mech = lib.string("phase_mechanism", options=("geometric", "propagation", "spin_decoupled"))
     lattice = lib.string("lattice", "square")
     if lattice != "square":
         lib.fail("lattice", lattice, "allowed: 'square' (the solver handles rectangular lattices only)")
@@ -190,12 +192,18 @@ def load_build_spec(path) -> BuildSpec:
             raise CellBuildError(f"{where}: key '{key}': {exc}") from exc
     rules = _rules(ru)
     kind = sw.string("kind", options=tuple(_DIMS))
-    if mech == "geometric" and kind == "round_pillar":
-        sw.fail("kind", kind, "allowed: an anisotropic kind for geometric phase ('nanofin', 'elliptic_pillar')")
+    if mech in ("geometric", "spin_decoupled") and kind not in ("nanofin", "elliptic_pillar"):
+        sw.fail("kind", kind, f"allowed: an anisotropic kind for {mech} phase ('nanofin', 'elliptic_pillar')")
     dims = {d: _values(sw, d) for d in _DIMS[kind]}
     patterned = next(lay for lay in layers if lay["patterned"])
     heights = tuple(_values(sw, "height_nm")) if sw.has("height_nm") else (patterned["thickness_nm"],)
+    if mech == "spin_decoupled" and len(heights) != 1:
+        sw.fail("height_nm", [float(h) for h in heights], "a spin_decoupled set needs one height (all its cells share "
+                "the film)")
     levels = int(_pos(sw, "levels", 8.0, hi=64)) if mech == "propagation" else 1
+    if mech == "spin_decoupled":
+        levels = int(sw.number("levels", 8, lo=2, hi=64, integer=True))
+    ret_tol = float(sw.number("retardance_tolerance_deg", 10.0, lo=0.5, hi=45.0)) if mech == "spin_decoupled" else 10.0
     if so.has("convergence_extra"):
         so.fail("convergence_extra", so.raw("convergence_extra"), "no longer used: convergence is checked at "
                 "every tabulated wavelength against tolerance_abs_t and tolerance_phase_deg")
@@ -215,7 +223,7 @@ def load_build_spec(path) -> BuildSpec:
                      _text(lib, "notes", ""), inc, ext,
                      tuple(layers), rules, kind, dims, heights, levels, harmonics, n_stairs, tol_abs, tol_phase,
                      max_h, sweep_max, half,
-                     count)
+                     count, ret_tol)
 
 
 # ----------------------------------------------------------------------------------------------------------------
@@ -482,10 +490,14 @@ def build_library(spec: BuildSpec, *, progress=None):
     n_total = int(np.prod([spec.dims[d].size for d in names])) * len(spec.heights_nm)
     cb = progress(n_total) if progress is not None else None
     sw = sweep(spec, progress=cb)
+    spin_levels = None
     if spec.phase_mechanism == "geometric":
         picks = np.array([pick_geometric(sw)])
-    else:
+    elif spec.phase_mechanism == "propagation":
         picks = pick_propagation(sw, spec.levels)
+    else:
+        spin_levels, sw = pick_decoupled(spec, sw)
+        picks = spin_levels.distinct
     heights = sw.dims["height_nm"][picks]
     if np.unique(heights).size != 1:
         raise CellBuildError(f"{spec.path}: picked cells have different heights {np.unique(heights)}; "
@@ -538,6 +550,14 @@ def build_library(spec: BuildSpec, *, progress=None):
                  f"{ids[0]} at height {height:g} nm: |t_long| = {abs(tl[0, k]):.4f}, |t_short| = {abs(ts[0, k]):.4f}, "
                  f"phase difference {np.angle(tl[0, k] / ts[0, k], deg=True):.2f} deg, conversion efficiency "
                  f"{ce[0]:.4f} at {wl[k]:g} nm.")
+    elif spin_levels is not None:
+        to_cell = {int(g): ids.index(_cell_id(spec.kind, {d: float(sw.dims[d][g]) for d in names}))
+                   for g in spin_levels.distinct}
+        geoms = np.array(sorted(to_cell, key=to_cell.get))  # sweep index of each library cell, in library order
+        spin_block = level_report(ids, sw.t_long[geoms], sw.t_short[geoms], spin_levels, to_cell,
+                                  retardance_tolerance_rad=np.deg2rad(spec.retardance_tolerance_deg),
+                                  wavelength_nm=spec.design_wavelength_nm)
+        found = _decoupled_found(spin_block, sw, height)
     else:
         ph = np.angle(tl[:, k] / tl[0, k], deg=True) % 360
         found = (f"Solver found: {c} pillars from {sw.t_long.size} rule-passing diameters ({sw.n_candidates} "
@@ -558,10 +578,7 @@ def build_library(spec: BuildSpec, *, progress=None):
               "sweep": {"kind": spec.kind, **{d: [_r(v) for v in spec.dims[d]] for d in names},
                         "height_nm": [_r(v) for v in spec.heights_nm], "candidates": sw.n_candidates,
                         "passed_rules": int(sw.t_long.size),
-                        "criterion": ("max conversion efficiency |(t_long - t_short)/2|^2"
-                                      if spec.phase_mechanism == "geometric" else
-                                      f"{spec.levels} equal phase levels, max of the worst projection "
-                                      "Re(t exp(-i phi_k))")},
+                        "criterion": _criterion(spec)},
               "band": {"relative_half_width": spec.band_half_width, "count": spec.band_count}}
     provenance = {"geometry_source": spec.geometry_source,
                   "responses_source": f"metalay cells build {Path(spec.path).name}",
@@ -579,8 +596,77 @@ def build_library(spec: BuildSpec, *, progress=None):
                       period_nm=spec.period_nm, lattice=spec.lattice, incident_medium=spec.incident_medium,
                       exit_medium=spec.exit_medium if spec.mode == "transmission" else spec.incident_medium,
                       layers=layers, rules=dict(spec.rules), provenance=provenance, cells=cells,
-                      wavelengths_nm=wl, t_long=tl, t_short=ts, power_long=pl, power_short=ps)
+                      wavelengths_nm=wl, t_long=tl, t_short=ts, power_long=pl, power_short=ps,
+                      extra={"spin_decoupled": spin_block} if spin_levels is not None else {})
     return lib, sw
+
+
+def _criterion(spec: BuildSpec) -> str:
+    """How the builder chose the cells, in words (``provenance.solver.sweep.criterion``)."""
+    if spec.phase_mechanism == "geometric":
+        return "max conversion efficiency |(t_long - t_short)/2|^2"
+    if spec.phase_mechanism == "propagation":
+        return f"{spec.levels} equal phase levels, max of the worst projection Re(t exp(-i phi_k))"
+    return (f"{spec.levels} equal levels of the conversion phase arg((t_long - t_short)/2) over 0..2 pi (a cell "
+            "turned by 90 degrees serves its phase + pi), among cells with |arg(t_long / t_short) - pi| <= "
+            f"{spec.retardance_tolerance_deg:g} deg at the design wavelength (converged re-check of every pick), "
+            "max of the worst projection Re(c exp(-i phi_k)), c = (t_long - t_short)/2")
+
+
+def pick_decoupled(spec: BuildSpec, sw: SweepResult, *, max_rounds: int = 24):
+    """Spin-decoupled cells from a coarse sweep, each pick re-solved converged at the design wavelength.
+
+    The levels are picked from the sweep (:func:`metalay.cells.decoupled.pick_spin_levels`); every picked geometry
+    not yet re-checked is solved again with its truncation raised until converged (:func:`converge_points`) and
+    its sweep responses replaced by the converged ones, then the levels are picked again, until every pick has
+    been re-checked (a geometry near a resonance can move far with the truncation and is then dropped by the
+    retardance tolerance).
+
+    Returns
+    -------
+    (SpinLevels, SweepResult)
+        The levels (sweep indices) and the sweep with the re-checked responses.
+
+    Raises
+    ------
+    CellBuildError
+        No geometry within the retardance tolerance, or no settled pick after ``max_rounds`` rounds.
+    """
+    from dataclasses import replace
+
+    from metalay.cells.decoupled import pick_spin_levels
+
+    tl, ts = sw.t_long.copy(), sw.t_short.copy()
+    checked = np.zeros(tl.size, bool)
+    tol = np.deg2rad(spec.retardance_tolerance_deg)
+    for _ in range(max_rounds):
+        chosen = pick_spin_levels(tl, ts, spec.levels, retardance_tolerance_rad=tol)
+        if chosen is None:
+            raise CellBuildError(f"{spec.path}: key 'sweep.retardance_tolerance_deg' = "
+                                 f"{spec.retardance_tolerance_deg:g}: no swept geometry is a half-wave cell within it "
+                                 "at the design wavelength; widen the sweep or the tolerance (allowed 0.5..45)")
+        new = np.array([g for g in chosen.distinct if not checked[g]], dtype=int)
+        if new.size == 0:
+            return chosen, replace(sw, t_long=tl, t_short=ts)
+        dims = {d: sw.dims[d][new] for d in _DIMS[spec.kind]}
+        pts = converge_points(spec, dims, sw.dims["height_nm"][new], spec.design_wavelength_nm, sw.harmonics)
+        tl[new], ts[new] = pts["t_long"], pts["t_short"]
+        checked[new] = True
+    raise CellBuildError(f"{spec.path}: the spin-decoupled pick did not settle after {max_rounds} rounds of converged "
+                         "re-checks; use a finer sweep truncation ([solver] harmonics_x, harmonics_y)")
+
+
+def _decoupled_found(block: dict, sw: SweepResult, height: float) -> str:
+    """The build's one-paragraph result for a spin-decoupled library."""
+    cells = "; ".join(f"{c['cell_id']} conversion phase {c['conversion_phase_deg']:.1f} deg, retardance error "
+                      f"{c['retardance_error_deg']:+.2f} deg, conversion {c['conversion_efficiency']:.4f}, amplitude "
+                      f"{100 * c['amplitude_deviation']:+.2f} % of the mean (levels {c['levels']})"
+                      for c in block["cells"])
+    return (f"Solver found: {len(block['cells'])} half-wave cells for {block['levels']} conversion-phase levels "
+            f"from {sw.t_long.size} rule-passing geometries at height {height:g} nm, converged at "
+            f"{block['wavelength_nm']:g} nm: {cells}. Amplitude spread (max - min)/mean "
+            f"{block['amplitude_spread']:.4f}, worst retardance error {block['worst_retardance_error_deg']:.2f} deg, "
+            f"worst level phase error {block['worst_level_phase_error_deg']:.2f} deg.")
 
 
 #: Largest |R + T - 1| accepted for a lossless stack (the S-matrix solution conserves energy to rounding for
@@ -836,7 +922,7 @@ def plot_library(lib, png_path) -> Path:
     wl = lib.wavelengths_nm
     word = "r" if lib.mode == "reflection" else "t"
     fig, axes = plt.subplots(1, 2, figsize=(10, 4), dpi=100)
-    if lib.phase_mechanism == "geometric":
+    if lib.phase_mechanism in ("geometric", "spin_decoupled"):
         for c, cell in enumerate(lib.cells):
             tl, ts = lib.t_long[c], lib.t_short[c]
             axes[0].plot(wl, np.abs(tl), label=f"|{word}_long| {cell.id}")

@@ -61,7 +61,9 @@ _MODES = ("transmission", "reflection")
 #: Values of a library's ``lit_from`` (the same as the design key ``design.lit_from``).
 LIT_FROM = ("substrate", "structures")
 _OPEN_MEDIA = ("air", "vacuum")
-_MECHANISMS = ("geometric", "propagation")
+_MECHANISMS = ("geometric", "propagation", "spin_decoupled")
+#: Cell kinds a spin-decoupled library may hold (anisotropic: a half-wave cell needs two principal axes).
+_DECOUPLED_KINDS = ("nanofin", "elliptic_pillar")
 _LATTICES = ("square", "hexagonal")
 
 
@@ -334,7 +336,21 @@ def load_library(name_or_path: str | Path) -> CellLibrary:
         digest.update(resp_raw)
         arrays = _parse_responses(resp_raw, str(resp_path), [c.id for c in cells])
         lib = _with(lib, **arrays)
+    if lib.phase_mechanism == "spin_decoupled":
+        _check_decoupled(lib, where)
     return check_physical(_with(lib, sha256=digest.hexdigest()))
+
+
+def _check_decoupled(lib: CellLibrary, where: str) -> None:
+    """A spin-decoupled library needs anisotropic cells and responses (the mapping chooses cells by their
+    conversion phase ``arg((t_long - t_short)/2)``, :mod:`metalay.cells.decoupled`)."""
+    for cell in lib.cells:
+        if cell.kind not in _DECOUPLED_KINDS:
+            raise LibraryError(f"{where}: cell {cell.id!r} has kind {cell.kind!r}; a spin_decoupled library needs "
+                               f"anisotropic cells, one of {list(_DECOUPLED_KINDS)}")
+    if not lib.has_responses:
+        raise LibraryError(f"{where}: a spin_decoupled library needs responses (responses_file): its cells are "
+                           "chosen per site by their conversion phase")
 
 
 _KNOWN_KEYS = {"format", "format_version", "name", "description", "mode", "phase_mechanism", "design_wavelength_nm",

@@ -696,6 +696,49 @@ def _layer_operators(pat, rule: str, b: int, mx: int, my: int, px: float, py: fl
 
 
 def _solve_batch(stack, wavelength_nm, b, mx, my, theta_deg, phi_deg, rules):
+    k = _wavevectors(stack, wavelength_nm, b, mx, my, theta_deg, phi_deg)
+    s11, s21, q_ref, q_trn = _global_smatrix(stack, k, b, mx, my, rules)
+    th, ph, nh, zero = k["th"], k["ph"], k["nh"], k["zero"]
+    kx, ky = k["kx"], k["ky"]
+
+    # incident zeroth-order fields for p and s input
+    cth = np.cos(th)
+    s_vec = np.array([-np.sin(ph), np.cos(ph)])
+    p_tan = np.array([np.cos(ph), np.sin(ph)]) * cth
+    c_inc = np.zeros((b, 2 * nh, 2), dtype=complex)
+    c_inc[:, zero, 0], c_inc[:, nh + zero, 0] = p_tan
+    c_inc[:, zero, 1], c_inc[:, nh + zero, 1] = s_vec
+    c_ref = s11 @ c_inc                                              # (B, 2N, 2) tangential E of reflected orders
+    c_trn = s21 @ c_inc
+    kz_ref = q_ref[:, :nh]
+    kz_trn = q_trn[:, :nh]
+    kz_inc = k["n_sup"] * cth + 0j
+    flux_in = _flux(c_inc[:, zero, :], c_inc[:, nh + zero, :], kx[:, zero, None], ky[:, zero, None],
+                    kz_inc[:, None])                                  # (B, 2)
+    ord_r = -_flux(c_ref[:, :nh, :], c_ref[:, nh:, :], kx[:, :, None], ky[:, :, None],
+                   -kz_ref[:, :, None]) / flux_in[:, None, :]
+    ord_t = _flux(c_trn[:, :nh, :], c_trn[:, nh:, :], kx[:, :, None], ky[:, :, None],
+                  kz_trn[:, :, None]) / flux_in[:, None, :]
+    prop_r = (np.abs(kz_ref.imag) < 1e-9)[:, :, None]
+    prop_t = (np.abs(kz_trn.imag) < 1e-9 * np.maximum(1, np.abs(kz_trn)))[:, :, None] | \
+        (np.abs(k["e_sub"].imag) > 1e-12)[:, None, None]
+    ord_r = np.where(prop_r, ord_r, 0.0)
+    ord_t = np.where(prop_t, ord_t, 0.0)
+    t_j = _zeroth_jones(c_trn, kz_trn, 1.0, k, flux_in)
+    r_j = _zeroth_jones(c_ref, kz_ref, -1.0, k, flux_in)
+    settings = {"method": "RCWA / Fourier modal method, scattering matrices (Rumpf 2011)",
+                "factorization": "; ".join(sorted({_RULE_NAMES[r] for r in rules if r != "uniform"})) or "none",
+                "factorization_per_layer": list(rules),
+                "harmonics_x": mx, "harmonics_y": my, "truncation": "rectangular",
+                "theta_deg": float(theta_deg), "phi_deg": float(phi_deg)}
+    fields = {"t": c_trn, "r": c_ref, "kx": kx, "ky": ky, "kz_t": kz_trn, "kz_r": kz_ref, "flux_in": flux_in,
+              "m": k["m"], "n": k["n"], "prop_t": prop_t[:, :, 0], "prop_r": prop_r[:, :, 0]}
+    return RcwaResult(t_j, r_j, ord_t.sum(axis=1), ord_r.sum(axis=1), np.moveaxis(ord_t, 2, 1),
+                      np.moveaxis(ord_r, 2, 1), (mx, my), settings, fields)
+
+
+def _wavevectors(stack, wavelength_nm, b, mx, my, theta_deg, phi_deg) -> dict:
+    """Normalised in-plane wavevectors of the retained orders (m outer, n inner) and the media of the batch."""
     px, py = float(stack.period_x_nm), float(stack.period_y_nm)
     wl = _as_batch(wavelength_nm, b, float)
     e_sup = _as_batch(stack.eps_superstrate, b)
@@ -710,14 +753,18 @@ def _solve_batch(stack, wavelength_nm, b, mx, my, theta_deg, phi_deg, rules):
     n = np.tile(np.arange(-my, my + 1), 2 * mx + 1)
     kx = kx0[:, None] + m[None, :] * (wl / px)[:, None]
     ky = ky0[:, None] + n[None, :] * (wl / py)[:, None]
-    k0 = 2 * np.pi / wl
-    nh = m.shape[0]
-    zero = int(np.flatnonzero((m == 0) & (n == 0))[0])
+    return {"px": px, "py": py, "wl": wl, "e_sup": e_sup, "e_sub": e_sub, "n_sup": n_sup, "th": th, "ph": ph,
+            "kx0": kx0, "ky0": ky0, "m": m, "n": n, "kx": kx, "ky": ky, "k0": 2 * np.pi / wl, "nh": m.shape[0],
+            "zero": int(np.flatnonzero((m == 0) & (n == 0))[0])}
 
-    e_gap = (1.0 + kx0**2 + ky0**2).astype(complex)
+
+def _global_smatrix(stack, k: dict, b, mx, my, rules):
+    """Global scattering matrix of the stack (``S11``, ``S21``) and the longitudinal wavenumbers of both sides."""
+    kx, ky = k["kx"], k["ky"]
+    e_gap = (1.0 + k["kx0"]**2 + k["ky0"]**2).astype(complex)
     v0b, _ = _uniform_blocks(e_gap, kx, ky)
-    v_ref, q_ref = _uniform_blocks(e_sup, kx, ky)
-    v_trn, q_trn = _uniform_blocks(e_sub, kx, ky)
+    v_ref, q_ref = _uniform_blocks(k["e_sup"], kx, ky)
+    v_trn, q_trn = _uniform_blocks(k["e_sub"], kx, ky)
     # S-matrices of runs of uniform media are kept 2x2-block-diagonal (O(N)); only patterned layers are dense.
     pieces = [("blocks", _side_blocks(v_ref, v0b, "ref"))]
     v0 = None
@@ -726,12 +773,12 @@ def _solve_batch(stack, wavelength_nm, b, mx, my, theta_deg, phi_deg, rules):
         if rule != "uniform":
             if v0 is None:
                 v0 = _dense(v0b)
-            e_l, e_xx, e_xy, e_yx, e_yy = _layer_operators(lay.eps, rule, b, mx, my, px, py)
+            e_l, e_xx, e_xy, e_yx, e_yy = _layer_operators(lay.eps, rule, b, mx, my, k["px"], k["py"])
             w, v, q = _patterned_modes(e_l, e_xx, e_yy, kx, ky, e_xy, e_yx)
-            pieces.append(("dense", _layer_smatrix(w, v, q, v0, k0 * d)))
+            pieces.append(("dense", _layer_smatrix(w, v, q, v0, k["k0"] * d)))
         else:
             v, q = _uniform_blocks(_as_batch(lay.eps, b), kx, ky)
-            pieces.append(("blocks", _uniform_layer_blocks(v, q, v0b, k0 * d)))
+            pieces.append(("blocks", _uniform_layer_blocks(v, q, v0b, k["k0"] * d)))
     pieces.append(("blocks", _side_blocks(v_trn, v0b, "trn")))
     merged = [pieces[0]]
     for kind, s in pieces[1:]:
@@ -743,59 +790,25 @@ def _solve_batch(stack, wavelength_nm, b, mx, my, theta_deg, phi_deg, rules):
     for kind, s in merged:
         s = tuple(_dense(x) for x in s) if kind == "blocks" else s
         s_glob = s if s_glob is None else _star(s_glob, s)
-    q_ref = np.concatenate([q_ref, q_ref], axis=1)
-    q_trn = np.concatenate([q_trn, q_trn], axis=1)
     s11, _, s21, _ = s_glob
+    return s11, s21, np.concatenate([q_ref, q_ref], axis=1), np.concatenate([q_trn, q_trn], axis=1)
 
-    # incident zeroth-order fields for p and s input
-    cth = np.cos(th)
+
+def _zeroth_jones(c, kz, sign, k: dict, flux_in):
+    """Jones matrix (p, s basis) of the zeroth order, amplitudes normalised to the incident flux."""
+    ph, zero, nh, kx, ky = k["ph"], k["zero"], k["nh"], k["kx"], k["ky"]
+    ex, ey = c[:, zero, :], c[:, nh + zero, :]                      # (B, 2 inputs)
     s_vec = np.array([-np.sin(ph), np.cos(ph)])
-    p_tan = np.array([np.cos(ph), np.sin(ph)]) * cth
-    c_inc = np.zeros((b, 2 * nh, 2), dtype=complex)
-    c_inc[:, zero, 0], c_inc[:, nh + zero, 0] = p_tan
-    c_inc[:, zero, 1], c_inc[:, nh + zero, 1] = s_vec
-    c_ref = s11 @ c_inc                                              # (B, 2N, 2) tangential E of reflected orders
-    c_trn = s21 @ c_inc
-    kz_ref = q_ref[:, :nh]
-    kz_trn = q_trn[:, :nh]
-    kz_inc = n_sup * cth + 0j
-    flux_in = _flux(c_inc[:, zero, :], c_inc[:, nh + zero, :], kx[:, zero, None], ky[:, zero, None],
-                    kz_inc[:, None])                                  # (B, 2)
-    ord_r = -_flux(c_ref[:, :nh, :], c_ref[:, nh:, :], kx[:, :, None], ky[:, :, None],
-                   -kz_ref[:, :, None]) / flux_in[:, None, :]
-    ord_t = _flux(c_trn[:, :nh, :], c_trn[:, nh:, :], kx[:, :, None], ky[:, :, None],
-                  kz_trn[:, :, None]) / flux_in[:, None, :]
-    prop_r = (np.abs(kz_ref.imag) < 1e-9)[:, :, None]
-    prop_t = (np.abs(kz_trn.imag) < 1e-9 * np.maximum(1, np.abs(kz_trn)))[:, :, None] | \
-        (np.abs(e_sub.imag) > 1e-12)[:, None, None]
-    ord_r = np.where(prop_r, ord_r, 0.0)
-    ord_t = np.where(prop_t, ord_t, 0.0)
-
-    def jones(c, kz, sign):
-        ex, ey = c[:, zero, :], c[:, nh + zero, :]                  # (B, 2 inputs)
-        a_s = ex * s_vec[0] + ey * s_vec[1]
-        kzz = kz[:, zero][:, None]
-        nmed = np.sqrt(kx[:, zero, None] ** 2 + ky[:, zero, None] ** 2 + kzz**2)
-        a_p = (ex * np.cos(ph) + ey * np.sin(ph)) / (kzz / nmed)
-        # flux of unit-amplitude p and s waves in this medium (for the power normalisation)
-        st = np.sin(ph), np.cos(ph)
-        f_s = np.abs(_flux(-st[0] + 0 * kzz, st[1] + 0 * kzz, kx[:, zero, None], ky[:, zero, None], sign * kzz))
-        ptx, pty = np.cos(ph) * kzz / nmed, np.sin(ph) * kzz / nmed
-        f_p = np.abs(_flux(ptx, pty, kx[:, zero, None], ky[:, zero, None], sign * kzz))
-        j = np.stack([a_p * np.sqrt(f_p / flux_in[:, :1]), a_s * np.sqrt(f_s / flux_in[:, 1:])], axis=1)
-        return j
-
-    t_j = jones(c_trn, kz_trn, 1.0)
-    r_j = jones(c_ref, kz_ref, -1.0)
-    settings = {"method": "RCWA / Fourier modal method, scattering matrices (Rumpf 2011)",
-                "factorization": "; ".join(sorted({_RULE_NAMES[r] for r in rules if r != "uniform"})) or "none",
-                "factorization_per_layer": list(rules),
-                "harmonics_x": mx, "harmonics_y": my, "truncation": "rectangular",
-                "theta_deg": float(theta_deg), "phi_deg": float(phi_deg)}
-    fields = {"t": c_trn, "r": c_ref, "kx": kx, "ky": ky, "kz_t": kz_trn, "kz_r": kz_ref, "flux_in": flux_in,
-              "m": m, "n": n, "prop_t": prop_t[:, :, 0], "prop_r": prop_r[:, :, 0]}
-    return RcwaResult(t_j, r_j, ord_t.sum(axis=1), ord_r.sum(axis=1), np.moveaxis(ord_t, 2, 1),
-                      np.moveaxis(ord_r, 2, 1), (mx, my), settings, fields)
+    a_s = ex * s_vec[0] + ey * s_vec[1]
+    kzz = kz[:, zero][:, None]
+    nmed = np.sqrt(kx[:, zero, None] ** 2 + ky[:, zero, None] ** 2 + kzz**2)
+    a_p = (ex * np.cos(ph) + ey * np.sin(ph)) / (kzz / nmed)
+    # flux of unit-amplitude p and s waves in this medium (for the power normalisation)
+    st = np.sin(ph), np.cos(ph)
+    f_s = np.abs(_flux(-st[0] + 0 * kzz, st[1] + 0 * kzz, kx[:, zero, None], ky[:, zero, None], sign * kzz))
+    ptx, pty = np.cos(ph) * kzz / nmed, np.sin(ph) * kzz / nmed
+    f_p = np.abs(_flux(ptx, pty, kx[:, zero, None], ky[:, zero, None], sign * kzz))
+    return np.stack([a_p * np.sqrt(f_p / flux_in[:, :1]), a_s * np.sqrt(f_s / flux_in[:, 1:])], axis=1)
 
 
 def order_powers(result: RcwaResult, polarization, side: str = "t") -> np.ndarray:

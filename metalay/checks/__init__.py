@@ -5,6 +5,8 @@ module          stage                                                           
 ==============  ==========================================================================  =======================
 ``rules.py``    design rules on flat polygons (STRtree path + lattice fast path, equal),    ``check_mask``,
                 rules files, JSON report, marker GDSII                                      ``load_rules``
+``rules_stream.py`` the same rules band by band with a halo, for masks too large to hold; report  ``check_mask_tiled``
+                identical to ``check_mask`` (each violation owned by one band)
 ``decode.py``   flat polygons -> lattice site, cell, rotation                               ``decode_sites``
 ``grid.py``     the FFT-centred grid, far field with angular axes, angular spectrum         ``far_field``
 ``oam.py``      OAM (spiral) spectrum: polar resampling + azimuthal FFT                     ``oam_spectrum``
@@ -13,6 +15,10 @@ module          stage                                                           
                 FFT padding involved
 ``optics.py``   optical check: Jones algebra per site -> near field -> far field, OAM,      ``check_optics``,
                 spots, crosstalk, lens; one evaluation path shared with the studies         ``evaluate_elements``
+``optics_stream.py`` optical check of a mask too large to hold: spot far fields from block    ``check_optics_streamed``
+                sums accumulated tile by tile, with a derived error bound
+``spinoptics.py`` optical check of a spin-decoupled mask: each input spin against its own  ``check_spin_optics``
+                target, crosstalk between the two targets, figures for both
 ``plots.py``    deterministic PNG figures                                                   ``png_bytes``
 ``report.py``   the single-page HTML report                                                 ``render_html``
 ``steps.py``    the checks a compile runs, as ``MaskCheck`` steps                           ``default_checks``
@@ -28,6 +34,8 @@ _ENTRIES = {
     "load_rules": "rules",
     "parse_rules": "rules",
     "RuleSet": "rules",
+    "check_mask_tiled": "rules_stream",
+    "check_optics_streamed": "optics_stream",
     "decode_sites": "decode",
     "far_field": "grid",
     "far_field_at_sites": "farpoints",
@@ -37,6 +45,7 @@ _ENTRIES = {
     "OpticsOptions": "optics",
     "evaluate_elements": "optics",
     "target_from_design": "optics",
+    "check_spin_optics": "spinoptics",
     "render_html": "report",
     "default_checks": "steps",
 }

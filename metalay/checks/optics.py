@@ -34,6 +34,7 @@ import os
 import time
 from dataclasses import dataclass, field
 from pathlib import Path
+from types import SimpleNamespace
 
 import numpy as np
 from scipy import ndimage
@@ -56,6 +57,7 @@ __all__ = [
     "power_budget",
     "spot_fractions",
     "crosstalk_matrix",
+    "judged_figures",
     "lens_metrics",
     "target_from_design",
     "ideal_responses",
@@ -1552,6 +1554,33 @@ def _figures(dec: _Decoded, ev: Evaluation, opt: OpticsOptions, notes: list, tim
     return figures, fringe_image
 
 
+def judged_figures(decoded: DecodedSites, ev: Evaluation, target: OpticsTarget, *, charges=range(-10, 11),
+                   pad_factor: float = 2.0, workers: int = 2, limits=None) -> dict:
+    """The judged figures of one evaluation, as the nominal check computes them, with their verdicts.
+
+    The study's samples (:mod:`metalay.studies.study`) call this so that every sample carries the same metric set
+    and verdicts as :func:`check_optics`: converted efficiency, OAM purity and the charge read from a simulated
+    fork interferogram (designs with an axis charge; needs ``ev.oam_field``), per-channel purity and the
+    crosstalk/isolation (multiplexed designs; needs ``ev.far``), focal spot and Strehl ratio (lenses).
+
+    Returns
+    -------
+    dict
+        ``figures`` (JSON-ready, the keys of :func:`check_optics`'s figures that are judged) and ``verdicts``
+        (:func:`optics_verdicts`).
+    """
+    dec = SimpleNamespace(target=target, decoded=decoded)
+    opt = SimpleNamespace(charges=tuple(charges), pad_factor=pad_factor, workers=workers)
+    figures = {"power_budget": ev.budget}
+    if ev.oam is not None and ev.oam_field is not None:
+        _oam_figures(dec, ev, opt, figures, [])
+    if target.channels and ev.far is not None:
+        _channel_figures(dec, ev, opt, figures)
+    if target.focal_length_um:
+        _lens_figures(dec, ev, opt, figures)
+    return {"figures": figures, "verdicts": optics_verdicts(figures, limits)}
+
+
 def optics_verdicts(figures: dict, limits=None) -> dict:
     """Verdicts (pass / warn / fail) of the optical figures against thresholds with units.
 
@@ -1819,6 +1848,10 @@ def check_optics(mask_path, library, *, design=None, target: OpticsTarget | None
     """
     from metalay.cells.library import CellLibrary, load_library
 
+    if getattr(design, "spin_decoupled", False):  # a phase per input spin: both spins, each against its target
+        from metalay.checks.spinoptics import check_spin_optics
+
+        return check_spin_optics(mask_path, library, design, out_dir=out_dir, options=options)
     opt = options
     t_all = time.perf_counter()
     keep_freed_memory()

@@ -1665,10 +1665,16 @@ class _LayerCheck:
     method: str
     max_pairs: int = MAX_PAIRS
     results: list = field(default_factory=list)
+    owned: np.ndarray | None = None  # tiled check: which polygons this tile reports (None: all)
 
     @property
     def tag(self) -> str:
         return f"{self.lr.layer}/{self.lr.datatype}"
+
+    def n_checked(self, polys=None) -> int:
+        """How many of ``polys`` (mask indices; default every polygon of the layer) this check reports on."""
+        polys = self.geom.layer_polys if polys is None else np.asarray(polys, np.int64)
+        return int(polys.size) if self.owned is None else int(np.count_nonzero(self.owned[polys]))
 
     def record(self, rule, limit, vio: Violations, checked, method_name="vector", source_key=None, pair_cap=None):
         """Record the result of ``rule`` with its limit, unit, reason and source."""
@@ -1679,7 +1685,15 @@ class _LayerCheck:
 
     def emit(self, rule, limit, polygon, other, value, seg_db, checked, method_name="vector", source_key=None,
              kind=None, pair_cap=None):
-        """Record the violations of ``rule``, sorted worst first (``kind`` "min", "max" or "flag" orders them)."""
+        """Record the violations of ``rule``, sorted worst first (``kind`` "min", "max" or "flag" orders them).
+
+        A tiled check keeps only the violations whose (first) polygon this tile owns: each counted exactly once."""
+        if self.owned is not None:
+            polygon = np.asarray(polygon, np.int64)
+            keep = self.owned[polygon]
+            polygon, value = polygon[keep], np.asarray(value)[keep]
+            other = None if other is None else np.asarray(other, np.int64)[keep]
+            seg_db = np.asarray(seg_db, np.float64).reshape(-1, 4)[keep]
         vio = _violations(kind or _KIND[rule], polygon, other, value, seg_db, self.db_unit_nm)
         self.record(rule, limit, vio, checked, method_name, source_key, pair_cap)
 
@@ -1711,14 +1725,14 @@ def _rule_width(c: _LayerCheck) -> None:
     g, lr = c.geom, c.lr
     bad = np.flatnonzero(g.width_db < lr.min_width_nm / c.db_unit_nm)
     c.emit("width", lr.min_width_nm, g.poly[bad], None, g.width_db[bad] * c.db_unit_nm, c.width_seg(bad),
-           g.n_polygons, source_key="min_width_nm")
+           c.n_checked(), source_key="min_width_nm")
 
 
 def _rule_area(c: _LayerCheck) -> None:
     g, lr = c.geom, c.lr
     area_nm2 = np.abs(g.area2) / 2.0 * c.db_unit_nm * c.db_unit_nm
     bad = np.flatnonzero(area_nm2 < lr.min_area_nm2)
-    c.emit("area", lr.min_area_nm2, g.poly[bad], None, area_nm2[bad], c.bbox_seg(bad), g.n_polygons,
+    c.emit("area", lr.min_area_nm2, g.poly[bad], None, area_nm2[bad], c.bbox_seg(bad), c.n_checked(),
            source_key="min_area_nm2")
 
 
@@ -1726,7 +1740,7 @@ def _rule_vertices(c: _LayerCheck) -> None:
     g, lr = c.geom, c.lr
     count = np.diff(c.flat.start)[g.poly]
     bad = np.flatnonzero(count > lr.max_vertices)
-    c.emit("vertices", lr.max_vertices, g.poly[bad], None, count[bad], c.bbox_seg(bad), g.n_polygons,
+    c.emit("vertices", lr.max_vertices, g.poly[bad], None, count[bad], c.bbox_seg(bad), c.n_checked(),
            source_key="max_vertices")
 
 
@@ -1744,13 +1758,13 @@ def _rule_grid(c: _LayerCheck) -> None:
         pid = np.repeat(g.layer_polys, g.vertex_counts)
         badv = np.flatnonzero(off > 0)
     if badv is None or badv.size == 0:
-        c.record("grid", lr.grid_nm, Violations.empty(), g.n_polygons, source_key="grid_nm")
+        c.record("grid", lr.grid_nm, Violations.empty(), c.n_checked(), source_key="grid_nm")
         return
     order = np.lexsort((-off[badv], pid[badv]))  # worst vertex per polygon
     bv = badv[order]
     bv = bv[np.concatenate([[True], pid[bv][1:] != pid[bv][:-1]])]
     pts = xy[bv].astype(np.float64)
-    c.emit("grid", lr.grid_nm, pid[bv], None, off[bv] * db_unit_nm, np.concatenate([pts, pts], 1), g.n_polygons,
+    c.emit("grid", lr.grid_nm, pid[bv], None, off[bv] * db_unit_nm, np.concatenate([pts, pts], 1), c.n_checked(),
            source_key="grid_nm", kind="max")
 
 
@@ -1759,14 +1773,14 @@ def _rule_angle(c: _LayerCheck) -> None:
     bad = np.flatnonzero(g.angle_deg < lr.min_angle_deg)
     p = flat.xy_db[flat.start[g.poly[bad]] + g.angle_vertex[bad]].astype(np.float64)
     c.emit("angle", lr.min_angle_deg, g.poly[bad], None, g.angle_deg[bad], np.concatenate([p, p], 1),
-           g.n_polygons, source_key="min_angle_deg")
+           c.n_checked(), source_key="min_angle_deg")
 
 
 def _rule_validity(c: _LayerCheck) -> None:
     bad = [(k, r["where"]) for k, r in sorted(c.geom.shapely_results.items()) if not r["valid"]]
     ks = np.array([k for k, _ in bad], np.int64)
     pts = np.array([w for _, w in bad], np.float64).reshape(-1, 2)
-    c.emit("validity", 0, ks, None, np.zeros(ks.size), np.concatenate([pts, pts], 1), c.geom.n_polygons)
+    c.emit("validity", 0, ks, None, np.zeros(ks.size), np.concatenate([pts, pts], 1), c.n_checked())
 
 
 def _rule_notch(c: _LayerCheck) -> None:
@@ -1775,7 +1789,7 @@ def _rule_notch(c: _LayerCheck) -> None:
             and r["notch"][0] * db_unit_nm < lr.min_notch_nm]
     ks = np.array([k for k, _ in rows], np.int64)
     c.emit("notch", lr.min_notch_nm, ks, None, np.array([r[0] * db_unit_nm for _, r in rows]),
-           np.array([r[1] for _, r in rows]).reshape(-1, 4), len(sh), source_key="min_notch_nm")
+           np.array([r[1] for _, r in rows]).reshape(-1, 4), c.n_checked(list(sh)), source_key="min_notch_nm")
 
 
 def _rule_holes(c: _LayerCheck) -> None:
@@ -1785,14 +1799,14 @@ def _rule_holes(c: _LayerCheck) -> None:
     ks = np.array([k for k, _, _ in rows], np.int64)
     pts = np.array([centre for _, _, centre in rows], np.float64).reshape(-1, 2)
     c.emit("hole_area", lr.min_hole_area_nm2, ks, None, np.array([a for _, a, _ in rows]),
-           np.concatenate([pts, pts], 1), len(sh), source_key="min_hole_area_nm2")
+           np.concatenate([pts, pts], 1), c.n_checked(list(sh)), source_key="min_hole_area_nm2")
 
 
 def _rule_aspect(c: _LayerCheck) -> None:
     g, lr = c.geom, c.lr
     ratio = lr.film_height_nm / (g.width_db * c.db_unit_nm)
     bad = np.flatnonzero(ratio > lr.max_aspect_ratio)
-    c.emit("aspect_ratio", lr.max_aspect_ratio, g.poly[bad], None, ratio[bad], c.width_seg(bad), g.n_polygons,
+    c.emit("aspect_ratio", lr.max_aspect_ratio, g.poly[bad], None, ratio[bad], c.width_seg(bad), c.n_checked(),
            source_key="max_aspect_ratio")
 
 
@@ -1813,7 +1827,7 @@ def _rule_straddle(c: _LayerCheck) -> None:
         smaller_part[c0:c0 + b.shape[0]] = np.maximum(vals[0], vals[1])
     bad = np.flatnonzero(smaller_part > 0)
     c.emit("field_straddle", rules.write_field_um * 1000.0, g.poly[bad], None, smaller_part[bad] * db_unit_nm,
-           c.bbox_seg(bad), g.n_polygons, kind="max")
+           c.bbox_seg(bad), c.n_checked(), kind="max")
 
 
 def _inside_region(c: _LayerCheck, region) -> np.ndarray:
@@ -1844,7 +1858,7 @@ def _rule_frame(c: _LayerCheck) -> None:
     g = c.geom
     region = _frame_region(c.flat, c.lr.inside_frame)
     bad = np.arange(g.poly.size) if region is None else np.flatnonzero(~_inside_region(c, region))
-    c.emit("frame_enclosure", 0, g.poly[bad], None, np.zeros(bad.size), c.bbox_seg(bad), g.n_polygons)
+    c.emit("frame_enclosure", 0, g.poly[bad], None, np.zeros(bad.size), c.bbox_seg(bad), c.n_checked())
 
 
 def _spacing_pairs(c: _LayerCheck, spacing_db: float):
@@ -1882,12 +1896,12 @@ def _rule_spacing(c: _LayerCheck) -> None:
     bound = c.max_pairs if capped else None
     if lr.min_spacing_nm is not None:
         pa, pb, pd, pc = part(d > 0)
-        c.emit("spacing", lr.min_spacing_nm, pa, pb, pd * c.db_unit_nm, pc, c.geom.n_polygons, name,
+        c.emit("spacing", lr.min_spacing_nm, pa, pb, pd * c.db_unit_nm, pc, c.n_checked(), name,
                "min_spacing_nm", pair_cap=bound)
         del pa, pb, pd, pc
     if lr.forbid_overlap:
         pa, pb, pd, pc = part(d == 0)
-        c.emit("overlap", 0, pa, pb, pd, pc, c.geom.n_polygons, name, pair_cap=bound)
+        c.emit("overlap", 0, pa, pb, pd, pc, c.n_checked(), name, pair_cap=bound)
 
 
 #: The rules of a layer: name, whether ``LayerRules`` switches it on, and the function computing it.
@@ -1908,11 +1922,14 @@ _RULE_STEPS = (
 
 
 def _check_layer(flat: FlatPolygons, lr: LayerRules, rules: RuleSet, db_unit_nm: float, method: str,
-                 timings: list, max_pairs: int = MAX_PAIRS) -> list:
-    """All rules of one layer/datatype: polygon features once, then each switched-on rule (in report order)."""
+                 timings: list, max_pairs: int = MAX_PAIRS, owned: np.ndarray | None = None) -> list:
+    """All rules of one layer/datatype: polygon features once, then each switched-on rule (in report order).
+
+    ``owned`` (bool per polygon of ``flat``): report only violations and checked counts of these polygons (a tile
+    of :mod:`metalay.checks.rules_stream`); None reports every polygon."""
     tag = f"{lr.layer}/{lr.datatype}"
     t0 = time.perf_counter()
-    check = _LayerCheck(flat, lr, rules, _layer_geometry(flat, lr), db_unit_nm, method, max_pairs)
+    check = _LayerCheck(flat, lr, rules, _layer_geometry(flat, lr), db_unit_nm, method, max_pairs, owned=owned)
     timings.append((f"geometry {tag}", time.perf_counter() - t0))
     for name, switched_on, rule in _RULE_STEPS:  # loop over rules (a short axis)
         if switched_on(lr):

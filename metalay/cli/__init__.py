@@ -59,7 +59,8 @@ def _compile(design_path, out_dir, args) -> int:
     design = load_design(design_path)
     result = compile_design(design, out_dir, show_progress=False if args.quiet or args.json else None,
                             run_rules=False if args.no_checks else None,
-                            run_optics=False if args.no_checks else None, max_memory_bytes=args.max_memory)
+                            run_optics=False if args.no_checks else None, max_memory_bytes=args.max_memory,
+                             workers=args.workers, scheduler=args.scheduler)
     args.result = _compile_result(result)
     for line in result.summary:
         if line.startswith("warning: "):
@@ -134,6 +135,11 @@ def _build_parser(modules) -> argparse.ArgumentParser:
                        help="exit 1 when the overall verdict is this or worse (default: the design's "
                             "checks.fail_at, which defaults to fail; never: always exit 0 after writing)")
         add_max_memory(p)
+        p.add_argument("--workers", type=int, default=None, metavar="N",
+                       help="run the tiles on a local Dask cluster of N worker processes (same output bytes)")
+        p.add_argument("--scheduler", default=None, metavar="ADDRESS",
+                       help="run the tiles on an existing Dask cluster (e.g. tcp://host:8786); its workers must "
+                            "see the output folder")
 
     p = sub.add_parser("compile", help="compile a design file (TOML) into mask files and a manifest")
     p.add_argument("design", help="design file (.toml)")

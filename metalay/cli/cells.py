@@ -128,6 +128,17 @@ def run(args) -> int:
             print(f"{row['cell_id']:>16} {row['wavelength_nm']:8.2f} {row['abs_t_long']:9.4f} "
                   f"{row['abs_t_short']:10.4f} {row['phase_difference_deg']:10.2f} {row['conversion']:10.4f} "
                   f"{row['leakage']:8.4f}")
+        spin = lib.extra.get("spin_decoupled")
+        if isinstance(spin, dict):
+            print(f"spin-decoupled set at {spin['wavelength_nm']:g} nm: {spin['levels']} levels of the conversion "
+                  f"phase from {spin['level_offset_deg']:g} deg; amplitude spread {spin['amplitude_spread']:.4f}, "
+                  f"worst retardance error {spin['worst_retardance_error_deg']:.2f} deg (tolerance "
+                  f"{spin['retardance_tolerance_deg']:g}), worst level phase error "
+                  f"{spin['worst_level_phase_error_deg']:.2f} deg")
+            for c in spin["cells"]:
+                print(f"  {c['cell_id']}: conversion phase {c['conversion_phase_deg']:8.2f} deg, retardance error "
+                      f"{c['retardance_error_deg']:+6.2f} deg, conversion {c['conversion_efficiency']:.4f}, amplitude "
+                      f"{100 * c['amplitude_deviation']:+.2f} % of the mean, levels {c['levels']}")
         if not args.no_plot:
             png = args.png or Path("out") / "cells" / f"{lib.name}.png"
             written = plot_library(lib, png)

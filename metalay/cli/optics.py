@@ -53,6 +53,10 @@ def add_parser(subparsers) -> argparse.ArgumentParser:
     p.add_argument("--no-plots", action="store_true", help="numbers only (no PNG figures, no HTML report)")
     p.add_argument("--fail-at", choices=("fail", "warn", "never"), default="fail",
                    help="exit 1 when the verdict is this or worse (default fail; never: always exit 0)")
+    p.add_argument("--streamed", action="store_true",
+                   help="streamed check (tile by tile, spot far fields from block sums with a stated error bound; "
+                        "no OAM, fringes, crosstalk or lens figures); automatic when the whole-mask check does not "
+                        "fit --max-memory")
     add_max_memory(p)
     p.set_defaults(func=run)
     return p
@@ -89,6 +93,11 @@ def run(args) -> int:
     if library is None:
         raise MetalayError("command line: give --library (or --design, whose library is then used)")
     out = args.output or Path("out") / f"{args.mask.stem}-optics"
+    from metalay.checks.steps import OPTICS_BYTES_PER_SITE, whole_mask_fits
+
+    layer = design.mask.layer("structures") if design is not None else (1, 0)
+    if args.streamed or not whole_mask_fits(args.mask, [layer], OPTICS_BYTES_PER_SITE, args.max_memory):
+        return _run_streamed(args, library, design, out)
     options = OpticsOptions(wavelength_nm=args.wavelength_nm, polarization=args.polarization, bias_nm=args.bias_nm,
                             size_tol_nm=args.size_tol_nm, unmatched=args.unmatched, pad_factor=args.pad_factor,
                             max_side=args.max_side, make_plots=not args.no_plots,
@@ -102,32 +111,16 @@ def run(args) -> int:
                    "files": {k: v["path"] for k, v in sorted(res.files.items())}, "caution": SAFETY_NOTE}
     if not args.quiet and not args.json:
         f = res.figures
-        b = f["power_budget"]
-        print(f"illumination: {f['illumination']['in_words']} ({f['illumination']['chosen_by']})")
-        print(f"sites decoded: {f['decode']['sites']:,} (unmatched {f['decode']['unmatched']}, off-lattice "
-              f"{f['decode']['off_lattice']}, duplicates {f['decode']['duplicates']})")
-        print(f"power: converted {b['converted']:.4f}, leakage {b['leakage']:.4f}, not in zeroth order "
-              f"{b['not_in_zeroth_order']:.4f} (fractions of incident)")
-        if "designed_spot_efficiency" in f:
-            pos = f["designed_spot_position"]
-            print(f"designed spot: {f['designed_spot_efficiency']:.4f} of incident at {pos['deflection_deg']:.3f} deg")
-        if "brightest_direction" in f:
-            print(f"brightest far-field direction: {f['brightest_direction']['angle_deg']:.3f} deg")
-        if "oam" in f:
-            print(f"OAM purity of l = {f['oam']['design_charge']}: {f['oam']['purity']:.5f}")
-        if "fringe_reading" in f:
-            r = f["fringe_reading"]
-            read = r["charge"] if r["status"] == "read" else "unreadable (the loops disagree)"
-            print(f"charge read from the interferogram: {read} (design {r['design_charge']})")
-        if "crosstalk" in f:
-            ct = f["crosstalk"]
-            print(f"worst channel isolation: {ct['worst_isolation_db']:.2f} dB, channel powers within "
-                  f"{ct['power_spread_db']:.2f} dB ({ct['method']})")
-        if "lens" in f:
-            lm = f["lens"]
-            strehl = "n/a" if lm["strehl"] is None else f"{lm['strehl']:.4f}"
-            print(f"focal spot FWHM {lm['fwhm_x_um']:.3f} x {lm['fwhm_y_um']:.3f} um (Airy {lm['fwhm_airy_um']:.3f}), "
-                  f"Strehl {strehl}, focusing efficiency {lm['focusing_efficiency']:.4f}")
+        if "spins" in f:  # a design with a phase per input spin: each spin against its own target
+            for key, figs in f["spins"].items():
+                print(f"input spin {key}:")
+                _print_figures(figs, indent="  ")
+            ct = f["target_crosstalk"]
+            print("isolation from the other spin's target: " + ", ".join(
+                f"spin {k} {ct['isolation_db'][k]:.2f} dB (ideal targets {ct['ideal_isolation_db'][k]:.2f} dB)"
+                for k in ct["isolation_db"]))
+        else:
+            _print_figures(f)
         v = f["verdicts"]
         print(f"verdict: {v['verdict'].upper()} ({v['summary']})")
         if "optics_report.html" in res.files:
@@ -141,3 +134,69 @@ def run(args) -> int:
               f"{res.figures['verdicts']['summary']}", file=sys.stderr)
         return 1
     return 0
+
+
+def _run_streamed(args, library, design, out: Path) -> int:
+    """The streamed optical check (``--streamed``, or a mask beyond the memory budget): figures and the bound."""
+    from metalay.checks.optics import SAFETY_NOTE
+    from metalay.checks.optics_stream import check_optics_streamed, write_streamed_outputs
+
+    res = check_optics_streamed(args.mask, library, design=design, polarization=args.polarization,
+                                pad_factor=args.pad_factor, wavelength_nm=args.wavelength_nm, lit_from=args.lit_from,
+                                bias_nm=args.bias_nm, size_tol_nm=args.size_tol_nm, unmatched=args.unmatched)
+    from metalay.cli._output import detail
+    from metalay.design.limits import verdict_at_least
+
+    f, _ = write_streamed_outputs(res, args.mask, library, design, out)
+    args.result = {"out_dir": str(out), "figures": f, "notes": list(res.notes), "caution": SAFETY_NOTE}
+    if not args.quiet and not args.json:
+        b = f["power_budget"]
+        print(f"method: {f['method']} (block {f['block']['block_um']:.4g} um, order {f['block']['order']})")
+        print(f"sites decoded: {f['decode']['sites']:,} (unmatched {f['decode']['unmatched']}, off-lattice "
+              f"{f['decode']['off_lattice']})")
+        print(f"power: converted {b['converted']:.4f}, leakage {b['leakage']:.4f} (fractions of incident)")
+        if "designed_spot_efficiency" in f:
+            print(f"designed spot: {f['designed_spot_efficiency']:.4f} of incident, +- "
+                  f"{f['designed_spot_efficiency_bound']:.2g} (block-sum error bound)")
+        v = f["verdicts"]
+        print(f"verdict: {v['verdict'].upper()} ({v['summary']})")
+        print(f"output folder: {out}")
+    for note in res.notes:
+        detail(args, f"note: {note}")
+    verdict = f["verdicts"]["verdict"]
+    if verdict_at_least(verdict, args.fail_at):
+        print(f"metalay: optics verdict {verdict} (exit 1 at --fail-at {args.fail_at}): {f['verdicts']['summary']}",
+              file=sys.stderr)
+        return 1
+    return 0
+
+
+def _print_figures(f: dict, *, indent: str = "") -> None:
+    """The figures of one input polarisation, one line each."""
+    b = f["power_budget"]
+    print(f"{indent}illumination: {f['illumination']['in_words']} ({f['illumination']['chosen_by']})")
+    print(f"{indent}sites decoded: {f['decode']['sites']:,} (unmatched {f['decode']['unmatched']}, off-lattice "
+          f"{f['decode']['off_lattice']}, duplicates {f['decode']['duplicates']})")
+    print(f"{indent}power: converted {b['converted']:.4f}, leakage {b['leakage']:.4f}, not in zeroth order "
+          f"{b['not_in_zeroth_order']:.4f} (fractions of incident)")
+    if "designed_spot_efficiency" in f:
+        pos = f["designed_spot_position"]
+        print(f"{indent}designed spot: {f['designed_spot_efficiency']:.4f} of incident at "
+              f"{pos['deflection_deg']:.3f} deg")
+    if "brightest_direction" in f:
+        print(f"{indent}brightest far-field direction: {f['brightest_direction']['angle_deg']:.3f} deg")
+    if "oam" in f:
+        print(f"{indent}OAM purity of l = {f['oam']['design_charge']}: {f['oam']['purity']:.5f}")
+    if "fringe_reading" in f:
+        r = f["fringe_reading"]
+        read = r["charge"] if r["status"] == "read" else "unreadable (the loops disagree)"
+        print(f"{indent}charge read from the interferogram: {read} (design {r['design_charge']})")
+    if "crosstalk" in f:
+        ct = f["crosstalk"]
+        print(f"{indent}worst channel isolation: {ct['worst_isolation_db']:.2f} dB, channel powers within "
+              f"{ct['power_spread_db']:.2f} dB ({ct['method']})")
+    if "lens" in f:
+        lm = f["lens"]
+        strehl = "n/a" if lm["strehl"] is None else f"{lm['strehl']:.4f}"
+        print(f"{indent}focal spot FWHM {lm['fwhm_x_um']:.3f} x {lm['fwhm_y_um']:.3f} um (Airy "
+              f"{lm['fwhm_airy_um']:.3f}), Strehl {strehl}, focusing efficiency {lm['focusing_efficiency']:.4f}")

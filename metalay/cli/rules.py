@@ -11,7 +11,7 @@ import time
 from pathlib import Path
 
 from metalay.cli._options import add_max_memory
-from metalay.cli._output import detail
+from metalay.cli._output import detail, say
 
 __all__ = ["add_parser", "run", "add_info_parser", "run_info"]
 
@@ -34,6 +34,9 @@ def add_parser(subparsers) -> None:
                    help="GDSII layer of the violation markers; datatype = rule number (default 1000)")
     c.add_argument("--no-markers", action="store_true", help="do not write the marker GDSII")
     c.add_argument("--quiet", action="store_true", help="print only the verdict line (standard output)")
+    c.add_argument("--bands", type=int, default=0,
+                   help="check band by band with this many bands (same report, memory bounded by a band); "
+                        "default 0: the whole mask when it fits --max-memory, else bands sized from it")
     add_max_memory(c)
     c.set_defaults(func=run)
 
@@ -45,6 +48,8 @@ def run(args) -> int:
 
 def _run_check(args) -> int:
     from metalay.checks.rules import RulesError, check_mask, load_rules, write_marker_gds
+    from metalay.checks.rules_stream import check_mask_tiled, involved_polygons
+    from metalay.checks.steps import RULES_BYTES_PER_SITE, whole_mask_fits
     from metalay.errors import MaskReadError, OutputError
     from metalay.io.gdsread import read_mask
     from metalay.util.atomic import atomic_write_text
@@ -53,12 +58,23 @@ def _run_check(args) -> int:
         raise RulesError(f"--max-listed = {args.max_listed} is invalid; allowed: >= 0")
     if not (0 <= args.marker_layer <= 65535):
         raise RulesError(f"--marker-layer = {args.marker_layer} is invalid; allowed: 0..65535")
+    if args.bands < 0:
+        raise RulesError(f"--bands = {args.bands} is invalid; allowed: 0 (automatic) or a number of bands >= 1")
     rules = load_rules(args.rules)
     mask = Path(args.mask)
     t0 = time.perf_counter()
-    flat = read_mask(mask, layers=rules.layer_pairs(), cell=args.cell, max_memory_bytes=args.max_memory)
+    tiled = args.bands > 0 or not whole_mask_fits(mask, rules.layer_pairs(), RULES_BYTES_PER_SITE, args.max_memory)
+    if tiled:
+        report, plan = check_mask_tiled(mask, rules, method=args.method, cell=args.cell,
+                                        max_memory_bytes=args.max_memory, bands=args.bands or None)
+        # the markers need only the polygons the report names (re-indexed to them)
+        flat, marked = involved_polygons(mask, report, rules=rules, cell=args.cell) if not args.no_markers \
+            else (None, report)
+    else:
+        flat = read_mask(mask, layers=rules.layer_pairs(), cell=args.cell, max_memory_bytes=args.max_memory)
     t_read = time.perf_counter() - t0
-    report = check_mask(flat, rules, method=args.method)
+    if not tiled:
+        report = marked = check_mask(flat, rules, method=args.method)
     out = args.output or Path("out") / f"{mask.stem}-rules"
     data = report.to_dict(max_listed=args.max_listed)
     from metalay.io.gdsread import file_sha256
@@ -68,13 +84,14 @@ def _run_check(args) -> int:
     except OSError as exc:
         raise MaskReadError(f"{mask}: cannot read ({exc.strerror or exc})") from exc
     data["rules_file"] = rules.source_path
+    data["method"] = plan.as_dict(report.db_unit_nm) if tiled else {"method": "whole-mask"}
     json_path = out / f"{mask.stem}.rules.json"
     try:
         atomic_write_text(json_path, json.dumps(data, sort_keys=True, indent=2) + "\n")
         marker_path = None
         if not args.no_markers:
             marker_path = out / f"{mask.stem}.markers.gds"
-            write_marker_gds(report, flat, marker_path, marker_layer=args.marker_layer)
+            write_marker_gds(marked, flat, marker_path, marker_layer=args.marker_layer)
     except OSError as exc:
         raise OutputError(f"{out}: cannot write report ({exc})") from exc
     args.result = dict(data, report=str(json_path), markers=None if marker_path is None else str(marker_path))
@@ -84,6 +101,9 @@ def _run_check(args) -> int:
         print(f"report: {json_path}")
         if marker_path is not None:
             print(f"markers: {marker_path} (layer {args.marker_layer}, datatype = rule number)")
+    if tiled:
+        say(args, f"checked in {plan.bands} bands of {plan.band_db * report.db_unit_nm / 1000:.4g} um with a "
+                  f"{plan.halo_db * report.db_unit_nm / 1000:.4g} um halo ({plan.largest_band} polygons at most)")
     times = [("read", t_read)] + list(report.timings_s)
     detail(args, "time: " + ", ".join(f"{k} {v:.2f} s" for k, v in times))
     if report.clean:

@@ -145,17 +145,22 @@ def _run_compare(args) -> int:
 
 def _tolerance_lines(settings, res) -> list[str]:
     """The tolerance result as grouped tables: the figures (nominal, median, percentiles) and the thresholds."""
-    rows = []
+    rows, counted = [], []
     for key, st in res.statistics.items():
         if st is None:
             continue
-        unit = "dB" if key.endswith("_db") else "1"
+        if "counts" in st:  # fringe charge and verdict: samples per value
+            counts = ", ".join(f"{k}: {n}" for k, n in st["counts"].items())
+            counted.append(f"  {key}: nominal {_fmt(res.nominal.get(key))}; samples by value: {counts}")
+            continue
+        unit = "dB" if key.endswith("_db") else "um" if key.endswith("_um") else "1"
         rows.append((key, unit, _fmt(res.nominal.get(key)), f"{st['median']:.4f}", f"{st['p5']:.4f}",
                      f"{st['p95']:.4f}"))
     lines = [f"{settings.samples} samples, seed {settings.seed} (fractions of the incident power unless a unit says "
              "otherwise)"]
     lines += ["  " + t for t in _table(("figure", "unit", "nominal", "median", "5th pct", "95th pct"), rows,
                                        {2, 3, 4, 5})]
+    lines += counted
     if res.thresholds:
         trows = []
         for kind, t in res.thresholds.items():

@@ -30,7 +30,7 @@ from metalay.errors import DesignError
 from metalay.validate import TomlTable, load_toml
 
 __all__ = ["Design", "MaskSettings", "WriteFieldSettings", "MarkSettings", "CheckSettings", "load_design",
-           "parse_design", "DEFAULT_LAYERS", "FAIL_AT"]
+           "parse_design", "DEFAULT_LAYERS", "FAIL_AT", "SPIN_TABLES"]
 
 #: Default (layer, datatype) per purpose.
 DEFAULT_LAYERS = {"structures": (1, 0), "frame": (2, 0), "label": (3, 0), "marks": (4, 0)}
@@ -125,6 +125,20 @@ class Design:
     source_path: str = "<memory>"
     raw: dict = field(default_factory=dict, compare=False, repr=False)
     lit_from: str | None = None
+    spin_terms: tuple = ()  # spin-decoupled designs: ((+1, terms for spin +1), (-1, terms for spin -1)); else ()
+
+    @property
+    def spin_decoupled(self) -> bool:
+        """True for a design with its own phase per input spin (``[[phase_spin_plus]]``, ``[[phase_spin_minus]]``)."""
+        return bool(self.spin_terms)
+
+    def spin_targets(self) -> tuple:
+        """``((sigma, terms), ...)``: the phase terms written for each input spin the design specifies.
+
+        A geometric-phase design writes one spin (``((sigma, terms),)``); a spin-decoupled design writes both
+        (``((+1, terms_plus), (-1, terms_minus))``).
+        """
+        return self.spin_terms if self.spin_terms else ((self.sigma, self.terms),)
 
 
 def load_design(path: str | Path) -> Design:
@@ -150,8 +164,11 @@ def parse_design(data: dict, *, where: str = "<memory>", base_dir: str | Path = 
     """
     base_dir = Path(base_dir)
     top = TomlTable(data, where)
-    name, wavelength_nm, sigma, library, lit_from = _parse_design_table(top.table("design"), base_dir)
-    terms = tuple(_parse_term(t, base_dir, wavelength_nm) for t in top.tables("phase"))
+    decoupled = top.has(SPIN_TABLES[0]) or top.has(SPIN_TABLES[1])
+    name, wavelength_nm, sigma, library, lit_from = _parse_design_table(top.table("design"), base_dir,
+                                                                        spin_required=not decoupled)
+    spin_terms = _parse_spin_terms(top, base_dir, wavelength_nm) if decoupled else ()
+    terms = () if decoupled else tuple(_parse_term(t, base_dir, wavelength_nm) for t in top.tables("phase"))
     aperture = _parse_aperture(top.table("aperture"))
     lattice = _parse_lattice(top.table("lattice"), aperture)
     mask = _parse_mask(top.table("mask", {}))
@@ -160,19 +177,25 @@ def parse_design(data: dict, *, where: str = "<memory>", base_dir: str | Path = 
     top.check_unknown()
     return Design(name=name, wavelength_nm=float(wavelength_nm), sigma=int(sigma), terms=terms, aperture=aperture,
                   lattice=lattice, library=library, mask=mask, checks=checks, source_path=where, raw=data,
-                  lit_from=lit_from)
+                  lit_from=lit_from, spin_terms=spin_terms)
 
 
-def _parse_design_table(d: TomlTable, base_dir: Path):
+def _parse_design_table(d: TomlTable, base_dir: Path, *, spin_required: bool = True):
     """``[design]``: name, wavelength, input spin, library (a relative library path is taken from the file's
-    folder)."""
+    folder). A spin-decoupled design (``spin_required=False``) writes both spins and has no ``input_spin``."""
     name = d.string("name")
     if (not name or len(name) > 64 or name.startswith(".")
             or not all(c.isascii() and (c.isalnum() or c in "-_.") for c in name)):
         d.fail("name", name, "use 1 to 64 ASCII letters, digits, '-', '_' and '.', not starting with '.' "
                "(the name becomes file and cell names)")
     wavelength_nm = d.number("wavelength_nm", lo=100.0, hi=20000.0)
-    sigma = d.number("input_spin", integer=True)
+    if not spin_required:
+        if d.has("input_spin"):
+            d.fail("input_spin", d.raw("input_spin"), "not used by a spin-decoupled design: [[phase_spin_plus]] and "
+                   "[[phase_spin_minus]] give the phase of each input spin (remove the key)")
+        sigma = 1
+    else:
+        sigma = d.number("input_spin", integer=True)
     if sigma not in (1, -1):
         d.fail("input_spin", sigma, "allowed values are 1 (spin +1) and -1 (spin -1)")
     library = d.string("library")
@@ -222,6 +245,24 @@ def _parse_limits(lt: TomlTable) -> Limits:
         items.append(replace(lim, warn=warn, fail=fail))
     lt.check_unknown()
     return Limits(tuple(items))
+
+
+#: The tables of a spin-decoupled design: the phase terms written onto input spin +1 and onto input spin -1.
+SPIN_TABLES = ("phase_spin_plus", "phase_spin_minus")
+
+
+def _parse_spin_terms(top: TomlTable, base_dir: Path, wavelength_nm: float) -> tuple:
+    """``[[phase_spin_plus]]`` and ``[[phase_spin_minus]]``: the phase terms of each input spin (same keys as
+    ``[[phase]]``); both are required, and ``[[phase]]`` is not allowed beside them."""
+    if top.has("phase"):
+        top.fail("phase", "[[phase]]", "not allowed in a spin-decoupled design: give the phase of each input spin in "
+                 "[[phase_spin_plus]] and [[phase_spin_minus]] (or only [[phase]] for a geometric-phase design)")
+    for key in SPIN_TABLES:
+        if not top.has(key):
+            raise DesignError(f"{top.where}: missing key '{key}': a spin-decoupled design needs both "
+                              f"[[{SPIN_TABLES[0]}]] and [[{SPIN_TABLES[1]}]] (the phase for input spin +1 and -1)")
+    return tuple((sigma, tuple(_parse_term(t, base_dir, wavelength_nm) for t in top.tables(key)))
+                 for sigma, key in ((1, SPIN_TABLES[0]), (-1, SPIN_TABLES[1])))
 
 
 def _parse_aperture(a: TomlTable) -> Aperture:

@@ -1,11 +1,13 @@
-"""Mask files in and out: reading any GDSII/OASIS into flat arrays, writing GDSII (and OASIS through gdstk).
+"""Mask files in and out: reading any GDSII/OASIS into flat arrays, writing GDSII and OASIS as streams.
 
 =============  ===========================================================================  =====================
 module         stage                                                                        public entry
 =============  ===========================================================================  =====================
 ``gdsread.py`` GDSII (vectorised record walk, references resolved, hostile input bounded)   ``read_mask``,
                or OASIS -> ``FlatPolygons``; the database unit becomes ``db_unit_nm`` here   ``mask_info``
-``writer.py``  own streaming flat-GDSII writer; gdstk builders for OASIS and hierarchy      ``GdsStream``,
+``stream_read.py`` the same reading as a stream of polygon chunks (never the whole flat mask),  ``iter_mask_chunks``,
+                   and polygon counts without flattening                                    ``count_polygons``
+``writer.py``  own streaming GDSII writer (cells spooled); gdstk builders (bench baseline)  ``GdsStream``,
                                                                                             ``boundary_records``
 ``oasis_read.py``  OASIS -> flat polygon arrays with an own parser (no C extension), every     ``read_oasis``,
                    count checked before anything is expanded                                ``parse_oasis``
@@ -24,6 +26,8 @@ _ENTRIES = {
     "mask_info": "gdsread",
     "FlatPolygons": "gdsread",
     "file_sha256": "gdsread",
+    "iter_mask_chunks": "stream_read",
+    "count_polygons": "stream_read",
     "GdsStream": "writer",
     "boundary_records": "writer",
     "write_gdstk_library": "writer",

@@ -60,6 +60,7 @@ _DTYPE = {_HEADER: 2, _BGNLIB: 2, _UNITS: 5, _BGNSTR: 2, _STRNAME: 6, _LAYER: 2,
           _SNAME: 6, _COLROW: 2, _STRANS: 1, _MAG: 5, _ANGLE: 5, _PATHTYPE: 2, _BOXTYPE: 2, _BGNEXTN: 3,
           _ENDEXTN: 3, _ENDEL: 0, _ENDSTR: 0, _ENDLIB: 0}
 _RUN_CHUNK_MAX = 1 << 16
+_WALK_RUN_MAX = 1 << 20  # elements per recorded BOUNDARY run (a longer run is kept as consecutive sub-runs)
 _DECODE_CHUNK = 1 << 19
 
 
@@ -255,11 +256,12 @@ def _ascii(raw: bytes) -> str:
 class _Records:
     """Validated access to the records of a memory-mapped GDSII file: headers, element templates, element runs."""
 
-    def __init__(self, path: str, mm, buf: np.ndarray):
+    def __init__(self, path: str, mm, buf: np.ndarray, release=None):
         self.path = path
         self.mm = mm
         self.buf = buf
         self.n = buf.shape[0]
+        self.release = release  # callable (mm, start, stop): drop walked pages from the resident set (streaming)
 
     def header(self, pos: int) -> tuple[int, int, int]:
         """(length, record type, data type) of the record at ``pos``, checked against the file and the manual."""
@@ -303,6 +305,8 @@ class _Records:
                 return k
             s0 = pos + k * size
             ok = (self.buf[s0:s0 + m * size].reshape(m, size)[:, cols] == expect).all(axis=1)
+            if self.release is not None:
+                self.release(self.mm, s0, s0 + m * size)
             if not ok.all():
                 return k + int(np.argmin(ok))
             k += m
@@ -396,18 +400,23 @@ def _element_run(rd: _Records, pos: int, cell: _Cell, state: _WalkState) -> int:
     """Stage 2: the run of identically structured elements at ``pos``, decoded as one strided block."""
     size, recs = rd.element_template(pos)
     k = rd.run_length(pos, size, recs)
-    block = rd.buf[pos:pos + k * size].reshape(k, size)
     kind = recs[0][2]
     byt = {}
     for off, length, rtype in recs:
         byt.setdefault(rtype, (off + 4, length - 4))
     cell.n_elements[kind] = cell.n_elements.get(kind, 0) + k
-    if kind in (_BOUNDARY, _BOX):
-        _decode_boundary(rd, pos, block, byt, kind, cell, state.layer_filter)
-    elif kind == _PATH:
-        _decode_path(rd, pos, block, byt, cell, state.layer_filter)
-    elif kind in (_SREF, _AREF):
-        _decode_ref(rd, pos, block, byt, kind, cell, state)
+    step = _WALK_RUN_MAX if kind in (_BOUNDARY, _BOX) else k  # long BOUNDARY runs as sub-runs: bounded temporaries
+    for lo in range(0, k, step):
+        hi = min(k, lo + step)
+        block = rd.buf[pos + lo * size:pos + hi * size].reshape(hi - lo, size)
+        if kind in (_BOUNDARY, _BOX):
+            _decode_boundary(rd, pos + lo * size, block, byt, kind, cell, state.layer_filter)
+        elif kind == _PATH:
+            _decode_path(rd, pos, block, byt, cell, state.layer_filter)
+        elif kind in (_SREF, _AREF):
+            _decode_ref(rd, pos, block, byt, kind, cell, state)
+        if rd.release is not None:
+            rd.release(rd.mm, pos + lo * size, pos + hi * size)
     return pos + k * size
 
 
@@ -928,7 +937,7 @@ def _sniff(path: str) -> str:
 
 
 def _parse(path, layers=None, max_elements: int = DEFAULT_MAX_ELEMENTS, max_vertices: int = DEFAULT_MAX_VERTICES,
-           max_memory_bytes: int | None = None):
+           max_memory_bytes: int | None = None, release=None):
     path = os.fspath(path)
     fmt = _sniff(path)
     filt = _make_filter(layers)
@@ -946,7 +955,7 @@ def _parse(path, layers=None, max_elements: int = DEFAULT_MAX_ELEMENTS, max_vert
     finally:
         fh.close()
     buf = np.frombuffer(mm, dtype=np.uint8, count=size)
-    return _walk_gdsii(_Records(path, mm, buf), filt, max_elements), mm
+    return _walk_gdsii(_Records(path, mm, buf, release), filt, max_elements), mm
 
 
 def read_mask(path, *, layers=None, cell: str | None = None, max_elements: int = DEFAULT_MAX_ELEMENTS,

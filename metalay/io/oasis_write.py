@@ -555,9 +555,15 @@ class OasisStream:
         self.write_packed(pack_cblocks(enc, level=self.level), cell=cell, polygons=enc.polygons,
                           placements=enc.placements)
 
-    def write_packed(self, blob: bytes, *, cell: str | None = None, polygons: int = 0, placements: int = 0) -> None:
-        """Write records already packed by :func:`pack_cblocks` (e.g. in a worker thread) into ``cell``."""
+    def write_packed(self, blob: bytes, *, cell: str | None = None, polygons: int = 0, placements: int = 0,
+                     placed=()) -> None:
+        """Write records already packed by :func:`pack_cblocks` (e.g. in a worker thread) into ``cell``.
+
+        ``placed`` names the cells the records place (their reference numbers were taken from :meth:`refnum`
+        beforehand); each must be defined before the stream closes.
+        """
         ref = self._target(cell)
+        self._placed.update(self.refnum(c) for c in placed)
         self._defined.add(ref)
         self.polygon_count += polygons
         self.placement_count += placements

@@ -1,15 +1,16 @@
-"""Mask writers: GDSII (streaming flat writer, or gdstk for hierarchy) and OASIS (gdstk), atomic and deterministic.
+"""Mask writers: the streaming GDSII writer of the compile, and gdstk builders kept as the benchmarks' baseline.
 
-Flat GDSII
+GDSII
     Written by :class:`GdsStream`, a vectorised writer of GDSII Stream Format records: each tile's elements
-    become one big-endian int32 array of BOUNDARY records written in one call. This is the only route that
-    streams tile by tile with bounded memory and runs near the disk's write speed (gdstk's ``write_gds`` holds the
-    whole library in memory and expands every repetition; see DEVELOPERS.md). gdstk reads these files back in the
-    tests, and an independent minimal parser checks the records.
-Hierarchical GDSII and OASIS
-    Built as gdstk libraries: one polygon plus an explicit-offset repetition per distinct snapped shape (flat), or
-    one master cell per rotation level placed by plain (unrotated) references (``levels``). OASIS keeps the
-    repetitions natively, which is why it is 20-30x smaller than GDSII.
+    become one big-endian int32 array of BOUNDARY records (or a uint8 array of SREF records,
+    :func:`sref_records`) written in one call. Records of other structures than the top one (rotation-level
+    masters, write-field cells) are spooled to a temporary file and copied out at the end, so hierarchical files
+    stream as well. gdstk's ``write_gds`` holds the whole library in memory and expands every repetition (see
+    DEVELOPERS.md); gdstk reads these files back in the tests, and an independent minimal parser checks the records.
+gdstk builders
+    :func:`build_gdstk_flat`, :func:`build_gdstk_levels`, :func:`build_gdstk_fields` and
+    :func:`write_gdstk_library` hold every site in memory; the compile no longer uses them (OASIS is written by
+    :class:`metalay.io.oasis_write.OasisStream`), the benchmarks measure against them.
 
 Every file is written to a temporary name in the output folder and renamed when complete; timestamps are fixed
 (1970-01-01 00:00:00) so the same input gives the same bytes.
@@ -28,6 +29,7 @@ import hashlib
 import os
 import shutil
 import struct
+import tempfile
 from pathlib import Path
 
 import numpy as np
@@ -42,6 +44,7 @@ __all__ = [
     "build_gdstk_fields",
     "boundary_records",
     "boundary_records_rows",
+    "sref_records",
     "gds_real8",
     "write_gdstk_library",
     "build_gdstk_flat",
@@ -57,6 +60,7 @@ MAX_GDS_VERTICES = 8190
 _HEADER, _BGNLIB, _LIBNAME, _UNITS, _ENDLIB = 0x0002, 0x0102, 0x0206, 0x0305, 0x0400
 _BGNSTR, _STRNAME, _ENDSTR = 0x0502, 0x0606, 0x0700
 _BOUNDARY, _LAYER, _DATATYPE, _XY, _ENDEL = 0x0800, 0x0D02, 0x0E02, 0x1003, 0x1100
+_SREF, _SNAME = 0x0A00, 0x1206
 
 
 def gds_real8(value: float) -> bytes:
@@ -96,18 +100,28 @@ def _date_payload() -> bytes:
 
 
 class GdsStream:
-    """Stream a flat GDSII library with one top cell, element chunk by element chunk.
+    """Stream a GDSII library tile by tile: one top structure, optionally more structures (cells) spooled aside.
 
-    Use as a context manager; the file appears at ``path`` only when the block ends without error.
+    Use as a context manager; the file appears at ``path`` only when the block ends without error. Records for the
+    top structure go straight to the file; records for another cell (``cell=``: a rotation-level master, a write
+    field) are spooled to an unnamed temporary file beside the output and copied out, one structure per cell in
+    the order the cells were first used, after the top structure ends. Memory stays bounded by one tile.
 
     Parameters
     ----------
     path : str or Path
         Output file.
     cell_name : str
-        Name of the single top cell.
+        Name of the top structure.
     db_unit_nm : float
         Database unit in nm (user unit is 1 um).
+
+    Attributes
+    ----------
+    sha256 : str or None
+        SHA-256 (hex) of the whole file, set when the block ends without error.
+    element_count : int
+        Elements written (boundaries and references, in every structure).
     """
 
     def __init__(self, path, cell_name: str, *, db_unit_nm: float = 1.0):
@@ -119,6 +133,8 @@ class GdsStream:
         self._hash = hashlib.sha256()
         self._ctx = None
         self._fh = None
+        self._spool = None
+        self._spooled: dict[str, list[tuple[int, int]]] = {}
 
     def _write(self, data) -> None:
         self._fh.write(data)
@@ -136,33 +152,96 @@ class GdsStream:
         self._write(head)
         return self
 
-    def boundaries(self, layer: int, datatype: int, vertices_db: np.ndarray) -> None:
+    def boundaries(self, layer: int, datatype: int, vertices_db: np.ndarray, *, cell: str | None = None) -> None:
         """Write ``vertices_db`` (N, V, 2) integer coordinates as N BOUNDARY elements (closing point added)."""
-        self.write_records(boundary_records(layer, datatype, vertices_db, where=str(self.path)))
+        self.write_records(boundary_records(layer, datatype, vertices_db, where=str(self.path)), cell=cell)
 
-    def write_records(self, records: np.ndarray | None) -> None:
-        """Write records made by :func:`boundary_records` (one row per element)."""
+    def write_records(self, records: np.ndarray | None, *, cell: str | None = None) -> None:
+        """Write records made by :func:`boundary_records` or :func:`sref_records` (one row per element)."""
         if records is None or len(records) == 0:
             return
-        self._write(memoryview(np.ascontiguousarray(records)).cast("B"))
-        self.element_count += len(records)
+        self.write_bytes(memoryview(np.ascontiguousarray(records)).cast("B"), len(records), cell=cell)
 
-    def polygons(self, polys: list[Polygon]) -> None:
+    def write_bytes(self, data, elements: int, *, cell: str | None = None) -> None:
+        """Write element records already encoded as bytes (``elements`` of them) into ``cell`` (default: top)."""
+        self.element_count += int(elements)
+        if cell is None or cell == self.cell_name:
+            if len(data):
+                self._write(data)
+            return
+        _check_name(cell, str(self.path))
+        if self._spool is None:
+            self._spool = tempfile.TemporaryFile(dir=self.path.parent)
+        off = self._spool.seek(0, 2)
+        self._spool.write(data)
+        self._spooled.setdefault(cell, []).append((off, len(data)))
+
+    def polygons(self, polys: list[Polygon], *, cell: str | None = None) -> None:
         """Write a few individual polygons (frame, label, marks)."""
         for p in polys:  # a handful of polygons, not sites
-            self.boundaries(p.layer, p.datatype, np.asarray(p.xy_db, dtype=np.int64)[None])
+            self.boundaries(p.layer, p.datatype, np.asarray(p.xy_db, dtype=np.int64)[None], cell=cell)
+
+    def define_cell(self, name: str) -> None:
+        """Make sure cell ``name`` is written as a structure even when nothing was added to it."""
+        _check_name(name, str(self.path))
+        self._spooled.setdefault(name, [])
+
+    def _finish(self) -> None:
+        self._write(_record(_ENDSTR))
+        for name, pieces in self._spooled.items():  # cells in the order of first use
+            self._write(_record(_BGNSTR, _date_payload()) + _string(_STRNAME, name))
+            for off, n in pieces:
+                self._spool.seek(off)
+                left = n
+                while left:
+                    chunk = self._spool.read(min(left, 8 << 20))
+                    if not chunk:
+                        raise OutputError(f"{self.path}: temporary cell data lost")
+                    self._write(chunk)
+                    left -= len(chunk)
+            self._write(_record(_ENDSTR))
+        self._write(_record(_ENDLIB))
+        self.sha256 = self._hash.hexdigest()
 
     def __exit__(self, exc_type, exc, tb):
         try:
             if exc_type is None:
-                self._write(_record(_ENDSTR) + _record(_ENDLIB))
-                self.sha256 = self._hash.hexdigest()
+                self._finish()
         except BaseException as err:  # a failed final write: the partial file is discarded, the error propagates
-            self._fh.close()
+            self._close()
             self._ctx.__exit__(type(err), err, err.__traceback__)
             raise
-        self._fh.close()
+        self._close()
         return self._ctx.__exit__(exc_type, exc, tb)
+
+    def _close(self) -> None:
+        for fh in (self._fh, self._spool):
+            if fh is not None:
+                fh.close()
+
+
+def _check_name(name: str, where: str) -> None:
+    """Structure names: 1 or more printable ASCII characters without spaces (0x21-0x7E), like the top cell's."""
+    if not (name and all(0x21 <= ord(c) <= 0x7E for c in name)):
+        raise OutputError(f"{where}: structure name {name!r} (allowed: printable ASCII characters, no spaces)")
+
+
+def sref_records(cell: str, centres_db: np.ndarray, *, where: str = "GDSII") -> np.ndarray:
+    """GDSII SREF records placing structure ``cell`` (no rotation, no reflection) at each of ``centres_db`` (N, 2).
+
+    Returns an (N, bytes) uint8 array, one row per element: SREF, SNAME, XY (one point), ENDEL. Pure function of
+    its inputs (tiles can be encoded in worker threads).
+    """
+    c = np.asarray(centres_db, dtype=np.int64).reshape(-1, 2)
+    if c.size and (c.min() < -(2 ** 31) or c.max() >= 2 ** 31):
+        raise OutputError(f"{where}: coordinates exceed the 32-bit range of GDSII at this database unit")
+    head = np.frombuffer(_record(_SREF) + _string(_SNAME, cell) + struct.pack(">HH", 12, _XY), np.uint8)
+    tail = np.frombuffer(_record(_ENDEL), np.uint8)
+    rows = np.empty((c.shape[0], head.size + 8 + tail.size), np.uint8)
+    rows[:, :head.size] = head
+    rows[:, head.size:head.size + 8] = c.astype(">i4").view(np.uint8).reshape(-1, 8)
+    rows[:, head.size + 8:] = tail
+    return rows
 
 
 def boundary_records(layer: int, datatype: int, vertices_db: np.ndarray | None = None, *,

@@ -4,6 +4,8 @@
 module           stage                                                                    public entry
 ===============  =======================================================================  ========================
 ``mapping.py``   phase -> cell + rotation per site (theta = sigma phi / 2 mod pi)         ``assign_cells``
+``spinmap.py``   two target phases (one per input spin) -> cell + rotation per site          ``assign_spin_cells``
+                 (spin-decoupled libraries)
 ``layout.py``    rotated outlines snapped to the database grid, shape grouping, frame,    ``element_offsets``,
                  label                                                                    ``group_shapes``
 ``process.py``   bias, tone inversion (band by band, hole-free pieces), write fields,     ``bias_outline_nm``,
@@ -11,8 +13,11 @@ module           stage                                                          
                                                                                           ``fit_write_fields``
 ``steps.py``     what a compile hands to its checks                                       ``MaskCheck``,
                                                                                           ``WrittenMask``
-``compile.py``   the pipeline tile by tile in named stages (plan, tiles, gdstk formats,   ``compile_mask``
-                 checks handed in, manifest)
+``compile.py``   the pipeline tile by tile in named stages (plan, tiles written as they    ``compile_mask``
+                 come, checks handed in, manifest)
+``_emit.py``     one tile -> encoded GDSII/OASIS parts (flat, levels, fields, tone);      (internal)
+                 the sink that writes them in tile order
+``cluster.py``   the tiles as tasks on a Dask cluster, parts merged in order              ``tile_runner``
 ===============  =======================================================================  ========================
 
 Imports: design, cells, io, util. Never the checks: :func:`compile_mask` receives them as ``MaskCheck`` steps
@@ -23,6 +28,7 @@ from metalay.util._lazy import lazy_entries
 
 _ENTRIES = {
     "assign_cells": "mapping",
+    "assign_spin_cells": "spinmap",
     "element_offsets": "layout",
     "group_shapes": "layout",
     "bias_outline_nm": "process",

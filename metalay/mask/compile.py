@@ -5,13 +5,16 @@ whole (:func:`metalay.util.atomic.published_folder`):
 
 1. ``_plan``: library, cells and their biased outlines, datatypes, tiles, output formats; refuses a compile that
    cannot fit the machine's memory or disk before anything is written;
-2. ``_write_tiles``: per tile (a band of lattice rows, ``_tile`` / ``_complement_tile`` in worker threads): sites ->
-   target phase -> cell and rotation -> snapped polygons -> streamed into the flat GDSII file; statistics summed and
-   shape groups (or rotation levels) gathered for OASIS and hierarchical GDSII;
-3. ``_write_gdstk_formats``: OASIS and hierarchical GDSII through gdstk;
-4. ``_run_checks``: the checks the caller hands in (:class:`~metalay.mask.steps.MaskCheck` steps; this module never
+2. ``_write_tiles``: per tile (a band of lattice rows, ``_tile`` / ``_complement_tile`` in worker threads, or as
+   tasks on a Dask cluster through :mod:`metalay.mask.cluster`): sites -> target phase -> cell and rotation ->
+   snapped polygons -> the records of every output file (flat or hierarchical GDSII, OASIS with repetitions and
+   CBLOCKs; :mod:`metalay.mask._emit`), written in tile order by one thread; statistics summed in tile order;
+3. ``_run_checks``: the checks the caller hands in (:class:`~metalay.mask.steps.MaskCheck` steps; this module never
    imports a check, the standard set is :func:`metalay.checks.steps.default_checks`);
-5. ``_manifest``: counts, worst errors, warnings, check results, file hashes.
+4. ``_manifest``: counts, worst errors, warnings, check results, file hashes.
+
+Memory is bounded by a few tiles whatever the mask size; the same input gives the same bytes for any number of
+threads or cluster workers.
 """
 
 from __future__ import annotations
@@ -40,20 +43,10 @@ from metalay.design.phase import phase_gradient, target_phase
 from metalay.design.side import Facing, resolve_facing
 from metalay.design.spec import Design
 from metalay.errors import DesignError, MetalayError, OutputError
-from metalay.io.writer import (
-    GdsStream,
-    add_polygons,
-    boundary_records,
-    boundary_records_rows,
-    build_gdstk_fields,
-    build_gdstk_flat,
-    build_gdstk_levels,
-    write_gdstk_library,
-)
+from metalay.mask._emit import EmitPlan, MaskSink, SlotElements, emit_complement, emit_elements
 from metalay.mask.layout import (
     element_offsets,
     frame_polygons,
-    group_shapes,
     recovered_rotation,
     snap_centres,
     snap_rows,
@@ -69,13 +62,11 @@ from metalay.mask.process import (
     complement_tile,
     default_mark_positions_um,
     dose_datatype_lut,
-    field_cell_name,
-    field_index,
     fit_write_fields,
     frame_region_db,
-    pieces_by_vertex_count,
     shift_phase_error_rad,
 )
+from metalay.mask.spinmap import assign_spin_cells
 from metalay.mask.steps import MaskCheck, WrittenMask
 from metalay.util._memory import keep_freed_memory
 from metalay.util.atomic import atomic_write_text, pause_point, published_folder
@@ -207,7 +198,7 @@ def _sha256(path: Path) -> str:
 def compile_mask(design: Design, out_dir: str | Path, *, checks: Sequence[MaskCheck] = (),
                  show_progress: bool | None = None, sites_per_tile: int = SITES_PER_TILE,
                  annotations: dict | None = None, max_memory_bytes: int | None = None,
-                 report=None) -> CompileResult:
+                 report=None, workers: int | None = None, scheduler: str | None = None) -> CompileResult:
     """Compile ``design`` into mask files and a manifest in ``out_dir`` (all or nothing), then run ``checks``.
 
     Everything is written into a staging folder beside ``out_dir`` and switched in as a whole with one rename when
@@ -243,6 +234,12 @@ def compile_mask(design: Design, out_dir: str | Path, *, checks: Sequence[MaskCh
     report : callable (WrittenMask, manifest dict, sections dict) -> str, optional
         Writes ``report.html`` after the manifest from the manifest and the report sections the checks handed
         back (``sections[check name]``); :func:`metalay.checks.steps.compile_report_step` is the standard one.
+    workers : int, optional
+        Run the tiles as tasks on a local Dask cluster of this many worker processes
+        (:mod:`metalay.mask.cluster`); the files are byte-identical to a compile without it.
+    scheduler : str, optional
+        Address of an existing Dask scheduler (``tcp://host:8786``) to run the tiles on instead; its workers must
+        see the output folder's file system.
 
     Returns
     -------
@@ -250,11 +247,17 @@ def compile_mask(design: Design, out_dir: str | Path, *, checks: Sequence[MaskCh
     """
     keep_freed_memory()
     out = Path(out_dir)
-    with published_folder(out) as stage:
+    with published_folder(out) as stage, contextlib.ExitStack() as cluster:
+        runner = None
+        if workers is not None or scheduler is not None:
+            from metalay.mask.cluster import tile_runner
+
+            runner = cluster.enter_context(tile_runner(stage, workers=workers, scheduler=scheduler,
+                                                       where=str(design.source_path)))
         try:
             result = _compile_into(design, stage, checks=checks, show_progress=show_progress,
                                    sites_per_tile=sites_per_tile, annotations=annotations or {},
-                                   max_memory_bytes=max_memory_bytes, report=report)
+                                   max_memory_bytes=max_memory_bytes, report=report, runner=runner)
         except OSError as exc:  # e.g. the disk filled up while writing: one line, nothing left behind
             raise OutputError(_write_failure(out, exc)) from exc
         except MetalayError as exc:  # name the output folder the user gave, not the staging folder beside it
@@ -274,8 +277,8 @@ def _write_failure(out: Path, exc: OSError) -> str:
 
 def _compile_into(design: Design, out: Path, *, checks: Sequence[MaskCheck], show_progress: bool | None,
                   sites_per_tile: int, annotations: dict, max_memory_bytes: int | None = None,
-                  report=None) -> CompileResult:
-    """The stages of one compile into the folder ``out``: plan, tiles, gdstk formats, checks, manifest."""
+                  report=None, runner=None) -> CompileResult:
+    """The stages of one compile into the folder ``out``: plan, tiles (written as they come), checks, manifest."""
     t_start = time.perf_counter()
     timings: dict[str, float] = {}
     enabled = [c for c in checks if c.enabled(design)]
@@ -284,20 +287,11 @@ def _compile_into(design: Design, out: Path, *, checks: Sequence[MaskCheck], sho
                  check_bytes_per_site=max([c.bytes_per_site for c in enabled], default=0.0),
                  max_memory_bytes=max_memory_bytes)
     t0 = time.perf_counter()
-    gathered, known_hashes = _write_tiles(plan, show_progress=show_progress)
-    timings["layout_and_flat_gds_s"] = time.perf_counter() - t0
-    if gathered.totals.n_sites == 0:
-        raise DesignError(f"{design.source_path}: no whole unit cell fits inside the aperture (allowed: aperture "
-                          f"larger than one cell of period {design.lattice.period_nm:g} nm)")
-    files: dict[str, Path] = {}
-    if plan.stream_gds:
-        files["gds"] = plan.gds_path
-    if plan.gdstk_formats:
-        t0 = time.perf_counter()
-        files.update(_write_gdstk_formats(plan, gathered))
-        timings["gdstk_write_s"] = time.perf_counter() - t0
+    gathered, known_hashes = _write_tiles(plan, show_progress=show_progress, runner=runner)
+    timings["layout_and_write_s"] = time.perf_counter() - t0
+    files = {fmt: plan.paths[fmt] for fmt in ("gds", "oas") if fmt in design.mask.formats}
     pause_point("written")
-    results, sections = _run_checks(plan, enabled, files, timings)
+    results, sections = _run_checks(plan, enabled, files, timings, max_memory_bytes)
     pause_point("checked")
     manifest = _manifest(plan, gathered, files, results, known_hashes)
     if annotations:
@@ -335,8 +329,7 @@ class _Plan:
     grid: WriteFieldGrid | None
     tiles: list              # (row0, row1) per tile, or (rows, box_db, verify) per complement band
     ctx: "_TileContext"
-    stream_gds: bool         # flat GDSII streamed tile by tile by our own writer
-    need_groups: bool        # OASIS or hierarchical GDSII: gather shape groups for gdstk
+    need_groups: bool        # OASIS or hierarchical output: group the elements by exact shape (or level) per tile
     per_field: bool          # one GDSII/OASIS cell per write field
     facing: Facing = Facing()  # the side the light arrives from (mapping frame)
 
@@ -353,8 +346,12 @@ class _Plan:
         return self.out / ".structures-for-rules.gds"
 
     @property
-    def gdstk_formats(self) -> list[str]:
-        return [f for f in self.design.mask.formats if f == "oas" or (f == "gds" and not self.stream_gds)]
+    def oas_path(self) -> Path:
+        return self.out / f"{self.design.name}.oas"
+
+    @property
+    def paths(self) -> dict:
+        return {"gds": self.gds_path, "oas": self.oas_path, "holes": self.holes_path}
 
     def datatype(self, purpose: str) -> int:
         return int(self.lut[self.classes.index(purpose)])
@@ -363,14 +360,16 @@ class _Plan:
 def _cells_and_outlines(design: Design, library: CellLibrary) -> tuple[list, list]:
     """Cell ids the design uses and their biased outlines (nm, rotation 0)."""
     mask = design.mask
+    _check_spin_library(design, library)
     if library.phase_mechanism == "geometric":
         cell_ids = [mask.cell or library.cells[0].id]
         library.cell_index(cell_ids[0])
     else:
         cell_ids = [c.id for c in library.cells]
+        kind = "propagation-phase" if library.phase_mechanism == "propagation" else "spin-decoupled"
         if mask.cell is not None:
             raise DesignError(f"{design.source_path}: key 'mask.cell' = {mask.cell!r}: not allowed with the "
-                              f"propagation-phase library {library.name!r} (it chooses cells by phase)")
+                              f"{kind} library {library.name!r} (it chooses cells by phase)")
         if mask.hierarchy == "levels":
             raise DesignError(f"{design.source_path}: key 'mask.hierarchy' = 'levels': only for geometric-phase "
                               "libraries (allowed here: 'flat')")
@@ -378,6 +377,19 @@ def _cells_and_outlines(design: Design, library: CellLibrary) -> tuple[list, lis
                                 corner=mask.bias_corners, where=design.source_path)
                 for c in cell_ids]
     return cell_ids, outlines
+
+
+def _check_spin_library(design: Design, library: CellLibrary) -> None:
+    """A design with a phase per input spin needs a spin_decoupled library, and such a library needs one."""
+    spin_lib = library.phase_mechanism == "spin_decoupled"
+    if design.spin_decoupled and not spin_lib:
+        raise DesignError(f"{design.source_path}: key 'design.library' = {design.library!r}: a design with "
+                          "[[phase_spin_plus]] and [[phase_spin_minus]] needs a spin_decoupled library (bundled: "
+                          f"tio2-decoupled-532, asi-decoupled-1550); {library.name!r} is {library.phase_mechanism}")
+    if spin_lib and not design.spin_decoupled:
+        raise DesignError(f"{design.source_path}: key 'design.library' = {design.library!r}: a spin_decoupled "
+                          "library gives each input spin its own phase; give [[phase_spin_plus]] and "
+                          "[[phase_spin_minus]] instead of [[phase]] and design.input_spin")
 
 
 def _datatype_table(design: Design, cell_ids: list) -> tuple[list, np.ndarray]:
@@ -413,25 +425,28 @@ def _plan(design: Design, out: Path, *, sites_per_tile: int, structures_for_chec
     tiles = [(a, min(a + rows_per_tile, j1)) for a in range(j0, j1, rows_per_tile)]
     want_gds = "gds" in mask.formats
     per_field = mask.write_field is not None and mask.write_field.cell_per_field
-    stream_gds = want_gds and mask.hierarchy == "flat" and not per_field
-    need_groups = "oas" in mask.formats or (want_gds and not stream_gds)
-    _check_resources(design, out, outlines, stream_gds=stream_gds, need_groups=need_groups,
+    mode = "complement" if complement else "fields" if per_field else mask.hierarchy
+    need_groups = "oas" in mask.formats or mode != "flat"
+    _check_resources(design, out, outlines, gds_mode=mode if want_gds else None,
                      check_bytes_per_site=check_bytes_per_site, max_memory_bytes=max_memory_bytes)
+    emit = EmitPlan(design.name, mode, gds=want_gds, oas="oas" in mask.formats,
+                    holes=complement and structures_for_checks, grid=grid if per_field else None,
+                    keys=need_groups and not complement)
     level_offsets = None
     if mask.rotation_levels:
         thetas = np.arange(mask.rotation_levels) * np.pi / mask.rotation_levels
         level_offsets = [element_offsets(o, thetas, db_unit_nm) for o in outlines]  # (K, V, 2) per cell
     ctx = _TileContext(design=design, library=library, cell_ids=cell_ids, outlines=outlines,
                        level_offsets=level_offsets, layer=mask.layer("structures")[0],
-                       datatypes=tuple(int(v) for v in lut), encode_gds=stream_gds and not complement,
+                       datatypes=tuple(int(v) for v in lut), emit=emit,
                        need_groups=need_groups and not complement,
                        alias_stride=max(1, int(math.ceil(_estimate_sites(design) / ALIAS_SAMPLES))),
                        grid=grid, min_gap_db=float(library.rules.get("min_gap_nm", 0.0)) / db_unit_nm,
                        facing=facing)
     if complement:
         ctx, tiles = _complement_plan(design, ctx, outlines, grid, encode_structures=structures_for_checks)
-    return _Plan(design, library, out, cell_ids, outlines, classes, lut, grid, tiles, ctx, stream_gds,
-                 need_groups, per_field, facing)
+    return _Plan(design, library, out, cell_ids, outlines, classes, lut, grid, tiles, ctx, need_groups, per_field,
+                 facing)
 
 
 def _complement_plan(design: Design, ctx: "_TileContext", outlines, grid, *, encode_structures: bool):
@@ -465,6 +480,8 @@ class _Totals:
                                                      "kept_straddling": 0})
     worst_shift_nm: float = 0.0
     worst_shift_phase: float = 0.0
+    spin_quant: dict = field(default_factory=lambda: {1: 0.0, -1: 0.0})  # spin-decoupled: worst error per spin
+    cell_phase_err: float = 0.0                                          # spin-decoupled: common cell-set error
     comp: dict = field(default_factory=lambda: {"polygons": 0, "max_vertices": 0, "area_db2": 0.0,
                                                 "target_area_db2": 0.0, "xor_db2": 0.0, "xor_bound_db2": 0.0,
                                                 "bands_verified": 0})
@@ -474,6 +491,8 @@ class _Totals:
         self.per_cell += tile.per_cell
         self.worst_snap = max(self.worst_snap, tile.worst_snap)
         self.quant_err = max(self.quant_err, tile.quant_err)
+        self.spin_quant = {k: max(v, tile.spin_quant[k]) for k, v in self.spin_quant.items()}
+        self.cell_phase_err = max(self.cell_phase_err, tile.cell_phase_err)
         self.alias_hits += tile.alias_hits
         self.alias_total += tile.alias_total
         self.alias_r = [min(self.alias_r[0], tile.alias_r[0]), max(self.alias_r[1], tile.alias_r[1])]
@@ -495,122 +514,52 @@ class _Totals:
 
 @dataclass
 class _Gathered:
-    """What the tiles leave for the gdstk writers and the manifest."""
+    """What the tiles leave for the manifest."""
 
     totals: _Totals
-    shape_table: dict = field(default_factory=dict)  # (cell slot, shape key) -> group id
-    shape_list: list = field(default_factory=list)   # (cell slot, offsets (V, 2)) per group
-    site_shape: list = field(default_factory=list)   # group id per site, per tile
-    site_centre: list = field(default_factory=list)  # centres per site, per tile
-    comp_pieces: list = field(default_factory=list)  # (vertex count, vertices) of tone-inversion pieces
-    extras: list = field(default_factory=list)       # frame, label, marks
-
-    def add_groups(self, groups) -> None:
-        """Give each distinct shape (or rotation level) of a tile a global group id."""
-        for slot, local_keys, local_shapes, shape_idx, centres in groups:
-            gmap = np.empty(len(local_keys), dtype=np.int32)
-            for u, key in enumerate(local_keys):  # distinct shapes or levels (~1e3), not sites
-                gid = self.shape_table.get((slot, key))
-                if gid is None:
-                    gid = self.shape_table[(slot, key)] = len(self.shape_list)
-                    self.shape_list.append((slot, local_shapes[u]))
-                gmap[u] = gid
-            self.site_shape.append(gmap[shape_idx])
-            self.site_centre.append(centres)
-
-    def members(self) -> list[np.ndarray]:
-        """Centres (int64, (n_g, 2)) of the sites of each group, consuming the per-tile lists."""
-        shape_of_site = np.concatenate(self.site_shape)
-        centres_all = np.concatenate(self.site_centre)
-        self.site_shape, self.site_centre = [], []
-        order = np.argsort(shape_of_site, kind="stable")
-        bounds = np.searchsorted(shape_of_site[order], np.arange(len(self.shape_list) + 1))
-        return [centres_all[order[bounds[g]:bounds[g + 1]]].astype(np.int64) for g in range(len(self.shape_list))]
+    keys: set = field(default_factory=set)  # distinct snapped shapes (or rotation levels) over all tiles
 
 
-def _write_tiles(plan: _Plan, *, show_progress: bool | None) -> tuple[_Gathered, dict[str, str]]:
-    """Stage 2: run every tile (threads, in order), stream the flat GDSII, gather statistics and shape groups.
+def _write_tiles(plan: _Plan, *, show_progress: bool | None, runner=None) -> tuple[_Gathered, dict[str, str]]:
+    """Stage 2: run every tile (in worker threads, or as tasks of ``runner``), write each tile's parts into every
+    output file in tile order, gather statistics; then the frame, label, marks, masters and field placements.
 
-    Returns the gathered data and the SHA-256 of the streamed GDSII (computed while writing).
+    Returns the gathered data and the SHA-256 of every file written (computed while writing).
     """
     design, mask = plan.design, plan.design.mask
-    db_unit_nm = mask.db_unit_nm
     gathered = _Gathered(_Totals(0, np.zeros(len(plan.cell_ids), dtype=np.int64)))
-    known_hashes: dict[str, str] = {}
+    fn = _complement_tile if plan.complement else _tile
     bar = progress(total=len(plan.tiles), desc=f"{design.name}: tiles", enabled=show_progress, unit="tile")
-    with contextlib.ExitStack() as streams:
-        stream = holes = None
-        if plan.stream_gds:
-            stream = streams.enter_context(GdsStream(plan.gds_path, design.name, db_unit_nm=db_unit_nm))
-        if plan.ctx.encode_structures:
-            holes = streams.enter_context(GdsStream(plan.holes_path, design.name, db_unit_nm=db_unit_nm))
-        target = holes if plan.complement else stream
-        for tile in _run_tiles(plan.tiles, plan.ctx, _complement_tile if plan.complement else _tile):
-            bar.update(1)
-            if tile.n == 0 and tile.complement is None:
-                continue
+    tiles = _run_tiles(plan.tiles, plan.ctx, fn) if runner is None else runner(plan.tiles, plan.ctx, fn, bar)
+    with MaskSink(plan.ctx.emit, plan.paths, db_unit_nm=mask.db_unit_nm,
+                  rotation_levels=mask.rotation_levels) as sink:
+        for tile in tiles:
+            if runner is None:
+                bar.update(1)
             gathered.totals.add(tile)
-            if target is not None:
-                for rec in tile.records:
-                    target.write_records(rec)
-            if tile.complement is not None:
-                for nv, verts in pieces_by_vertex_count(tile.complement):
-                    if stream is not None:
-                        stream.boundaries(plan.ctx.layer, plan.datatype("complement"), verts)
-                    if "oas" in mask.formats:
-                        gathered.comp_pieces.append((nv, verts))
-            gathered.add_groups(tile.groups)
+            sink.write(tile.parts, tile.keys)
         bar.close()
-        gathered.extras = _extras(design, plan.library, plan.lut, plan.classes)
-        for s in (stream, holes):
-            if s is not None:
-                s.polygons(gathered.extras)
-    if stream is not None:
-        known_hashes[plan.gds_path.name] = stream.sha256
-    return gathered, known_hashes
-
-
-# ----------------------------------------------------------------------------------------------------------------
-# Stage 3: OASIS and hierarchical GDSII through gdstk
-# ----------------------------------------------------------------------------------------------------------------
-
-def _write_gdstk_formats(plan: _Plan, gathered: _Gathered) -> dict[str, Path]:
-    """Stage 3: build one gdstk library from the gathered groups (or complement pieces) and write each format."""
-    name, mask = plan.design.name, plan.design.mask
-    db_unit_nm = mask.db_unit_nm
-    s_layer = plan.ctx.layer
-    if plan.complement:
-        lib = build_gdstk_flat(name, [], gathered.extras, db_unit_nm=db_unit_nm)
-        add_polygons(lib, name, s_layer, plan.datatype("complement"), [v for _, v in gathered.comp_pieces],
-                     db_unit_nm=db_unit_nm)
-        gathered.comp_pieces = []
-    else:
-        members = gathered.members()
-        shape_list = gathered.shape_list
-        if plan.per_field:
-            lib = _field_library(name, shape_list, members, plan.lut, s_layer, plan.grid, gathered.extras,
-                                 db_unit_nm)
-        elif mask.hierarchy == "levels":
-            lib = build_gdstk_levels(name, [(s_layer, int(plan.lut[slot]), shp) for slot, shp in shape_list],
-                                     members, gathered.extras, db_unit_nm=db_unit_nm)
-        else:
-            lib = build_gdstk_flat(name, [(s_layer, int(plan.lut[slot]), shp, m)
-                                          for (slot, shp), m in zip(shape_list, members)], gathered.extras,
-                                   db_unit_nm=db_unit_nm)
-        del members
-    return {fmt: write_gdstk_library(lib, plan.out / f"{name}.{fmt}", fmt) for fmt in plan.gdstk_formats}
+        if gathered.totals.n_sites == 0:
+            raise DesignError(f"{design.source_path}: no whole unit cell fits inside the aperture (allowed: "
+                              f"aperture larger than one cell of period {design.lattice.period_nm:g} nm)")
+        sink.finish(_extras(design, plan.library, plan.lut, plan.classes), layer=plan.ctx.layer,
+                    datatypes=plan.ctx.datatypes, level_shapes=plan.ctx.level_offsets)
+    gathered.keys = sink.keys
+    return gathered, sink.hashes()
 
 
 # ----------------------------------------------------------------------------------------------------------------
 # Stage 4: the checks handed in by the caller; stage 5: the manifest
 # ----------------------------------------------------------------------------------------------------------------
 
-def _run_checks(plan: _Plan, checks: Sequence[MaskCheck], files: dict, timings: dict) -> tuple[dict, dict]:
+def _run_checks(plan: _Plan, checks: Sequence[MaskCheck], files: dict, timings: dict,
+                max_memory_bytes: int | None = None) -> tuple[dict, dict]:
     """Stage 4: run each enabled check on the primary mask file; results keyed by check name, and the report
     sections the checks handed back (``report_sections``: kept out of the manifest) keyed the same way."""
     primary = files.get("gds") or files.get("oas")
     written = WrittenMask(primary, plan.library, plan.design,
-                          structures_path=plan.holes_path if plan.ctx.encode_structures else None)
+                          structures_path=plan.holes_path if plan.ctx.encode_structures else None,
+                          max_memory_bytes=max_memory_bytes)
     results, sections = {}, {}
     for check in checks:
         t0 = time.perf_counter()
@@ -658,8 +607,13 @@ def _writing_verdict(plan: _Plan, totals: _Totals) -> dict:
     """Verdicts of the writing itself: snapping and quantisation errors, elements dropped or shifted at write-field
     edges (thresholds from the design's ``[checks.limits]``, :mod:`metalay.design.limits`)."""
     limits = plan.design.checks.limits
-    items = [judge(math.degrees(totals.worst_snap), limits.get("snapping_phase_error_deg")),
-             judge(math.degrees(totals.quant_err), limits.get("quantisation_phase_error_deg"))]
+    items = [judge(math.degrees(totals.worst_snap), limits.get("snapping_phase_error_deg"))]
+    if plan.design.spin_decoupled:  # each input spin judged on its own phase error (cell set + rotation levels)
+        for sigma in (1, -1):
+            item = judge(math.degrees(totals.spin_quant[sigma]), limits.get("quantisation_phase_error_deg"))
+            items.append({**item, "spin": sigma, "text": f"spin {sigma:+d}: {item['text']}"})
+    else:
+        items.append(judge(math.degrees(totals.quant_err), limits.get("quantisation_phase_error_deg")))
     if plan.facing.source == "assumed":
         items.append(unmeasured("lit_from", "assumed 'substrate': neither design.lit_from nor the library says"))
     if plan.design.mask.write_field is not None:
@@ -696,6 +650,18 @@ def _verdicts(plan: _Plan, totals: _Totals, checks: dict) -> dict:
             "limits": plan.design.checks.limits.as_dict()}
 
 
+def _per_spin_errors(totals: _Totals) -> dict:
+    """Spin-decoupled designs: the worst phase error of each input spin (cell set and rotation levels, exact per
+    site; snapping, a bound the same for both spins since it is a rotation error) and the common cell-set error."""
+    snap = round(math.degrees(totals.worst_snap), 6)
+    out = {f"{s:+d}": {"worst_quantisation_phase_error_deg": round(math.degrees(totals.spin_quant[s]), 6),
+                       "worst_snapping_phase_error_deg": snap,
+                       "worst_phase_error_bound_deg": round(math.degrees(totals.spin_quant[s]) + snap, 6)}
+           for s in (1, -1)}
+    out["cell_phase_error_deg"] = round(math.degrees(totals.cell_phase_err), 6)
+    return out
+
+
 def _manifest(plan: _Plan, gathered: _Gathered, files: dict, checks: dict, known_hashes: dict) -> dict:
     """Stage 5: the manifest (deterministic: no timings, no dates, file names relative)."""
     design, library, mask = plan.design, plan.library, plan.design.mask
@@ -708,7 +674,7 @@ def _manifest(plan: _Plan, gathered: _Gathered, files: dict, checks: dict, known
         "sites": int(totals.n_sites),
         "fill_factor": round(float(fill), 6),
         "elements_per_cell": {cid: int(c) for cid, c in zip(plan.cell_ids, totals.per_cell)},
-        "distinct_shapes": len(gathered.shape_list) if plan.need_groups and not plan.complement else None,
+        "distinct_shapes": len(gathered.keys) if plan.need_groups and not plan.complement else None,
         "tiles": len(plan.tiles),
     }
     errors = {
@@ -716,6 +682,8 @@ def _manifest(plan: _Plan, gathered: _Gathered, files: dict, checks: dict, known
         "worst_quantisation_phase_error_deg": round(math.degrees(totals.quant_err), 6),
         "aliased_site_fraction": round(alias_fraction, 6),
     }
+    if design.spin_decoupled:
+        errors["per_spin"] = _per_spin_errors(totals)
     return {
         "metalay_manifest_version": 1,
         "process": _process_block(plan, totals),
@@ -752,7 +720,7 @@ class _TileContext:
     level_offsets: list | None
     layer: int
     datatypes: tuple
-    encode_gds: bool
+    emit: EmitPlan
     need_groups: bool
     alias_stride: int
     grid: WriteFieldGrid | None = None
@@ -766,8 +734,8 @@ class _TileContext:
 class _TileOut:
     n: int
     per_cell: np.ndarray
-    records: list
-    groups: list
+    parts: list              # encoded records per file and cell (metalay.mask._emit.Part)
+    keys: set                # distinct shapes (or levels) of the tile
     worst_snap: float = 0.0
     quant_err: float = 0.0
     alias_hits: int = 0
@@ -777,6 +745,8 @@ class _TileOut:
     worst_shift_nm: float = 0.0
     worst_shift_phase: float = 0.0
     complement: object = None
+    spin_quant: dict = field(default_factory=lambda: {1: 0.0, -1: 0.0})
+    cell_phase_err: float = 0.0
 
 
 @dataclass
@@ -801,11 +771,14 @@ def _elements(rows, ctx: _TileContext, out: _TileOut, *, active_rows=None) -> _E
     # the target phase is that of the light leaving the element, in its own frame (mirrored when it is lit from the
     # structures in transmission); the rotation sign follows the side (metalay.design.side)
     bx, by = ctx.facing.beam_xy(sites.x_um, sites.y_um)
-    phi = target_phase(design.terms, bx, by, wavelength_nm=design.wavelength_nm, sigma=design.sigma)
     ncell = len(ctx.cell_ids)
-    a = assign_cells(phi, library, sigma=ctx.facing.rotation_sign * design.sigma,
-                     cell_id=ctx.cell_ids[0] if ncell == 1 else None,
-                     rotation_levels=design.mask.rotation_levels, wavelength_nm=design.wavelength_nm)
+    if design.spin_decoupled:
+        a = _assign_spins(bx, by, ctx, out)
+    else:
+        phi = target_phase(design.terms, bx, by, wavelength_nm=design.wavelength_nm, sigma=design.sigma)
+        a = assign_cells(phi, library, sigma=ctx.facing.rotation_sign * design.sigma,
+                         cell_id=ctx.cell_ids[0] if ncell == 1 else None,
+                         rotation_levels=design.mask.rotation_levels, wavelength_nm=design.wavelength_nm)
     centres = snap_centres(sites.x_um, sites.y_um, db_unit_nm)
     active = None if active_rows is None else (sites.j >= active_rows[0]) & (sites.j < active_rows[1])
     out.quant_err = max(out.quant_err, a.quantisation_error_rad)
@@ -831,14 +804,30 @@ def _elements(rows, ctx: _TileContext, out: _TileOut, *, active_rows=None) -> _E
     return _Elements(slot, theta, level, centres, offsets, snapped)
 
 
+def _assign_spins(bx, by, ctx: _TileContext, out: _TileOut):
+    """Spin-decoupled mapping of one tile (:func:`metalay.mask.spinmap.assign_spin_cells`) at the leaving light's
+    coordinates ``(bx, by)``; records the worst error of each spin and the common cell-set error."""
+    design = ctx.design
+    (_, terms_plus), (_, terms_minus) = design.spin_targets()
+    phi_plus = target_phase(terms_plus, bx, by, wavelength_nm=design.wavelength_nm, sigma=1)
+    phi_minus = target_phase(terms_minus, bx, by, wavelength_nm=design.wavelength_nm, sigma=-1)
+    a = assign_spin_cells(phi_plus, phi_minus, ctx.library, wavelength_nm=design.wavelength_nm,
+                          rotation_levels=design.mask.rotation_levels, rotation_sign=ctx.facing.rotation_sign)
+    out.spin_quant = {k: max(v, a.spin_error_rad[k]) for k, v in out.spin_quant.items()}
+    out.cell_phase_err = max(out.cell_phase_err, a.cell_phase_error_rad)
+    return a
+
+
 def _alias_estimate(sites, active, ctx: _TileContext, out: _TileOut) -> None:
     """Count sites where the phase changes by more than pi per period, on a deterministic sub-sample."""
     design = ctx.design
     own = slice(None) if active is None else active
     xs, ys = ctx.facing.beam_xy(sites.x_um[own][::ctx.alias_stride], sites.y_um[own][::ctx.alias_stride])
-    g = phase_gradient(design.terms, xs, ys, wavelength_nm=design.wavelength_nm, sigma=design.sigma,
-                       step_um=design.lattice.period_um * 1e-3)
-    hit = g * design.lattice.period_um > np.pi
+    hit = np.zeros(xs.shape, bool)
+    for sigma, terms in design.spin_targets():  # one phase per input spin the design writes (1 or 2)
+        g = phase_gradient(terms, xs, ys, wavelength_nm=design.wavelength_nm, sigma=sigma,
+                           step_um=design.lattice.period_um * 1e-3)
+        hit |= g * design.lattice.period_um > np.pi
     out.alias_total += int(hit.size)
     if hit.any():
         out.alias_hits += int(hit.sum())
@@ -898,47 +887,34 @@ def _fit_fields(sites, centres, offsets, slot, active, keep, ctx: _TileContext, 
     if moved.size:
         shift_nm = np.hypot(*fit.shift_db[moved].T.astype(np.float64)) * db_unit_nm
         out.worst_shift_nm = max(out.worst_shift_nm, float(shift_nm.max()))
-        gm = phase_gradient(design.terms, *ctx.facing.beam_xy(sites.x_um[moved], sites.y_um[moved]),
-                            wavelength_nm=design.wavelength_nm, sigma=design.sigma,
-                            step_um=design.lattice.period_um * 1e-3)
-        err = shift_phase_error_rad(fit.shift_db[moved], gm, db_unit_nm=db_unit_nm)
-        out.worst_shift_phase = max(out.worst_shift_phase, float(np.max(err, initial=0.0)))
+        for sigma, terms in design.spin_targets():  # one phase per input spin the design writes (1 or 2)
+            gm = phase_gradient(terms, *ctx.facing.beam_xy(sites.x_um[moved], sites.y_um[moved]),
+                                wavelength_nm=design.wavelength_nm, sigma=sigma,
+                                step_um=design.lattice.period_um * 1e-3)
+            err = shift_phase_error_rad(fit.shift_db[moved], gm, db_unit_nm=db_unit_nm)
+            out.worst_shift_phase = max(out.worst_shift_phase, float(np.max(err, initial=0.0)))
     return fit.centres_db, fit.keep
 
 
 def _tile(rows, ctx: _TileContext) -> _TileOut:
-    """All per-site work of one tile (a band of lattice rows): a pure function, safe to run in a worker thread."""
+    """All per-site work of one tile (a band of lattice rows): a pure function, safe to run in a worker thread or
+    as a task on another machine; the output files' records come back encoded (:mod:`metalay.mask._emit`)."""
     ncell = len(ctx.cell_ids)
-    out = _TileOut(0, np.zeros(ncell, np.int64), [], [])
+    out = _TileOut(0, np.zeros(ncell, np.int64), [], set())
     halo = 1 if ctx.grid is not None else 0  # write-field fitting needs the neighbours across the tile edge
     el = _elements((rows[0] - halo, rows[1] + halo), ctx, out, active_rows=rows if halo else None)
     if el is None:
         return out
+    slots = []
     for k in range(ncell):  # loop over cells (short axis)
         sel = np.flatnonzero(el.slot == k) if ncell > 1 else slice(None)
-        offsets = el.offsets[k]
-        theta = el.theta[sel]
-        if theta.size == 0:
+        n_k = el.theta[sel].size
+        if n_k == 0:
             continue
-        out.per_cell[k] = theta.size
-        c_sel = el.centres[sel]
-        if ctx.encode_gds:
-            if el.snapped[k] is not None:
-                out.records.append(boundary_records_rows(ctx.layer, ctx.datatypes[k], c_sel, el.snapped[k]))
-            else:
-                out.records.append(boundary_records(ctx.layer, ctx.datatypes[k], centres_db=c_sel,
-                                                    offsets_db=offsets))
-        if ctx.need_groups:
-            if ctx.level_offsets is not None:
-                levels_here, idx = np.unique(el.level[sel], return_inverse=True)
-                keys = [int(v) for v in levels_here]
-                shapes = [ctx.level_offsets[k][v] for v in keys]
-            else:
-                groups = group_shapes(offsets)
-                keys = [shp.tobytes() for shp in groups.shapes_db]
-                shapes = list(groups.shapes_db)
-                idx = groups.shape_of_site
-            out.groups.append((k, keys, shapes, idx.ravel(), c_sel.astype(np.int32)))
+        out.per_cell[k] = n_k
+        slots.append(SlotElements(k, ctx.datatypes[k], el.centres[sel], el.offsets[k], el.snapped[k],
+                                  el.level[sel] if el.level is not None else None))
+    out.parts, out.keys = emit_elements(ctx.emit, ctx.layer, slots, where=str(ctx.design.source_path))
     return out
 
 
@@ -946,7 +922,8 @@ def _complement_tile(task, ctx: _TileContext) -> _TileOut:
     """One band of the tone inversion: the region minus the band's elements, as hole-free polygons."""
     rows, box_db, verify = task
     ncell = len(ctx.cell_ids)
-    out = _TileOut(0, np.zeros(ncell, np.int64), [], [])
+    out = _TileOut(0, np.zeros(ncell, np.int64), [], set())
+    holes = []
     el = _elements(rows, ctx, out)
     if el is None:
         centres = np.zeros((0, 2), np.int64)
@@ -967,8 +944,7 @@ def _complement_tile(task, ctx: _TileContext) -> _TileOut:
             for k, o in enumerate(el.offsets):
                 own = inside[el.slot == k] if ncell > 1 else inside
                 c_k = centres[el.slot == k] if ncell > 1 else centres
-                out.records.append(boundary_records(ctx.layer, ctx.datatypes[k], centres_db=c_k[own],
-                                                    offsets_db=o[own]))
+                holes.append(SlotElements(k, ctx.datatypes[k], c_k[own], o[own]))
     cuts = None
     grid = ctx.grid
     if grid is not None:
@@ -977,6 +953,8 @@ def _complement_tile(task, ctx: _TileContext) -> _TileOut:
         k1 = math.ceil((x1 - grid.origin_db[0]) / grid.size_db[0])
         cuts = grid.origin_db[0] + grid.size_db[0] * np.arange(k0, k1 + 1)
     out.complement = complement_tile(centres, offsets, ctx.region, box_db, cut_x_db=cuts, verify=verify)
+    out.parts = emit_complement(ctx.emit, ctx.layer, ctx.datatypes[len(ctx.cell_ids)], out.complement, holes=holes,
+                                where=str(ctx.design.source_path))
     return out
 
 
@@ -999,45 +977,61 @@ def _run_tiles(tiles, ctx: _TileContext, fn=_tile):
 
 #: Measured peak memory per site of the compile's own stages (``bench/bench_admission.py``: the larger of the
 #: virtual-size and the resident-size slope between 1e6 and 4e6 sites, rounded up; figures in DEVELOPERS.md).
-#: Flat GDSII streamed tile by tile (measured 20.5 virtual, 27.0 resident):
+#: Every output (flat or hierarchical GDSII, OASIS) is streamed tile by tile (measured 20.5 virtual, 27.0
+#: resident for flat GDSII; the OASIS and hierarchical outputs keep nothing per site past their tile):
 LAYOUT_BYTES_PER_SITE = 30
-#: Added when OASIS or hierarchical output is built with gdstk: shape ids and centres of every site held until
-#: the end, the sort, gdstk's float64 repetition offsets (measured 42-43 in total with the layout):
-GROUPED_BYTES_PER_SITE = 20
+#: ... up to this many sites: past it the layout's peak stops growing (nothing is held per site past its tile; the
+#: slope above is tiles coming into flight and the allocator's arenas filling). ``bench/bench_scale.py`` measured
+#: the peak resident memory of a flat-GDSII compile at 176 MB (1e6 sites), 239 MB (1e7) and 275 MB (1e8), and of
+#: an OASIS compile at 168, 179 and 186 MB: below 460 MB + 30 B x 1e7 = 760 MB at every size.
+LAYOUT_PLATEAU_SITES = 10_000_000
 #: What a compile needs whatever its size: interpreter and libraries loaded later (plots), tiles in flight (about
 #: 3 x 250,000 sites), thread stacks and allocator arenas (largest intercept measured: 452 MB).
 COMPILE_FIXED_BYTES = 460_000_000
 #: Share of the least memory limit a compile may plan to use: its constants are measured peaks (temporaries
 #: included), so the slack is smaller than the readers' default of one half.
 COMPILE_BUDGET_FRACTION = 0.8
+#: Bytes per element of the GDSII outputs: a flat 4-vertex BOUNDARY is 64 B (4 * (1 + 3 + 1 + 2 * (V + 1) + 1));
+#: a hierarchical SREF is 4 + (4 + name) + 12 + 4 B.
+_SREF_FIXED_BYTES = 24
 
 
-def compile_memory_bytes(sites: float, *, need_groups: bool, check_bytes_per_site: float = 0.0) -> dict:
+def compile_memory_bytes(sites: float, *, check_bytes_per_site: float = 0.0) -> dict:
     """Estimated peak memory of a compile of ``sites`` lattice sites, per stage and in total (bytes).
 
     The stages run one after another and freed memory is reused, so the peak is the largest of them:
-    ``fixed + sites x max(layout + grouped, checks)`` with layout 30 B, grouped 20 B (OASIS or hierarchy only)
-    and checks the largest :attr:`~metalay.mask.steps.MaskCheck.bytes_per_site` of the enabled checks (design
-    rules 300 B, optics 220 B). Constants measured by ``bench/bench_admission.py``.
+    ``fixed + max(layout, checks)`` with layout 30 B per site up to 1e7 sites and constant beyond (every output
+    format is streamed tile by tile; :data:`LAYOUT_PLATEAU_SITES`) and checks the largest
+    :attr:`~metalay.mask.steps.MaskCheck.bytes_per_site` of the enabled checks times the sites (design rules
+    300 B, optics 220 B). Constants measured by ``bench/bench_admission.py`` and ``bench/bench_scale.py``.
 
     Returns
     -------
     dict
-        ``layout``, ``grouped``, ``checks``, ``fixed`` and ``total`` in bytes.
+        ``layout``, ``checks``, ``fixed`` and ``total`` in bytes.
     """
-    parts = {"layout": LAYOUT_BYTES_PER_SITE * sites,
-             "grouped": GROUPED_BYTES_PER_SITE * sites if need_groups else 0.0,
-             "checks": float(check_bytes_per_site) * sites, "fixed": float(COMPILE_FIXED_BYTES)}
-    parts["total"] = parts["fixed"] + max(parts["layout"] + parts["grouped"], parts["checks"])
+    parts = {"layout": LAYOUT_BYTES_PER_SITE * min(sites, LAYOUT_PLATEAU_SITES),
+             "checks": float(check_bytes_per_site) * sites,
+             "fixed": float(COMPILE_FIXED_BYTES)}
+    parts["total"] = parts["fixed"] + max(parts["layout"], parts["checks"])
     return {k: int(v) for k, v in parts.items()}
 
 
-def _check_resources(design: Design, out: Path, outlines, *, stream_gds: bool, need_groups: bool,
+def _gds_bytes_per_site(design: Design, outlines, gds_mode: str) -> float:
+    """Bytes per element of the GDSII mask file in layout ``gds_mode`` (upper bound, for the disk check)."""
+    if gds_mode == "levels":
+        name = len(design.name) + 6
+        return _SREF_FIXED_BYTES + name + name % 2
+    vertices = max(len(o) for o in outlines)
+    return 4 * (1 + 3 + 1 + 2 * (vertices + 1) + 1)
+
+
+def _check_resources(design: Design, out: Path, outlines, *, gds_mode: str | None,
                      check_bytes_per_site: float = 0.0, max_memory_bytes: int | None = None) -> None:
     """Refuse, before writing anything, a compile that cannot fit the memory this process may use or the disk."""
     sites = _estimate_sites(design)
     where = design.source_path
-    need = compile_memory_bytes(sites, need_groups=need_groups, check_bytes_per_site=check_bytes_per_site)
+    need = compile_memory_bytes(sites, check_bytes_per_site=check_bytes_per_site)
     budget = memory_budget(max_memory_bytes, fraction=COMPILE_BUDGET_FRACTION)
     if need["total"] > budget:
         if max_memory_bytes is not None:
@@ -1047,44 +1041,21 @@ def _check_resources(design: Design, out: Path, outlines, *, stream_gds: bool, n
             why = (f"{COMPILE_BUDGET_FRACTION:.0%} of the {limits.binding}, "
                    f"{format_bytes(limits.least_bytes)} free")
         hints = []
-        if need_groups and compile_memory_bytes(sites, need_groups=False, check_bytes_per_site=check_bytes_per_site
-                                                )["total"] <= budget:
-            hints.append(f"key 'mask.formats' = {list(design.mask.formats)} (hierarchy "
-                         f"'{design.mask.hierarchy}') -> formats = ['gds'] with hierarchy = 'flat' (streamed tile by "
-                         "tile with bounded memory)")
-        if check_bytes_per_site and compile_memory_bytes(sites, need_groups=need_groups)["total"] <= budget:
+        if check_bytes_per_site and compile_memory_bytes(sites)["total"] <= budget:
             hints.append("--no-checks (or [checks] rules/optics = false), then check the mask on its own")
         hints.append("a smaller aperture or a larger --max-memory")
         raise DesignError(
             f"{where}: about {sites:.3g} sites need about {format_bytes(need['total'])} of memory (fixed "
-            f"{format_bytes(need['fixed'])}, layout {format_bytes(need['layout'])}, OASIS/hierarchy "
-            f"{format_bytes(need['grouped'])}, checks {format_bytes(need['checks'])}), more than the budget of "
-            f"{format_bytes(budget)} ({why}); allowed here: {'; or '.join(hints)}")
-    if stream_gds:
-        vertices = max(len(o) for o in outlines)
-        need_disk = sites * (4 * (1 + 3 + 1 + 2 * (vertices + 1) + 1))
+            f"{format_bytes(need['fixed'])}, layout {format_bytes(need['layout'])}, checks "
+            f"{format_bytes(need['checks'])}), more than the budget of {format_bytes(budget)} ({why}); allowed "
+            f"here: {'; or '.join(hints)}")
+    if gds_mode is not None:
+        need_disk = sites * _gds_bytes_per_site(design, outlines, gds_mode)
         free = shutil.disk_usage(out).free
         if need_disk > free:
-            raise OutputError(f"{out}: the flat GDSII of about {sites:.3g} sites needs about "
+            raise OutputError(f"{out}: the GDSII file of about {sites:.3g} sites needs about "
                               f"{format_bytes(need_disk)} but the disk has {format_bytes(free)} free; free space or "
                               "choose another output folder")
-
-
-def _field_library(name, shape_list, members, lut, layer, grid, extras, db_unit_nm):
-    """gdstk library with one cell per write field: split every shape group by the field of its sites."""
-    field_groups: dict = {}
-    for (slot, shp), centres in zip(shape_list, members):  # distinct shapes (~1e3), not sites
-        if len(centres) == 0:
-            continue
-        fid = field_index(centres, grid)
-        order = np.lexsort((fid[:, 1], fid[:, 0]))
-        fid, centres = fid[order], centres[order]
-        cut = np.flatnonzero(np.any(np.diff(fid, axis=0) != 0, axis=1)) + 1
-        for part_f, part_c in zip(np.split(fid, cut), np.split(centres, cut)):  # fields this shape occurs in
-            key = (int(part_f[0, 0]), int(part_f[0, 1]))
-            field_groups.setdefault(key, []).append((layer, int(lut[slot]), shp, part_c))
-    names = {key: field_cell_name(name, *key) for key in field_groups}
-    return build_gdstk_fields(name, field_groups, extras, db_unit_nm=db_unit_nm, field_names=names)
 
 
 def _rounded(obj):
@@ -1146,6 +1117,12 @@ def _summary(design: Design, library: CellLibrary, manifest: dict, files: dict) 
         f"worst phase error: snapping {e['worst_snapping_phase_error_deg']:.3f} deg, quantisation "
         f"{e['worst_quantisation_phase_error_deg']:.3f} deg",
     ]
+    if "per_spin" in e:
+        ps = e["per_spin"]
+        per = ", ".join(f"spin {k} {ps[k]['worst_quantisation_phase_error_deg']:.3f} + "
+                        f"{ps[k]['worst_snapping_phase_error_deg']:.3f} deg" for k in ("+1", "-1"))
+        lines.append(f"per input spin (cell set + rotation levels, snapping): {per}; common cell-set error "
+                     f"{ps['cell_phase_error_deg']:.3f} deg")
     for info in manifest["files"].values():
         lines.append(f"wrote {info['name']} ({info['bytes'] / 1e6:.2f} MB, sha256 {info['sha256'][:12]})")
     for records in manifest.get("derived", {}).values():

@@ -33,12 +33,16 @@ class WrittenMask:
     structures_path : Path or None
         For tone ``"complement"``: a GDSII file holding the structures themselves (the holes), written when a step
         asks for it (:attr:`MaskCheck.needs_structures`); None otherwise.
+    max_memory_bytes : int or None
+        The compile's memory budget (``--max-memory``); a check whose whole-mask method would exceed it streams
+        the mask instead (None: the default budget of :func:`metalay.util.budget.memory_budget`).
     """
 
     path: Path
     library: CellLibrary
     design: Design
     structures_path: Path | None = None
+    max_memory_bytes: int | None = None
 
 
 def _always(design: Design) -> bool:

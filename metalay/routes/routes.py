@@ -169,6 +169,10 @@ def parse_routes(design) -> RouteSettings:
         One line naming the design file, the dotted key, the value and the allowed range.
     """
     where = design.source_path
+    if getattr(design, "spin_decoupled", False):
+        raise DesignError(f"{where}: key 'phase_spin_plus': the fabrication routes write one phase profile for any "
+                          "input polarisation; a spin-decoupled design (a phase per input spin) needs its metasurface "
+                          "mask (metalay compile)")
     data = design.raw.get("routes", {}) if isinstance(design.raw, dict) else {}
     top = TomlTable({"routes": data}, where)
     r = top.table("routes", {})

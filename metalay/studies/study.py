@@ -257,7 +257,9 @@ def evaluate_sites(model: SiteModel, *, t_long=None, t_short=None, rotation_rad=
     jin = optics.input_jones("design", design_sigma=target.sigma)
     ev = optics.evaluate_elements(dd, t_long, t_short, rot, target, jones_in=jin, expected_ij=model.expected_ij,
                                   decimation=model.decimation, empty_t=model.empty_t, pad_factor=model.pad_factor,
-                                  charges=model.charges, far_field=not budget_only, keep_far=False,
+                                  charges=model.charges, far_field=not budget_only,
+                                  keep_far=bool(target.channels) and not budget_only,
+                                  keep_field=bool(target.channels) and not budget_only,
                                   remove_factor=lambda near, tgt: _remove_factor(model, near, tgt),
                                   workers=workers)
     budget, near = ev.budget, ev.near
@@ -274,6 +276,38 @@ def evaluate_sites(model: SiteModel, *, t_long=None, t_short=None, rotation_rad=
     out["designed_spot_efficiency"] = float(ev.spots["designed"] * pol) if "designed" in ev.spots else None
     out["purity"] = None if ev.oam is None else float(ev.oam.purity(target.charge))
     out["oam_weights"] = None if ev.oam is None else [float(w) for w in ev.oam.weights]
+    limits = getattr(getattr(model.design, "checks", None), "limits", None)
+    judged = optics.judged_figures(dd, ev, target, charges=model.charges, pad_factor=model.pad_factor,
+                                   workers=workers, limits=limits)
+    out.update(_judged_metrics(judged))
+    return out
+
+
+#: Per-sample metrics beyond the power budget, with the nominal check's names (None where a design has none).
+JUDGED_KEYS = ("fringe_charge", "worst_isolation_db", "worst_channel_purity", "strehl", "spot_fwhm_um",
+               "focusing_efficiency")
+
+
+def _judged_metrics(judged: dict) -> dict:
+    """Flat per-sample metrics and verdict from :func:`metalay.checks.optics.judged_figures`."""
+    f, v = judged["figures"], judged["verdicts"]
+    out = dict.fromkeys(JUDGED_KEYS)
+    fr = f.get("fringe_reading")
+    if fr is not None:
+        out["fringe_charge"] = fr["charge"]  # None when unreadable
+    ct = f.get("crosstalk")
+    if ct is not None and len(ct.get("charges", [])) > 1:
+        out["worst_isolation_db"] = ct["worst_isolation_db"]
+    ch = f.get("oam_channels")
+    if ch is not None and ch["channels"]:
+        out["worst_channel_purity"] = float(min(c["purity"] for c in ch["channels"]))
+    lens = f.get("lens")
+    if lens is not None:
+        out["strehl"] = lens.get("strehl")
+        out["spot_fwhm_um"] = float(0.5 * (lens["fwhm_x_um"] + lens["fwhm_y_um"]))
+        out["focusing_efficiency"] = lens.get("focusing_efficiency")
+    out["verdict"] = v["verdict"]
+    out["verdict_items"] = {i["key"]: i["verdict"] for i in v["items"]}
     return out
 
 
@@ -562,6 +596,13 @@ def _json_bytes(obj) -> bytes:
     return (json.dumps(optics.json_ready(obj), sort_keys=True, indent=2, allow_nan=False) + "\n").encode()
 
 
+def _refuse_spin_decoupled(design, study: str) -> None:
+    """The studies evaluate one input spin: a spin-decoupled design (a phase per spin) is refused in one line."""
+    if getattr(design, "spin_decoupled", False):
+        raise StudyError(f"{design.source_path}: key 'phase_spin_plus': the {study} study evaluates one input spin; "
+                         "a spin-decoupled design is checked for both spins by metalay compile / metalay optics")
+
+
 def compare_libraries(design, libraries, out_dir, *, adapt: bool = True, workers: int | None = None,
                       show_progress: bool | None = None) -> CompareResult:
     """Compile ``design`` with each library, check rules and optics on each mask, tabulate and plot.
@@ -591,6 +632,7 @@ def compare_libraries(design, libraries, out_dir, *, adapt: bool = True, workers
     from metalay.util.atomic import atomic_write_bytes, ensure_dir
     from metalay.util.progress import progress
 
+    _refuse_spin_decoupled(design, "compare")
     libs = list(libraries)
     if not libs:
         raise StudyError("compare: give at least one library (--library NAME_OR_PATH)")
@@ -855,7 +897,8 @@ def _run_samples(model, st, seeds, cd_ok, workers, bar=None, budget_only=False) 
     return out
 
 
-_STAT_KEYS = ("converted", "leakage", "designed_spot_efficiency", "designed_mode_efficiency", "purity")
+_STAT_KEYS = ("converted", "leakage", "designed_spot_efficiency", "designed_mode_efficiency", "purity",
+              "worst_isolation_db", "worst_channel_purity", "strehl", "spot_fwhm_um", "focusing_efficiency")
 
 
 def _stats(samples: list[dict]) -> dict:
@@ -869,6 +912,18 @@ def _stats(samples: list[dict]) -> dict:
         out[key] = {"median": float(p50), "p5": float(p5), "p95": float(p95), "mean": float(v.mean()),
                     "std": float(v.std(ddof=1)) if v.size > 1 else 0.0, "min": float(v.min()),
                     "max": float(v.max())}
+    charges = [s["fringe_charge"] for s in samples if "fringe_charge" in s]
+    if any(c is not None for c in charges):
+        counts = {}
+        for c in charges:
+            key = "unreadable" if c is None else str(c)
+            counts[key] = counts.get(key, 0) + 1
+        out["fringe_charge"] = {"counts": dict(sorted(counts.items()))}
+    verdicts = [s["verdict"] for s in samples if "verdict" in s]
+    if verdicts:
+        out["verdict"] = {"counts": {k: verdicts.count(k) for k in ("pass", "warn", "fail", "unmeasured")
+                                     if verdicts.count(k)},
+                          "fail_fraction": verdicts.count("fail") / len(verdicts)}
     return out
 
 
@@ -904,7 +959,9 @@ class ToleranceResult:
         lines = [f"tolerance study: {len(self.samples)} samples, seed {self.settings.seed}; figure: nominal, median "
                  "[5th, 95th percentile]"]
         for key, st in self.statistics.items():
-            if st is not None:
+            if st is not None and "counts" in st:
+                lines.append(f"  {key}: {self.nominal.get(key)}, samples by value {st['counts']}")
+            elif st is not None:
                 nom = self.nominal.get(key)
                 nom = f"{nom:.4f}" if isinstance(nom, float) else str(nom)
                 lines.append(f"  {key}: {nom}, {st['median']:.4f} [{st['p5']:.4f}, {st['p95']:.4f}]")
@@ -972,6 +1029,7 @@ def tolerance_study(design, out_dir=None, *, settings: ToleranceSettings = Toler
     from metalay.cells.library import load_library
     from metalay.util.progress import progress
 
+    _refuse_spin_decoupled(design, "tolerance")
     settings.validate()
     n_workers = max(1, int(workers or os.cpu_count() or 1))
     notes = [EFFICIENCY_NOTE]
@@ -1173,7 +1231,7 @@ def _write_tolerance_files(out_dir, result_json: dict, samples, nominal, thresho
     out = ensure_dir(out_dir)
     files = {"tolerance.json": atomic_write_bytes(out / "tolerance.json", _json_bytes(result_json))}
     cols = ("sample", "cd_bias_nm", "detune_nm", "missing", "converted", "leakage", "designed_spot_efficiency",
-            "designed_mode_efficiency", "purity")
+            "designed_mode_efficiency", "purity", *JUDGED_KEYS, "verdict")
     rows = [{"sample": k, **s} for k, s in enumerate(samples)]
     files["tolerance_samples.csv"] = atomic_write_bytes(out / "tolerance_samples.csv", _csv_text(cols, rows).encode())
     if make_plots:
@@ -1254,8 +1312,8 @@ def _plot_bars(rows) -> bytes:
 
 @_styled
 def _plot_hist(samples, nominal) -> bytes:
-    keys = [k for k in ("designed_spot_efficiency", "designed_mode_efficiency", "purity")
-            if any(s.get(k) is not None for s in samples)]
+    keys = [k for k in ("designed_spot_efficiency", "designed_mode_efficiency", "purity", "worst_isolation_db",
+                        "strehl", "spot_fwhm_um") if any(s.get(k) is not None for s in samples)]
     fig = _fig(3.2 * max(1, len(keys)), 3.2)
     axes = np.atleast_1d(fig.subplots(1, max(1, len(keys))))
     for ax, key in zip(axes, keys):
@@ -1265,7 +1323,8 @@ def _plot_hist(samples, nominal) -> bytes:
             ax.axvline(nominal[key], color="#d9822b", label="nominal")
         for q in np.percentile(v, [5, 50, 95]):
             ax.axvline(q, color="k", ls=":", lw=0.8)
-        ax.set(title=key.replace("_", " "), xlabel="fraction", ylabel="samples")
+        unit = "dB" if key.endswith("_db") else "um" if key.endswith("_um") else "fraction"
+        ax.set(title=key.replace("_", " "), xlabel=unit, ylabel="samples")
         ax.legend(fontsize=7)
     fig.tight_layout()
     return _render(fig)

@@ -1,0 +1,369 @@
+"""Design-rule check of a mask too large to hold: horizontal bands with a halo, each violation counted once.
+
+The mask is read as a stream of polygon chunks (:func:`metalay.io.stream_read.iter_mask_chunks`) twice:
+
+1. survey: the y extent of the mask, the number of polygons and the tallest polygon ``H`` of every layer that
+   has a pair rule (spacing, overlap);
+2. distribution: every polygon goes to each band its y range touches once widened by the halo, into per-band
+   spill files (a temporary folder); it is *owned* by the one band holding its canonical point, the lowest y of
+   its bounding box.
+
+Each band is then checked alone with :func:`metalay.checks.rules._check_layer`, reporting only what it owns: a
+single-polygon rule reports the polygons the band owns; a pair rule reports the pairs whose first polygon (the
+lower index, as the whole-mask check orders pairs) the band owns. The halo is ``H + s`` (``s`` the largest
+spacing limit, with slack), so a band holds every polygon closer than ``s`` to a polygon it owns and finds every
+pair the whole-mask check finds, with the same coordinates, hence bit-identical values. Polygons keep their
+mask-wide indices (bands are built in file order), so the merged report equals the whole-mask report: same
+violations, values, locations, order and checked counts (tested as an equivalence check on masks that fit).
+Polygons of a frame layer (the ``inside_frame`` rule) go to every band, since the frame region is their union.
+
+Where the results may differ: the method text of the spacing rule (a band may take the lattice stencil or the
+STRtree on its own; both give the same pairs), and a pair search that stops at its pair cap (counts are lower
+bounds then, in both checks, with caps counted per band here).
+
+Memory: the walk of the file (about 10 bytes per element for flat GDSII), one chunk and one band with its halo;
+the band height follows the memory budget (:data:`BAND_BYTES_PER_POLYGON` per polygon).
+"""
+
+from __future__ import annotations
+
+import math
+import os
+import tempfile
+import time
+from collections.abc import Callable, Iterator
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+
+from metalay.checks.rules import _KIND, MAX_PAIRS, RuleReport, RuleResult, RuleSet, Violations, _check_layer
+from metalay.errors import MaskReadError, RulesError
+from metalay.io.gdsread import DEFAULT_MAX_ELEMENTS, FlatPolygons, file_sha256
+from metalay.util.budget import memory_budget
+
+__all__ = ["TilePlan", "check_mask_tiled", "involved_polygons", "BAND_BYTES_PER_POLYGON", "chunks_of"]
+
+BAND_BYTES_PER_POLYGON = 300
+"""Peak bytes per polygon of checking one band (the whole-mask check's measured ~300 B per site, which includes
+the read; used to choose the band height from the memory budget)."""
+_BUDGET_SHARE = 0.5  # share of the budget one band may take (the rest: walk table, chunk, spill buffers)
+_PEAK_DENSITY = 1.5  # a round aperture's middle band holds 4/pi of the mean; plus the halo copies
+_SORT_KIND = {"grid": "max", "field_straddle": "max"}  # rules emitted with an explicit sort order
+
+
+@dataclass(frozen=True)
+class TilePlan:
+    """How a tiled check cut the mask (lengths in database units).
+
+    Attributes
+    ----------
+    bands : int
+        Number of horizontal bands.
+    y0_db, band_db : int
+        Lowest polygon y and band height: band ``k`` owns canonical points ``y0 + k band <= y < y0 + (k+1) band``.
+    halo_db : int
+        Extra height loaded above and below each band: ``H + s`` (tallest polygon of a pair-rule layer plus the
+        largest spacing limit, with slack).
+    polygons : int
+        Polygons read (on the rule layers).
+    loaded : int
+        Polygons loaded summed over the bands (``>= polygons``: halo and frame copies).
+    largest_band : int
+        Most polygons loaded into one band.
+    """
+
+    bands: int
+    y0_db: int
+    band_db: int
+    halo_db: int
+    polygons: int
+    loaded: int
+    largest_band: int
+
+    def as_dict(self, db_unit_nm: float) -> dict:
+        """JSON-ready summary with lengths in micrometres."""
+        um = db_unit_nm / 1000.0
+        return {"method": "tiled", "bands": self.bands, "band_um": self.band_db * um, "halo_um": self.halo_db * um,
+                "polygons": self.polygons, "loaded": self.loaded, "largest_band": self.largest_band,
+                "owner": "the band holding the lowest y of the polygon's bounding box (pairs: of the first polygon)"}
+
+
+def chunks_of(flat: FlatPolygons, chunk_polygons: int = 1 << 18) -> Callable[[], Iterator[FlatPolygons]]:
+    """A re-startable chunk source over polygons already in memory (for tests and callers holding a mask)."""
+    def source():
+        for lo in range(0, flat.count, chunk_polygons):
+            hi = min(flat.count, lo + chunk_polygons)
+            s = flat.start[lo:hi + 1]
+            yield FlatPolygons(flat.layer[lo:hi], flat.datatype[lo:hi], s - s[0], flat.xy_db[s[0]:s[-1]],
+                               flat.db_unit_nm, flat.user_unit_m)
+    return source
+
+
+def _y_range(ch: FlatPolygons) -> tuple[np.ndarray, np.ndarray]:
+    """Lowest and highest vertex y of each polygon (0 for a polygon without vertices)."""
+    cnt = np.diff(ch.start)
+    y = ch.xy_db[:, 1]
+    lo = np.zeros(ch.count, np.int64)
+    hi = np.zeros(ch.count, np.int64)
+    has = cnt > 0
+    if y.size:
+        at = ch.start[:-1][has]
+        lo[has] = np.minimum.reduceat(y, at)
+        hi[has] = np.maximum.reduceat(y, at)
+    return lo, hi
+
+
+def _keys(pairs) -> np.ndarray:
+    return np.array(sorted(int(a) * 65536 + int(b) for a, b in pairs), np.int64)
+
+
+def _on(ch: FlatPolygons, keys: np.ndarray) -> np.ndarray:
+    return np.isin(ch.layer.astype(np.int64) * 65536 + ch.datatype, keys)
+
+
+def _survey(source, rules: RuleSet, pair_keys, context_keys):
+    """Pass 1: polygon count, y extent (frame polygons excluded), tallest pair-rule polygon, database unit."""
+    n, y0, y1, tall, db, uu = 0, None, None, 0, None, None
+    for ch in source():
+        db, uu = (ch.db_unit_nm, ch.user_unit_m) if db is None else (db, uu)
+        if ch.db_unit_nm != db:
+            raise MaskReadError(f"mask chunks disagree on the database unit ({db} and {ch.db_unit_nm} nm)")
+        lo, hi = _y_range(ch)
+        n += ch.count
+        body = ~_on(ch, context_keys)
+        if body.any():
+            y0 = int(lo[body].min()) if y0 is None else min(y0, int(lo[body].min()))
+            y1 = int(hi[body].max()) if y1 is None else max(y1, int(hi[body].max()))
+        pl = _on(ch, pair_keys)
+        if pl.any():
+            tall = max(tall, int((hi[pl] - lo[pl]).max()))
+    return n, (y0 or 0), (y1 if y1 is not None else 0), tall, (db or 1.0), (uu or 1e-6)
+
+
+def _reach_db(rules: RuleSet, db_unit_nm: float) -> int:
+    """Largest spacing limit in database units, rounded up, with slack (pairs at exactly the limit included)."""
+    s = max([lr.min_spacing_nm or 0.0 for lr in rules.layers], default=0.0)
+    if not math.isfinite(s):
+        raise RulesError(f"a spacing limit is not finite ({s}); allowed: a finite number of nm")
+    return int(math.ceil(s / db_unit_nm * (1 + 1e-9))) + 2
+
+
+def _bands_for(n_polygons: int, max_memory_bytes: int | None) -> int:
+    budget = memory_budget(max_memory_bytes) * _BUDGET_SHARE
+    return max(1, int(math.ceil(n_polygons * BAND_BYTES_PER_POLYGON * _PEAK_DENSITY / max(budget, 1.0))))
+
+
+class _Spill:
+    """Per-band files of the distributed polygons: meta rows (index, layer, datatype, count, owned) and xy."""
+
+    def __init__(self, folder: Path, bands: int):
+        self.folder, self.bands = folder, bands
+        self.loaded = np.zeros(bands, np.int64)
+
+    def _path(self, b: int, kind: str) -> Path:
+        return self.folder / f"band{b:06d}.{kind}"
+
+    def put(self, b: int, meta: np.ndarray, xy: np.ndarray) -> None:
+        with open(self._path(b, "meta"), "ab") as fh:
+            meta.tofile(fh)
+        with open(self._path(b, "xy"), "ab") as fh:
+            xy.tofile(fh)
+        self.loaded[b] += meta.shape[0]
+
+    def take(self, b: int, db_unit_nm: float, user_unit_m: float):
+        """The band's polygons (file order), their mask-wide indices and ownership; the files are removed."""
+        if self.loaded[b] == 0:
+            z = np.zeros(0, np.int64)
+            return FlatPolygons.from_arrays(z, z, z, np.zeros((0, 2), np.int64), db_unit_nm=db_unit_nm,
+                                            user_unit_m=user_unit_m), z, np.zeros(0, bool)
+        meta = np.fromfile(self._path(b, "meta"), np.int64).reshape(-1, 5)
+        xy = np.fromfile(self._path(b, "xy"), np.int64).reshape(-1, 2)
+        for kind in ("meta", "xy"):
+            os.remove(self._path(b, kind))
+        flat = FlatPolygons.from_arrays(meta[:, 1], meta[:, 2], meta[:, 3], xy, db_unit_nm=db_unit_nm,
+                                        user_unit_m=user_unit_m)
+        return flat, meta[:, 0].copy(), meta[:, 4].astype(bool)
+
+
+def _distribute(source, plan: TilePlan, context_keys, spill: _Spill) -> None:
+    """Pass 2: each polygon to every band its widened y range touches (frame polygons: every band)."""
+    offset = 0
+    nb, y0, h, halo = plan.bands, plan.y0_db, plan.band_db, plan.halo_db
+    for ch in source():
+        lo_y, hi_y = _y_range(ch)
+        owner = np.clip((lo_y - y0) // h, 0, nb - 1)
+        lo = np.clip((lo_y - halo - y0) // h, 0, nb - 1)
+        hi = np.clip((hi_y + halo - y0) // h, 0, nb - 1)
+        ctx = _on(ch, context_keys)
+        lo[ctx], hi[ctx] = 0, nb - 1
+        reps = hi - lo + 1
+        poly = np.repeat(np.arange(ch.count), reps)
+        first = np.repeat(np.cumsum(reps) - reps, reps)
+        band = np.repeat(lo, reps) + (np.arange(poly.size) - first)
+        order = np.argsort(band, kind="stable")  # per band, polygons stay in file order
+        poly, band = poly[order], band[order]
+        cuts = np.flatnonzero(np.diff(band)) + 1
+        cnt = np.diff(ch.start)
+        for sel in np.split(np.arange(poly.size), cuts):
+            if sel.size == 0:
+                continue
+            b = int(band[sel[0]])
+            p = poly[sel]
+            meta = np.stack([p + offset, ch.layer[p].astype(np.int64), ch.datatype[p].astype(np.int64), cnt[p],
+                             (owner[p] == b).astype(np.int64)], axis=1)
+            c = cnt[p]
+            v = np.repeat(ch.start[p] - (np.cumsum(c) - c), c) + np.arange(int(c.sum()))
+            spill.put(b, meta, ch.xy_db[v])
+        offset += ch.count
+
+
+def _merge(parts: list[RuleResult], gidx_parts: list) -> RuleResult:
+    """One rule's results over the bands: global indices, re-sorted as the whole-mask check sorts them."""
+    first = parts[0]
+    pol = np.concatenate([g[r.violations.polygon] for r, g in zip(parts, gidx_parts)])
+    oth = np.concatenate([np.where(r.violations.other >= 0, g[np.maximum(r.violations.other, 0)], -1)
+                          for r, g in zip(parts, gidx_parts)])
+    val = np.concatenate([r.violations.value for r in parts])
+    x = np.concatenate([r.violations.x_um for r in parts])
+    y = np.concatenate([r.violations.y_um for r in parts])
+    seg = np.concatenate([r.violations.segment_um for r in parts]).reshape(-1, 4)
+    kind = _SORT_KIND.get(first.rule, _KIND[first.rule])
+    order = np.lexsort((oth, pol, -val if kind == "max" else val))
+    vio = Violations(pol[order], oth[order], val[order], x[order], y[order], seg[order])
+    methods = sorted({r.method for r in parts})
+    caps = [r.pair_cap for r in parts if r.pair_cap is not None]
+    return RuleResult(first.rule, first.layer, first.datatype, first.limit, first.unit, first.kind, first.reason,
+                      first.source, sum(r.checked for r in parts), methods[0] if len(methods) == 1 else
+                      " / ".join(methods), vio, max(caps) if caps else None)
+
+
+def _plan(source, rules: RuleSet, max_memory_bytes, bands):
+    pair_keys = _keys((lr.layer, lr.datatype) for lr in rules.layers
+                      if lr.min_spacing_nm is not None or lr.forbid_overlap)
+    context_keys = _keys(lr.inside_frame for lr in rules.layers if lr.inside_frame is not None)
+    n, y0, y1, tall, db, uu = _survey(source, rules, pair_keys, context_keys)
+    nb = int(bands) if bands is not None else _bands_for(n, max_memory_bytes)
+    if nb < 1:
+        raise RulesError(f"bands = {bands!r}; allowed: an integer >= 1")
+    h = max(1, -(-(y1 - y0 + 1) // nb))
+    return TilePlan(nb, y0, h, tall + _reach_db(rules, db), n, 0, 0), context_keys, db, uu
+
+
+def check_mask_tiled(mask, rules: RuleSet, *, method: str = "auto", cell: str | None = None,
+                     max_elements: int | None = None, max_memory_bytes: int | None = None,
+                     max_pairs: int = MAX_PAIRS, bands: int | None = None, chunk_polygons: int = 1 << 18,
+                     spill_dir=None) -> tuple[RuleReport, TilePlan]:
+    """Check a mask band by band with bounded memory; the report equals :func:`metalay.checks.rules.check_mask`'s.
+
+    Parameters
+    ----------
+    mask : str, os.PathLike, FlatPolygons or callable
+        A GDSII/OASIS file (streamed, only the rule layers), polygons in memory, or a callable returning a fresh
+        iterator of :class:`FlatPolygons` chunks each time it is called (it is called twice).
+    rules : RuleSet
+    method, cell, max_elements, max_pairs
+        As :func:`check_mask` (``max_pairs`` applies per band).
+    max_memory_bytes : int, optional
+        Memory budget (``--max-memory``; default half of what the process may use); sets the band height when
+        ``bands`` is not given: ``bands = ceil(1.5 polygons BAND_BYTES_PER_POLYGON / (budget / 2))``.
+    bands : int, optional
+        Number of horizontal bands (overrides the budget).
+    chunk_polygons : int
+        Polygons per chunk of the streamed read.
+    spill_dir : path, optional
+        Folder for the temporary band files (default the system's temporary folder); removed afterwards.
+
+    Returns
+    -------
+    (RuleReport, TilePlan)
+    """
+    timings: dict[str, float] = {}
+    t0 = time.perf_counter()
+    sha, name = None, "<memory>"
+    if isinstance(mask, FlatPolygons):
+        source = chunks_of(mask, chunk_polygons)
+    elif callable(mask):
+        source = mask
+    else:
+        from metalay.io.stream_read import iter_mask_chunks
+
+        name = os.fspath(mask)
+        layers = rules.layer_pairs()
+
+        def source():
+            return iter_mask_chunks(name, layers=layers, cell=cell, chunk_polygons=chunk_polygons,
+                                    max_elements=max_elements or DEFAULT_MAX_ELEMENTS)
+    plan, context_keys, db, uu = _plan(source, rules, max_memory_bytes, bands)  # a bad file fails here, one line
+    if name != "<memory>":
+        try:
+            sha = file_sha256(name)
+        except OSError as exc:
+            raise MaskReadError(f"{name}: cannot read file for its checksum ({exc.strerror or exc})") from exc
+    timings["survey"] = time.perf_counter() - t0
+    per_rule: dict[tuple, list] = {}
+    gidx_of: dict[tuple, list] = {}
+    with tempfile.TemporaryDirectory(prefix="metalay-bands-", dir=spill_dir) as folder:
+        spill = _Spill(Path(folder), plan.bands)
+        t1 = time.perf_counter()
+        _distribute(source, plan, context_keys, spill)
+        timings["distribute"] = time.perf_counter() - t1
+        for b in range(plan.bands):
+            flat, gidx, owned = spill.take(b, db, uu)
+            band_timings: list = []
+            for li, lr in enumerate(rules.layers):
+                try:
+                    res = _check_layer(flat, lr, rules, db, method, band_timings, max_pairs, owned=owned)
+                except MemoryError as exc:
+                    raise MaskReadError(f"{name}: out of memory checking band {b} of {plan.bands} ({flat.count} "
+                                        "polygons): give a smaller --max-memory or more bands") from exc
+                for r in res:
+                    per_rule.setdefault((li, r.rule), []).append(r)
+                    gidx_of.setdefault((li, r.rule), []).append(gidx)
+            for k, v in band_timings:
+                key = k.split(" ")[0]
+                timings[key] = timings.get(key, 0.0) + v
+    results = tuple(_merge(per_rule[k], gidx_of[k]) for k in per_rule)  # insertion order: layers, then rules
+    plan = TilePlan(plan.bands, plan.y0_db, plan.band_db, plan.halo_db, plan.polygons, int(spill.loaded.sum()),
+                    int(spill.loaded.max(initial=0)))
+    report = RuleReport(name, sha, db, plan.polygons, rules.name, results, tuple(timings.items()))
+    return report, plan
+
+
+def involved_polygons(mask, report: RuleReport, *, rules: RuleSet, cell: str | None = None,
+                      chunk_polygons: int = 1 << 18) -> tuple[FlatPolygons, RuleReport]:
+    """The polygons a report names (one more streamed pass), and the report re-indexed to them.
+
+    For :func:`metalay.checks.rules.write_marker_gds` after a tiled check: it needs only these polygons.
+    """
+    from dataclasses import replace
+
+    from metalay.io.stream_read import iter_mask_chunks
+
+    named = [r.violations.polygon for r in report.results] + [r.violations.other[r.violations.other >= 0]
+                                                              for r in report.results]
+    wanted = np.unique(np.concatenate(named)) if named else np.zeros(0, np.int64)
+    chunks = (chunks_of(mask, chunk_polygons)() if isinstance(mask, FlatPolygons) else
+              iter_mask_chunks(mask, layers=rules.layer_pairs(), cell=cell, chunk_polygons=chunk_polygons))
+    parts, offset, db, uu = [], 0, report.db_unit_nm, 1e-6
+    for ch in chunks:
+        uu = ch.user_unit_m
+        keep = np.isin(np.arange(offset, offset + ch.count), wanted)
+        if keep.any():
+            parts.append(ch.select(keep))
+        offset += ch.count
+    if parts:
+        sub = FlatPolygons.from_arrays(np.concatenate([p.layer for p in parts]),
+                                       np.concatenate([p.datatype for p in parts]),
+                                       np.concatenate([np.diff(p.start) for p in parts]),
+                                       np.concatenate([p.xy_db for p in parts]), db_unit_nm=db, user_unit_m=uu)
+    else:
+        z = np.zeros(0, np.int64)
+        sub = FlatPolygons.from_arrays(z, z, z, np.zeros((0, 2), np.int64), db_unit_nm=db, user_unit_m=uu)
+
+    def local(ix):
+        return np.where(ix >= 0, np.searchsorted(wanted, np.maximum(ix, 0)), -1)
+
+    results = tuple(replace(r, violations=replace(r.violations, polygon=local(r.violations.polygon),
+                                                  other=local(r.violations.other))) for r in report.results)
+    return sub, replace(report, results=results)

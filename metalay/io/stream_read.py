@@ -1,0 +1,173 @@
+"""Read a mask as a stream of polygon chunks, so a check never holds the whole flattened mask.
+
+:func:`iter_mask_chunks` yields :class:`~metalay.io.gdsread.FlatPolygons` chunks whose concatenation is exactly what
+:func:`~metalay.io.gdsread.read_mask` returns (same polygons, same order, same database unit). It runs the same
+record walk, hierarchy checks and count limits as the whole read, but never allocates the flattened output:
+
+* GDSII runs of identical BOUNDARY elements (the flat masks metalay writes) are decoded a chunk at a time from the
+  memory-mapped file, whose pages are released from the resident set once decoded (``madvise(MADV_DONTNEED)``:
+  they stay in the page cache); what stays in memory is the walk's per-element table (layer, datatype and two
+  flags: about 10 bytes per element);
+* placed cells are expanded a block of placements at a time (the placements' affine maps are held: 48 bytes each);
+* OASIS files are parsed by :mod:`metalay.io.oasis_read`, which expands each cell's own geometry while parsing,
+  so for OASIS only the output chunks are bounded, not the parse.
+
+The memory-budget admission of :func:`read_mask` (the size of the flattened result) does not apply here; the
+element, vertex and depth limits do.
+"""
+
+from __future__ import annotations
+
+import mmap
+from collections.abc import Iterator
+
+import numpy as np
+
+from metalay.errors import MaskReadError
+from metalay.io.gdsread import (
+    DEFAULT_MAX_DEPTH,
+    DEFAULT_MAX_ELEMENTS,
+    DEFAULT_MAX_VERTICES,
+    FlatPolygons,
+    _cell_geometry,
+    _decode_run,
+    _err,
+    _flat_sizes,
+    _nm_from_m,
+    _parse,
+    _placements,
+    _topology,
+)
+
+__all__ = ["iter_mask_chunks", "count_polygons", "DEFAULT_CHUNK_POLYGONS"]
+
+DEFAULT_CHUNK_POLYGONS = 1 << 18
+"""Polygons per yielded chunk (about 20 MB of 4-vertex polygons with their int64 vertices)."""
+
+
+def _chunk(lay, dt, cnt, xy, db_unit_nm: float, user_unit_m: float) -> FlatPolygons:
+    start = np.zeros(cnt.shape[0] + 1, np.int64)
+    np.cumsum(cnt, out=start[1:])
+    return FlatPolygons(np.asarray(lay, np.int32), np.asarray(dt, np.int32), start,
+                        np.asarray(xy, np.int64).reshape(-1, 2), db_unit_nm, user_unit_m)
+
+
+def _release(mm, start: int, stop: int) -> None:
+    """Drop the pages of ``mm[start:stop]`` from this process's resident set (they stay in the page cache: the
+    file is only read, so they are clean); a no-op where ``madvise`` is missing."""
+    if mm is None or not hasattr(mm, "madvise") or not hasattr(mmap, "MADV_DONTNEED"):
+        return
+    page = mmap.PAGESIZE
+    lo = (start // page) * page
+    hi = min(len(mm), -(-stop // page) * page)
+    if hi > lo:
+        try:
+            mm.madvise(mmap.MADV_DONTNEED, lo, hi - lo)
+        except (OSError, ValueError):  # pragma: no cover - best effort
+            pass
+
+
+def _cell_chunks(lib, c, aff: np.ndarray, chunk_polygons: int, mm=None) -> Iterator[tuple]:
+    """(layer, datatype, counts, xy) blocks of one cell at its placements, in the order :func:`read_mask` uses."""
+    if aff.shape[0] == 1 and np.array_equal(aff[0], [1.0, 0.0, 0.0, 1.0, 0.0, 0.0]):
+        for r in c.runs:
+            for lo in range(0, r.k, chunk_polygons):
+                hi = min(r.k, lo + chunk_polygons)
+                out = _decode_run(lib.buf, r, lo, hi)  # copies: the file pages can go
+                _release(mm, r.pos + lo * r.size, r.pos + hi * r.size)
+                yield out
+        for e in c.explicit:
+            for lo in range(0, e.counts.shape[0], chunk_polygons):
+                hi = min(e.counts.shape[0], lo + chunk_polygons)
+                v0, v1 = int(e.counts[:lo].sum()), int(e.counts[:hi].sum())
+                yield e.layer[lo:hi], e.datatype[lo:hi], e.counts[lo:hi], e.xy[v0:v1]
+        return
+    lay, dt, cnt, pts = _cell_geometry(lib, c)
+    translate_only = np.all(aff[:, :4] == [1.0, 0.0, 0.0, 1.0]) and np.all(aff[:, 4:] == np.rint(aff[:, 4:]))
+    step = max(1, chunk_polygons // max(1, cnt.shape[0]))
+    ptsf = pts.astype(np.float64)
+    for lo in range(0, aff.shape[0], step):  # same arithmetic as gdsread's placement: identical vertices
+        a = aff[lo:lo + step]
+        m = a.shape[0]
+        if translate_only:
+            placed = pts[None, :, :] + a[:, None, 4:].astype(np.int64)
+        else:
+            x, y = ptsf[None, :, 0], ptsf[None, :, 1]
+            placed = np.rint(np.stack([a[:, 0:1] * x + a[:, 1:2] * y + a[:, 4:5],
+                                       a[:, 2:3] * x + a[:, 3:4] * y + a[:, 5:6]], axis=-1)).astype(np.int64)
+        yield np.tile(lay, m), np.tile(dt, m), np.tile(cnt, m), placed.reshape(-1, 2)
+
+
+def iter_mask_chunks(path, *, layers=None, cell: str | None = None, max_elements: int = DEFAULT_MAX_ELEMENTS,
+                     max_vertices: int = DEFAULT_MAX_VERTICES, max_depth: int = DEFAULT_MAX_DEPTH,
+                     chunk_polygons: int = DEFAULT_CHUNK_POLYGONS) -> Iterator[FlatPolygons]:
+    """Yield the flattened polygons of a mask in chunks (concatenated: exactly :func:`read_mask`'s result).
+
+    Parameters
+    ----------
+    path : str or os.PathLike
+        GDSII or OASIS file.
+    layers, cell, max_elements, max_vertices, max_depth
+        As :func:`metalay.io.gdsread.read_mask` (the counts are checked before the first chunk is yielded).
+    chunk_polygons : int
+        Largest number of polygons per chunk (a placed cell with more own polygons yields one placement per chunk).
+
+    Yields
+    ------
+    FlatPolygons
+        Consecutive, non-empty chunks with the file's database and user units.
+
+    Raises
+    ------
+    MaskReadError
+        As :func:`read_mask`, except the memory-budget admission of the flattened result.
+    """
+    if int(chunk_polygons) < 1:
+        raise MaskReadError(f"{path}: chunk_polygons = {chunk_polygons!r}; allowed: an integer >= 1")
+    lib, mm = _parse(path, layers, max_elements, max_vertices, None, release=_release)
+    try:
+        tops, order = _topology(lib, cell, max_depth)
+        sizes = _flat_sizes(lib, order)
+        total_p = sum(sizes[t][0] for t in tops)
+        total_v = sum(sizes[t][1] for t in tops)
+        if total_p > max_elements:
+            raise _err(lib.path, f"{total_p} polygons after resolving references exceed the limit max_elements="
+                                 f"{max_elements}")
+        if total_v > max_vertices:
+            raise _err(lib.path, f"{total_v} vertices after resolving references exceed the limit max_vertices="
+                                 f"{max_vertices}")
+        inst = _placements(lib, tops, order, sizes)
+        db_nm, uu = _nm_from_m(lib.db_unit_m), float(lib.user_unit_m)
+        for name in order:
+            if name not in inst or lib.cells[name].own_counts()[0] == 0:
+                continue
+            for lay, dt, cnt, xy in _cell_chunks(lib, lib.cells[name], inst[name][0], int(chunk_polygons), mm):
+                if cnt.shape[0]:
+                    yield _chunk(lay, dt, cnt.astype(np.int64, copy=False), xy, db_nm, uu)
+    finally:
+        lib.buf = None
+        if mm is not None:
+            try:
+                mm.close()
+            except BufferError:
+                pass  # a chunk still views the mapping; it closes when collected
+
+
+def count_polygons(path, *, layers=None, cell: str | None = None, max_elements: int = DEFAULT_MAX_ELEMENTS,
+                   max_vertices: int = DEFAULT_MAX_VERTICES, max_depth: int = DEFAULT_MAX_DEPTH) -> tuple[int, int]:
+    """Flattened (polygons, vertices) of a mask on ``layers``, counted without flattening (the walk only).
+
+    Lets a check choose between the whole-mask and the streamed method before reading any geometry.
+    """
+    lib, mm = _parse(path, layers, max_elements, max_vertices, None, release=_release)
+    try:
+        tops, order = _topology(lib, cell, max_depth)
+        sizes = _flat_sizes(lib, order)
+        return sum(sizes[t][0] for t in tops), sum(sizes[t][1] for t in tops)
+    finally:
+        lib.buf = None
+        if mm is not None:
+            try:
+                mm.close()
+            except BufferError:
+                pass
