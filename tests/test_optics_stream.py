@@ -174,8 +174,10 @@ def test_cli_streamed_optics_writes_figures_bound_and_caution(tmp_path, capsys):
     toml = write_toml(tmp_path / "d.toml", dict(SMALL_DESIGN, mask={"formats": ["gds"]}))
     gds = compile_design(load_design(toml), tmp_path / "c", show_progress=False).files["gds"]
     assert main(["optics", str(gds), "--design", str(toml), "--streamed", "-o", str(tmp_path / "o")]) == 0
-    text = capsys.readouterr().out
-    assert "method: streamed block far field" in text and "block-sum error bound" in text and "design aid" in text
+    cap = capsys.readouterr()
+    text = cap.out
+    assert "method: streamed block far field" in text and "block-sum error bound" in text
+    assert "design aid" in cap.err  # the one-line caution goes to standard error
     f = json.loads((tmp_path / "o" / "optics.json").read_text())
     assert f["method"] == "streamed block far field" and "design aid" in f["caution"]
     assert 0 <= f["designed_spot_efficiency_bound"] < 0.05  # the default block keeps the bound small
