@@ -117,7 +117,7 @@ def test_check_from_written_masks_follows_the_linear_relation(compiled_pair):
     designs, masks, _ = compiled_pair
     rep = check_sorter(designs, masks, charges=range(-2, 3), make_plots=False)
     f = rep.figures
-    assert f["elements_from"] == "written masks" and rep.status == "ok"
+    assert f["elements_from"] == "written masks" and rep.status == "pass"
     assert f["slope_um_per_charge"] == pytest.approx(40.0, rel=0.01)
     pos, ch = np.array(f["positions_um"]), np.array(f["charges"])
     assert np.all(np.sign(pos[ch != 0]) == np.sign(ch[ch != 0]))
@@ -146,7 +146,7 @@ def test_element_written_for_the_wrong_spin_fails_the_check(compiled_pair, tmp_p
     assert any("receives spin -1" in n for n in bad.notes)
     plates = check_sorter([designs[0], wrong], [masks[0], mask], charges=(-1, 0, 1), wave_plates=True,
                           make_plots=False)
-    assert plates.status == "ok"
+    assert plates.status == "pass"
 
 
 def test_mounting_an_element_patterned_face_first_breaks_it_but_a_y_mirror_alone_does_not(compiled_pair):
@@ -249,7 +249,7 @@ def test_cli_check_ideal_writes_json_png_html_and_exit_codes(tmp_path, capsys):
     assert code == 0 and "elements from: ideal phase" in text and "laser" in captured.err
     assert "laser-safety" in (out / "sorter_report.html").read_text()
     data = json.loads((out / "sorter.json").read_text())
-    assert data["elements_from"] == "ideal phase" and data["verdict"]["status"] == "ok"
+    assert data["elements_from"] == "ideal phase" and data["verdict"]["status"] == "pass"
     assert any("NOT from written masks" in n for n in data["notes"])
     assert (out / "sorter.png").read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
     html = (out / "sorter_report.html").read_text()

@@ -190,7 +190,7 @@ def _run_check(args, designs, masks, out) -> int:
                        out_dir=str(out))
     if not args.json:
         _print_report(rep, out, args.quiet)
-    return 0 if rep.status == "ok" else 1
+    return 0 if rep.status == "pass" else 1
 
 
 def run(args) -> int:

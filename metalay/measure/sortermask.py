@@ -90,7 +90,7 @@ class SorterReport:
     check : SorterCheck
     figures : dict
         JSON-ready numbers (what ``sorter.json`` holds).
-    status : {"ok", "fail"}
+    status : {"pass", "fail"}
         From :class:`SorterThresholds`.
     failed : tuple of str
         One line per failed threshold.
@@ -376,7 +376,7 @@ def check_sorter(designs, masks=None, *, libraries=None, charges=range(-5, 6), b
     figs, failed = _verdict(chk, setup, thresholds)
     figures = {"elements_from": elements_from, "setup": _setup_figures(setup), "elements": infos,
                "beam": beam, **figs,
-               "verdict": {"status": "ok" if not failed else "fail", "failed": failed,
+               "verdict": {"status": "pass" if not failed else "fail", "failed": failed,
                            "thresholds": {"max_slope_error_pct": thresholds.max_slope_error_pct,
                                           "max_position_error_spacings": thresholds.max_position_error_spacings,
                                           "min_own_window": thresholds.min_own_window}}}
@@ -385,7 +385,7 @@ def check_sorter(designs, masks=None, *, libraries=None, charges=range(-5, 6), b
     figures = json_ready(figures)
     images = {"1_sorter": ("detector profiles, spot positions against l lambda F / (2 pi a), crosstalk "
                            "(row-normalised)", _sorter_png(chk, setup, elements_from))} if make_plots else {}
-    return SorterReport(setup, chk, figures, "ok" if not failed else "fail", tuple(failed), tuple(notes),
+    return SorterReport(setup, chk, figures, "pass" if not failed else "fail", tuple(failed), tuple(notes),
                         elements_from, images)
 
 
