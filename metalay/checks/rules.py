@@ -651,14 +651,18 @@ def _group_features(X: np.ndarray, want_angle: bool = True):
         for _i, _j, d, _dt, _l2 in _vertex_edge_distances(xs, ys, ex, ey):
             np.minimum(w_conv, d, out=w_conv)
         width[convex] = w_conv
-    r2max = 0.0
-    if m:
-        cx = (bbox[:, 0] + bbox[:, 2]) / 2.0
-        cy = (bbox[:, 1] + bbox[:, 3]) / 2.0
-        Xf = X.astype(np.float64)
-        r2max = float(((Xf[..., 0] - cx[:, None]) ** 2 + (Xf[..., 1] - cy[:, None]) ** 2).max())
     return {"area2": area2, "convex": convex, "angle": amin, "kmin": kmin, "width": width, "bbox": bbox,
-            "r2max": r2max}
+            "r2max": _r2max(X, bbox)}
+
+
+def _r2max(X: np.ndarray, bbox: np.ndarray) -> float:
+    """Largest squared distance of a vertex from its polygon's bounding-box centre (0 without polygons)."""
+    if not X.shape[0]:
+        return 0.0
+    cx = (bbox[:, 0] + bbox[:, 2]) / 2.0
+    cy = (bbox[:, 1] + bbox[:, 3]) / 2.0
+    Xf = X.astype(np.float64)
+    return float(((Xf[..., 0] - cx[:, None]) ** 2 + (Xf[..., 1] - cy[:, None]) ** 2).max())
 
 
 def _vertex_edge_distances(xs, ys, ex, ey):
@@ -831,14 +835,8 @@ def _group_features_wide(X: np.ndarray, want_angle: bool = True):
     if convex.any():
         keep = np.flatnonzero(convex)
         width[keep] = _convex_width_wide(xs[keep], ys[keep], ex[keep], ey[keep], area2[keep] > 0)[0]
-    r2max = 0.0
-    if m:
-        cx = (bbox[:, 0] + bbox[:, 2]) / 2.0
-        cy = (bbox[:, 1] + bbox[:, 3]) / 2.0
-        Xf = X.astype(np.float64)
-        r2max = float(((Xf[..., 0] - cx[:, None]) ** 2 + (Xf[..., 1] - cy[:, None]) ** 2).max())
     return {"area2": area2, "convex": convex, "angle": amin, "kmin": kmin, "width": width, "bbox": bbox,
-            "r2max": r2max}
+            "r2max": _r2max(X, bbox)}
 
 
 def _width_segments_wide(X: np.ndarray) -> np.ndarray:

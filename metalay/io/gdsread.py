@@ -839,9 +839,8 @@ def _put_placed(lib: _Library, c: _Cell, aff: np.ndarray, out: _FlatOut) -> None
         out.put(np.tile(lay, m), np.tile(dt, m), np.tile(cnt, m), placed.reshape(-1, 2))
 
 
-def _admit(lib: _Library, tops: list, order: list, sizes: dict, *, max_elements: int, max_vertices: int,
-           max_memory_bytes: int | None) -> None:
-    """Refuse, naming the count, a flattening over the element, vertex or placement limit or the memory budget."""
+def _flat_totals(lib: _Library, tops: list, sizes: dict, *, max_elements: int, max_vertices: int) -> tuple:
+    """Polygons and vertices of the flattened tops; refused, naming the count, over the element or vertex limit."""
     total_p = sum(sizes[t][0] for t in tops)
     total_v = sum(sizes[t][1] for t in tops)
     if total_p > max_elements:
@@ -850,6 +849,13 @@ def _admit(lib: _Library, tops: list, order: list, sizes: dict, *, max_elements:
     if total_v > max_vertices:
         raise _err(lib.path, f"{total_v} vertices after resolving references exceed the limit max_vertices="
                              f"{max_vertices}")
+    return total_p, total_v
+
+
+def _admit(lib: _Library, tops: list, order: list, sizes: dict, *, max_elements: int, max_vertices: int,
+           max_memory_bytes: int | None) -> None:
+    """Refuse, naming the count, a flattening over the element, vertex or placement limit or the memory budget."""
+    total_p, total_v = _flat_totals(lib, tops, sizes, max_elements=max_elements, max_vertices=max_vertices)
     n_inst = sum(_instance_counts(lib, tops, order, sizes).values())
     need = flatten_bytes(total_p, total_v, n_inst)
     budget = memory_budget(max_memory_bytes)

@@ -36,6 +36,7 @@ import numpy as np
 
 from metalay.errors import OutputError
 from metalay.io import _oasis_codec as oc
+from metalay.io.writer import copy_spooled
 from metalay.util.atomic import atomic_path
 
 __all__ = [
@@ -612,15 +613,7 @@ class OasisStream:
             raise OutputError(f"{self.path}: cell(s) placed but never defined: {', '.join(missing[:10])}")
         for ref in sorted(self._defined - {self._top}):  # other cells in reference-number order
             self._write(bytes((oc.CELL_REF,)) + oc.uint_bytes(ref))
-            for off, n in self._spooled.get(ref, []):
-                self._spool.seek(off)
-                left = n
-                while left:
-                    chunk = self._spool.read(min(left, 8 << 20))
-                    if not chunk:
-                        raise OutputError(f"{self.path}: temporary cell data lost")
-                    self._write(chunk)
-                    left -= len(chunk)
+            copy_spooled(self._spool, self._spooled.get(ref, []), self._write, self.path)
         table = self._pos
         self._write(b"".join(bytes((oc.CELLNAME,)) + oc.string_bytes(n) for n in self._names))
         end = bytearray((oc.END,))

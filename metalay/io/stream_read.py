@@ -31,8 +31,8 @@ from metalay.io.gdsread import (
     FlatPolygons,
     _cell_geometry,
     _decode_run,
-    _err,
     _flat_sizes,
+    _flat_totals,
     _nm_from_m,
     _parse,
     _placements,
@@ -128,14 +128,7 @@ def iter_mask_chunks(path, *, layers=None, cell: str | None = None, max_elements
     try:
         tops, order = _topology(lib, cell, max_depth)
         sizes = _flat_sizes(lib, order)
-        total_p = sum(sizes[t][0] for t in tops)
-        total_v = sum(sizes[t][1] for t in tops)
-        if total_p > max_elements:
-            raise _err(lib.path, f"{total_p} polygons after resolving references exceed the limit max_elements="
-                                 f"{max_elements}")
-        if total_v > max_vertices:
-            raise _err(lib.path, f"{total_v} vertices after resolving references exceed the limit max_vertices="
-                                 f"{max_vertices}")
+        _flat_totals(lib, tops, sizes, max_elements=max_elements, max_vertices=max_vertices)
         inst = _placements(lib, tops, order, sizes)
         db_nm, uu = _nm_from_m(lib.db_unit_m), float(lib.user_unit_m)
         for name in order:
@@ -145,12 +138,7 @@ def iter_mask_chunks(path, *, layers=None, cell: str | None = None, max_elements
                 if cnt.shape[0]:
                     yield _chunk(lay, dt, cnt.astype(np.int64, copy=False), xy, db_nm, uu)
     finally:
-        lib.buf = None
-        if mm is not None:
-            try:
-                mm.close()
-            except BufferError:
-                pass  # a chunk still views the mapping; it closes when collected
+        _close(lib, mm)
 
 
 def count_polygons(path, *, layers=None, cell: str | None = None, max_elements: int = DEFAULT_MAX_ELEMENTS,
@@ -165,9 +153,14 @@ def count_polygons(path, *, layers=None, cell: str | None = None, max_elements: 
         sizes = _flat_sizes(lib, order)
         return sum(sizes[t][0] for t in tops), sum(sizes[t][1] for t in tops)
     finally:
-        lib.buf = None
-        if mm is not None:
-            try:
-                mm.close()
-            except BufferError:
-                pass
+        _close(lib, mm)
+
+
+def _close(lib, mm) -> None:
+    """Drop the parsed buffer and close the file mapping."""
+    lib.buf = None
+    if mm is not None:
+        try:
+            mm.close()
+        except BufferError:
+            pass  # a chunk still views the mapping; it closes when collected

@@ -40,6 +40,7 @@ from metalay.util.atomic import atomic_path
 
 __all__ = [
     "GdsStream",
+    "copy_spooled",
     "add_polygons",
     "build_gdstk_fields",
     "boundary_records",
@@ -97,6 +98,20 @@ def _date_payload() -> bytes:
     t = FIXED_TIMESTAMP
     one = struct.pack(">6h", t.year, t.month, t.day, t.hour, t.minute, t.second)
     return one + one
+
+
+def copy_spooled(spool, pieces, write, path) -> None:
+    """Copy the spooled byte ranges ``pieces`` ((offset, length) pairs) of ``spool`` through ``write``, 8 MB at a
+    time (the cells that are not the top one, written to a temporary file while the top one streams)."""
+    for off, n in pieces:
+        spool.seek(off)
+        left = n
+        while left:
+            chunk = spool.read(min(left, 8 << 20))
+            if not chunk:
+                raise OutputError(f"{path}: temporary cell data lost")
+            write(chunk)
+            left -= len(chunk)
 
 
 class GdsStream:
@@ -190,15 +205,7 @@ class GdsStream:
         self._write(_record(_ENDSTR))
         for name, pieces in self._spooled.items():  # cells in the order of first use
             self._write(_record(_BGNSTR, _date_payload()) + _string(_STRNAME, name))
-            for off, n in pieces:
-                self._spool.seek(off)
-                left = n
-                while left:
-                    chunk = self._spool.read(min(left, 8 << 20))
-                    if not chunk:
-                        raise OutputError(f"{self.path}: temporary cell data lost")
-                    self._write(chunk)
-                    left -= len(chunk)
+            copy_spooled(self._spool, pieces, self._write, self.path)
             self._write(_record(_ENDSTR))
         self._write(_record(_ENDLIB))
         self.sha256 = self._hash.hexdigest()
