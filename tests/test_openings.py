@@ -216,11 +216,16 @@ def test_decoding_is_banded_and_does_not_loop_over_sites(monkeypatch):
 @pytest.fixture(scope="module")
 def slot_pair(tmp_path_factory):
     root = tmp_path_factory.mktemp("slots")
-    out = {}
+    # one folder of solved biased cells for every check of this file, and a truncation of 10 orders per axis for
+    # the biased solve: the gold slots' recorded truncation costs about 75 s per check here, and what these tests
+    # compare is the two tones (both checks use the same biased responses), not the solver's convergence, which
+    # tests/test_biascells.py and tests/test_rcwa.py check against grcwa and closed forms
+    out = {"cell_cache": str(root / "cell-cache")}
     for tone in ("complement", "structures"):
         raw = copy.deepcopy(SLOT_DESIGN)
         raw["design"]["name"] = f"t-slots-{tone}"
         raw["mask"]["tone"] = tone
+        raw["checks"].update(cell_cache=out["cell_cache"], bias_harmonics=10)
         # write fields in both tones: the field boundaries are extra cut lines of the tone inversion, and the
         # elements moved off their columns at field edges test the merging of touching pieces
         raw["mask"]["write_field"] = {"size_um": 7.0, "origin_um": [0.13, 0.0]}
@@ -265,7 +270,7 @@ def test_cli_optics_and_compile_judge_complement_masks(slot_pair, tmp_path, caps
     err = capsys.readouterr().err
     assert rc != 0 and err.count("\n") == 1 and "complement-tone mask holds film pieces" in err
     raw = copy.deepcopy(SLOT_DESIGN)
-    raw["checks"]["optics"] = True
+    raw["checks"].update(optics=True, cell_cache=slot_pair["cell_cache"], bias_harmonics=10)
     res = compile_design(parse_design(raw, where=str(tmp_path / "c.toml")), tmp_path / "c", show_progress=False,
                          run_rules=False)
     check = res.manifest["checks"]["optics"]

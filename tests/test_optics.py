@@ -235,3 +235,40 @@ def test_cli_and_compile_hook(tmp_path):
     hook = optics.compile_check(path, make_library(), design)
     assert hook["verdict"] == "pass" and hook["status"] == "pass" and "OAM purity" in hook["summary"]
     assert all(not v["path"].startswith("/") for v in hook["files"].values())
+
+
+@pytest.mark.parametrize("extra_slope_rad_per_um", [0.05, -0.05])
+def test_report_phase_error_is_mask_minus_target_with_its_sign(tmp_path, monkeypatch, extra_slope_rad_per_um):
+    """A mask written with the target phase plus a known ramp a*x must show a phase error that rises as +a*x, in the
+    per-site numbers and in the map the report draws; flipping the sign (target minus mask) gives -a and fails.
+    Source: independent calculation (the written ramp is known exactly; the error is its slope after the offset)."""
+    from metalay.checks import plots
+    from metalay.design.lattice import sample_sites
+    from metalay.design.phase import target_phase
+
+    design = _design([{"kind": "vortex", "charge": 1}], 20.0)
+    s = sample_sites(design.aperture, design.lattice)
+    phi = target_phase(design.terms, s.x_um, s.y_um, wavelength_nm=LAM, sigma=design.sigma)
+    theta = np.mod(design.sigma * (phi + extra_slope_rad_per_um * s.x_um) / 2, np.pi)
+    path = write_fins_gds(tmp_path / "ramp.gds", s.x_um * 1e3, s.y_um * 1e3, theta)
+    seen = {}
+    real_section, real_map = optics._phase_error_section, plots.signed_map
+
+    def section(dec, ev, figures):
+        seen["site"] = optics._site_phase_error(dec, ev)[0], optics.site_xy(dec.decoded)[0]
+        return real_section(dec, ev, figures)
+
+    def signed_map(values, xs, ys, **kw):
+        seen["map"] = np.asarray(values), np.asarray(xs), np.asarray(ys), np.asarray(kw["valid"])
+        return real_map(values, xs, ys, **kw)
+
+    monkeypatch.setattr(optics, "_phase_error_section", section)
+    monkeypatch.setattr(plots, "signed_map", signed_map)
+    optics.check_optics(path, make_library(), design=design, out_dir=tmp_path / "out")
+    e, x_site = seen["site"]
+    slope_site = np.polyfit(x_site, np.asarray(e), 1)[0]
+    assert slope_site == pytest.approx(extra_slope_rad_per_um, rel=0.02)
+    err_deg, xs, ys, valid = seen["map"]
+    xx = np.broadcast_to(xs[None, :], err_deg.shape)
+    slope_map = np.radians(np.polyfit(xx[valid], err_deg[valid], 1)[0])
+    assert slope_map == pytest.approx(extra_slope_rad_per_um, rel=0.05)

@@ -490,25 +490,9 @@ def build_library(spec: BuildSpec, *, progress=None):
     n_total = int(np.prod([spec.dims[d].size for d in names])) * len(spec.heights_nm)
     cb = progress(n_total) if progress is not None else None
     sw = sweep(spec, progress=cb)
-    spin_levels = None
-    if spec.phase_mechanism == "geometric":
-        picks = np.array([pick_geometric(sw)])
-    elif spec.phase_mechanism == "propagation":
-        picks = pick_propagation(sw, spec.levels)
-    else:
-        spin_levels, sw = pick_decoupled(spec, sw)
-        picks = spin_levels.distinct
-    heights = sw.dims["height_nm"][picks]
-    if np.unique(heights).size != 1:
-        raise CellBuildError(f"{spec.path}: picked cells have different heights {np.unique(heights)}; "
-                             "sweep one height for propagation-phase libraries")
-    height = float(heights[0])
-    chosen = [{d: float(sw.dims[d][i]) for d in names} for i in picks]
-    # de-duplicate (a propagation set may pick one pillar for two neighbouring levels) and sort by id
-    uniq = {}
-    for c in chosen:
-        uniq.setdefault(_cell_id(spec.kind, c), c)
-    ids = sorted(uniq)
+    picked = _pick_cells(spec, sw)
+    sw = picked.sweep
+    ids, uniq, height = picked.ids, picked.uniq, picked.height
     cell_dims = {d: np.array([uniq[i][d] for i in ids]) for d in names}
     c = len(ids)
     wl = spec.design_wavelength_nm * np.linspace(1 - spec.band_half_width, 1 + spec.band_half_width,
@@ -517,72 +501,12 @@ def build_library(spec: BuildSpec, *, progress=None):
     rep = {d: np.repeat(v, wl.size) for d, v in cell_dims.items()}
     pts = converge_points(spec, rep, height, np.tile(wl, c), sw.harmonics)
     tl, ts, pl, ps = (_q(pts[k].reshape(c, wl.size)) for k in ("t_long", "t_short", "power_long", "power_short"))
-    lossless = _lossless(spec, wl)
-    per_point = []
-    for n, (ci, wi) in enumerate((ci, wi) for ci in range(c) for wi in range(wl.size)):
-        bal = (pts["power_long"][n] + pts["other_long"][n], pts["power_short"][n] + pts["other_short"][n])
-        if lossless[wi] and max(abs(bal[0] - 1), abs(bal[1] - 1)) > ENERGY_TOLERANCE:
-            raise CellBuildError(f"{spec.path}: cell {ids[ci]} at {wl[wi]:g} nm: R + T = {bal[0]:.9f} / {bal[1]:.9f} "
-                                 f"for a lossless stack (allowed 1 +- {ENERGY_TOLERANCE:g}); solver failure")
-        per_point.append({"cell_id": ids[ci], "wavelength_nm": float(wl[wi]),
-                          "harmonics_x": int(pts["harmonics"][n, 0]), "harmonics_y": int(pts["harmonics"][n, 1]),
-                          "change_abs_t": _rc(pts["change_abs_t"][n]),
-                          "change_phase_deg": _rc(pts["change_phase_deg"][n]),
-                          "converged": bool(pts["converged"][n]), "lossless": bool(lossless[wi]),
-                          "r_plus_t_long": _r(bal[0]), "r_plus_t_short": _r(bal[1])})
-    conv = {"tolerance_abs_t": spec.tolerance_abs_t, "tolerance_phase_deg": spec.tolerance_phase_deg,
-            "max_harmonics": spec.max_harmonics, "energy_tolerance": ENERGY_TOLERANCE,
-            "method": (f"per point, truncation raised by {_STEP} orders per axis from the sweep truncation until |t| "
-                       "and phase (where |t| >= 0.1) change by at most the tolerances; the finer solve is stored"),
-            "all_converged": bool(np.all(pts["converged"])),
-            "max_change_abs_t": _rc(np.max(pts["change_abs_t"])),
-            "max_change_phase_deg": _rc(np.max(pts["change_phase_deg"])), "points": per_point}
-
-    base = Path(spec.path).parent
-    mats = {}
-    for nm in {spec.incident_medium, spec.exit_medium, *[lay["material"] for lay in spec.layers],
-               *[lay["background"] for lay in spec.layers if lay["patterned"]]}:
-        mats[nm] = get_material(nm, base_dir=base).describe()
-    k = wl.size // 2
-    if spec.phase_mechanism == "geometric":
-        ce = np.abs((tl[:, k] - ts[:, k]) / 2) ** 2
-        found = (f"Solver found: best of {sw.t_long.size} rule-passing geometries ({sw.n_candidates} swept) is "
-                 f"{ids[0]} at height {height:g} nm: |t_long| = {abs(tl[0, k]):.4f}, |t_short| = {abs(ts[0, k]):.4f}, "
-                 f"phase difference {np.angle(tl[0, k] / ts[0, k], deg=True):.2f} deg, conversion efficiency "
-                 f"{ce[0]:.4f} at {wl[k]:g} nm.")
-    elif spin_levels is not None:
-        to_cell = {int(g): ids.index(_cell_id(spec.kind, {d: float(sw.dims[d][g]) for d in names}))
-                   for g in spin_levels.distinct}
-        geoms = np.array(sorted(to_cell, key=to_cell.get))  # sweep index of each library cell, in library order
-        spin_block = level_report(ids, sw.t_long[geoms], sw.t_short[geoms], spin_levels, to_cell,
-                                  retardance_tolerance_rad=np.deg2rad(spec.retardance_tolerance_deg),
-                                  wavelength_nm=spec.design_wavelength_nm)
-        found = _decoupled_found(spin_block, sw, height)
-    else:
-        ph = np.angle(tl[:, k] / tl[0, k], deg=True) % 360
-        found = (f"Solver found: {c} pillars from {sw.t_long.size} rule-passing diameters ({sw.n_candidates} "
-                 f"swept), |t| from {np.min(np.abs(tl[:, k])):.3f} to {np.max(np.abs(tl[:, k])):.3f}, relative "
-                 f"phases {', '.join(f'{p:.0f}' for p in np.sort(ph))} deg at {wl[k]:g} nm.")
-    solver = {"name": "metalay.rcwa", "method": "RCWA / Fourier modal method with scattering matrices",
-              "factorization": ("li: Li 1997 inverse rule along x and y (every edge of the cell is axis-parallel; "
-                                "chosen automatically per layer)"),
-              "references": ["Moharam et al. 1995, J. Opt. Soc. Am. A 12, 1068",
-                             "Li 1996, J. Opt. Soc. Am. A 13, 1870", "Li 1997, J. Opt. Soc. Am. A 14, 2758",
-                             "Rumpf 2011, PIER B 35, 241"],
-              "sweep_harmonics_x": sw.harmonics[0], "sweep_harmonics_y": sw.harmonics[1],
-              "sweep_harmonics_source": "spec" if spec.harmonics is not None else
-              f"convergence target on the median geometry, capped at {spec.sweep_max_harmonics} orders",
-              "truncation": "rectangular",
-              "n_stairs": spec.n_stairs if spec.kind not in ("nanofin", "slot") else None,
-              "incidence": "normal, from the incident medium", "convergence": conv,
-              "sweep": {"kind": spec.kind, **{d: [_r(v) for v in spec.dims[d]] for d in names},
-                        "height_nm": [_r(v) for v in spec.heights_nm], "candidates": sw.n_candidates,
-                        "passed_rules": int(sw.t_long.size),
-                        "criterion": _criterion(spec)},
-              "band": {"relative_half_width": spec.band_half_width, "count": spec.band_count}}
+    conv = _convergence_block(spec, ids, wl, pts)
+    spin_block = _spin_block(spec, sw, picked) if picked.spin_levels is not None else None
+    found = _found_note(spec, sw, picked, tl, ts, wl, spin_block)
     provenance = {"geometry_source": spec.geometry_source,
                   "responses_source": f"metalay cells build {Path(spec.path).name}",
-                  "solver": solver, "materials": {k2: mats[k2] for k2 in sorted(mats)},
+                  "solver": _solver_block(spec, sw, conv), "materials": _materials_block(spec),
                   "notes": (spec.notes + " " if spec.notes else "") + found}
     layers = tuple({"name": lay["name"], "material": lay["material"],
                     "thickness_nm": height if lay["patterned"] else lay["thickness_nm"],
@@ -597,8 +521,130 @@ def build_library(spec: BuildSpec, *, progress=None):
                       exit_medium=spec.exit_medium if spec.mode == "transmission" else spec.incident_medium,
                       layers=layers, rules=dict(spec.rules), provenance=provenance, cells=cells,
                       wavelengths_nm=wl, t_long=tl, t_short=ts, power_long=pl, power_short=ps,
-                      extra={"spin_decoupled": spin_block} if spin_levels is not None else {})
+                      extra={"spin_decoupled": spin_block} if spin_block is not None else {})
     return lib, sw
+
+
+@dataclass(frozen=True)
+class _Picked:
+    """The cells the builder chose: sorted unique ids, their dimensions, the common height, the spin levels."""
+
+    sweep: "SweepResult"
+    picks: np.ndarray
+    ids: list
+    uniq: dict
+    height: float
+    spin_levels: object = None
+
+
+def _pick_cells(spec: BuildSpec, sw) -> _Picked:
+    """Choose the library cells from the sweep by the phase mechanism; one height; de-duplicated, sorted by id."""
+    names = _DIMS[spec.kind]
+    spin_levels = None
+    if spec.phase_mechanism == "geometric":
+        picks = np.array([pick_geometric(sw)])
+    elif spec.phase_mechanism == "propagation":
+        picks = pick_propagation(sw, spec.levels)
+    else:
+        spin_levels, sw = pick_decoupled(spec, sw)
+        picks = spin_levels.distinct
+    heights = sw.dims["height_nm"][picks]
+    if np.unique(heights).size != 1:
+        raise CellBuildError(f"{spec.path}: picked cells have different heights {np.unique(heights)}; "
+                             "sweep one height for propagation-phase libraries")
+    chosen = [{d: float(sw.dims[d][i]) for d in names} for i in picks]
+    # de-duplicate (a propagation set may pick one pillar for two neighbouring levels) and sort by id
+    uniq = {}
+    for c in chosen:
+        uniq.setdefault(_cell_id(spec.kind, c), c)
+    return _Picked(sweep=sw, picks=picks, ids=sorted(uniq), uniq=uniq, height=float(heights[0]),
+                   spin_levels=spin_levels)
+
+
+def _convergence_block(spec: BuildSpec, ids, wl, pts) -> dict:
+    """Per-point convergence record; refuses a lossless stack whose R + T misses 1 (a solver failure)."""
+    lossless = _lossless(spec, wl)
+    per_point = []
+    for n, (ci, wi) in enumerate((ci, wi) for ci in range(len(ids)) for wi in range(wl.size)):
+        bal = (pts["power_long"][n] + pts["other_long"][n], pts["power_short"][n] + pts["other_short"][n])
+        if lossless[wi] and max(abs(bal[0] - 1), abs(bal[1] - 1)) > ENERGY_TOLERANCE:
+            raise CellBuildError(f"{spec.path}: cell {ids[ci]} at {wl[wi]:g} nm: R + T = {bal[0]:.9f} / {bal[1]:.9f} "
+                                 f"for a lossless stack (allowed 1 +- {ENERGY_TOLERANCE:g}); solver failure")
+        per_point.append({"cell_id": ids[ci], "wavelength_nm": float(wl[wi]),
+                          "harmonics_x": int(pts["harmonics"][n, 0]), "harmonics_y": int(pts["harmonics"][n, 1]),
+                          "change_abs_t": _rc(pts["change_abs_t"][n]),
+                          "change_phase_deg": _rc(pts["change_phase_deg"][n]),
+                          "converged": bool(pts["converged"][n]), "lossless": bool(lossless[wi]),
+                          "r_plus_t_long": _r(bal[0]), "r_plus_t_short": _r(bal[1])})
+    return {"tolerance_abs_t": spec.tolerance_abs_t, "tolerance_phase_deg": spec.tolerance_phase_deg,
+            "max_harmonics": spec.max_harmonics, "energy_tolerance": ENERGY_TOLERANCE,
+            "method": (f"per point, truncation raised by {_STEP} orders per axis from the sweep truncation until |t| "
+                       "and phase (where |t| >= 0.1) change by at most the tolerances; the finer solve is stored"),
+            "all_converged": bool(np.all(pts["converged"])),
+            "max_change_abs_t": _rc(np.max(pts["change_abs_t"])),
+            "max_change_phase_deg": _rc(np.max(pts["change_phase_deg"])), "points": per_point}
+
+
+def _materials_block(spec: BuildSpec) -> dict:
+    """Description of every material the stack names, sorted by name."""
+    base = Path(spec.path).parent
+    mats = {}
+    for nm in {spec.incident_medium, spec.exit_medium, *[lay["material"] for lay in spec.layers],
+               *[lay["background"] for lay in spec.layers if lay["patterned"]]}:
+        mats[nm] = get_material(nm, base_dir=base).describe()
+    return {k2: mats[k2] for k2 in sorted(mats)}
+
+
+def _spin_block(spec: BuildSpec, sw, picked: _Picked) -> dict:
+    """The spin-decoupled level report of the picked cells (library order)."""
+    names = _DIMS[spec.kind]
+    ids = picked.ids
+    to_cell = {int(g): ids.index(_cell_id(spec.kind, {d: float(sw.dims[d][g]) for d in names}))
+               for g in picked.spin_levels.distinct}
+    geoms = np.array(sorted(to_cell, key=to_cell.get))  # sweep index of each library cell, in library order
+    return level_report(ids, sw.t_long[geoms], sw.t_short[geoms], picked.spin_levels, to_cell,
+                        retardance_tolerance_rad=np.deg2rad(spec.retardance_tolerance_deg),
+                        wavelength_nm=spec.design_wavelength_nm)
+
+
+def _found_note(spec: BuildSpec, sw, picked: _Picked, tl, ts, wl, spin_block) -> str:
+    """One sentence on what the solver found, at the band centre."""
+    ids, height = picked.ids, picked.height
+    k = wl.size // 2
+    if spec.phase_mechanism == "geometric":
+        ce = np.abs((tl[:, k] - ts[:, k]) / 2) ** 2
+        return (f"Solver found: best of {sw.t_long.size} rule-passing geometries ({sw.n_candidates} swept) is "
+                f"{ids[0]} at height {height:g} nm: |t_long| = {abs(tl[0, k]):.4f}, |t_short| = {abs(ts[0, k]):.4f}, "
+                f"phase difference {np.angle(tl[0, k] / ts[0, k], deg=True):.2f} deg, conversion efficiency "
+                f"{ce[0]:.4f} at {wl[k]:g} nm.")
+    if spin_block is not None:
+        return _decoupled_found(spin_block, sw, height)
+    ph = np.angle(tl[:, k] / tl[0, k], deg=True) % 360
+    return (f"Solver found: {len(ids)} pillars from {sw.t_long.size} rule-passing diameters ({sw.n_candidates} "
+            f"swept), |t| from {np.min(np.abs(tl[:, k])):.3f} to {np.max(np.abs(tl[:, k])):.3f}, relative "
+            f"phases {', '.join(f'{p:.0f}' for p in np.sort(ph))} deg at {wl[k]:g} nm.")
+
+
+def _solver_block(spec: BuildSpec, sw, conv: dict) -> dict:
+    """``provenance.solver``: method, references, truncations, sweep, band and the convergence record."""
+    names = _DIMS[spec.kind]
+    return {"name": "metalay.rcwa", "method": "RCWA / Fourier modal method with scattering matrices",
+            "factorization": ("li: Li 1997 inverse rule along x and y (every edge of the cell is axis-parallel; "
+                              "chosen automatically per layer)"),
+            "references": ["Moharam et al. 1995, J. Opt. Soc. Am. A 12, 1068",
+                           "Li 1996, J. Opt. Soc. Am. A 13, 1870", "Li 1997, J. Opt. Soc. Am. A 14, 2758",
+                           "Rumpf 2011, PIER B 35, 241"],
+            "sweep_harmonics_x": sw.harmonics[0], "sweep_harmonics_y": sw.harmonics[1],
+            "sweep_harmonics_source": "spec" if spec.harmonics is not None else
+            f"convergence target on the median geometry, capped at {spec.sweep_max_harmonics} orders",
+            "truncation": "rectangular",
+            "n_stairs": spec.n_stairs if spec.kind not in ("nanofin", "slot") else None,
+            "incidence": "normal, from the incident medium", "convergence": conv,
+            "sweep": {"kind": spec.kind, **{d: [_r(v) for v in spec.dims[d]] for d in names},
+                      "height_nm": [_r(v) for v in spec.heights_nm], "candidates": sw.n_candidates,
+                      "passed_rules": int(sw.t_long.size),
+                      "criterion": _criterion(spec)},
+            "band": {"relative_half_width": spec.band_half_width, "count": spec.band_count}}
 
 
 def _criterion(spec: BuildSpec) -> str:

@@ -67,144 +67,167 @@ def _default_out(spec: Path) -> Path:
 
 def run(args) -> int:
     """Run one ``cells`` subcommand; returns the exit code (MetalayError propagates to metalay.cli)."""
+    handler = _HANDLERS.get(args.cells_command)
+    if handler is None:
+        print(f"metalay cells: unknown subcommand {args.cells_command!r}", file=sys.stderr)
+        return 2  # unreachable: argparse allows only the subcommands above
+    return handler(args)
+
+
+def _build(args) -> int:
+    """``metalay cells build``."""
+    from metalay.cells.cellbuild import build_library, load_build_spec
     from metalay.cells.library import save_library
+    from metalay.util.progress import progress
 
-    cmd = args.cells_command
-    if cmd == "build":
-        from metalay.cells.cellbuild import build_library, load_build_spec
-        from metalay.util.progress import progress
+    spec = load_build_spec(args.spec)
+    bars = []
 
-        spec = load_build_spec(args.spec)
-        bars = []
+    def factory(total):
+        bar = progress(total=total, desc=f"sweep {spec.name}", enabled=False if args.quiet else None,
+                       unit="cell")
+        bars.append(bar)
+        return bar.update
 
-        def factory(total):
-            bar = progress(total=total, desc=f"sweep {spec.name}", enabled=False if args.quiet else None,
-                           unit="cell")
-            bars.append(bar)
-            return bar.update
-
-        lib, sw = build_library(spec, progress=factory)
-        for bar in bars:
-            bar.close()
-        written = save_library(lib, args.output or _default_out(args.spec))
-        args.result = {"library": lib.name, "files": [str(p) for p in written],
-                       "convergence": {k: v for k, v in lib.provenance["solver"]["convergence"].items()
-                                       if k != "points"}}
-        if not args.quiet and not args.json:
-            print(lib.provenance["notes"])
-            so = lib.provenance["solver"]
-            conv = so["convergence"]
-            hs = sorted({(p["harmonics_x"], p["harmonics_y"]) for p in conv["points"]})
-            print(f"sweep truncation ({so['sweep_harmonics_x']}, {so['sweep_harmonics_y']}) from the "
-                  f"{so['sweep_harmonics_source']}; band points converged with truncations {hs}: largest change "
-                  f"{conv['max_change_abs_t']:.1e} in |t|, {conv['max_change_phase_deg']:.2f} deg in phase "
-                  f"(targets {conv['tolerance_abs_t']:g}, {conv['tolerance_phase_deg']:g} deg; "
-                  f"{'all points converged' if conv['all_converged'] else 'NOT all points converged: see the file'})")
-            for path in written:
-                print(f"wrote {path}")
-        return 0
-    if cmd == "show":
-        from metalay.cells.cellbuild import library_table, plot_library
-        from metalay.cells.library import load_library
-
-        lib = load_library(args.library)
-        args.result = {"library": lib.name, "mode": lib.mode, "phase_mechanism": lib.phase_mechanism,
-                       "design_wavelength_nm": lib.design_wavelength_nm, "period_nm": lib.period_nm,
-                       "cells": [{"id": c.id, "kind": c.kind, **dict(c.dims_nm)} for c in lib.cells],
-                       "responses": library_table(lib) if lib.has_responses else []}
-        print(f"{lib.name}: {lib.mode}, {lib.phase_mechanism} phase, design {lib.design_wavelength_nm:g} nm, "
-              f"period {lib.period_nm:g} nm, {len(lib.cells)} cell(s)")
-        print(f"responses: {lib.provenance.get('responses_source')}")
-        for cell in lib.cells:
-            dims = ", ".join(f"{k} = {v:g}" for k, v in cell.dims_nm)
-            print(f"cell {cell.id}: {cell.kind}, {dims}")
-        if not lib.has_responses:
-            print("no responses (geometry only)")
-            return 0
-        word = "r" if lib.mode == "reflection" else "t"
-        print(f"{'cell':>16} {'wl_nm':>8} {'|'+word+'_long|':>9} {'|'+word+'_short|':>10} {'dphase_deg':>10} "
-              f"{'conversion':>10} {'leakage':>8}")
-        for row in library_table(lib):
-            print(f"{row['cell_id']:>16} {row['wavelength_nm']:8.2f} {row['abs_t_long']:9.4f} "
-                  f"{row['abs_t_short']:10.4f} {row['phase_difference_deg']:10.2f} {row['conversion']:10.4f} "
-                  f"{row['leakage']:8.4f}")
-        spin = lib.extra.get("spin_decoupled")
-        if isinstance(spin, dict):
-            print(f"spin-decoupled set at {spin['wavelength_nm']:g} nm: {spin['levels']} levels of the conversion "
-                  f"phase from {spin['level_offset_deg']:g} deg; amplitude spread {spin['amplitude_spread']:.4f}, "
-                  f"worst retardance error {spin['worst_retardance_error_deg']:.2f} deg (tolerance "
-                  f"{spin['retardance_tolerance_deg']:g}), worst level phase error "
-                  f"{spin['worst_level_phase_error_deg']:.2f} deg")
-            for c in spin["cells"]:
-                print(f"  {c['cell_id']}: conversion phase {c['conversion_phase_deg']:8.2f} deg, retardance error "
-                      f"{c['retardance_error_deg']:+6.2f} deg, conversion {c['conversion_efficiency']:.4f}, amplitude "
-                      f"{100 * c['amplitude_deviation']:+.2f} % of the mean, levels {c['levels']}")
-        if not args.no_plot:
-            png = args.png or Path("out") / "cells" / f"{lib.name}.png"
-            written = plot_library(lib, png)
-            args.result["files"] = [str(written)]
-            print(f"wrote {written}")
-        return 0
-    if cmd == "import":
-        from metalay.cells.cellbuild import import_responses, import_template
-        from metalay.errors import CellBuildError
-
-        if args.template is not None:
-            if args.table is not None or args.meta is not None:
-                raise CellBuildError("command line: --template writes the example files; give it alone (no table, "
-                                     "no --meta)")
-            meta, table = import_template(args.template)
-            args.result = {"meta": str(meta), "responses": str(table)}
-            print(f"wrote {meta} (a filled-in example: replace the values) and {table} (header only: add your rows)")
-            print(f"then: metalay cells import {table} --meta {meta} -o DIR")
-            return 0
-        if args.table is None or args.meta is None:
-            raise CellBuildError("command line: give the responses table and --meta (or --template DIR for an "
-                                 "example of both)")
-        lib = import_responses(args.table, args.meta)
-        written = save_library(lib, args.output)
-        args.result = {"library": lib.name, "files": [str(p) for p in written]}
+    lib, sw = build_library(spec, progress=factory)
+    for bar in bars:
+        bar.close()
+    written = save_library(lib, args.output or _default_out(args.spec))
+    args.result = {"library": lib.name, "files": [str(p) for p in written],
+                   "convergence": {k: v for k, v in lib.provenance["solver"]["convergence"].items()
+                                   if k != "points"}}
+    if not args.quiet and not args.json:
+        print(lib.provenance["notes"])
+        so = lib.provenance["solver"]
+        conv = so["convergence"]
+        hs = sorted({(p["harmonics_x"], p["harmonics_y"]) for p in conv["points"]})
+        print(f"sweep truncation ({so['sweep_harmonics_x']}, {so['sweep_harmonics_y']}) from the "
+              f"{so['sweep_harmonics_source']}; band points converged with truncations {hs}: largest change "
+              f"{conv['max_change_abs_t']:.1e} in |t|, {conv['max_change_phase_deg']:.2f} deg in phase "
+              f"(targets {conv['tolerance_abs_t']:g}, {conv['tolerance_phase_deg']:g} deg; "
+              f"{'all points converged' if conv['all_converged'] else 'NOT all points converged: see the file'})")
         for path in written:
             print(f"wrote {path}")
-        return 0
-    if cmd == "complement":
-        from metalay.cells.library import load_library
-        from metalay.mask.process import babinet_slot_library
+    return 0
 
-        lib = babinet_slot_library(load_library(args.library), name=args.name)
-        print(f"{lib.name}: Babinet-principle estimate, not a solver result ({lib.provenance.get('responses_source')})")
-        written = save_library(lib, args.output)
-        args.result = {"library": lib.name, "files": [str(p) for p in written]}
-        for path in written:
-            print(f"wrote {path}")
-        return 0
-    if cmd == "rotation-check":
-        from dataclasses import replace
 
-        from metalay.cells.cellbuild import rotation_check
-        from metalay.cells.library import load_library
+def _show(args) -> int:
+    """``metalay cells show``."""
 
-        lib = load_library(args.library)
-        if not 1 <= args.max_harmonics <= 40:
-            print(f"metalay: error: --max-harmonics = {args.max_harmonics} outside 1..40", file=sys.stderr)
-            return 2
-        rec = rotation_check(lib, args.angles, wavelength_nm=args.wavelength_nm, max_harmonics=args.max_harmonics)
-        for cell in rec["cells"]:
-            if cell["rotation_invariant"]:
-                print(f"{cell['cell_id']}: rotation invariant, nothing to check")
-                continue
-            print(f"{cell['cell_id']} at {rec['wavelength_nm']:g} nm:")
-            for a in cell["angles"]:
-                print(f"  {a['angle_deg']:7.3f} deg ({a['method']}, truncation ({a['harmonics_x']}, "
-                      f"{a['harmonics_y']}){'' if a['converged'] else ', NOT converged'}): phase step spin +1 "
-                      f"{a['phase_step_spin_plus_deg']:+7.2f} deg, spin -1 {a['phase_step_spin_minus_deg']:+7.2f} deg "
-                      f"(model +-{2 * a['angle_deg']:.2f}); conversion {a['conversion_direct']:.4f} direct vs "
-                      f"{a['conversion_model']:.4f} model")
-        out = args.output or Path(lib.source_path).parent
-        written = save_library(replace(lib, extra={**lib.extra, "rotation_check": rec}), out)
-        args.result = {"library": lib.name, "rotation_check": rec, "files": [str(p) for p in written]}
-        for path in written:
-            print(f"wrote {path}")
+    from metalay.cells.cellbuild import library_table, plot_library
+    from metalay.cells.library import load_library
+
+    lib = load_library(args.library)
+    args.result = {"library": lib.name, "mode": lib.mode, "phase_mechanism": lib.phase_mechanism,
+                   "design_wavelength_nm": lib.design_wavelength_nm, "period_nm": lib.period_nm,
+                   "cells": [{"id": c.id, "kind": c.kind, **dict(c.dims_nm)} for c in lib.cells],
+                   "responses": library_table(lib) if lib.has_responses else []}
+    print(f"{lib.name}: {lib.mode}, {lib.phase_mechanism} phase, design {lib.design_wavelength_nm:g} nm, "
+          f"period {lib.period_nm:g} nm, {len(lib.cells)} cell(s)")
+    print(f"responses: {lib.provenance.get('responses_source')}")
+    for cell in lib.cells:
+        dims = ", ".join(f"{k} = {v:g}" for k, v in cell.dims_nm)
+        print(f"cell {cell.id}: {cell.kind}, {dims}")
+    if not lib.has_responses:
+        print("no responses (geometry only)")
         return 0
-    print(f"metalay cells: unknown subcommand {cmd!r}", file=sys.stderr)
-    return 2  # unreachable: argparse allows only the subcommands above
+    word = "r" if lib.mode == "reflection" else "t"
+    print(f"{'cell':>16} {'wl_nm':>8} {'|'+word+'_long|':>9} {'|'+word+'_short|':>10} {'dphase_deg':>10} "
+          f"{'conversion':>10} {'leakage':>8}")
+    for row in library_table(lib):
+        print(f"{row['cell_id']:>16} {row['wavelength_nm']:8.2f} {row['abs_t_long']:9.4f} "
+              f"{row['abs_t_short']:10.4f} {row['phase_difference_deg']:10.2f} {row['conversion']:10.4f} "
+              f"{row['leakage']:8.4f}")
+    spin = lib.extra.get("spin_decoupled")
+    if isinstance(spin, dict):
+        print(f"spin-decoupled set at {spin['wavelength_nm']:g} nm: {spin['levels']} levels of the conversion "
+              f"phase from {spin['level_offset_deg']:g} deg; amplitude spread {spin['amplitude_spread']:.4f}, "
+              f"worst retardance error {spin['worst_retardance_error_deg']:.2f} deg (tolerance "
+              f"{spin['retardance_tolerance_deg']:g}), worst level phase error "
+              f"{spin['worst_level_phase_error_deg']:.2f} deg")
+        for c in spin["cells"]:
+            print(f"  {c['cell_id']}: conversion phase {c['conversion_phase_deg']:8.2f} deg, retardance error "
+                  f"{c['retardance_error_deg']:+6.2f} deg, conversion {c['conversion_efficiency']:.4f}, amplitude "
+                  f"{100 * c['amplitude_deviation']:+.2f} % of the mean, levels {c['levels']}")
+    if not args.no_plot:
+        png = args.png or Path("out") / "cells" / f"{lib.name}.png"
+        written = plot_library(lib, png)
+        args.result["files"] = [str(written)]
+        print(f"wrote {written}")
+    return 0
+
+
+def _import(args) -> int:
+    """``metalay cells import``."""
+    from metalay.cells.cellbuild import import_responses, import_template
+    from metalay.cells.library import save_library
+    from metalay.errors import CellBuildError
+
+    if args.template is not None:
+        if args.table is not None or args.meta is not None:
+            raise CellBuildError("command line: --template writes the example files; give it alone (no table, "
+                                 "no --meta)")
+        meta, table = import_template(args.template)
+        args.result = {"meta": str(meta), "responses": str(table)}
+        print(f"wrote {meta} (a filled-in example: replace the values) and {table} (header only: add your rows)")
+        print(f"then: metalay cells import {table} --meta {meta} -o DIR")
+        return 0
+    if args.table is None or args.meta is None:
+        raise CellBuildError("command line: give the responses table and --meta (or --template DIR for an "
+                             "example of both)")
+    lib = import_responses(args.table, args.meta)
+    written = save_library(lib, args.output)
+    args.result = {"library": lib.name, "files": [str(p) for p in written]}
+    for path in written:
+        print(f"wrote {path}")
+    return 0
+
+
+def _complement(args) -> int:
+    """``metalay cells complement``."""
+    from metalay.cells.library import load_library, save_library
+    from metalay.mask.process import babinet_slot_library
+
+    lib = babinet_slot_library(load_library(args.library), name=args.name)
+    print(f"{lib.name}: Babinet-principle estimate, not a solver result ({lib.provenance.get('responses_source')})")
+    written = save_library(lib, args.output)
+    args.result = {"library": lib.name, "files": [str(p) for p in written]}
+    for path in written:
+        print(f"wrote {path}")
+    return 0
+
+
+def _rotation_check(args) -> int:
+    """``metalay cells rotation-check``."""
+    from dataclasses import replace
+
+    from metalay.cells.cellbuild import rotation_check
+    from metalay.cells.library import load_library, save_library
+
+    lib = load_library(args.library)
+    if not 1 <= args.max_harmonics <= 40:
+        print(f"metalay: error: --max-harmonics = {args.max_harmonics} outside 1..40", file=sys.stderr)
+        return 2
+    rec = rotation_check(lib, args.angles, wavelength_nm=args.wavelength_nm, max_harmonics=args.max_harmonics)
+    for cell in rec["cells"]:
+        if cell["rotation_invariant"]:
+            print(f"{cell['cell_id']}: rotation invariant, nothing to check")
+            continue
+        print(f"{cell['cell_id']} at {rec['wavelength_nm']:g} nm:")
+        for a in cell["angles"]:
+            print(f"  {a['angle_deg']:7.3f} deg ({a['method']}, truncation ({a['harmonics_x']}, "
+                  f"{a['harmonics_y']}){'' if a['converged'] else ', NOT converged'}): phase step spin +1 "
+                  f"{a['phase_step_spin_plus_deg']:+7.2f} deg, spin -1 {a['phase_step_spin_minus_deg']:+7.2f} deg "
+                  f"(model +-{2 * a['angle_deg']:.2f}); conversion {a['conversion_direct']:.4f} direct vs "
+                  f"{a['conversion_model']:.4f} model")
+    out = args.output or Path(lib.source_path).parent
+    written = save_library(replace(lib, extra={**lib.extra, "rotation_check": rec}), out)
+    args.result = {"library": lib.name, "rotation_check": rec, "files": [str(p) for p in written]}
+    for path in written:
+        print(f"wrote {path}")
+    return 0
+
+
+_HANDLERS = {"build": _build, "show": _show, "import": _import, "complement": _complement,
+             "rotation-check": _rotation_check}
+
