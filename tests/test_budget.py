@@ -95,3 +95,53 @@ def test_capped_compile_is_refused_up_front_or_runs_to_the_end(tmp_path):
             assert not (tmp_path / name).exists()
         else:
             assert (tmp_path / name / "manifest.json").is_file()
+
+
+def _steps():
+    from metalay.checks.steps import default_checks
+
+    return default_checks(rules=True, optics=True)
+
+
+def test_admission_counts_a_check_streamed_only_when_its_whole_mask_method_does_not_fit(small_design_dict):
+    # Common practice (no source): admit with the method the step will use; constants measured in
+    # bench/bench_admission.py (whole mask) and bench/bench_stream_checks.py (streamed), docs/scale-checks.md
+    from metalay.checks.steps import RULES_BYTES_PER_SITE, STREAMED_BYTES_PER_SITE, STREAMED_FIXED_BYTES
+    from metalay.design.spec import parse_design
+    from metalay.mask.compile import check_admission_bytes_per_site
+
+    design = parse_design(small_design_dict)
+    room = 2_000_000_000
+    budget = COMPILE_FIXED_BYTES + room
+    fits = check_admission_bytes_per_site(_steps(), design, room / RULES_BYTES_PER_SITE * 0.99,
+                                          max_memory_bytes=budget)
+    assert fits == (RULES_BYTES_PER_SITE, frozenset())
+    n = 1e8
+    per_site, streamed = check_admission_bytes_per_site(_steps(), design, n, max_memory_bytes=budget)
+    assert streamed == {"rules", "optics"}
+    assert per_site == pytest.approx(STREAMED_BYTES_PER_SITE + STREAMED_FIXED_BYTES / n)
+    assert compile_memory_bytes(n, check_bytes_per_site=per_site)["total"] <= budget  # 1e8 sites now fit 2.5 GB
+    # a design the streamed optics does not cover keeps the whole-mask figure for that check
+    inverse = parse_design({**small_design_dict, "mask": {"formats": ["gds"], "tone": "complement"}})
+    per_site, streamed = check_admission_bytes_per_site(_steps(), inverse, n, max_memory_bytes=budget)
+    assert streamed == {"rules"} and per_site > RULES_BYTES_PER_SITE / 2
+    # a small mask: the fixed part of streaming costs more than the whole mask, so the whole mask is counted
+    assert check_admission_bytes_per_site(_steps(), design, 1e5, max_memory_bytes=COMPILE_FIXED_BYTES + 1)[1] == set()
+
+
+def test_compile_streams_its_checks_when_the_admission_says_so(tmp_path, small_design_dict):
+    # 1.2e6 sites: the whole-mask rules check (300 B/site, 360 MB) does not fit beside the compile's fixed part in a
+    # budget of 790 MB, its streamed method (16 B/site + 300 MB) does; the whole-mask optics check (220 B/site,
+    # 264 MB) fits and is kept; before, this compile was refused up front
+    from metalay.api import compile_design
+    from metalay.design.spec import parse_design
+
+    raw = small_design_dict
+    raw["aperture"]["diameter_um"] = 402.0
+    raw["mask"]["formats"] = ["gds"]
+    raw["checks"] = {"rules": True, "optics": True}
+    res = compile_design(parse_design(raw), tmp_path / "c", show_progress=False, max_memory_bytes=790_000_000)
+    checks = res.manifest["checks"]
+    assert checks["rules"]["method"]["method"] != "whole-mask" and checks["rules"]["violations"] == 0
+    assert checks["optics"]["method"]["method"] == "whole-mask"
+    assert checks["optics"]["figures"]["designed_spot_efficiency"] > 0.5

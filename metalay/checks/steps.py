@@ -30,10 +30,14 @@ _PIECE_MAX_VERTICES = 8190
 RULES_BYTES_PER_SITE = 300
 OPTICS_BYTES_PER_SITE = 220
 #: Peak memory per site of the streamed checks beyond one band or block grid (the file walk's table;
-#: ``bench/bench_stream_checks.py``). Not yet the compile's admission constant: the compile still admits with the
-#: whole-mask figures above, because the streamed reader maps the mask file, which counts against an address-space
-#: limit (``ulimit -v``); a check streams when, at the time it runs, its whole-mask method does not fit the budget.
+#: ``bench/bench_stream_checks.py``). A check streams when, at the time it runs, its whole-mask method does not fit
+#: the budget; the compile's admission counts this figure then (and, under an address-space limit, the mapped
+#: GDSII file on top: :func:`metalay.mask.compile.check_admission_bytes_per_site`).
 STREAMED_BYTES_PER_SITE = 16
+#: Memory of a streamed check that does not grow with the mask: measured peaks of 317 MB (rules, 30 bands) and
+#: 298 MB (optics) at 1e7 sites, of which 160 MB is the table above (``bench/bench_stream_checks.py``, docs/
+#: scale-checks.md); rounded up with room for the band spill buffers.
+STREAMED_FIXED_BYTES = 300_000_000
 #: Smallest bytes per polygon of a GDSII/OASIS file (an upper bound on the polygon count from the file size).
 _MIN_FILE_BYTES_PER_POLYGON = 8
 
@@ -55,9 +59,10 @@ def whole_mask_fits(path, layers, bytes_per_site: float, max_memory_bytes: int |
     return count_polygons(path, layers=layers)[0] * bytes_per_site <= budget
 
 
-def _rules_report(path, rules, max_memory_bytes: int | None):
-    """The rule report and the method used: whole-mask when it fits the budget, else band by band."""
-    if whole_mask_fits(path, rules.layer_pairs(), RULES_BYTES_PER_SITE, max_memory_bytes):
+def _rules_report(path, rules, max_memory_bytes: int | None, streamed: bool = False):
+    """The rule report and the method used: whole-mask when it fits the budget (and the compile did not ask to
+    stream), else band by band."""
+    if not streamed and whole_mask_fits(path, rules.layer_pairs(), RULES_BYTES_PER_SITE, max_memory_bytes):
         return check_mask(path, rules, max_memory_bytes=max_memory_bytes), {"method": "whole-mask"}
     report, plan = check_mask_tiled(path, rules, max_memory_bytes=max_memory_bytes,
                                     spill_dir=Path(path).parent)
@@ -77,12 +82,20 @@ def _switch(setting: str, forced: bool | None):
 def rules_step(*, force: bool | None = None) -> MaskCheck:
     """The design-rule check step (:func:`run_rules_on_written`); on when ``[checks] rules`` is (or ``force``)."""
     return MaskCheck("rules", run_rules_on_written, _switch("rules", force), needs_structures=True,
-                     bytes_per_site=RULES_BYTES_PER_SITE)
+                     bytes_per_site=RULES_BYTES_PER_SITE, streamed_bytes_per_site=STREAMED_BYTES_PER_SITE,
+                     streamed_fixed_bytes=STREAMED_FIXED_BYTES)
+
+
+def _optics_streams(design: Design) -> bool:
+    """The streamed optical check covers one-phase masks in structures tone (not spin-decoupled nor complement)."""
+    return not getattr(design, "spin_decoupled", False) and design.mask.tone != "complement"
 
 
 def optics_step(*, force: bool | None = None) -> MaskCheck:
     """The quick optical check step (:func:`run_optics_on_written`); on when ``[checks] optics`` is (or ``force``)."""
-    return MaskCheck("optics", run_optics_on_written, _switch("optics", force), bytes_per_site=OPTICS_BYTES_PER_SITE)
+    return MaskCheck("optics", run_optics_on_written, _switch("optics", force), bytes_per_site=OPTICS_BYTES_PER_SITE,
+                     streamed_bytes_per_site=STREAMED_BYTES_PER_SITE, streamed_fixed_bytes=STREAMED_FIXED_BYTES,
+                     streams=_optics_streams)
 
 
 def default_checks(*, rules: bool | None = None, optics: bool | None = None) -> tuple[MaskCheck, ...]:
@@ -142,15 +155,15 @@ def run_rules_on_written(written: WrittenMask) -> dict:
     out = {}
     budget = written.max_memory_bytes
     if written.structures_path is None:
-        report, method = _rules_report(path, ruleset(), budget)
+        report, method = _rules_report(path, ruleset(), budget, written.streamed)
     else:
-        report, method = _rules_report(written.structures_path, ruleset(inside_frame=None), budget)
+        report, method = _rules_report(written.structures_path, ruleset(inside_frame=None), budget, written.streamed)
         piece_rules = ruleset(min_width_nm=None, min_spacing_nm=None, forbid_overlap=False, film_height_nm=None,
                               max_aspect_ratio=None, no_field_straddle=False, max_vertices=_PIECE_MAX_VERTICES)
         complement_dt = dict(mask.dose_datatypes).get("complement")
         pieces, _ = _rules_report(path, replace(piece_rules, layers=tuple(
             replace(lr, datatype=int(lr.datatype if complement_dt is None else complement_dt))
-            for lr in piece_rules.layers)), budget)
+            for lr in piece_rules.layers)), budget, written.streamed)
         out["complement_pieces"] = {"status": "clean" if pieces.clean else "violations",
                                     "violations": pieces.total_violations, "summary": pieces.summary_lines()}
         out["note"] = ("tone 'complement': feature, gap and aspect rules checked on the structures (the holes); "
@@ -179,7 +192,9 @@ def run_optics_on_written(written: WrittenMask) -> dict:
 
         return compile_spin_check(written.path, written.library, written.design)
     layer = written.design.mask.layer("structures")
-    if whole_mask_fits(written.path, [layer], OPTICS_BYTES_PER_SITE, written.max_memory_bytes):
+    if not _optics_streams(written.design) or (
+            not written.streamed
+            and whole_mask_fits(written.path, [layer], OPTICS_BYTES_PER_SITE, written.max_memory_bytes)):
         d = optics.compile_check(written.path, written.library, written.design)
         d["method"] = {"method": "whole-mask"}
         return d

@@ -74,7 +74,7 @@ from metalay.util.budget import format_bytes, memory_budget, memory_limits
 from metalay.util.progress import progress
 
 __all__ = ["CompileResult", "compile_mask", "SAFETY_CAUTION", "SITES_PER_TILE", "design_warnings", "medium_index",
-           "compile_memory_bytes"]
+           "compile_memory_bytes", "check_admission_bytes_per_site"]
 
 SAFETY_CAUTION = (
     "Caution: metalay is a design aid. Verify every mask with full-wave simulation and against your facility's "
@@ -284,8 +284,7 @@ def _compile_into(design: Design, out: Path, *, checks: Sequence[MaskCheck], sho
     enabled = [c for c in checks if c.enabled(design)]
     plan = _plan(design, out, sites_per_tile=sites_per_tile,
                  structures_for_checks=any(c.needs_structures for c in enabled),
-                 check_bytes_per_site=max([c.bytes_per_site for c in enabled], default=0.0),
-                 max_memory_bytes=max_memory_bytes)
+                 admitted_checks=enabled, max_memory_bytes=max_memory_bytes)
     t0 = time.perf_counter()
     gathered, known_hashes = _write_tiles(plan, show_progress=show_progress, runner=runner)
     timings["layout_and_write_s"] = time.perf_counter() - t0
@@ -332,6 +331,7 @@ class _Plan:
     need_groups: bool        # OASIS or hierarchical output: group the elements by exact shape (or level) per tile
     per_field: bool          # one GDSII/OASIS cell per write field
     facing: Facing = Facing()  # the side the light arrives from (mapping frame)
+    streamed_checks: frozenset = frozenset()  # checks the admission counted with their streamed method
 
     @property
     def complement(self) -> bool:
@@ -405,7 +405,7 @@ def _datatype_table(design: Design, cell_ids: list) -> tuple[list, np.ndarray]:
 
 
 def _plan(design: Design, out: Path, *, sites_per_tile: int, structures_for_checks: bool,
-          check_bytes_per_site: float = 0.0, max_memory_bytes: int | None = None) -> _Plan:
+          admitted_checks: Sequence[MaskCheck] = (), max_memory_bytes: int | None = None) -> _Plan:
     """Stage 1: load the library, choose cells, datatypes, output paths and tiles; refuse what cannot fit."""
     library = load_library(design.library)
     facing = resolve_facing(design.lit_from, mode=library.mode, library_lit_from=library.side,
@@ -427,6 +427,9 @@ def _plan(design: Design, out: Path, *, sites_per_tile: int, structures_for_chec
     per_field = mask.write_field is not None and mask.write_field.cell_per_field
     mode = "complement" if complement else "fields" if per_field else mask.hierarchy
     need_groups = "oas" in mask.formats or mode != "flat"
+    check_bytes_per_site, streamed = check_admission_bytes_per_site(
+        admitted_checks, design, _estimate_sites(design), max_memory_bytes=max_memory_bytes,
+        mapped_bytes_per_site=_gds_bytes_per_site(design, outlines, mode) if want_gds else 0.0)
     _check_resources(design, out, outlines, gds_mode=mode if want_gds else None,
                      check_bytes_per_site=check_bytes_per_site, max_memory_bytes=max_memory_bytes)
     emit = EmitPlan(design.name, mode, gds=want_gds, oas="oas" in mask.formats,
@@ -446,7 +449,7 @@ def _plan(design: Design, out: Path, *, sites_per_tile: int, structures_for_chec
     if complement:
         ctx, tiles = _complement_plan(design, ctx, outlines, grid, encode_structures=structures_for_checks)
     return _Plan(design, library, out, cell_ids, outlines, classes, lut, grid, tiles, ctx, need_groups, per_field,
-                 facing)
+                 facing, streamed)
 
 
 def _complement_plan(design: Design, ctx: "_TileContext", outlines, grid, *, encode_structures: bool):
@@ -563,8 +566,9 @@ def _run_checks(plan: _Plan, checks: Sequence[MaskCheck], files: dict, timings: 
     results, sections = {}, {}
     for check in checks:
         t0 = time.perf_counter()
-        results[check.name] = check.run(written if check.needs_structures else replace(written,
-                                                                                       structures_path=None))
+        results[check.name] = check.run(replace(
+            written, streamed=check.name in plan.streamed_checks,
+            structures_path=written.structures_path if check.needs_structures else None))
         timings[f"{check.name}_s"] = time.perf_counter() - t0
     plan.holes_path.unlink(missing_ok=True)
     for key, res in results.items():  # timings are not deterministic: they go to timings.json
@@ -1015,6 +1019,38 @@ def compile_memory_bytes(sites: float, *, check_bytes_per_site: float = 0.0) -> 
              "fixed": float(COMPILE_FIXED_BYTES)}
     parts["total"] = parts["fixed"] + max(parts["layout"], parts["checks"])
     return {k: int(v) for k, v in parts.items()}
+
+
+def check_admission_bytes_per_site(checks: Sequence[MaskCheck], design: Design, sites: float, *,
+                                   max_memory_bytes: int | None = None,
+                                   mapped_bytes_per_site: float = 0.0) -> tuple[float, frozenset]:
+    """Bytes per site the memory admission counts for the checks, and the names of the checks that must stream.
+
+    A check counts its whole-mask figure (:attr:`MaskCheck.bytes_per_site`) when the compile's fixed part plus that
+    fits the compile's budget (:data:`COMPILE_BUDGET_FRACTION` of the least memory limit, or ``max_memory_bytes``);
+    otherwise, when it has a streamed method for this design and that needs less, its streamed figure
+    (:attr:`MaskCheck.streamed_bytes_per_site` plus its fixed part spread over the sites) and the compile tells the
+    step to stream (:attr:`WrittenMask.streamed`). Under an address-space limit (``ulimit -v``) the streamed read's
+    mapping of the GDSII file (``mapped_bytes_per_site``) counts too.
+
+    Returns
+    -------
+    (float, frozenset of str)
+        The largest figure over ``checks`` (0 without checks) and the checks to stream.
+    """
+    budget = memory_budget(max_memory_bytes, fraction=COMPILE_BUDGET_FRACTION) - COMPILE_FIXED_BYTES
+    mapped = mapped_bytes_per_site if memory_limits().binding.startswith("address-space") else 0.0
+    need, streamed = [0.0], set()
+    for c in checks:
+        whole = c.bytes_per_site
+        stream = (None if c.streamed_bytes_per_site is None or not c.streams(design) else
+                  c.streamed_bytes_per_site + c.streamed_fixed_bytes / max(sites, 1.0) + mapped)
+        if stream is None or whole * sites <= budget or stream >= whole:
+            need.append(whole)
+        else:
+            need.append(stream)
+            streamed.add(c.name)
+    return max(need), frozenset(streamed)
 
 
 def _gds_bytes_per_site(design: Design, outlines, gds_mode: str) -> float:

@@ -36,6 +36,9 @@ class WrittenMask:
     max_memory_bytes : int or None
         The compile's memory budget (``--max-memory``); a check whose whole-mask method would exceed it streams
         the mask instead (None: the default budget of :func:`metalay.util.budget.memory_budget`).
+    streamed : bool
+        The compile's memory admission counted this check with its streamed method (the whole-mask method would not
+        fit beside the compile): the step must stream. False: the step chooses by the budget itself.
     """
 
     path: Path
@@ -43,6 +46,7 @@ class WrittenMask:
     design: Design
     structures_path: Path | None = None
     max_memory_bytes: int | None = None
+    streamed: bool = False
 
 
 def _always(design: Design) -> bool:
@@ -67,6 +71,13 @@ class MaskCheck:
     bytes_per_site : float
         Peak memory of the step per lattice site (measured), for the compile's memory admission before anything
         is written (:func:`metalay.mask.compile.compile_memory_bytes`); 0 for a step of negligible size.
+    streamed_bytes_per_site : float or None
+        Peak memory per site of the step's streamed method (tile by tile), which it uses when the whole-mask method
+        does not fit the memory budget; None: the step has no streamed method.
+    streamed_fixed_bytes : float
+        Memory of the streamed method that does not grow with the mask (bands, block grids, buffers).
+    streams : callable (Design) -> bool
+        Whether the streamed method applies to this design (e.g. not to every design kind).
     """
 
     name: str
@@ -74,3 +85,6 @@ class MaskCheck:
     enabled: Callable[[Design], bool] = _always
     needs_structures: bool = False
     bytes_per_site: float = 0.0
+    streamed_bytes_per_site: float | None = None
+    streamed_fixed_bytes: float = 0.0
+    streams: Callable[[Design], bool] = _always
