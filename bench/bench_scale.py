@@ -81,7 +81,10 @@ def _child(design_path: str, out: str, workers: int) -> dict:
     timings = json.loads((Path(out) / "timings.json").read_text())
     return {"sites": res.manifest["counts"]["sites"], "seconds": seconds, "cpu_s": cpu_s, "peak_mb": self_kb / 1024,
             "worker_peak_mb": child_kb / 1024 if workers else None, "files": files,
-            "write_s": timings.get("layout_and_write_s"), "verdict": res.manifest["verdicts"]["overall"]}
+            "write_s": timings.get("layout_and_write_s"), "verdict": res.manifest["verdicts"]["overall"],
+            "stages_s": {k: v for k, v in timings.items() if k.endswith("_s") and isinstance(v, (int, float))},
+            "check_methods": {k: (v.get("method") or {}).get("method") for k, v in res.manifest["checks"].items()
+                              if isinstance(v, dict)}}
 
 
 def _write_toml(path: Path, data: dict) -> None:
@@ -143,6 +146,10 @@ def main() -> int:
                 per = (f.get("oas") or f.get("gds") or 0) / r["sites"] if r.get("sites") else 0
                 note = r.get("refused") or r.get("error") or (
                     f"workers peak {r['worker_peak_mb']:.0f} MB" if r.get("worker_peak_mb") else "")
+                if r.get("check_methods"):
+                    st = r.get("stages_s", {})
+                    note += " ".join(f"{k} {m} {st.get(f'{k}_s', float('nan')):.1f} s"
+                                     for k, m in sorted(r["check_methods"].items()))
                 print(f"{r.get('sites', n):>9.3g} {case:<12} {r.get('seconds', float('nan')):>8.2f} "
                       f"{r.get('cpu_s', float('nan')):>8.1f} {r.get('peak_mb', float('nan')):>8.0f} "
                       f"{f.get('gds', 0) / 1e6:>9.1f} "

@@ -111,12 +111,13 @@ def test_admission_counts_a_check_streamed_only_when_its_whole_mask_method_does_
     from metalay.mask.compile import check_admission_bytes_per_site
 
     design = parse_design(small_design_dict)
-    room = 2_000_000_000
+    room = 1_000_000_000
     budget = COMPILE_FIXED_BYTES + room
     fits = check_admission_bytes_per_site(_steps(), design, room / RULES_BYTES_PER_SITE * 0.99,
                                           max_memory_bytes=budget)
     assert fits == (RULES_BYTES_PER_SITE, frozenset())
     n = 1e8
+    budget = COMPILE_FIXED_BYTES + 2 * room
     per_site, streamed = check_admission_bytes_per_site(_steps(), design, n, max_memory_bytes=budget)
     assert streamed == {"rules", "optics"}
     assert per_site == pytest.approx(STREAMED_BYTES_PER_SITE + STREAMED_FIXED_BYTES / n)
@@ -125,6 +126,13 @@ def test_admission_counts_a_check_streamed_only_when_its_whole_mask_method_does_
     inverse = parse_design({**small_design_dict, "mask": {"formats": ["gds"], "tone": "complement"}})
     per_site, streamed = check_admission_bytes_per_site(_steps(), inverse, n, max_memory_bytes=budget)
     assert streamed == {"rules"} and per_site > RULES_BYTES_PER_SITE / 2
+    # above STREAM_CHECKS_ABOVE_SITES the checks stream even with room to spare (issue 15: 1e7 sites with checks in
+    # <= 1.5 GB); at or below it they stay whole-mask
+    from metalay.checks.steps import STREAM_CHECKS_ABOVE_SITES as above
+    roomy = 1 << 50
+    assert check_admission_bytes_per_site(_steps(), design, above * 1.01, max_memory_bytes=roomy)[1] == {"rules",
+                                                                                                      "optics"}
+    assert check_admission_bytes_per_site(_steps(), design, above, max_memory_bytes=roomy)[1] == set()
     # a small mask: the fixed part of streaming costs more than the whole mask, so the whole mask is counted
     assert check_admission_bytes_per_site(_steps(), design, 1e5, max_memory_bytes=COMPILE_FIXED_BYTES + 1)[1] == set()
 

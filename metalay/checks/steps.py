@@ -38,6 +38,12 @@ STREAMED_BYTES_PER_SITE = 16
 #: 298 MB (optics) at 1e7 sites, of which 160 MB is the table above (``bench/bench_stream_checks.py``, docs/
 #: scale-checks.md); rounded up with room for the band spill buffers.
 STREAMED_FIXED_BYTES = 300_000_000
+#: Above this many sites a compile streams its checks even when the whole mask would fit: the whole-mask checks
+#: need 300 and 220 B per site (1.2 GB and 0.9 GB at 4e6 sites, 2.9 GB with the layout at 1e7, over issue 15's
+#: 1.5 GB), the streamed ones 16 B per site + 300 MB, and streamed they took 0.74x (rules) and 0.26x (optics) of
+#: the whole-mask time at 1e6 sites (docs/scale-checks.md). The streamed optics reads no fringe image (its report
+#: says so).
+STREAM_CHECKS_ABOVE_SITES = 4_000_000
 #: Smallest bytes per polygon of a GDSII/OASIS file (an upper bound on the polygon count from the file size).
 _MIN_FILE_BYTES_PER_POLYGON = 8
 
@@ -64,8 +70,9 @@ def _rules_report(path, rules, max_memory_bytes: int | None, streamed: bool = Fa
     stream), else band by band."""
     if not streamed and whole_mask_fits(path, rules.layer_pairs(), RULES_BYTES_PER_SITE, max_memory_bytes):
         return check_mask(path, rules, max_memory_bytes=max_memory_bytes), {"method": "whole-mask"}
-    report, plan = check_mask_tiled(path, rules, max_memory_bytes=max_memory_bytes,
-                                    spill_dir=Path(path).parent)
+    # streamed: bands sized to the streamed figure the admission counted, not to all the memory there is
+    band_bytes = min(memory_budget(max_memory_bytes), STREAMED_FIXED_BYTES)
+    report, plan = check_mask_tiled(path, rules, max_memory_bytes=band_bytes, spill_dir=Path(path).parent)
     return report, plan.as_dict(report.db_unit_nm)
 
 
@@ -83,7 +90,7 @@ def rules_step(*, force: bool | None = None) -> MaskCheck:
     """The design-rule check step (:func:`run_rules_on_written`); on when ``[checks] rules`` is (or ``force``)."""
     return MaskCheck("rules", run_rules_on_written, _switch("rules", force), needs_structures=True,
                      bytes_per_site=RULES_BYTES_PER_SITE, streamed_bytes_per_site=STREAMED_BYTES_PER_SITE,
-                     streamed_fixed_bytes=STREAMED_FIXED_BYTES)
+                     streamed_fixed_bytes=STREAMED_FIXED_BYTES, stream_above_sites=STREAM_CHECKS_ABOVE_SITES)
 
 
 def _optics_streams(design: Design) -> bool:
@@ -95,7 +102,7 @@ def optics_step(*, force: bool | None = None) -> MaskCheck:
     """The quick optical check step (:func:`run_optics_on_written`); on when ``[checks] optics`` is (or ``force``)."""
     return MaskCheck("optics", run_optics_on_written, _switch("optics", force), bytes_per_site=OPTICS_BYTES_PER_SITE,
                      streamed_bytes_per_site=STREAMED_BYTES_PER_SITE, streamed_fixed_bytes=STREAMED_FIXED_BYTES,
-                     streams=_optics_streams)
+                     streams=_optics_streams, stream_above_sites=STREAM_CHECKS_ABOVE_SITES)
 
 
 def default_checks(*, rules: bool | None = None, optics: bool | None = None) -> tuple[MaskCheck, ...]:

@@ -1027,11 +1027,12 @@ def check_admission_bytes_per_site(checks: Sequence[MaskCheck], design: Design, 
     """Bytes per site the memory admission counts for the checks, and the names of the checks that must stream.
 
     A check counts its whole-mask figure (:attr:`MaskCheck.bytes_per_site`) when the compile's fixed part plus that
-    fits the compile's budget (:data:`COMPILE_BUDGET_FRACTION` of the least memory limit, or ``max_memory_bytes``);
-    otherwise, when it has a streamed method for this design and that needs less, its streamed figure
-    (:attr:`MaskCheck.streamed_bytes_per_site` plus its fixed part spread over the sites) and the compile tells the
-    step to stream (:attr:`WrittenMask.streamed`). Under an address-space limit (``ulimit -v``) the streamed read's
-    mapping of the GDSII file (``mapped_bytes_per_site``) counts too.
+    fits the compile's budget (:data:`COMPILE_BUDGET_FRACTION` of the least memory limit, or ``max_memory_bytes``)
+    and the mask has at most :attr:`MaskCheck.stream_above_sites` sites; otherwise, when it has a streamed method
+    for this design and that needs less, its streamed figure (:attr:`MaskCheck.streamed_bytes_per_site` plus its
+    fixed part spread over the sites) and the compile tells the step to stream (:attr:`WrittenMask.streamed`).
+    Under an address-space limit (``ulimit -v``) the streamed read's mapping of the GDSII file
+    (``mapped_bytes_per_site``) counts too.
 
     Returns
     -------
@@ -1045,7 +1046,7 @@ def check_admission_bytes_per_site(checks: Sequence[MaskCheck], design: Design, 
         whole = c.bytes_per_site
         stream = (None if c.streamed_bytes_per_site is None or not c.streams(design) else
                   c.streamed_bytes_per_site + c.streamed_fixed_bytes / max(sites, 1.0) + mapped)
-        if stream is None or whole * sites <= budget or stream >= whole:
+        if stream is None or stream >= whole or (whole * sites <= budget and sites <= c.stream_above_sites):
             need.append(whole)
         else:
             need.append(stream)

@@ -78,6 +78,9 @@ class MaskCheck:
         Memory of the streamed method that does not grow with the mask (bands, block grids, buffers).
     streams : callable (Design) -> bool
         Whether the streamed method applies to this design (e.g. not to every design kind).
+    stream_above_sites : float
+        Above this many lattice sites the streamed method is used even where the whole mask would fit (it is then
+        the lighter and not the slower one; measured in ``bench/bench_stream_checks.py``).
     """
 
     name: str
@@ -88,3 +91,4 @@ class MaskCheck:
     streamed_bytes_per_site: float | None = None
     streamed_fixed_bytes: float = 0.0
     streams: Callable[[Design], bool] = _always
+    stream_above_sites: float = float("inf")
