@@ -74,6 +74,17 @@ def run(args) -> int:
     return handler(args)
 
 
+def _save(args, lib, out, **result) -> int:
+    """Write ``lib`` into ``out``, keep the result object (library, files and ``result``) and list the files."""
+    from metalay.cells.library import save_library
+
+    written = save_library(lib, out)
+    args.result = {"library": lib.name, **result, "files": [str(p) for p in written]}
+    for path in written:
+        print(f"wrote {path}")
+    return 0
+
+
 def _build(args) -> int:
     """``metalay cells build``."""
     from metalay.cells.cellbuild import build_library, load_build_spec
@@ -160,7 +171,6 @@ def _show(args) -> int:
 def _import(args) -> int:
     """``metalay cells import``."""
     from metalay.cells.cellbuild import import_responses, import_template
-    from metalay.cells.library import save_library
     from metalay.errors import CellBuildError
 
     if args.template is not None:
@@ -175,26 +185,17 @@ def _import(args) -> int:
     if args.table is None or args.meta is None:
         raise CellBuildError("command line: give the responses table and --meta (or --template DIR for an "
                              "example of both)")
-    lib = import_responses(args.table, args.meta)
-    written = save_library(lib, args.output)
-    args.result = {"library": lib.name, "files": [str(p) for p in written]}
-    for path in written:
-        print(f"wrote {path}")
-    return 0
+    return _save(args, import_responses(args.table, args.meta), args.output)
 
 
 def _complement(args) -> int:
     """``metalay cells complement``."""
-    from metalay.cells.library import load_library, save_library
+    from metalay.cells.library import load_library
     from metalay.mask.process import babinet_slot_library
 
     lib = babinet_slot_library(load_library(args.library), name=args.name)
     print(f"{lib.name}: Babinet-principle estimate, not a solver result ({lib.provenance.get('responses_source')})")
-    written = save_library(lib, args.output)
-    args.result = {"library": lib.name, "files": [str(p) for p in written]}
-    for path in written:
-        print(f"wrote {path}")
-    return 0
+    return _save(args, lib, args.output)
 
 
 def _rotation_check(args) -> int:
@@ -202,7 +203,7 @@ def _rotation_check(args) -> int:
     from dataclasses import replace
 
     from metalay.cells.cellbuild import rotation_check
-    from metalay.cells.library import load_library, save_library
+    from metalay.cells.library import load_library
 
     lib = load_library(args.library)
     if not 1 <= args.max_harmonics <= 40:
@@ -221,11 +222,7 @@ def _rotation_check(args) -> int:
                   f"(model +-{2 * a['angle_deg']:.2f}); conversion {a['conversion_direct']:.4f} direct vs "
                   f"{a['conversion_model']:.4f} model")
     out = args.output or Path(lib.source_path).parent
-    written = save_library(replace(lib, extra={**lib.extra, "rotation_check": rec}), out)
-    args.result = {"library": lib.name, "rotation_check": rec, "files": [str(p) for p in written]}
-    for path in written:
-        print(f"wrote {path}")
-    return 0
+    return _save(args, replace(lib, extra={**lib.extra, "rotation_check": rec}), out, rotation_check=rec)
 
 
 _HANDLERS = {"build": _build, "show": _show, "import": _import, "complement": _complement,
