@@ -131,3 +131,15 @@ def test_chamfered_fins_match_their_fin_cell():
     assert np.all(dec.cell == 0)
     err = np.angle(np.exp(2j * (dec.rotation_rad - theta))) / 2
     assert np.max(np.abs(np.degrees(err))) < 0.5
+
+
+def test_edge_length_equals_float32_hypot():
+    # Independent calculation: numpy's float32 hypot of the integer edge differences; the decoder's float64 square
+    # root rounded once must give the same float32 values (decoded sizes, and so the reports, unchanged)
+    from metalay.checks.decode import _edge
+
+    rng = np.random.default_rng(7)
+    for span in (700, 70_000, 2_000_000):
+        dx, dy = rng.integers(-span, span, 400_000), rng.integers(-span, span, 400_000)
+        ref = np.hypot(dx.astype(np.float32), dy.astype(np.float32))
+        assert np.array_equal(_edge(dx, dy), ref), span

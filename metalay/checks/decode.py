@@ -57,6 +57,13 @@ class ShapeTable:
     is_rect: np.ndarray
 
 
+def _edge(dx: np.ndarray, dy: np.ndarray) -> np.ndarray:
+    """Edge length (float32) of integer differences: the square root in float64 of the exact sum of squares, rounded
+    once to float32 (the value ``np.hypot`` gives in float32 for these inputs, at half its cost)."""
+    dx, dy = dx.astype(np.float64), dy.astype(np.float64)
+    return np.sqrt(dx * dx + dy * dy).astype(np.float32)
+
+
 def _quads(v: np.ndarray, db_unit_nm: float):
     """Centre (nm), rotation, long and short size (nm) of quadrilaterals ``v`` (K, 4, 2) integer database units.
 
@@ -68,8 +75,8 @@ def _quads(v: np.ndarray, db_unit_nm: float):
     cx = (x0 + x1 + x2 + x3) * (0.25 * db_unit_nm)
     cy = (y0 + y1 + y2 + y3) * (0.25 * db_unit_nm)
     f = np.float32
-    la = np.hypot((x1 - x0).astype(f), (y1 - y0).astype(f)) + np.hypot((x3 - x2).astype(f), (y3 - y2).astype(f))
-    lb = np.hypot((x2 - x1).astype(f), (y2 - y1).astype(f)) + np.hypot((x0 - x3).astype(f), (y0 - y3).astype(f))
+    la = _edge(x1 - x0, y1 - y0) + _edge(x3 - x2, y3 - y2)
+    lb = _edge(x2 - x1, y2 - y1) + _edge(x0 - x3, y0 - y3)
     long_a = la >= lb
     dx = np.where(long_a, (x1 + x2) - (x0 + x3), (x2 + x3) - (x0 + x1)).astype(np.float64)
     dy = np.where(long_a, (y1 + y2) - (y0 + y3), (y2 + y3) - (y0 + y1)).astype(np.float64)
