@@ -336,3 +336,49 @@ def test_streamed_lens_sign_diverging_mask_and_tilted_focus(tmp_path):
     step = lg["airy_radius_um"] * 3 / 60
     assert lg["peak_position_um"][0] == pytest.approx(150.0 * np.tan(np.radians(2.0)), abs=1.5 * step)
     assert abs(lg["peak_position_um"][1]) <= 1.5 * step
+
+
+def test_blocks_merged_when_the_mask_outgrows_the_grid_equal_direct_coarse_blocks():
+    # Equivalence check: merging 3 x 3 blocks as the grid outgrows max_side gives the block sums and first moments
+    # of accumulating at the coarse side directly (block sums are additive; M' = sum (M + S (X_b - X')) exactly)
+    p = 0.4
+    ii, jj = np.meshgrid(np.arange(-60, 61), np.arange(-60, 61))
+    x, y = ii.ravel() * p, jj.ravel() * p
+    f = np.exp(1j * 2 * np.pi / 0.633 * (0.05 * x - 0.02 * y)) * (1 + 0.1 * np.cos(x))
+    merged = FarFieldAccumulator(p, 633.0, max_side=20)
+    for part in np.array_split(np.arange(x.size), 9):  # rows arrive band by band, the grid grows and merges
+        merged.add(x[part], y[part], f[part])
+    assert merged.block_um == pytest.approx(9 * p) and max(merged.grids[0].shape) <= 20
+    direct = FarFieldAccumulator(9 * p, 633.0)
+    direct.add(x, y, f)
+    assert merged.grids[0].shape == direct.grids[0].shape
+    for g_m, g_d in zip(merged.grids, direct.grids):
+        assert np.allclose(g_m, g_d, rtol=0, atol=1e-9 * np.abs(f).sum())
+    assert merged.reach_x_um >= direct.reach_x_um  # the merged bound uses offsets at least as large
+    du = 0.633 / (2 * direct.extent_um[0])
+    a, b = merged.window(0.0, 0.0, du, du, 6), direct.window(0.0, 0.0, du, du, 6)
+    assert np.allclose(a.field, b.field, rtol=0, atol=1e-9 * a.amplitude_sum) and np.all(a.bound >= b.bound)
+
+
+def test_read_ahead_keeps_order_raises_reader_errors_and_stops():
+    from metalay.checks.optics_stream import prefetch
+    from metalay.errors import MetalayError
+
+    assert list(prefetch(iter(range(50)), depth=2)) == list(range(50))
+
+    def failing():
+        yield 1
+        raise MetalayError("mask.gds: record 7 truncated")
+
+    with pytest.raises(MetalayError, match="truncated"):
+        list(prefetch(failing()))
+    seen = []
+    gen = prefetch(iter(range(10_000)), depth=1)
+    for v in gen:
+        seen.append(v)
+        if v == 3:
+            break
+    gen.close()  # leaving early stops the reader thread (joined in the generator's finally)
+    import threading
+
+    assert seen == [0, 1, 2, 3] and not any(t.name == "mask-reader" for t in threading.enumerate())

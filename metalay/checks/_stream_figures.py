@@ -13,8 +13,9 @@ centred on ``phi_m = m dphi``) about the beam axis, with the first moment of the
     S[k, m] = sum g_s,      M[k, m] = sum g_s delta_s,       H[k, l] = sum_m exp(-i l phi_m) (S - i l M)[k, m]
 
 (one FFT along ``m``). ``H[k, l]`` approximates the ring's site sum ``sum_s g_s exp(-i l phi_s)`` with
-``|error| <= A_k (|l| delta)^2 / 2`` (Taylor remainder of the exponential; ``A_k = sum_k |g_s|``, ``delta`` the
-largest ``|delta_s|``, at most ``dphi / 2``). The spiral spectrum is the ring quadrature of
+``|error| <= A_k (|l| delta)^2 / 2`` (Taylor remainder of the exponential; ``A_k = sqrt(N_k sum_k |g_s|^2)``, at
+least ``sum_k |g_s|`` by Cauchy-Schwarz and equal to it for a uniform amplitude; ``delta`` the largest
+``|delta_s|``, at most ``dphi / 2``). The spiral spectrum is the ring quadrature of
 ``P_l = 2 pi int |c_l(r)|^2 r dr`` with ``c_l(r_k) = H[k, l] / N_k`` (the ring's ``N_k`` sites sample its area
 ``2 pi r_k dr`` evenly): ``P_l = sum_k |H[k, l]|^2 / N_k``, weight ``P_l / sum_s |g_s|^2`` over the analysed disk
 (Parseval; by Cauchy-Schwarz each weight is at most 1). The weight's bound is ``sum_k e (2 |H| + e) / N_k`` over the
@@ -65,21 +66,20 @@ class OamAccumulator:
     n_sectors: int = 1024
     center_um: tuple = (0.0, 0.0)
     grids: list = field(default_factory=list)  # S, M: complex128 (rings, sectors)
-    ring_abs: np.ndarray = field(default_factory=lambda: np.zeros(0))
     ring_power: np.ndarray = field(default_factory=lambda: np.zeros(0))
     ring_sites: np.ndarray = field(default_factory=lambda: np.zeros(0))
     reach_rad: float = 0.0
 
     def _grow(self, rings: int) -> None:
-        old = self.ring_abs.size
+        old = self.ring_sites.size
         if rings <= old:
             return
         new = [np.zeros((rings, self.n_sectors), np.complex128) for _ in range(2)]
         for g_new, g_old in zip(new, self.grids):
             g_new[:old] = g_old
         self.grids = new
-        self.ring_abs, self.ring_power, self.ring_sites = (np.concatenate([a, np.zeros(rings - old)]) for a in
-                                                           (self.ring_abs, self.ring_power, self.ring_sites))
+        self.ring_power, self.ring_sites = (np.concatenate([a, np.zeros(rings - old)]) for a in
+                                            (self.ring_power, self.ring_sites))
 
     def add(self, x_um: np.ndarray, y_um: np.ndarray, g: np.ndarray) -> None:
         """Add sites ``(x_um, y_um)`` (beam frame) with converted fields ``g`` (terms already removed)."""
@@ -103,11 +103,8 @@ class OamAccumulator:
             part = np.bincount(idx, w.real)
             flat.real[lo:lo + part.size] += part
             flat.imag[lo:lo + part.size] += np.bincount(idx, w.imag)
-        a2 = g.real * g.real + g.imag * g.imag
-        a = np.sqrt(a2)
-        rings = self.ring_abs.size
-        self.ring_abs += np.bincount(ring, a, minlength=rings)
-        self.ring_power += np.bincount(ring, a2, minlength=rings)
+        rings = self.ring_sites.size
+        self.ring_power += np.bincount(ring, g.real * g.real + g.imag * g.imag, minlength=rings)
         self.ring_sites += np.bincount(ring, minlength=rings)
 
     def spectrum(self, radius_um: float, charges) -> dict:
@@ -116,7 +113,7 @@ class OamAccumulator:
         if charges.size and np.abs(charges).max() >= self.n_sectors // 2:
             raise MetalayError(f"oam: charges up to {int(np.abs(charges).max())} need more than {self.n_sectors} "
                                "sectors")
-        n_rings = min(self.ring_abs.size, int(math.floor(radius_um / self.ring_um + 1e-9)))
+        n_rings = min(self.ring_sites.size, int(math.floor(radius_um / self.ring_um + 1e-9)))
         if n_rings < 1 or not self.grids:
             raise MetalayError(f"oam: no whole ring of width {self.ring_um:g} um within {radius_um:g} um of the axis")
         s, m = (np.fft.fft(g[:n_rings], axis=1) for g in self.grids)
@@ -126,7 +123,7 @@ class OamAccumulator:
         total = float(self.ring_power[:n_rings].sum())
         if total <= 0:
             raise MetalayError("oam: the converted field carries no power within the analysed disk")
-        a_k = self.ring_abs[:n_rings, None]
+        a_k = np.sqrt(self.ring_sites[:n_rings] * self.ring_power[:n_rings])[:, None]  # >= sum_ring |g_s|
         e = a_k * ((np.abs(charges)[None, :] * self.reach_rad) ** 2 / 2 + _FP)
         p = (np.abs(h) ** 2 / n_k).sum(axis=0)
         bound = (e * (2 * np.abs(h) + e) / n_k).sum(axis=0)
@@ -320,7 +317,8 @@ def _add_lens(lens: dict, x_um, y_um, fields, target, cell_area_um2: float) -> N
 OAM_METHOD = ("ring x sector sums of the converted field about the beam axis (tilt/lens/axicon terms removed per "
               "site), rings one period wide, {sectors} sectors with first angular moments; P_l = sum_k |H_kl|^2 / N_k "
               "over whole rings within the radius, weights over sum |g_s|^2 there")
-OAM_BOUND = ("|H_kl - sum_ring g_s exp(-i l phi_s)| <= A_k (|l| delta)^2 / 2 + 1e-12 A_k (A_k = sum_ring |g_s|, "
+OAM_BOUND = ("|H_kl - sum_ring g_s exp(-i l phi_s)| <= A_k (|l| delta)^2 / 2 + 1e-12 A_k (A_k = sqrt(N_k "
+             "sum_ring |g_s|^2) >= sum_ring |g_s|, "
              "delta = largest angular offset from the sector centre <= pi / sectors); weight bound "
              "sum_k e (2 |H_kl| + e) / N_k / sum |g_s|^2: against the ring quadrature of the site sums, not against "
              "the whole-mask check's interpolated polar grid")

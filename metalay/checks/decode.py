@@ -57,33 +57,30 @@ class ShapeTable:
     is_rect: np.ndarray
 
 
-def _edge(dx: np.ndarray, dy: np.ndarray) -> np.ndarray:
-    """Edge length (float32) of integer differences: the square root in float64 of the exact sum of squares, rounded
-    once to float32 (the value ``np.hypot`` gives in float32 for these inputs, at half its cost)."""
-    dx, dy = dx.astype(np.float64), dy.astype(np.float64)
-    return np.sqrt(dx * dx + dy * dy).astype(np.float32)
-
-
 def _quads(v: np.ndarray, db_unit_nm: float):
     """Centre (nm), rotation, long and short size (nm) of quadrilaterals ``v`` (K, 4, 2) integer database units.
 
-    Edge differences are taken in integers (exact) and the sizes in float32; ``e0 - e2`` and ``e1 - e3`` (twice
-    the mean direction of each pair of opposite edges) are ``(v1 + v2) - (v0 + v3)`` and ``(v2 + v3) - (v0 + v1)``.
+    Edge differences ``e_k = v_{k+1} - v_k`` are taken in integers (exact) and their lengths as the float64 square
+    root of the exact sum of squares, rounded once to float32 (the value ``np.hypot`` gives in float32); the sizes
+    are sums of opposite edges in float32. ``e0 - e2`` and ``e1 - e3`` (twice the mean direction of each pair of
+    opposite edges) give the rotation. The vertices are first copied to coordinate-major order (one pass) so every
+    later pass reads contiguous memory.
     """
-    x0, x1, x2, x3 = (v[:, k, 0] for k in range(4))
-    y0, y1, y2, y3 = (v[:, k, 1] for k in range(4))
-    cx = (x0 + x1 + x2 + x3) * (0.25 * db_unit_nm)
-    cy = (y0 + y1 + y2 + y3) * (0.25 * db_unit_nm)
-    f = np.float32
-    la = _edge(x1 - x0, y1 - y0) + _edge(x3 - x2, y3 - y2)
-    lb = _edge(x2 - x1, y2 - y1) + _edge(x0 - x3, y0 - y3)
+    t = np.ascontiguousarray(np.moveaxis(v, 0, -1))  # (4, 2, K)
+    cx = (t[0, 0] + t[1, 0] + t[2, 0] + t[3, 0]) * (0.25 * db_unit_nm)
+    cy = (t[0, 1] + t[1, 1] + t[2, 1] + t[3, 1]) * (0.25 * db_unit_nm)
+    e = np.roll(t, -1, axis=0) - t  # (4, 2, K): e_k = v_{k+1} - v_k
+    ef = e.astype(np.float64)
+    length = np.sqrt(ef[:, 0] * ef[:, 0] + ef[:, 1] * ef[:, 1]).astype(np.float32)  # (4, K)
+    la = length[0] + length[2]
+    lb = length[1] + length[3]
     long_a = la >= lb
-    dx = np.where(long_a, (x1 + x2) - (x0 + x3), (x2 + x3) - (x0 + x1)).astype(np.float64)
-    dy = np.where(long_a, (y1 + y2) - (y0 + y3), (y2 + y3) - (y0 + y1)).astype(np.float64)
+    dx = np.where(long_a, e[0, 0] - e[2, 0], e[1, 0] - e[3, 0]).astype(np.float64)
+    dy = np.where(long_a, e[0, 1] - e[2, 1], e[1, 1] - e[3, 1]).astype(np.float64)
     rot = np.arctan2(dy, dx)
     rot[rot < 0] += np.pi
     rot[rot >= np.pi] -= np.pi
-    scale = f(0.5 * db_unit_nm)
+    scale = np.float32(0.5 * db_unit_nm)
     return cx, cy, rot, np.maximum(la, lb) * scale, np.minimum(la, lb) * scale
 
 

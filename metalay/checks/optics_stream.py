@@ -64,7 +64,8 @@ from metalay.checks.optics import (
 from metalay.errors import MetalayError
 
 __all__ = ["BlockFarField", "FarFieldAccumulator", "StreamedOptics", "check_optics_streamed", "block_size_for",
-           "compile_check_streamed", "write_streamed_outputs", "phase_bound", "disk_power",
+           "compile_check_streamed", "write_streamed_outputs", "phase_bound", "disk_power", "prefetch",
+           "hash_in_background", "block_coords",
            "OPTICS_STREAM_BYTES_PER_SITE"]
 
 OPTICS_STREAM_BYTES_PER_SITE = 12
@@ -414,7 +415,7 @@ def _add_chunk(dec, sf, accs: dict, extras: dict, setup: dict, sums: dict) -> No
     sums["leaked"] += float(np.sum(sf.leaked_power, dtype=np.float64))
 
 
-def prefetch(chunks, depth: int = 2):
+def prefetch(chunks, depth: int = 1):
     """Iterate ``chunks`` read ahead by a thread (at most ``depth`` waiting): the reader's numpy work overlaps the
     decoding and summing of the previous chunk on the second core. Order and values are the reader's; its errors
     are raised here; leaving early stops the thread."""
@@ -666,9 +667,38 @@ def _streamed_figures(windows, target, sums, stats, n, fractions, bounds, radius
     return figures
 
 
-def write_streamed_outputs(res: StreamedOptics, path, library, design, out_dir) -> tuple[dict, dict]:
+def hash_in_background(path):
+    """Start the SHA-256 of ``path`` in a thread (``hashlib`` releases the GIL: it runs on the second core while
+    the mask streams); returns a function that waits for it and gives the hex digest (or raises the read error)."""
+    import threading
+
+    from metalay.checks.optics import _sha256
+
+    out: dict = {}
+
+    def run():
+        try:
+            out["sha256"] = _sha256(path)
+        except OSError as exc:
+            out["error"] = exc
+
+    worker = threading.Thread(target=run, name="mask-hash", daemon=True)
+    worker.start()
+
+    def result() -> str:
+        worker.join()
+        if "error" in out:
+            raise out["error"]
+        return out["sha256"]
+
+    return result
+
+
+def write_streamed_outputs(res: StreamedOptics, path, library, design, out_dir, *,
+                           mask_sha256: str | None = None) -> tuple[dict, dict]:
     """Write ``optics.json`` (figures, inputs, the caution) and ``optics_report.html`` to ``out_dir``
-    (atomically); return the figures as written and the files (name -> path, sha256, bytes)."""
+    (atomically); return the figures as written and the files (name -> path, sha256, bytes). ``mask_sha256``:
+    the mask's digest when already known (:func:`hash_in_background`)."""
     from pathlib import Path
 
     from metalay.checks.optics import _sha256, _write_outputs
@@ -676,7 +706,7 @@ def write_streamed_outputs(res: StreamedOptics, path, library, design, out_dir) 
 
     path = Path(path)
     f = dict(res.figures)
-    inputs = {"mask": {"path": path.name, "sha256": _sha256(path), "bytes": path.stat().st_size},
+    inputs = {"mask": {"path": path.name, "sha256": mask_sha256 or _sha256(path), "bytes": path.stat().st_size},
               "library": {"name": getattr(library, "name", str(library))}, "design": getattr(design, "name", None),
               "method": f["method"], "block_um": f["block"]["block_um"], "verdict": f["verdicts"]["verdict"]}
     f["inputs"] = json_ready(inputs)
@@ -696,8 +726,9 @@ def compile_check_streamed(path, library, design) -> dict:
     from pathlib import Path
 
     path = Path(path)
+    digest = hash_in_background(path)
     res = check_optics_streamed(path, library, design=design)
-    f, written = write_streamed_outputs(res, path, library, design, path.parent / "optics")
+    f, written = write_streamed_outputs(res, path, library, design, path.parent / "optics", mask_sha256=digest())
     files = {k: {"path": os.path.relpath(x["path"], path.parent), "sha256": x["sha256"], "bytes": x["bytes"]}
              for k, x in written.items()}
     v = f["verdicts"]

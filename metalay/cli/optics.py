@@ -139,15 +139,16 @@ def run(args) -> int:
 def _run_streamed(args, library, design, out: Path) -> int:
     """The streamed optical check (``--streamed``, or a mask beyond the memory budget): figures and the bound."""
     from metalay.checks.optics import SAFETY_NOTE
-    from metalay.checks.optics_stream import check_optics_streamed, write_streamed_outputs
+    from metalay.checks.optics_stream import check_optics_streamed, hash_in_background, write_streamed_outputs
 
+    digest = hash_in_background(args.mask)
     res = check_optics_streamed(args.mask, library, design=design, polarization=args.polarization,
                                 pad_factor=args.pad_factor, wavelength_nm=args.wavelength_nm, lit_from=args.lit_from,
                                 bias_nm=args.bias_nm, size_tol_nm=args.size_tol_nm, unmatched=args.unmatched)
     from metalay.cli._output import detail
     from metalay.design.limits import verdict_at_least
 
-    f, _ = write_streamed_outputs(res, args.mask, library, design, out)
+    f, _ = write_streamed_outputs(res, args.mask, library, design, out, mask_sha256=digest())
     args.result = {"out_dir": str(out), "figures": f, "notes": list(res.notes), "caution": SAFETY_NOTE}
     if not args.quiet and not args.json:
         b = f["power_budget"]
