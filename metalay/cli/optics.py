@@ -159,6 +159,7 @@ def _run_streamed(args, library, design, out: Path) -> int:
         if "designed_spot_efficiency" in f:
             print(f"designed spot: {f['designed_spot_efficiency']:.4f} of incident, +- "
                   f"{f['designed_spot_efficiency_bound']:.2g} (block-sum error bound)")
+        _print_streamed_extras(f)
         v = f["verdicts"]
         print(f"verdict: {v['verdict'].upper()} ({v['summary']})")
         print(f"output folder: {out}")
@@ -170,6 +171,20 @@ def _run_streamed(args, library, design, out: Path) -> int:
               file=sys.stderr)
         return 1
     return 0
+
+
+def _print_streamed_extras(f: dict) -> None:
+    """OAM purity, channel isolation and Strehl ratio of the streamed check, each with its bound."""
+    if "oam" in f:
+        o = f["oam"]
+        print(f"OAM purity of charge {o['design_charge']}: {o['purity']:.4f} +- {o['purity_bound']:.2g} "
+              f"(within {o['radius_um']:.4g} um of the axis)")
+    if "crosstalk" in f and f["crosstalk"]["worst_isolation_db"] is not None:
+        print(f"worst channel isolation: {f['crosstalk']['worst_isolation_db']:.2f} dB (exact site sums)")
+    if "lens" in f:
+        lens = f["lens"]
+        print(f"lens: Strehl {lens['strehl']:.4f} +- {lens['strehl_bound']:.2g}, FWHM {lens['fwhm_x_um']:.4g} x "
+              f"{lens['fwhm_y_um']:.4g} um (Airy {lens['fwhm_airy_um']:.4g} um)")
 
 
 def _print_figures(f: dict, *, indent: str = "") -> None:
