@@ -70,7 +70,7 @@ __all__ = ["BlockFarField", "FarFieldAccumulator", "StreamedOptics", "check_opti
 
 OPTICS_STREAM_BYTES_PER_SITE = 12
 """Bytes per polygon the streamed optical check still holds for a flat GDSII (the file walk's per-element table);
-the rest is one chunk and the coarse grid."""
+the rest is two or three chunks (one read ahead) and the coarse grids (spots, OAM rings x sectors, focal plane)."""
 _FP_ALLOWANCE = 1e-12
 
 
