@@ -183,7 +183,8 @@ def _print_streamed_extras(f: dict) -> None:
         print(f"worst channel isolation: {f['crosstalk']['worst_isolation_db']:.2f} dB (exact site sums)")
     if "lens" in f:
         lens = f["lens"]
-        print(f"lens: Strehl {lens['strehl']:.4f} +- {lens['strehl_bound']:.2g}, FWHM {lens['fwhm_x_um']:.4g} x "
+        bound = "unbounded" if lens["strehl_bound"] is None else f"{lens['strehl_bound']:.2g}"
+        print(f"lens: Strehl {lens['strehl']:.4f} +- {bound}, FWHM {lens['fwhm_x_um']:.4g} x "
               f"{lens['fwhm_y_um']:.4g} um (Airy {lens['fwhm_airy_um']:.4g} um)")
 
 
