@@ -643,6 +643,8 @@ def check_optics_streamed(mask_path, library, *, design=None, target: OpticsTarg
               "cells are not counted (elements only); duplicates across chunks are not detected", SAFETY_NOTE]
     if st["no_target"]:
         notes.append("no design given: no spots measured (power budget only)")
+    if "oam" in extras:
+        notes.append("the charge is not read from a simulated interferogram when streaming (OAM spectrum only)")
     timings = {"sites_s": t_sites, "total_s": time.perf_counter() - t_all}
     return StreamedOptics(json_ready(figures), windows, tuple(notes), timings)
 
