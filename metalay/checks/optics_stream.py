@@ -750,6 +750,12 @@ def compile_check_streamed(path, library, design) -> dict:
     if "designed_spot_efficiency" in f:
         parts.append(f"designed spot {f['designed_spot_efficiency']:.3f} "
                      f"(+- {f['designed_spot_efficiency_bound']:.2g} block bound)")
+    if "oam" in f:
+        parts.append(f"OAM purity {f['oam']['purity']:.3f} (+- {f['oam']['purity_bound']:.2g})")
+    if f.get("crosstalk", {}).get("worst_isolation_db") is not None and len(f["crosstalk"]["charges"]) > 1:
+        parts.append(f"worst isolation {f['crosstalk']['worst_isolation_db']:.1f} dB")
+    if f.get("lens", {}).get("strehl") is not None:
+        parts.append(f"Strehl {f['lens']['strehl']:.3f}")
     return {"status": v["verdict"], "verdict": v["verdict"], "verdict_items": v["items"],
             "verdict_summary": v["summary"], "summary": "; ".join(parts) + " (streamed block far field)",
             "figures": f, "files": files, "notes": list(res.notes), "timings_s": res.timings,
