@@ -400,3 +400,23 @@ def test_lattice_phasor_equals_direct_exponential_at_site_positions(lattice):
     k = 2 * np.pi / 0.633
     direct = np.exp(-1j * k * (0.31 * x - 0.12 * y))
     assert np.allclose(lattice_phasor(dec, 0.31, -0.12, k), direct, rtol=0, atol=1e-10)
+
+
+def test_bad_polygon_mid_stream_is_one_error_and_stops_the_reader(tmp_path):
+    # Common practice (no source): bad input gives one error naming the file, and no reader thread is left running
+    import threading
+
+    import gdstk
+
+    from metalay.errors import MetalayError
+
+    ii, jj = square_sites(40)
+    good = write_fins_gds(tmp_path / "g.gds", ii * P_NM, jj * P_NM, np.zeros(ii.size))
+    lib_g = gdstk.read_gds(str(good))
+    lib_g.cells[0].add(gdstk.Polygon([(30.0, 30.0), (30.2, 30.0), (30.1, 30.2)], layer=1, datatype=0))
+    bad = tmp_path / "bad.gds"
+    lib_g.write_gds(str(bad))
+    target = optics.OpticsTarget(wavelength_nm=LAM, sigma=1, charge=3)
+    with pytest.raises(MetalayError, match=r"bad\.gds: polygons 1600-1600 .*3 vertices"):
+        check_optics_streamed(bad, make_library(), target=target, chunk_polygons=200)
+    assert not any(t.name == "mask-reader" for t in threading.enumerate())

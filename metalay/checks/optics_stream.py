@@ -373,14 +373,18 @@ def _stream_sites(chunks, lib, setup: dict, accs: dict, extras: dict, notes: lis
     sums = dict.fromkeys(("designed", "other", "converted", "leaked"), 0.0)
     stats = {"polygons": 0, "sites": 0, "unmatched": 0, "off_lattice": 0, "duplicates_within_chunks": 0,
              "max_size_error_nm": 0.0}
-    decoded = _decoded_chunks(prefetch(chunks) if read_ahead else chunks, lib, setup, t_long, t_short, jin)
-    for dec, sf in decoded:
-        _add_chunk(dec, sf, accs, extras, setup, sums)
-        st = dec.stats
-        for key in ("polygons", "sites", "unmatched", "off_lattice"):
-            stats[key] += int(st.get(key, 0))
-        stats["duplicates_within_chunks"] += int(st.get("duplicates", 0))
-        stats["max_size_error_nm"] = max(stats["max_size_error_nm"], float(st.get("max_size_error_nm", 0.0)))
+    reader = prefetch(chunks) if read_ahead else iter(chunks)
+    try:
+        for dec, sf in _decoded_chunks(reader, lib, setup, t_long, t_short, jin):
+            _add_chunk(dec, sf, accs, extras, setup, sums)
+            st = dec.stats
+            for key in ("polygons", "sites", "unmatched", "off_lattice"):
+                stats[key] += int(st.get(key, 0))
+            stats["duplicates_within_chunks"] += int(st.get("duplicates", 0))
+            stats["max_size_error_nm"] = max(stats["max_size_error_nm"], float(st.get("max_size_error_nm", 0.0)))
+    finally:  # a decoding error mid-stream stops the reader thread at once
+        if read_ahead:
+            reader.close()
     return sums, stats
 
 
@@ -389,12 +393,21 @@ def _decoded_chunks(chunks, lib, setup: dict, t_long, t_short, jin):
     from metalay.checks.decode import decode_sites
 
     layer = tuple(setup["layer"])
+    first = 0  # index of the chunk's first polygon in the file's stream
     for ch in chunks:
+        count = int(ch.layer.size)
+        first += count
         if not np.any((ch.layer == layer[0]) & (ch.datatype == layer[1])):
             continue
-        dec = decode_sites(ch, lib.cells, period_nm=setup["period_nm"], lattice=setup["lattice"], layer=layer,
-                           bias_nm=setup["bias_nm"], size_tol_nm=setup["size_tol_nm"],
-                           unmatched=setup["unmatched"], where=setup["where"])
+        try:
+            dec = decode_sites(ch, lib.cells, period_nm=setup["period_nm"], lattice=setup["lattice"], layer=layer,
+                               bias_nm=setup["bias_nm"], size_tol_nm=setup["size_tol_nm"],
+                               unmatched=setup["unmatched"], where=setup["where"])
+        except MetalayError as exc:
+            if str(exc).startswith(setup["where"]):
+                raise
+            raise MetalayError(f"{setup['where']}: polygons {first - count}-{first - 1} (read in chunks; the index "
+                               f"below counts within them): {exc}") from exc
         dec = beam_frame_sites(dec, setup["facing"])
         yield dec, site_fields(t_long[dec.cell], t_short[dec.cell], dec.rotation_rad, jin,
                                sigma=setup["target"].sigma)
