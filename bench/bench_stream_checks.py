@@ -15,6 +15,7 @@ Ratios streamed / whole are printed from the same run. A size is skipped for the
     .venv/bin/python bench/bench_stream_checks.py                       # 1e6 and 1e7 sites
     .venv/bin/python bench/bench_stream_checks.py --sites 1e6           # quick
     .venv/bin/python bench/bench_stream_checks.py --sites 1e8 --whole-up-to 1e7 --stream-budget 1G
+    .venv/bin/python bench/bench_stream_checks.py --baseline-src /tmp/base --repeat 3   # against an older checkout
 """
 
 from __future__ import annotations
@@ -31,7 +32,7 @@ import time
 from pathlib import Path
 
 ROOT = Path(__file__).resolve().parent.parent
-sys.path.insert(0, str(ROOT))
+sys.path.insert(0, os.environ.get("METALAY_BENCH_SRC") or str(ROOT))  # a baseline's source for its child runs
 
 PERIOD_NM = 325.0
 
@@ -92,7 +93,7 @@ def child(kind: str, folder: str, budget: int | None) -> None:
     gds = next((Path(folder) / "out").glob("*.gds"))
     written = replace(WrittenMask(gds, lib, design), max_memory_bytes=budget)
     base = peak_mb()
-    t0 = time.perf_counter()
+    t0, c0 = time.perf_counter(), time.process_time()
     if kind == "rules":
         d = steps.run_rules_on_written(written)
         info = {"method": d["method"]["method"] + (f" ({d['method']['bands']} bands)" if "bands" in d["method"]
@@ -107,12 +108,16 @@ def child(kind: str, folder: str, budget: int | None) -> None:
                 "designed_spot": d["figures"].get("designed_spot_efficiency"),
                 "designed_spot_bound": d["figures"].get("designed_spot_efficiency_bound"),
                 "block_um": d["method"]["block_um"]}
-    print(json.dumps({"s": time.perf_counter() - t0, "peak_mb": peak_mb(), "import_mb": base, **info}))
+    print(json.dumps({"s": time.perf_counter() - t0, "cpu_s": time.process_time() - c0, "peak_mb": peak_mb(),
+                      "import_mb": base, **info}))
 
 
-def run_child(kind: str, folder: str, budget: int | None) -> dict:
+def run_child(kind: str, folder: str, budget: int | None, src: str | None = None) -> dict:
     cmd = [sys.executable, __file__, "--child", kind, folder] + (["--budget", str(budget)] if budget else [])
-    out = subprocess.run(cmd, capture_output=True, text=True, env={**os.environ, "OPENBLAS_NUM_THREADS": "1"})
+    env = {**os.environ, "OPENBLAS_NUM_THREADS": "1"}
+    if src:
+        env["METALAY_BENCH_SRC"] = src
+    out = subprocess.run(cmd, capture_output=True, text=True, env=env)
     if out.returncode != 0:
         return {"error": (out.stderr.strip().splitlines() or ["?"])[-1]}
     return json.loads(out.stdout.strip().splitlines()[-1])
@@ -131,10 +136,30 @@ def make_mask(folder: Path, sites: float) -> dict:
             else None, "compile_s": time.perf_counter() - t0, "gds_mb": gds.stat().st_size / 1e6}
 
 
+def streamed_optics_rows(folder: str, baseline: str | None, repeat: int) -> dict:
+    """The streamed optical check (and the baseline's, alternating run by run so both see the same load): the
+    median run of each by time."""
+    runs: dict = {"optics streamed": []}
+    if baseline:
+        runs["optics streamed (baseline)"] = []
+    for _ in range(max(1, repeat)):
+        runs["optics streamed"].append(run_child("optics_stream", folder, None))
+        if baseline:
+            runs["optics streamed (baseline)"].append(run_child("optics_stream", folder, None, src=baseline))
+    rows = {}
+    for name, rs in runs.items():
+        ok = sorted((r for r in rs if "error" not in r), key=lambda r: r["s"])
+        rows[name] = ok[len(ok) // 2] if ok else rs[0]
+        if len(ok) > 1:
+            rows[name]["method"] += f"; {len(ok)} runs {ok[0]['s']:.1f}-{ok[-1]['s']:.1f} s"
+    return rows
+
+
 def fmt(r: dict) -> str:
     if "error" in r:
         return f"FAILED ({r['error'][:90]})"
-    return f"{r['s']:7.1f} s {r['peak_mb']:7.0f} MB (after imports {r['import_mb']:4.0f} MB)  [{r['method']}]"
+    cpu = f" (cpu {r['cpu_s']:5.1f} s)" if "cpu_s" in r else ""
+    return f"{r['s']:7.1f} s{cpu} {r['peak_mb']:7.0f} MB (after imports {r['import_mb']:4.0f} MB)  [{r['method']}]"
 
 
 def main() -> None:
@@ -144,6 +169,10 @@ def main() -> None:
     ap.add_argument("--stream-budget", help="--max-memory of the streamed rules, small enough to force bands "
                     "(default: 30 B per site, at least 50M, at most 1G)")
     ap.add_argument("--keep", help="folder to keep the masks in (default: a temporary folder)")
+    ap.add_argument("--baseline-src", help="folder holding an older metalay package (e.g. `git archive <commit> "
+                    "metalay | tar -x -C DIR`): its streamed optical check runs too, alternating with this one "
+                    "(--repeat times each), and the ratio is printed")
+    ap.add_argument("--repeat", type=int, default=1, help="runs of each streamed optical check (median shown)")
     ap.add_argument("--child", nargs=2, help=argparse.SUPPRESS)
     ap.add_argument("--budget", type=int, help=argparse.SUPPRESS)
     args = ap.parse_args()
@@ -168,7 +197,7 @@ def main() -> None:
                              else int(min(max(50e6, 30 * sites), 1e9)))
             print(f"  streamed rules under --max-memory {stream_budget / 1e6:.0f} MB")
             rows["rules streamed"] = run_child("rules", str(folder), stream_budget)
-            rows["optics streamed"] = run_child("optics_stream", str(folder), None)
+            rows.update(streamed_optics_rows(str(folder), args.baseline_src, args.repeat))
             for name, r in rows.items():
                 print(f"  {name:<16} {fmt(r)}")
             for kind in ("rules", "optics"):
@@ -185,6 +214,10 @@ def main() -> None:
                 same = w["violations"] == rows["rules streamed"]["violations"]
                 print(f"  rule violations whole {w['violations']}, streamed {rows['rules streamed']['violations']}"
                       f" ({'same' if same else 'DIFFERENT'})")
+            b = rows.get("optics streamed (baseline)")
+            if b and "error" not in b and "error" not in rows["optics streamed"]:
+                print(f"  optics streamed: this / baseline  time {rows['optics streamed']['s'] / b['s']:.2f}x, "
+                      f"peak {rows['optics streamed']['peak_mb'] / b['peak_mb']:.2f}x")
             o = rows.get("optics whole")
             s = rows["optics streamed"]
             if o and "error" not in o and "error" not in s:

@@ -131,3 +131,26 @@ def test_chamfered_fins_match_their_fin_cell():
     assert np.all(dec.cell == 0)
     err = np.angle(np.exp(2j * (dec.rotation_rad - theta))) / 2
     assert np.max(np.abs(np.degrees(err))) < 0.5
+
+
+def test_quad_sizes_and_rotation_equal_float32_hypot_formula():
+    # Independent calculation: sizes as sums of opposite edges from numpy's float32 hypot of the integer edge
+    # differences and the rotation from arctan2 of e0 - e2 (or e1 - e3), written out per vertex; the decoder's
+    # coordinate-major pass must give the same float32 / float64 values (decoded sizes and reports unchanged)
+    from metalay.checks.decode import _quads
+
+    rng = np.random.default_rng(7)
+    f = np.float32
+    for span in (3, 700, 70_000, 2_000_000):
+        v = rng.integers(-span, span, (100_000, 4, 2))
+        x0, x1, x2, x3 = (v[:, k, 0] for k in range(4))
+        y0, y1, y2, y3 = (v[:, k, 1] for k in range(4))
+        la = np.hypot((x1 - x0).astype(f), (y1 - y0).astype(f)) + np.hypot((x3 - x2).astype(f), (y3 - y2).astype(f))
+        lb = np.hypot((x2 - x1).astype(f), (y2 - y1).astype(f)) + np.hypot((x0 - x3).astype(f), (y0 - y3).astype(f))
+        dx = np.where(la >= lb, (x1 + x2) - (x0 + x3), (x2 + x3) - (x0 + x1)).astype(np.float64)
+        dy = np.where(la >= lb, (y1 + y2) - (y0 + y3), (y2 + y3) - (y0 + y1)).astype(np.float64)
+        rot = np.mod(np.arctan2(dy, dx), np.pi)
+        cx, cy, r, a, b = _quads(v, 0.5)
+        assert np.array_equal(a, np.maximum(la, lb) * f(0.25)) and np.array_equal(b, np.minimum(la, lb) * f(0.25))
+        assert np.array_equal(cx, (x0 + x1 + x2 + x3) * 0.125) and np.array_equal(cy, (y0 + y1 + y2 + y3) * 0.125)
+        assert np.allclose(r, rot, rtol=0, atol=1e-12) and np.all((r >= 0) & (r < np.pi))

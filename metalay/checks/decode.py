@@ -57,26 +57,33 @@ class ShapeTable:
     is_rect: np.ndarray
 
 
+def _edge_length(a: np.ndarray, b: np.ndarray) -> np.ndarray:
+    """Length (float32) of the integer edges ``b - a`` (each (2, K)): the float64 square root of the exact sum of
+    squares, rounded once to float32 (the value ``np.hypot`` gives in float32 for these inputs)."""
+    d = (b - a).astype(np.float64)
+    return np.sqrt(d[0] * d[0] + d[1] * d[1]).astype(np.float32)
+
+
 def _quads(v: np.ndarray, db_unit_nm: float):
     """Centre (nm), rotation, long and short size (nm) of quadrilaterals ``v`` (K, 4, 2) integer database units.
 
     Edge differences are taken in integers (exact) and the sizes in float32; ``e0 - e2`` and ``e1 - e3`` (twice
     the mean direction of each pair of opposite edges) are ``(v1 + v2) - (v0 + v3)`` and ``(v2 + v3) - (v0 + v1)``.
+    The vertices are first copied to coordinate-major order (one pass) so every later pass reads contiguous memory.
     """
-    x0, x1, x2, x3 = (v[:, k, 0] for k in range(4))
-    y0, y1, y2, y3 = (v[:, k, 1] for k in range(4))
+    t = np.ascontiguousarray(np.moveaxis(v, 0, -1))  # (4, 2, K)
+    (x0, y0), (x1, y1), (x2, y2), (x3, y3) = t
     cx = (x0 + x1 + x2 + x3) * (0.25 * db_unit_nm)
     cy = (y0 + y1 + y2 + y3) * (0.25 * db_unit_nm)
-    f = np.float32
-    la = np.hypot((x1 - x0).astype(f), (y1 - y0).astype(f)) + np.hypot((x3 - x2).astype(f), (y3 - y2).astype(f))
-    lb = np.hypot((x2 - x1).astype(f), (y2 - y1).astype(f)) + np.hypot((x0 - x3).astype(f), (y0 - y3).astype(f))
+    la = _edge_length(t[0], t[1]) + _edge_length(t[2], t[3])
+    lb = _edge_length(t[1], t[2]) + _edge_length(t[3], t[0])
     long_a = la >= lb
     dx = np.where(long_a, (x1 + x2) - (x0 + x3), (x2 + x3) - (x0 + x1)).astype(np.float64)
     dy = np.where(long_a, (y1 + y2) - (y0 + y3), (y2 + y3) - (y0 + y1)).astype(np.float64)
     rot = np.arctan2(dy, dx)
     rot[rot < 0] += np.pi
     rot[rot >= np.pi] -= np.pi
-    scale = f(0.5 * db_unit_nm)
+    scale = np.float32(0.5 * db_unit_nm)
     return cx, cy, rot, np.maximum(la, lb) * scale, np.minimum(la, lb) * scale
 
 

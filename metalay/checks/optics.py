@@ -712,6 +712,20 @@ def crosstalk_matrix(near: NearField, channels, wavelength_nm: float, *, radius_
         del ff, probe
     design = np.array([[u, v] for _, u, v in channels])
     err = np.hypot(*(pos - design).T)
+    ang_meas = np.degrees(np.arcsin(np.clip(np.hypot(*pos.T), 0, 1)))
+    ang_design = np.degrees(np.arcsin(np.clip(np.hypot(*design.T), 0, 1)))
+    out = isolation_figures(mat)
+    out.update({"positions": pos.tolist(), "design_positions": design.tolist(), "position_error": err.tolist(),
+                "position_error_deg": np.abs(ang_meas - ang_design).tolist(),
+                "charges": [int(ch[0]) for ch in channels],
+                "method": CROSSTALK_METHOD.format(over=over, pad=pad_factor)})
+    return out
+
+
+def isolation_figures(mat: np.ndarray) -> dict:
+    """Isolation figures of a spot matrix ``M[k, m]`` (probe ``k``, spot ``m``): the matrix, in dB relative to each
+    row's diagonal, per-channel and per-column isolation (dB), the diagonal and its spread (dB)."""
+    c = mat.shape[0]
     diag = np.diag(mat).copy()
     with np.errstate(divide="ignore"):
         rel_db = 10 * np.log10(np.maximum(mat, 1e-300) / np.maximum(diag[:, None], 1e-300))
@@ -721,15 +735,10 @@ def crosstalk_matrix(near: NearField, channels, wavelength_nm: float, *, radius_
         col = (10 * np.log10(np.maximum(diag, 1e-300) / np.maximum(off.max(axis=0), 1e-300)) if c > 1
                else np.full(c, np.inf))
     spread = float(10 * np.log10(max(diag.max(), 1e-300) / max(diag.min(), 1e-300))) if c else None
-    ang_meas = np.degrees(np.arcsin(np.clip(np.hypot(*pos.T), 0, 1)))
-    ang_design = np.degrees(np.arcsin(np.clip(np.hypot(*design.T), 0, 1)))
     return {"matrix": mat.tolist(), "matrix_db": rel_db.tolist(), "isolation_db": iso.tolist(),
             "worst_isolation_db": float(iso.min()) if c else None, "column_isolation_db": col.tolist(),
             "worst_column_isolation_db": float(col.min()) if c else None, "channel_power": diag.tolist(),
-            "power_spread_db": spread, "positions": pos.tolist(),
-            "design_positions": design.tolist(), "position_error": err.tolist(),
-            "position_error_deg": np.abs(ang_meas - ang_design).tolist(), "charges": [int(ch[0]) for ch in channels],
-            "method": CROSSTALK_METHOD.format(over=over, pad=pad_factor)}
+            "power_spread_db": spread}
 
 
 def lens_metrics(near: NearField, wavelength_nm: float, focal_length_um: float, *, ideal: np.ndarray | None = None,
@@ -786,24 +795,43 @@ def lens_metrics(near: NearField, wavelength_nm: float, focal_length_um: float, 
     u = grid.angular_spectrum_points(near.designed, near.dx_um, near.dy_um, wavelength_nm, focal_length_um, xs, ys,
                                      **kw)
     inten = np.abs(u) ** 2
+    out = focal_spot_figures(inten, xs, ys, lam_medium_um=lam, numerical_aperture=na, area_um2=area)
+    if ideal is not None:
+        ui = grid.angular_spectrum_points(ideal, near.dx_um, near.dy_um, wavelength_nm, focal_length_um, xs, ys,
+                                          **kw)
+        out["strehl"] = out["peak_intensity"] / float(np.max(np.abs(ui) ** 2))
+    out.update({"diameter_um": float(diameter), "focal_length_um": float(focal_length_um)})
+    out["profile"] = out.pop("profile")
+    return out
+
+
+def _fwhm(profile, axis) -> float:
+    """Full width at half maximum of a sampled profile about its maximum (linear interpolation at half height)."""
+    half_v = profile.max() / 2
+    k = int(np.argmax(profile))
+    lo = k
+    while lo > 0 and profile[lo] > half_v:
+        lo -= 1
+    hi = k
+    while hi < profile.size - 1 and profile[hi] > half_v:
+        hi += 1
+    xl = np.interp(half_v, [profile[lo], profile[lo + 1]], [axis[lo], axis[lo + 1]])
+    xh = np.interp(half_v, [profile[hi], profile[hi - 1]], [axis[hi], axis[hi - 1]])
+    return float(xh - xl)
+
+
+def focal_spot_figures(inten: np.ndarray, xs: np.ndarray, ys: np.ndarray, *, lam_medium_um: float,
+                       numerical_aperture: float, area_um2: float) -> dict:
+    """Focal-spot figures of an intensity window ``inten`` (ny, nx) on uniform axes ``xs``, ``ys`` (um) spanning
+    ``+-3`` Airy radii: FWHM, first dark ring, focusing efficiency (power within ``3 x FWHM`` of the peak over the
+    incident power ``area_um2``), peak; ``strehl`` None (the caller's ratio to its ideal peak)."""
+    lam, na = lam_medium_um, numerical_aperture
+    r0 = 0.61 * lam / na
+    half = 3.0 * r0
     r, c = np.unravel_index(np.argmax(inten), inten.shape)
     peak = float(inten[r, c])
-
-    def fwhm(profile, axis):
-        half_v = profile.max() / 2
-        k = int(np.argmax(profile))
-        lo = k
-        while lo > 0 and profile[lo] > half_v:
-            lo -= 1
-        hi = k
-        while hi < profile.size - 1 and profile[hi] > half_v:
-            hi += 1
-        xl = np.interp(half_v, [profile[lo], profile[lo + 1]], [axis[lo], axis[lo + 1]])
-        xh = np.interp(half_v, [profile[hi], profile[hi - 1]], [axis[hi], axis[hi - 1]])
-        return float(xh - xl)
-
-    fx = fwhm(inten[r, :], xs)
-    fy = fwhm(inten[:, c], ys)
+    fx = _fwhm(inten[r, :], xs)
+    fy = _fwhm(inten[:, c], ys)
     rr = np.hypot(xs[None, :] - xs[c], ys[:, None] - ys[r])
     step = xs[1] - xs[0]
     bins = np.rint(rr / step).astype(int)
@@ -822,16 +850,11 @@ def lens_metrics(near: NearField, wavelength_nm: float, focal_length_um: float, 
             if den > 0:
                 first_dark += float(0.5 * (a - cc) / den * step)
     fwhm_mean = 0.5 * (fx + fy)
-    eff = float(inten[rr < 3 * fwhm_mean].sum() * step * step / area)
-    strehl = None
-    if ideal is not None:
-        ui = grid.angular_spectrum_points(ideal, near.dx_um, near.dy_um, wavelength_nm, focal_length_um, xs, ys,
-                                          **kw)
-        strehl = peak / float(np.max(np.abs(ui) ** 2))
+    eff = float(inten[rr < 3 * fwhm_mean].sum() * step * step / area_um2)
     return {"fwhm_x_um": fx, "fwhm_y_um": fy, "fwhm_airy_um": float(0.514 * lam / na),
             "first_dark_ring_um": first_dark, "airy_radius_um": float(r0), "numerical_aperture": float(na),
-            "strehl": strehl, "focusing_efficiency": eff, "peak_position_um": [float(xs[c]), float(ys[r])],
-            "peak_intensity": peak, "diameter_um": float(diameter), "focal_length_um": float(focal_length_um),
+            "strehl": None, "focusing_efficiency": eff, "peak_position_um": [float(xs[c]), float(ys[r])],
+            "peak_intensity": peak,
             "profile": {"radius_um": radius.tolist(), "intensity": (prof / max(prof.max(), 1e-300)).tolist()}}
 
 

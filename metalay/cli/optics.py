@@ -139,15 +139,16 @@ def run(args) -> int:
 def _run_streamed(args, library, design, out: Path) -> int:
     """The streamed optical check (``--streamed``, or a mask beyond the memory budget): figures and the bound."""
     from metalay.checks.optics import SAFETY_NOTE
-    from metalay.checks.optics_stream import check_optics_streamed, write_streamed_outputs
+    from metalay.checks.optics_stream import check_optics_streamed, hash_in_background, write_streamed_outputs
 
+    digest = hash_in_background(args.mask)
     res = check_optics_streamed(args.mask, library, design=design, polarization=args.polarization,
                                 pad_factor=args.pad_factor, wavelength_nm=args.wavelength_nm, lit_from=args.lit_from,
                                 bias_nm=args.bias_nm, size_tol_nm=args.size_tol_nm, unmatched=args.unmatched)
     from metalay.cli._output import detail
     from metalay.design.limits import verdict_at_least
 
-    f, _ = write_streamed_outputs(res, args.mask, library, design, out)
+    f, _ = write_streamed_outputs(res, args.mask, library, design, out, mask_sha256=digest())
     args.result = {"out_dir": str(out), "figures": f, "notes": list(res.notes), "caution": SAFETY_NOTE}
     if not args.quiet and not args.json:
         b = f["power_budget"]
@@ -158,6 +159,7 @@ def _run_streamed(args, library, design, out: Path) -> int:
         if "designed_spot_efficiency" in f:
             print(f"designed spot: {f['designed_spot_efficiency']:.4f} of incident, +- "
                   f"{f['designed_spot_efficiency_bound']:.2g} (block-sum error bound)")
+        _print_streamed_extras(f)
         v = f["verdicts"]
         print(f"verdict: {v['verdict'].upper()} ({v['summary']})")
         print(f"output folder: {out}")
@@ -169,6 +171,21 @@ def _run_streamed(args, library, design, out: Path) -> int:
               file=sys.stderr)
         return 1
     return 0
+
+
+def _print_streamed_extras(f: dict) -> None:
+    """OAM purity, channel isolation and Strehl ratio of the streamed check, each with its bound."""
+    if "oam" in f:
+        o = f["oam"]
+        print(f"OAM purity of charge {o['design_charge']}: {o['purity']:.4f} +- {o['purity_bound']:.2g} "
+              f"(within {o['radius_um']:.4g} um of the axis)")
+    if "crosstalk" in f and f["crosstalk"]["worst_isolation_db"] is not None:
+        print(f"worst channel isolation: {f['crosstalk']['worst_isolation_db']:.2f} dB (exact site sums)")
+    if "lens" in f:
+        lens = f["lens"]
+        bound = "unbounded" if lens["strehl_bound"] is None else f"{lens['strehl_bound']:.2g}"
+        print(f"lens: Strehl {lens['strehl']:.4f} +- {bound}, FWHM {lens['fwhm_x_um']:.4g} x "
+              f"{lens['fwhm_y_um']:.4g} um (Airy {lens['fwhm_airy_um']:.4g} um)")
 
 
 def _print_figures(f: dict, *, indent: str = "") -> None:
