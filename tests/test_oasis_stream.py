@@ -237,6 +237,32 @@ def test_count_comes_from_repetitions_without_expanding(tmp_path):
     assert first.count == second.count == 1000 and set(first.layer.tolist()) == {1}
 
 
+def test_reused_repetitions_across_children(tmp_path, monkeypatch):
+    # placements read again for one child at a time leave the other children's repetitions undecoded, except the
+    # modal one: a later record may reuse it (repetition type 0, SEMI P39 modal variable "repetition"), here
+    # across children, between polygons and placements both ways, and through a CBLOCK
+    u, g = om.u, om.g
+    tri, quad = [(0, 0), (5, 0), (0, 5)], [(0, 0), (4, 0), (4, 3), (0, 3)]
+    explicit = u(10) + u(2) + g(100, 0) + g(-30, 70) + g(5, 5)
+    body = (om.cell(1) + om.polygon(1, 0, tri) + om.cell(2) + om.polygon(2, 0, quad) + om.cell(0)
+            + om.placement(1, 0, 0, explicit) + om.placement(2, 10, 10, u(0)) + om.placement(1, 500, 0, u(0))
+            + om.polygon(3, 0, tri, u(10) + u(0) + g(7, 9)) + om.placement(2, 0, 900, u(0))
+            + om.placement(2, -50, 0, u(1) + u(1) + u(0) + u(20) + u(30)) + om.placement(1, 3, 3, u(0))
+            + om.placement(2, 0, 0, explicit) + om.polygon(3, 0, tri, u(0)))
+    names = (b"TOP", b"A", b"B")
+    for k, data in enumerate((om.oasis(body, names), om.oasis(om.cblock(body), names))):
+        path = tmp_path / f"reuse{k}.oas"
+        path.write_bytes(data)
+        whole = _assert_stream_is_whole(path, 4)
+        # by hand: A (layer 1) at 4 + 4 (reused) + 6 (reused 3 x 2 lattice) positions; B (layer 2) at 4 (reused)
+        # + 2 (reused from the polygon) + 6 + 4; the polygons of layer 3 at 2 and 4 (reused from B) positions
+        assert np.bincount(whole.layer).tolist() == [0, 4 + 4 + 6, 4 + 2 + 6 + 4, 2 + 4]
+        with monkeypatch.context() as m:
+            _small_pieces(m)
+            m.setattr(_oasis_stream, "HOLD_PLACEMENTS", 0)
+            _assert_stream_is_whole(path, 3)
+
+
 def test_limits_and_hierarchy_refused_before_the_first_chunk(tmp_path):
     u = om.u
     tri = [(0, 0), (5, 0), (0, 5)]

@@ -37,8 +37,8 @@ from metalay.io import _oasis_codec as oc
 from metalay.io import oasis_read as orr
 from metalay.util.budget import memory_budget
 
-__all__ = ["Survey", "open_oasis", "survey", "walk_cell", "instances", "cell_pieces", "rechunk", "iter_pieces",
-           "HOLD_VERTICES", "HOLD_PLACEMENTS", "DRAIN_RECORDS", "DRAIN_BYTES", "INSTANCE_BLOCK"]
+__all__ = ["Survey", "release_pages", "open_oasis", "survey", "walk_cell", "instances", "cell_pieces", "rechunk",
+           "iter_pieces", "HOLD_VERTICES", "HOLD_PLACEMENTS", "DRAIN_RECORDS", "DRAIN_BYTES", "INSTANCE_BLOCK"]
 
 HOLD_VERTICES = 1 << 22
 """A placed cell with at most this many own vertices is expanded once and held (64 MB of int64 vertices)."""
@@ -102,6 +102,21 @@ class Survey:
         return self.names[key[1]]
 
 
+def release_pages(mm, start: int, stop: int) -> None:
+    """Drop the pages of ``mm[start:stop]`` from this process's resident set (they stay in the page cache: the
+    file is only read, so they are clean); a no-op where ``madvise`` is missing."""
+    if mm is None or not hasattr(mm, "madvise") or not hasattr(mmap, "MADV_DONTNEED"):
+        return
+    page = mmap.PAGESIZE
+    lo = (start // page) * page
+    hi = min(len(mm), -(-stop // page) * page)
+    if hi > lo:
+        try:
+            mm.madvise(mmap.MADV_DONTNEED, lo, hi - lo)
+        except (OSError, ValueError):  # pragma: no cover - best effort
+            pass
+
+
 def open_oasis(path: str):
     """Map the file read-only (the same refusals as :func:`metalay.io.oasis_read.parse_oasis`)."""
     try:
@@ -126,6 +141,7 @@ def survey(path: str, buf, keep, *, max_elements: int, max_vertices: int) -> Sur
     """Pass 1: parse and check the whole file without expanding anything; the per-cell table."""
     budget = memory_budget(None)
     p = _parser(path, buf, keep, budget, "count", max_elements, max_vertices)
+    p.release = lambda lo, hi: release_pages(buf, lo, hi)  # CBLOCKs read: their file pages can go
     p.run()
     names = p.names["CELLNAME"]
     sv = Survey(path, "OASIS", float(f"{1e-6 / p.unit:.15g}"), 1e-6, {}, names, buf, keep, budget)
@@ -142,10 +158,13 @@ def survey(path: str, buf, keep, *, max_elements: int, max_vertices: int) -> Sur
 # Pass 2: one cell parsed again from its CELL record
 # ----------------------------------------------------------------------------------------------------------------
 
-def walk_cell(sv: Survey, name: str, mode: str):
+def walk_cell(sv: Survey, name: str, mode: str, child: str | None = None):
     """Yield the geometry pieces ``(layer, datatype, counts, xy)`` (``mode="geometry"``) or the
-    :class:`~metalay.io.oasis_read.Placement` records (``mode="placements"``) of one cell, in file order."""
+    :class:`~metalay.io.oasis_read.Placement` records (``mode="placements"``; only those of ``child`` if given,
+    the others' repetitions not decoded) of one cell, in file order."""
     p = _parser(sv.path, sv.buf, sv.keep, sv.budget, mode, 1 << 62, 1 << 62)
+    if child is not None:
+        p.target = {("name", child)} | {("ref", k) for k, v in sv.names.items() if v == child}
     block_at, at = sv.cells[name].loc
     top = oc.Cursor(sv.buf, sv.path, at if block_at is None else block_at)
     if block_at is not None:
@@ -176,7 +195,7 @@ def _placements_of(sv: Survey, parent: str, child: str):
     if src is None and sum(r.count for r in sv.cells[parent].refs) <= HOLD_PLACEMENTS:
         src = list(walk_cell(sv, parent, "placements"))  # kept for the next children of the same parent
         sv.held = (parent, src)
-    return (pl for pl in (walk_cell(sv, parent, "placements") if src is None else src) if pl.child == child)
+    return (pl for pl in (walk_cell(sv, parent, "placements", child) if src is None else src) if pl.child == child)
 
 
 def _walk_records(sv: Survey, p, cur, top: bool):
@@ -193,8 +212,9 @@ def _walk_records(sv: Survey, p, cur, top: bool):
             return True
         if rid == oc.CBLOCK and top:
             yield from _drain(sv, p)  # runs are decoded from their own buffer: before the next one
-            inner = oc.Cursor(_inflate(sv, p, cur, at), sv.path, where=lambda q, a=at: f"byte {q} inside the CBLOCK at "
-                                                                                f"byte {a}")
+            data = _inflate(sv, p, cur, at)
+            release_pages(sv.buf, at, cur.pos)  # read: its file pages can go (they stay in the page cache)
+            inner = oc.Cursor(data, sv.path, where=lambda q, a=at: f"byte {q} inside the CBLOCK at byte {a}")
             if (yield from _walk_records(sv, p, inner, False)):
                 return True
             mark = cur.pos

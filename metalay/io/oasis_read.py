@@ -319,7 +319,7 @@ class _Pending:
     """
 
     __slots__ = ("kind", "mode", "k0", "count", "n_local", "g0", "n_global", "grid", "rep_type", "implied", "rows",
-                 "value", "at")
+                 "value", "at", "skip", "needed")
 
 
 class _Region:
@@ -361,6 +361,8 @@ class _Parser:
                  mode: str = "whole"):
         self.mode = mode  # "whole"; or for the streamed read: "count", "geometry", "placements" (see _oasis_stream)
         self.block_at = None  # byte offset of the CBLOCK being parsed (None at the top level)
+        self.target = None  # "placements" mode: the placement-cell keys wanted (None: all)
+        self.release = None  # optional callback (start, stop): file bytes already read
         self.path = path
         self.buf = buf
         self.keep_fn = keep
@@ -496,6 +498,8 @@ class _Parser:
 
     def cblock(self, cur, at):
         out = self.inflate(cur, at)
+        if self.release is not None:  # the streamed read's survey: the CBLOCK's file pages are not needed again
+            self.release(at, cur.pos)
         self.resolve()
         inner = oc.Cursor(out, self.path, where=lambda p: f"byte {p} inside the CBLOCK at byte {at}")
         self.block_at = at
@@ -642,6 +646,7 @@ class _Parser:
         self.admit(cur, at, 0, 0, what)
         r = _Pending()
         r.kind, r.mode, r.count, r.at, r.grid, r.rep_type, r.implied, r.value = kind, mode, count, at, 1, None, 0, None
+        r.skip = r.needed = False  # the streamed read's placement pass decodes only what it hands out
         if count > _BIG_RUN:  # decoded now, window by window (the caller sets grid and implied before use)
             self.big_runs.append((cur, pos, r, what))
             cur.pos = self.skip_run(cur, pos, r, what)
@@ -718,6 +723,9 @@ class _Parser:
         """Decode the queued runs of the current region, then expand the queued geometry into polygons."""
         self.finish_big_runs()
         region, self.region = self.region, None
+        if region is not None and self.mode in ("placements", "geometry"):  # runs nobody asked for, unless modal
+            modal = (self.m.repetition, self.m.polygon_points)
+            region.runs = [r for r in region.runs if not r.skip or r is modal[0] or r is modal[1]]
         if region is not None and region.runs:
             _decode_runs(region)
         if self.mode != "whole":  # the streamed read expands the queued records itself, a bounded piece at a time
@@ -757,12 +765,16 @@ class _Parser:
         m = self.m
         lay = self.need(cur, at, m.layer, "layer", rid)
         dt = self.need(cur, at, m.datatype, "datatype", rid)
-        if pts is None or self.mode == "placements" or not self.keep(cur, at, lay, dt):
+        if self.mode == "placements":  # geometry is not wanted: its runs need not be decoded
+            _skip_pending(pts, rep)
+            return
+        if pts is None or not self.keep(cur, at, lay, dt):
             return
         n = _positions(rep)
         nv = pts.rows if isinstance(pts, _Pending) else pts.shape[0]
         if self.mode != "geometry":  # counted once, by the whole read or the streamed read's survey
             self.admit(cur, at, n, n * nv, oc.RECORD_NAMES[rid])
+        _need_pending(pts, rep)
         if self.mode == "count":
             self.cell.own_p += n
             self.cell.own_v += n * nv
@@ -800,8 +812,10 @@ class _Parser:
             n, first = c.children.get(child, (0, at))
             c.children[child] = (n + _positions(rep), first)
             return
-        if self.mode == "geometry":
+        if self.mode == "geometry" or (self.target is not None and child not in self.target):
+            _skip_pending(rep)  # placements not handed out: their repetitions are not decoded
             return
+        _need_pending(rep)  # handed out (perhaps reused from a record that was not): decoded
         c.placements.append((child, x, y, (cs * mag, -sn * mag * fy, sn * mag, cs * mag * fy), rep, at))
 
     def text(self, cur, at, rid):
@@ -1051,6 +1065,20 @@ def _skip_zeros(cur) -> None:
             cur.pos += int(nz[0])
             return
         cur.pos += chunk.shape[0]
+
+
+def _skip_pending(*runs) -> None:
+    """Mark located runs as not wanted (the streamed read's placement pass decodes only what it hands out)."""
+    for r in runs:
+        if isinstance(r, _Pending) and r.value is None and not r.needed:
+            r.skip = True
+
+
+def _need_pending(*runs) -> None:
+    """Mark located runs as used by a record that is handed out (decoded even if also marked not wanted)."""
+    for r in runs:
+        if isinstance(r, _Pending):
+            r.skip, r.needed = False, True
 
 
 def _positions(rep) -> int:

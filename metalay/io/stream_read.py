@@ -21,7 +21,6 @@ element, vertex and depth limits do.
 
 from __future__ import annotations
 
-import mmap
 import os
 from collections.abc import Iterator
 
@@ -60,19 +59,7 @@ def _chunk(lay, dt, cnt, xy, db_unit_nm: float, user_unit_m: float) -> FlatPolyg
                         np.asarray(xy, np.int64).reshape(-1, 2), db_unit_nm, user_unit_m)
 
 
-def _release(mm, start: int, stop: int) -> None:
-    """Drop the pages of ``mm[start:stop]`` from this process's resident set (they stay in the page cache: the
-    file is only read, so they are clean); a no-op where ``madvise`` is missing."""
-    if mm is None or not hasattr(mm, "madvise") or not hasattr(mmap, "MADV_DONTNEED"):
-        return
-    page = mmap.PAGESIZE
-    lo = (start // page) * page
-    hi = min(len(mm), -(-stop // page) * page)
-    if hi > lo:
-        try:
-            mm.madvise(mmap.MADV_DONTNEED, lo, hi - lo)
-        except (OSError, ValueError):  # pragma: no cover - best effort
-            pass
+_release = _oasis_stream.release_pages
 
 
 def _cell_chunks(lib, c, aff: np.ndarray, chunk_polygons: int, mm=None) -> Iterator[tuple]:
