@@ -65,6 +65,19 @@ def peak_mb() -> float:
     return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0
 
 
+def rss_parts_mb() -> tuple[float, float]:
+    """Resident anonymous memory and resident file pages (the mapped mask) of this process now, MB."""
+    out = {"RssAnon:": 0.0, "RssFile:": 0.0}
+    try:
+        with open("/proc/self/status") as fh:
+            for line in fh:
+                if line.split()[0] in out:
+                    out[line.split()[0]] = int(line.split()[1]) / 1024.0
+    except (OSError, IndexError):
+        pass
+    return out["RssAnon:"], out["RssFile:"]
+
+
 def child(kind: str, path: str) -> None:
     """One read of ``path``; prints a JSON line with seconds, peak MB, polygons and the digest."""
     import numpy as np
@@ -76,6 +89,7 @@ def child(kind: str, path: str) -> None:
     t0 = time.perf_counter()
     hs = [hashlib.sha256() for _ in range(4)]
     n = chunks = 0
+    anon = file = 0.0
     if kind == "count":
         n, nv = count_polygons(path)
         digest = f"{n} polygons, {nv} vertices"
@@ -86,10 +100,12 @@ def child(kind: str, path: str) -> None:
                 h.update(np.ascontiguousarray(a).tobytes())
             n += fp.count
             chunks += 1
+            a, f = rss_parts_mb()  # sampled at every chunk: which part of the resident set grows
+            anon, file = max(anon, a), max(file, f)
             del fp
         digest = "".join(h.hexdigest()[:8] for h in hs)
     print(json.dumps({"s": time.perf_counter() - t0, "peak_mb": peak_mb(), "import_mb": base, "polygons": n,
-                      "chunks": chunks, "digest": digest}))
+                      "chunks": chunks, "digest": digest, "anon_mb": anon, "file_mb": file}))
 
 
 def run_child(kind: str, path: str) -> dict:
@@ -118,8 +134,11 @@ def make_mask(folder: Path, sites: float, hierarchy: str) -> tuple[Path, float]:
 def fmt(r: dict) -> str:
     if "error" in r:
         return f"FAILED ({r['error'][:90]})"
+    parts = ""
+    if r["chunks"]:
+        parts = f"  (largest at a chunk: {r['anon_mb']:.0f} MB anonymous, {r['file_mb']:.0f} MB file pages)"
     return (f"{r['s']:7.1f} s {r['peak_mb']:7.0f} MB (after imports {r['import_mb']:4.0f} MB)  {r['chunks']:5d} "
-            f"chunks  {r['digest']}")
+            f"chunks  {r['digest']}{parts}")
 
 
 def main() -> None:

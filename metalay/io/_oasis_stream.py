@@ -132,8 +132,8 @@ def open_oasis(path: str):
             raise MaskReadError(f"{path}: cannot map file ({exc})") from exc
 
 
-def _parser(sv_or_path, buf, keep, budget: int, mode: str, max_elements: int, max_vertices: int):
-    return orr._Parser(sv_or_path, buf, keep=keep, max_elements=max_elements, max_vertices=max_vertices,
+def _parser(path: str, buf, keep, budget: int, mode: str, max_elements: int, max_vertices: int):
+    return orr._Parser(path, buf, keep=keep, max_elements=max_elements, max_vertices=max_vertices,
                        max_memory_bytes=budget, circle_tolerance_db=orr.DEFAULT_CIRCLE_TOLERANCE_DB, mode=mode)
 
 
@@ -223,7 +223,8 @@ def _walk_records(sv: Survey, p, cur, top: bool):
         if handler is None:
             cur.fail(f"unexpected record id {rid} (the file changed since it was read?)", at)
         handler(cur, at, rid)
-        if len(p.entries) + len(p.cell.placements) >= DRAIN_RECORDS or cur.pos - mark >= DRAIN_BYTES:
+        queued = len(p.entries) + (len(p.cell.placements) if p.cell is not None else 0)
+        if queued >= DRAIN_RECORDS or cur.pos - mark >= DRAIN_BYTES:
             yield from _drain(sv, p)
             mark = cur.pos
     yield from _drain(sv, p)

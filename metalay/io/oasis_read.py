@@ -18,6 +18,10 @@ reference number or name), XYABSOLUTE/XYRELATIVE, PLACEMENT (both forms; any ang
 TEXT (skipped), RECTANGLE, POLYGON, PATH (outlined), TRAPEZOID (3 forms), CTRAPEZOID (26 types), CIRCLE
 (polygonised), PROPERTY (parsed, skipped), XELEMENT/XGEOMETRY (skipped), CBLOCK (raw deflate).
 
+The parser also serves the streamed read (:mod:`metalay.io._oasis_stream`): in its ``"count"`` mode it checks
+and counts everything and keeps nothing expanded; in its ``"geometry"`` and ``"placements"`` modes it parses one
+cell again from its CELL record and hands its queued records out, decoding only the runs they use.
+
 References
 ----------
 SEMI P39, OASIS - Open Artwork System Interchange Standard: file structure, records, modal variables, data types.
@@ -468,12 +472,7 @@ class _Parser:
             cur.fail(f"END validation scheme {scheme} (allowed: 0 none, 1 CRC32, 2 checksum32)", covered - 1)
         if scheme:
             sig = int.from_bytes(cur.take(4), "little")
-            view = memoryview(self.buf)[:covered]
-            if scheme == 1:
-                got = zlib.crc32(view) & 0xFFFFFFFF
-            else:
-                got = _checksum32(np.frombuffer(self.buf, np.uint8, count=covered))
-            view.release()
+            got = _signature(self.buf, covered, scheme, self.release)
             name = "CRC32" if scheme == 1 else "checksum32"
             if got != sig:
                 cur.fail(f"END validation {name} mismatch: file says {sig:08x}, bytes give {got:08x} (the file is "
@@ -1276,11 +1275,21 @@ def _dedup(pts: np.ndarray) -> np.ndarray | None:
     return out if out.shape[0] >= 3 else None
 
 
-def _checksum32(a: np.ndarray) -> int:
-    total = 0
-    for lo in range(0, a.shape[0], 1 << 24):  # 16 MB chunks: a uint64 sum cannot overflow
-        total += int(a[lo:lo + (1 << 24)].sum(dtype=np.uint64))
-    return total & 0xFFFFFFFF
+def _signature(buf, covered: int, scheme: int, release=None) -> int:
+    """CRC32 (scheme 1) or checksum32 (scheme 2) of ``buf[:covered]``, 16 MB at a time; ``release(lo, hi)`` is
+    called after each piece when given (the streamed read's survey: the file pages are not needed again)."""
+    got = 0
+    with memoryview(buf) as mv:
+        for lo in range(0, covered, 1 << 24):
+            hi = min(covered, lo + (1 << 24))
+            with mv[lo:hi] as part:
+                if scheme == 1:
+                    got = zlib.crc32(part, got)
+                else:  # a uint64 sum of 16 MB cannot overflow
+                    got += int(np.frombuffer(part, np.uint8).sum(dtype=np.uint64))
+            if release is not None:
+                release(lo, hi)
+    return got & 0xFFFFFFFF
 
 
 # ----------------------------------------------------------------------------------------------------------------
