@@ -13,7 +13,7 @@ record walk, hierarchy checks and count limits as the whole read, but never allo
   whole file with :mod:`metalay.io.oasis_read`'s parser but expands nothing (repetitions counted, a small table
   per cell kept), then each cell holding polygons parsed again from its CELL record and expanded a bounded piece
   at a time (a few MB of records, a repetition a slice of positions at a time, placements composed in blocks);
-  nothing held grows with the number of polygons.
+  what is held is the per-cell table, one CBLOCK and one record's decoded points or positions, not the polygons.
 
 The memory-budget admission of :func:`read_mask` (the size of the flattened result) does not apply here; the
 element, vertex and depth limits do.
