@@ -7,6 +7,8 @@ module         stage                                                            
                or OASIS -> ``FlatPolygons``; the database unit becomes ``db_unit_nm`` here   ``mask_info``
 ``stream_read.py`` the same reading as a stream of polygon chunks (never the whole flat mask),  ``iter_mask_chunks``,
                    and polygon counts without flattening                                    ``count_polygons``
+``_oasis_stream.py`` OASIS for ``stream_read``: a survey pass (counted, nothing expanded), then
+                   each cell parsed again and expanded a bounded piece at a time
 ``writer.py``  own streaming GDSII writer (cells spooled); gdstk builders (bench baseline)  ``GdsStream``,
                                                                                             ``boundary_records``
 ``oasis_read.py``  OASIS -> flat polygon arrays with an own parser (no C extension), every     ``read_oasis``,

@@ -18,6 +18,10 @@ reference number or name), XYABSOLUTE/XYRELATIVE, PLACEMENT (both forms; any ang
 TEXT (skipped), RECTANGLE, POLYGON, PATH (outlined), TRAPEZOID (3 forms), CTRAPEZOID (26 types), CIRCLE
 (polygonised), PROPERTY (parsed, skipped), XELEMENT/XGEOMETRY (skipped), CBLOCK (raw deflate).
 
+The parser also serves the streamed read (:mod:`metalay.io._oasis_stream`): in its ``"count"`` mode it checks
+and counts everything and keeps nothing expanded; in its ``"geometry"`` and ``"placements"`` modes it parses one
+cell again from its CELL record and hands its queued records out, decoding only the runs they use.
+
 References
 ----------
 SEMI P39, OASIS - Open Artwork System Interchange Standard: file structure, records, modal variables, data types.
@@ -300,6 +304,9 @@ class _CellBuild:
         self.placements = []
         self.records = {}
         self.chunks = []
+        self.loc = None  # (CBLOCK offset or None, offset of the CELL record) for parsing the cell again
+        self.own_p = self.own_v = 0  # own polygons and vertices counted by the streamed read's survey
+        self.children = {}  # child key -> (placements, first offset), by the survey
 
     def finish(self, name):
         chunks, self.chunks = self.chunks, []
@@ -316,7 +323,7 @@ class _Pending:
     """
 
     __slots__ = ("kind", "mode", "k0", "count", "n_local", "g0", "n_global", "grid", "rep_type", "implied", "rows",
-                 "value", "at")
+                 "value", "at", "skip", "needed")
 
 
 class _Region:
@@ -354,7 +361,12 @@ _TABLE_RECORDS = {"CELLNAME": {3, 4}, "TEXTSTRING": {5, 6}, "PROPNAME": {7, 8}, 
 
 
 class _Parser:
-    def __init__(self, path, buf, *, keep, max_elements, max_vertices, max_memory_bytes, circle_tolerance_db):
+    def __init__(self, path, buf, *, keep, max_elements, max_vertices, max_memory_bytes, circle_tolerance_db,
+                 mode: str = "whole"):
+        self.mode = mode  # "whole"; or for the streamed read: "count", "geometry", "placements" (see _oasis_stream)
+        self.block_at = None  # byte offset of the CBLOCK being parsed (None at the top level)
+        self.target = None  # "placements" mode: the placement-cell keys wanted (None: all)
+        self.release = None  # optional callback (start, stop): file bytes already read
         self.path = path
         self.buf = buf
         self.keep_fn = keep
@@ -409,7 +421,7 @@ class _Parser:
         ended = self.records(cur, top=True)
         if not ended:
             cur.fail("truncated: the file ends without an END record")
-        return self.finish()
+        return self.finish() if self.mode == "whole" else None
 
     def records(self, cur, *, top: bool) -> bool:
         handlers = self.handlers
@@ -460,12 +472,7 @@ class _Parser:
             cur.fail(f"END validation scheme {scheme} (allowed: 0 none, 1 CRC32, 2 checksum32)", covered - 1)
         if scheme:
             sig = int.from_bytes(cur.take(4), "little")
-            view = memoryview(self.buf)[:covered]
-            if scheme == 1:
-                got = zlib.crc32(view) & 0xFFFFFFFF
-            else:
-                got = _checksum32(np.frombuffer(self.buf, np.uint8, count=covered))
-            view.release()
+            got = _signature(self.buf, covered, scheme, self.release)
             name = "CRC32" if scheme == 1 else "checksum32"
             if got != sig:
                 cur.fail(f"END validation {name} mismatch: file says {sig:08x}, bytes give {got:08x} (the file is "
@@ -489,6 +496,18 @@ class _Parser:
             cur.fail(f"{kind} table offset {offset} points to record id {rid}, not a {kind} record")
 
     def cblock(self, cur, at):
+        out = self.inflate(cur, at)
+        if self.release is not None:  # the streamed read's survey: the CBLOCK's file pages are not needed again
+            self.release(at, cur.pos)
+        self.resolve()
+        inner = oc.Cursor(out, self.path, where=lambda p: f"byte {p} inside the CBLOCK at byte {at}")
+        self.block_at = at
+        self.records(inner, top=False)
+        self.block_at = None
+        self.resolve()
+
+    def inflate(self, cur, at) -> bytes:
+        """The inflated bytes of the CBLOCK whose id was read at ``at`` (cursor moved past it), sizes checked."""
         ctype = cur.uint()
         if ctype != 0:
             cur.fail(f"CBLOCK compression type {ctype} (allowed: 0, deflate)", at)
@@ -515,10 +534,7 @@ class _Parser:
             cur.fail(f"CBLOCK declares {n_out} inflated bytes but its data inflates to "
                      f"{'more' if more else len(out)}{' (incomplete deflate stream)' if not more else ''}", at)
         cur.pos += n_in
-        self.resolve()
-        inner = oc.Cursor(out, self.path, where=lambda p: f"byte {p} inside the CBLOCK at byte {at}")
-        self.records(inner, top=False)
-        self.resolve()
+        return out
 
     # ------------------------------------------------------------------ names and cells
 
@@ -567,6 +583,7 @@ class _Parser:
         self.cell_keys.add(key)
         self.cell = _CellBuild(key, at)
         self.cells.append(self.cell)
+        self.cell.loc = (self.block_at, at)
         self.m.reset()
 
     def in_cell(self, cur, at, rid):
@@ -628,6 +645,7 @@ class _Parser:
         self.admit(cur, at, 0, 0, what)
         r = _Pending()
         r.kind, r.mode, r.count, r.at, r.grid, r.rep_type, r.implied, r.value = kind, mode, count, at, 1, None, 0, None
+        r.skip = r.needed = False  # the streamed read's placement pass decodes only what it hands out
         if count > _BIG_RUN:  # decoded now, window by window (the caller sets grid and implied before use)
             self.big_runs.append((cur, pos, r, what))
             cur.pos = self.skip_run(cur, pos, r, what)
@@ -704,8 +722,13 @@ class _Parser:
         """Decode the queued runs of the current region, then expand the queued geometry into polygons."""
         self.finish_big_runs()
         region, self.region = self.region, None
+        if region is not None and self.mode in ("placements", "geometry"):  # runs nobody asked for, unless modal
+            modal = (self.m.repetition, self.m.polygon_points)
+            region.runs = [r for r in region.runs if not r.skip or r is modal[0] or r is modal[1]]
         if region is not None and region.runs:
             _decode_runs(region)
+        if self.mode != "whole":  # the streamed read expands the queued records itself, a bounded piece at a time
+            return
         entries, self.entries = self.entries, []
         if entries:
             _expand(entries)
@@ -730,7 +753,7 @@ class _Parser:
             cur.fail(f"{kind} record: {n_vert} vertices bring the total to {self.total_v}, more than the limit "
                      f"max_vertices={self.max_vertices}", at)
         need = self.total_p * _POLY_BYTES + self.total_v * _VERTEX_BYTES + self.run_bytes
-        if need > self.max_memory:
+        if need > self.max_memory and self.mode == "whole":  # the streamed read holds a bounded piece at a time
             cur.fail(f"{kind}: {self.total_p} polygons with {self.total_v} vertices and {self.run_bytes // 16} "
                      f"decoded points and positions need about {need / 1e6:.0f} MB, more than the memory budget of "
                      f"{self.max_memory / 1e6:.0f} MB", at)
@@ -741,11 +764,20 @@ class _Parser:
         m = self.m
         lay = self.need(cur, at, m.layer, "layer", rid)
         dt = self.need(cur, at, m.datatype, "datatype", rid)
+        if self.mode == "placements":  # geometry is not wanted: its runs need not be decoded
+            _skip_pending(pts, rep)
+            return
         if pts is None or not self.keep(cur, at, lay, dt):
             return
         n = _positions(rep)
         nv = pts.rows if isinstance(pts, _Pending) else pts.shape[0]
-        self.admit(cur, at, n, n * nv, oc.RECORD_NAMES[rid])
+        if self.mode != "geometry":  # counted once, by the whole read or the streamed read's survey
+            self.admit(cur, at, n, n * nv, oc.RECORD_NAMES[rid])
+        _need_pending(pts, rep)
+        if self.mode == "count":
+            self.cell.own_p += n
+            self.cell.own_v += n * nv
+            return
         self.entries.append((self.cell, lay, dt, pts, x, y, rep))
 
     # ------------------------------------------------------------------ element records
@@ -775,6 +807,14 @@ class _Parser:
         else:
             cs, sn = math.cos(math.radians(angle)), math.sin(math.radians(angle))
         fy = -1.0 if info & 1 else 1.0
+        if self.mode == "count":  # the survey keeps counts per child only; the streamed read parses them again
+            n, first = c.children.get(child, (0, at))
+            c.children[child] = (n + _positions(rep), first)
+            return
+        if self.mode == "geometry" or (self.target is not None and child not in self.target):
+            _skip_pending(rep)  # placements not handed out: their repetitions are not decoded
+            return
+        _need_pending(rep)  # handed out (perhaps reused from a record that was not): decoded
         c.placements.append((child, x, y, (cs * mag, -sn * mag * fy, sn * mag, cs * mag * fy), rep, at))
 
     def text(self, cur, at, rid):
@@ -1026,6 +1066,20 @@ def _skip_zeros(cur) -> None:
         cur.pos += chunk.shape[0]
 
 
+def _skip_pending(*runs) -> None:
+    """Mark located runs as not wanted (the streamed read's placement pass decodes only what it hands out)."""
+    for r in runs:
+        if isinstance(r, _Pending) and r.value is None and not r.needed:
+            r.skip = True
+
+
+def _need_pending(*runs) -> None:
+    """Mark located runs as used by a record that is handed out (decoded even if also marked not wanted)."""
+    for r in runs:
+        if isinstance(r, _Pending):
+            r.skip, r.needed = False, True
+
+
 def _positions(rep) -> int:
     """Number of positions of a repetition (1 without one), known before it is decoded."""
     if rep is None:
@@ -1136,8 +1190,15 @@ def _finish_runs(runs, d, cur) -> None:
 
 
 def _expand(entries) -> None:
-    """Expand queued geometry into polygons, appended to each cell's chunks in file order, vectorised over the
-    records of a batch (bounded by :data:`_EXPAND_CHUNK` vertices at a time)."""
+    """Expand queued geometry into polygons, appended to each cell's chunks in file order."""
+    for cell, piece in _iter_expand(entries):
+        cell.chunks.append(piece)
+
+
+def _iter_expand(entries):
+    """Yield (cell, (layer, datatype, counts, xy)) pieces of queued geometry in file order, vectorised over the
+    records of a batch (bounded by :data:`_EXPAND_CHUNK` vertices at a time; a record with many positions is
+    expanded a slice of positions at a time, never all at once)."""
     batch, size = [], 0
     for e in entries + [None]:  # records, not sites
         if e is not None:
@@ -1146,32 +1207,44 @@ def _expand(entries) -> None:
             n = 1 if rep is None else rep.count
             nv = n * pts.shape[0]
         if batch and (e is None or e[0] is not batch[0][0] or size + nv > _EXPAND_CHUNK):
-            _expand_batch(batch)
+            yield batch[0][0], _expand_batch(batch)
             batch, size = [], 0
         if e is None:
             break
         if nv > _EXPAND_CHUNK:
-            _expand_large(e[0], e[1], e[2], pts, e[4], e[5], rep)
+            for piece in _expand_large(e[1], e[2], pts, e[4], e[5], rep):
+                yield e[0], piece
             continue
         batch.append((e[0], e[1], e[2], pts, e[4], e[5], rep, n))
         size += nv
 
 
-def _expand_large(cell, lay, dt, pts, x, y, rep) -> None:
-    """One record with many positions, expanded in slices of positions."""
+def _expand_large(lay, dt, pts, x, y, rep):
+    """One record with many positions, expanded in slices of positions (yields the pieces)."""
     base = pts + np.array([x, y], np.int64)
-    offs = rep.offsets()
     step = max(1, _EXPAND_CHUNK // base.shape[0])
-    for lo in range(0, offs.shape[0], step):
-        o = offs[lo:lo + step]
+    n = 1 if rep is None else rep.count
+    for lo in range(0, n, step):
+        o = np.zeros((1, 2), np.int64) if rep is None else rep_offsets(rep, lo, min(n, lo + step))
         m = o.shape[0]
-        cell.chunks.append((np.full(m, lay, np.int32), np.full(m, dt, np.int32), np.full(m, base.shape[0], np.int64),
-                            (base[None, :, :] + o[:, None, :]).reshape(-1, 2)))
+        yield (np.full(m, lay, np.int32), np.full(m, dt, np.int32), np.full(m, base.shape[0], np.int64),
+               (base[None, :, :] + o[:, None, :]).reshape(-1, 2))
 
 
-def _expand_batch(batch) -> None:
+def rep_offsets(rep, lo: int, hi: int) -> np.ndarray:
+    """Positions ``lo:hi`` of a repetition, equal to ``rep.offsets()[lo:hi]`` without making the others."""
+    if rep.explicit is not None:
+        return rep.explicit[lo:hi]
+    k = np.arange(lo, hi, dtype=np.int64)
+    i, j = k % rep.nx, k // rep.nx
+    out = np.empty((hi - lo, 2), np.int64)
+    out[:, 0] = j * rep.b[0] + i * rep.a[0]
+    out[:, 1] = j * rep.b[1] + i * rep.a[1]
+    return out
+
+
+def _expand_batch(batch) -> tuple:
     """Records of one cell: vertex (e, i, v) = pts_e[v] + offset_e[i] + (x_e, y_e), gathered in one pass."""
-    cell = batch[0][0]
     nv = np.array([b[3].shape[0] for b in batch], np.int64)
     n = np.array([b[7] for b in batch], np.int64)
     pool_p = np.concatenate([b[3] for b in batch])
@@ -1187,13 +1260,12 @@ def _expand_batch(batch) -> None:
         shift = pool_o + xy[ent]  # the offsets are already one row per polygon, in order
         out = pool_p.reshape(len(batch), int(nv[0]), 2)[ent]
         np.add(out, shift[:, None, :], out=out)
-        cell.chunks.append((lay, dt, vp, out.reshape(-1, 2)))
-        return
+        return lay, dt, vp, out.reshape(-1, 2)
     poly = np.repeat(np.arange(ent.shape[0]), vp)
     v = np.arange(poly.shape[0]) - np.repeat(np.cumsum(vp) - vp, vp)
     ev = ent[poly]
     out = pool_p[ps[ev] + v] + pool_o[poly] + xy[ev]
-    cell.chunks.append((lay, dt, vp, out))
+    return lay, dt, vp, out
 
 
 def _dedup(pts: np.ndarray) -> np.ndarray | None:
@@ -1203,11 +1275,21 @@ def _dedup(pts: np.ndarray) -> np.ndarray | None:
     return out if out.shape[0] >= 3 else None
 
 
-def _checksum32(a: np.ndarray) -> int:
-    total = 0
-    for lo in range(0, a.shape[0], 1 << 24):  # 16 MB chunks: a uint64 sum cannot overflow
-        total += int(a[lo:lo + (1 << 24)].sum(dtype=np.uint64))
-    return total & 0xFFFFFFFF
+def _signature(buf, covered: int, scheme: int, release=None) -> int:
+    """CRC32 (scheme 1) or checksum32 (scheme 2) of ``buf[:covered]``, 16 MB at a time; ``release(lo, hi)`` is
+    called after each piece when given (the streamed read's survey: the file pages are not needed again)."""
+    got = 0
+    with memoryview(buf) as mv:
+        for lo in range(0, covered, 1 << 24):
+            hi = min(covered, lo + (1 << 24))
+            with mv[lo:hi] as part:
+                if scheme == 1:
+                    got = zlib.crc32(part, got)
+                else:  # a uint64 sum of 16 MB cannot overflow
+                    got += int(np.frombuffer(part, np.uint8).sum(dtype=np.uint64))
+            if release is not None:
+                release(lo, hi)
+    return got & 0xFFFFFFFF
 
 
 # ----------------------------------------------------------------------------------------------------------------

@@ -9,8 +9,11 @@ record walk, hierarchy checks and count limits as the whole read, but never allo
   they stay in the page cache); what stays in memory is the walk's per-element table (layer, datatype and two
   flags: about 10 bytes per element);
 * placed cells are expanded a block of placements at a time (the placements' affine maps are held: 48 bytes each);
-* OASIS files are parsed by :mod:`metalay.io.oasis_read`, which expands each cell's own geometry while parsing,
-  so for OASIS only the output chunks are bounded, not the parse.
+* OASIS files are read in two passes by :mod:`metalay.io._oasis_stream`: a survey that parses and checks the
+  whole file with :mod:`metalay.io.oasis_read`'s parser but expands nothing (repetitions counted, a small table
+  per cell kept), then each cell holding polygons parsed again from its CELL record and expanded a bounded piece
+  at a time (a few MB of records, a repetition a slice of positions at a time, placements composed in blocks);
+  what is held is the per-cell table, one CBLOCK and one record's decoded points or positions, not the polygons.
 
 The memory-budget admission of :func:`read_mask` (the size of the flattened result) does not apply here; the
 element, vertex and depth limits do.
@@ -18,12 +21,13 @@ element, vertex and depth limits do.
 
 from __future__ import annotations
 
-import mmap
+import os
 from collections.abc import Iterator
 
 import numpy as np
 
 from metalay.errors import MaskReadError
+from metalay.io import _oasis_stream
 from metalay.io.gdsread import (
     DEFAULT_MAX_DEPTH,
     DEFAULT_MAX_ELEMENTS,
@@ -33,9 +37,12 @@ from metalay.io.gdsread import (
     _decode_run,
     _flat_sizes,
     _flat_totals,
+    _instance_counts,
+    _make_filter,
     _nm_from_m,
     _parse,
     _placements,
+    _sniff,
     _topology,
 )
 
@@ -52,19 +59,7 @@ def _chunk(lay, dt, cnt, xy, db_unit_nm: float, user_unit_m: float) -> FlatPolyg
                         np.asarray(xy, np.int64).reshape(-1, 2), db_unit_nm, user_unit_m)
 
 
-def _release(mm, start: int, stop: int) -> None:
-    """Drop the pages of ``mm[start:stop]`` from this process's resident set (they stay in the page cache: the
-    file is only read, so they are clean); a no-op where ``madvise`` is missing."""
-    if mm is None or not hasattr(mm, "madvise") or not hasattr(mmap, "MADV_DONTNEED"):
-        return
-    page = mmap.PAGESIZE
-    lo = (start // page) * page
-    hi = min(len(mm), -(-stop // page) * page)
-    if hi > lo:
-        try:
-            mm.madvise(mmap.MADV_DONTNEED, lo, hi - lo)
-        except (OSError, ValueError):  # pragma: no cover - best effort
-            pass
+_release = _oasis_stream.release_pages
 
 
 def _cell_chunks(lib, c, aff: np.ndarray, chunk_polygons: int, mm=None) -> Iterator[tuple]:
@@ -124,6 +119,10 @@ def iter_mask_chunks(path, *, layers=None, cell: str | None = None, max_elements
     """
     if int(chunk_polygons) < 1:
         raise MaskReadError(f"{path}: chunk_polygons = {chunk_polygons!r}; allowed: an integer >= 1")
+    if _sniff(os.fspath(path)) == "OASIS":
+        yield from _oasis_chunks(os.fspath(path), layers, cell, max_elements, max_vertices, max_depth,
+                                 int(chunk_polygons))
+        return
     lib, mm = _parse(path, layers, max_elements, max_vertices, None, release=_release)
     try:
         tops, order = _topology(lib, cell, max_depth)
@@ -145,8 +144,18 @@ def count_polygons(path, *, layers=None, cell: str | None = None, max_elements: 
                    max_vertices: int = DEFAULT_MAX_VERTICES, max_depth: int = DEFAULT_MAX_DEPTH) -> tuple[int, int]:
     """Flattened (polygons, vertices) of a mask on ``layers``, counted without flattening (the walk only).
 
-    Lets a check choose between the whole-mask and the streamed method before reading any geometry.
+    Lets a check choose between the whole-mask and the streamed method before reading any geometry. For OASIS the
+    survey pass only: every repetition and placement counted, nothing expanded.
     """
+    if _sniff(os.fspath(path)) == "OASIS":
+        mm = _oasis_stream.open_oasis(os.fspath(path))
+        try:
+            sv = _oasis_survey(os.fspath(path), mm, layers, max_elements, max_vertices)
+            tops, order = _topology(sv, cell, max_depth)
+            sizes = _flat_sizes(sv, order)
+            return sum(sizes[t][0] for t in tops), sum(sizes[t][1] for t in tops)
+        finally:
+            _close_map(mm)
     lib, mm = _parse(path, layers, max_elements, max_vertices, None, release=_release)
     try:
         tops, order = _topology(lib, cell, max_depth)
@@ -154,6 +163,41 @@ def count_polygons(path, *, layers=None, cell: str | None = None, max_elements: 
         return sum(sizes[t][0] for t in tops), sum(sizes[t][1] for t in tops)
     finally:
         _close(lib, mm)
+
+
+def _oasis_survey(path: str, mm, layers, max_elements: int, max_vertices: int):
+    try:
+        return _oasis_stream.survey(path, mm, _make_filter(layers), max_elements=max_elements,
+                                    max_vertices=max_vertices)
+    except MemoryError as exc:
+        raise MaskReadError(f"{path}: OASIS: out of memory while reading (lower the limits)") from exc
+
+
+def _oasis_chunks(path: str, layers, cell, max_elements: int, max_vertices: int, max_depth: int,
+                  chunk_polygons: int) -> Iterator[FlatPolygons]:
+    """The OASIS stream: survey, the whole read's hierarchy checks and counts, then the cells piece by piece."""
+    mm = _oasis_stream.open_oasis(path)
+    try:
+        sv = _oasis_survey(path, mm, layers, max_elements, max_vertices)
+        tops, order = _topology(sv, cell, max_depth)
+        sizes = _flat_sizes(sv, order)
+        _flat_totals(sv, tops, sizes, max_elements=max_elements, max_vertices=max_vertices)
+        inst = _instance_counts(sv, tops, order, sizes)
+        db_nm, uu = _nm_from_m(sv.db_unit_m), float(sv.user_unit_m)
+        try:
+            for lay, dt, cnt, xy in _oasis_stream.iter_pieces(sv, tops, order, sizes, inst, chunk_polygons):
+                yield _chunk(lay, dt, cnt.astype(np.int64, copy=False), xy, db_nm, uu)
+        except MemoryError as exc:
+            raise MaskReadError(f"{path}: OASIS: out of memory while streaming") from exc
+    finally:
+        _close_map(mm)
+
+
+def _close_map(mm) -> None:
+    try:
+        mm.close()
+    except BufferError:
+        pass  # a chunk still views the mapping; it closes when collected
 
 
 def _close(lib, mm) -> None:
