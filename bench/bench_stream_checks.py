@@ -10,11 +10,15 @@ number of sites). Then each check runs in its own subprocess (its peak is its ``
 * optics, streamed: :func:`metalay.checks.optics_stream.compile_check_streamed` (block far field).
 
 Ratios streamed / whole are printed from the same run. A size is skipped for the whole-mask checks when
-``--whole-up-to`` is below it.
+``--whole-up-to`` is below it. With ``--baseline PATH`` (another checkout of metalay, e.g. ``git worktree add
+/tmp/base <commit>``) both rules checks also run with that checkout's code on the same mask, one after the other
+with ours, and the ratios ours / baseline are printed (``--repeat`` runs each check several times, the fastest
+counts).
 
     .venv/bin/python bench/bench_stream_checks.py                       # 1e6 and 1e7 sites
     .venv/bin/python bench/bench_stream_checks.py --sites 1e6           # quick
     .venv/bin/python bench/bench_stream_checks.py --sites 1e8 --whole-up-to 1e7 --stream-budget 1G
+    .venv/bin/python bench/bench_stream_checks.py --sites 1e6 1e7 --baseline /tmp/base --repeat 2
 """
 
 from __future__ import annotations
@@ -110,12 +114,31 @@ def child(kind: str, folder: str, budget: int | None) -> None:
     print(json.dumps({"s": time.perf_counter() - t0, "peak_mb": peak_mb(), "import_mb": base, **info}))
 
 
-def run_child(kind: str, folder: str, budget: int | None) -> dict:
-    cmd = [sys.executable, __file__, "--child", kind, folder] + (["--budget", str(budget)] if budget else [])
-    out = subprocess.run(cmd, capture_output=True, text=True, env={**os.environ, "OPENBLAS_NUM_THREADS": "1"})
-    if out.returncode != 0:
-        return {"error": (out.stderr.strip().splitlines() or ["?"])[-1]}
-    return json.loads(out.stdout.strip().splitlines()[-1])
+def run_child(kind: str, folder: str, budget: int | None, root: Path = ROOT, repeat: int = 1) -> dict:
+    """One check in its own process (the fastest of ``repeat`` runs), with the code of checkout ``root``."""
+    cmd = [sys.executable, str(root / "bench" / Path(__file__).name), "--child", kind, folder] + (
+        ["--budget", str(budget)] if budget else [])
+    best = None
+    for _ in range(repeat):
+        out = subprocess.run(cmd, capture_output=True, text=True, env={**os.environ, "OPENBLAS_NUM_THREADS": "1"})
+        if out.returncode != 0:
+            return {"error": (out.stderr.strip().splitlines() or ["?"])[-1]}
+        got = json.loads(out.stdout.strip().splitlines()[-1])
+        best = got if best is None or got["s"] < best["s"] else best
+    return best
+
+
+def compare_baseline(folder: str, budgets: dict, baseline: Path, repeat: int) -> None:
+    """Rules checks with the baseline checkout's code and ours, alternately, on the same mask; ratios."""
+    for name, budget in budgets.items():
+        base = run_child("rules", folder, budget, baseline, repeat)
+        ours = run_child("rules", folder, budget, ROOT, repeat)
+        print(f"  rules {name:<9} baseline {fmt(base)}")
+        print(f"  rules {name:<9} ours     {fmt(ours)}")
+        if "error" not in base and "error" not in ours:
+            print(f"  rules {name:<9} ours / baseline  time {ours['s'] / base['s']:.2f}x, peak "
+                  f"{ours['peak_mb'] / base['peak_mb']:.2f}x, violations {base['violations']} and "
+                  f"{ours['violations']} ({'same' if base['violations'] == ours['violations'] else 'DIFFERENT'})")
 
 
 def make_mask(folder: Path, sites: float) -> dict:
@@ -144,6 +167,9 @@ def main() -> None:
     ap.add_argument("--stream-budget", help="--max-memory of the streamed rules, small enough to force bands "
                     "(default: 30 B per site, at least 50M, at most 1G)")
     ap.add_argument("--keep", help="folder to keep the masks in (default: a temporary folder)")
+    ap.add_argument("--baseline", type=Path,
+                    help="another metalay checkout: run only the rules checks, with its code and ours")
+    ap.add_argument("--repeat", type=int, default=1, help="runs per check with --baseline (the fastest counts)")
     ap.add_argument("--child", nargs=2, help=argparse.SUPPRESS)
     ap.add_argument("--budget", type=int, help=argparse.SUPPRESS)
     args = ap.parse_args()
@@ -166,6 +192,11 @@ def main() -> None:
                 rows["optics whole"] = run_child("optics_whole", str(folder), None)
             stream_budget = (parse_memory_size(args.stream_budget) if args.stream_budget
                              else int(min(max(50e6, 30 * sites), 1e9)))
+            if args.baseline:
+                budgets = {"whole": 1 << 40, "streamed": stream_budget} if sites <= args.whole_up_to else {
+                    "streamed": stream_budget}
+                compare_baseline(str(folder), budgets, args.baseline.resolve(), args.repeat)
+                continue
             print(f"  streamed rules under --max-memory {stream_budget / 1e6:.0f} MB")
             rows["rules streamed"] = run_child("rules", str(folder), stream_budget)
             rows["optics streamed"] = run_child("optics_stream", str(folder), None)
