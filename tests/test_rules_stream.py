@@ -158,7 +158,8 @@ def test_both_second_passes_equal_whole_mask_check(tmp_path, monkeypatch, second
     calls = []
     real = rules_stream._distribute
     monkeypatch.setattr(rules_stream, "_distribute", lambda *a: calls.append(1) or real(*a))
-    monkeypatch.setattr(rules_stream, "_SWEEP_HOLD_LIMIT", 1e9 if second_pass == "sweep" else 0.0)
+    monkeypatch.setattr(rules_stream, "_SWEEP_HOLD_LIMIT", 1e9)
+    monkeypatch.setattr(rules_stream, "_SWEEP", second_pass == "sweep")
     frame_rules = RuleSet("t", (LayerRules(1, 0, min_width_nm=45, min_spacing_nm=80, forbid_overlap=True,
                                            min_area_nm2=6500, check_validity=True, inside_frame=(2, 0)),))
     rows = in_row_order(read_mask(lattice_mask(tmp_path)))
@@ -192,15 +193,30 @@ def test_the_sweep_is_taken_for_a_file_in_y_order(tmp_path, monkeypatch):
     assert calls == [1]
 
 
-def test_memory_budget_sets_the_band_count(tmp_path):
+def test_memory_budget_sets_the_band_count(tmp_path, monkeypatch):
+    from metalay.checks import rules_stream
+
     p = lattice_mask(tmp_path)
     rs = rules(min_spacing_nm=70, forbid_overlap=True)
     whole = check_mask(p, rs)
     n = whole.polygons
-    # Common practice (no source): a band is sized so 1.5 x its polygons x 300 B fit half the budget
+    # Common practice (no source): a band is sized so 1.5 x its polygons x 300 B fit half the budget, less the
+    # streamed reader's table and pages (30 B per polygon) when the bands are swept during the second read
     budget = int(n * 300 * 1.5 / 0.5 / 4) + 1
+    tiled, plan = check_mask_tiled(p, rs, max_memory_bytes=budget)  # one chunk: swept
+    assert plan.bands == math.ceil(1.5 * n * 300 / (budget / 2 - 30 * n)) == 6 and plan.largest_band < n
+    assert_same_report(tiled, whole)
+    monkeypatch.setattr(rules_stream, "_SWEEP", False)  # through band files
     tiled, plan = check_mask_tiled(p, rs, max_memory_bytes=budget)
     assert plan.bands == 4 and plan.largest_band < n
+    assert_same_report(tiled, whole)
+    monkeypatch.undo()
+    # no room beside the reader's table (under a quarter of the band share left): band files, bands as above
+    calls = []
+    real = rules_stream._distribute
+    monkeypatch.setattr(rules_stream, "_distribute", lambda *a: calls.append(1) or real(*a))
+    tiled, plan = check_mask_tiled(p, rs, max_memory_bytes=60 * n)
+    assert plan.bands == math.ceil(1.5 * n * 300 / (60 * n / 2)) and calls == [1]
     assert_same_report(tiled, whole)
     big, plan1 = check_mask_tiled(p, rs, max_memory_bytes=10 ** 10)
     assert plan1.bands == 1

@@ -44,6 +44,7 @@ import numpy as np
 
 from metalay.errors import MaskReadError, RulesError
 from metalay.io.gdsread import FlatPolygons, file_sha256, read_mask
+from metalay.util._memory import keep_freed_memory
 from metalay.validate import TomlTable, load_toml
 
 __all__ = [
@@ -1442,6 +1443,7 @@ def check_mask(mask, rules: RuleSet, *, method: str = "auto", cell: str | None =
     """
     if method not in ("auto", "tree", "lattice"):
         raise RulesError(f"method = {method!r} is invalid; allowed: auto, tree, lattice")
+    keep_freed_memory()  # feature chunks allocate and free arrays of the same sizes: reuse them
     timings: list[tuple[str, float]] = []
     t0 = time.perf_counter()
     sha = None

@@ -45,6 +45,7 @@ import numpy as np
 from metalay.checks.rules import _KIND, MAX_PAIRS, RuleReport, RuleResult, RuleSet, Violations, _check_layer
 from metalay.errors import MaskReadError, RulesError
 from metalay.io.gdsread import DEFAULT_MAX_ELEMENTS, FlatPolygons, file_sha256
+from metalay.util._memory import keep_freed_memory
 from metalay.util.budget import memory_budget
 
 __all__ = ["TilePlan", "check_mask_tiled", "involved_polygons", "BAND_BYTES_PER_POLYGON", "chunks_of"]
@@ -109,6 +110,13 @@ def _y_range(ch: FlatPolygons) -> tuple[np.ndarray, np.ndarray]:
     """Lowest and highest vertex y of each polygon (0 for a polygon without vertices)."""
     cnt = np.diff(ch.start)
     y = ch.xy_db[:, 1]
+    if ch.count and y.size == ch.count * int(cnt[0]) and int(cnt[0]) > 0 and int(cnt.min()) == int(cnt.max()):
+        ys = y.reshape(ch.count, int(cnt[0]))  # every polygon with the same vertex count: column by column
+        lo, hi = ys[:, 0].copy(), ys[:, 0].copy()
+        for k in range(1, ys.shape[1]):
+            np.minimum(lo, ys[:, k], out=lo)
+            np.maximum(hi, ys[:, k], out=hi)
+        return lo.astype(np.int64, copy=False), hi.astype(np.int64, copy=False)
     lo = np.zeros(ch.count, np.int64)
     hi = np.zeros(ch.count, np.int64)
     has = cnt > 0
@@ -124,7 +132,13 @@ def _keys(pairs) -> np.ndarray:
 
 
 def _on(ch: FlatPolygons, keys: np.ndarray) -> np.ndarray:
-    return np.isin(ch.layer.astype(np.int64) * 65536 + ch.datatype, keys)
+    """Whether each polygon's (layer, datatype) is one of ``keys`` (layer * 65536 + datatype)."""
+    if keys.size > 8:
+        return np.isin(ch.layer.astype(np.int64) * 65536 + ch.datatype, keys)
+    out = np.zeros(ch.count, bool)
+    for key in keys.tolist():  # a few layers: compare the columns directly
+        out |= (ch.layer == key // 65536) & (ch.datatype == key % 65536)
+    return out
 
 
 #: Most frame-layer (context) polygons kept in memory from the survey for the in-memory sweep (they go to every
@@ -176,9 +190,14 @@ def _reach_db(rules: RuleSet, db_unit_nm: float) -> int:
     return int(math.ceil(s / db_unit_nm * (1 + 1e-9))) + 2
 
 
-def _bands_for(n_polygons: int, max_memory_bytes: int | None) -> int:
+def _bands_for(n_polygons: int, max_memory_bytes: int | None, reserved_bytes: float = 0.0) -> int | None:
+    """Bands for ``n_polygons`` so that one band fits its share of the budget less ``reserved_bytes`` (None when
+    that leaves less than a quarter of the share)."""
     budget = memory_budget(max_memory_bytes) * _BUDGET_SHARE
-    return max(1, int(math.ceil(n_polygons * BAND_BYTES_PER_POLYGON * _PEAK_DENSITY / max(budget, 1.0))))
+    room = budget - reserved_bytes
+    if reserved_bytes and room < budget / 4:
+        return None
+    return max(1, int(math.ceil(n_polygons * BAND_BYTES_PER_POLYGON * _PEAK_DENSITY / max(room, 1.0))))
 
 
 def _select_rows(meta: np.ndarray, xy: np.ndarray, sel: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
@@ -297,27 +316,39 @@ def _merge(parts: list[RuleResult], gidx_parts: list) -> RuleResult:
                       " / ".join(methods), vio, max(caps) if caps else None)
 
 
-#: The second pass sweeps the bands in memory when, by the survey's chunk y ranges, the polygons it must hold at
-#: once are at most this many times the largest band (a file written in y order, as our compile writes, holds
-#: about one band and a chunk); otherwise (polygons in no y order) it distributes them into per-band files.
+#: The second pass sweeps the bands in memory when, by the survey's chunk y ranges, the chunks it must hold at once
+#: have at most this many mean bands of polygons (plus two chunks); a file written in y order, as our compile
+#: writes, holds about one band and a chunk. Otherwise (polygons in no y order) it distributes them into per-band
+#: files.
 _SWEEP_HOLD_LIMIT = 3.0
+_SWEEP = True  # False: always through band files (tests compare the two)
 
 
 def _sweep_plan(stats, plan: TilePlan):
-    """The last chunk each band needs (-1: none), or None when sweeping would hold too many polygons at once."""
-    nb = plan.bands
-    first, last = np.full(nb, len(stats), np.int64), np.full(nb, -1, np.int64)
-    rows = np.zeros(nb, np.int64)  # rows of the chunks touching each band (an upper bound of its polygons)
-    for c, (count, ylo, yhi) in enumerate(stats):
+    """The last chunk each band needs (-1: none), or None when sweeping would hold too many polygons at once.
+
+    A chunk's rows are held (band pieces are views of the chunk) from its read until the last band it reaches is
+    handed on; bands are handed on in order, band ``b`` once chunk ``max(last[:b + 1])`` has been read."""
+    nb, nc = plan.bands, len(stats)
+    last = np.full(nb, -1, np.int64)
+    reach = []
+    for c, (_, ylo, yhi) in enumerate(stats):
         if ylo is None:
+            reach.append(None)
             continue
         b0 = int(_band_of(np.array([ylo]), plan, -plan.halo_db)[0])
         b1 = int(_band_of(np.array([yhi]), plan, plan.halo_db)[0])
-        first[b0:b1 + 1] = np.minimum(first[b0:b1 + 1], c)
         last[b0:b1 + 1] = c
-        rows[b0:b1 + 1] += count
-    held = max((int(rows[(first <= c) & (c <= last)].sum()) for c in range(len(stats))), default=0)
-    return last if held <= _SWEEP_HOLD_LIMIT * max(int(rows.max(initial=0)), 1) else None
+        reach.append(b1)
+    handed = np.maximum.accumulate(last)  # band b is handed on after reading chunk handed[b]
+    held = np.zeros(nc + 1, np.int64)
+    for c, b1 in enumerate(reach):
+        if b1 is not None:
+            held[c] += stats[c][0]
+            held[max(c, int(handed[b1])) + 1] -= stats[c][0]
+    peak = int(np.cumsum(held).max(initial=0))
+    biggest = max((count for count, _, _ in stats), default=0)
+    return last if peak <= _SWEEP_HOLD_LIMIT * plan.polygons / nb + 2 * biggest else None
 
 
 def _band_from(pieces, context, b: int, plan: TilePlan, db: float, uu: float):
@@ -376,8 +407,17 @@ def _iter_bands(source, plan: TilePlan, context_keys, sweep, db: float, uu: floa
         yield spill.take(b, db, uu)
 
 
+#: Bytes per polygon the streamed reader holds while it reads (its per-element table and resident pages: about
+#: 25 B measured at 1e7 polygons of flat GDSII). The sweep checks bands during the second read, so its bands are
+#: sized from the budget less this.
+_READER_BYTES_PER_POLYGON = 30
+
+
 def _plan(source, rules: RuleSet, max_memory_bytes, bands):
-    """Survey and band plan; also the sweep (last chunk per band, frame rows) when it applies, else None."""
+    """Survey and band plan; also the sweep (last chunk per band, frame rows) when it applies, else None.
+
+    Without ``bands`` the sweep gets its own band count (more bands: the reader's table stays in memory while
+    they are checked), or is not used when the budget has too little room beside that table."""
     pair_keys = _keys((lr.layer, lr.datatype) for lr in rules.layers
                       if lr.min_spacing_nm is not None or lr.forbid_overlap)
     context_keys = _keys(lr.inside_frame for lr in rules.layers if lr.inside_frame is not None)
@@ -385,10 +425,16 @@ def _plan(source, rules: RuleSet, max_memory_bytes, bands):
     nb = int(bands) if bands is not None else _bands_for(n, max_memory_bytes)
     if nb < 1:
         raise RulesError(f"bands = {bands!r}; allowed: an integer >= 1")
-    h = max(1, -(-(y1 - y0 + 1) // nb))
-    plan = TilePlan(nb, y0, h, tall + _reach_db(rules, db), n, 0, 0)
-    last = _sweep_plan(stats, plan) if context is not None else None
-    return plan, context_keys, db, uu, (None if last is None else (last, context))
+    halo = tall + _reach_db(rules, db)
+
+    def plan_of(nb):
+        return TilePlan(nb, y0, max(1, -(-(y1 - y0 + 1) // nb)), halo, n, 0, 0)
+    nb_sweep = nb if bands is not None else _bands_for(n, max_memory_bytes, _READER_BYTES_PER_POLYGON * n)
+    if _SWEEP and context is not None and nb_sweep is not None:
+        last = _sweep_plan(stats, plan_of(max(nb, nb_sweep)))
+        if last is not None:
+            return plan_of(max(nb, nb_sweep)), context_keys, db, uu, (last, context)
+    return plan_of(nb), context_keys, db, uu, None
 
 
 def check_mask_tiled(mask, rules: RuleSet, *, method: str = "auto", cell: str | None = None,
@@ -407,7 +453,9 @@ def check_mask_tiled(mask, rules: RuleSet, *, method: str = "auto", cell: str | 
         As :func:`check_mask` (``max_pairs`` applies per band).
     max_memory_bytes : int, optional
         Memory budget (``--max-memory``; default half of what the process may use); sets the band height when
-        ``bands`` is not given: ``bands = ceil(1.5 polygons BAND_BYTES_PER_POLYGON / (budget / 2))``.
+        ``bands`` is not given: ``bands = ceil(1.5 polygons BAND_BYTES_PER_POLYGON / (budget / 2))`` through band
+        files, with ``budget / 2 - polygons _READER_BYTES_PER_POLYGON`` in the denominator for the in-memory sweep
+        (which needs at least a quarter of ``budget / 2`` left).
     bands : int, optional
         Number of horizontal bands (overrides the budget).
     chunk_polygons : int
@@ -419,6 +467,7 @@ def check_mask_tiled(mask, rules: RuleSet, *, method: str = "auto", cell: str | 
     -------
     (RuleReport, TilePlan)
     """
+    keep_freed_memory()  # bands allocate and free arrays of the same sizes: reuse them
     timings: dict[str, float] = {}
     t0 = time.perf_counter()
     sha, name = None, "<memory>"
