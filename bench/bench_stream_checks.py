@@ -13,7 +13,8 @@ Ratios streamed / whole are printed from the same run. A size is skipped for the
 ``--whole-up-to`` is below it. With ``--baseline PATH`` (another checkout of metalay, e.g. ``git worktree add
 /tmp/base <commit>``) both rules checks also run with that checkout's code on the same mask, one after the other
 with ours, and the ratios ours / baseline are printed (``--repeat`` runs each check several times, the fastest
-counts).
+counts). Each check also reports its processor time (user + system, all threads): on a machine shared with other
+work it varies less than the wall time.
 
     .venv/bin/python bench/bench_stream_checks.py                       # 1e6 and 1e7 sites
     .venv/bin/python bench/bench_stream_checks.py --sites 1e6           # quick
@@ -96,6 +97,7 @@ def child(kind: str, folder: str, budget: int | None) -> None:
     gds = next((Path(folder) / "out").glob("*.gds"))
     written = replace(WrittenMask(gds, lib, design), max_memory_bytes=budget)
     base = peak_mb()
+    cpu0 = os.times().user + os.times().system
     t0 = time.perf_counter()
     if kind == "rules":
         d = steps.run_rules_on_written(written)
@@ -111,7 +113,9 @@ def child(kind: str, folder: str, budget: int | None) -> None:
                 "designed_spot": d["figures"].get("designed_spot_efficiency"),
                 "designed_spot_bound": d["figures"].get("designed_spot_efficiency_bound"),
                 "block_um": d["method"]["block_um"]}
-    print(json.dumps({"s": time.perf_counter() - t0, "peak_mb": peak_mb(), "import_mb": base, **info}))
+    cpu = os.times()
+    print(json.dumps({"s": time.perf_counter() - t0, "cpu_s": cpu.user + cpu.system - cpu0, "peak_mb": peak_mb(),
+                      "import_mb": base, **info}))
 
 
 def run_child(kind: str, folder: str, budget: int | None, root: Path = ROOT, repeat: int = 1) -> dict:
@@ -136,7 +140,8 @@ def compare_baseline(folder: str, budgets: dict, baseline: Path, repeat: int) ->
         print(f"  rules {name:<9} baseline {fmt(base)}")
         print(f"  rules {name:<9} ours     {fmt(ours)}")
         if "error" not in base and "error" not in ours:
-            print(f"  rules {name:<9} ours / baseline  time {ours['s'] / base['s']:.2f}x, peak "
+            cpu = (f", cpu {ours['cpu_s'] / base['cpu_s']:.2f}x" if "cpu_s" in ours and "cpu_s" in base else "")
+            print(f"  rules {name:<9} ours / baseline  time {ours['s'] / base['s']:.2f}x{cpu}, peak "
                   f"{ours['peak_mb'] / base['peak_mb']:.2f}x, violations {base['violations']} and "
                   f"{ours['violations']} ({'same' if base['violations'] == ours['violations'] else 'DIFFERENT'})")
 
@@ -157,7 +162,8 @@ def make_mask(folder: Path, sites: float) -> dict:
 def fmt(r: dict) -> str:
     if "error" in r:
         return f"FAILED ({r['error'][:90]})"
-    return f"{r['s']:7.1f} s {r['peak_mb']:7.0f} MB (after imports {r['import_mb']:4.0f} MB)  [{r['method']}]"
+    cpu = f" (cpu {r['cpu_s']:5.1f} s)" if "cpu_s" in r else ""
+    return f"{r['s']:7.1f} s{cpu} {r['peak_mb']:7.0f} MB (after imports {r['import_mb']:4.0f} MB)  [{r['method']}]"
 
 
 def main() -> None:

@@ -1092,7 +1092,7 @@ def _facing_pairs(coords: np.ndarray, reach_db: float | None):
 def _shapely_polygons(flat: FlatPolygons, idx: np.ndarray):
     import shapely
 
-    counts = np.diff(flat.start)[idx]
+    counts = _counts_of(flat, idx)
     vidx = np.repeat(flat.start[idx], counts) + (np.arange(int(counts.sum())) - np.repeat(np.cumsum(counts) - counts,
                                                                                            counts))
     rings = shapely.linearrings(flat.xy_db[vidx].astype(np.float64), indices=np.repeat(np.arange(idx.size), counts))
@@ -1167,7 +1167,8 @@ def _gcd_all(v: np.ndarray) -> int:
     """
     sample = v[:: max(1, v.size // 4096)]
     g = int(np.gcd.reduce(sample)) if sample.size else 0
-    if g > 0 and not np.any(v % g):
+    step = 1 << 20  # the remainder in cache-sized pieces
+    if g > 0 and not any(np.any(v[lo:lo + step] % g) for lo in range(0, v.size, step)):
         return g
     return int(np.gcd.reduce(v)) if v.size else 0
 
@@ -1194,7 +1195,8 @@ def _lattice_plan(bbox: np.ndarray, rmax: float, reach_db: float, max_stencil: i
         c2 -= c2.min()
         g = _gcd_all(c2)
         g = g if g > 0 else 1 << 40
-        ids.append(c2 // g)
+        np.floor_divide(c2, g, out=c2)
+        ids.append(c2)
         steps.append(g)
     gx, gy = steps
     ni, nj = int(ids[0].max()) + 1, int(ids[1].max()) + 1
@@ -1223,12 +1225,17 @@ def _lattice_plan(bbox: np.ndarray, rmax: float, reach_db: float, max_stencil: i
     kc = J[s].astype(np.int64) * nip + I[s]
     row_major = bool(np.abs(np.diff(kr)).sum() <= np.abs(np.diff(kc)).sum())
     si, sj = (njp, 1) if row_major else (1, nip)
-    key = I.astype(np.int64) * si + J.astype(np.int64) * sj
+    key = I.astype(np.int64)
+    key *= si
+    jk = J.astype(np.int64)
+    jk *= sj
+    key += jk
+    del jk
     grid = np.full(nip * njp, -1, it)
     grid[key] = np.arange(P, dtype=it)
-    if not np.array_equal(grid[key], np.arange(P, dtype=it)):
-        return None  # two polygons on one site
     del key
+    if np.count_nonzero(grid >= 0) != P:
+        return None  # two polygons on one site (one overwrote the other)
     # largest bounding-box half extents (doubled, integers) for the per-polygon prefilter
     hx2max = int((bbox[:, 2] - bbox[:, 0]).max())
     hy2max = int((bbox[:, 3] - bbox[:, 1]).max())
@@ -1343,6 +1350,23 @@ def _map_chunks(fn, items, threads: int | None = None) -> list:
         with ThreadPoolExecutor(max_workers=threads) as ex:
             return list(ex.map(fn, items))
     return [fn(x) for x in items]
+
+
+def _counts_of(flat: FlatPolygons, idx: np.ndarray) -> np.ndarray:
+    """Vertex counts of polygons ``idx`` (int64), without the count array of the whole mask: one slice when
+    ``idx`` is a run of consecutive polygons, else two gathers (``np.diff(flat.start)[idx]``, with less memory)."""
+    idx = np.asarray(idx, np.int64)
+    if idx.size and int(idx[-1]) - int(idx[0]) + 1 == idx.size and (
+            idx.size == 1 or bool(np.all(idx[1:] > idx[:-1]))):
+        return np.diff(flat.start[int(idx[0]):int(idx[-1]) + 2])
+    return flat.start[idx + 1] - flat.start[idx]
+
+
+def _distinct(values: np.ndarray) -> np.ndarray:
+    """``np.unique(values)``, without sorting when every value is the same (one vertex count per layer)."""
+    if values.size and int(values.min()) == int(values.max()):
+        return values[:1].copy()
+    return np.unique(values)
 
 
 def _uniform_view(flat: FlatPolygons, idx: np.ndarray, n: int) -> np.ndarray:
@@ -1539,8 +1563,8 @@ def _layer_geometry(flat: FlatPolygons, lr: LayerRules) -> _LayerGeometry:
     threads), exact shapely analysis for the others."""
     on_layer = (flat.layer == lr.layer) & (flat.datatype == lr.datatype)
     layer_polys = np.flatnonzero(on_layer)
-    vertex_counts = np.diff(flat.start)[layer_polys]
-    count_values = np.unique(vertex_counts) if layer_polys.size else np.zeros(0, np.int64)
+    vertex_counts = _counts_of(flat, layer_polys)
+    count_values = _distinct(vertex_counts) if layer_polys.size else np.zeros(0, np.int64)
     want_angle = lr.min_angle_deg is not None
     by_count = [(int(n), layer_polys[vertex_counts == n] if count_values.size > 1 else layer_polys)
                 for n in count_values if n >= 3]
@@ -1601,7 +1625,7 @@ def _translation_classes(flat: FlatPolygons, polys: np.ndarray):
     """
     if polys.size == 0:
         return
-    counts = np.diff(flat.start)[polys]
+    counts = _counts_of(flat, polys)
     for n in np.unique(counts).tolist():
         sel = np.sort(polys[counts == n])
         if n < 3 or n > _HASH_WEIGHTS.shape[1] or sel.size == 1:
@@ -1734,7 +1758,7 @@ class _LayerCheck:
         flat, geom = self.flat, self.geom
         seg = np.zeros((rows.size, 4))
         ks = geom.poly[rows]
-        cnt = np.diff(flat.start)[ks]
+        cnt = _counts_of(flat, ks)
         for nn in np.unique(cnt):
             s = np.flatnonzero(cnt == nn)
             if nn >= 3:
@@ -1764,7 +1788,7 @@ def _rule_area(c: _LayerCheck) -> None:
 
 def _rule_vertices(c: _LayerCheck) -> None:
     g, lr = c.geom, c.lr
-    count = np.diff(c.flat.start)[g.poly]
+    count = _counts_of(c.flat, g.poly)
     bad = np.flatnonzero(count > lr.max_vertices)
     c.emit("vertices", lr.max_vertices, g.poly[bad], None, count[bad], c.bbox_seg(bad), c.n_checked(),
            source_key="max_vertices")
