@@ -125,15 +125,98 @@ def test_nonconvex_shapes_frame_and_mixed_paths_equal_whole_mask_check():
         assert plan.loaded >= plan.polygons + 4 * (bands - 1)  # the frame goes to every band
 
 
-def test_memory_budget_sets_the_band_count(tmp_path):
+def in_row_order(flat):
+    """The polygons of ``flat`` reordered by their lowest y (as a compile writes a lattice: row after row)."""
+    ymin = np.array([flat.xy_db[flat.start[k]:flat.start[k + 1], 1].min() for k in range(flat.count)])
+    order = np.argsort(ymin, kind="stable")
+    polys = [flat.xy_db[flat.start[k]:flat.start[k + 1]] for k in order]
+    return FlatPolygons.from_arrays(flat.layer[order], flat.datatype[order], [len(q) for q in polys],
+                                    np.concatenate(polys))
+
+
+def nonconvex_frame_mask():
+    """Non-convex shapes and fins at random positions (no y order in the polygon list) inside a four-bar frame."""
+    rng = np.random.default_rng(11)
+    shapes = [np.array([(0, 0), (100, 0), (100, 40), (40, 40), (40, 100), (0, 100)]), fin(0, 0, 0.3),
+              axis_rect(0, 0, 250, 85), np.array([(0, 0), (100, 100), (100, 0), (0, 100)])]
+    polys = [shapes[k % len(shapes)] + rng.integers(-6000, 6000, 2) for k in range(300)]
+    w = 400
+    bars = [axis_rect(-6500 - w, 6500, 6500 + w, 6500 + w), axis_rect(-6500 - w, -6500 - w, 6500 + w, -6500),
+            axis_rect(-6500 - w, -6500, -6500, 6500), axis_rect(6500, -6500, 6500 + w, 6500)]
+    polys = polys[:150] + bars[:2] + polys[150:] + bars[2:]  # frame polygons in the middle and at the end
+    layer = np.array([1] * 150 + [2] * 2 + [1] * 150 + [2] * 2)
+    return FlatPolygons.from_arrays(layer, 0, [len(q) for q in polys], np.concatenate(polys))
+
+
+@pytest.mark.parametrize("second_pass", ["sweep", "spill"])
+def test_both_second_passes_equal_whole_mask_check(tmp_path, monkeypatch, second_pass):
+    # Equivalence check of the two ways the bands are filled: swept in memory from the second read (files in y
+    # order, few frame polygons) and distributed into per-band files (any order); each forced on a y-ordered
+    # lattice file and on random positions with frame polygons in the middle and at the end of the list
+    from metalay.checks import rules_stream
+
+    calls = []
+    real = rules_stream._distribute
+    monkeypatch.setattr(rules_stream, "_distribute", lambda *a: calls.append(1) or real(*a))
+    monkeypatch.setattr(rules_stream, "_SWEEP_HOLD_LIMIT", 1e9)
+    monkeypatch.setattr(rules_stream, "_SWEEP", second_pass == "sweep")
+    frame_rules = RuleSet("t", (LayerRules(1, 0, min_width_nm=45, min_spacing_nm=80, forbid_overlap=True,
+                                           min_area_nm2=6500, check_validity=True, inside_frame=(2, 0)),))
+    rows = in_row_order(read_mask(lattice_mask(tmp_path)))
+    cases = [(rows, rules(**LATTICE_RULES), 97), (lattice_mask(tmp_path), rules(**LATTICE_RULES), 97),
+             (nonconvex_frame_mask(), frame_rules, 40)]
+    for mask, rs, chunk in cases:
+        whole = check_mask(mask, rs)
+        assert whole.total_violations > 5
+        for bands in (1, 4, 9):
+            tiled, plan = check_mask_tiled(mask, rs, bands=bands, chunk_polygons=chunk)
+            assert_same_report(tiled, whole)
+            assert plan.loaded >= plan.polygons
+    assert (len(calls) == 0) if second_pass == "sweep" else (len(calls) == 9)
+
+
+def test_the_sweep_is_taken_for_a_file_in_y_order(tmp_path, monkeypatch):
+    # the default choice: a lattice written row by row is swept in memory; column by column (each chunk spans
+    # every band) or at random positions it goes through band files
+    from metalay.checks import rules_stream
+
+    calls = []
+    real = rules_stream._distribute
+    monkeypatch.setattr(rules_stream, "_distribute", lambda *a: calls.append(1) or real(*a))
+    flat = read_mask(lattice_mask(tmp_path))
+    check_mask_tiled(in_row_order(flat), rules(**LATTICE_RULES), bands=7, chunk_polygons=97)
+    assert calls == []
+    check_mask_tiled(flat, rules(**LATTICE_RULES), bands=7, chunk_polygons=97)
+    assert calls == [1]
+    calls.clear()
+    check_mask_tiled(nonconvex_frame_mask(), rules(min_spacing_nm=80), bands=7, chunk_polygons=40)
+    assert calls == [1]
+
+
+def test_memory_budget_sets_the_band_count(tmp_path, monkeypatch):
+    from metalay.checks import rules_stream
+
     p = lattice_mask(tmp_path)
     rs = rules(min_spacing_nm=70, forbid_overlap=True)
     whole = check_mask(p, rs)
     n = whole.polygons
-    # Common practice (no source): a band is sized so 1.5 x its polygons x 300 B fit half the budget
+    # Common practice (no source): a band is sized so 1.5 x its polygons x 300 B fit half the budget, less the
+    # streamed reader's table and pages (30 B per polygon) when the bands are swept during the second read
     budget = int(n * 300 * 1.5 / 0.5 / 4) + 1
+    tiled, plan = check_mask_tiled(p, rs, max_memory_bytes=budget)  # one chunk: swept
+    assert plan.bands == math.ceil(1.5 * n * 300 / (budget / 2 - 30 * n)) == 6 and plan.largest_band < n
+    assert_same_report(tiled, whole)
+    monkeypatch.setattr(rules_stream, "_SWEEP", False)  # through band files
     tiled, plan = check_mask_tiled(p, rs, max_memory_bytes=budget)
     assert plan.bands == 4 and plan.largest_band < n
+    assert_same_report(tiled, whole)
+    monkeypatch.undo()
+    # no room beside the reader's table (under a quarter of the band share left): band files, bands as above
+    calls = []
+    real = rules_stream._distribute
+    monkeypatch.setattr(rules_stream, "_distribute", lambda *a: calls.append(1) or real(*a))
+    tiled, plan = check_mask_tiled(p, rs, max_memory_bytes=60 * n)
+    assert plan.bands == math.ceil(1.5 * n * 300 / (60 * n / 2)) and calls == [1]
     assert_same_report(tiled, whole)
     big, plan1 = check_mask_tiled(p, rs, max_memory_bytes=10 ** 10)
     assert plan1.bands == 1

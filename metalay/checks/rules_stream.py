@@ -2,11 +2,14 @@
 
 The mask is read as a stream of polygon chunks (:func:`metalay.io.stream_read.iter_mask_chunks`) twice:
 
-1. survey: the y extent of the mask, the number of polygons and the tallest polygon ``H`` of every layer that
-   has a pair rule (spacing, overlap);
-2. distribution: every polygon goes to each band its y range touches once widened by the halo, into per-band
-   spill files (a temporary folder); it is *owned* by the one band holding its canonical point, the lowest y of
-   its bounding box.
+1. survey: the y extent of the mask, the number of polygons, the tallest polygon ``H`` of every layer that
+   has a pair rule (spacing, overlap), the y range of each chunk, and the frame-layer polygons;
+2. bands: every polygon goes to each band its y range touches once widened by the halo; it is *owned* by the one
+   band holding its canonical point, the lowest y of its bounding box. When the chunks come in y order (as our
+   compile writes a mask: row after row), the second read is a sweep in memory: a band is checked as soon as the
+   last chunk reaching it has been read, holding about one band and one chunk (:func:`_sweep_plan` decides from
+   the survey's chunk ranges). Otherwise (polygons in no y order, or many frame polygons) the polygons are
+   distributed into per-band spill files (a temporary folder) first. Both give the same bands (tested).
 
 Each band is then checked alone with :func:`metalay.checks.rules._check_layer`, reporting only what it owns: a
 single-polygon rule reports the polygons the band owns; a pair rule reports the pairs whose first polygon (the
@@ -21,8 +24,10 @@ Where the results may differ: the method text of the spacing rule (a band may ta
 STRtree on its own; both give the same pairs), and a pair search that stops at its pair cap (counts are lower
 bounds then, in both checks, with caps counted per band here).
 
-Memory: the walk of the file (about 10 bytes per element for flat GDSII), one chunk and one band with its halo;
-the band height follows the memory budget (:data:`BAND_BYTES_PER_POLYGON` per polygon).
+Memory: the walk of the file (about 10 bytes per element for flat GDSII), one chunk and one band with its halo
+(with the sweep, also the rows of the next band read so far, at most :data:`_SWEEP_HOLD_LIMIT` bands in all); the
+band height follows the memory budget (:data:`BAND_BYTES_PER_POLYGON` per polygon). Time: linear in the polygons
+(each is decoded twice and checked in ``1 + halo / band`` bands).
 """
 
 from __future__ import annotations
@@ -40,6 +45,7 @@ import numpy as np
 from metalay.checks.rules import _KIND, MAX_PAIRS, RuleReport, RuleResult, RuleSet, Violations, _check_layer
 from metalay.errors import MaskReadError, RulesError
 from metalay.io.gdsread import DEFAULT_MAX_ELEMENTS, FlatPolygons, file_sha256
+from metalay.util._memory import keep_freed_memory
 from metalay.util.budget import memory_budget
 
 __all__ = ["TilePlan", "check_mask_tiled", "involved_polygons", "BAND_BYTES_PER_POLYGON", "chunks_of"]
@@ -104,6 +110,13 @@ def _y_range(ch: FlatPolygons) -> tuple[np.ndarray, np.ndarray]:
     """Lowest and highest vertex y of each polygon (0 for a polygon without vertices)."""
     cnt = np.diff(ch.start)
     y = ch.xy_db[:, 1]
+    if ch.count and y.size == ch.count * int(cnt[0]) and int(cnt[0]) > 0 and int(cnt.min()) == int(cnt.max()):
+        ys = y.reshape(ch.count, int(cnt[0]))  # every polygon with the same vertex count: column by column
+        lo, hi = ys[:, 0].copy(), ys[:, 0].copy()
+        for k in range(1, ys.shape[1]):
+            np.minimum(lo, ys[:, k], out=lo)
+            np.maximum(hi, ys[:, k], out=hi)
+        return lo.astype(np.int64, copy=False), hi.astype(np.int64, copy=False)
     lo = np.zeros(ch.count, np.int64)
     hi = np.zeros(ch.count, np.int64)
     has = cnt > 0
@@ -119,26 +132,54 @@ def _keys(pairs) -> np.ndarray:
 
 
 def _on(ch: FlatPolygons, keys: np.ndarray) -> np.ndarray:
-    return np.isin(ch.layer.astype(np.int64) * 65536 + ch.datatype, keys)
+    """Whether each polygon's (layer, datatype) is one of ``keys`` (layer * 65536 + datatype)."""
+    if keys.size > 8:
+        return np.isin(ch.layer.astype(np.int64) * 65536 + ch.datatype, keys)
+    out = np.zeros(ch.count, bool)
+    for key in keys.tolist():  # a few layers: compare the columns directly
+        out |= (ch.layer == key // 65536) & (ch.datatype == key % 65536)
+    return out
 
 
-def _survey(source, rules: RuleSet, pair_keys, context_keys):
-    """Pass 1: polygon count, y extent (frame polygons excluded), tallest pair-rule polygon, database unit."""
+#: Most frame-layer (context) polygons kept in memory from the survey for the in-memory sweep (they go to every
+#: band); with more, the bands go through spill files.
+_MAX_CONTEXT_ROWS = 1 << 16
+
+
+def _survey(source, pair_keys, context_keys):
+    """Pass 1: polygon count, y extent (frame polygons excluded), tallest pair-rule polygon, database unit; per
+    chunk its rows and the y range of its body (non-frame) polygons; the frame polygons themselves (rows as in
+    :func:`_rows_of`, and vertices), or None when there are more than :data:`_MAX_CONTEXT_ROWS`."""
     n, y0, y1, tall, db, uu = 0, None, None, 0, None, None
+    stats, context = [], []
     for ch in source():
         db, uu = (ch.db_unit_nm, ch.user_unit_m) if db is None else (db, uu)
         if ch.db_unit_nm != db:
             raise MaskReadError(f"mask chunks disagree on the database unit ({db} and {ch.db_unit_nm} nm)")
         lo, hi = _y_range(ch)
-        n += ch.count
-        body = ~_on(ch, context_keys)
+        ctx = _on(ch, context_keys)
+        body = ~ctx
         if body.any():
             y0 = int(lo[body].min()) if y0 is None else min(y0, int(lo[body].min()))
             y1 = int(hi[body].max()) if y1 is None else max(y1, int(hi[body].max()))
+        stats.append((ch.count, int(lo[body].min()) if body.any() else None,
+                      int(hi[body].max()) if body.any() else None))
+        if ctx.any() and context is not None:
+            context.append(tuple(a.copy() for a in _select_rows(_rows_of(ch, n, lo), ch.xy_db, ctx)))
+            if sum(m.shape[0] for m, _ in context) > _MAX_CONTEXT_ROWS:
+                context = None
         pl = _on(ch, pair_keys)
         if pl.any():
             tall = max(tall, int((hi[pl] - lo[pl]).max()))
-    return n, (y0 or 0), (y1 if y1 is not None else 0), tall, (db or 1.0), (uu or 1e-6)
+        n += ch.count
+    return n, (y0 or 0), (y1 if y1 is not None else 0), tall, (db or 1.0), (uu or 1e-6), stats, context
+
+
+def _rows_of(ch: FlatPolygons, offset: int, lo: np.ndarray) -> np.ndarray:
+    """Rows (mask index, layer, datatype, vertex count, first vertex, lowest y) of a chunk's polygons."""
+    cnt = np.diff(ch.start)
+    return np.stack([np.arange(offset, offset + ch.count), ch.layer.astype(np.int64),
+                     ch.datatype.astype(np.int64), cnt, ch.start[:-1], lo], axis=1)
 
 
 def _reach_db(rules: RuleSet, db_unit_nm: float) -> int:
@@ -149,9 +190,46 @@ def _reach_db(rules: RuleSet, db_unit_nm: float) -> int:
     return int(math.ceil(s / db_unit_nm * (1 + 1e-9))) + 2
 
 
-def _bands_for(n_polygons: int, max_memory_bytes: int | None) -> int:
+def _bands_for(n_polygons: int, max_memory_bytes: int | None, reserved_bytes: float = 0.0) -> int | None:
+    """Bands for ``n_polygons`` so that one band fits its share of the budget less ``reserved_bytes`` (None when
+    that leaves less than a quarter of the share)."""
     budget = memory_budget(max_memory_bytes) * _BUDGET_SHARE
-    return max(1, int(math.ceil(n_polygons * BAND_BYTES_PER_POLYGON * _PEAK_DENSITY / max(budget, 1.0))))
+    room = budget - reserved_bytes
+    if reserved_bytes and room < budget / 4:
+        return None
+    return max(1, int(math.ceil(n_polygons * BAND_BYTES_PER_POLYGON * _PEAK_DENSITY / max(room, 1.0))))
+
+
+def _select_rows(meta: np.ndarray, xy: np.ndarray, sel: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """The rows ``sel`` (bool) of ``meta`` and their vertices (column 4: each row's first vertex in ``xy``); a run
+    of consecutive rows (a band's part of a chunk written in y order) is taken as slices, without copying."""
+    at = np.flatnonzero(sel)
+    if at.size and int(at[-1]) - int(at[0]) + 1 == at.size:
+        r0, r1 = int(at[0]), int(at[-1]) + 1
+        return meta[r0:r1], xy[int(meta[r0, 4]):int(meta[r1 - 1, 4] + meta[r1 - 1, 3])]
+    xy = xy[np.repeat(sel, meta[:, 3])] if at.size < meta.shape[0] else xy
+    meta = meta[at]
+    meta[:, 4] = np.cumsum(meta[:, 3]) - meta[:, 3]
+    return meta, xy
+
+
+def _in_mask_order(pieces) -> tuple[np.ndarray, np.ndarray]:
+    """Rows and vertices of spill pieces, concatenated and ordered by mask index (stable)."""
+    meta = np.concatenate([m for m, _ in pieces]) if pieces else np.zeros((0, 6), np.int64)
+    xy = np.concatenate([x for _, x in pieces]) if pieces else np.zeros((0, 2), np.int64)
+    if meta.shape[0] > 1 and np.any(meta[1:, 0] < meta[:-1, 0]):
+        order = np.argsort(meta[:, 0], kind="stable")
+        c = meta[order, 3]
+        start = np.cumsum(meta[:, 3]) - meta[:, 3]
+        xy = xy[np.repeat(start[order] - (np.cumsum(c) - c), c) + np.arange(int(c.sum()))]
+        meta = meta[order]
+    meta[:, 4] = np.cumsum(meta[:, 3]) - meta[:, 3]
+    return meta, xy
+
+
+def _band_of(y: np.ndarray, plan: TilePlan, shift: int) -> np.ndarray:
+    """Band index of ``y + shift`` (clipped to the bands), as the distribution pass computes it."""
+    return np.clip((y + shift - plan.y0_db) // plan.band_db, 0, plan.bands - 1)
 
 
 class _Spill:
@@ -238,16 +316,125 @@ def _merge(parts: list[RuleResult], gidx_parts: list) -> RuleResult:
                       " / ".join(methods), vio, max(caps) if caps else None)
 
 
+#: The second pass sweeps the bands in memory when, by the survey's chunk y ranges, the chunks it must hold at once
+#: have at most this many mean bands of polygons (plus two chunks); a file written in y order, as our compile
+#: writes, holds about one band and a chunk. Otherwise (polygons in no y order) it distributes them into per-band
+#: files.
+_SWEEP_HOLD_LIMIT = 3.0
+_SWEEP = True  # False: always through band files (tests compare the two)
+
+
+def _sweep_plan(stats, plan: TilePlan):
+    """The last chunk each band needs (-1: none), or None when sweeping would hold too many polygons at once.
+
+    A chunk's rows are held (band pieces are views of the chunk) from its read until the last band it reaches is
+    handed on; bands are handed on in order, band ``b`` once chunk ``max(last[:b + 1])`` has been read."""
+    nb, nc = plan.bands, len(stats)
+    last = np.full(nb, -1, np.int64)
+    reach = []
+    for c, (_, ylo, yhi) in enumerate(stats):
+        if ylo is None:
+            reach.append(None)
+            continue
+        b0 = int(_band_of(np.array([ylo]), plan, -plan.halo_db)[0])
+        b1 = int(_band_of(np.array([yhi]), plan, plan.halo_db)[0])
+        last[b0:b1 + 1] = c
+        reach.append(b1)
+    handed = np.maximum.accumulate(last)  # band b is handed on after reading chunk handed[b]
+    held = np.zeros(nc + 1, np.int64)
+    for c, b1 in enumerate(reach):
+        if b1 is not None:
+            held[c] += stats[c][0]
+            held[max(c, int(handed[b1])) + 1] -= stats[c][0]
+    peak = int(np.cumsum(held).max(initial=0))
+    biggest = max((count for count, _, _ in stats), default=0)
+    return last if peak <= _SWEEP_HOLD_LIMIT * plan.polygons / nb + 2 * biggest else None
+
+
+def _band_from(pieces, context, b: int, plan: TilePlan, db: float, uu: float):
+    """A band's (polygons in mask order, mask-wide indices, ownership) from its rows and the frame rows."""
+    meta, xy = _in_mask_order(list(pieces) + list(context))
+    flat = FlatPolygons.from_arrays(meta[:, 1], meta[:, 2], meta[:, 3], xy, db_unit_nm=db, user_unit_m=uu)
+    return flat, meta[:, 0].copy(), _band_of(meta[:, 5], plan, 0) == b
+
+
+def _sweep_bands(source, plan: TilePlan, context_keys, last: np.ndarray, context, db: float, uu: float):
+    """Pass 2 in memory: each chunk's polygons go to the bands their widened y range touches (as
+    :func:`_distribute` sends them), and a band is handed on once the last chunk it needs has been read."""
+    nb = plan.bands
+    pending: list[list] = [[] for _ in range(nb)]
+    done, offset = 0, 0
+    for c, ch in enumerate(source()):
+        lo, hi = _y_range(ch)
+        body = ~_on(ch, context_keys)
+        b_lo, b_hi = _band_of(lo, plan, -plan.halo_db), _band_of(hi, plan, plan.halo_db)
+        if body.any():
+            rows = _rows_of(ch, offset, lo)
+            for b in range(int(b_lo[body].min()), int(b_hi[body].max()) + 1):
+                sel = body & (b_lo <= b) & (b <= b_hi)
+                if sel.any():
+                    pending[b].append(_select_rows(rows, ch.xy_db, sel))
+        offset += ch.count
+        while done < nb and last[done] <= c:
+            yield _band_from(pending[done], context, done, plan, db, uu)
+            pending[done] = None
+            done += 1
+    for b in range(done, nb):
+        yield _band_from(pending[b], context, b, plan, db, uu)
+
+
+def _iter_bands(source, plan: TilePlan, context_keys, sweep, db: float, uu: float, folder, loaded: np.ndarray,
+                timings: dict):
+    """Each band's (polygons, mask-wide indices, ownership) in band order; ``loaded`` gets the rows per band.
+
+    ``sweep`` = (last chunk per band, frame rows) for the in-memory sweep, or None: spill files."""
+    if sweep is not None:
+        timings["distribute"] = 0.0
+        bands = _sweep_bands(source, plan, context_keys, sweep[0], sweep[1], db, uu)
+        for b in range(plan.bands):
+            t1 = time.perf_counter()
+            band = next(bands)
+            timings["distribute"] += time.perf_counter() - t1
+            loaded[b] = band[0].count
+            yield band
+        return
+    t1 = time.perf_counter()
+    spill = _Spill(Path(folder), plan.bands)
+    _distribute(source, plan, context_keys, spill)
+    loaded[:] = spill.loaded
+    timings["distribute"] = time.perf_counter() - t1
+    for b in range(plan.bands):
+        yield spill.take(b, db, uu)
+
+
+#: Bytes per polygon the streamed reader holds while it reads (its per-element table and resident pages: about
+#: 25 B measured at 1e7 polygons of flat GDSII). The sweep checks bands during the second read, so its bands are
+#: sized from the budget less this.
+_READER_BYTES_PER_POLYGON = 30
+
+
 def _plan(source, rules: RuleSet, max_memory_bytes, bands):
+    """Survey and band plan; also the sweep (last chunk per band, frame rows) when it applies, else None.
+
+    Without ``bands`` the sweep gets its own band count (more bands: the reader's table stays in memory while
+    they are checked), or is not used when the budget has too little room beside that table."""
     pair_keys = _keys((lr.layer, lr.datatype) for lr in rules.layers
                       if lr.min_spacing_nm is not None or lr.forbid_overlap)
     context_keys = _keys(lr.inside_frame for lr in rules.layers if lr.inside_frame is not None)
-    n, y0, y1, tall, db, uu = _survey(source, rules, pair_keys, context_keys)
+    n, y0, y1, tall, db, uu, stats, context = _survey(source, pair_keys, context_keys)
     nb = int(bands) if bands is not None else _bands_for(n, max_memory_bytes)
     if nb < 1:
         raise RulesError(f"bands = {bands!r}; allowed: an integer >= 1")
-    h = max(1, -(-(y1 - y0 + 1) // nb))
-    return TilePlan(nb, y0, h, tall + _reach_db(rules, db), n, 0, 0), context_keys, db, uu
+    halo = tall + _reach_db(rules, db)
+
+    def plan_of(nb):
+        return TilePlan(nb, y0, max(1, -(-(y1 - y0 + 1) // nb)), halo, n, 0, 0)
+    nb_sweep = nb if bands is not None else _bands_for(n, max_memory_bytes, _READER_BYTES_PER_POLYGON * n)
+    if _SWEEP and context is not None and nb_sweep is not None:
+        last = _sweep_plan(stats, plan_of(max(nb, nb_sweep)))
+        if last is not None:
+            return plan_of(max(nb, nb_sweep)), context_keys, db, uu, (last, context)
+    return plan_of(nb), context_keys, db, uu, None
 
 
 def check_mask_tiled(mask, rules: RuleSet, *, method: str = "auto", cell: str | None = None,
@@ -266,7 +453,9 @@ def check_mask_tiled(mask, rules: RuleSet, *, method: str = "auto", cell: str | 
         As :func:`check_mask` (``max_pairs`` applies per band).
     max_memory_bytes : int, optional
         Memory budget (``--max-memory``; default half of what the process may use); sets the band height when
-        ``bands`` is not given: ``bands = ceil(1.5 polygons BAND_BYTES_PER_POLYGON / (budget / 2))``.
+        ``bands`` is not given: ``bands = ceil(1.5 polygons BAND_BYTES_PER_POLYGON / (budget / 2))`` through band
+        files, with ``budget / 2 - polygons _READER_BYTES_PER_POLYGON`` in the denominator for the in-memory sweep
+        (which needs at least a quarter of ``budget / 2`` left).
     bands : int, optional
         Number of horizontal bands (overrides the budget).
     chunk_polygons : int
@@ -278,6 +467,7 @@ def check_mask_tiled(mask, rules: RuleSet, *, method: str = "auto", cell: str | 
     -------
     (RuleReport, TilePlan)
     """
+    keep_freed_memory()  # bands allocate and free arrays of the same sizes: reuse them
     timings: dict[str, float] = {}
     t0 = time.perf_counter()
     sha, name = None, "<memory>"
@@ -294,22 +484,23 @@ def check_mask_tiled(mask, rules: RuleSet, *, method: str = "auto", cell: str | 
         def source():
             return iter_mask_chunks(name, layers=layers, cell=cell, chunk_polygons=chunk_polygons,
                                     max_elements=max_elements or DEFAULT_MAX_ELEMENTS)
-    plan, context_keys, db, uu = _plan(source, rules, max_memory_bytes, bands)  # a bad file fails here, one line
-    if name != "<memory>":
-        try:
-            sha = file_sha256(name)
-        except OSError as exc:
-            raise MaskReadError(f"{name}: cannot read file for its checksum ({exc.strerror or exc})") from exc
-    timings["survey"] = time.perf_counter() - t0
     per_rule: dict[tuple, list] = {}
     gidx_of: dict[tuple, list] = {}
-    with tempfile.TemporaryDirectory(prefix="metalay-bands-", dir=spill_dir) as folder:
-        spill = _Spill(Path(folder), plan.bands)
-        t1 = time.perf_counter()
-        _distribute(source, plan, context_keys, spill)
-        timings["distribute"] = time.perf_counter() - t1
-        for b in range(plan.bands):
-            flat, gidx, owned = spill.take(b, db, uu)
+    from concurrent.futures import ThreadPoolExecutor
+
+    # the file hash runs beside the survey (hashlib releases the GIL)
+    with ThreadPoolExecutor(max_workers=1) as pool, \
+            tempfile.TemporaryDirectory(prefix="metalay-bands-", dir=spill_dir) as folder:
+        fut = pool.submit(file_sha256, name) if name != "<memory>" else None
+        plan, context_keys, db, uu, sweep = _plan(source, rules, max_memory_bytes, bands)  # bad file: one line
+        try:
+            sha = fut.result() if fut is not None else None
+        except OSError as exc:
+            raise MaskReadError(f"{name}: cannot read file for its checksum ({exc.strerror or exc})") from exc
+        timings["survey"] = time.perf_counter() - t0
+        loaded = np.zeros(plan.bands, np.int64)
+        for b, (flat, gidx, owned) in enumerate(_iter_bands(source, plan, context_keys, sweep, db, uu, folder,
+                                                                          loaded, timings)):
             band_timings: list = []
             for li, lr in enumerate(rules.layers):
                 try:
@@ -324,8 +515,8 @@ def check_mask_tiled(mask, rules: RuleSet, *, method: str = "auto", cell: str | 
                 key = k.split(" ")[0]
                 timings[key] = timings.get(key, 0.0) + v
     results = tuple(_merge(per_rule[k], gidx_of[k]) for k in per_rule)  # insertion order: layers, then rules
-    plan = TilePlan(plan.bands, plan.y0_db, plan.band_db, plan.halo_db, plan.polygons, int(spill.loaded.sum()),
-                    int(spill.loaded.max(initial=0)))
+    plan = TilePlan(plan.bands, plan.y0_db, plan.band_db, plan.halo_db, plan.polygons, int(loaded.sum()),
+                    int(loaded.max(initial=0)))
     report = RuleReport(name, sha, db, plan.polygons, rules.name, results, tuple(timings.items()))
     return report, plan
 
