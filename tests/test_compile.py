@@ -197,7 +197,7 @@ def test_too_large_for_memory_or_disk_is_refused_before_writing(tmp_path, small_
     err = capsys.readouterr().err.strip()
     assert "700 MB" in err and "760 MB" in err and "--max-memory" in err and "\n" not in err
     # with the checks on, the hint names turning them off: the layout alone fits 1.2 GB, the rules check does not
-    # even streamed (0.46 GB + 16 B x 3e7 + 0.3 GB = 1.24 GB; whole-mask it would need 9 GB)
+    # even streamed (0.46 GB + 30 B x 3e7 + 0.3 GB = 1.66 GB; whole-mask it would need 9 GB)
     big["checks"] = {"rules": True, "optics": False}
     design = write_toml(tmp_path / "d.toml", big)
     assert main(["compile", str(design), "-o", str(tmp_path / "o1"), "--quiet", "--max-memory", "1.2G"]) == 2

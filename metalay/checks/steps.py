@@ -14,6 +14,7 @@ import numpy as np
 
 from metalay.checks.rules import check_mask, rules_from_library
 from metalay.checks.rules_stream import check_mask_tiled
+from metalay.design.lattice import aperture_area_um2, cell_area_um2
 from metalay.design.limits import judge
 from metalay.design.spec import Design
 from metalay.mask.process import WriteFieldGrid
@@ -29,13 +30,14 @@ _PIECE_MAX_VERTICES = 8190
 #: the larger of the virtual and resident slope between 1e6 and 4e6 sites, measured 288 and 214, rounded up).
 RULES_BYTES_PER_SITE = 300
 OPTICS_BYTES_PER_SITE = 220
-#: Peak memory per site of the streamed checks beyond one band or block grid (the file walk's table;
-#: ``bench/bench_stream_checks.py``). A check streams when, at the time it runs, its whole-mask method does not fit
-#: the budget; the compile's admission counts this figure then (and, under an address-space limit, the mapped
-#: GDSII file on top: :func:`metalay.mask.compile.check_admission_bytes_per_site`).
-STREAMED_BYTES_PER_SITE = 16
+#: Peak memory per site of the streamed checks beyond one band or block grid: the GDSII file walk's per-element
+#: table and resident pages, about 25 B per polygon measured at 1e7 polygons (``bench/bench_stream_checks.py``;
+#: ``rules_stream._READER_BYTES_PER_POLYGON``); the OASIS stream holds less (docs/scale-checks.md). The compile's
+#: admission counts this figure for a check it tells to stream (and, under an address-space limit, the mapped GDSII
+#: file on top: :func:`metalay.mask.compile.check_admission_bytes_per_site`).
+STREAMED_BYTES_PER_SITE = 30
 #: Memory of a streamed check that does not grow with the mask: measured peaks of 317 MB (rules, 30 bands) and
-#: 298 MB (optics) at 1e7 sites, of which 160 MB is the table above (``bench/bench_stream_checks.py``, docs/
+#: 298 MB (optics) at 1e7 sites, of which about 160-250 MB is the table above (``bench/bench_stream_checks.py``, docs/
 #: scale-checks.md); rounded up with room for the band spill buffers.
 STREAMED_FIXED_BYTES = 300_000_000
 #: Above this many sites a compile streams its checks even when the whole mask would fit: the whole-mask checks
@@ -65,13 +67,14 @@ def whole_mask_fits(path, layers, bytes_per_site: float, max_memory_bytes: int |
     return count_polygons(path, layers=layers)[0] * bytes_per_site <= budget
 
 
-def _rules_report(path, rules, max_memory_bytes: int | None, streamed: bool = False):
+def _rules_report(path, rules, max_memory_bytes: int | None, streamed: bool = False, sites: float = 0.0):
     """The rule report and the method used: whole-mask when it fits the budget (and the compile did not ask to
-    stream), else band by band."""
+    stream), else band by band (``sites``: the design's estimate, for the memory the bands may use)."""
     if not streamed and whole_mask_fits(path, rules.layer_pairs(), RULES_BYTES_PER_SITE, max_memory_bytes):
         return check_mask(path, rules, max_memory_bytes=max_memory_bytes), {"method": "whole-mask"}
-    # streamed: bands sized to the streamed figure the admission counted, not to all the memory there is
-    band_bytes = min(memory_budget(max_memory_bytes), STREAMED_FIXED_BYTES)
+    # streamed: the memory the admission counted (reader's table + fixed part), not all the memory there is; the
+    # tiled check gives half its budget to the bands, less the reader's table
+    band_bytes = min(memory_budget(max_memory_bytes), 2 * (STREAMED_BYTES_PER_SITE * sites + STREAMED_FIXED_BYTES))
     report, plan = check_mask_tiled(path, rules, max_memory_bytes=band_bytes, spill_dir=Path(path).parent)
     return report, plan.as_dict(report.db_unit_nm)
 
@@ -161,16 +164,19 @@ def run_rules_on_written(written: WrittenMask) -> dict:
     ruleset = _library_ruleset(written)
     out = {}
     budget = written.max_memory_bytes
+    design = written.design
+    sites = aperture_area_um2(design.aperture) / cell_area_um2(design.lattice)
     if written.structures_path is None:
-        report, method = _rules_report(path, ruleset(), budget, written.streamed)
+        report, method = _rules_report(path, ruleset(), budget, written.streamed, sites)
     else:
-        report, method = _rules_report(written.structures_path, ruleset(inside_frame=None), budget, written.streamed)
+        report, method = _rules_report(written.structures_path, ruleset(inside_frame=None), budget, written.streamed,
+                                       sites)
         piece_rules = ruleset(min_width_nm=None, min_spacing_nm=None, forbid_overlap=False, film_height_nm=None,
                               max_aspect_ratio=None, no_field_straddle=False, max_vertices=_PIECE_MAX_VERTICES)
         complement_dt = dict(mask.dose_datatypes).get("complement")
         pieces, _ = _rules_report(path, replace(piece_rules, layers=tuple(
             replace(lr, datatype=int(lr.datatype if complement_dt is None else complement_dt))
-            for lr in piece_rules.layers)), budget, written.streamed)
+            for lr in piece_rules.layers)), budget, written.streamed, sites)
         out["complement_pieces"] = {"status": "clean" if pieces.clean else "violations",
                                     "violations": pieces.total_violations, "summary": pieces.summary_lines()}
         out["note"] = ("tone 'complement': feature, gap and aspect rules checked on the structures (the holes); "
