@@ -73,3 +73,44 @@ def write_toml(path, data):
             lines.append(f"{k} = {scalar(v)}")
     path.write_text("\n".join(lines) + "\n")
     return path
+
+
+def write_fin_oasis_set(folder, centres, offsets, extras, *, fields_compression_level=None):
+    """Three OASIS files of the same fins as the compile writes them: flat (shape groups tile by tile, 5 bands of y),
+    levels (one master cell per distinct shape, placed with repetitions per tile) and one cell per 10 um write field;
+    ``extras`` (Polygons) go into each top cell. Returns the paths (flat, levels, fields) and the level names."""
+    import numpy as np
+
+    from metalay.io.oasis_write import DEFAULT_COMPRESSION_LEVEL, OasisStream
+    from metalay.mask.layout import Polygon, group_shapes
+
+    paths = [folder / f"{k}.oas" for k in ("flat", "levels", "fields")]
+    bands = np.array_split(np.argsort(centres[:, 1], kind="stable"), 5)
+    with OasisStream(paths[0], "TOP") as oas:
+        for sel in bands:
+            g = group_shapes(offsets[sel])
+            oas.add_shape_groups(1, 0, g.shapes_db, g.shape_of_site, centres[sel])
+        oas.add_polygons(extras)
+    g_all = group_shapes(offsets)
+    names = [f"TOP_R{k:04d}" for k in range(len(g_all.shapes_db))]
+    with OasisStream(paths[1], "TOP") as oas:
+        for k, shp in enumerate(g_all.shapes_db):
+            oas.define_cell(names[k], [Polygon(1, 0, shp)])
+        for sel in bands:
+            oas.add_placements(names, g_all.shape_of_site[sel], centres[sel])
+        oas.add_polygons(extras)
+    fid = np.floor_divide(centres, 10_000)
+    level = DEFAULT_COMPRESSION_LEVEL if fields_compression_level is None else fields_compression_level
+    with OasisStream(paths[2], "TOP", compression_level=level) as oas:
+        placed = set()
+        for sel in bands:
+            for key in sorted({tuple(f) for f in fid[sel]}):  # fields (a few), not sites
+                here = sel[np.all(fid[sel] == key, axis=1)]
+                name = f"TOP_F{key[0]}_{key[1]}"
+                g = group_shapes(offsets[here])
+                oas.add_shape_groups(1, 0, g.shapes_db, g.shape_of_site, centres[here], cell=name)
+                if name not in placed:
+                    oas.place(name)
+                    placed.add(name)
+        oas.add_polygons(extras)
+    return paths, names

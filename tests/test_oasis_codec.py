@@ -27,7 +27,7 @@ from metalay.io.oasis_read import parse_oasis, read_oasis
 from metalay.io.oasis_write import OasisStream, encode_shape_groups, pack_cblocks
 from metalay.mask.layout import Polygon, element_offsets, group_shapes, rectangle, snap_centres
 
-from conftest import write_toml
+from conftest import write_fin_oasis_set, write_toml
 
 FIN = np.array([[125.0, 42.5], [-125.0, 42.5], [-125.0, -42.5], [125.0, -42.5]])
 
@@ -419,39 +419,8 @@ def test_writer_fins_flat_levels_fields_read_back(tmp_path):
     centres, offsets = _fins(4000, seed=3)
     extras = [Polygon(2, 0, rectangle(-5000, -5000, 30000, -4000)), Polygon(3, 1, np.array([[0, 0], [50, 7], [3, 80]]))]
     want = sorted(_expected(1, 0, centres, offsets) + [_canon(p.layer, p.datatype, p.xy_db) for p in extras])
-    # flat, tile by tile (bands of y)
-    flat = tmp_path / "flat.oas"
-    bands = np.array_split(np.argsort(centres[:, 1], kind="stable"), 5)
-    with OasisStream(flat, "TOP") as oas:
-        for sel in bands:
-            g = group_shapes(offsets[sel])
-            oas.add_shape_groups(1, 0, g.shapes_db, g.shape_of_site, centres[sel])
-        oas.add_polygons(extras)
-    # hierarchy: one master cell per distinct shape ("rotation level"), placed with repetitions per tile
-    levels = tmp_path / "levels.oas"
-    g_all = group_shapes(offsets)
-    names = [f"TOP_R{k:04d}" for k in range(len(g_all.shapes_db))]
-    with OasisStream(levels, "TOP") as oas:
-        for k, shp in enumerate(g_all.shapes_db):
-            oas.define_cell(names[k], [Polygon(1, 0, shp)])
-        for sel in bands:
-            oas.add_placements(names, g_all.shape_of_site[sel], centres[sel])
-        oas.add_polygons(extras)
-    # one cell per write field (10 um squares), each placed once at the origin
-    fields = tmp_path / "fields.oas"
-    fid = np.floor_divide(centres, 10_000)
-    with OasisStream(fields, "TOP") as oas:
-        placed = set()
-        for sel in bands:
-            for key in sorted({tuple(f) for f in fid[sel]}):  # fields (a few), not sites
-                here = sel[np.all(fid[sel] == key, axis=1)]
-                name = f"TOP_F{key[0]}_{key[1]}"
-                g = group_shapes(offsets[here])
-                oas.add_shape_groups(1, 0, g.shapes_db, g.shape_of_site, centres[here], cell=name)
-                if name not in placed:
-                    oas.place(name)
-                    placed.add(name)
-        oas.add_polygons(extras)
+    # flat tile by tile; levels (one master cell per distinct shape, "rotation level"); one cell per write field
+    (flat, levels, fields), names = write_fin_oasis_set(tmp_path, centres, offsets, extras)
     for path in (flat, levels, fields):
         assert _flat_set(read_oasis(path)) == want, path.name
         assert _flat_set(read_mask(path)) == want, path.name

@@ -30,7 +30,7 @@ from metalay.io.oasis_write import OasisStream
 from metalay.io.stream_read import count_polygons, iter_mask_chunks
 from metalay.mask.layout import Polygon, element_offsets, group_shapes, rectangle, snap_centres
 
-from conftest import SMALL_DESIGN, write_toml
+from conftest import SMALL_DESIGN, write_fin_oasis_set, write_toml
 
 FIN = np.array([[125.0, 42.5], [-125.0, 42.5], [-125.0, -42.5], [125.0, -42.5]])  # a 250 x 85 nm nanofin
 
@@ -68,34 +68,7 @@ def _metalay_files(folder: Path, n: int = 3000) -> list[Path]:
     each with two extra polygons in the top cell, as :class:`OasisStream` writes them for the compile."""
     centres, offsets = _fins(n, 3, 120)
     extras = [Polygon(2, 0, rectangle(-5000, -5000, 30000, -4000)), Polygon(3, 1, np.array([[0, 0], [50, 7], [3, 80]]))]
-    bands = np.array_split(np.argsort(centres[:, 1], kind="stable"), 5)
-    with OasisStream(folder / "flat.oas", "TOP") as oas:
-        for sel in bands:
-            g = group_shapes(offsets[sel])
-            oas.add_shape_groups(1, 0, g.shapes_db, g.shape_of_site, centres[sel])
-        oas.add_polygons(extras)
-    g_all = group_shapes(offsets)
-    names = [f"TOP_R{k:04d}" for k in range(len(g_all.shapes_db))]
-    with OasisStream(folder / "levels.oas", "TOP") as oas:
-        for k, shp in enumerate(g_all.shapes_db):
-            oas.define_cell(names[k], [Polygon(1, 0, shp)])
-        for sel in bands:
-            oas.add_placements(names, g_all.shape_of_site[sel], centres[sel])
-        oas.add_polygons(extras)
-    fid = np.floor_divide(centres, 10_000)
-    with OasisStream(folder / "fields.oas", "TOP", compression_level=0) as oas:
-        placed = set()
-        for sel in bands:
-            for key in sorted({tuple(f) for f in fid[sel]}):  # fields (a few), not sites
-                here = sel[np.all(fid[sel] == key, axis=1)]
-                name = f"TOP_F{key[0]}_{key[1]}"
-                g = group_shapes(offsets[here])
-                oas.add_shape_groups(1, 0, g.shapes_db, g.shape_of_site, centres[here], cell=name)
-                if name not in placed:
-                    oas.place(name)
-                    placed.add(name)
-        oas.add_polygons(extras)
-    return [folder / f"{k}.oas" for k in ("flat", "levels", "fields")]
+    return write_fin_oasis_set(folder, centres, offsets, extras, fields_compression_level=0)[0]
 
 
 def _small_pieces(monkeypatch):
