@@ -25,7 +25,6 @@ import hashlib
 import json
 import math
 import os
-import resource
 import subprocess
 import sys
 import tempfile
@@ -36,6 +35,8 @@ ROOT = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(ROOT))
 
 PERIOD_NM = 325.0
+
+from bench_stream_checks import peak_mb  # noqa: E402  (VmHWM of this process)
 
 
 def _design(sites: float, hierarchy: str) -> dict:
@@ -51,18 +52,6 @@ def _design(sites: float, hierarchy: str) -> dict:
         "mask": mask,
         "checks": {"rules": False, "optics": False},
     }
-
-
-def peak_mb() -> float:
-    """Peak resident size of this process (``VmHWM``)."""
-    try:
-        with open("/proc/self/status") as fh:
-            for line in fh:
-                if line.startswith("VmHWM:"):
-                    return int(line.split()[1]) / 1024.0
-    except OSError:
-        pass
-    return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0
 
 
 def rss_parts_mb() -> tuple[float, float]:
