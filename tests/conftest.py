@@ -114,3 +114,14 @@ def write_fin_oasis_set(folder, centres, offsets, extras, *, fields_compression_
                     placed.add(name)
         oas.add_polygons(extras)
     return paths, names
+
+
+def gdstk_repetitions():
+    """One gdstk repetition of every OASIS kind (regular grid, one row, general two-vector grid, explicit offsets,
+    x offsets, y offsets) in micrometres, for files written by gdstk as an independent writer."""
+    import gdstk
+
+    return [gdstk.Repetition(3, 4, spacing=(0.5, 0.7)), gdstk.Repetition(5, 1, spacing=(0.3, 0)),
+            gdstk.Repetition(3, 2, v1=(0.3, 0.1), v2=(-0.1, 0.4)),
+            gdstk.Repetition(offsets=[(0, 0), (1.001, 0.5), (2, -3), (0.004, 0.004)]),
+            gdstk.Repetition(x_offsets=[0, 0.5, 0.7, 2.0]), gdstk.Repetition(y_offsets=[0, 0.3, 0.9])]

@@ -27,7 +27,7 @@ from metalay.io.oasis_read import parse_oasis, read_oasis
 from metalay.io.oasis_write import OasisStream, encode_shape_groups, pack_cblocks
 from metalay.mask.layout import Polygon, element_offsets, group_shapes, rectangle, snap_centres
 
-from conftest import write_fin_oasis_set, write_toml
+from conftest import gdstk_repetitions, write_fin_oasis_set, write_toml
 
 FIN = np.array([[125.0, 42.5], [-125.0, 42.5], [-125.0, -42.5], [125.0, -42.5]])
 
@@ -342,10 +342,7 @@ def test_gdstk_written_files_equal_gdstk_flattening(tmp_path, level, detect):
         top.add(gdstk.Polygon([(x, y), (x + 0.1 + k / 1000, y), (x + 0.05, y + 0.04 + k / 1000)], layer=1 + k % 3))
         top.add(gdstk.rectangle((x, y), (x + 0.2, y + 0.1), layer=6))
         top.add(gdstk.Polygon([(x, y), (x + 0.3, y), (x + 0.25, y + 0.1), (x + 0.1, y + 0.1)], layer=7))
-    reps = [gdstk.Repetition(3, 4, spacing=(0.5, 0.7)), gdstk.Repetition(5, 1, spacing=(0.3, 0)),
-            gdstk.Repetition(3, 2, v1=(0.3, 0.1), v2=(-0.1, 0.4)),
-            gdstk.Repetition(offsets=[(0, 0), (1.001, 0.5), (2, -3), (0.004, 0.004)]),
-            gdstk.Repetition(x_offsets=[0, 0.5, 0.7, 2.0]), gdstk.Repetition(y_offsets=[0, 0.3, 0.9])]
+    reps = gdstk_repetitions()
     for i, r in enumerate(reps):
         p = gdstk.Polygon([(0, 0), (0.01, 0.003), (0.004, 0.02), (-0.002, 0.011)], layer=10 + i)
         p.repetition = r

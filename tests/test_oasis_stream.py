@@ -30,7 +30,7 @@ from metalay.io.oasis_write import OasisStream
 from metalay.io.stream_read import count_polygons, iter_mask_chunks
 from metalay.mask.layout import Polygon, element_offsets, group_shapes, rectangle, snap_centres
 
-from conftest import SMALL_DESIGN, write_fin_oasis_set, write_toml
+from conftest import SMALL_DESIGN, gdstk_repetitions, write_fin_oasis_set, write_toml
 
 FIN = np.array([[125.0, 42.5], [-125.0, 42.5], [-125.0, -42.5], [125.0, -42.5]])  # a 250 x 85 nm nanofin
 
@@ -147,10 +147,7 @@ def _gdstk_file(path: Path, level: int) -> None:
         x, y = rng.integers(-5000, 5000, 2) / 1000
         top.add(gdstk.Polygon([(x, y), (x + 0.1 + k / 1000, y), (x + 0.05, y + 0.04 + k / 1000)], layer=1 + k % 3))
         top.add(gdstk.rectangle((x, y), (x + 0.2, y + 0.1), layer=6))
-    reps = [gdstk.Repetition(3, 4, spacing=(0.5, 0.7)), gdstk.Repetition(5, 1, spacing=(0.3, 0)),
-            gdstk.Repetition(3, 2, v1=(0.3, 0.1), v2=(-0.1, 0.4)),
-            gdstk.Repetition(offsets=[(0, 0), (1.001, 0.5), (2, -3), (0.004, 0.004)]),
-            gdstk.Repetition(x_offsets=[0, 0.5, 0.7, 2.0]), gdstk.Repetition(y_offsets=[0, 0.3, 0.9])]
+    reps = gdstk_repetitions()
     for i, r in enumerate(reps):
         p = gdstk.Polygon([(0, 0), (0.01, 0.003), (0.004, 0.02), (-0.002, 0.011)], layer=10 + i)
         p.repetition = r
