@@ -493,9 +493,9 @@ def _size_estimate(mask_path, design, st: dict, count_polygons) -> tuple[int, fl
     """Sites expected and the aperture's side in periods, which size the blocks: from the design's aperture (no
     pass over the file; a mask larger than that merges blocks as it streams, see ``max_side``), else counted."""
     if design is not None:
-        from metalay.design.lattice import aperture_area_um2, cell_area_um2
+        from metalay.design.lattice import estimated_sites
 
-        n = aperture_area_um2(design.aperture) / cell_area_um2(design.lattice)
+        n = estimated_sites(design.aperture, design.lattice)
         return max(1, int(round(n))), 2 * max(design.aperture.half_extent_um) / (st["period_nm"] * 1e-3)
     n_poly, _ = count_polygons(mask_path, layers=[st["layer"]])
     return n_poly, 2 * math.sqrt(max(n_poly, 1) / math.pi)

@@ -14,9 +14,10 @@ import numpy as np
 
 from metalay.checks.rules import check_mask, rules_from_library
 from metalay.checks.rules_stream import check_mask_tiled
-from metalay.design.lattice import aperture_area_um2, cell_area_um2
+from metalay.design.lattice import estimated_sites
 from metalay.design.limits import judge
 from metalay.design.spec import Design
+from metalay.io.gdsread import mask_format
 from metalay.mask.process import WriteFieldGrid
 from metalay.mask.steps import MaskCheck, WrittenMask
 from metalay.util.budget import memory_budget
@@ -42,7 +43,7 @@ STREAMED_BYTES_PER_SITE = 30
 STREAMED_FIXED_BYTES = 300_000_000
 #: Above this many sites a compile streams its checks even when the whole mask would fit: the whole-mask checks
 #: need 300 and 220 B per site (1.2 GB and 0.9 GB at 4e6 sites, 2.9 GB with the layout at 1e7, over issue 15's
-#: 1.5 GB), the streamed ones 16 B per site + 300 MB, and streamed they took 0.74x (rules) and 0.26x (optics) of
+#: 1.5 GB), the streamed ones 30 B per site + 300 MB, and streamed they took 0.74x (rules) and 0.26x (optics) of
 #: the whole-mask time at 1e6 sites (docs/scale-checks.md). The streamed optics reads no fringe image (its report
 #: says so).
 STREAM_CHECKS_ABOVE_SITES = 4_000_000
@@ -76,7 +77,7 @@ def _rules_report(path, rules, max_memory_bytes: int | None, streamed: bool = Fa
     # to a band, less the reader's table when it sweeps the bands in memory (GDSII written in row order); the OASIS
     # stream holds no such table and its bands go through band files, so it gets twice the fixed part only (a 1e8-site
     # OASIS check peaked at 2.7 GB with 14 bands sized from all the memory there was)
-    reader = STREAMED_BYTES_PER_SITE * sites if Path(path).suffix.lower() != ".oas" else 0.0
+    reader = STREAMED_BYTES_PER_SITE * sites if mask_format(path) == "GDSII" else 0.0
     band_bytes = min(memory_budget(max_memory_bytes), int(2 * (reader + STREAMED_FIXED_BYTES)))
     report, plan = check_mask_tiled(path, rules, max_memory_bytes=band_bytes, spill_dir=Path(path).parent)
     return report, plan.as_dict(report.db_unit_nm)
@@ -168,7 +169,7 @@ def run_rules_on_written(written: WrittenMask) -> dict:
     out = {}
     budget = written.max_memory_bytes
     design = written.design
-    sites = aperture_area_um2(design.aperture) / cell_area_um2(design.lattice)
+    sites = estimated_sites(design.aperture, design.lattice)
     if written.structures_path is None:
         report, method = _rules_report(path, ruleset(), budget, written.streamed, sites)
     else:

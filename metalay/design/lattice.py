@@ -12,7 +12,7 @@ from dataclasses import dataclass
 import numpy as np
 
 __all__ = ["Aperture", "Lattice", "Sites", "sample_sites", "row_range", "site_count", "cell_area_um2",
-           "aperture_area_um2", "cell_vertices_um"]
+           "aperture_area_um2", "estimated_sites", "cell_vertices_um"]
 
 SQRT3 = np.sqrt(3.0)
 
@@ -96,6 +96,11 @@ def aperture_area_um2(aperture: Aperture) -> float:
     if aperture.shape == "square":
         return aperture.width_um ** 2
     return aperture.width_um * aperture.height_um
+
+
+def estimated_sites(aperture: Aperture, lattice: Lattice) -> float:
+    """Sites of ``lattice`` in ``aperture`` from the areas (no sampling; :func:`site_count` counts them exactly)."""
+    return aperture_area_um2(aperture) / cell_area_um2(lattice)
 
 
 def _inside_outer(aperture: Aperture, x, y):

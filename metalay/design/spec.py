@@ -404,9 +404,9 @@ def _parse_mask(m: TomlTable) -> MaskSettings:
 
 
 def _estimated_sites(aperture: Aperture, lattice: Lattice) -> float:
-    from metalay.design.lattice import aperture_area_um2, cell_area_um2
+    from metalay.design.lattice import estimated_sites
 
-    return aperture_area_um2(aperture) / cell_area_um2(lattice)
+    return estimated_sites(aperture, lattice)
 
 
 def _parse_term(r: TomlTable, base_dir: Path, wavelength_nm: float):

@@ -4,7 +4,8 @@
 module         stage                                                                        public entry
 =============  ===========================================================================  =====================
 ``gdsread.py`` GDSII (vectorised record walk, references resolved, hostile input bounded)   ``read_mask``,
-               or OASIS -> ``FlatPolygons``; the database unit becomes ``db_unit_nm`` here   ``mask_info``
+               or OASIS -> ``FlatPolygons``; the database unit becomes ``db_unit_nm`` here   ``mask_info``,
+                                                                                            ``mask_format``
 ``stream_read.py`` the same reading as a stream of polygon chunks (never the whole flat mask),  ``iter_mask_chunks``,
                    and polygon counts without flattening                                    ``count_polygons``
 ``_oasis_stream.py`` OASIS for ``stream_read``: a survey pass (counted, nothing expanded), then
@@ -26,6 +27,7 @@ from metalay.util._lazy import lazy_entries
 _ENTRIES = {
     "read_mask": "gdsread",
     "mask_info": "gdsread",
+    "mask_format": "gdsread",
     "FlatPolygons": "gdsread",
     "file_sha256": "gdsread",
     "iter_mask_chunks": "stream_read",

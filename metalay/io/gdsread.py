@@ -31,6 +31,7 @@ from metalay.util.budget import format_bytes, memory_budget
 __all__ = [
     "FlatPolygons",
     "read_mask",
+    "mask_format",
     "mask_info",
     "file_sha256",
     "DEFAULT_MAX_ELEMENTS",
@@ -922,6 +923,11 @@ def _make_filter(layers):
         return np.isin(lay * 65536 + np.asarray(dt, np.int64), pk) | np.isin(lay, wk)
 
     return keep
+
+
+def mask_format(path) -> str:
+    """``"GDSII"`` or ``"OASIS"`` from a mask file's first bytes (a one-line MaskReadError for anything else)."""
+    return _sniff(os.fspath(path))
 
 
 def _sniff(path: str) -> str:

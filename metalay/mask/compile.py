@@ -37,7 +37,7 @@ import numpy as np
 
 from metalay.cells.cellkinds import is_rotation_invariant, outline_nm
 from metalay.cells.library import CellLibrary, load_library
-from metalay.design.lattice import aperture_area_um2, cell_area_um2, row_range, sample_sites
+from metalay.design.lattice import aperture_area_um2, cell_area_um2, estimated_sites, row_range, sample_sites
 from metalay.design.limits import judge, unmeasured, worst_verdict
 from metalay.design.phase import phase_gradient, target_phase
 from metalay.design.side import Facing, resolve_facing
@@ -1107,7 +1107,7 @@ def _rounded(obj):
 
 
 def _estimate_sites(design: Design) -> float:
-    return aperture_area_um2(design.aperture) / cell_area_um2(design.lattice)
+    return estimated_sites(design.aperture, design.lattice)
 
 
 def _extras(design: Design, library: CellLibrary, lut=None, classes=None):
