@@ -159,12 +159,17 @@ class FarFieldAccumulator:
         if not self.block_um > 0:
             raise MetalayError(f"block_um = {self.block_um!r}; allowed: > 0")
 
-    def _side_after(self, bx: np.ndarray, by: np.ndarray) -> int:
+    def _span(self, bx: np.ndarray, by: np.ndarray) -> tuple[int, int, int, int]:
+        """Block indices ``(lo_x, hi_x, lo_y, hi_y)`` spanning the grid held so far and the blocks ``bx, by``."""
         lo_x, hi_x, lo_y, hi_y = int(bx.min()), int(bx.max()), int(by.min()), int(by.max())
         if self.grids:
             ny, nx = self.grids[0].shape
             lo_x, lo_y = min(lo_x, self.ix0), min(lo_y, self.iy0)
             hi_x, hi_y = max(hi_x, self.ix0 + nx - 1), max(hi_y, self.iy0 + ny - 1)
+        return lo_x, hi_x, lo_y, hi_y
+
+    def _side_after(self, bx: np.ndarray, by: np.ndarray) -> int:
+        lo_x, hi_x, lo_y, hi_y = self._span(bx, by)
         return max(hi_x - lo_x, hi_y - lo_y) + 1
 
     def _coarsen(self, m: int = 3) -> None:
@@ -193,13 +198,10 @@ class FarFieldAccumulator:
         self.block_um = b * m
 
     def _grow(self, bx: np.ndarray, by: np.ndarray) -> None:
-        lo_x, hi_x, lo_y, hi_y = int(bx.min()), int(bx.max()), int(by.min()), int(by.max())
-        if self.grids:
-            ny, nx = self.grids[0].shape
-            lo_x, lo_y = min(lo_x, self.ix0), min(lo_y, self.iy0)
-            hi_x, hi_y = max(hi_x, self.ix0 + nx - 1), max(hi_y, self.iy0 + ny - 1)
-            if (lo_x, lo_y, hi_x - lo_x + 1, hi_y - lo_y + 1) == (self.ix0, self.iy0, nx, ny):
-                return
+        lo_x, hi_x, lo_y, hi_y = self._span(bx, by)
+        if self.grids and (lo_x, lo_y, hi_x - lo_x + 1, hi_y - lo_y + 1) == (self.ix0, self.iy0,
+                                                                           *self.grids[0].shape[::-1]):
+            return
         new = [np.zeros((hi_y - lo_y + 1, hi_x - lo_x + 1), np.complex128) for _ in range(1 + 2 * self.order)]
         for g_new, g_old in zip(new, self.grids):
             ny, nx = g_old.shape
