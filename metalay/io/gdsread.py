@@ -246,6 +246,14 @@ def _int16(raw: np.ndarray) -> np.ndarray:
     return np.ascontiguousarray(raw, dtype=np.uint8).view(">i2").astype(np.int32)
 
 
+def _field(buf: np.ndarray, start: int, k: int, size: int, off: int, dtype, shape: tuple = ()) -> np.ndarray:
+    """A view (k, *shape) of the field at byte ``off`` of each of ``k`` consecutive ``size``-byte elements of
+    ``buf`` from byte ``start`` (no copy; numpy refuses a view that would run past the buffer)."""
+    dt = np.dtype(dtype)
+    inner = tuple(int(dt.itemsize * math.prod(shape[i + 1:])) for i in range(len(shape)))
+    return np.ndarray((k, *shape), dt, buffer=buf, offset=start + off, strides=(size, *inner))
+
+
 def _ascii(raw: bytes) -> str:
     return raw.rstrip(b"\0").decode("ascii", errors="replace")
 
@@ -296,8 +304,7 @@ class _Records:
 
     def run_length(self, pos: int, size: int, recs: list) -> int:
         """How many elements from ``pos`` repeat the template's record headers (found in doubling chunks)."""
-        cols = np.concatenate([np.arange(off, off + 4) for off, _, _ in recs])
-        expect = self.buf[pos + cols]
+        expect = [(off, _field(self.buf, pos, 1, size, off, np.uint32)[0]) for off, _, _ in recs]
         k = 1
         chunk = 16
         while True:
@@ -305,7 +312,9 @@ class _Records:
             if m <= 0:
                 return k
             s0 = pos + k * size
-            ok = (self.buf[s0:s0 + m * size].reshape(m, size)[:, cols] == expect).all(axis=1)
+            ok = np.ones(m, bool)
+            for off, word in expect:  # each record header as one 4-byte word, compared in place
+                ok &= _field(self.buf, s0, m, size, off, np.uint32) == word
             if self.release is not None:
                 self.release(self.mm, s0, s0 + m * size)
             if not ok.all():
@@ -431,9 +440,10 @@ def _decode_boundary(rd: _Records, pos, block, byt, kind, cell: _Cell, layer_fil
         raise _err(rd.path, f"XY record in element at byte {pos} has {xl} data bytes "
                             f"(allowed: a multiple of 8, at least 3 points)")
     n_xy = xl // 8
-    layer = _int16(block[:, lo:lo + 2])[:, 0]
-    datatype = _int16(block[:, do:do + 2])[:, 0]
-    closed = (block[:, xo:xo + 8] == block[:, xo + xl - 8:xo + xl]).all(axis=1)
+    k, size = block.shape
+    layer = _field(rd.buf, pos, k, size, lo, ">i2").astype(np.int32)
+    datatype = _field(rd.buf, pos, k, size, do, ">i2").astype(np.int32)
+    closed = _field(rd.buf, pos, k, size, xo, np.uint64) == _field(rd.buf, pos, k, size, xo + xl - 8, np.uint64)
     keep = layer_filter(layer, datatype)
     if kind == _BOX:
         xy = np.ascontiguousarray(block[:, xo:xo + xl]).view(">i4").astype(np.int64).reshape(-1, n_xy, 2)
@@ -760,10 +770,10 @@ def _cell_geometry(lib: _Library, c: _Cell):
 
 
 def _decode_run(buf, r: _Run, lo: int, hi: int):
-    block = buf[r.pos + lo * r.size:r.pos + hi * r.size].reshape(hi - lo, r.size)
-    raw = np.ascontiguousarray(block[:, r.xy_off:r.xy_off + 8 * r.n_xy]).view(">i4")
-    xy = raw.reshape(hi - lo, r.n_xy, 2)
     keep, closed = r.keep[lo:hi], r.closed[lo:hi]
+    if not keep.any():
+        return (np.zeros(0, np.int32), np.zeros(0, np.int32), np.zeros(0, np.int64), np.zeros((0, 2), np.int64))
+    xy = _field(buf, r.pos + lo * r.size, hi - lo, r.size, r.xy_off, ">i4", (r.n_xy, 2))
     if keep.all() and closed.all():
         out = xy[:, :-1, :].astype(np.int64).reshape(-1, 2)
         cnt = np.full(hi - lo, r.n_xy - 1, np.int64)
@@ -919,8 +929,10 @@ def _make_filter(layers):
     wk = np.array(sorted(whole), np.int64)
 
     def keep(lay, dt):
-        lay = np.asarray(lay, np.int64)
-        return np.isin(lay * 65536 + np.asarray(dt, np.int64), pk) | np.isin(lay, wk)
+        lay, dt = np.asarray(lay, np.int64), np.asarray(dt, np.int64)
+        if lay.size > 1 and (lay == lay[0]).all() and (dt == dt[0]).all():  # a run on one layer: test it once
+            return np.full(lay.shape, bool(keep(lay[:1], dt[:1])[0]))
+        return np.isin(lay * 65536 + dt, pk) | np.isin(lay, wk)
 
     return keep
 
