@@ -14,6 +14,10 @@ Cases per size:
 * ``oas+checks``   OASIS with the checks (read from the OASIS file);
 * ``oas workers``  OASIS on a local Dask cluster of ``--workers`` processes (when given).
 
+Compiles whose checks stream run them side by side (the second check in a child process,
+:mod:`metalay.mask.checkrun`); the note then gives the parent's and the child's peaks added (an upper bound of the
+memory in use at any time), which is the figure to hold against a memory target.
+
 A case the memory admission refuses is reported as refused, with the compile's own one-line reason. Printed: a
 table, the ratios OASIS/GDSII (time, size) per size, and the exponent b of a least-squares fit time = a * sites^b
 per case (linear scaling gives b = 1). The machine is shared: absolute seconds vary by +-30 %, ratios in one run
@@ -81,6 +85,9 @@ def _child(design_path: str, out: str, workers: int) -> dict:
     timings = json.loads((Path(out) / "timings.json").read_text())
     return {"sites": res.manifest["counts"]["sites"], "seconds": seconds, "cpu_s": cpu_s, "peak_mb": self_kb / 1024,
             "worker_peak_mb": child_kb / 1024 if workers else None, "files": files,
+            "checks_run": timings.get("checks_run"),
+            # checks side by side: the child's peak adds to the parent's (an upper bound of their sum at any time)
+            "with_children_mb": (self_kb + child_kb) / 1024 if timings.get("checks_run") == "side by side" else None,
             "write_s": timings.get("layout_and_write_s"), "verdict": res.manifest["verdicts"]["overall"],
             "stages_s": {k: v for k, v in timings.items() if k.endswith("_s") and isinstance(v, (int, float))},
             "check_methods": {k: (v.get("method") or {}).get("method") for k, v in res.manifest["checks"].items()
@@ -146,6 +153,9 @@ def main() -> int:
                 per = (f.get("oas") or f.get("gds") or 0) / r["sites"] if r.get("sites") else 0
                 note = r.get("refused") or r.get("error") or (
                     f"workers peak {r['worker_peak_mb']:.0f} MB" if r.get("worker_peak_mb") else "")
+                if r.get("with_children_mb"):
+                    note += (f"checks side by side: peak with the child {r['with_children_mb']:.0f} MB (sum of "
+                             "peaks); ")
                 if r.get("check_methods"):
                     st = r.get("stages_s", {})
                     note += " ".join(f"{k} {m} {st.get(f'{k}_s', float('nan')):.1f} s"

@@ -746,15 +746,16 @@ def write_streamed_outputs(res: StreamedOptics, path, library, design, out_dir, 
     return f, _write_outputs(Path(out_dir), f, {}, html)
 
 
-def compile_check_streamed(path, library, design) -> dict:
+def compile_check_streamed(path, library, design, *, mask_sha256: str | None = None) -> dict:
     """Hook for ``metalay compile`` on a mask too large for the whole-mask check: the streamed check, written to
     ``<mask folder>/optics`` (``optics.json`` and ``optics_report.html``); a manifest-ready dict shaped like
-    :func:`metalay.checks.optics.compile_check`'s, with ``method``."""
+    :func:`metalay.checks.optics.compile_check`'s, with ``method``. ``mask_sha256``: the mask's digest when the
+    compile computed it while writing (else it is computed beside the check)."""
     import os
     from pathlib import Path
 
     path = Path(path)
-    digest = hash_in_background(path)
+    digest = (lambda: mask_sha256) if mask_sha256 else hash_in_background(path)
     res = check_optics_streamed(path, library, design=design)
     f, written = write_streamed_outputs(res, path, library, design, path.parent / "optics", mask_sha256=digest())
     files = {k: {"path": os.path.relpath(x["path"], path.parent), "sha256": x["sha256"], "bytes": x["bytes"]}

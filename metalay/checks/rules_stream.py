@@ -440,7 +440,7 @@ def _plan(source, rules: RuleSet, max_memory_bytes, bands):
 def check_mask_tiled(mask, rules: RuleSet, *, method: str = "auto", cell: str | None = None,
                      max_elements: int | None = None, max_memory_bytes: int | None = None,
                      max_pairs: int = MAX_PAIRS, bands: int | None = None, chunk_polygons: int = 1 << 18,
-                     spill_dir=None) -> tuple[RuleReport, TilePlan]:
+                     spill_dir=None, known_sha256: str | None = None) -> tuple[RuleReport, TilePlan]:
     """Check a mask band by band with bounded memory; the report equals :func:`metalay.checks.rules.check_mask`'s.
 
     Parameters
@@ -462,6 +462,9 @@ def check_mask_tiled(mask, rules: RuleSet, *, method: str = "auto", cell: str | 
         Polygons per chunk of the streamed read.
     spill_dir : path, optional
         Folder for the temporary band files (default the system's temporary folder); removed afterwards.
+    known_sha256 : str, optional
+        The file's SHA-256 when the caller computed it while writing the file (the report carries it instead of
+        hashing the file again).
 
     Returns
     -------
@@ -491,10 +494,10 @@ def check_mask_tiled(mask, rules: RuleSet, *, method: str = "auto", cell: str | 
     # the file hash runs beside the survey (hashlib releases the GIL)
     with ThreadPoolExecutor(max_workers=1) as pool, \
             tempfile.TemporaryDirectory(prefix="metalay-bands-", dir=spill_dir) as folder:
-        fut = pool.submit(file_sha256, name) if name != "<memory>" else None
+        fut = pool.submit(file_sha256, name) if name != "<memory>" and known_sha256 is None else None
         plan, context_keys, db, uu, sweep = _plan(source, rules, max_memory_bytes, bands)  # bad file: one line
         try:
-            sha = fut.result() if fut is not None else None
+            sha = fut.result() if fut is not None else known_sha256
         except OSError as exc:
             raise MaskReadError(f"{name}: cannot read file for its checksum ({exc.strerror or exc})") from exc
         timings["survey"] = time.perf_counter() - t0

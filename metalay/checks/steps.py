@@ -68,9 +68,11 @@ def whole_mask_fits(path, layers, bytes_per_site: float, max_memory_bytes: int |
     return count_polygons(path, layers=layers)[0] * bytes_per_site <= budget
 
 
-def _rules_report(path, rules, max_memory_bytes: int | None, streamed: bool = False, sites: float = 0.0):
+def _rules_report(path, rules, max_memory_bytes: int | None, streamed: bool = False, sites: float = 0.0,
+                  sha256: str | None = None):
     """The rule report and the method used: whole-mask when it fits the budget (and the compile did not ask to
-    stream), else band by band (``sites``: the design's estimate, for the memory the bands may use)."""
+    stream), else band by band (``sites``: the design's estimate, for the memory the bands may use; ``sha256``:
+    the file's digest when the compile computed it while writing)."""
     if not streamed and whole_mask_fits(path, rules.layer_pairs(), RULES_BYTES_PER_SITE, max_memory_bytes):
         return check_mask(path, rules, max_memory_bytes=max_memory_bytes), {"method": "whole-mask"}
     # streamed: the memory the admission counted, not all the memory there is. The tiled check gives half its budget
@@ -79,7 +81,8 @@ def _rules_report(path, rules, max_memory_bytes: int | None, streamed: bool = Fa
     # OASIS check peaked at 2.7 GB with 14 bands sized from all the memory there was)
     reader = STREAMED_BYTES_PER_SITE * sites if mask_format(path) == "GDSII" else 0.0
     band_bytes = min(memory_budget(max_memory_bytes), int(2 * (reader + STREAMED_FIXED_BYTES)))
-    report, plan = check_mask_tiled(path, rules, max_memory_bytes=band_bytes, spill_dir=Path(path).parent)
+    report, plan = check_mask_tiled(path, rules, max_memory_bytes=band_bytes, spill_dir=Path(path).parent,
+                                    known_sha256=sha256)
     return report, plan.as_dict(report.db_unit_nm)
 
 
@@ -171,7 +174,7 @@ def run_rules_on_written(written: WrittenMask) -> dict:
     design = written.design
     sites = estimated_sites(design.aperture, design.lattice)
     if written.structures_path is None:
-        report, method = _rules_report(path, ruleset(), budget, written.streamed, sites)
+        report, method = _rules_report(path, ruleset(), budget, written.streamed, sites, written.sha256)
     else:
         report, method = _rules_report(written.structures_path, ruleset(inside_frame=None), budget, written.streamed,
                                        sites)
@@ -180,7 +183,7 @@ def run_rules_on_written(written: WrittenMask) -> dict:
         complement_dt = dict(mask.dose_datatypes).get("complement")
         pieces, _ = _rules_report(path, replace(piece_rules, layers=tuple(
             replace(lr, datatype=int(lr.datatype if complement_dt is None else complement_dt))
-            for lr in piece_rules.layers)), budget, written.streamed, sites)
+            for lr in piece_rules.layers)), budget, written.streamed, sites, written.sha256)
         out["complement_pieces"] = {"status": "clean" if pieces.clean else "violations",
                                     "violations": pieces.total_violations, "summary": pieces.summary_lines()}
         out["note"] = ("tone 'complement': feature, gap and aspect rules checked on the structures (the holes); "
@@ -217,7 +220,7 @@ def run_optics_on_written(written: WrittenMask) -> dict:
         return d
     from metalay.checks.optics_stream import compile_check_streamed
 
-    return compile_check_streamed(written.path, written.library, written.design)
+    return compile_check_streamed(written.path, written.library, written.design, mask_sha256=written.sha256)
 
 
 # ----------------------------------------------------------------------------------------------------------------

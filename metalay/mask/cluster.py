@@ -17,6 +17,8 @@ files are byte-identical to a single-process compile; the whole output folder is
 * At most :data:`TASKS_IN_FLIGHT_PER_WORKER` tasks per worker are submitted ahead of the merge, which bounds the
   client's memory and the disk the parts take (a few tiles).
 * An existing cluster's workers must see the staging folder (a shared file system) and run the same metalay.
+* The compile's checks, when they stream (bounded memory per worker), run there too: one task per check
+  (:meth:`ClusterRunner.run_checks`), retried like the tiles; their results equal those of a single process.
 
 References
 ----------
@@ -36,7 +38,8 @@ from pathlib import Path
 from metalay.errors import DesignError
 from metalay.mask._emit import Part
 
-__all__ = ["tile_runner", "TASK_RETRIES", "TASKS_IN_FLIGHT_PER_WORKER", "CONNECT_TIMEOUT_S", "MAX_WORKERS"]
+__all__ = ["tile_runner", "ClusterRunner", "TASK_RETRIES", "TASKS_IN_FLIGHT_PER_WORKER", "CONNECT_TIMEOUT_S",
+           "MAX_WORKERS"]
 
 #: Times the scheduler re-runs a failed tile task before the compile fails.
 TASK_RETRIES = 2
@@ -144,15 +147,16 @@ def tile_runner(stage: str | Path, *, workers: int | None = None, scheduler: str
 
     Yields
     ------
-    callable
-        ``run(tiles, ctx, fn, bar)`` yielding ``fn(tile, ctx)`` for every tile, in tile order, with the parts
-        read back from the part files; ``bar`` (a progress bar) advances as tasks finish.
+    ClusterRunner
+        Called as ``run(tiles, ctx, fn, bar)``: yields ``fn(tile, ctx)`` for every tile, in tile order, with the
+        parts read back from the part files; ``bar`` (a progress bar) advances as tasks finish. Its
+        :meth:`~ClusterRunner.run_checks` runs the compile's streamed checks as tasks.
     """
     client, cluster = _client(workers, scheduler, where)
     parts_dir = Path(stage) / _PARTS
     try:
         parts_dir.mkdir(exist_ok=True)
-        yield lambda tiles, ctx, fn, bar: _run(client, parts_dir, tiles, ctx, fn, bar)
+        yield ClusterRunner(client, parts_dir)
     finally:
         shutil.rmtree(parts_dir, ignore_errors=True)
         with contextlib.suppress(Exception):
@@ -160,6 +164,33 @@ def tile_runner(stage: str | Path, *, workers: int | None = None, scheduler: str
         if cluster is not None:
             with contextlib.suppress(Exception):
                 cluster.close()
+
+
+@dataclass(frozen=True)
+class ClusterRunner:
+    """The compile's work on one connected cluster: the tiles (called like the in-process runner) and the checks."""
+
+    client: object
+    parts_dir: Path
+
+    def __call__(self, tiles, ctx, fn, bar):
+        return _run(self.client, self.parts_dir, tiles, ctx, fn, bar)
+
+    def run_checks(self, jobs) -> list:
+        """(result, seconds) of each :class:`metalay.mask.checkrun.CheckJob`, each one task (retried like a tile;
+        a check that still fails raises its own error here), in the order given. The workers read the written
+        mask from the staging folder (a shared file system for an existing cluster)."""
+        from metalay.mask.checkrun import timed_run
+
+        run_id = uuid.uuid4().hex[:12]
+        futures = [self.client.submit(timed_run, j.run, j.written, key=f"metalay-check-{run_id}-{j.name}",
+                                      retries=TASK_RETRIES, pure=False) for j in jobs]
+        try:
+            return [f.result() for f in futures]
+        finally:
+            for f in futures:
+                with contextlib.suppress(Exception):
+                    f.cancel()
 
 
 def _run(client, parts_dir: Path, tiles, ctx, fn, bar):

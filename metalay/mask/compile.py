@@ -44,6 +44,7 @@ from metalay.design.side import Facing, resolve_facing
 from metalay.design.spec import Design
 from metalay.errors import DesignError, MetalayError, OutputError
 from metalay.mask._emit import EmitPlan, MaskSink, SlotElements, emit_complement, emit_elements
+from metalay.mask.checkrun import CheckJob, concurrent_bytes, run_jobs, side_by_side
 from metalay.mask.layout import (
     element_offsets,
     frame_polygons,
@@ -290,7 +291,9 @@ def _compile_into(design: Design, out: Path, *, checks: Sequence[MaskCheck], sho
     timings["layout_and_write_s"] = time.perf_counter() - t0
     files = {fmt: plan.paths[fmt] for fmt in ("gds", "oas") if fmt in design.mask.formats}
     pause_point("written")
-    results, sections = _run_checks(plan, enabled, files, timings, max_memory_bytes)
+    t0 = time.perf_counter()
+    results, sections = _run_checks(plan, enabled, files, timings, max_memory_bytes, runner, known_hashes)
+    timings["checks_s"] = time.perf_counter() - t0
     pause_point("checked")
     manifest = _manifest(plan, gathered, files, results, known_hashes)
     if annotations:
@@ -332,6 +335,7 @@ class _Plan:
     per_field: bool          # one GDSII/OASIS cell per write field
     facing: Facing = Facing()  # the side the light arrives from (mapping frame)
     streamed_checks: frozenset = frozenset()  # checks the admission counted with their streamed method
+    checks_side_by_side: bool = False  # the streamed checks run at the same time (metalay.mask.checkrun)
 
     @property
     def complement(self) -> bool:
@@ -427,9 +431,14 @@ def _plan(design: Design, out: Path, *, sites_per_tile: int, structures_for_chec
     per_field = mask.write_field is not None and mask.write_field.cell_per_field
     mode = "complement" if complement else "fields" if per_field else mask.hierarchy
     need_groups = "oas" in mask.formats or mode != "flat"
+    sites = _estimate_sites(design)
     check_bytes_per_site, streamed = check_admission_bytes_per_site(
-        admitted_checks, design, _estimate_sites(design), max_memory_bytes=max_memory_bytes,
+        admitted_checks, design, sites, max_memory_bytes=max_memory_bytes,
         mapped_bytes_per_site=_gds_bytes_per_site(design, outlines, mode) if want_gds else 0.0)
+    together = side_by_side(admitted_checks, streamed, sites, memory_budget(
+        max_memory_bytes, fraction=COMPILE_BUDGET_FRACTION) - COMPILE_FIXED_BYTES)
+    if together:  # counted at once, not one after another
+        check_bytes_per_site = max(check_bytes_per_site, concurrent_bytes(admitted_checks, sites) / max(sites, 1.0))
     _check_resources(design, out, outlines, gds_mode=mode if want_gds else None,
                      check_bytes_per_site=check_bytes_per_site, max_memory_bytes=max_memory_bytes)
     emit = EmitPlan(design.name, mode, gds=want_gds, oas="oas" in mask.formats,
@@ -449,7 +458,7 @@ def _plan(design: Design, out: Path, *, sites_per_tile: int, structures_for_chec
     if complement:
         ctx, tiles = _complement_plan(design, ctx, outlines, grid, encode_structures=structures_for_checks)
     return _Plan(design, library, out, cell_ids, outlines, classes, lut, grid, tiles, ctx, need_groups, per_field,
-                 facing, streamed)
+                 facing, streamed, together)
 
 
 def _complement_plan(design: Design, ctx: "_TileContext", outlines, grid, *, encode_structures: bool):
@@ -556,20 +565,25 @@ def _write_tiles(plan: _Plan, *, show_progress: bool | None, runner=None) -> tup
 # ----------------------------------------------------------------------------------------------------------------
 
 def _run_checks(plan: _Plan, checks: Sequence[MaskCheck], files: dict, timings: dict,
-                max_memory_bytes: int | None = None) -> tuple[dict, dict]:
-    """Stage 4: run each enabled check on the primary mask file; results keyed by check name, and the report
-    sections the checks handed back (``report_sections``: kept out of the manifest) keyed the same way."""
+                max_memory_bytes: int | None = None, runner=None, known_hashes=None) -> tuple[dict, dict]:
+    """Stage 4: run each enabled check on the primary mask file (one after another, side by side, or on the
+    compile's cluster: :mod:`metalay.mask.checkrun`); results keyed by check name, and the report sections the
+    checks handed back (``report_sections``: kept out of the manifest) keyed the same way."""
     primary = files.get("gds") or files.get("oas")
     written = WrittenMask(primary, plan.library, plan.design,
                           structures_path=plan.holes_path if plan.ctx.encode_structures else None,
-                          max_memory_bytes=max_memory_bytes)
+                          max_memory_bytes=max_memory_bytes, sha256=(known_hashes or {}).get(primary.name))
+    jobs = [CheckJob(check.name, check.run, replace(
+        written, streamed=check.name in plan.streamed_checks,
+        structures_path=written.structures_path if check.needs_structures else None)) for check in checks]
+    on_cluster = runner is not None and bool(jobs) and all(j.written.streamed for j in jobs)  # bounded memory only
+    outcomes = run_jobs(jobs, parallel=plan.checks_side_by_side, cluster=runner if on_cluster else None)
     results, sections = {}, {}
-    for check in checks:
-        t0 = time.perf_counter()
-        results[check.name] = check.run(replace(
-            written, streamed=check.name in plan.streamed_checks,
-            structures_path=written.structures_path if check.needs_structures else None))
-        timings[f"{check.name}_s"] = time.perf_counter() - t0
+    for job, (result, seconds) in zip(jobs, outcomes):
+        results[job.name] = result
+        timings[f"{job.name}_s"] = seconds
+    if len(jobs) > 1:
+        timings["checks_run"] = "cluster" if on_cluster else "side by side" if plan.checks_side_by_side else "in turn"
     plan.holes_path.unlink(missing_ok=True)
     for key, res in results.items():  # timings are not deterministic: they go to timings.json
         if isinstance(res, dict) and "timings_s" in res:

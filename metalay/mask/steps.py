@@ -39,6 +39,9 @@ class WrittenMask:
     streamed : bool
         The compile's memory admission counted this check with its streamed method (the whole-mask method would not
         fit beside the compile): the step must stream. False: the step chooses by the budget itself.
+    sha256 : str or None
+        SHA-256 of ``path`` as the compile computed it while writing the file (a step reporting the digest of the
+        file it checked need not read it once more for that); None when not known.
     """
 
     path: Path
@@ -47,6 +50,7 @@ class WrittenMask:
     structures_path: Path | None = None
     max_memory_bytes: int | None = None
     streamed: bool = False
+    sha256: str | None = None
 
 
 def _always(design: Design) -> bool:
