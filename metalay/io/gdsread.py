@@ -246,6 +246,14 @@ def _int16(raw: np.ndarray) -> np.ndarray:
     return np.ascontiguousarray(raw, dtype=np.uint8).view(">i2").astype(np.int32)
 
 
+def _uniform(a: np.ndarray) -> np.ndarray:
+    """``a`` itself, or a read-only view of its one value when every entry is the same (a run on one layer, every
+    polygon closed: the per-element table of a long run then costs nothing)."""
+    if a.size > 1 and bool((a == a[0]).all()):
+        return np.broadcast_to(a[:1].copy()[0], a.shape)
+    return a
+
+
 def _field(buf: np.ndarray, start: int, k: int, size: int, off: int, dtype, shape: tuple = ()) -> np.ndarray:
     """A view (k, *shape) of the field at byte ``off`` of each of ``k`` consecutive ``size``-byte elements of
     ``buf`` from byte ``start`` (no copy; numpy refuses a view that would run past the buffer)."""
@@ -453,7 +461,10 @@ def _decode_boundary(rd: _Records, pos, block, byt, kind, cell: _Cell, layer_fil
         counts = vmask.sum(axis=1)[keep]
         cell.explicit.append(_Explicit(layer[keep], datatype[keep], counts, xy[vmask]))
         return
-    cell.runs.append(_Run(pos, block.shape[1], block.shape[0], xo, n_xy, layer, datatype, closed, keep))
+    if not keep.any():  # nothing wanted from this run (another layer): no per-element table is kept for it
+        return
+    cell.runs.append(_Run(pos, block.shape[1], block.shape[0], xo, n_xy, _uniform(layer), _uniform(datatype),
+                          _uniform(closed), _uniform(keep)))
 
 
 def _decode_path(rd: _Records, pos, block, byt, cell: _Cell, layer_filter) -> None:
