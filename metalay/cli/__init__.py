@@ -136,10 +136,11 @@ def _build_parser(modules) -> argparse.ArgumentParser:
                             "checks.fail_at, which defaults to fail; never: always exit 0 after writing)")
         add_max_memory(p)
         p.add_argument("--workers", type=int, default=None, metavar="N",
-                       help="run the tiles on a local Dask cluster of N worker processes (same output bytes)")
+                       help="run the tiles (and checks that stream) on a local Dask cluster of N worker processes "
+                            "(same output bytes)")
         p.add_argument("--scheduler", default=None, metavar="ADDRESS",
-                       help="run the tiles on an existing Dask cluster (e.g. tcp://host:8786); its workers must "
-                            "see the output folder")
+                       help="run the tiles (and checks that stream) on an existing Dask cluster (e.g. "
+                            "tcp://host:8786); its workers must see the output folder")
 
     p = sub.add_parser("compile", help="compile a design file (TOML) into mask files and a manifest")
     p.add_argument("design", help="design file (.toml)")

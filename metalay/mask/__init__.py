@@ -17,7 +17,10 @@ module           stage                                                          
                  come, checks handed in, manifest)
 ``_emit.py``     one tile -> encoded GDSII/OASIS parts (flat, levels, fields, tone);      (internal)
                  the sink that writes them in tile order
-``cluster.py``   the tiles as tasks on a Dask cluster, parts merged in order              ``tile_runner``
+``cluster.py``   the tiles (and streamed checks) as tasks on a Dask cluster, parts        ``tile_runner``
+                 merged in order
+``checkrun.py``  the checks one after another, side by side (child processes) or on the   ``run_jobs``,
+                 cluster                                                                  ``side_by_side``
 ===============  =======================================================================  ========================
 
 Imports: design, cells, io, util. Never the checks: :func:`compile_mask` receives them as ``MaskCheck`` steps
