@@ -7,6 +7,7 @@ tested against outside references elsewhere: tests/test_rules*.py, tests/test_op
 """
 
 import copy
+import dataclasses
 import hashlib
 import json
 import os
@@ -87,6 +88,8 @@ def test_side_by_side_needs_room_for_all_checks_at_once():
     assert side_by_side((rules, optics), both, n, need - 1) is False
     assert side_by_side((rules, optics), frozenset({"rules"}), n, 1e15) is False  # one whole-mask check: in turn
     assert side_by_side((rules,), frozenset({"rules"}), n, 1e15) is False
+    # a step a fresh interpreter cannot import (a lambda, a closure) runs in the compile's own process
+    assert side_by_side((rules, dataclasses.replace(optics, run=lambda written: {})), both, n, 1e15) is False
 
 
 def _passes(written):

@@ -67,9 +67,13 @@ def concurrent_bytes(checks: Sequence[MaskCheck], sites: float) -> float:
 
 
 def _picklable(fn) -> bool:
+    """Whether a fresh interpreter can import ``fn`` (a module-level function of an importable module); a closure,
+    a lambda or a function of a notebook or script (``__main__``) handed in by a caller runs in this process."""
+    if getattr(fn, "__module__", "__main__") == "__main__":
+        return False
     try:
         pickle.dumps(fn)
-    except Exception:  # a closure or lambda handed in by a caller: it runs in this process
+    except Exception:
         return False
     return True
 
