@@ -391,24 +391,44 @@ def parse_run(p, cur, at: int, t) -> tuple:
     if n == 0:
         return 0, at
     keep = _keep(p, cur, at, lay[:n], dt[:n])
-    partial = p.mode in ("placements", "geometry")  # checked by the survey: decode only what is used
-    need = keep.copy() if p.mode != "placements" else np.zeros(n, bool)
-    need[n - 1] = True
+    need = keep.copy() if p.mode in ("whole", "geometry") else np.zeros(n, bool)
+    need[n - 1] = True  # the last point list becomes the modal one
+    last_rep = np.flatnonzero(f["rt"][:n] > 0)
+    if last_rep.shape[0] and f["rk0"][last_rep[-1]] >= 0:
+        need[last_rep[-1]] = True  # so does the last repetition
+    # Checked by the survey, or no partial sum can reach the limit (the sum of the integers bounds every delta):
+    # decode only what is used; else decode all and check.
+    partial = p.mode in ("placements", "geometry") or _bounded(t, f, n)
     rec = np.flatnonzero(need) if partial else np.arange(n)
     pl, pl_first, bad_pl = _decode(t, f, rec, True)
     rrec = rec[f["rk0"][rec] >= 0]
-    last_rep = np.flatnonzero(f["rt"][:n] > 0)
-    if partial and last_rep.shape[0] and not need[last_rep[-1]] and f["rk0"][last_rep[-1]] >= 0:
-        rrec = np.sort(np.append(rrec, last_rep[-1]))
     off, off_first, bad_rep = _decode(t, f, rrec, False)
     bad = np.zeros(n, bool)
     bad[rec] |= bad_pl
     bad[rrec] |= bad_rep
     taken = min(n, int(np.argmax(bad)) if bad.any() else n, _admitted(p, f, keep, n))
-    if taken == 0 or (partial and taken < n):
+    if taken == 0 or (taken < n and not _modal_decoded(f, taken, rec, rrec)):
         return 0, at
     _commit(p, f, taken, lay, dt, x, y, keep, (rec, pl, pl_first), (rrec, off, off_first))
     return taken, t.end(int(f["end"][taken - 1]))
+
+
+def _bounded(t, f: dict, n: int) -> bool:
+    """Whether no point list or explicit repetition of the first ``n`` records can reach the coordinate limit: each
+    delta is at most its integers' value (times the grid), so the sum of all the integers of the records bounds
+    every partial sum (double-delta point lists excepted)."""
+    if (f["pt"][:n] == 5).any():
+        return False
+    total = float(t.V[int(f["c"][0]):int(f["end"][n - 1])].sum(dtype=np.float64))
+    return total * max(1, int(f["rgrid"][:n].max())) <= _SAFE
+
+
+def _modal_decoded(f: dict, taken: int, rec: np.ndarray, rrec: np.ndarray) -> bool:
+    """Whether the point list and the explicit repetition that stay modal after ``taken`` records were decoded."""
+    if not np.isin(taken - 1, rec):
+        return False
+    last_rep = np.flatnonzero(f["rt"][:taken] > 0)
+    return not (last_rep.shape[0] and f["rk0"][last_rep[-1]] >= 0 and not np.isin(last_rep[-1], rrec))
 
 
 def _modal_fill(v: np.ndarray, incoming, n: int) -> tuple:
@@ -542,27 +562,24 @@ def _polygons(b: Batch, recs: np.ndarray, lo: np.ndarray, count: np.ndarray) -> 
     """Polygons ``lo[k] .. lo[k] + count[k]`` of the records ``recs``: vertex v of polygon (r, i) is
     ``pts[r][v] + xy[r] + offset_i(r)``."""
     rec = np.repeat(recs, count)
-    i = np.repeat(lo, count) + np.arange(rec.shape[0]) - np.repeat(np.cumsum(count) - count, count)
-    shift = b.xy[rec].copy()
-    nx = b.nx[rec]
-    lat = nx > 0
-    if lat.any():
-        q, nxl = i[lat], nx[lat]
-        ii, jj = q % nxl, q // nxl
-        ab = b.lat[rec[lat]]
-        shift[lat, 0] += jj * ab[:, 2] + ii * ab[:, 0]
-        shift[lat, 1] += jj * ab[:, 3] + ii * ab[:, 1]
+    i = np.arange(rec.shape[0]) - np.repeat(np.cumsum(count) - count - lo, count)
+    shift = b.xy[rec]
+    if (b.nx[recs] > 0).any():  # lattice offsets (zero steps for the other records)
+        jj, ii = np.divmod(i, np.maximum(b.nx, 1)[rec])
+        ab = b.lat[rec]
+        shift += jj[:, None] * ab[:, 2:] + ii[:, None] * ab[:, :2]
     ex = b.off_start[rec] >= 0
     if ex.any():
         shift[ex] += b.off[b.off_start[rec[ex]] + i[ex]]
     rows = b.rows[rec]
-    first = np.cumsum(b.rows) - b.rows
-    if (rows == rows[0]).all():  # one vertex count (the common case): broadcast over vertices
-        k = int(rows[0])
-        pv = b.pts[(first[rec][:, None] + np.arange(k)[None, :])]
-        out = (pv + shift[:, None, :]).reshape(-1, 2)
+    k = int(b.rows[0])
+    if (b.rows == k).all():  # one vertex count (the common case): gather per polygon, broadcast over vertices
+        out = b.pts.reshape(-1, k, 2)[rec]
+        out += shift[:, None, :]
+        out = out.reshape(-1, 2)
     else:
+        first = np.cumsum(b.rows) - b.rows
         poly = np.repeat(np.arange(rec.shape[0]), rows)
         v = np.arange(poly.shape[0]) - np.repeat(np.cumsum(rows) - rows, rows)
         out = b.pts[first[rec][poly] + v] + shift[poly]
-    return (b.layer[rec].astype(np.int32), b.datatype[rec].astype(np.int32), rows.astype(_I64), out)
+    return b.layer[rec].astype(np.int32), b.datatype[rec].astype(np.int32), rows, out
