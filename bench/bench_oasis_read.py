@@ -25,10 +25,6 @@ import time
 from pathlib import Path
 
 ROOT = Path(__file__).resolve().parent.parent
-sys.path.insert(0, str(ROOT / "bench"))
-
-from bench_oasis_stream import _design  # noqa: E402  (the same invented design)
-
 LAYERS = {"frame/label/marks": [(2, 0), (3, 0), (4, 0)], "structures": [(1, 0)]}
 
 
@@ -59,7 +55,11 @@ def run_child(path: Path, which: str, code_root: Path) -> dict:
 
 
 def compile_both(folder: Path, sites: float) -> tuple[Path, Path]:
-    sys.path.insert(0, str(ROOT / "tests"))
+    """The design of ``bench_oasis_stream.py`` written to both formats (imported here: the children must import
+    the package from their own ``PYTHONPATH``, not from this checkout)."""
+    sys.path[:0] = [str(ROOT / "bench"), str(ROOT / "tests")]
+    from bench_oasis_stream import _design
+
     from conftest import write_toml
 
     design = _design(sites, "flat")
@@ -103,9 +103,9 @@ def main() -> None:
                 if "error" in r:
                     print(f"  {which:<18} {name:<13} FAILED ({r['error'][:90]})")
                     continue
-                same = "same polygons as GDSII" if r["digest"] == g.get("digest") else "DIGEST DIFFERS from GDSII"
+                same = "same as GDSII" if r["digest"] == g.get("digest") else "differs from GDSII"
                 print(f"  {which:<18} {name:<13} {r['s']:7.2f} s  {r['s'] / g['s']:6.2f}x GDSII  {r['polygons']:>9} "
-                      f"polygons  {same}")
+                      f"polygons, digest {r['digest']} ({same})")
         print(f"load now {os.getloadavg()[0]:.1f}")
 
 
