@@ -665,12 +665,10 @@ class VarintTable:
         self.GH = np.flatnonzero(heads)
         nxt = np.where(even, idx, n)
         self.NE = np.concatenate([np.minimum.accumulate(nxt[::-1])[::-1], [n]])
-        self.cum = np.cumsum(term, dtype=np.int64)
 
     def index(self, pos: int) -> int:
         """Segment number of the integer that starts at buffer position ``pos`` (an integer boundary)."""
-        q = pos - self.lo
-        return int(self.cum[q - 1]) if q > 0 else 0
+        return int(np.searchsorted(self.T, pos - self.lo))  # integers that end before ``pos``
 
     def end(self, k: int) -> int:
         """Buffer position just after segment ``k - 1``."""

@@ -38,6 +38,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from metalay.errors import MaskReadError
+from metalay.io import _oasis_batch as ob
 from metalay.io import _oasis_codec as oc
 from metalay.util.budget import memory_budget
 
@@ -389,6 +390,8 @@ class _Parser:
         self.big_runs = []
         self.run_bytes = 0
         self.unit = None
+        self.fast_skip = 0  # POLYGON records left to the record-by-record parser before the fast path is tried again
+        self.big_run, self.poly_bytes, self.vertex_bytes = _BIG_RUN, _POLY_BYTES, _VERTEX_BYTES
         self.tables = None
         self.validation = "none"
         self.handlers = {
@@ -853,7 +856,28 @@ class _Parser:
         rep = self.repetition(cur, at, info, 0x04, rid)
         self.add(cur, at, rid, _rect(w, h), x, y, rep)
 
+    def fast_polygons(self, cur, at) -> bool:
+        """Parse a run of plain POLYGON records from ``at`` at once (:mod:`metalay.io._oasis_batch`); False when
+        the record at ``at`` is not one (it is then parsed record by record, as are a few after it)."""
+        if self.cell is None:
+            return False
+        reg = self.region
+        if reg is None or not reg.covers(cur, at, 64) or (at != reg.table.lo and cur.arr[at - 1] >= 128):
+            self.resolve()  # no table here, or ``at`` is not after a whole integer of it
+            self.region = _Region(cur, at, 0)
+        n, end = ob.parse_run(self, cur, at, self.region.table)
+        if n < 4:
+            self.fast_skip = 16 if n else 64  # short or no run here: back off (a file of other records)
+        if n == 0:
+            return False
+        cur.pos = end
+        return True
+
     def polygon(self, cur, at, rid):
+        if self.fast_skip > 0:
+            self.fast_skip -= 1
+        elif self.fast_polygons(cur, at):
+            return
         self.in_cell(cur, at, rid)
         m = self.m
         info = cur.byte()
@@ -1201,6 +1225,13 @@ def _iter_expand(entries):
     expanded a slice of positions at a time, never all at once)."""
     batch, size = [], 0
     for e in entries + [None]:  # records, not sites
+        if e is not None and isinstance(e[1], ob.Batch):  # a run parsed at once: expanded on its own
+            if batch:
+                yield batch[0][0], _expand_batch(batch)
+                batch, size = [], 0
+            for piece in ob.expand(e[1], _EXPAND_CHUNK):
+                yield e[0], piece
+            continue
         if e is not None:
             pts = e[3].value if isinstance(e[3], _Pending) else e[3]
             rep = e[6].value if isinstance(e[6], _Pending) else e[6]
