@@ -734,9 +734,9 @@ def hash_in_background(path):
 
 def write_streamed_outputs(res: StreamedOptics, path, library, design, out_dir, *,
                            mask_sha256: str | None = None) -> tuple[dict, dict]:
-    """Write ``optics.json`` (figures, inputs, the caution) and ``optics_report.html`` to ``out_dir``
-    (atomically); return the figures as written and the files (name -> path, sha256, bytes). ``mask_sha256``:
-    the mask's digest when already known (:func:`hash_in_background`)."""
+    """Write ``optics.json`` (figures, inputs, the caution), ``interferogram.png`` (axis charge) and
+    ``optics_report.html`` to ``out_dir`` (atomically); return the figures as written and the files (name -> path,
+    sha256, bytes). ``mask_sha256``: the mask's digest when already known (:func:`hash_in_background`)."""
     from pathlib import Path
 
     from metalay.checks.optics import _sha256, _write_outputs
@@ -750,10 +750,25 @@ def write_streamed_outputs(res: StreamedOptics, path, library, design, out_dir, 
     f["inputs"] = json_ready(inputs)
     f["caution"] = SAFETY_NOTE
     v = f["verdicts"]
+    images = _images(res, f)
     html = render_html(title=f"Optical check (streamed) of {path.name}: verdict {v['verdict'].upper()}",
                        caution=SAFETY_NOTE, inputs=inputs, figures={k: x for k, x in f.items() if k != "inputs"},
-                       images={}, notes=[f"verdict {v['verdict'].upper()}: {v['summary']}", *res.notes])
-    return f, _write_outputs(Path(out_dir), f, {}, html)
+                       images=images, notes=[f"verdict {v['verdict'].upper()}: {v['summary']}", *res.notes])
+    return f, _write_outputs(Path(out_dir), f, images, html)
+
+
+def _images(res: StreamedOptics, figures: dict) -> dict:
+    """The report's PNG figures, name -> (caption, PNG bytes): the fork interferogram (designs with an axis
+    charge), as the whole-mask check draws it."""
+    if res.fringe_image is None:
+        return {}
+    from metalay.checks import plots
+
+    fr = figures["fringe_reading"]
+    read = fr["charge"] if fr["status"] == "read" else f"unreadable ({fr.get('reason', '')})"
+    return {"7_interferogram": (f"converted beam (means over blocks of {fr['block_cells'][0]} x "
+                                f"{fr['block_cells'][1]} cells) with a tilted plane reference; charge read: {read}",
+                                plots.interferogram_map(*res.fringe_image))}
 
 
 def compile_check_streamed(path, library, design) -> dict:
@@ -777,6 +792,9 @@ def compile_check_streamed(path, library, design) -> dict:
                      f"(+- {f['designed_spot_efficiency_bound']:.2g} block bound)")
     if "oam" in f:
         parts.append(f"OAM purity {f['oam']['purity']:.3f} (+- {f['oam']['purity_bound']:.2g})")
+    if "fringe_reading" in f:
+        fr = f["fringe_reading"]
+        parts.append(f"fringe charge {fr['charge'] if fr['status'] == 'read' else 'unreadable'}")
     if f.get("crosstalk", {}).get("worst_isolation_db") is not None and len(f["crosstalk"]["charges"]) > 1:
         parts.append(f"worst isolation {f['crosstalk']['worst_isolation_db']:.1f} dB")
     if f.get("lens", {}).get("strehl") is not None:
