@@ -577,3 +577,19 @@ def test_compile_that_streams_its_optics_shows_the_fringe_reading(tmp_path, monk
     html = next(folder.rglob("optics_report.html")).read_text()
     assert "charge read: 3" in html and "data:image/png;base64," in html
     assert "charge read from a simulated fork interferogram" in (folder / "report.html").read_text()
+
+
+def test_streamed_fringe_sites_beyond_the_design_aperture_are_counted_and_said(tmp_path):
+    # Common practice (no source): the fringe grid covers the design's aperture; a mask reaching beyond it has its
+    # outer sites counted and named in the notes (never silently dropped); the reading inside still holds.
+    lib = make_library()
+    path, _ = _vortex_mask(tmp_path, 3, diameter_um=40.0)
+    design = _design([{"kind": "vortex", "charge": 3}], 30.0)
+    res = check_optics_streamed(path, lib, design=design, chunk_polygons=900)
+    fr = res.figures["fringe_reading"]
+    x, y, _ = _sites(path, lib)
+    half = 15.0 + 2 * P_NM * 1e-3  # the grid reaches two cells beyond the aperture's half width
+    beyond = int(np.count_nonzero((np.abs(x) > half + fr["block_um"][0]) | (np.abs(y) > half + fr["block_um"][1])))
+    assert fr["sites_outside_grid"] >= beyond > 0
+    assert any(f"{fr['sites_outside_grid']:,} sites beyond" in n for n in res.notes)
+    assert fr["status"] == "read" and fr["charge"] == 3

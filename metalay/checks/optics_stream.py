@@ -70,7 +70,8 @@ __all__ = ["BlockFarField", "FarFieldAccumulator", "StreamedOptics", "check_opti
 
 OPTICS_STREAM_BYTES_PER_SITE = 12
 """Bytes per polygon the streamed optical check still holds for a flat GDSII (the file walk's per-element table);
-the rest is two or three chunks (one read ahead) and the coarse grids (spots, OAM rings x sectors, focal plane)."""
+the rest is two or three chunks (one read ahead) and the coarse grids (spots, OAM rings x sectors, fringe blocks,
+focal plane)."""
 _FP_ALLOWANCE = 1e-12
 
 
@@ -669,7 +670,9 @@ def check_optics_streamed(mask_path, library, *, design=None, target: OpticsTarg
         fr = figures["fringe_reading"]
         notes.append(f"fringe reading: the converted near field averaged over blocks of {fr['block_cells'][0]} x "
                      f"{fr['block_cells'][1]} cells ({fr['grid'][0]} x {fr['grid'][1]} blocks about the axis), "
-                     "then the whole-mask check's interferogram and charge reading")
+                     "then the whole-mask check's interferogram and charge reading" + (
+                         f"; {fr['sites_outside_grid']:,} sites beyond the design's aperture lie outside the grid "
+                         "and are left out of it" if fr["sites_outside_grid"] else ""))
     timings = {"sites_s": t_sites, "total_s": time.perf_counter() - t_all}
     return StreamedOptics(json_ready(figures), windows, tuple(notes), timings, extras.get("fringe_image"))
 
