@@ -112,7 +112,8 @@ def child(kind: str, folder: str, budget: int | None) -> None:
         info = {"method": d["method"]["method"], "converted": d["figures"]["power_budget"]["converted"],
                 "designed_spot": d["figures"].get("designed_spot_efficiency"),
                 "designed_spot_bound": d["figures"].get("designed_spot_efficiency_bound"),
-                "block_um": d["method"]["block_um"]}
+                "block_um": d["method"]["block_um"],
+                "fringe_charge": d["figures"].get("fringe_reading", {}).get("charge", "not computed")}
     print(json.dumps({"s": time.perf_counter() - t0, "cpu_s": time.process_time() - c0, "peak_mb": peak_mb(),
                       "import_mb": base, **info}))
 
@@ -179,6 +180,8 @@ def streamed_optics_rows(folder: str, baseline: str | None, repeat: int) -> dict
         rows[name] = ok[len(ok) // 2] if ok else rs[0]
         if len(ok) > 1:
             rows[name]["method"] += f"; {len(ok)} runs {ok[0]['s']:.1f}-{ok[-1]['s']:.1f} s"
+        if ok and "fringe_charge" in ok[0]:
+            rows[name]["method"] += f"; fringe charge {ok[0]['fringe_charge']}"
     return rows
 
 

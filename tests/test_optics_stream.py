@@ -8,6 +8,7 @@ directly at the same directions: an equivalence check of the block approximation
 from __future__ import annotations
 
 import math
+from pathlib import Path
 
 import numpy as np
 import pytest
@@ -420,3 +421,175 @@ def test_bad_polygon_mid_stream_is_one_error_and_stops_the_reader(tmp_path):
     with pytest.raises(MetalayError, match=r"bad\.gds: polygons 1600-1600 .*3 vertices"):
         check_optics_streamed(bad, make_library(), target=target, chunk_polygons=200)
     assert not any(t.name == "mask-reader" for t in threading.enumerate())
+
+
+# ---------------------------------------------------------------------------------------------------------------
+# Fringe reading of the streamed check: block means of the converted near field, then the whole-mask reading
+# ---------------------------------------------------------------------------------------------------------------
+
+def _fringe_item(figures):
+    return next(i for i in figures["verdicts"]["items"] if i["key"] == "fringe_charge")
+
+
+@pytest.mark.parametrize("terms, charge", [
+    ([{"kind": "vortex", "charge": 3}, {"kind": "tilt", "angle_deg": 4.0}], 3),
+    ([{"kind": "vortex", "charge": -2}], -2),
+    ([{"kind": "vortex", "charge": 1}, {"kind": "tilt", "angle_deg": 3.0, "azimuth_deg": 60.0}], 1),
+    ([{"kind": "lens", "focal_length_um": 200.0}], 0),
+], ids=["+3-tilt", "-2", "+1-tilt-az60", "lens"])
+def test_streamed_fringe_reading_equals_whole_check(tmp_path, terms, charge):
+    # Source: Heckenberg et al. 1992, Opt. Quantum Electron. 24, S951: a charge-l vortex against a tilted plane
+    # wave makes a fork with |l| extra fringes (none for a lens: charge 0); read by the whole-mask check's own
+    # interferogram and reading (Takeda, Ina & Kobayashi 1982), so the streamed reading must equal it.
+    lib = make_library()
+    design = _design(terms, 40.0)
+    path = _mask_from_design(tmp_path, design, "m.gds")
+    whole = optics.check_optics(path, lib, design=design, options=optics.OpticsOptions(make_plots=False)).figures
+    res = check_optics_streamed(path, lib, design=design, chunk_polygons=900)
+    fr, wr = res.figures["fringe_reading"], whole["fringe_reading"]
+    assert wr["status"] == "read" and wr["charge"] == charge  # the reference reads the design's charge
+    assert fr["status"] == "read" and fr["charge"] == wr["charge"] == charge and fr["agrees"]
+    assert np.allclose(fr["windings"], charge, atol=0.05)
+    # blocks of one cell on this small mask: the grid covers the aperture about the axis, no site left out
+    assert fr["block_cells"] == [1, 1] and fr["sites_outside_grid"] == 0
+    assert fr["vortex_phase_across_block_rad"] <= fr["max_phase_across_block_rad"]
+    # same verdict item as the whole-mask check (same thresholds: optics_verdicts)
+    assert _fringe_item(res.figures) == _fringe_item(whole)
+    img, x, y = res.fringe_image
+    assert img.shape == (y.size, x.size) and np.all(np.isfinite(img))
+
+
+def test_streamed_fringe_reading_sign_with_blocks_of_several_cells(tmp_path, monkeypatch):
+    # Blocks of 4 x 4 cells (as at 1e7 sites: the grid is at most 512 blocks per side) on a charge -2 vortex with a
+    # 4 degree tilt: the reading is -2 (a flipped reading gives +2). Flipping the sign of the removed tilt leaves
+    # a residual tilt of 8 degrees that the blocks alias: the reading then is +2, so this test fails if the removed
+    # phase's sign is flipped. Source: Heckenberg et al. 1992 (fork: the sign of l from the fork's direction).
+    from metalay.checks import _stream_figures as sfig
+
+    lib = make_library()
+    design = _design([{"kind": "vortex", "charge": -2}, {"kind": "tilt", "angle_deg": 4.0}], 60.0)
+    path = _mask_from_design(tmp_path, design, "m.gds")
+    monkeypatch.setattr(sfig, "FRINGE_MAX_BLOCKS", 64)
+    fr = check_optics_streamed(path, lib, design=design, chunk_polygons=2000).figures["fringe_reading"]
+    assert fr["block_cells"] == [4, 4] and fr["grid"][0] <= 64
+    assert fr["status"] == "read" and fr["charge"] == -2
+    removal = sfig._linear_removal
+    monkeypatch.setattr(sfig, "_linear_removal", lambda t: tuple(-c for c in removal(t)))
+    flipped = check_optics_streamed(path, lib, design=design, chunk_polygons=2000).figures["fringe_reading"]
+    assert flipped["charge"] != -2
+
+
+def test_streamed_fringe_unreadable_when_the_blocks_do_not_resolve_the_fork(tmp_path, monkeypatch):
+    # Source (derived): the reading keeps the spectrum within f_c / 2 = 1 / (12 B) of the carrier (6 blocks per
+    # fringe; Takeda, Ina & Kobayashi 1982), and a charge-l vortex has the local frequency |l| / (2 pi r) on a loop
+    # of radius r: beyond |l| B / r = pi / 6 the reading is refused ("unreadable", a warning), never a number.
+    # Measured here: 10 x 10 cells per block would read charge 3 as 1.
+    from metalay.checks import _stream_figures as sfig
+
+    lib = make_library()
+    design = _design([{"kind": "vortex", "charge": 3}, {"kind": "tilt", "angle_deg": 4.0}], 40.0)
+    path = _mask_from_design(tmp_path, design, "m.gds")
+    monkeypatch.setattr(sfig, "FRINGE_MAX_BLOCKS", 16)
+    res = check_optics_streamed(path, lib, design=design, chunk_polygons=900)
+    fr = res.figures["fringe_reading"]
+    assert fr["vortex_phase_across_block_rad"] > math.pi / 6
+    assert fr["status"] == "unreadable" and fr["charge"] is None and "not resolved" in fr["reason"]
+    item = _fringe_item(res.figures)
+    assert item["verdict"] == "warn" and "not resolved" in item["text"]
+
+
+def test_streamed_fringe_verdict_fails_when_the_mask_charge_differs_from_the_design(tmp_path):
+    # A charge-2 mask checked against a charge-3 design: both checks read 2 and fail the same verdict item
+    # (metalay.checks.optics.optics_verdicts: pass only when the read charge equals the design's).
+    # Source: Heckenberg et al. 1992 (the fork shows the mask's charge, whatever the design says).
+    lib = make_library()
+    path, _ = _vortex_mask(tmp_path, 2, diameter_um=40.0)
+    design = _design([{"kind": "vortex", "charge": 3}], 40.0)
+    whole = optics.check_optics(path, lib, design=design, options=optics.OpticsOptions(make_plots=False)).figures
+    res = check_optics_streamed(path, lib, design=design, chunk_polygons=900)
+    assert res.figures["fringe_reading"]["charge"] == whole["fringe_reading"]["charge"] == 2
+    item = _fringe_item(res.figures)
+    assert item == _fringe_item(whole) and item["verdict"] == "fail" and res.figures["verdicts"]["verdict"] == "fail"
+
+
+def test_streamed_fringe_reading_hexagonal_lattice(tmp_path):
+    # Hexagonal blocks of whole rows (every block holds the same number of cells) read the whole-mask charge.
+    # Source: Heckenberg et al. 1992 (fork of a charge-3 vortex: 3 extra fringes).
+    lib = make_library()
+    design = _design([{"kind": "vortex", "charge": 3}, {"kind": "tilt", "angle_deg": 3.0}], 40.0,
+                     lattice="hexagonal")
+    path = _mask_from_design(tmp_path, design, "h.gds")
+    whole = optics.check_optics(path, lib, design=design, options=optics.OpticsOptions(make_plots=False)).figures
+    fr = check_optics_streamed(path, lib, design=design, chunk_polygons=900).figures["fringe_reading"]
+    assert fr["status"] == "read" and fr["charge"] == whole["fringe_reading"]["charge"] == 3
+
+
+def test_fringe_blocks_hold_whole_cells_and_cover_the_aperture():
+    # Common practice (no source): block means over whole lattice cells; every block inside the aperture holds
+    # mx x my sites; at most max_blocks per side; the axis at a block centre.
+    from types import SimpleNamespace
+
+    from metalay.checks import _stream_figures as sfig
+
+    p = 0.4
+    for lattice in ("square", "hexagonal"):
+        acc = sfig.fringe_blocks((1.3, -0.7), (30.0, 20.0), p, lattice, 633.0, max_blocks=40)
+        assert max(acc.nx, acc.ny) <= 40 and acc.nx % 2 == 1 and acc.ny % 2 == 1
+        i, j = np.meshgrid(np.arange(-90, 91), np.arange(-70, 71))
+        dec = SimpleNamespace(i=i.ravel(), j=j.ravel(), origin_um=(0.0, 0.0), lattice=lattice, period_nm=p * 1e3)
+        acc.add(dec, np.ones(i.size, complex))
+        fld, x, y = acc.field(p)
+        xs, ys = optics.site_xy(SimpleNamespace(**vars(dec)))
+        inner = (np.abs(x[None, :]) < 30.0) & (np.abs(y[:, None]) < 20.0)
+        assert np.allclose(fld[inner], 1.0)  # whole blocks: mean of mx x my unit fields
+        assert acc.sites_in + acc.sites_out == i.size and acc.sites_in > 0
+        cx = x[acc.nx // 2]
+        cy = y[acc.ny // 2]
+        assert abs(cx - 1.3) <= (x[1] - x[0]) / 2 + 1e-9 and abs(cy + 0.7) <= (y[1] - y[0]) / 2 + 1e-9
+        assert x[0] <= -30.0 + (x[1] - x[0]) and x[-1] >= 30.0 - (x[1] - x[0]) and xs.size == i.size
+
+
+def test_compile_that_streams_its_optics_shows_the_fringe_reading(tmp_path, monkeypatch, small_design_dict):
+    # A compile told to stream (the threshold STREAM_CHECKS_ABOVE_SITES and the fixed part lowered so that this
+    # small mask streams, as one above 4e6 sites does): manifest, optics.json, the streamed report and the compile
+    # report carry the reading. Source: Heckenberg et al. 1992 (charge-3 fork: 3 extra fringes).
+    import json
+
+    from metalay.api import compile_design
+    from metalay.checks import steps
+    from metalay.design.spec import parse_design
+
+    monkeypatch.setattr(steps, "STREAM_CHECKS_ABOVE_SITES", 0)
+    monkeypatch.setattr(steps, "STREAMED_FIXED_BYTES", 0)
+    raw = small_design_dict
+    raw["mask"]["formats"] = ["gds"]
+    raw["checks"] = {"rules": False, "optics": True}
+    res = compile_design(parse_design(raw), tmp_path / "c", show_progress=False)
+    opt = res.manifest["checks"]["optics"]
+    assert opt["method"]["method"] == "streamed block far field"
+    assert opt["figures"]["fringe_reading"]["charge"] == 3 and "fringe charge 3" in opt["summary"]
+    assert any(i["key"] == "fringe_charge" and i["verdict"] == "pass" for i in opt["verdict_items"])
+    folder = tmp_path / "c"
+    written = {Path(f["path"]).name for f in opt["files"].values()}
+    assert {"optics.json", "interferogram.png", "optics_report.html"} <= written
+    on_disk = json.loads(next(folder.rglob("optics.json")).read_text())
+    assert on_disk["fringe_reading"]["charge"] == 3
+    html = next(folder.rglob("optics_report.html")).read_text()
+    assert "charge read: 3" in html and "data:image/png;base64," in html
+    assert "charge read from a simulated fork interferogram" in (folder / "report.html").read_text()
+
+
+def test_streamed_fringe_sites_beyond_the_design_aperture_are_counted_and_said(tmp_path):
+    # Common practice (no source): the fringe grid covers the design's aperture; a mask reaching beyond it has its
+    # outer sites counted and named in the notes (never silently dropped); the reading inside still holds.
+    lib = make_library()
+    path, _ = _vortex_mask(tmp_path, 3, diameter_um=40.0)
+    design = _design([{"kind": "vortex", "charge": 3}], 30.0)
+    res = check_optics_streamed(path, lib, design=design, chunk_polygons=900)
+    fr = res.figures["fringe_reading"]
+    x, y, _ = _sites(path, lib)
+    half = 15.0 + 2 * P_NM * 1e-3  # the grid reaches two cells beyond the aperture's half width
+    beyond = int(np.count_nonzero((np.abs(x) > half + fr["block_um"][0]) | (np.abs(y) > half + fr["block_um"][1])))
+    assert fr["sites_outside_grid"] >= beyond > 0
+    assert any(f"{fr['sites_outside_grid']:,} sites beyond" in n for n in res.notes)
+    assert fr["status"] == "read" and fr["charge"] == 3

@@ -17,8 +17,9 @@ module          stage                                                           
                 spots, crosstalk, lens; one evaluation path shared with the studies         ``evaluate_elements``
 ``optics_stream.py`` optical check of a mask too large to hold: spot far fields from block    ``check_optics_streamed``
                 sums accumulated tile by tile, with a derived error bound
-``_stream_figures.py`` its OAM spectrum (ring x sector sums), crosstalk (exact site sums) and
-                lens focal spot (focal-plane block sums), each with its bound (inside checks)
+``_stream_figures.py`` its OAM spectrum (ring x sector sums), fringe reading (block-averaged
+                near field), crosstalk (exact site sums) and lens focal spot (focal-plane
+                block sums), each with its bound or method (inside checks)
 ``spinoptics.py`` optical check of a spin-decoupled mask: each input spin against its own  ``check_spin_optics``
                 target, crosstalk between the two targets, figures for both
 ``plots.py``    deterministic PNG figures                                                   ``png_bytes``

@@ -1636,7 +1636,8 @@ def optics_verdicts(figures: dict, limits=None) -> dict:
     fr = figures.get("fringe_reading")
     if fr is not None:
         if fr["status"] != "read":
-            items.append(unmeasured("fringe_charge", "unreadable: the loops around the core disagree"))
+            why = fr.get("reason", "the loops around the core disagree")
+            items.append(unmeasured("fringe_charge", f"unreadable: {why}"))
         else:
             ok = fr["charge"] == fr["design_charge"]
             items.append({"key": "fringe_charge", "what": "charge read from a simulated fork interferogram",

@@ -70,7 +70,8 @@ __all__ = ["BlockFarField", "FarFieldAccumulator", "StreamedOptics", "check_opti
 
 OPTICS_STREAM_BYTES_PER_SITE = 12
 """Bytes per polygon the streamed optical check still holds for a flat GDSII (the file walk's per-element table);
-the rest is two or three chunks (one read ahead) and the coarse grids (spots, OAM rings x sectors, focal plane)."""
+the rest is two or three chunks (one read ahead) and the coarse grids (spots, OAM rings x sectors, fringe blocks,
+focal plane)."""
 _FP_ALLOWANCE = 1e-12
 
 
@@ -337,12 +338,14 @@ def block_size_for(period_nm: float, wavelength_nm: float, u_max: float, side_si
 class StreamedOptics:
     """Result of :func:`check_optics_streamed`: JSON-ready figures (with the bound and the method), the far-field
     window of each measured spot (name -> :class:`BlockFarField`; a lens adds "focal_plane" and
-    "focal_plane_ideal", whose ``u, v`` are focal-plane offsets over the focal length), notes and timings."""
+    "focal_plane_ideal", whose ``u, v`` are focal-plane offsets over the focal length), notes, timings and the
+    simulated fork interferogram (designs with an axis charge)."""
 
     figures: dict
     far: dict
     notes: tuple
     timings: dict
+    fringe_image: tuple | None = None  # (intensity (ny, nx), x_um (nx,), y_um (ny,)) of the fork interferogram
 
 
 def _responses(lib, wl: float, bias_nm: float, notes: list, design=None):
@@ -511,13 +514,16 @@ def _lobe_radius(target: OpticsTarget, n: int, cell_area_um2: float) -> tuple[fl
 
 
 def _extra_figures(extras: dict, target: OpticsTarget, n: int, diameter: float, st: dict) -> dict:
-    """OAM spectrum, crosstalk and lens figures from the extra accumulators (module
+    """OAM spectrum, fringe reading, crosstalk and lens figures from the extra accumulators (module
     :mod:`metalay.checks._stream_figures`), each with its method and bound."""
     from metalay.checks import _stream_figures as sfig
 
     out = {}
     if "oam" in extras:
         out["oam"] = sfig.oam_figure(extras["oam"], target, diameter, st["period_nm"] * 1e-3)
+    if "fringe" in extras:
+        out["fringe_reading"], extras["fringe_image"] = sfig.fringe_figure(extras["fringe"], target,
+                                                                           st["period_nm"] * 1e-3)
     if "channels" in extras:
         out["crosstalk"] = sfig.crosstalk_figure(extras["channels"])
     if "lens" in extras:
@@ -609,7 +615,8 @@ def check_optics_streamed(mask_path, library, *, design=None, target: OpticsTarg
         ``error_bound`` (formula and values), ``power_budget`` (exact sums), ``far_field`` spot fractions of the
         incident power with bounds, ``designed_spot_efficiency`` (and ``_bound``), ``oam`` (axis charge),
         ``crosstalk`` (multiplexed), ``lens`` (focal length), each with its ``method`` and bound
-        (:mod:`metalay.checks._stream_figures`), and ``verdicts``. The fringe reading is not computed.
+        (:mod:`metalay.checks._stream_figures`), ``fringe_reading`` (axis charge: the charge read from a
+        simulated fork interferogram of the block-averaged near field) and ``verdicts``.
 
     Notes
     -----
@@ -635,8 +642,9 @@ def check_optics_streamed(mask_path, library, *, design=None, target: OpticsTarg
                                       max_side=max_side) for name, (u, v) in centres.items()}
     from metalay.checks._stream_figures import make_extras
 
+    half = design.aperture.half_extent_um if design is not None else None
     extras = {} if st["no_target"] else make_extras(target, n_poly, st["period_nm"] * 1e-3, cell[0] * cell[1],
-                                                    max_side)
+                                                    max_side, lattice=st["lattice"], half_extent_um=half)
     notes: list = []
     chunks = iter_mask_chunks(mask_path, layers=[st["layer"]], chunk_polygons=chunk_polygons)
     sums, stats = _stream_sites(chunks, lib, st, accs, extras, notes, read_ahead=read_ahead)
@@ -658,10 +666,15 @@ def check_optics_streamed(mask_path, library, *, design=None, target: OpticsTarg
               "cells are not counted (elements only); duplicates across chunks are not detected", SAFETY_NOTE]
     if st["no_target"]:
         notes.append("no design given: no spots measured (power budget only)")
-    if "oam" in extras:
-        notes.append("the charge is not read from a simulated interferogram when streaming (OAM spectrum only)")
+    if "fringe" in extras:
+        fr = figures["fringe_reading"]
+        notes.append(f"fringe reading: the converted near field averaged over blocks of {fr['block_cells'][0]} x "
+                     f"{fr['block_cells'][1]} cells ({fr['grid'][0]} x {fr['grid'][1]} blocks about the axis), "
+                     "then the whole-mask check's interferogram and charge reading" + (
+                         f"; {fr['sites_outside_grid']:,} sites beyond the design's aperture lie outside the grid "
+                         "and are left out of it" if fr["sites_outside_grid"] else ""))
     timings = {"sites_s": t_sites, "total_s": time.perf_counter() - t_all}
-    return StreamedOptics(json_ready(figures), windows, tuple(notes), timings)
+    return StreamedOptics(json_ready(figures), windows, tuple(notes), timings, extras.get("fringe_image"))
 
 
 def _streamed_figures(windows, target, sums, stats, n, fractions, bounds, radius_u, diameter, block_um, order,
@@ -724,9 +737,9 @@ def hash_in_background(path):
 
 def write_streamed_outputs(res: StreamedOptics, path, library, design, out_dir, *,
                            mask_sha256: str | None = None) -> tuple[dict, dict]:
-    """Write ``optics.json`` (figures, inputs, the caution) and ``optics_report.html`` to ``out_dir``
-    (atomically); return the figures as written and the files (name -> path, sha256, bytes). ``mask_sha256``:
-    the mask's digest when already known (:func:`hash_in_background`)."""
+    """Write ``optics.json`` (figures, inputs, the caution), ``interferogram.png`` (axis charge) and
+    ``optics_report.html`` to ``out_dir`` (atomically); return the figures as written and the files (name -> path,
+    sha256, bytes). ``mask_sha256``: the mask's digest when already known (:func:`hash_in_background`)."""
     from pathlib import Path
 
     from metalay.checks.optics import _sha256, _write_outputs
@@ -740,10 +753,25 @@ def write_streamed_outputs(res: StreamedOptics, path, library, design, out_dir, 
     f["inputs"] = json_ready(inputs)
     f["caution"] = SAFETY_NOTE
     v = f["verdicts"]
+    images = _images(res, f)
     html = render_html(title=f"Optical check (streamed) of {path.name}: verdict {v['verdict'].upper()}",
                        caution=SAFETY_NOTE, inputs=inputs, figures={k: x for k, x in f.items() if k != "inputs"},
-                       images={}, notes=[f"verdict {v['verdict'].upper()}: {v['summary']}", *res.notes])
-    return f, _write_outputs(Path(out_dir), f, {}, html)
+                       images=images, notes=[f"verdict {v['verdict'].upper()}: {v['summary']}", *res.notes])
+    return f, _write_outputs(Path(out_dir), f, images, html)
+
+
+def _images(res: StreamedOptics, figures: dict) -> dict:
+    """The report's PNG figures, name -> (caption, PNG bytes): the fork interferogram (designs with an axis
+    charge), as the whole-mask check draws it."""
+    if res.fringe_image is None:
+        return {}
+    from metalay.checks import plots
+
+    fr = figures["fringe_reading"]
+    read = fr["charge"] if fr["status"] == "read" else f"unreadable ({fr.get('reason', '')})"
+    return {"7_interferogram": (f"converted beam (means over blocks of {fr['block_cells'][0]} x "
+                                f"{fr['block_cells'][1]} cells) with a tilted plane reference; charge read: {read}",
+                                plots.interferogram_map(*res.fringe_image))}
 
 
 def compile_check_streamed(path, library, design, *, mask_sha256: str | None = None) -> dict:
@@ -768,6 +796,9 @@ def compile_check_streamed(path, library, design, *, mask_sha256: str | None = N
                      f"(+- {f['designed_spot_efficiency_bound']:.2g} block bound)")
     if "oam" in f:
         parts.append(f"OAM purity {f['oam']['purity']:.3f} (+- {f['oam']['purity_bound']:.2g})")
+    if "fringe_reading" in f:
+        fr = f["fringe_reading"]
+        parts.append(f"fringe charge {fr['charge'] if fr['status'] == 'read' else 'unreadable'}")
     if f.get("crosstalk", {}).get("worst_isolation_db") is not None and len(f["crosstalk"]["charges"]) > 1:
         parts.append(f"worst isolation {f['crosstalk']['worst_isolation_db']:.1f} dB")
     if f.get("lens", {}).get("strehl") is not None:

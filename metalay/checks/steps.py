@@ -44,8 +44,8 @@ STREAMED_FIXED_BYTES = 300_000_000
 #: Above this many sites a compile streams its checks even when the whole mask would fit: the whole-mask checks
 #: need 300 and 220 B per site (1.2 GB and 0.9 GB at 4e6 sites, 2.9 GB with the layout at 1e7, over issue 15's
 #: 1.5 GB), the streamed ones 30 B per site + 300 MB, and streamed they took 0.74x (rules) and 0.26x (optics) of
-#: the whole-mask time at 1e6 sites (docs/scale-checks.md). The streamed optics reads no fringe image (its report
-#: says so).
+#: the whole-mask time at 1e6 sites (docs/scale-checks.md). The streamed optics reads the fringe image from the
+#: near field averaged over blocks of a few cells (at most 512 per side).
 STREAM_CHECKS_ABOVE_SITES = 4_000_000
 #: Smallest bytes per polygon of a GDSII/OASIS file (an upper bound on the polygon count from the file size).
 _MIN_FILE_BYTES_PER_POLYGON = 8

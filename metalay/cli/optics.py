@@ -54,9 +54,9 @@ def add_parser(subparsers) -> argparse.ArgumentParser:
     p.add_argument("--fail-at", choices=("fail", "warn", "never"), default="fail",
                    help="exit 1 when the verdict is this or worse (default fail; never: always exit 0)")
     p.add_argument("--streamed", action="store_true",
-                   help="streamed check (tile by tile, spot far fields from block sums with a stated error bound; "
-                        "no OAM, fringes, crosstalk or lens figures); automatic when the whole-mask check does not "
-                        "fit --max-memory")
+                   help="streamed check (tile by tile: spot far fields, OAM, fringe reading, crosstalk and lens "
+                        "figures from sums over sites, with stated error bounds or methods); automatic when the "
+                        "whole-mask check does not fit --max-memory")
     add_max_memory(p)
     p.set_defaults(func=run)
     return p
@@ -174,11 +174,16 @@ def _run_streamed(args, library, design, out: Path) -> int:
 
 
 def _print_streamed_extras(f: dict) -> None:
-    """OAM purity, channel isolation and Strehl ratio of the streamed check, each with its bound."""
+    """OAM purity, fringe charge, channel isolation and Strehl ratio of the streamed check."""
     if "oam" in f:
         o = f["oam"]
         print(f"OAM purity of charge {o['design_charge']}: {o['purity']:.4f} +- {o['purity_bound']:.2g} "
               f"(within {o['radius_um']:.4g} um of the axis)")
+    if "fringe_reading" in f:
+        fr = f["fringe_reading"]
+        read = fr["charge"] if fr["status"] == "read" else f"unreadable ({fr.get('reason', '')})"
+        print(f"charge read from the simulated fork interferogram: {read} (design {fr['design_charge']}; blocks of "
+              f"{fr['block_cells'][0]} x {fr['block_cells'][1]} cells)")
     if "crosstalk" in f and f["crosstalk"]["worst_isolation_db"] is not None:
         print(f"worst channel isolation: {f['crosstalk']['worst_isolation_db']:.2f} dB (exact site sums)")
     if "lens" in f:
