@@ -568,9 +568,12 @@ def _polygons(b: Batch, recs: np.ndarray, lo: np.ndarray, count: np.ndarray) -> 
         jj, ii = np.divmod(i, np.maximum(b.nx, 1)[rec])
         ab = b.lat[rec]
         shift += jj[:, None] * ab[:, 2:] + ii[:, None] * ab[:, :2]
-    ex = b.off_start[rec] >= 0
-    if ex.any():
-        shift[ex] += b.off[b.off_start[rec[ex]] + i[ex]]
+    start = b.off_start[rec]
+    ex = start >= 0
+    if ex.all():  # every record with explicit offsets (as metalay writes a flat mask): no masked copies
+        shift += b.off[start + i]
+    elif ex.any():
+        shift[ex] += b.off[start[ex] + i[ex]]
     rows = b.rows[rec]
     k = int(b.rows[0])
     if (b.rows == k).all():  # one vertex count (the common case): gather per polygon, broadcast over vertices
