@@ -5,7 +5,7 @@ lattice, round aperture sized for ``--sites``) is compiled once to both formats 
 its own subprocess: :func:`metalay.io.stream_read.iter_mask_chunks` over the frame/label/marks layers (2, 3, 4:
 what the compile's report reads) and over the structures layer (1), every chunk hashed (layer, datatype, vertex
 counts, vertices: equal digests for both formats show the same polygons). With ``--before PATH`` (a checkout or an
-export of another version of the package) the OASIS reads also run with that version's reader, so the figures
+export of another version of the package) both reads also run with that version's readers, so the figures
 before and after a change come from the same run and the same files.
 
     .venv/bin/python bench/bench_oasis_read.py                          # 1e7 sites
@@ -76,7 +76,7 @@ def compile_both(folder: Path, sites: float) -> tuple[Path, Path]:
 def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--sites", type=float, default=1e7)
-    ap.add_argument("--before", type=Path, help="another version of the package (its OASIS reads are timed too)")
+    ap.add_argument("--before", type=Path, help="another version of the package (its reads are timed too)")
     ap.add_argument("--repeat", type=int, default=1, help="reads of each kind (the best is printed)")
     ap.add_argument("--child", nargs=2, help=argparse.SUPPRESS)
     args = ap.parse_args()
@@ -92,7 +92,7 @@ def main() -> None:
         for which in LAYERS:
             cases = [("GDSII", gds, ROOT), ("OASIS", oas, ROOT)]
             if args.before:
-                cases.append(("OASIS before", oas, args.before))
+                cases += [("GDSII before", gds, args.before), ("OASIS before", oas, args.before)]
             rows = {}
             for name, path, code in cases:
                 runs = [run_child(path, which, code) for _ in range(args.repeat)]
