@@ -23,6 +23,7 @@ from metalay.mask.steps import MaskCheck, WrittenMask
 from metalay.util.budget import memory_budget
 
 __all__ = ["default_checks", "rules_step", "optics_step", "run_rules_on_written", "run_optics_on_written",
+           "prepare_check_process",
            "compile_report_step", "rule_margins_window"]
 
 #: Vertex limit of the written pieces of a tone inversion (GDSII allows 8191 points, the last repeats the first).
@@ -201,6 +202,12 @@ def run_rules_on_written(written: WrittenMask) -> dict:
     item = judge(total, written.design.checks.limits.get("rule_violations"))
     d["verdict"], d["verdict_items"], d["verdict_summary"] = item["verdict"], [item], item["text"]
     return d
+
+
+def prepare_check_process() -> None:
+    """Load what the checks of this module import when they run (the optical checks and the plotting stack): called
+    in a check's child process while the compile still writes the mask (:mod:`metalay.mask.checkrun`)."""
+    from metalay.checks import optics_stream, plots  # noqa: F401
 
 
 def run_optics_on_written(written: WrittenMask) -> dict:

@@ -21,6 +21,8 @@ with one line naming the check; nothing is published.
 
 from __future__ import annotations
 
+import contextlib
+import importlib
 import os
 import pickle
 import time
@@ -32,7 +34,8 @@ from multiprocessing import get_context
 
 from metalay.mask.steps import MaskCheck, WrittenMask
 
-__all__ = ["CheckJob", "run_jobs", "side_by_side", "concurrent_bytes", "timed_run", "CHILD_FIXED_BYTES"]
+__all__ = ["CheckJob", "run_jobs", "child_processes", "side_by_side", "concurrent_bytes", "timed_run",
+           "CHILD_FIXED_BYTES"]
 
 #: Memory of a fresh interpreter that imports the checks (numpy, scipy, metalay), about 120 MB resident measured
 #: with ``bench/bench_scale.py`` (children's peak less the streamed check's own figure); rounded up.
@@ -89,16 +92,49 @@ def side_by_side(checks: Sequence[MaskCheck], streamed: frozenset, sites: float,
     return concurrent_bytes(checks, sites) <= budget_bytes
 
 
-def _yield_to_first() -> None:
-    """In a child: a lower scheduling priority (:data:`CHILD_NICENESS`), so that the first check, the longest of
-    the standard set (design rules: two passes over the file), keeps its processor and the compile ends sooner."""
+def _start_child(modules: tuple = ()) -> None:
+    """In a child, when it starts: a lower scheduling priority (:data:`CHILD_NICENESS`), so that the first check,
+    the longest of the standard set (design rules: two passes over the file), keeps its processor and the compile
+    ends sooner; then the checks' modules imported and each one's ``prepare_check_process()`` run, if it has one
+    (what a check will load anyway, loaded while the compile still writes the mask). Best effort: a module that
+    fails here fails again, with its own error, when its check runs."""
     try:
         os.nice(CHILD_NICENESS)
     except OSError:  # not permitted here: same priority, same results
         pass
+    for name in modules:
+        try:
+            prepare = getattr(importlib.import_module(name), "prepare_check_process", None)
+            if callable(prepare):
+                prepare()
+        except Exception:  # noqa: BLE001 - reported by the check itself
+            pass
 
 
-def run_jobs(jobs: Sequence[CheckJob], *, parallel: bool = False, cluster=None) -> list[tuple[dict, float]]:
+def _ready() -> bool:
+    return True
+
+
+@contextlib.contextmanager
+def child_processes(checks: Sequence[MaskCheck], enabled: bool):
+    """The child processes of checks that will run side by side (None when not ``enabled``): started at once, so
+    that their start-up and imports overlap the writing of the mask; hand the pool to :func:`run_jobs`."""
+    if not enabled or len(checks) < 2:
+        yield None
+        return
+    modules = tuple(sorted({c.run.__module__ for c in checks[1:]}))
+    pool = ProcessPoolExecutor(max_workers=len(checks) - 1, mp_context=get_context("spawn"),
+                               initializer=_start_child, initargs=(modules,))
+    try:
+        for _ in range(len(checks) - 1):
+            pool.submit(_ready)
+        yield pool
+    finally:
+        pool.shutdown(wait=True, cancel_futures=True)
+
+
+def run_jobs(jobs: Sequence[CheckJob], *, parallel: bool = False, cluster=None,
+             pool: ProcessPoolExecutor | None = None) -> list[tuple[dict, float]]:
     """(result, seconds) of every job, in the order given.
 
     Parameters
@@ -108,13 +144,17 @@ def run_jobs(jobs: Sequence[CheckJob], *, parallel: bool = False, cluster=None) 
         Run the first job here and the others each in a fresh interpreter at the same time.
     cluster : object with ``run_checks(jobs)``, optional
         The compile's Dask cluster (:class:`metalay.mask.cluster.ClusterRunner`): every job is a task there.
+    pool : ProcessPoolExecutor, optional
+        Child processes already started (:func:`child_processes`); else started here when ``parallel``.
     """
     if cluster is not None and jobs:
         return cluster.run_checks(jobs)
     if not parallel or len(jobs) < 2:
         return [timed_run(j.run, j.written) for j in jobs]
-    with ProcessPoolExecutor(max_workers=len(jobs) - 1, mp_context=get_context("spawn"),
-                             initializer=_yield_to_first) as pool:
+    with contextlib.ExitStack() as stack:
+        if pool is None:
+            pool = stack.enter_context(ProcessPoolExecutor(
+                max_workers=len(jobs) - 1, mp_context=get_context("spawn"), initializer=_start_child))
         futures = [pool.submit(timed_run, j.run, j.written) for j in jobs[1:]]
         first = timed_run(jobs[0].run, jobs[0].written)
         rest = []

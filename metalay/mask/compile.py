@@ -44,7 +44,7 @@ from metalay.design.side import Facing, resolve_facing
 from metalay.design.spec import Design
 from metalay.errors import DesignError, MetalayError, OutputError
 from metalay.mask._emit import EmitPlan, MaskSink, SlotElements, emit_complement, emit_elements
-from metalay.mask.checkrun import CheckJob, concurrent_bytes, run_jobs, side_by_side
+from metalay.mask.checkrun import CheckJob, child_processes, concurrent_bytes, run_jobs, side_by_side
 from metalay.mask.layout import (
     element_offsets,
     frame_polygons,
@@ -286,14 +286,16 @@ def _compile_into(design: Design, out: Path, *, checks: Sequence[MaskCheck], sho
     plan = _plan(design, out, sites_per_tile=sites_per_tile,
                  structures_for_checks=any(c.needs_structures for c in enabled),
                  admitted_checks=enabled, max_memory_bytes=max_memory_bytes)
-    t0 = time.perf_counter()
-    gathered, known_hashes = _write_tiles(plan, show_progress=show_progress, runner=runner)
-    timings["layout_and_write_s"] = time.perf_counter() - t0
-    files = {fmt: plan.paths[fmt] for fmt in ("gds", "oas") if fmt in design.mask.formats}
-    pause_point("written")
-    t0 = time.perf_counter()
-    results, sections = _run_checks(plan, enabled, files, timings, max_memory_bytes, runner, known_hashes)
-    timings["checks_s"] = time.perf_counter() - t0
+    with child_processes(enabled, plan.checks_side_by_side and runner is None) as children:
+        t0 = time.perf_counter()
+        gathered, known_hashes = _write_tiles(plan, show_progress=show_progress, runner=runner)
+        timings["layout_and_write_s"] = time.perf_counter() - t0
+        files = {fmt: plan.paths[fmt] for fmt in ("gds", "oas") if fmt in design.mask.formats}
+        pause_point("written")
+        t0 = time.perf_counter()
+        results, sections = _run_checks(plan, enabled, files, timings, max_memory_bytes, runner, known_hashes,
+                                        children)
+        timings["checks_s"] = time.perf_counter() - t0
     pause_point("checked")
     manifest = _manifest(plan, gathered, files, results, known_hashes)
     if annotations:
@@ -565,7 +567,8 @@ def _write_tiles(plan: _Plan, *, show_progress: bool | None, runner=None) -> tup
 # ----------------------------------------------------------------------------------------------------------------
 
 def _run_checks(plan: _Plan, checks: Sequence[MaskCheck], files: dict, timings: dict,
-                max_memory_bytes: int | None = None, runner=None, known_hashes=None) -> tuple[dict, dict]:
+                max_memory_bytes: int | None = None, runner=None, known_hashes=None,
+                children=None) -> tuple[dict, dict]:
     """Stage 4: run each enabled check on the primary mask file (one after another, side by side, or on the
     compile's cluster: :mod:`metalay.mask.checkrun`); results keyed by check name, and the report sections the
     checks handed back (``report_sections``: kept out of the manifest) keyed the same way."""
@@ -577,7 +580,8 @@ def _run_checks(plan: _Plan, checks: Sequence[MaskCheck], files: dict, timings: 
         written, streamed=check.name in plan.streamed_checks,
         structures_path=written.structures_path if check.needs_structures else None)) for check in checks]
     on_cluster = runner is not None and bool(jobs) and all(j.written.streamed for j in jobs)  # bounded memory only
-    outcomes = run_jobs(jobs, parallel=plan.checks_side_by_side, cluster=runner if on_cluster else None)
+    outcomes = run_jobs(jobs, parallel=plan.checks_side_by_side, cluster=runner if on_cluster else None,
+                        pool=children)
     results, sections = {}, {}
     for job, (result, seconds) in zip(jobs, outcomes):
         results[job.name] = result
