@@ -37,10 +37,11 @@ from metalay.mask.steps import MaskCheck, WrittenMask
 __all__ = ["CheckJob", "run_jobs", "child_processes", "side_by_side", "concurrent_bytes", "timed_run",
            "CHILD_FIXED_BYTES"]
 
-#: Memory of a fresh interpreter that imports the checks (numpy, scipy, metalay), about 120 MB resident measured
-#: with ``bench/bench_scale.py`` (children's peak less the streamed check's own figure); rounded up.
+#: Memory of a fresh interpreter that imports the checks (numpy, scipy, matplotlib, metalay): 87 MB peak resident
+#: measured after ``metalay.checks.steps.prepare_check_process()``; counted with room to spare. (The optical check's
+#: child then peaked at 272 MB in all at 1e7 sites: ``bench/bench_scale.py``, peak with the child less the parent's.)
 CHILD_FIXED_BYTES = 200_000_000
-#: Niceness added to the checks' child processes (see :func:`_yield_to_first`).
+#: Niceness added to the checks' child processes (see :func:`_start_child`).
 CHILD_NICENESS = 5
 
 
