@@ -100,6 +100,29 @@ def test_metalay_files_stream_as_the_whole_read(tmp_path, monkeypatch):
                 _assert_stream_is_whole(path, cp)
 
 
+def test_a_reusable_source_surveys_once_and_gives_the_stream_each_time(tmp_path, monkeypatch):
+    # Common practice (no source): a source read twice (the streamed design rules' two passes) must give the
+    # iterator's chunks both times, on every kind of file the compile writes, with the tiny bounds too; and it
+    # surveys an OASIS file once
+    from metalay.io.stream_read import chunk_source
+
+    surveys = []
+    real = _oasis_stream.survey
+    monkeypatch.setattr(_oasis_stream, "survey", lambda *a, **k: surveys.append(1) or real(*a, **k))
+    with monkeypatch.context() as m:
+        _small_pieces(m)
+        for path in _metalay_files(tmp_path, n=300):
+            for kw in ({}, {"layers": [1, (3, 1)]}, {"cell": "TOP"}):
+                want = _joined(list(iter_mask_chunks(path, chunk_polygons=13, **kw)))
+                surveys.clear()
+                with chunk_source(path, chunk_polygons=13, **kw) as source:
+                    passes = [_joined(list(source())) for _ in range(3)]
+                assert len(surveys) == 1, (path.name, kw)
+                for got in passes:
+                    for g, w in zip(got, want):
+                        np.testing.assert_array_equal(g, w)
+
+
 def test_compiled_oasis_masks_stream_as_the_whole_read(tmp_path):
     # the compile's own OASIS files (flat and rotation levels), about 3000 sites each
     from metalay.api import compile_design, load_design

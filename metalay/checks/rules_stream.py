@@ -32,6 +32,7 @@ band height follows the memory budget (:data:`BAND_BYTES_PER_POLYGON` per polygo
 
 from __future__ import annotations
 
+import contextlib
 import math
 import os
 import tempfile
@@ -479,22 +480,22 @@ def check_mask_tiled(mask, rules: RuleSet, *, method: str = "auto", cell: str | 
     elif callable(mask):
         source = mask
     else:
-        from metalay.io.stream_read import iter_mask_chunks
-
         name = os.fspath(mask)
-        layers = rules.layer_pairs()
-
-        def source():
-            return iter_mask_chunks(name, layers=layers, cell=cell, chunk_polygons=chunk_polygons,
-                                    max_elements=max_elements or DEFAULT_MAX_ELEMENTS)
+        source = None  # a file: the chunk source is opened below (an OASIS file is surveyed once for both passes)
     per_rule: dict[tuple, list] = {}
     gidx_of: dict[tuple, list] = {}
     from concurrent.futures import ThreadPoolExecutor
 
     # the file hash runs beside the survey (hashlib releases the GIL)
-    with ThreadPoolExecutor(max_workers=1) as pool, \
+    with ThreadPoolExecutor(max_workers=1) as pool, contextlib.ExitStack() as stack, \
             tempfile.TemporaryDirectory(prefix="metalay-bands-", dir=spill_dir) as folder:
         fut = pool.submit(file_sha256, name) if name != "<memory>" and known_sha256 is None else None
+        if source is None:
+            from metalay.io.stream_read import chunk_source
+
+            source = stack.enter_context(chunk_source(name, layers=rules.layer_pairs(), cell=cell,
+                                                      chunk_polygons=chunk_polygons,
+                                                      max_elements=max_elements or DEFAULT_MAX_ELEMENTS))
         plan, context_keys, db, uu, sweep = _plan(source, rules, max_memory_bytes, bands)  # bad file: one line
         try:
             sha = fut.result() if fut is not None else known_sha256

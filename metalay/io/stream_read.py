@@ -21,6 +21,7 @@ element, vertex and depth limits do.
 
 from __future__ import annotations
 
+import contextlib
 import os
 from collections.abc import Iterator
 
@@ -46,7 +47,7 @@ from metalay.io.gdsread import (
     _topology,
 )
 
-__all__ = ["iter_mask_chunks", "count_polygons", "DEFAULT_CHUNK_POLYGONS"]
+__all__ = ["iter_mask_chunks", "chunk_source", "count_polygons", "DEFAULT_CHUNK_POLYGONS"]
 
 DEFAULT_CHUNK_POLYGONS = 1 << 18
 """Polygons per yielded chunk (about 20 MB of 4-vertex polygons with their int64 vertices)."""
@@ -173,22 +174,57 @@ def _oasis_survey(path: str, mm, layers, max_elements: int, max_vertices: int):
         raise MaskReadError(f"{path}: OASIS: out of memory while reading (lower the limits)") from exc
 
 
+def _oasis_plan(path: str, mm, layers, cell, max_elements: int, max_vertices: int, max_depth: int) -> tuple:
+    """The OASIS stream's first pass: survey, then the whole read's hierarchy checks and counts."""
+    sv = _oasis_survey(path, mm, layers, max_elements, max_vertices)
+    tops, order = _topology(sv, cell, max_depth)
+    sizes = _flat_sizes(sv, order)
+    _flat_totals(sv, tops, sizes, max_elements=max_elements, max_vertices=max_vertices)
+    return sv, tops, order, sizes, _instance_counts(sv, tops, order, sizes)
+
+
+def _oasis_pieces(path: str, plan: tuple, chunk_polygons: int) -> Iterator[FlatPolygons]:
+    """The OASIS stream's second pass over a surveyed file: the cells piece by piece."""
+    sv, tops, order, sizes, inst = plan
+    sv.held, sv.block = (None, None), (None, None)  # caches of the previous pass, if any
+    db_nm, uu = _nm_from_m(sv.db_unit_m), float(sv.user_unit_m)
+    try:
+        for lay, dt, cnt, xy in _oasis_stream.iter_pieces(sv, tops, order, sizes, inst, chunk_polygons):
+            yield _chunk(lay, dt, cnt.astype(np.int64, copy=False), xy, db_nm, uu)
+    except MemoryError as exc:
+        raise MaskReadError(f"{path}: OASIS: out of memory while streaming") from exc
+
+
 def _oasis_chunks(path: str, layers, cell, max_elements: int, max_vertices: int, max_depth: int,
                   chunk_polygons: int) -> Iterator[FlatPolygons]:
     """The OASIS stream: survey, the whole read's hierarchy checks and counts, then the cells piece by piece."""
     mm = _oasis_stream.open_oasis(path)
     try:
-        sv = _oasis_survey(path, mm, layers, max_elements, max_vertices)
-        tops, order = _topology(sv, cell, max_depth)
-        sizes = _flat_sizes(sv, order)
-        _flat_totals(sv, tops, sizes, max_elements=max_elements, max_vertices=max_vertices)
-        inst = _instance_counts(sv, tops, order, sizes)
-        db_nm, uu = _nm_from_m(sv.db_unit_m), float(sv.user_unit_m)
-        try:
-            for lay, dt, cnt, xy in _oasis_stream.iter_pieces(sv, tops, order, sizes, inst, chunk_polygons):
-                yield _chunk(lay, dt, cnt.astype(np.int64, copy=False), xy, db_nm, uu)
-        except MemoryError as exc:
-            raise MaskReadError(f"{path}: OASIS: out of memory while streaming") from exc
+        yield from _oasis_pieces(path, _oasis_plan(path, mm, layers, cell, max_elements, max_vertices, max_depth),
+                                 chunk_polygons)
+    finally:
+        _close_map(mm)
+
+
+@contextlib.contextmanager
+def chunk_source(path, *, layers=None, cell: str | None = None, max_elements: int = DEFAULT_MAX_ELEMENTS,
+                 max_vertices: int = DEFAULT_MAX_VERTICES, max_depth: int = DEFAULT_MAX_DEPTH,
+                 chunk_polygons: int = DEFAULT_CHUNK_POLYGONS):
+    """A callable giving a fresh :func:`iter_mask_chunks` iterator each time it is called, for a check that reads
+    a mask more than once (the streamed design rules read it twice): an OASIS file is surveyed (parsed, checked and
+    counted) once, on entry, and kept mapped until exit; a GDSII file is walked again at each call (its walk is
+    cheap). The chunks are the same as :func:`iter_mask_chunks`'s (tested)."""
+    path = os.fspath(path)
+    if int(chunk_polygons) < 1:
+        raise MaskReadError(f"{path}: chunk_polygons = {chunk_polygons!r}; allowed: an integer >= 1")
+    if _sniff(path) != "OASIS":
+        yield lambda: iter_mask_chunks(path, layers=layers, cell=cell, max_elements=max_elements,
+                                       max_vertices=max_vertices, max_depth=max_depth, chunk_polygons=chunk_polygons)
+        return
+    mm = _oasis_stream.open_oasis(path)
+    try:
+        plan = _oasis_plan(path, mm, layers, cell, max_elements, max_vertices, max_depth)
+        yield lambda: _oasis_pieces(path, plan, int(chunk_polygons))
     finally:
         _close_map(mm)
 
