@@ -7,7 +7,8 @@ record walk, hierarchy checks and count limits as the whole read, but never allo
 * GDSII runs of identical BOUNDARY elements (the flat masks metalay writes) are decoded a chunk at a time from the
   memory-mapped file, whose pages are released from the resident set once decoded (``madvise(MADV_DONTNEED)``:
   they stay in the page cache); what stays in memory is the walk's per-element table (layer, datatype and two
-  flags: about 10 bytes per element);
+  flags: about 10 bytes per element), kept as one value per run when the run is uniform (one layer, every polygon
+  closed: the masks the compile writes) and not kept for runs with nothing on the wanted layers;
 * placed cells are expanded a block of placements at a time (the placements' affine maps are held: 48 bytes each);
 * OASIS files are read in two passes by :mod:`metalay.io._oasis_stream`: a survey that parses and checks the
   whole file with :mod:`metalay.io.oasis_read`'s parser but expands nothing (repetitions counted, a small table
